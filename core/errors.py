@@ -1,0 +1,83 @@
+"""Error and warning types of Reflector Mapper.
+
+Every error the core raises on purpose derives from :class:`ReflectorMapperError`,
+so callers (the command line, the QGIS adapter) can catch one root and show its
+message. Messages quote the bad value, say what was expected and, for input
+files, name the file, the line and the field.
+"""
+
+from __future__ import annotations
+
+import os
+
+
+class ReflectorMapperError(Exception):
+    """Root of all errors raised on purpose by Reflector Mapper."""
+
+
+class InputFileError(ReflectorMapperError, ValueError):
+    """Bad content in an input file (CSV, TOML, raster).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file.
+    line : int or None
+        1-based line number in the file (None when the whole file is at fault).
+    field : str or None
+        Column or key name (None when no single field is at fault).
+    message : str
+        What is wrong and what was expected.
+    """
+
+    def __init__(self, path, line, field, message):
+        self.path = os.fspath(path) if path is not None else None
+        self.line = line
+        self.field = field
+        self.message = message
+        super().__init__(self._format())
+
+    def _format(self) -> str:
+        where = []
+        if self.path is not None:
+            where.append(os.path.basename(self.path) if self.path else "<input>")
+        if self.line is not None:
+            where.append(f"line {self.line}")
+        if self.field is not None:
+            where.append(f"field '{self.field}'")
+        prefix = ", ".join(where)
+        return f"{prefix}: {self.message}" if prefix else self.message
+
+
+class SurveyConfigError(InputFileError):
+    """Bad or inconsistent survey.toml."""
+
+
+class GeoreferenceError(ReflectorMapperError):
+    """A CRS or coordinate transformation problem (wraps pyproj errors)."""
+
+
+class InversionError(ReflectorMapperError):
+    """A fit that cannot be set up at all (not a flagged gather: those carry a status)."""
+
+
+class OutputError(ReflectorMapperError):
+    """An output cannot be written (folder not writable, output equals an input, ...)."""
+
+
+class MissingDependencyError(ReflectorMapperError, ImportError):
+    """An optional package needed for one feature is not installed."""
+
+    def __init__(self, package: str, feature: str, hint: str | None = None):
+        self.package = package
+        self.feature = feature
+        hint = hint or f"install it with 'python3 -m pip install {package}'"
+        super().__init__(f"{feature} needs the Python package '{package}', which is not installed: {hint}")
+
+
+class CancelledError(ReflectorMapperError):
+    """The user cancelled a long computation."""
+
+
+class ReflectorMapperWarning(UserWarning):
+    """Input that is valid but suspicious (the run goes on)."""

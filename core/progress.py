@@ -1,0 +1,68 @@
+"""A tiny progress and cancellation protocol.
+
+The core reports progress through any object with ``set_progress(percent)``,
+``is_canceled()`` and ``info(message)``; the QGIS adapter wraps a
+``QgsProcessingFeedback`` in such an object and the command line prints to
+stderr. Long loops call :func:`check_cancel` between gathers, lines or chunks
+and raise :class:`~.errors.CancelledError` rather than return partial results.
+"""
+
+from __future__ import annotations
+
+import sys
+
+from .errors import CancelledError
+
+
+class NullProgress:
+    """Progress sink that ignores everything and never cancels."""
+
+    def set_progress(self, percent: float) -> None:  # noqa: D102
+        pass
+
+    def is_canceled(self) -> bool:  # noqa: D102
+        return False
+
+    def info(self, message: str) -> None:  # noqa: D102
+        pass
+
+
+class StderrProgress(NullProgress):
+    """Progress printed on stderr (command line)."""
+
+    def __init__(self, stream=None):
+        self.stream = stream or sys.stderr
+        self._last = -1
+
+    def set_progress(self, percent: float) -> None:  # noqa: D102
+        p = int(percent)
+        if p != self._last and p % 10 == 0:
+            self._last = p
+            print(f"  {p:3d} %", file=self.stream, flush=True)
+
+    def info(self, message: str) -> None:  # noqa: D102
+        print(message, file=self.stream, flush=True)
+
+
+class SubProgress(NullProgress):
+    """Maps 0-100 % of a sub-step onto [start, stop] % of a parent."""
+
+    def __init__(self, parent, start: float, stop: float):
+        self.parent = parent or NullProgress()
+        self.start = start
+        self.stop = stop
+
+    def set_progress(self, percent: float) -> None:  # noqa: D102
+        self.parent.set_progress(self.start + (self.stop - self.start) * percent / 100.0)
+
+    def is_canceled(self) -> bool:  # noqa: D102
+        return self.parent.is_canceled()
+
+    def info(self, message: str) -> None:  # noqa: D102
+        self.parent.info(message)
+
+
+def check_cancel(progress) -> None:
+    """Raise :class:`CancelledError` if ``progress`` says the user cancelled."""
+    if progress is not None and progress.is_canceled():
+        raise CancelledError("cancelled by the user")

@@ -1,0 +1,21 @@
+"""Run the doctests of every core module (worked examples checkable by hand)."""
+
+import doctest
+import importlib
+import pkgutil
+
+import pytest
+
+import reflector_mapper.core as core
+
+MODULES = sorted(m.name for m in pkgutil.iter_modules(core.__path__) if not m.name.startswith("_"))
+
+
+@pytest.mark.parametrize("name", MODULES, ids=MODULES)
+def test_module_doctests(name):
+    try:
+        module = importlib.import_module(f"reflector_mapper.core.{name}")
+    except ImportError as exc:  # an optional dependency of that module is missing
+        pytest.fail(f"core module {name} does not import: {exc}")
+    result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE | doctest.ELLIPSIS)
+    assert result.failed == 0
