@@ -1,0 +1,158 @@
+"""The survey model: plain, frozen containers that flow between the core modules.
+
+Data flow (one way)::
+
+    files --io--> Survey --geometry--> GatherSet --inversion--> GatherFits
+          --geometry--> reflector points --structure/surface--> map products
+
+All arrays of one container have the same length; text columns are numpy
+object arrays of ``str``; coordinates are in the survey's *working* CRS
+(projected, metres). ``file_line`` keeps the 1-based line number in the input
+file of each row, so that later checks can still point at the file.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Optional
+
+import numpy as np
+
+__all__ = ["Stations", "Picks", "Boreholes", "Settings", "Survey", "GatherSet"]
+
+
+@dataclass(frozen=True)
+class Stations:
+    """Surveyed points (geophone stations and shot points), one row each."""
+
+    line: np.ndarray  # str
+    station: np.ndarray  # str
+    x_m: np.ndarray  # easting in the working CRS
+    y_m: np.ndarray  # northing in the working CRS
+    z_m: np.ndarray  # ground elevation
+    file_line: np.ndarray  # int, 1-based line in stations.csv
+
+    def __len__(self) -> int:
+        return len(self.x_m)
+
+    @property
+    def xyz(self) -> np.ndarray:
+        """(n, 3) array of x, y, z."""
+        return np.column_stack([self.x_m, self.y_m, self.z_m])
+
+
+@dataclass(frozen=True)
+class Picks:
+    """Picked reflection arrivals, one row per (line, shot, receiver, reflector)."""
+
+    line: np.ndarray  # str
+    shot: np.ndarray  # str, station label of the shot on that line
+    receiver: np.ndarray  # str, station label of the receiver on that line
+    time_s: np.ndarray  # two-way time, seconds
+    sigma_s: np.ndarray  # pick standard error, seconds
+    reflector: np.ndarray  # str, reflector label ("1" when the file has none)
+    file_line: np.ndarray  # int, 1-based line in picks.csv
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+
+@dataclass(frozen=True)
+class Boreholes:
+    """Boreholes that reached the reflector."""
+
+    name: np.ndarray  # str
+    x_m: np.ndarray
+    y_m: np.ndarray
+    z_m: np.ndarray  # collar elevation
+    depth_m: np.ndarray  # depth of the reflector below the collar
+    sigma_m: np.ndarray  # standard error of that depth
+    file_line: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.x_m)
+
+    @property
+    def elevation_m(self) -> np.ndarray:
+        """Reflector elevation at each borehole (collar - depth)."""
+        return self.z_m - self.depth_m
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Processing settings from survey.toml ``[processing]`` (all optional).
+
+    Defaults are those a practising engineer would start from; each is
+    documented in README.md.
+    """
+
+    default_sigma_ms: float = 0.5  # pick error when picks.csv has no sigma_ms
+    gather: str = "shot"  # "shot" (common-shot) or "cmp" (common-midpoint)
+    min_picks: int = 6  # fewer usable picks: gather flagged, not fitted
+    velocity_min_m_s: float = 150.0  # plausible overburden velocity range
+    velocity_max_m_s: float = 6500.0
+    robust_loss: str = "huber"  # "huber", "soft_l1", "cauchy" or "linear"
+    robust_scale: float = 1.5  # loss threshold in units of the pick sigma
+    reject_sigma: float = 4.0  # |residual| / sigma above this: pick rejected (flagged)
+    combine_radius_m: Optional[float] = None  # None: half the median spread length
+    min_line_angle_deg: float = 30.0  # least angle between line directions to combine
+    cell_size_m: Optional[float] = None  # None: chosen from the data spacing
+    max_distance_m: Optional[float] = None  # None: from the data spacing; farther = nodata
+    surface_method: str = "auto"  # "auto", "kriging", "spline", "tomography"
+    variogram_model: str = "spherical"  # "spherical", "exponential", "gaussian"
+    neighbours: int = 32  # kriging neighbourhood size
+    contour_interval_m: Optional[float] = None  # None: a round value from the range
+    index_contour_every: int = 5
+    borehole_sigma_m: float = 0.1  # depth error of a borehole when boreholes.csv has none
+    calibrate_velocity: bool = False  # scale velocities to fit the boreholes
+    dem: Optional[Path] = None  # ground model raster; None: interpolate stations
+    work_crs: Optional[str] = None  # projected CRS to work in when the input is geographic
+
+
+@dataclass(frozen=True)
+class Survey:
+    """Everything read from one survey.toml and the files it names."""
+
+    name: str
+    path: Path  # the survey.toml
+    input_crs: object  # pyproj.CRS of x/y in the CSV files
+    crs: object  # pyproj.CRS, projected working CRS (equal to input_crs when that is projected)
+    stations: Stations
+    picks: Picks
+    boreholes: Optional[Boreholes]
+    settings: Settings = field(default_factory=Settings)
+    files: dict = field(default_factory=dict)  # role -> Path of each input file
+
+
+@dataclass(frozen=True)
+class GatherSet:
+    """Picks grouped into gathers, flat arrays ready for the batched fits.
+
+    Per pick (length n): ``gather`` (int index into the per-gather arrays),
+    ``source_xyz`` and ``receiver_xyz`` (n, 3), ``time_s``, ``sigma_s``,
+    ``pick_index`` (row in :class:`Picks`).
+    Per gather (length g): ``line``, ``shot``, ``reflector`` (str),
+    ``line_unit`` (g, 2) horizontal unit vector u along the line (the principal
+    axis of the spread, oriented toward increasing station order),
+    ``cross_unit`` (g, 2) = u rotated 90 degrees clockwise (u x z),
+    ``source_xyz_g`` (g, 3) and ``spread_length_m``.
+    """
+
+    gather: np.ndarray
+    source_xyz: np.ndarray
+    receiver_xyz: np.ndarray
+    time_s: np.ndarray
+    sigma_s: np.ndarray
+    pick_index: np.ndarray
+    line: np.ndarray
+    shot: np.ndarray
+    reflector: np.ndarray
+    line_unit: np.ndarray
+    cross_unit: np.ndarray
+    source_xyz_g: np.ndarray
+    spread_length_m: np.ndarray
+
+    @property
+    def n_gathers(self) -> int:
+        return len(self.line)
