@@ -1,0 +1,12 @@
+#!/usr/bin/env bash
+# Set up and run the whole job on the sample project (the invented Tarnwick Creek site).
+# Outputs go to out/sample/ (or the folder given as the first argument).
+set -euo pipefail
+source "$(dirname "$0")/setup.sh"
+cd "$REPO_ROOT"
+OUT=${1:-out/sample}
+
+apt_install python3-venv python3-pip
+setup_pypi_venv plots
+.venv/bin/reflector-map run sample_project/survey.toml --out "$OUT"
+echo "Open $OUT/report.html in a browser and $OUT/survey.gpkg in QGIS."

@@ -1,0 +1,22 @@
+#!/usr/bin/env bash
+# Every test of Reflector Mapper, with all set-up, on a fresh Debian/Ubuntu machine:
+#   1. the core on current PyPI releases (.venv);
+#   2. the core and the QGIS plugin inside Debian's real QGIS 3.22, headless (.venv-qgis).
+# Extra arguments go to both pytest runs (e.g. -x, -k name).
+set -euo pipefail
+source "$(dirname "$0")/setup.sh"
+cd "$REPO_ROOT"
+
+apt_install "${QGIS_DEBS[@]}"
+setup_pypi_venv test,plots
+setup_qgis_venv
+.venv/bin/python -m pip install -q --disable-pip-version-check gstools rasterio pyogrio geopandas
+
+echo "== 1/2 core tests on current PyPI releases"
+.venv/bin/python -c "import numpy, scipy, pyproj, shapely; print('numpy', numpy.__version__, 'scipy', scipy.__version__, 'pyproj', pyproj.__version__, 'shapely', shapely.__version__)"
+.venv/bin/python -m pytest -q --ignore=tests/qgis "$@"
+
+echo "== 2/2 core and plugin tests inside Debian's QGIS (headless)"
+qgis_env
+.venv-qgis/bin/python -c "import numpy, scipy, pyproj, shapely; print('numpy', numpy.__version__, 'scipy', scipy.__version__, 'pyproj', pyproj.__version__, 'shapely', shapely.__version__)"
+.venv-qgis/bin/python -m pytest -q -p pytest_qgis "$@"
