@@ -1,0 +1,98 @@
+"""Command line: ``reflector-map run SURVEY.toml --out DIR``.
+
+Exit codes: 0 success; 2 bad input or an output that cannot be written (one
+line on stderr, no traceback); 1 an internal error (one line, ``--debug`` shows
+the traceback); 130 cancelled (Ctrl-C).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+
+from . import __version__
+from .errors import CancelledError, ReflectorMapperError
+from .progress import NullProgress, StderrProgress
+
+CAUTION = (
+    "A seismic depth map is an interpretation with stated uncertainty. It does not replace borings; "
+    "designs that rely on it must be checked against borings and signed off under local codes by "
+    "licensed professionals."
+)
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="reflector-map",
+        description="Map a seismic reflector (usually bedrock) from shallow reflection picks.",
+        epilog=CAUTION,
+    )
+    p.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    sub = p.add_subparsers(dest="command", required=True)
+    run = sub.add_parser("run", help="run the whole job on a survey and write every output")
+    run.add_argument("survey", help="survey.toml naming the stations, picks and borehole files")
+    run.add_argument("--out", required=True, help="output folder (created if missing)")
+    run.add_argument(
+        "--method",
+        choices=["auto", "kriging", "spline", "tomography"],
+        default=None,
+        help="surface method (default: the survey's [processing] surface_method, else auto)",
+    )
+    run.add_argument("--progress", action="store_true", help="print progress on stderr")
+    run.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    check = sub.add_parser("check", help="read and validate the inputs only")
+    check.add_argument("survey")
+    return p
+
+
+def _one_line(message: str) -> str:
+    return " ".join(str(message).split())
+
+
+def main(argv=None) -> int:
+    args = _parser().parse_args(argv)
+    show_progress = getattr(args, "progress", False) or sys.stderr.isatty()
+    progress = StderrProgress() if show_progress else NullProgress()
+    caught = []
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            if args.command == "check":
+                from .inputs import load_survey
+
+                survey = load_survey(args.survey)
+                print(
+                    f"{survey.name}: {len(survey.stations)} stations, {len(survey.picks)} picks, "
+                    f"{0 if survey.boreholes is None else len(survey.boreholes)} boreholes; CRS {survey.crs.name}"
+                )
+            else:
+                from .pipeline import run
+
+                result = run(args.survey, args.out, method=args.method, progress=progress)
+                print(result.summary())
+    except CancelledError:
+        print("reflector-map: cancelled", file=sys.stderr)
+        return 130
+    except KeyboardInterrupt:
+        print("reflector-map: interrupted", file=sys.stderr)
+        return 130
+    except ReflectorMapperError as err:
+        print(f"reflector-map: error: {_one_line(err)}", file=sys.stderr)
+        return 2
+    except Exception as err:  # an internal error: say so in one line unless --debug
+        if getattr(args, "debug", False):
+            raise
+        print(
+            f"reflector-map: internal error: {type(err).__name__}: {_one_line(err)} (rerun with --debug)",
+            file=sys.stderr,
+        )
+        return 1
+    for w in caught:
+        if issubclass(w.category, UserWarning):
+            print(f"reflector-map: warning: {_one_line(w.message)}", file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
