@@ -62,9 +62,10 @@ def main(argv=None) -> int:
                 from .inputs import load_survey
 
                 survey = load_survey(args.survey)
+                n_bh = 0 if survey.boreholes is None else len(survey.boreholes)
                 print(
                     f"{survey.name}: {len(survey.stations)} stations, {len(survey.picks)} picks, "
-                    f"{0 if survey.boreholes is None else len(survey.boreholes)} boreholes; CRS {survey.crs.name}"
+                    f"{n_bh} boreholes; CRS {survey.crs.name}"
                 )
             else:
                 from .pipeline import run

@@ -1,0 +1,244 @@
+"""Quality-control and map figures (matplotlib, imported lazily, Agg backend).
+
+Every function returns PNG bytes, so the caller decides where they go (a file
+in ``qc/``, an image embedded in ``report.html``). matplotlib is optional for
+the core: without it :class:`~.errors.MissingDependencyError` names it.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+
+from .errors import MissingDependencyError
+
+# colours of our own choosing (colour-blind-safe pairs)
+USED = "#1f4e79"
+REJECTED = "#c0392b"
+FIT = "#e08e0b"
+LINE_COLOURS = ["#1b9e77", "#d95f02", "#7570b3", "#e7298a", "#66a61e", "#e6ab02", "#a6761d", "#666666"]
+
+
+def _plt():
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg", force=False)
+        import matplotlib.pyplot as plt
+    except ImportError as exc:  # pragma: no cover - depends on the machine
+        raise MissingDependencyError("matplotlib", "QC figures and the report") from exc
+    return plt
+
+
+def _png(fig) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=fig.dpi, metadata={"Software": None})
+    _plt().close(fig)
+    return buf.getvalue()
+
+
+def gather_figure(offset_m, time_s, model_time_s, rejected, title, params_text, dpi=90) -> bytes:
+    """QC figure of one gather: t^2 against x^2, t against x, residuals.
+
+    ``offset_m`` is the signed offset along the line (receiver minus shot),
+    ``model_time_s`` the fitted time at each receiver (real 3D geometry), so
+    the fitted curve honours topography and crooked lines. In the t^2-x^2
+    panel a horizontal reflector plots as a straight line of slope 1/V^2 and
+    intercept t0^2 (Green 1938); the two sides of a split spread over a
+    dipping reflector plot as two branches.
+    """
+    plt = _plt()
+    x = np.asarray(offset_m, float)
+    t = np.asarray(time_s, float) * 1e3
+    tm = np.asarray(model_time_s, float) * 1e3
+    rej = np.asarray(rejected, bool)
+    order = np.argsort(x)
+    fig, axes = plt.subplots(1, 3, figsize=(11.5, 3.6), dpi=dpi, gridspec_kw={"width_ratios": [1, 1, 0.8]})
+    ax = axes[0]
+    for side, marker in ((x < 0, "v"), (x >= 0, "^")):
+        ok = side & ~rej
+        ax.plot(x[ok] ** 2, t[ok] ** 2, marker, ms=3.5, color=USED, ls="none")
+        ax.plot(x[side & rej] ** 2, t[side & rej] ** 2, "x", ms=5, color=REJECTED, ls="none")
+        o = np.argsort(x[side] ** 2)
+        ax.plot((x[side] ** 2)[o], (tm[side] ** 2)[o], "-", color=FIT, lw=1.2)
+    ax.set_xlabel("x² (m²)")
+    ax.set_ylabel("t² (ms²)")
+    ax.set_title("t²–x² (▲ forward, ▼ reverse)", fontsize=9)
+    ax = axes[1]
+    ax.plot(x[~rej], t[~rej], "o", ms=3, color=USED, ls="none", label="picks used")
+    ax.plot(x[rej], t[rej], "x", ms=5, color=REJECTED, ls="none", label="rejected")
+    ax.plot(x[order], tm[order], "-", color=FIT, lw=1.2, label="fit")
+    ax.invert_yaxis()
+    ax.set_xlabel("offset along line x (m)")
+    ax.set_ylabel("two-way time t (ms)")
+    ax.set_title("t–x", fontsize=9)
+    ax.legend(fontsize=7, loc="lower center")
+    ax = axes[2]
+    r = t - tm
+    ax.axhline(0, color="0.6", lw=0.8)
+    ax.plot(x[~rej], r[~rej], "o", ms=3, color=USED, ls="none")
+    ax.plot(x[rej], r[rej], "x", ms=5, color=REJECTED, ls="none")
+    lim = max(1.0, 1.2 * np.nanmax(np.abs(r[~rej]))) if np.any(~rej) else 1.0
+    ax.set_ylim(-lim, lim)
+    ax.set_xlabel("x (m)")
+    ax.set_ylabel("residual (ms)")
+    ax.set_title("residuals (rejected may lie off scale)", fontsize=9)
+    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
+    fig.text(0.99, 0.97, params_text, fontsize=8, ha="right", va="top", family="monospace")
+    fig.tight_layout(rect=(0, 0, 1, 0.90))
+    return _png(fig)
+
+
+def map_figure(
+    grid_x_m,
+    grid_y_m,
+    depth_grid_m,
+    contour_lines,
+    station_lines,
+    points_xy=None,
+    dips=None,
+    surface_dips=None,
+    boreholes=None,
+    title="",
+    dpi=110,
+) -> bytes:
+    """Site map: depth raster, contours, lines, points, strike-and-dip symbols.
+
+    ``contour_lines`` is a list of (level, (n,2) xy array, is_index);
+    ``station_lines`` a dict line -> (n,2) xy; ``dips`` and ``surface_dips``
+    tuples (x, y, strike_deg, dip_deg). The strike-and-dip symbol is the one
+    of geologic maps (FGDC-STD-013-2006): a long bar along strike, a short
+    tick from its middle toward the dip direction, the dip value beside it.
+    """
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(8.0, 7.0), dpi=dpi)
+    gx, gy = np.asarray(grid_x_m), np.asarray(grid_y_m)
+    dx = gx[1] - gx[0] if len(gx) > 1 else 1.0
+    dy = abs(gy[1] - gy[0]) if len(gy) > 1 else 1.0
+    extent = (gx.min() - dx / 2, gx.max() + dx / 2, gy.min() - dy / 2, gy.max() + dy / 2)
+    z = np.asarray(depth_grid_m, float)
+    if gy[0] < gy[-1]:  # rows south to north: flip for imshow's top-down rows
+        z = z[::-1]
+    im = ax.imshow(z, extent=extent, cmap="viridis_r", interpolation="nearest")
+    cb = fig.colorbar(im, ax=ax, shrink=0.75)
+    cb.set_label("depth to reflector (m)")
+    for _level, xy, is_index in contour_lines:
+        ax.plot(xy[:, 0], xy[:, 1], color="0.15", lw=1.0 if is_index else 0.4)
+    for i, (line, xy) in enumerate(sorted(station_lines.items())):
+        c = LINE_COLOURS[i % len(LINE_COLOURS)]
+        ax.plot(xy[:, 0], xy[:, 1], "-", color=c, lw=2.0)
+        ax.annotate(f"line {line}", xy[0], fontsize=8, color=c, ha="right", va="bottom")
+    if points_xy is not None and len(points_xy):
+        ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color="white", ms=3, mec="k", mew=0.3)
+    span = max(extent[1] - extent[0], extent[3] - extent[2])
+    for sym, colour in ((surface_dips, "0.35"), (dips, "#b30000")):
+        if sym is None:
+            continue
+        for x, y, strike, dip in zip(*sym):
+            if not np.isfinite(strike):
+                continue
+            _strike_dip_symbol(ax, x, y, strike, dip, span * 0.03, colour)
+    if boreholes is not None:
+        bx, by, names = boreholes
+        ax.plot(bx, by, "s", color="k", mfc="yellow", ms=6)
+        for x, y, n in zip(bx, by, names):
+            ax.annotate(n, (x, y), xytext=(4, 4), textcoords="offset points", fontsize=8)
+    ax.set_xlim(extent[0], extent[1])
+    ax.set_ylim(extent[2], extent[3])
+    ax.set_aspect("equal")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.tick_params(labelsize=7)
+    ax.set_xlabel("easting (m)")
+    ax.set_ylabel("northing (m)")
+    ax.set_title(title, fontsize=10)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def _strike_dip_symbol(ax, x, y, strike_deg, dip_deg, size, colour):
+    s = np.radians(strike_deg)
+    d = np.radians(strike_deg + 90.0)
+    ux, uy = np.sin(s), np.cos(s)
+    ax.plot([x - size * ux, x + size * ux], [y - size * uy, y + size * uy], color=colour, lw=1.8)
+    ax.plot([x, x + 0.4 * size * np.sin(d)], [y, y + 0.4 * size * np.cos(d)], color=colour, lw=1.8)
+    ax.annotate(
+        f"{dip_deg:.0f}",
+        (x + 0.75 * size * np.sin(d), y + 0.75 * size * np.cos(d)),
+        fontsize=7,
+        color=colour,
+        ha="center",
+        va="center",
+    )
+
+
+def section_figure(distance_m, ground_m, points, surface=None, title="", dpi=90) -> bytes:
+    """Line section: ground, reflector points with error bars, surface along the line.
+
+    ``points`` is (distance_m, elevation_m, sigma_m, ok_mask); ``surface`` an
+    optional (distance_m, elevation_m, sigma_m) profile of the mapped surface.
+    Vertical exaggeration is stated on the axis.
+    """
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(10, 3.4), dpi=dpi)
+    ax.plot(distance_m, ground_m, "-", color="#7f6000", lw=1.5, label="ground")
+    d, z, s, ok = points
+    ax.errorbar(
+        d[ok], z[ok], yerr=2 * s[ok], fmt="o", ms=3, color=USED, lw=0.8, label="reflector points (±2σ)"
+    )
+    if np.any(~ok):
+        ax.plot(d[~ok], z[~ok], "x", color=REJECTED, label="flagged gathers")
+    if surface is not None:
+        sd, sz, ss = surface
+        ax.plot(sd, sz, "-", color=FIT, lw=1.2, label="mapped surface")
+        ax.fill_between(sd, sz - 2 * ss, sz + 2 * ss, color=FIT, alpha=0.2, lw=0)
+    ax.set_xlabel("distance along line (m)")
+    ax.set_ylabel("elevation (m)")
+    ax.legend(fontsize=7, ncol=4, loc="lower left")
+    ax.set_title(title, fontsize=10)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def scatter_figure(x, y, xlabel, ylabel, title="", one_to_one=True, dpi=90) -> bytes:
+    """A plain scatter plot (e.g. cross-validation: estimate against datum)."""
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(4.2, 4.0), dpi=dpi)
+    ax.plot(x, y, "o", ms=3, color=USED)
+    if one_to_one and len(x):
+        lo = float(np.nanmin([np.nanmin(x), np.nanmin(y)]))
+        hi = float(np.nanmax([np.nanmax(x), np.nanmax(y)]))
+        ax.plot([lo, hi], [lo, hi], "-", color="0.5", lw=0.8)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    ax.set_title(title, fontsize=9)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def raster_figure(
+    grid_x_m, grid_y_m, values, label, title="", cmap="RdBu_r", symmetric=True, dpi=90
+) -> bytes:
+    """A single grid as an image (e.g. the difference between two surfaces)."""
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(6.0, 5.0), dpi=dpi)
+    gx, gy = np.asarray(grid_x_m), np.asarray(grid_y_m)
+    v = np.asarray(values, float)
+    if gy[0] < gy[-1]:
+        v = v[::-1]
+    lim = np.nanmax(np.abs(v)) if symmetric and np.any(np.isfinite(v)) else None
+    im = ax.imshow(
+        v,
+        extent=(gx.min(), gx.max(), gy.min(), gy.max()),
+        cmap=cmap,
+        vmin=-lim if lim else None,
+        vmax=lim if lim else None,
+        interpolation="nearest",
+    )
+    fig.colorbar(im, ax=ax, shrink=0.8).set_label(label)
+    ax.set_aspect("equal")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.tick_params(labelsize=7)
+    ax.set_title(title, fontsize=9)
+    fig.tight_layout()
+    return _png(fig)
