@@ -1,0 +1,924 @@
+"""Line frames, gathers, georeferenced reflector points and line misties.
+
+Everything here works in the survey's projected working CRS: x east, y north,
+z elevation up, metres. A line's unit vector ``u`` points toward increasing
+station order; its cross unit ``w = (u_y, -u_x)`` is ``u`` turned 90 degrees
+clockwise (seen from above), i.e. ``u x e_z``.
+
+The fitted plane of one gather is described, as in :mod:`.forward`, by its
+downward unit normal ``n`` and the normal distance ``h`` from the source S
+(DESIGN.md s.4):
+
+.. math::
+
+    \\mathbf n = -s\\,\\mathbf u - q\\,\\mathbf w - c\\,\\mathbf e_z, \\qquad
+    c = \\sqrt{1 - s^2 - q^2}
+
+with ``s = -u.n`` fitted along the line and ``q = -w.n`` the cross-line
+component (0 unless resolved by a second line direction, see
+:mod:`.structure`).
+
+References
+----------
+[Sheriff & Geldart 1995] Sheriff, R. E. & Geldart, L. P. (1995). Exploration
+    Seismology, 2nd ed., Cambridge University Press, ch. 4 (image source,
+    reflection points, zero-offset point as the foot of the perpendicular).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from itertools import combinations
+
+import numpy as np
+
+from . import forward
+from .errors import InputFileError, SurveyConfigError
+from .model import GatherSet
+
+__all__ = [
+    "LineFrame",
+    "Misties",
+    "ReflectorPoints",
+    "build_gathers",
+    "gather_normals",
+    "line_frames",
+    "line_misties",
+    "project_onto_polyline",
+    "reflector_points",
+    "station_ground_model",
+    "station_order",
+    "vertical_depth_below_source",
+]
+
+
+# ---------------------------------------------------------------------------
+# Line frames
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class LineFrame:
+    """Geometry of one survey line, its stations in station order.
+
+    Attributes
+    ----------
+    line : str
+        Line name.
+    station : ndarray of str
+        Station labels in station order.
+    x_m, y_m, z_m : ndarray
+        Station coordinates in that order.
+    chainage_m : ndarray
+        Distance of each station along the polyline from the first station.
+    centre_xy : ndarray, shape (2,)
+        Mean station position.
+    unit : ndarray, shape (2,)
+        Principal (PCA) axis of the stations, toward increasing station order.
+    cross_unit : ndarray, shape (2,)
+        ``unit`` turned 90 degrees clockwise: ``(u_y, -u_x)``.
+    azimuth_deg : float
+        Azimuth of ``unit``, clockwise from grid north, in [0, 360).
+    polyline : shapely.geometry.LineString
+        The stations joined in order (follows a crooked line).
+    length_m : float
+        Length of the polyline.
+    """
+
+    line: str
+    station: np.ndarray
+    x_m: np.ndarray
+    y_m: np.ndarray
+    z_m: np.ndarray
+    chainage_m: np.ndarray
+    centre_xy: np.ndarray
+    unit: np.ndarray
+    cross_unit: np.ndarray
+    azimuth_deg: float
+    polyline: object
+    length_m: float
+
+    @property
+    def vertices(self) -> np.ndarray:
+        """(k, 2) polyline vertices."""
+        return np.column_stack([self.x_m, self.y_m])
+
+    def locate(self, x_m, y_m):
+        """Chainage along the polyline and signed offset (+ toward ``cross_unit``).
+
+        See :func:`project_onto_polyline`.
+        """
+        return project_onto_polyline(self.vertices, x_m, y_m)
+
+
+def _is_number(text) -> bool:
+    try:
+        return np.isfinite(float(text))
+    except (TypeError, ValueError):
+        return False
+
+
+def station_order(stations) -> np.ndarray:
+    """Rank (0, 1, ...) of every station within its line.
+
+    Stations are ordered numerically when every label of the line is a number
+    (``"2" < "10"``), otherwise in file order (``file_line``, then row).
+
+    >>> from types import SimpleNamespace as NS
+    >>> st = NS(line=np.array(["A", "A", "A"], dtype=object),
+    ...         station=np.array(["10", "2", "7.5"], dtype=object), file_line=np.array([2, 3, 4]))
+    >>> station_order(st).tolist()
+    [2, 0, 1]
+    """
+    line = np.asarray(stations.line).astype(str)
+    label = np.asarray(stations.station).astype(str)
+    file_line = np.asarray(getattr(stations, "file_line", np.arange(len(line))))
+    rank = np.zeros(len(line), dtype=int)
+    for name in _unique_in_order(line):
+        idx = np.flatnonzero(line == name)
+        labels = label[idx]
+        if all(_is_number(v) for v in labels):
+            key = np.array([float(v) for v in labels])
+            order = np.lexsort((idx, key))
+        else:
+            order = np.lexsort((idx, file_line[idx]))
+        rank[idx[order]] = np.arange(len(idx))
+    return rank
+
+
+def _unique_in_order(values) -> list:
+    """Distinct values in order of first appearance."""
+    values = np.asarray(values)
+    _, first = np.unique(values, return_index=True)
+    return [values[i] for i in np.sort(first)]
+
+
+def _azimuth_deg(vx, vy):
+    """Azimuth of a horizontal vector, clockwise from north, in [0, 360)."""
+    return np.degrees(np.arctan2(vx, vy)) % 360.0
+
+
+def line_frames(stations, path=None) -> dict:
+    """Build a :class:`LineFrame` for every line of ``stations``.
+
+    The line's unit vector is the principal axis of its station positions
+    (eigenvector of the largest eigenvalue of their 2x2 covariance, i.e. PCA),
+    oriented so that station order increases along it.
+
+    Parameters
+    ----------
+    stations : core.model.Stations
+        Station table in the working CRS.
+    path : path-like, optional
+        The stations file, quoted in error messages.
+
+    Returns
+    -------
+    dict
+        ``line name -> LineFrame``, lines in order of first appearance.
+
+    Raises
+    ------
+    InputFileError
+        A line with fewer than two distinct station positions, or a station
+        label given twice on one line.
+
+    >>> from types import SimpleNamespace as NS
+    >>> st = NS(line=np.array(["L1"] * 3, dtype=object), station=np.array(["1", "2", "3"], dtype=object),
+    ...         x_m=np.array([0.0, 0.0, 0.0]), y_m=np.array([10.0, 5.0, 0.0]),
+    ...         z_m=np.zeros(3), file_line=np.array([2, 3, 4]))
+    >>> f = line_frames(st)["L1"]
+    >>> f.unit.round(9).tolist(), float(f.azimuth_deg), float(f.length_m)
+    ([0.0, -1.0], 180.0, 10.0)
+    """
+    from shapely.geometry import LineString
+
+    line = np.asarray(stations.line).astype(str)
+    label = np.asarray(stations.station).astype(str)
+    x = np.asarray(stations.x_m, dtype=float)
+    y = np.asarray(stations.y_m, dtype=float)
+    z = np.asarray(stations.z_m, dtype=float)
+    file_line = np.asarray(getattr(stations, "file_line", np.arange(len(x)) + 2))
+    rank = station_order(stations)
+    frames = {}
+    for name in _unique_in_order(line):
+        idx = np.flatnonzero(line == name)
+        idx = idx[np.argsort(rank[idx], kind="stable")]
+        labels = label[idx]
+        uniq, counts = np.unique(labels, return_counts=True)
+        if np.any(counts > 1):
+            dup = uniq[counts > 1][0]
+            rows = file_line[idx[labels == dup]]
+            raise InputFileError(
+                path, int(rows[1]), "station",
+                f"station '{dup}' appears more than once on line '{name}' (also at line {int(rows[0])}); "
+                "each (line, station) pair must be unique: rename or remove the duplicate",
+            )
+        xy = np.column_stack([x[idx], y[idx]])
+        centre = xy.mean(axis=0)
+        d = xy - centre
+        cov = d.T @ d / len(idx)
+        evals, evecs = np.linalg.eigh(cov)
+        if len(idx) < 2 or evals[-1] <= 1e-12:
+            raise InputFileError(
+                path, int(file_line[idx[0]]), "x",
+                f"line '{name}' has {len(idx)} station(s) at a single position "
+                f"({x[idx[0]]:.3f}, {y[idx[0]]:.3f}); a line needs at least two distinct stations "
+                "to define its direction: check the coordinates or the line names",
+            )
+        u = evecs[:, -1]
+        proj = d @ u
+        trend = np.sum((np.arange(len(idx)) - (len(idx) - 1) / 2.0) * proj)
+        if trend < 0:
+            u = -u
+        u = u + 0.0  # no negative zeros
+        w = np.array([u[1], -u[0]]) + 0.0
+        seg = np.hypot(np.diff(xy[:, 0]), np.diff(xy[:, 1]))
+        chain = np.concatenate([[0.0], np.cumsum(seg)])
+        frames[name] = LineFrame(
+            line=name,
+            station=labels.astype(object),
+            x_m=xy[:, 0].copy(),
+            y_m=xy[:, 1].copy(),
+            z_m=z[idx].copy(),
+            chainage_m=chain,
+            centre_xy=centre,
+            unit=u,
+            cross_unit=w,
+            azimuth_deg=float(_azimuth_deg(u[0], u[1])),
+            polyline=LineString([tuple(p) for p in xy]),
+            length_m=float(chain[-1]),
+        )
+    return frames
+
+
+def project_onto_polyline(vertices, x_m, y_m, chunk=4096):
+    """Project points onto a polyline: chainage and signed lateral offset.
+
+    For every point the closest point on any segment is found (vectorised over
+    points and segments); the chainage is the distance along the polyline to
+    it and the offset is positive to the right of the direction of travel
+    (toward ``(d_y, -d_x)`` of the segment).
+
+    Parameters
+    ----------
+    vertices : array_like, shape (k, 2)
+    x_m, y_m : array_like
+        Points (any shape, broadcast together).
+
+    Returns
+    -------
+    chainage_m, offset_m : ndarray
+        Same shape as the points.
+
+    >>> c, o = project_onto_polyline([[0, 0], [10, 0], [10, 10]], [5.0, 12.0], [-2.0, 4.0])
+    >>> c.tolist(), o.tolist()
+    ([5.0, 14.0], [2.0, 2.0])
+    """
+    v = np.asarray(vertices, dtype=float)
+    px, py = np.broadcast_arrays(np.asarray(x_m, dtype=float), np.asarray(y_m, dtype=float))
+    shape = px.shape
+    px = px.ravel()
+    py = py.ravel()
+    if len(v) == 1:
+        return np.zeros(shape), np.hypot(px - v[0, 0], py - v[0, 1]).reshape(shape)
+    a = v[:-1]
+    d = v[1:] - a
+    seg_len = np.hypot(d[:, 0], d[:, 1])
+    cum = np.concatenate([[0.0], np.cumsum(seg_len)])[:-1]
+    l2 = np.where(seg_len > 0, seg_len**2, 1.0)
+    chain = np.empty(len(px))
+    off = np.empty(len(px))
+    for start in range(0, len(px), chunk):
+        sx = px[start:start + chunk, None] - a[None, :, 0]
+        sy = py[start:start + chunk, None] - a[None, :, 1]
+        t = np.clip((sx * d[:, 0] + sy * d[:, 1]) / l2, 0.0, 1.0)
+        t = np.where(seg_len > 0, t, 0.0)
+        rx = sx - t * d[:, 0]
+        ry = sy - t * d[:, 1]
+        dist2 = rx * rx + ry * ry
+        k = np.argmin(dist2, axis=1)
+        rows = np.arange(len(k))
+        chain[start:start + chunk] = cum[k] + t[rows, k] * seg_len[k]
+        nx = d[k, 1] / np.where(seg_len[k] > 0, seg_len[k], 1.0)
+        ny = -d[k, 0] / np.where(seg_len[k] > 0, seg_len[k], 1.0)
+        sign = np.sign(rx[rows, k] * nx + ry[rows, k] * ny)
+        off[start:start + chunk] = np.where(sign == 0, 1.0, sign) * np.sqrt(dist2[rows, k])
+    return chain.reshape(shape), off.reshape(shape)
+
+
+# ---------------------------------------------------------------------------
+# Gathers
+# ---------------------------------------------------------------------------
+
+
+def build_gathers(survey, reflector=None, frames=None) -> GatherSet:
+    """Join picks to station coordinates and group them into shot gathers.
+
+    One gather per (line, shot, reflector). Picks are sorted by gather and,
+    within a gather, by receiver station order. The per-gather unit vector
+    ``u`` is the principal axis of that gather's spread (the source and its
+    receivers), oriented toward increasing station order; when the spread is
+    degenerate (all points at one position) the line frame's axis is used.
+    ``spread_length_m`` is the extent of source and receivers along ``u``.
+
+    Parameters
+    ----------
+    survey : core.model.Survey
+    reflector : str or sequence of str, optional
+        Keep only these reflector labels (default: all).
+    frames : dict, optional
+        Output of :func:`line_frames` (computed when omitted).
+
+    Returns
+    -------
+    core.model.GatherSet
+
+    Raises
+    ------
+    InputFileError
+        A pick names a shot or receiver that is not a station of its line.
+    SurveyConfigError
+        No pick is left for the requested reflector(s).
+    """
+    st = survey.stations
+    pk = survey.picks
+    files = getattr(survey, "files", {}) or {}
+    st_path = files.get("stations")
+    pk_path = files.get("picks")
+    if frames is None:
+        frames = line_frames(st, path=st_path)
+
+    sel = np.ones(len(pk.time_s), dtype=bool)
+    if reflector is not None:
+        wanted = [reflector] if isinstance(reflector, str) else [str(r) for r in reflector]
+        sel = np.isin(np.asarray(pk.reflector).astype(str), wanted)
+        if not sel.any():
+            present = ", ".join(sorted(set(np.asarray(pk.reflector).astype(str))))
+            raise SurveyConfigError(
+                getattr(survey, "path", None), None, "reflector",
+                f"no picks for reflector {wanted!r}; the picks file has reflector(s) {present}: "
+                "choose one of those",
+            )
+    rows = np.flatnonzero(sel)
+
+    s_line = np.asarray(st.line).astype(str)
+    s_label = np.asarray(st.station).astype(str)
+    lookup = {(a, b): i for i, (a, b) in enumerate(zip(s_line, s_label))}
+    p_line = np.asarray(pk.line).astype(str)[rows]
+    p_shot = np.asarray(pk.shot).astype(str)[rows]
+    p_rec = np.asarray(pk.receiver).astype(str)[rows]
+    p_refl = np.asarray(pk.reflector).astype(str)[rows]
+    src = np.fromiter((lookup.get(k, -1) for k in zip(p_line, p_shot)), dtype=np.int64, count=len(rows))
+    rec = np.fromiter((lookup.get(k, -1) for k in zip(p_line, p_rec)), dtype=np.int64, count=len(rows))
+    p_file_line = np.asarray(getattr(pk, "file_line", rows + 2))[rows]
+    for idx, field, labels in ((src, "shot", p_shot), (rec, "receiver", p_rec)):
+        bad = np.flatnonzero(idx < 0)
+        if len(bad):
+            b = bad[0]
+            raise InputFileError(
+                pk_path, int(p_file_line[b]), field,
+                f"{field} '{labels[b]}' of line '{p_line[b]}' is not a station of that line in the "
+                f"stations file ({len(bad)} pick(s) affected); add the station or correct the label",
+            )
+
+    # global station order: lines in frame order, then station rank
+    rank = station_order(st)
+    line_code = {name: i for i, name in enumerate(frames)}
+    st_line_code = np.array([line_code.get(v, len(line_code)) for v in s_line], dtype=np.int64)
+    st_key = st_line_code * (len(s_line) + 1) + rank
+    st_order = np.empty(len(s_line), dtype=np.int64)
+    st_order[np.argsort(st_key, kind="stable")] = np.arange(len(s_line))
+
+    refl_names, refl_code = np.unique(p_refl, return_inverse=True)
+    key = st_order[src] * len(refl_names) + refl_code
+    gkeys, gid = np.unique(key, return_inverse=True)
+    order = np.lexsort((st_order[rec], gid))
+    gid = gid[order]
+    src = src[order]
+    rec = rec[order]
+    rows = rows[order]
+    n_g = len(gkeys)
+    first = np.flatnonzero(np.r_[True, gid[1:] != gid[:-1]])
+
+    xyz = np.column_stack([np.asarray(st.x_m, float), np.asarray(st.y_m, float), np.asarray(st.z_m, float)])
+    src_xyz = xyz[src]
+    rec_xyz = xyz[rec]
+    src_g = src_xyz[first]
+
+    # spread principal axis per gather: source once + receivers, relative to the source
+    dx = rec_xyz[:, 0] - src_xyz[:, 0]
+    dy = rec_xyz[:, 1] - src_xyz[:, 1]
+    cnt = np.bincount(gid, minlength=n_g) + 1.0
+    mx = np.bincount(gid, dx, n_g) / cnt
+    my = np.bincount(gid, dy, n_g) / cnt
+    sxx = (np.bincount(gid, dx * dx, n_g)) / cnt - mx * mx
+    syy = (np.bincount(gid, dy * dy, n_g)) / cnt - my * my
+    sxy = (np.bincount(gid, dx * dy, n_g)) / cnt - mx * my
+    theta = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
+    lam1 = 0.5 * (sxx + syy) + np.sqrt((0.5 * (sxx - syy)) ** 2 + sxy**2)
+    u = np.column_stack([np.cos(theta), np.sin(theta)])
+    g_line = s_line[src[first]]
+    frame_u = np.array([frames[name].unit for name in g_line]).reshape(n_g, 2)
+    degenerate = ~(lam1 > 1e-10)
+    u[degenerate] = frame_u[degenerate]
+    # orient toward increasing station order (fall back to the line frame's sense)
+    r_rec = rank[rec].astype(float)
+    r_src = rank[src[first]].astype(float)
+    mean_r = (np.bincount(gid, r_rec, n_g) + r_src) / cnt
+    proj = dx * u[gid, 0] + dy * u[gid, 1]
+    trend = np.bincount(gid, (r_rec - mean_r[gid]) * proj, n_g)  # the source projects to 0
+    sense = np.where(trend != 0, np.sign(trend), np.sign(np.sum(u * frame_u, axis=1)))
+    sense = np.where(sense == 0, 1.0, sense)
+    u = u * sense[:, None] + 0.0
+    w = np.column_stack([u[:, 1], -u[:, 0]]) + 0.0
+    proj = dx * u[gid, 0] + dy * u[gid, 1]
+    pmax = np.maximum(np.maximum.reduceat(proj, first), 0.0)
+    pmin = np.minimum(np.minimum.reduceat(proj, first), 0.0)
+
+    sigma = np.asarray(pk.sigma_s, dtype=float)[rows]
+    default_sigma = getattr(getattr(survey, "settings", None), "default_sigma_ms", 0.5) * 1e-3
+    sigma = np.where(np.isfinite(sigma) & (sigma > 0), sigma, default_sigma)
+
+    return GatherSet(
+        gather=gid.astype(np.int64),
+        source_xyz=src_xyz,
+        receiver_xyz=rec_xyz,
+        time_s=np.asarray(pk.time_s, dtype=float)[rows],
+        sigma_s=sigma,
+        pick_index=rows.astype(np.int64),
+        line=g_line.astype(object),
+        shot=s_label[src[first]].astype(object),
+        reflector=refl_names[gkeys % len(refl_names)].astype(object),
+        line_unit=u,
+        cross_unit=w,
+        source_xyz_g=src_g,
+        spread_length_m=pmax - pmin,
+    )
+
+
+# ---------------------------------------------------------------------------
+# Normals and reflector points
+# ---------------------------------------------------------------------------
+
+
+def _fit_array(fits, name, g, default=np.nan):
+    value = getattr(fits, name, None)
+    if value is None:
+        return np.full(g, default, dtype=float)
+    return np.broadcast_to(np.asarray(value, dtype=float), (g,)).copy()
+
+
+def _normals_from(u, w, s, q):
+    s = np.asarray(s, float)
+    q = np.where(np.isfinite(q), q, 0.0)
+    c2 = 1.0 - s * s - q * q
+    c = np.sqrt(np.where(c2 >= 0, c2, np.nan))
+    return -s[:, None] * np.column_stack([u, np.zeros(len(s))]) - q[:, None] * np.column_stack(
+        [w, np.zeros(len(s))]
+    ) - c[:, None] * np.array([0.0, 0.0, 1.0])
+
+
+def gather_normals(gathers, fits, cross_component=None) -> np.ndarray:
+    """Downward unit normal of each gather's fitted plane, shape (g, 3).
+
+    .. math::
+
+        \\mathbf n = -s\\,\\mathbf u - q\\,\\mathbf w - \\sqrt{1-s^2-q^2}\\,\\mathbf e_z
+
+    ``s = fits.s_along``; ``q`` is ``cross_component`` if given, else
+    ``fits.cross_component`` if the fits carry one, NaN entries meaning 0
+    (cross-line dip not resolved, the plane assumed level across the line).
+    Rows with ``s^2 + q^2 > 1`` or a failed fit are NaN.
+    """
+    g = gathers.n_gathers
+    s = _fit_array(fits, "s_along", g)
+    if cross_component is None:
+        cross_component = getattr(fits, "cross_component", None)
+    q = np.zeros(g) if cross_component is None else np.broadcast_to(
+        np.asarray(cross_component, dtype=float), (g,)
+    )
+    return _normals_from(np.asarray(gathers.line_unit, float), np.asarray(gathers.cross_unit, float), s, q)
+
+
+def vertical_depth_below_source(normal_distance_m, dip_deg):
+    """Vertical distance from the source down to the plane.
+
+    .. math:: z_v = h / \\cos\\delta
+
+    (DESIGN.md s.4; the perpendicular h is the shortest distance, the vertical
+    one is longer on a dipping plane.)
+
+    >>> round(float(vertical_depth_below_source(10.0, 60.0)), 9)
+    20.0
+    """
+    return np.asarray(normal_distance_m, dtype=float) / np.cos(np.radians(dip_deg))
+
+
+@dataclass(frozen=True)
+class ReflectorPoints:
+    """Georeferenced reflector points, one row per point.
+
+    Rows of kind ``"zero_offset"`` (one per gather) are the feet of the
+    perpendicular from the source, ``P0 = S + h n``; rows of kind
+    ``"receiver"`` (one per pick) are specular reflection points by the image
+    source. ``gather`` indexes the gather arrays, ``pick_index`` the picks
+    table (-1 for zero-offset rows). ``normal`` (n, 3) is the gather's plane
+    normal, ``ground_m`` the ground elevation at (x, y), ``depth_m =
+    ground_m - elevation_m``. ``sigma_m`` is the standard error of the
+    elevation and of the depth (ground taken as exact), ``sigma_xy_m`` the
+    radial horizontal standard error, both from the fit covariance.
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    elevation_m: np.ndarray
+    depth_m: np.ndarray
+    ground_m: np.ndarray
+    sigma_m: np.ndarray
+    sigma_xy_m: np.ndarray
+    line: np.ndarray
+    shot: np.ndarray
+    reflector: np.ndarray
+    gather: np.ndarray
+    pick_index: np.ndarray
+    kind: np.ndarray
+    status: np.ndarray
+    normal: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.x_m)
+
+    @property
+    def finite(self) -> np.ndarray:
+        """Rows with a finite position and elevation."""
+        return np.isfinite(self.x_m) & np.isfinite(self.y_m) & np.isfinite(self.elevation_m)
+
+    @property
+    def xyz(self) -> np.ndarray:
+        return np.column_stack([self.x_m, self.y_m, self.elevation_m])
+
+    def select(self, mask) -> ReflectorPoints:
+        """A new ReflectorPoints with the rows where ``mask`` is true."""
+        mask = np.asarray(mask)
+        return ReflectorPoints(**{k: getattr(self, k)[mask] for k in self.__dataclass_fields__})
+
+
+def station_ground_model(stations):
+    """Ground elevation model interpolated from surveyed points.
+
+    Piecewise-linear interpolation on the Delaunay triangulation of the points
+    (scipy ``LinearNDInterpolator``), nearest point outside their convex hull.
+    When the points are (nearly) collinear, as on a single straight line, the
+    elevation is interpolated along that line (held constant beyond its ends).
+
+    Parameters
+    ----------
+    stations : core.model.Stations or array_like, shape (n, 3)
+
+    Returns
+    -------
+    callable
+        ``ground(x_m, y_m) -> z_m`` broadcasting over arrays.
+
+    >>> g = station_ground_model([[0, 0, 10], [10, 0, 20], [0, 10, 30], [10, 10, 40]])
+    >>> float(g(5.0, 5.0)), float(g(100.0, 0.0))
+    (25.0, 20.0)
+    """
+    from scipy.interpolate import LinearNDInterpolator, NearestNDInterpolator
+    from scipy.spatial import QhullError
+
+    if hasattr(stations, "xyz"):
+        pts = np.asarray(stations.xyz, dtype=float)
+    else:
+        pts = np.asarray(stations, dtype=float).reshape(-1, 3)
+    pts = pts[np.all(np.isfinite(pts), axis=1)]
+    if len(pts) == 0:
+        raise InputFileError(None, None, "z", "no station with finite x, y, z to build a ground model from")
+    # average the elevations of points at one position
+    xy, inv = np.unique(pts[:, :2], axis=0, return_inverse=True)
+    inv = np.asarray(inv).ravel()
+    z = np.bincount(inv, pts[:, 2]) / np.bincount(inv)
+    centre = xy.mean(axis=0)
+    d = xy - centre
+    if len(xy) == 1:
+        z0 = float(z[0])
+        return lambda x_m, y_m: np.full(np.broadcast(np.asarray(x_m), np.asarray(y_m)).shape, z0)
+    evals, evecs = np.linalg.eigh(d.T @ d / len(d))
+
+    def along_line():
+        axis = evecs[:, -1]
+        t = d @ axis
+        order = np.argsort(t)
+
+        def ground(x_m, y_m):
+            x, y = np.broadcast_arrays(np.asarray(x_m, float), np.asarray(y_m, float))
+            tt = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
+            return np.interp(tt, t[order], z[order])
+
+        return ground
+
+    if len(xy) < 3 or evals[0] <= 1e-10 * evals[-1]:
+        return along_line()
+    try:
+        lin = LinearNDInterpolator(d, z)
+    except QhullError:  # nearly collinear points that pass the test above
+        return along_line()
+    near = NearestNDInterpolator(d, z)
+
+    def ground(x_m, y_m):
+        x, y = np.broadcast_arrays(np.asarray(x_m, float), np.asarray(y_m, float))
+        q = np.column_stack([x.ravel() - centre[0], y.ravel() - centre[1]])
+        out = lin(q)
+        miss = ~np.isfinite(out)
+        if miss.any():
+            out[miss] = near(q[miss])
+        return out.reshape(x.shape)
+
+    return ground
+
+
+def _points_local(src, rec, u, w, h, s, q, pick_gather):
+    """Zero-offset and receiver reflection points relative to the source."""
+    n = _normals_from(u, w, s, q)
+    p0 = h[:, None] * n
+    ng = n[pick_gather]
+    rel = rec - src[pick_gather]
+    pr = forward.reflection_point(np.zeros_like(rel), rel, ng, h[pick_gather])
+    return p0, pr, n
+
+
+def reflector_points(gathers, fits, ground=None, cross_component=None) -> ReflectorPoints:
+    """Georeferenced reflector points of every gather and every pick.
+
+    For gather k with source S, normal distance h and downward normal n
+    (:func:`gather_normals`), the plane is :math:`\\mathbf n\\cdot\\mathbf P =
+    \\mathbf n\\cdot\\mathbf S + h` and
+
+    .. math::
+
+        \\mathbf P_0 = \\mathbf S + h\\,\\mathbf n, \\qquad
+        \\mathbf P_R = \\mathbf S' + \\frac{h_S}{h_S + h_R}(\\mathbf R - \\mathbf S'),\\;
+        \\mathbf S' = \\mathbf S + 2h\\,\\mathbf n
+
+    (zero-offset point = foot of the perpendicular, displaced up-dip; receiver
+    point where the image-source ray crosses the plane [Sheriff & Geldart
+    1995, ch. 4]).
+
+    Uncertainty: the points depend on the fitted (V, h, s); with the Jacobian
+    J = d(x, y, z)/d(V, h, s) (by central differences; the V column is zero
+    because the plane geometry does not involve V once h is fitted) the
+    point covariance is :math:`J C J^T` with C the fit covariance.
+    ``sigma_m`` is the elevation standard error, ``sigma_xy_m`` the radial
+    horizontal one. When the cross-line component q is *assumed* (no second
+    line direction, q = 0), the true point may lie off the line's vertical
+    plane by up to about :math:`h\\,|q|`; that lateral uncertainty from the
+    unknown cross-line dip is not in these sigmas.
+
+    Parameters
+    ----------
+    gathers : core.model.GatherSet
+    fits : object
+        Per-gather fit results with ``normal_distance_m``, ``s_along``,
+        ``covariance`` (g, 3, 3) over (V, h, s), optionally
+        ``cross_component`` and ``status``.
+    ground : callable, optional
+        ``ground(x_m, y_m) -> z`` (default: :func:`station_ground_model` of
+        the gathers' source and receiver positions).
+    cross_component : array_like, optional
+        q per gather, overriding ``fits.cross_component``.
+
+    Returns
+    -------
+    ReflectorPoints
+        Zero-offset rows first (in gather order), then receiver rows (in pick
+        order).
+    """
+    g = gathers.n_gathers
+    gid = np.asarray(gathers.gather, dtype=np.int64)
+    u = np.asarray(gathers.line_unit, float)
+    w = np.asarray(gathers.cross_unit, float)
+    src = np.asarray(gathers.source_xyz_g, float)
+    rec = np.asarray(gathers.receiver_xyz, float)
+    h = _fit_array(fits, "normal_distance_m", g)
+    s = _fit_array(fits, "s_along", g)
+    if cross_component is None:
+        cross_component = getattr(fits, "cross_component", None)
+    q = np.zeros(g) if cross_component is None else np.broadcast_to(
+        np.asarray(cross_component, dtype=float), (g,)
+    ).copy()
+    q = np.where(np.isfinite(q), q, 0.0)
+
+    p0, pr, n = _points_local(src, rec, u, w, h, s, q, gid)
+
+    cov = getattr(fits, "covariance", None)
+    cov = np.full((g, 3, 3), np.nan) if cov is None else np.asarray(cov, dtype=float).reshape(g, 3, 3)
+    # Jacobians over (h, s) by central differences; V does not move the points
+    eps_h = 1e-6 * np.maximum(np.abs(np.nan_to_num(h)), 1.0)
+    eps_s = 1e-7
+    p0_hp, pr_hp, _ = _points_local(src, rec, u, w, h + eps_h, s, q, gid)
+    p0_hm, pr_hm, _ = _points_local(src, rec, u, w, h - eps_h, s, q, gid)
+    p0_sp, pr_sp, _ = _points_local(src, rec, u, w, h, s + eps_s, q, gid)
+    p0_sm, pr_sm, _ = _points_local(src, rec, u, w, h, s - eps_s, q, gid)
+    j0_h = (p0_hp - p0_hm) / (2 * eps_h[:, None])
+    j0_s = (p0_sp - p0_sm) / (2 * eps_s)
+    jr_h = (pr_hp - pr_hm) / (2 * eps_h[gid, None])
+    jr_s = (pr_sp - pr_sm) / (2 * eps_s)
+
+    def propagate(jh, js, c):
+        # covariance of (x, y, z) from the (h, s) block of C
+        chh, css, chs = c[:, 1, 1], c[:, 2, 2], c[:, 1, 2]
+        var = jh * jh * chh[:, None] + js * js * css[:, None] + 2 * jh * js * chs[:, None]
+        return np.sqrt(np.where(var >= 0, var, np.nan))
+
+    sd0 = propagate(j0_h, j0_s, cov)
+    sdr = propagate(jr_h, jr_s, cov[gid])
+
+    xyz = np.concatenate([src + p0, src[gid] + pr])
+    sd = np.concatenate([sd0, sdr])
+    if ground is None:
+        ground = station_ground_model(np.concatenate([src, rec]))
+    ground_m = np.asarray(ground(xyz[:, 0], xyz[:, 1]), dtype=float)
+    ground_m = np.where(np.isfinite(xyz[:, 0]) & np.isfinite(xyz[:, 1]), ground_m, np.nan)
+
+    status = getattr(fits, "status", None)
+    status = np.full(g, "ok", dtype=object) if status is None else np.asarray(status).astype(object)
+    npk = len(gid)
+    all_g = np.concatenate([np.arange(g), gid])
+    return ReflectorPoints(
+        x_m=xyz[:, 0],
+        y_m=xyz[:, 1],
+        elevation_m=xyz[:, 2],
+        depth_m=ground_m - xyz[:, 2],
+        ground_m=ground_m,
+        sigma_m=sd[:, 2],
+        sigma_xy_m=np.hypot(sd[:, 0], sd[:, 1]),
+        line=np.asarray(gathers.line, dtype=object)[all_g],
+        shot=np.asarray(gathers.shot, dtype=object)[all_g],
+        reflector=np.asarray(gathers.reflector, dtype=object)[all_g],
+        gather=all_g,
+        pick_index=np.concatenate([np.full(g, -1), np.asarray(gathers.pick_index, dtype=np.int64)]),
+        kind=np.array(["zero_offset"] * g + ["receiver"] * npk, dtype=object),
+        status=status[all_g],
+        normal=np.concatenate([n, n[gid]]),
+    )
+
+
+# ---------------------------------------------------------------------------
+# Misties
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Misties:
+    """Reflector elevation differences where two lines cross.
+
+    ``mistie_m = elevation_a_m - elevation_b_m``; ``sigma_m`` combines the two
+    sides' standard errors in quadrature. Rows where one line has no
+    zero-offset coverage at the crossing have NaN values and a ``status``
+    saying which.
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    line_a: np.ndarray
+    line_b: np.ndarray
+    reflector: np.ndarray
+    chainage_a_m: np.ndarray
+    chainage_b_m: np.ndarray
+    elevation_a_m: np.ndarray
+    elevation_b_m: np.ndarray
+    mistie_m: np.ndarray
+    sigma_m: np.ndarray
+    status: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.x_m)
+
+
+def _intersection_points(geom) -> list:
+    """Point parts of a shapely intersection (shapely 1.8 and 2.x)."""
+    if geom.is_empty:
+        return []
+    kind = geom.geom_type
+    if kind == "Point":
+        return [(geom.x, geom.y)]
+    if kind in ("MultiPoint", "GeometryCollection"):
+        out = []
+        for part in geom.geoms:
+            out.extend(_intersection_points(part))
+        return out
+    return []  # overlapping (collinear) stretches have no single crossing point
+
+
+def _line_profile(frame, points, mask):
+    """Zero-offset points of one line/reflector sorted by chainage."""
+    idx = np.flatnonzero(mask)
+    if len(idx) == 0:
+        return None
+    ch, _ = frame.locate(points.x_m[idx], points.y_m[idx])
+    order = np.argsort(ch, kind="stable")
+    return ch[order], idx[order]
+
+
+def _value_at(profile, points, chain, x, y, max_gap):
+    """Elevation and sigma seen by one line at (x, y), chainage ``chain``."""
+    if profile is None:
+        return np.nan, np.nan, "no points"
+    ch, idx = profile
+    if len(ch) == 0 or chain < ch[0] or chain > ch[-1]:
+        return np.nan, np.nan, "beyond coverage"
+    hi = int(np.searchsorted(ch, chain, side="left"))
+    if ch[hi] == chain:
+        lo = hi
+    else:
+        lo = hi - 1
+    gap = ch[hi] - ch[lo]
+    if gap > max_gap:
+        return np.nan, np.nan, f"gap of {gap:.1f} m"
+
+    def carried(k):
+        # elevation of gather k's own plane at (x, y): n.(X - P) = 0
+        j = idx[k]
+        nx, ny, nz = points.normal[j]
+        return points.elevation_m[j] - (nx * (x - points.x_m[j]) + ny * (y - points.y_m[j])) / nz
+
+    if lo == hi:
+        return carried(hi), points.sigma_m[idx[hi]], "ok"
+    t = (chain - ch[lo]) / gap
+    z = (1 - t) * carried(lo) + t * carried(hi)
+    sig = (1 - t) * points.sigma_m[idx[lo]] + t * points.sigma_m[idx[hi]]
+    return z, sig, "ok"
+
+
+def line_misties(frames, points, max_gap_m=None) -> Misties:
+    """Misties of the reflector elevation at every crossing of two lines.
+
+    Crossings are the point intersections of the line polylines (shapely).
+    The elevation seen by a line at a crossing X is interpolated linearly in
+    chainage between the two zero-offset points of that line (and reflector)
+    that bracket X along the line, each first carried to X along its own
+    gather's fitted plane, :math:`z_k(X) = z_k - (n_x \\Delta x + n_y \\Delta
+    y)/n_z` (so on a planar reflector with the true normals the mistie is
+    zero even though the points lie off the line). The sigma of each side is
+    interpolated the same way (neighbouring gathers treated as fully
+    correlated, the cautious choice); the two sides combine in quadrature.
+
+    Parameters
+    ----------
+    frames : dict
+        ``line -> LineFrame`` (:func:`line_frames`).
+    points : ReflectorPoints
+        Only finite ``"zero_offset"`` rows are used.
+    max_gap_m : float, optional
+        Largest chainage gap between the bracketing points; default three
+        times the median spacing of that line's points. No value is given
+        beyond a line's first or last point, or across a larger gap.
+
+    Returns
+    -------
+    Misties
+        One row per (crossing, reflector seen on either line).
+    """
+    zo = (np.asarray(points.kind) == "zero_offset") & points.finite
+    p_line = np.asarray(points.line).astype(str)
+    p_refl = np.asarray(points.reflector).astype(str)
+    reflectors = _unique_in_order(p_refl[zo]) if zo.any() else []
+    profiles = {}
+    gaps = {}
+    for name, frame in frames.items():
+        for refl in reflectors:
+            prof = _line_profile(frame, points, zo & (p_line == name) & (p_refl == refl))
+            profiles[name, refl] = prof
+            if max_gap_m is not None:
+                gaps[name, refl] = float(max_gap_m)
+            elif prof is not None and len(prof[0]) > 1:
+                step = np.diff(prof[0])
+                step = step[step > 0]
+                gaps[name, refl] = 3.0 * float(np.median(step)) if len(step) else 0.0
+            else:
+                gaps[name, refl] = 0.0
+    rows = []
+    for a, b in combinations(list(frames), 2):
+        fa, fb = frames[a], frames[b]
+        crossing = fa.polyline.intersection(fb.polyline)
+        for x, y in _intersection_points(crossing):
+            ca = float(fa.locate(x, y)[0])
+            cb = float(fb.locate(x, y)[0])
+            for refl in reflectors:
+                prof_a, prof_b = profiles[a, refl], profiles[b, refl]
+                if prof_a is None and prof_b is None:
+                    continue
+                za, sa, why_a = _value_at(prof_a, points, ca, x, y, gaps[a, refl])
+                zb, sb, why_b = _value_at(prof_b, points, cb, x, y, gaps[b, refl])
+                reasons = [f"line {n}: {why}" for n, why in ((a, why_a), (b, why_b)) if why != "ok"]
+                rows.append((x, y, a, b, refl, ca, cb, za, zb, za - zb, np.hypot(sa, sb),
+                             "ok" if not reasons else "no value: " + "; ".join(reasons)))
+    cols = list(zip(*rows)) if rows else [[] for _ in range(12)]
+    f = lambda i: np.asarray(cols[i], dtype=float)  # noqa: E731
+    o = lambda i: np.asarray(cols[i], dtype=object)  # noqa: E731
+    return Misties(
+        x_m=f(0), y_m=f(1), line_a=o(2), line_b=o(3), reflector=o(4),
+        chainage_a_m=f(5), chainage_b_m=f(6), elevation_a_m=f(7), elevation_b_m=f(8),
+        mistie_m=f(9), sigma_m=f(10), status=o(11),
+    )
