@@ -274,7 +274,7 @@ def _transformer(src: pyproj.CRS, dst: pyproj.CRS) -> pyproj.Transformer:
     return pyproj.Transformer.from_crs(src, dst, always_xy=True)
 
 
-def transform_xy(x, y, src, dst):
+def transform_xy(x, y, src, dst, *, check_finite=True):
     """Transform coordinates between two CRSs, x = easting/longitude first.
 
     The transformer for each (src, dst) pair is built once and cached; it uses
@@ -285,6 +285,9 @@ def transform_xy(x, y, src, dst):
     x, y : array_like
         Coordinates in ``src`` (longitude, latitude in degrees when geographic).
     src, dst : str, int or pyproj.CRS
+    check_finite : bool, default True
+        Raise when a point cannot be transformed; with False such points come
+        back as inf (pyproj's convention) for the caller to locate.
 
     Returns
     -------
@@ -322,7 +325,7 @@ def transform_xy(x, y, src, dst):
     xo = np.asarray(xo, dtype=float).reshape(x.shape)
     yo = np.asarray(yo, dtype=float).reshape(y.shape)
     bad = ~(np.isfinite(xo) & np.isfinite(yo))
-    if bad.any():
+    if check_finite and bad.any():
         i = int(np.flatnonzero(bad.ravel())[0])
         raise GeoreferenceError(
             f"{int(bad.sum())} point(s) cannot be transformed from {crs_label(src)} to "
@@ -417,4 +420,3 @@ def degrees_outside(lon, lat, bounds) -> np.ndarray:
         inside = (lon >= west) | (lon <= east)
         dlon = np.where(inside, 0.0, np.minimum(west - lon, lon - east))
     return np.hypot(dlon, dlat)
-
