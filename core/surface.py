@@ -1,0 +1,1447 @@
+"""Reflector surface from scattered elevation points: variogram, kriging, spline.
+
+The surface step turns georeferenced reflector points (elevation with a standard
+error, and boreholes as near-exact data) into a regular grid of reflector
+elevation with its kriging standard deviation:
+
+1. :func:`experimental_variogram` (omnidirectional or directional),
+2. :func:`fit_variogram` of a spherical, exponential or gaussian model by the
+   weighted least squares of [Cressie 1985],
+3. :class:`OrdinaryKriging` with the measurement-error variance of each datum on
+   the diagonal of the kriging system, in a local neighbourhood of the ``k``
+   nearest data (KD-tree) so that it scales to millions of points and cells,
+4. :meth:`OrdinaryKriging.cross_validate`, leave-one-out residuals and their
+   standardised statistics,
+5. :class:`ThinPlateSpline` (smoothing) as an alternative without a variance,
+6. :func:`interpolate_surface`, the call the pipeline uses.
+
+Grid convention
+---------------
+A :class:`GridSpec` is *north-up*: row 0 is the northernmost row and column 0
+the westernmost column, as GeoTIFF and most GIS rasters expect. ``x0, y0`` is the
+centre of the first cell (row 0, column 0, the north-west corner cell); cell
+centres are ``x = x0 + j * cell_size_m`` and ``y = y0 - i * cell_size_m``.
+
+Kriging with measurement error
+------------------------------
+The data are :math:`Z_i = Y(\\mathbf s_i) + \\varepsilon_i` with a second-order
+stationary signal :math:`Y` of semivariogram :math:`\\gamma` and independent
+measurement errors of known variance :math:`e_i`. The nugget of :math:`\\gamma`
+is micro-scale variation of the signal (honoured at data without error), the
+:math:`e_i` are measurement error, the split of [Cressie 1993, s. 3.2.1]
+(:math:`c_0 = c_{MS} + c_{ME}`). Ordinary kriging of the signal at
+:math:`\\mathbf s_0` with weights :math:`\\lambda` and Lagrange multiplier
+:math:`\\mu` solves
+
+.. math::
+
+    \\sum_j \\lambda_j \\left[\\gamma(\\mathbf s_i - \\mathbf s_j)
+        - e_i \\delta_{ij}\\right] + \\mu = \\gamma(\\mathbf s_i - \\mathbf s_0),
+    \\qquad \\sum_j \\lambda_j = 1,
+
+with :math:`\\gamma(0) = 0`, and the kriging variance (mean squared error of
+:math:`\\hat Y(\\mathbf s_0)` for :math:`Y(\\mathbf s_0)`) is
+
+.. math::
+
+    \\sigma_K^2(\\mathbf s_0) = \\sum_i \\lambda_i\\, \\gamma(\\mathbf s_i - \\mathbf s_0) + \\mu .
+
+This is the covariance form :math:`(C + \\mathrm{diag}(e))\\lambda + m\\mathbf 1 = \\mathbf c_0`
+written with :math:`C(h) = c_0 + c - \\gamma(h)`. With all :math:`e_i = 0` it is
+ordinary kriging ([Journel & Huijbregts 1978], [Cressie 1993, eq. 3.2.12]) and
+honours every datum exactly; a datum with :math:`e_i > 0` is smoothed, and the
+variance at its location is between 0 and :math:`e_i`.
+
+References
+----------
+[Cressie 1985] Cressie, N. (1985). Fitting variogram models by weighted least
+    squares. Mathematical Geology 17(5), 563-586.
+[Cressie 1993] Cressie, N. (1993). Statistics for Spatial Data, revised ed.
+    Wiley. s. 2.4 (variogram estimation), s. 3.2 (ordinary kriging, measurement
+    error in s. 3.2.1).
+[Journel & Huijbregts 1978] Journel, A. G. & Huijbregts, C. J. (1978). Mining
+    Geostatistics. Academic Press. ch. II (variogram models), ch. V (kriging).
+[Matheron 1962] Matheron, G. (1962). Traite de geostatistique appliquee, tome I.
+    Technip. (the classical semivariogram estimator).
+[Dubrule 1983] Dubrule, O. (1983). Cross validation of kriging in a unique
+    neighborhood. Mathematical Geology 15(6), 687-699.
+[Duchon 1977] Duchon, J. (1977). Splines minimizing rotation-invariant
+    semi-norms in Sobolev spaces. Lecture Notes in Mathematics 571, 85-100.
+[Wahba 1990] Wahba, G. (1990). Spline Models for Observational Data. SIAM.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import warnings
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.linalg import lu_factor, lu_solve
+from scipy.optimize import least_squares
+from scipy.spatial import cKDTree
+
+from .errors import InversionError, ReflectorMapperWarning
+from .progress import NullProgress, check_cancel
+
+__all__ = [
+    "VARIOGRAM_MODELS",
+    "CrossValidation",
+    "ExperimentalVariogram",
+    "GridSpec",
+    "OrdinaryKriging",
+    "SurfaceGrid",
+    "ThinPlateSpline",
+    "VariogramModel",
+    "cross_validate",
+    "experimental_variogram",
+    "fit_variogram",
+    "interpolate_surface",
+]
+
+#: Lags (m) at or below this are treated as zero (a target on a datum).
+ZERO_LAG_M = 1e-9
+
+#: Largest data count for a global (unique-neighbourhood) kriging system.
+GLOBAL_MAX_DATA = 6000
+
+#: Memory budget (bytes) of one chunk of batched kriging systems.
+CHUNK_BYTES = 48 * 2**20
+
+
+# --------------------------------------------------------------------------- grid
+
+
+def _nice_step(value: float) -> float:
+    """Largest 1-2-5 step (1, 2, 5 x 10^k) not above ``value``.
+
+    >>> [_nice_step(v) for v in (0.7, 1.0, 3.3, 7.9, 12.0, 260.0)]
+    [0.5, 1.0, 2.0, 5.0, 10.0, 200.0]
+    """
+    if not (value > 0 and math.isfinite(value)):
+        raise ValueError(f"cell size must be a positive finite number, got {value!r}")
+    e = math.floor(math.log10(value))
+    base = 10.0**e
+    for m in (5.0, 2.0, 1.0):
+        if m * base <= value * (1 + 1e-12):
+            return float(m * base)
+    return float(base / 2)  # pragma: no cover - log10 rounding guard
+
+
+def _next_nice_step(value: float) -> float:
+    """Next 1-2-5 step above ``value`` (which is itself a step)."""
+    e = math.floor(math.log10(value) + 1e-12)
+    m = round(value / 10.0**e)
+    return float({1: 2, 2: 5, 5: 10}.get(m, 10) * 10.0**e)
+
+
+@dataclass(frozen=True)
+class GridSpec:
+    """A regular north-up grid of square cells.
+
+    Row 0 is the northernmost row, column 0 the westernmost column (GeoTIFF
+    order). ``x0, y0`` is the centre of the first cell (row 0, column 0).
+
+    Parameters
+    ----------
+    x0, y0 : float
+        Easting and northing (m) of the centre of the north-west cell.
+    cell_size_m : float
+        Cell side (m), > 0.
+    nx, ny : int
+        Number of columns (west to east) and rows (north to south), >= 1.
+
+    >>> g = GridSpec(x0=0.5, y0=9.5, cell_size_m=1.0, nx=4, ny=10)
+    >>> g.shape, g.x_centres[:2].tolist(), g.y_centres[:2].tolist()
+    ((10, 4), [0.5, 1.5], [9.5, 8.5])
+    >>> g.bounds  # west, east, south, north of the cell edges
+    (0.0, 4.0, 0.0, 10.0)
+    """
+
+    x0: float
+    y0: float
+    cell_size_m: float
+    nx: int
+    ny: int
+
+    def __post_init__(self):
+        c = float(self.cell_size_m)
+        if not (c > 0 and math.isfinite(c)):
+            raise ValueError(f"GridSpec cell_size_m must be positive and finite, got {self.cell_size_m!r}")
+        for name in ("nx", "ny"):
+            v = getattr(self, name)
+            if int(v) != v or int(v) < 1:
+                raise ValueError(f"GridSpec {name} must be a positive integer, got {v!r}")
+            object.__setattr__(self, name, int(v))
+        for name in ("x0", "y0"):
+            if not math.isfinite(float(getattr(self, name))):
+                raise ValueError(f"GridSpec {name} must be finite, got {getattr(self, name)!r}")
+            object.__setattr__(self, name, float(getattr(self, name)))
+        object.__setattr__(self, "cell_size_m", c)
+
+    @property
+    def shape(self) -> tuple:
+        """(ny, nx), the shape of grid arrays (rows north to south)."""
+        return (self.ny, self.nx)
+
+    @property
+    def size(self) -> int:
+        """Number of cells."""
+        return self.nx * self.ny
+
+    @property
+    def x_centres(self) -> np.ndarray:
+        """Cell-centre eastings (m) of the columns, west to east, shape (nx,)."""
+        return self.x0 + self.cell_size_m * np.arange(self.nx)
+
+    @property
+    def y_centres(self) -> np.ndarray:
+        """Cell-centre northings (m) of the rows, north to south, shape (ny,)."""
+        return self.y0 - self.cell_size_m * np.arange(self.ny)
+
+    @property
+    def bounds(self) -> tuple:
+        """(west, east, south, north) of the outer cell edges (m)."""
+        h = self.cell_size_m / 2
+        return (
+            self.x0 - h,
+            self.x0 + (self.nx - 1) * self.cell_size_m + h,
+            self.y0 - (self.ny - 1) * self.cell_size_m - h,
+            self.y0 + h,
+        )
+
+    @property
+    def geotransform(self) -> tuple:
+        """GDAL-style affine (west, cell, 0, north, 0, -cell) of the north-up grid."""
+        w, _, _, n = self.bounds
+        return (w, self.cell_size_m, 0.0, n, 0.0, -self.cell_size_m)
+
+    def coords(self) -> tuple:
+        """Cell-centre coordinates as two (ny, nx) arrays (easting, northing)."""
+        return np.meshgrid(self.x_centres, self.y_centres)
+
+    @classmethod
+    def from_data(cls, x, y, cell_size_m=None, pad_m=None, max_cells=16_000_000):
+        """A grid covering the data bounds plus a margin, with a round cell size.
+
+        The default cell size is half the median nearest-neighbour distance of the
+        data, rounded *down* to a 1-2-5 step (so the grid resolves the data
+        spacing). The default margin is 5 % of the larger side of the data
+        bounds. Cell edges are snapped to multiples of the cell size.
+
+        Parameters
+        ----------
+        x, y : array_like
+            Data eastings and northings (m).
+        cell_size_m : float, optional
+            Cell size; default from the data spacing as above.
+        pad_m : float, optional
+            Margin added on every side of the data bounds (m).
+        max_cells : int
+            If the default cell size gives more cells, the next larger 1-2-5
+            step is taken (with a warning). Ignored when ``cell_size_m`` is given.
+
+        >>> g = GridSpec.from_data([0, 10, 0, 10], [0, 0, 10, 10], pad_m=0)
+        >>> g.cell_size_m, g.shape, g.bounds
+        (5.0, (2, 2), (0.0, 10.0, 0.0, 10.0))
+        """
+        x = np.asarray(x, dtype=float).ravel()
+        y = np.asarray(y, dtype=float).ravel()
+        if x.shape != y.shape or x.size == 0:
+            raise ValueError(f"x and y must be non-empty and of equal length, got {x.shape} and {y.shape}")
+        if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+            raise ValueError("x and y contain NaN or infinite values; drop those points first")
+        xmin, xmax, ymin, ymax = x.min(), x.max(), y.min(), y.max()
+        auto = cell_size_m is None
+        if auto:
+            xy = np.column_stack([x, y])
+            tree = cKDTree(xy)
+            sample = xy
+            if len(xy) > 100_000:
+                sample = xy[np.random.default_rng(0).choice(len(xy), 100_000, replace=False)]
+            if len(xy) < 2:
+                nn = 0.0
+            else:
+                d, _ = tree.query(sample, k=2, workers=-1)
+                nn = float(np.median(d[:, 1]))
+            if not nn > 0:
+                raise ValueError(
+                    "cannot choose a cell size from the data (fewer than two distinct points, or most "
+                    "points duplicated); give cell_size_m explicitly"
+                )
+            cell = _nice_step(nn / 2)
+        else:
+            cell = float(cell_size_m)
+            if not (cell > 0 and math.isfinite(cell)):
+                raise ValueError(f"cell_size_m must be positive and finite, got {cell_size_m!r}")
+        if pad_m is None:
+            pad_m = 0.05 * max(xmax - xmin, ymax - ymin)
+        pad_m = float(pad_m)
+        if not (pad_m >= 0 and math.isfinite(pad_m)):
+            raise ValueError(f"pad_m must be >= 0, got {pad_m!r}")
+        while True:
+            west = math.floor((xmin - pad_m) / cell) * cell
+            east = math.ceil((xmax + pad_m) / cell) * cell
+            south = math.floor((ymin - pad_m) / cell) * cell
+            north = math.ceil((ymax + pad_m) / cell) * cell
+            nx = max(1, round((east - west) / cell))
+            ny = max(1, round((north - south) / cell))
+            if not auto or nx * ny <= max_cells:
+                break
+            new = _next_nice_step(cell)
+            warnings.warn(
+                f"a {cell:g} m cell would need {nx * ny} cells (> {max_cells}); using {new:g} m cells. "
+                "Give cell_size_m to choose yourself.",
+                ReflectorMapperWarning,
+                stacklevel=2,
+            )
+            cell = new
+        return cls(x0=west + cell / 2, y0=north - cell / 2, cell_size_m=cell, nx=nx, ny=ny)
+
+
+@dataclass(frozen=True)
+class SurfaceGrid:
+    """An interpolated surface on a :class:`GridSpec`.
+
+    Attributes
+    ----------
+    spec : GridSpec
+    z : ndarray (ny, nx)
+        Estimated elevation (m); NaN where masked. Row 0 is the north row.
+    std : ndarray (ny, nx)
+        Standard deviation of the estimate (m); NaN where masked, and NaN
+        everywhere for a method without a variance (the spline).
+    mask : ndarray of bool (ny, nx)
+        True where the cell is *not* estimated (farther than ``max_distance_m``
+        from every datum).
+    method : str
+        "kriging" or "spline".
+    n_data : int
+        Number of data used.
+    """
+
+    spec: GridSpec
+    z: np.ndarray
+    std: np.ndarray
+    mask: np.ndarray
+    method: str
+    n_data: int
+
+
+# --------------------------------------------------------------------------- input checks
+
+
+def _as_xyz(x, y, z, error_variance=None, *, min_points=3):
+    x = np.asarray(x, dtype=float).ravel()
+    y = np.asarray(y, dtype=float).ravel()
+    z = np.asarray(z, dtype=float).ravel()
+    if not (x.shape == y.shape == z.shape):
+        raise ValueError(f"x, y and z must have the same length, got {x.shape}, {y.shape} and {z.shape}")
+    if x.size < min_points:
+        raise InversionError(
+            f"a surface needs at least {min_points} data points, got {x.size}; add points or boreholes"
+        )
+    bad = ~(np.isfinite(x) & np.isfinite(y) & np.isfinite(z))
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise ValueError(
+            f"{int(bad.sum())} data point(s) have NaN or infinite x, y or z (first at index {i}: "
+            f"x={x[i]!r}, y={y[i]!r}, z={z[i]!r}); drop them before interpolating"
+        )
+    if error_variance is None:
+        e = np.zeros_like(z)
+    else:
+        e = np.broadcast_to(np.asarray(error_variance, dtype=float), z.shape).astype(float).ravel()
+        badv = ~np.isfinite(e) | (e < 0)
+        if badv.any():
+            i = int(np.flatnonzero(badv)[0])
+            raise ValueError(
+                f"error_variance must be finite and >= 0 (m^2), got {e[i]!r} at index {i}; "
+                "give sigma_m**2 per datum, 0 for an exact datum"
+            )
+    return x, y, z, e
+
+
+def _as_targets(x, y):
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    if x.shape != y.shape:
+        raise ValueError(f"target x and y must have the same shape, got {x.shape} and {y.shape}")
+    return x, y
+
+
+# --------------------------------------------------------------------------- variogram
+
+
+@dataclass(frozen=True)
+class ExperimentalVariogram:
+    """Binned experimental semivariogram.
+
+    Iterating yields ``(lag_m, semivariance, n_pairs)`` so that
+    ``lags, gamma, counts = experimental_variogram(...)`` works.
+
+    Attributes
+    ----------
+    lag_m : ndarray (n_lags,)
+        Mean pair distance in each bin (m); the bin centre for empty bins.
+    semivariance : ndarray (n_lags,)
+        :math:`\\hat\\gamma(h)` (m^2); NaN for empty bins.
+    n_pairs : ndarray of int (n_lags,)
+        Number of pairs in each bin (of the subsample when one was used).
+    bin_edges_m : ndarray (n_lags + 1,)
+    azimuth_deg : float or None
+        Direction of a directional variogram (None = omnidirectional).
+    tolerance_deg : float
+        Half-width of the direction window.
+    n_points_used : int
+        Number of data used (less than the input when subsampled).
+    """
+
+    lag_m: np.ndarray
+    semivariance: np.ndarray
+    n_pairs: np.ndarray
+    bin_edges_m: np.ndarray
+    azimuth_deg: float | None
+    tolerance_deg: float
+    n_points_used: int
+
+    def __iter__(self):
+        return iter((self.lag_m, self.semivariance, self.n_pairs))
+
+
+def experimental_variogram(
+    x,
+    y,
+    z,
+    n_lags=15,
+    max_lag_m=None,
+    azimuth_deg=None,
+    tolerance_deg=22.5,
+    max_points=5000,
+    seed=0,
+):
+    """Experimental semivariogram, omnidirectional or directional.
+
+    The classical estimator [Matheron 1962], [Cressie 1993, eq. 2.4.2]:
+
+    .. math::
+
+        \\hat\\gamma(h_k) = \\frac{1}{2 N(h_k)} \\sum_{(i,j) \\in N(h_k)} (z_i - z_j)^2
+
+    over the pairs whose separation falls in bin *k* (and, for a directional
+    variogram, whose direction is within ``tolerance_deg`` of ``azimuth_deg``
+    or of its opposite).
+
+    Scaling: with more than ``max_points`` data, a random subset of
+    ``max_points`` points (seeded, reproducible) is used; 5000 points still give
+    12.5 million pairs. Pairs are formed in row blocks, so the memory stays
+    about ``256 * max_points * 8`` bytes and never holds an N x N matrix.
+
+    Parameters
+    ----------
+    x, y, z : array_like
+        Coordinates (m) and values (m).
+    n_lags : int
+        Number of equal-width bins on [0, max_lag_m].
+    max_lag_m : float, optional
+        Largest separation; default half the diagonal of the data bounding box
+        (common practice: beyond about half the field size too few pairs remain,
+        [Journel & Huijbregts 1978, ch. III]).
+    azimuth_deg : float, optional
+        Direction (degrees clockwise from north) of a directional variogram.
+    tolerance_deg : float
+        Half-width of the direction window (degrees), (0, 90].
+    max_points, seed : int
+        Subsampling threshold and random seed.
+
+    Returns
+    -------
+    ExperimentalVariogram
+
+    >>> v = experimental_variogram([0, 1, 2, 3], [0, 0, 0, 0], [0, 1, 0, 1], n_lags=3, max_lag_m=3.5)
+    >>> v.n_pairs.tolist(), v.semivariance.tolist()
+    ([3, 2, 1], [0.5, 0.0, 0.5])
+    """
+    x, y, z, _ = _as_xyz(x, y, z, min_points=2)
+    n_lags = int(n_lags)
+    if n_lags < 1:
+        raise ValueError(f"n_lags must be >= 1, got {n_lags}")
+    if not 0 < float(tolerance_deg) <= 90:
+        raise ValueError(f"tolerance_deg must be in (0, 90], got {tolerance_deg!r}")
+    if x.size > max_points:
+        sel = np.sort(np.random.default_rng(seed).choice(x.size, int(max_points), replace=False))
+        x, y, z = x[sel], y[sel], z[sel]
+    n = x.size
+    if max_lag_m is None:
+        max_lag_m = 0.5 * math.hypot(x.max() - x.min(), y.max() - y.min())
+    max_lag_m = float(max_lag_m)
+    if not (max_lag_m > 0 and math.isfinite(max_lag_m)):
+        raise ValueError(
+            f"max_lag_m must be positive, got {max_lag_m!r} (all data at one location?); give max_lag_m"
+        )
+    edges = np.linspace(0.0, max_lag_m, n_lags + 1)
+    width = max_lag_m / n_lags
+    sum_sq = np.zeros(n_lags)
+    sum_h = np.zeros(n_lags)
+    count = np.zeros(n_lags, dtype=np.int64)
+    directional = azimuth_deg is not None
+    if directional:
+        az0 = float(azimuth_deg) % 180.0
+        tol = float(tolerance_deg)
+    block = max(1, min(n, 2_000_000 // max(n, 1)))
+    for start in range(0, n - 1, block):
+        stop = min(n - 1, start + block)
+        i = np.arange(start, stop)
+        # pairs (i, j) with j > i: upper triangle of the block rows
+        dx = x[None, :] - x[i, None]
+        dy = y[None, :] - y[i, None]
+        keep = np.arange(n)[None, :] > i[:, None]
+        h = np.hypot(dx, dy)
+        keep &= h <= max_lag_m
+        if directional:
+            az = np.degrees(np.arctan2(dx, dy)) % 180.0
+            diff = np.abs(az - az0)
+            diff = np.minimum(diff, 180.0 - diff)
+            keep &= diff <= tol
+        ii, jj = np.nonzero(keep)
+        hk = h[ii, jj]
+        dz2 = (z[i[ii]] - z[jj]) ** 2
+        k = np.minimum((hk / width).astype(np.int64), n_lags - 1)
+        sum_sq += np.bincount(k, weights=dz2, minlength=n_lags)
+        sum_h += np.bincount(k, weights=hk, minlength=n_lags)
+        count += np.bincount(k, minlength=n_lags)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        gamma = np.where(count > 0, sum_sq / (2.0 * np.maximum(count, 1)), np.nan)
+        lag = np.where(count > 0, sum_h / np.maximum(count, 1), 0.5 * (edges[:-1] + edges[1:]))
+    return ExperimentalVariogram(
+        lag_m=lag,
+        semivariance=gamma,
+        n_pairs=count,
+        bin_edges_m=edges,
+        azimuth_deg=None if azimuth_deg is None else float(azimuth_deg) % 360.0,
+        tolerance_deg=float(tolerance_deg),
+        n_points_used=int(n),
+    )
+
+
+def _unit_spherical(r):
+    r = np.minimum(r, 1.0)
+    return 1.5 * r - 0.5 * r**3
+
+
+def _unit_exponential(r):
+    return -np.expm1(-3.0 * r)
+
+
+def _unit_gaussian(r):
+    return -np.expm1(-3.0 * r * r)
+
+
+#: Correlation structures :math:`g(h/a)` of the models, with ``a`` the (practical) range.
+VARIOGRAM_MODELS = {
+    "spherical": _unit_spherical,
+    "exponential": _unit_exponential,
+    "gaussian": _unit_gaussian,
+}
+
+
+def _check_model_name(model):
+    if model not in VARIOGRAM_MODELS:
+        raise ValueError(
+            f"unknown variogram model {model!r}; expected one of {sorted(VARIOGRAM_MODELS)}"
+        )
+
+
+@dataclass(frozen=True)
+class VariogramModel:
+    """A bounded semivariogram model ([Journel & Huijbregts 1978, ch. II]).
+
+    .. math::
+
+        \\gamma(h) = c_0 + c\\, g(h / a) \\quad (h > 0), \\qquad \\gamma(0) = 0,
+
+    with nugget :math:`c_0`, *partial* sill :math:`c` (total sill
+    :math:`c_0 + c`) and range :math:`a`:
+
+    * spherical: :math:`g(r) = 1.5 r - 0.5 r^3` for :math:`r < 1`, 1 beyond
+      (reaches the sill at :math:`h = a`);
+    * exponential: :math:`g(r) = 1 - e^{-3r}`;
+    * gaussian: :math:`g(r) = 1 - e^{-3r^2}`.
+
+    For the exponential and gaussian models ``range_m`` is the *practical*
+    range, where 95 % of the sill is reached (:math:`1 - e^{-3}`), a common
+    convention (e.g. [Journel & Huijbregts 1978]). PyKrige uses the same
+    practical range for the exponential model, and ``4/7 a`` instead of
+    :math:`a/\\sqrt 3` as the gaussian length scale.
+
+    Attributes
+    ----------
+    model : str
+        "spherical", "exponential" or "gaussian".
+    nugget : float
+        :math:`c_0` (m^2).
+    sill : float
+        Partial sill :math:`c` (m^2), the sill above the nugget.
+    range_m : float
+        :math:`a` (m).
+
+    >>> v = VariogramModel("spherical", nugget=1.0, sill=4.0, range_m=100.0)
+    >>> v([0.0, 50.0, 100.0, 200.0]).tolist()
+    [0.0, 3.75, 5.0, 5.0]
+    >>> v.total_sill
+    5.0
+    """
+
+    model: str
+    nugget: float
+    sill: float
+    range_m: float
+
+    def __post_init__(self):
+        _check_model_name(self.model)
+        for name in ("nugget", "sill", "range_m"):
+            v = float(getattr(self, name))
+            if not (math.isfinite(v) and v >= 0):
+                raise ValueError(
+                    f"VariogramModel {name} must be finite and >= 0, got {getattr(self, name)!r}"
+                )
+            object.__setattr__(self, name, v)
+        if not self.range_m > 0:
+            raise ValueError(f"VariogramModel range_m must be > 0, got {self.range_m!r}")
+        if not self.nugget + self.sill > 0:
+            raise ValueError("VariogramModel needs nugget + sill > 0 (a flat zero variogram)")
+
+    @property
+    def total_sill(self) -> float:
+        """Nugget + partial sill (m^2), the variance of the signal."""
+        return self.nugget + self.sill
+
+    def __call__(self, h):
+        """Semivariance :math:`\\gamma(h)` (m^2) at lag ``h`` (m); 0 at h <= ZERO_LAG_M."""
+        h = np.asarray(h, dtype=float)
+        g = self.nugget + self.sill * VARIOGRAM_MODELS[self.model](h / self.range_m)
+        return np.where(h > ZERO_LAG_M, g, 0.0)
+
+    def _unit(self, h):
+        """:math:`\\gamma(h)` divided by the total sill (for well-scaled systems)."""
+        s = self.total_sill
+        g = (self.nugget / s) + (self.sill / s) * VARIOGRAM_MODELS[self.model](h / self.range_m)
+        g[h <= ZERO_LAG_M] = 0.0
+        return g
+
+    def covariance(self, h):
+        """Covariance :math:`C(h) = c_0 + c - \\gamma(h)` (m^2)."""
+        return self.total_sill - self(h)
+
+
+def fit_variogram(lags, gamma, counts, model="spherical"):
+    """Fit a variogram model by weighted least squares [Cressie 1985].
+
+    Minimises Cressie's criterion
+
+    .. math::
+
+        \\sum_k N(h_k) \\left[\\frac{\\hat\\gamma(h_k)}{\\gamma(h_k;\\theta)} - 1\\right]^2
+
+    i.e. weights :math:`N(h_k) / \\gamma(h_k;\\theta)^2` on the squared
+    residuals, with :func:`scipy.optimize.least_squares` inside bounds
+    :math:`0 \\le c_0 \\le \\max\\hat\\gamma`, :math:`0 < c \\le 2 \\max\\hat\\gamma`,
+    :math:`h_{max}/1000 \\le a \\le 3 h_{max}`, from several starting points
+    (the best is kept). Empty bins (``counts == 0``) are ignored.
+
+    Parameters
+    ----------
+    lags, gamma, counts : array_like
+        As returned by :func:`experimental_variogram`.
+    model : str
+        "spherical", "exponential" or "gaussian" (see :class:`VariogramModel`).
+
+    Returns
+    -------
+    VariogramModel
+
+    >>> truth = VariogramModel("exponential", nugget=0.5, sill=2.0, range_m=300.0)
+    >>> h = np.linspace(20, 600, 15)
+    >>> fit = fit_variogram(h, truth(h), np.full(15, 100), "exponential")
+    >>> round(fit.nugget, 6), round(fit.sill, 6), round(fit.range_m, 3)
+    (0.5, 2.0, 300.0)
+    """
+    _check_model_name(model)
+    lags = np.asarray(lags, dtype=float).ravel()
+    gamma = np.asarray(gamma, dtype=float).ravel()
+    counts = np.asarray(counts, dtype=float).ravel()
+    if not (lags.shape == gamma.shape == counts.shape):
+        raise ValueError(
+            f"lags, gamma and counts must have equal lengths, got {lags.shape}, {gamma.shape}, {counts.shape}"
+        )
+    ok = (counts > 0) & np.isfinite(gamma) & np.isfinite(lags) & (lags > 0)
+    if ok.sum() < 3:
+        raise InversionError(
+            f"a variogram fit needs at least 3 non-empty lag bins, got {int(ok.sum())}; "
+            "use fewer lags, a larger max_lag_m, or give the variogram model explicitly"
+        )
+    h, g, w = lags[ok], gamma[ok], counts[ok]
+    gmax = float(g.max())
+    if not gmax > 0:
+        raise InversionError(
+            "the experimental variogram is zero at every lag (all values equal); a constant surface "
+            "needs no kriging - give a variogram model explicitly"
+        )
+    hmax = float(h.max())
+    unit = VARIOGRAM_MODELS[model]
+    sw = np.sqrt(w)
+    tiny = 1e-12 * gmax
+
+    def resid(p):
+        c0, c, a = p
+        gm = c0 + c * unit(h / a)
+        return sw * (g / np.maximum(gm, tiny) - 1.0)
+
+    lower = [0.0, 1e-9 * gmax, hmax / 1000.0]
+    upper = [gmax, 2.0 * gmax, 3.0 * hmax]
+    tail = float(np.mean(g[-max(1, len(g) // 4):]))
+    best = None
+    for a0 in (0.25 * hmax, 0.5 * hmax, 1.0 * hmax):
+        for c00 in (0.0, 0.5 * float(g[0])):
+            c0s = min(max(c00, 0.0), gmax)
+            cs = min(max(tail - c0s, 0.05 * gmax), 2.0 * gmax)
+            p0 = np.clip([c0s, cs, a0], lower, upper)
+            try:
+                r = least_squares(resid, p0, bounds=(lower, upper), x_scale="jac", method="trf")
+            except ValueError:  # pragma: no cover - p0 clipped inside the bounds
+                continue
+            if best is None or r.cost < best.cost:
+                best = r
+    c0, c, a = best.x
+    return VariogramModel(model=model, nugget=float(c0), sill=float(c), range_m=float(a))
+
+
+# --------------------------------------------------------------------------- kriging
+
+
+@dataclass(frozen=True)
+class CrossValidation:
+    """Leave-one-out cross-validation of an interpolator.
+
+    Attributes
+    ----------
+    estimate : ndarray (n,)
+        Estimate at each datum from all the *other* data.
+    residual : ndarray (n,)
+        Datum minus estimate (m).
+    std : ndarray (n,)
+        Standard deviation of the residual (m): :math:`\\sqrt{\\sigma_K^2 + e_i}`
+        (kriging variance of the signal plus the datum's own measurement error);
+        NaN for the spline.
+    standardised : ndarray (n,)
+        ``residual / std``.
+    mean_error : float
+        Mean residual (m); near 0 for an unbiased interpolator.
+    rmse : float
+        Root mean square residual (m).
+    mean_standardised_squared_error : float
+        Mean of ``standardised**2``; near 1 when the variance model is right
+        (common practice; [Cressie 1993, s. 2.6.4]).
+    fraction_within_2sigma : float
+        Fraction of ``|standardised| <= 2`` (about 0.954 for Gaussian errors).
+    """
+
+    estimate: np.ndarray
+    residual: np.ndarray
+    std: np.ndarray
+    standardised: np.ndarray
+    mean_error: float
+    rmse: float
+    mean_standardised_squared_error: float
+    fraction_within_2sigma: float
+
+    @classmethod
+    def from_residuals(cls, estimate, residual, std):
+        estimate = np.asarray(estimate, float)
+        residual = np.asarray(residual, float)
+        std = np.asarray(std, float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            s = residual / std
+        has = np.isfinite(s)
+        msse = float(np.mean(s[has] ** 2)) if has.any() else float("nan")
+        within = float(np.mean(np.abs(s[has]) <= 2.0)) if has.any() else float("nan")
+        return cls(
+            estimate=estimate,
+            residual=residual,
+            std=std,
+            standardised=s,
+            mean_error=float(np.mean(residual)),
+            rmse=float(np.sqrt(np.mean(residual**2))),
+            mean_standardised_squared_error=msse,
+            fraction_within_2sigma=within,
+        )
+
+    def summary(self) -> dict:
+        """The four summary statistics as a plain dict."""
+        return {
+            "mean_error": self.mean_error,
+            "rmse": self.rmse,
+            "mean_standardised_squared_error": self.mean_standardised_squared_error,
+            "fraction_within_2sigma": self.fraction_within_2sigma,
+        }
+
+
+def _default_threads():
+    n = os.cpu_count() or 1
+    return max(1, min(n, 8))
+
+
+class OrdinaryKriging:
+    """Ordinary kriging with measurement error, local or global neighbourhood.
+
+    See the module docstring for the kriging system; it is solved for every
+    target with its ``neighbours`` nearest data (``cKDTree``), in batches: a
+    chunk of targets builds a (chunk, k+1, k+1) stack of systems solved at once
+    by :func:`numpy.linalg.solve`; the chunk size keeps each batch under
+    about 48 MiB, so memory does not grow with the number of data or targets
+    (no N x M matrix). Chunks run on ``n_threads`` threads (NumPy releases the
+    GIL in the batched solve); each thread's KD-tree query is single-threaded,
+    so there is no nested thread pool. With ``neighbours=None`` (global, for at
+    most ``GLOBAL_MAX_DATA`` data) the (N+1) system is LU-factored once.
+
+    Systems are assembled with the variogram divided by its total sill (the
+    Lagrange row of ones is then on the same scale as the rest), which does not
+    change the weights.
+
+    Parameters
+    ----------
+    variogram : VariogramModel or "auto"
+        The model, or "auto" to fit one in :meth:`fit` (experimental variogram
+        then :func:`fit_variogram` with ``variogram_model``). With "auto" and
+        error variances, the mean error variance is subtracted from the fitted
+        nugget (it is measurement error, not micro-scale variation:
+        :math:`c_{MS} = \\max(c_0 - \\bar e, 0)`, [Cressie 1993, s. 3.2.1]).
+    neighbours : int or None
+        Number of nearest data per target (default 32); None = all data.
+    variogram_model : str
+        Model fitted when ``variogram="auto"``.
+    n_threads : int, optional
+        Worker threads for the chunks (default: the CPU count, at most 8).
+
+    Attributes
+    ----------
+    variogram_ : VariogramModel
+        The model used.
+    experimental_variogram_ : ExperimentalVariogram or None
+        The experimental variogram when the model was fitted.
+    n_data_ : int
+
+    Examples
+    --------
+    A datum without error is honoured exactly; the kriging std there is zero.
+
+    >>> ok = OrdinaryKriging(VariogramModel("spherical", 0.0, 1.0, 10.0), neighbours=None)
+    >>> ok = ok.fit([0.0, 4.0, 0.0, 4.0], [0.0, 0.0, 3.0, 3.0], [1.0, 2.0, 3.0, 4.0])
+    >>> est, std = ok.predict([4.0], [0.0])
+    >>> round(float(est[0]), 12), round(float(std[0]), 6)
+    (2.0, 0.0)
+    """
+
+    def __init__(self, variogram="auto", neighbours=32, variogram_model="spherical", n_threads=None):
+        self.variogram = variogram
+        self.neighbours = neighbours
+        self.variogram_model = variogram_model
+        self.n_threads = n_threads
+
+    # -- fitting
+    def fit(self, x, y, z, error_variance=None):
+        """Store the data (and fit the variogram when "auto").
+
+        Parameters
+        ----------
+        x, y, z : array_like (n,)
+            Data coordinates and values (m).
+        error_variance : array_like (n,) or float, optional
+            Measurement-error variance of each datum (m^2): sigma_m**2 of a
+            seismic point, ~0 for a borehole. Default 0 (exact data).
+
+        Returns
+        -------
+        self
+        """
+        x, y, z, e = _as_xyz(x, y, z, error_variance)
+        k = self.neighbours
+        if k is not None:
+            if int(k) != k or int(k) < 1:
+                raise ValueError(f"neighbours must be a positive integer or None, got {k!r}")
+            k = min(int(k), x.size)
+        elif x.size > GLOBAL_MAX_DATA:
+            raise InversionError(
+                f"global kriging (neighbours=None) of {x.size} data would need a "
+                f"{x.size + 1}^2 system; use a local neighbourhood, e.g. neighbours=32 "
+                f"(global is limited to {GLOBAL_MAX_DATA} data)"
+            )
+        self.experimental_variogram_ = None
+        if isinstance(self.variogram, VariogramModel):
+            vario = self.variogram
+        elif isinstance(self.variogram, str) and self.variogram == "auto":
+            _check_model_name(self.variogram_model)
+            ev = experimental_variogram(x, y, z)
+            vario = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, self.variogram_model)
+            mean_e = float(np.mean(e))
+            if mean_e > 0:
+                nug = max(vario.nugget - mean_e, 0.0)
+                if nug + vario.sill <= 0:  # pragma: no cover - sill > 0 by the fit bounds
+                    nug = vario.nugget
+                vario = VariogramModel(vario.model, nug, vario.sill, vario.range_m)
+            self.experimental_variogram_ = ev
+        else:
+            raise ValueError(
+                f"variogram must be a VariogramModel or 'auto', got {self.variogram!r}"
+            )
+        # centred coordinates: differences stay exact and the systems well scaled
+        self._origin = (float(np.mean(x)), float(np.mean(y)))
+        self.x_ = x
+        self.y_ = y
+        self.z_ = z
+        self.error_variance_ = e
+        self.variogram_ = vario
+        self.n_data_ = x.size
+        self._k = k
+        self._xc = x - self._origin[0]
+        self._yc = y - self._origin[1]
+        self._e_unit = e / vario.total_sill
+        self._check_duplicates()
+        self.tree_ = cKDTree(np.column_stack([self._xc, self._yc]))
+        self._lu = None
+        if k is None:
+            self._lu = lu_factor(self._global_matrix(), check_finite=False)
+        return self
+
+    def _check_duplicates(self):
+        xy = np.column_stack([self._xc, self._yc])
+        pairs = cKDTree(xy).query_pairs(ZERO_LAG_M, output_type="ndarray")
+        if len(pairs):
+            e = self.error_variance_
+            exact = (e[pairs[:, 0]] + e[pairs[:, 1]]) <= 0
+            if exact.any():
+                i, j = pairs[np.flatnonzero(exact)[0]]
+                raise InversionError(
+                    f"data {i} and {j} are at the same location ({self.x_[i]!r}, {self.y_[i]!r}) and both "
+                    "have zero error variance, so the kriging system is singular; average them, or give "
+                    "them an error variance"
+                )
+
+    def _check_fitted(self):
+        if not hasattr(self, "variogram_"):
+            raise RuntimeError("OrdinaryKriging is not fitted yet: call fit(x, y, z) first")
+
+    def _global_matrix(self):
+        n = self.n_data_
+        d = np.hypot(self._xc[:, None] - self._xc[None, :], self._yc[:, None] - self._yc[None, :])
+        a = np.empty((n + 1, n + 1))
+        a[:n, :n] = self.variogram_._unit(d)
+        a[np.arange(n), np.arange(n)] = -self._e_unit
+        a[n, :n] = 1.0
+        a[:n, n] = 1.0
+        a[n, n] = 0.0
+        return a
+
+    # -- solving
+    def _chunk_size(self, k):
+        per = 8.0 * 8 * (k + 1) ** 2  # ~8 arrays of (k+1)^2 doubles per target
+        return int(max(16, min(8192, CHUNK_BYTES // per)))
+
+    def _solve_local(self, tx, ty, idx, zvals=None):
+        """Batched solve for targets (tx, ty) (centred) with neighbour index (c, k)."""
+        c, k = idx.shape
+        xs = self._xc[idx]
+        ys = self._yc[idx]
+        a = np.empty((c, k + 1, k + 1))
+        dx = xs[:, :, None] - xs[:, None, :]
+        dy = ys[:, :, None] - ys[:, None, :]
+        np.multiply(dx, dx, out=dx)
+        np.multiply(dy, dy, out=dy)
+        dx += dy
+        del dy
+        np.sqrt(dx, out=dx)
+        a[:, :k, :k] = self.variogram_._unit(dx)
+        del dx
+        r = np.arange(k)
+        a[:, r, r] = -self._e_unit[idx]
+        a[:, k, :k] = 1.0
+        a[:, :k, k] = 1.0
+        a[:, k, k] = 0.0
+        b = np.empty((c, k + 1))
+        b[:, :k] = self.variogram_._unit(np.hypot(xs - tx[:, None], ys - ty[:, None]))
+        b[:, k] = 1.0
+        sol = np.linalg.solve(a, b[:, :, None])[:, :, 0]
+        lam = sol[:, :k]
+        z = self.z_[idx] if zvals is None else zvals
+        est = np.einsum("ij,ij->i", lam, z)
+        var = (np.einsum("ij,ij->i", lam, b[:, :k]) + sol[:, k]) * self.variogram_.total_sill
+        return est, var
+
+    def _predict_chunk(self, tx, ty):
+        """Estimate and kriging variance for centred targets (one chunk)."""
+        if self._k is None:
+            d = np.hypot(tx[:, None] - self._xc[None, :], ty[:, None] - self._yc[None, :])
+            b = np.empty((self.n_data_ + 1, tx.size))
+            b[:-1] = self.variogram_._unit(d).T
+            b[-1] = 1.0
+            sol = lu_solve(self._lu, b, check_finite=False)
+            est = sol[:-1].T @ self.z_
+            var = (np.einsum("ij,ij->j", sol[:-1], b[:-1]) + sol[-1]) * self.variogram_.total_sill
+            return est, var
+        _, idx = self.tree_.query(np.column_stack([tx, ty]), k=self._k, workers=1)
+        if self._k == 1:
+            idx = idx[:, None]
+        return self._solve_local(tx, ty, idx)
+
+    def _run_chunks(self, n, chunk, work, progress, p0=0.0, p1=100.0):
+        """Apply ``work(slice)`` to chunks of range(n) on threads, in order."""
+        progress = progress or NullProgress()
+        slices = [slice(s, min(n, s + chunk)) for s in range(0, n, chunk)]
+        threads = self.n_threads or _default_threads()
+        out = [None] * len(slices)
+        if threads <= 1 or len(slices) <= 1:
+            for i, sl in enumerate(slices):
+                check_cancel(progress)
+                out[i] = work(sl)
+                progress.set_progress(p0 + (p1 - p0) * (i + 1) / len(slices))
+            return out
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            # submit in bounded waves so memory stays ~threads x chunk
+            pending = {}
+            nxt = 0
+            done = 0
+            try:
+                while done < len(slices):
+                    while nxt < len(slices) and len(pending) < 2 * threads:
+                        pending[nxt] = pool.submit(work, slices[nxt])
+                        nxt += 1
+                    first = min(pending)
+                    out[first] = pending.pop(first).result()
+                    done += 1
+                    progress.set_progress(p0 + (p1 - p0) * done / len(slices))
+                    check_cancel(progress)
+            finally:
+                for f in pending.values():
+                    f.cancel()
+        return out
+
+    def predict(self, x, y, progress=None):
+        """Kriging estimate and standard deviation at points.
+
+        Parameters
+        ----------
+        x, y : array_like
+            Target coordinates (m), any equal shapes.
+        progress : object, optional
+            Progress sink (``set_progress``/``is_canceled``), checked between chunks.
+
+        Returns
+        -------
+        estimate, std : ndarray
+            Same shape as ``x``; ``std`` is :math:`\\sigma_K` (m), the square
+            root of the kriging variance (negative round-off clipped to 0).
+        """
+        self._check_fitted()
+        x, y = _as_targets(x, y)
+        shape = x.shape
+        tx = x.ravel() - self._origin[0]
+        ty = y.ravel() - self._origin[1]
+        est, var = self._predict_centred(tx, ty, progress)
+        return est.reshape(shape), np.sqrt(np.maximum(var, 0.0)).reshape(shape)
+
+    def _predict_centred(self, tx, ty, progress=None, p0=0.0, p1=100.0):
+        n = tx.size
+        if self._k is None:
+            chunk = int(max(16, min(8192, CHUNK_BYTES // (8 * 4 * (self.n_data_ + 1)))))
+        else:
+            chunk = self._chunk_size(self._k)
+        est = np.empty(n)
+        var = np.empty(n)
+
+        def work(sl):
+            e, v = self._predict_chunk(tx[sl], ty[sl])
+            est[sl] = e
+            var[sl] = v
+
+        self._run_chunks(n, chunk, work, progress, p0, p1)
+        return est, var
+
+    def grid(self, spec, max_distance_m=None, progress=None):
+        """Estimate and std on a grid; cells far from the data are NaN.
+
+        Parameters
+        ----------
+        spec : GridSpec
+        max_distance_m : float, optional
+            Cells whose centre is farther than this from every datum are masked
+            (NaN), so nothing is extrapolated silently. None = no mask.
+        progress : object, optional
+
+        Returns
+        -------
+        SurfaceGrid
+        """
+        self._check_fitted()
+        mask = _distance_mask(self.tree_, spec, max_distance_m, self._origin)
+        gx, gy = spec.coords()
+        sel = ~mask.ravel()
+        z = np.full(spec.size, np.nan)
+        s = np.full(spec.size, np.nan)
+        if sel.any():
+            tx = gx.ravel()[sel] - self._origin[0]
+            ty = gy.ravel()[sel] - self._origin[1]
+            e, v = self._predict_centred(tx, ty, progress)
+            z[sel] = e
+            s[sel] = np.sqrt(np.maximum(v, 0.0))
+        return SurfaceGrid(
+            spec=spec, z=z.reshape(spec.shape), std=s.reshape(spec.shape), mask=mask,
+            method="kriging", n_data=self.n_data_,
+        )
+
+    def cross_validate(self, progress=None):
+        """Leave-one-out cross-validation of the fitted kriging.
+
+        Each datum is estimated from the others with the same variogram. In a
+        local neighbourhood the datum's own index is removed from its k+1
+        nearest data (so it is never its own neighbour, even beside a
+        duplicate). In the global case the closed form of [Dubrule 1983] is
+        used: with :math:`B = A^{-1}` of the (N+1) system,
+        :math:`z_i - \\hat z_{-i} = (B[\\mathbf z; 0])_i / B_{ii}` and
+        :math:`\\sigma_K^2 + e_i = -1/B_{ii}` (variogram form).
+
+        The residual's variance is :math:`\\sigma_K^2(\\mathbf s_i) + e_i`: the
+        error of predicting the signal plus the datum's own measurement error.
+
+        Returns
+        -------
+        CrossValidation
+        """
+        self._check_fitted()
+        n = self.n_data_
+        if n < 3:  # pragma: no cover - _as_xyz requires 3
+            raise InversionError("cross-validation needs at least 3 data")
+        s = self.variogram_.total_sill
+        if self._k is None:
+            bmat = np.linalg.inv(self._global_matrix())
+            bz = bmat[:n, :n] @ self.z_
+            bii = np.diag(bmat)[:n]
+            resid = bz / bii
+            var_tot = -s / bii
+            est = self.z_ - resid
+            return CrossValidation.from_residuals(est, resid, np.sqrt(np.maximum(var_tot, 0.0)))
+        k = min(self._k, n - 1)
+        kq = k + 1
+        est = np.empty(n)
+        var = np.empty(n)
+        chunk = self._chunk_size(k)
+
+        def work(sl):
+            tx = self._xc[sl]
+            ty = self._yc[sl]
+            _, idx = self.tree_.query(np.column_stack([tx, ty]), k=kq, workers=1)
+            own = idx == np.arange(sl.start, sl.stop)[:, None]
+            order = np.argsort(own, axis=1, kind="stable")  # own index (if found) last
+            idx = np.take_along_axis(idx, order, axis=1)[:, :k]
+            e, v = self._solve_local(tx, ty, idx)
+            est[sl] = e
+            var[sl] = v
+
+        self._run_chunks(n, chunk, work, progress)
+        resid = self.z_ - est
+        std = np.sqrt(np.maximum(var, 0.0) + self.error_variance_)
+        return CrossValidation.from_residuals(est, resid, std)
+
+
+def _distance_mask(tree, spec, max_distance_m, origin):
+    """True for cells farther than max_distance_m from every datum (tree in centred coords)."""
+    if max_distance_m is None:
+        return np.zeros(spec.shape, dtype=bool)
+    md = float(max_distance_m)
+    if not md > 0:
+        raise ValueError(f"max_distance_m must be > 0 (m), got {max_distance_m!r}")
+    mask = np.empty(spec.shape, dtype=bool)
+    xc = spec.x_centres - origin[0]
+    rows = max(1, 2_000_000 // spec.nx)
+    for r0 in range(0, spec.ny, rows):
+        yc = spec.y_centres[r0:r0 + rows] - origin[1]
+        gx, gy = np.meshgrid(xc, yc)
+        d, _ = tree.query(np.column_stack([gx.ravel(), gy.ravel()]), k=1, workers=-1,
+                          distance_upper_bound=md * (1 + 1e-12))
+        mask[r0:r0 + rows] = (d > md).reshape(gx.shape)
+    return mask
+
+
+def cross_validate(x, y, z, error_variance=None, *, variogram="auto", neighbours=32,
+                   variogram_model="spherical", progress=None):
+    """Leave-one-out cross-validation of ordinary kriging (see
+    :meth:`OrdinaryKriging.cross_validate`).
+
+    Returns
+    -------
+    CrossValidation
+        Per-point estimate, residual, std and standardised residual, and the
+        summary: mean error, RMSE, mean standardised squared error (~1 when the
+        model is right) and the fraction within 2 sigma (~0.95).
+    """
+    ok = OrdinaryKriging(variogram, neighbours=neighbours, variogram_model=variogram_model)
+    return ok.fit(x, y, z, error_variance).cross_validate(progress)
+
+
+# --------------------------------------------------------------------------- spline
+
+
+class ThinPlateSpline:
+    """Smoothing thin-plate spline ([Duchon 1977], [Wahba 1990]).
+
+    Minimises, over functions :math:`f` with a linear polynomial part,
+
+    .. math::
+
+        \\sum_i \\frac{(z_i - f(\\mathbf s_i))^2}{w_i} + \\lambda\\, J_2(f),
+
+    with :math:`J_2` the bending energy; solved by
+    :class:`scipy.interpolate.RBFInterpolator` (``kernel="thin_plate_spline"``,
+    ``degree=1``), whose per-point ``smoothing`` is :math:`\\lambda w_i`. The
+    weights are :math:`w_i = e_i / \\bar e` when error variances are given (a
+    datum with zero error variance is then honoured exactly), else 1.
+    Coordinates are centred and divided by the half-diagonal of the data
+    bounding box, so :math:`\\lambda` is dimensionless.
+
+    ``smoothing="auto"`` chooses :math:`\\lambda` from
+    :math:`\\{0, 10^{-6}, 10^{-5}, \\dots, 10^{1}\\}` by 5-fold
+    cross-validation (random folds, seeded) on at most 2000 data: the value
+    with the smallest held-out RMSE (a cross-validation rule in the spirit of
+    [Wahba 1990, ch. 4]; ties go to the larger smoothing).
+
+    There is no variance for the spline: :meth:`predict` returns NaN as std.
+
+    Parameters
+    ----------
+    smoothing : float or "auto"
+        :math:`\\lambda`.
+    neighbours : int or None
+        Nearest data used by each evaluation (``RBFInterpolator(neighbors=)``);
+        None = global (all data, O(N^3); keep N below a few thousand).
+
+    Attributes
+    ----------
+    smoothing_ : float
+        The :math:`\\lambda` used.
+    cv_scores_ : dict or None
+        Held-out RMSE (m) of each candidate when chosen automatically.
+    """
+
+    CANDIDATES = (0.0, 1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1, 1.0, 10.0)
+
+    def __init__(self, smoothing="auto", neighbours=None):
+        self.smoothing = smoothing
+        self.neighbours = neighbours
+
+    def _rbf(self, xy, z, smooth):
+        from scipy.interpolate import RBFInterpolator
+
+        k = self.neighbours
+        if k is not None:
+            k = min(int(k), len(z))
+        return RBFInterpolator(xy, z, neighbors=k, smoothing=smooth, kernel="thin_plate_spline", degree=1)
+
+    def fit(self, x, y, z, error_variance=None):
+        """Fit the spline (choosing the smoothing when "auto"); returns self."""
+        x, y, z, e = _as_xyz(x, y, z, error_variance)
+        k = self.neighbours
+        if k is not None and (int(k) != k or int(k) < 3):
+            raise ValueError(f"neighbours must be an integer >= 3 or None, got {k!r}")
+        self._origin = (float(np.mean(x)), float(np.mean(y)))
+        scale = 0.5 * math.hypot(np.ptp(x), np.ptp(y))
+        self._scale = scale if scale > 0 else 1.0
+        xy = np.column_stack([(x - self._origin[0]) / self._scale, (y - self._origin[1]) / self._scale])
+        me = float(np.mean(e))
+        w = e / me if me > 0 else np.ones_like(z)
+        self.cv_scores_ = None
+        if isinstance(self.smoothing, str):
+            if self.smoothing != "auto":
+                raise ValueError(f"smoothing must be a number >= 0 or 'auto', got {self.smoothing!r}")
+            lam = self._choose(xy, z, w)
+        else:
+            lam = float(self.smoothing)
+            if not (lam >= 0 and math.isfinite(lam)):
+                raise ValueError(f"smoothing must be a number >= 0 or 'auto', got {self.smoothing!r}")
+        self.smoothing_ = lam
+        self.x_, self.y_, self.z_, self.error_variance_ = x, y, z, e
+        self.n_data_ = x.size
+        self.interpolator_ = self._rbf(xy, z, lam * w)
+        self.tree_ = cKDTree(np.column_stack([x - self._origin[0], y - self._origin[1]]))
+        return self
+
+    def _choose(self, xy, z, w, folds=5, max_points=2000):
+        rng = np.random.default_rng(0)
+        n = len(z)
+        sel = np.arange(n) if n <= max_points else np.sort(rng.choice(n, max_points, replace=False))
+        xy, z, w = xy[sel], z[sel], w[sel]
+        fold = rng.permutation(len(z)) % folds
+        scores = {}
+        for lam in self.CANDIDATES:
+            sq = 0.0
+            for f in range(folds):
+                tr = fold != f
+                try:
+                    pred = self._rbf(xy[tr], z[tr], lam * w[tr])(xy[~tr])
+                except (np.linalg.LinAlgError, ValueError):
+                    sq = np.inf
+                    break
+                sq += float(np.sum((z[~tr] - pred) ** 2))
+            scores[lam] = math.sqrt(sq / len(z))
+        self.cv_scores_ = scores
+        best = min(scores.values())
+        # the largest smoothing within 0.1 % of the best score
+        return max(lam for lam, s in scores.items() if s <= best * (1 + 1e-3))
+
+    def predict(self, x, y, progress=None):
+        """Spline value at points, and NaN as std (the spline has no variance)."""
+        if not hasattr(self, "interpolator_"):
+            raise RuntimeError("ThinPlateSpline is not fitted yet: call fit(x, y, z) first")
+        x, y = _as_targets(x, y)
+        shape = x.shape
+        xy = np.column_stack([(x.ravel() - self._origin[0]) / self._scale,
+                              (y.ravel() - self._origin[1]) / self._scale])
+        out = self._eval(xy, progress)
+        return out.reshape(shape), np.full(shape, np.nan)
+
+    def _eval(self, xy, progress=None):
+        progress = progress or NullProgress()
+        n = len(xy)
+        per = 8 * 4 * (self.n_data_ if self.neighbours is None else 64 * int(self.neighbours))
+        chunk = int(max(64, min(200_000, CHUNK_BYTES // per)))
+        out = np.empty(n)
+        for s in range(0, n, chunk):
+            check_cancel(progress)
+            out[s:s + chunk] = self.interpolator_(xy[s:s + chunk])
+            progress.set_progress(100.0 * min(n, s + chunk) / max(n, 1))
+        return out
+
+    def grid(self, spec, max_distance_m=None, progress=None):
+        """Spline on a grid (std NaN); cells far from the data are NaN. See
+        :meth:`OrdinaryKriging.grid`."""
+        if not hasattr(self, "interpolator_"):
+            raise RuntimeError("ThinPlateSpline is not fitted yet: call fit(x, y, z) first")
+        mask = _distance_mask(self.tree_, spec, max_distance_m, self._origin)
+        gx, gy = spec.coords()
+        sel = ~mask.ravel()
+        z = np.full(spec.size, np.nan)
+        if sel.any():
+            xy = np.column_stack([(gx.ravel()[sel] - self._origin[0]) / self._scale,
+                                  (gy.ravel()[sel] - self._origin[1]) / self._scale])
+            z[sel] = self._eval(xy, progress)
+        return SurfaceGrid(spec=spec, z=z.reshape(spec.shape), std=np.full(spec.shape, np.nan),
+                           mask=mask, method="spline", n_data=self.n_data_)
+
+
+# --------------------------------------------------------------------------- pipeline entry
+
+
+def default_max_distance(x, y, variogram=None):
+    """Default masking distance (m): 15 % of the diagonal of the data bounding
+    box, and not more than the variogram range (beyond it kriging returns the
+    mean). A rule of this project, to be overridden with site knowledge.
+
+    >>> default_max_distance([0, 300], [0, 400])
+    75.0
+    """
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    d = 0.15 * math.hypot(np.ptp(x), np.ptp(y))
+    if variogram is not None:
+        d = min(d, variogram.range_m)
+    return float(d)
+
+
+def interpolate_surface(
+    x,
+    y,
+    z,
+    sigma=None,
+    spec=None,
+    method="kriging",
+    neighbours=32,
+    variogram_model="spherical",
+    max_distance_m=None,
+    progress=None,
+    variogram=None,
+):
+    """Reflector surface on a grid, with diagnostics (the pipeline's call).
+
+    Parameters
+    ----------
+    x, y, z : array_like (n,)
+        Reflector points (m): easting, northing, elevation.
+    sigma : array_like (n,) or float, optional
+        Standard error of each elevation (m); 0 (or tiny) for boreholes.
+        Its square is the measurement-error variance on the kriging diagonal.
+    spec : GridSpec, optional
+        Default :meth:`GridSpec.from_data`.
+    method : "kriging" or "spline"
+    neighbours : int or None
+        Local neighbourhood size (None = global).
+    variogram_model : str
+        Model fitted to the experimental variogram (kriging).
+    max_distance_m : float, optional
+        Mask distance; default :func:`default_max_distance`.
+    progress : object, optional
+        Progress sink; cancellation is checked between chunks.
+    variogram : VariogramModel, optional
+        Use this model instead of fitting one.
+
+    Returns
+    -------
+    surface : SurfaceGrid
+    diagnostics : dict
+        ``experimental_variogram`` (ExperimentalVariogram or None),
+        ``variogram`` (VariogramModel used or None), ``fitted_nugget``
+        (before subtracting the mean error variance), ``cross_validation``
+        (CrossValidation; kriging, or spline with NaN std),
+        ``max_distance_m``, ``n_cells``, ``n_cells_estimated``, ``smoothing``
+        (spline), ``method``.
+    """
+    progress = progress or NullProgress()
+    x, y, z, e = _as_xyz(x, y, z, None if sigma is None else np.square(np.asarray(sigma, dtype=float)))
+    if sigma is not None and np.any(np.asarray(sigma, dtype=float) < 0):
+        raise ValueError("sigma must be >= 0 (m)")
+    if spec is None:
+        spec = GridSpec.from_data(x, y)
+    diag = {"method": method, "n_data": int(x.size), "experimental_variogram": None, "variogram": None,
+            "fitted_nugget": None, "smoothing": None}
+    from .progress import SubProgress
+
+    if method == "kriging":
+        if variogram is None:
+            check_cancel(progress)
+            ev = experimental_variogram(x, y, z)
+            fitted = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, variogram_model)
+            diag["experimental_variogram"] = ev
+            diag["fitted_nugget"] = fitted.nugget
+            me = float(np.mean(e))
+            nugget = max(fitted.nugget - me, 0.0)
+            variogram = VariogramModel(fitted.model, nugget, fitted.sill, fitted.range_m)
+        progress.set_progress(5)
+        model = OrdinaryKriging(variogram, neighbours=neighbours).fit(x, y, z, e)
+        diag["variogram"] = model.variogram_
+        diag["cross_validation"] = model.cross_validate(SubProgress(progress, 5, 30))
+        p0 = 30
+    elif method == "spline":
+        model = ThinPlateSpline("auto", neighbours=neighbours).fit(x, y, z, e)
+        diag["smoothing"] = model.smoothing_
+        diag["cross_validation"] = None
+        p0 = 20
+    else:
+        raise ValueError(f"method must be 'kriging' or 'spline', got {method!r}")
+    if max_distance_m is None:
+        max_distance_m = default_max_distance(x, y, diag["variogram"])
+    diag["max_distance_m"] = float(max_distance_m)
+    surf = model.grid(spec, max_distance_m, SubProgress(progress, p0, 100))
+    diag["n_cells"] = spec.size
+    diag["n_cells_estimated"] = int((~surf.mask).sum())
+    progress.set_progress(100)
+    return surf, diag
+
