@@ -492,6 +492,10 @@ def gather_normals(gathers, fits, cross_component=None) -> np.ndarray:
     Rows with ``s^2 + q^2 > 1`` or a failed fit are NaN.
     """
     g = gathers.n_gathers
+    q_fit = getattr(fits, "cross_component", None)
+    if cross_component is None and hasattr(fits, "normal") and q_fit is not None:
+        if np.all(np.isfinite(np.asarray(q_fit, dtype=float))):
+            return fits.normal(gathers)  # the inversion's own definition (same formula)
     s = _fit_array(fits, "s_along", g)
     if cross_component is None:
         cross_component = getattr(fits, "cross_component", None)
