@@ -399,22 +399,42 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     )
 
 
-def cross_components(gathers, dips) -> np.ndarray:
+def cross_components(gathers, dips, max_distance_m=None) -> np.ndarray:
     """Resolved cross-line component :math:`q_k = -\\mathbf w_k\\cdot\\mathbf n_h` per gather.
 
-    Uses the measurement each gather belongs to (``dips.gather_measurement``);
-    NaN where the gather is in no measurement or its measurement is flagged.
-    Feed it to the inversion (``cross_component``) to refit with the resolved
-    cross-line dip, NaN entries meaning "not resolved" (use 0 there).
+    Uses the measurement each gather belongs to (``dips.gather_measurement``)
+    when its status is ``"ok"``. With ``max_distance_m``, a gather outside
+    any good measurement takes the nearest good measurement of its reflector
+    whose centre lies within that distance of the gather's source. NaN where
+    nothing applies. Feed the result to the inversion (``cross_component``) to
+    refit with the resolved cross-line dip, NaN entries meaning "not
+    resolved" (use 0 there).
     """
+    from scipy.spatial import cKDTree
+
     w = np.asarray(gathers.cross_unit, dtype=float)
-    k = np.asarray(dips.gather_measurement, dtype=np.int64)
-    q = np.full(len(k), np.nan)
+    k = np.asarray(dips.gather_measurement, dtype=np.int64).copy()
+    good_m = np.asarray(dips.status) == STATUS_OK
     has = k >= 0
-    good = has.copy()
-    good[has] = np.asarray(dips.status)[k[has]] == STATUS_OK
+    has[has] = good_m[k[has]]
+    k[~has] = -1
+    if max_distance_m is not None and good_m.any():
+        refl_g = np.asarray(gathers.reflector).astype(str)
+        refl_m = np.asarray(dips.reflector).astype(str)
+        src = np.asarray(gathers.source_xyz_g, dtype=float)[:, :2]
+        for name in set(refl_m[good_m]):
+            rows = np.flatnonzero(good_m & (refl_m == name))
+            todo = np.flatnonzero(~has & (refl_g == name))
+            if len(todo) == 0:
+                continue
+            tree = cKDTree(np.column_stack([dips.x_m[rows], dips.y_m[rows]]))
+            dist, j = tree.query(src[todo], k=1)
+            near = dist <= max_distance_m
+            k[todo[near]] = rows[j[near]]
+            has[todo[near]] = True
+    q = np.full(len(k), np.nan)
     nh = np.asarray(dips.normal_h, dtype=float)
-    q[good] = -np.sum(w[good] * nh[k[good]], axis=1)
+    q[has] = -np.sum(w[has] * nh[k[has]], axis=1)
     return q
 
 
