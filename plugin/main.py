@@ -1,0 +1,105 @@
+"""The plugin object QGIS creates through ``classFactory``: menus, toolbar, provider, dock."""
+
+from __future__ import annotations
+
+from qgis.core import Qgis, QgsApplication, QgsMessageLog
+from qgis.PyQt.QtCore import QCoreApplication, Qt
+from qgis.PyQt.QtGui import QIcon
+from qgis.PyQt.QtWidgets import QAction
+
+from . import deps
+from .provider import ICON_PATH
+
+MENU = "&Reflector Mapper"
+LOG_TAG = "Reflector Mapper"
+
+
+def tr(text: str) -> str:
+    """Translate a user-visible string (translate first, format afterwards)."""
+    return QCoreApplication.translate("ReflectorMapper", text)
+
+
+class ReflectorMapperPlugin:
+    """Registers the Processing provider and the quality-control panel.
+
+    ``unload`` removes everything ``initGui`` added: menu entries, the toolbar
+    button, the provider and the dock widget.
+    """
+
+    def __init__(self, iface, importer=None):
+        self.iface = iface
+        self.provider = None  # keep a Python reference, or the provider vanishes
+        self.actions = []
+        self.dock = None
+        self.missing = []
+        self._importer = importer  # tests may simulate a missing package
+
+    # -- life cycle ---------------------------------------------------------------------------
+    def initGui(self):
+        kwargs = {} if self._importer is None else {"importer": self._importer}
+        self.missing = deps.find_missing(**kwargs)
+        if self.missing:
+            self._report_missing()
+            return
+        self.initProcessing()
+        icon = QIcon(ICON_PATH)
+        run_action = QAction(icon, tr("Run whole survey…"), self.iface.mainWindow())
+        run_action.setObjectName("reflectorMapperRunSurvey")
+        run_action.triggered.connect(self.open_run_dialog)
+        qc_action = QAction(icon, tr("Quality-control panel"), self.iface.mainWindow())
+        qc_action.setObjectName("reflectorMapperQcPanel")
+        qc_action.setCheckable(True)
+        qc_action.toggled.connect(self.show_qc_panel)
+        for action in (run_action, qc_action):
+            self.iface.addPluginToMenu(MENU, action)
+            self.actions.append(action)
+        self.iface.addToolBarIcon(qc_action)
+        self.qc_action = qc_action
+
+    def initProcessing(self):
+        from .provider import ReflectorMapperProvider
+
+        if self.provider is None:
+            self.provider = ReflectorMapperProvider()
+            QgsApplication.processingRegistry().addProvider(self.provider)
+
+    def unload(self):
+        for action in self.actions:
+            self.iface.removePluginMenu(MENU, action)
+            self.iface.removeToolBarIcon(action)
+            action.deleteLater()
+        self.actions = []
+        if self.dock is not None:
+            self.iface.removeDockWidget(self.dock)
+            self.dock.close_panel()
+            self.dock.deleteLater()
+            self.dock = None
+        if self.provider is not None:
+            QgsApplication.processingRegistry().removeProvider(self.provider)
+            self.provider = None
+
+    # -- actions ------------------------------------------------------------------------------
+    def _report_missing(self):
+        message = deps.missing_message(self.missing)
+        QgsMessageLog.logMessage(message, LOG_TAG, Qgis.Critical)
+        names = ", ".join(m.name for m in self.missing)
+        short = tr("missing Python package(s): {names}. See the log panel (Reflector Mapper) for how to "
+                   "install them.").format(names=names)
+        self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
+
+    def open_run_dialog(self):
+        """Open the Processing dialog of the whole-survey algorithm."""
+        import processing
+
+        processing.execAlgorithmDialog("reflectormapper:runsurvey", {})
+
+    def show_qc_panel(self, visible=True):
+        """Create (once) and show or hide the quality-control dock."""
+        if self.dock is None:
+            if not visible:
+                return
+            from .qc_dock import QcDock
+
+            self.dock = QcDock(self.iface, self.iface.mainWindow())
+            self.iface.addDockWidget(Qt.RightDockWidgetArea, self.dock)
+        self.dock.setVisible(bool(visible))

@@ -1,0 +1,79 @@
+"""The plugin loads through classFactory in QGIS, registers its provider, and unloads cleanly."""
+
+import pytest
+
+pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
+
+import reflector_mapper
+from qgis.core import Qgis, QgsApplication
+from qgis.PyQt.QtWidgets import QAction
+
+ALGORITHM_IDS = {"fitgathers", "combinelines", "interpolatesurface", "runsurvey"}
+
+
+def _registry():
+    return QgsApplication.processingRegistry()
+
+
+def test_load_and_unload_through_class_factory(qgis_iface, qgis_processing):
+    assert _registry().providerById("reflectormapper") is None
+    plugin = reflector_mapper.classFactory(qgis_iface)
+    plugin.initGui()
+    try:
+        prov = _registry().providerById("reflectormapper")
+        assert prov is not None
+        assert {a.name() for a in prov.algorithms()} == ALGORITHM_IDS
+        actions = list(plugin.actions)
+        assert len(actions) == 2 and all(isinstance(a, QAction) for a in actions)
+        plugin.show_qc_panel(True)
+        assert plugin.dock is not None and not plugin.dock.isHidden()
+    finally:
+        plugin.unload()
+    assert _registry().providerById("reflectormapper") is None
+    assert plugin.provider is None and plugin.dock is None and plugin.actions == []
+
+
+def test_load_twice_in_a_row_leaves_one_provider(qgis_iface, qgis_processing):
+    # QGIS reloads plugins (Plugin Reloader, updates): unload must leave nothing behind.
+    for _ in range(2):
+        plugin = reflector_mapper.classFactory(qgis_iface)
+        plugin.initGui()
+        assert _registry().providerById("reflectormapper") is not None
+        plugin.unload()
+        assert _registry().providerById("reflectormapper") is None
+
+
+def test_every_algorithm_has_help_with_the_caution(provider):
+    for alg in provider.algorithms():
+        text = alg.shortHelpString()
+        assert "does not replace borings" in text, alg.id()
+        assert "licensed professionals" in text, alg.id()
+        assert alg.id().startswith("reflectormapper:")
+
+
+@pytest.mark.parametrize("missing", ["scipy", "shapely"], ids=["no-scipy", "no-shapely"])
+def test_missing_package_is_named_and_no_provider(qgis_iface, qgis_processing, missing):
+    import importlib
+
+    def importer(name):
+        if name == missing:
+            raise ImportError(f"No module named '{name}'")
+        return importlib.import_module(name)
+
+    bar = qgis_iface.messageBar()
+    bar.clear_messages()
+    from reflector_mapper.plugin.main import ReflectorMapperPlugin
+
+    plugin = ReflectorMapperPlugin(qgis_iface, importer=importer)
+    plugin.initGui()
+    try:
+        assert _registry().providerById("reflectormapper") is None
+        messages = bar.get_messages(Qgis.Critical)
+        assert messages and missing in messages[-1]
+        from reflector_mapper.plugin import deps
+
+        full = deps.missing_message(plugin.missing)
+        assert f"pip install {missing}" in full and f"apt install python3-{missing}" in full
+        assert "OSGeo4W" in full
+    finally:
+        plugin.unload()
