@@ -56,6 +56,7 @@ STATUS_SINGLE_LINE = "single_direction"
 STATUS_PARALLEL = "nearly_parallel"
 STATUS_ILL = "ill_conditioned"
 STATUS_NONPHYSICAL = "nonphysical"
+STATUS_POOR = "poorly_constrained"
 
 
 # ---------------------------------------------------------------------------
@@ -214,9 +215,12 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
         \\phi = \\operatorname{az}(-\\mathbf n_h)
 
     (DESIGN.md s.4). The covariance of :math:`\\mathbf n_h` is
-    :math:`F\\,(A^TWA)^{-1}` with :math:`F = \\max(1, \\chi^2/(n-2))` (only
-    inflated, so a reflector that is not planar across the cluster widens the
-    errors); ``sigma_dip_deg`` and ``sigma_dip_direction_deg`` follow by
+    :math:`F\\,(A^TWA)^{-1}` with :math:`F = \\chi^2/(n-2)` (so a reflector
+    that is not planar across the cluster widens the
+    errors), applied only when :math:`\\chi^2` exceeds its 95 % quantile for
+    n - 2 degrees of freedom, i.e. when the cluster's scatter is significantly
+    larger than the gathers' stated errors (so planar data keep nominal
+    coverage); ``sigma_dip_deg`` and ``sigma_dip_direction_deg`` follow by
     first-order propagation through :math:`\\delta = \\arcsin|\\mathbf n_h|`
     and the azimuth. Gathers of different fits are treated as independent.
 
@@ -228,7 +232,9 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     cluster whose line directions (axial: u and -u alike) span less than
     ``min_angle_deg``, or whose weighted design is worse conditioned than
     ``max_condition``, is flagged and gets no dip (NaN) instead of an
-    invented one.
+    invented one. So is a cluster whose fitted :math:`|\\mathbf n_h|` is 1 or
+    more (``nonphysical``) or within two standard errors of 1
+    (``poorly_constrained``: the first-order errors no longer hold).
 
     Parameters
     ----------
@@ -252,6 +258,7 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     DipMeasurements
     """
     from scipy.spatial import cKDTree
+    from scipy.stats import chi2 as chi2_dist
 
     g = gathers.n_gathers
     if not 0.0 < min_angle_deg <= 90.0:
@@ -364,7 +371,10 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
         chi2 = float(np.sum(wk * resid**2))
         dof = len(mem) - 2
         factor = chi2 / dof if dof > 0 else np.nan
-        cov = max(1.0, factor if np.isfinite(factor) else 1.0) * np.linalg.inv(nmat)
+        # inflate only when the cluster's scatter is significantly larger than its stated
+        # errors (chi2 above its 95 % quantile: the reflector is not planar across it)
+        inflate = dof > 0 and chi2 > chi2_dist.ppf(0.95, dof)
+        cov = (factor if inflate else 1.0) * np.linalg.inv(nmat)
         out["variance_factor"][k] = factor
         out["normal_h"][k] = nh
         out["covariance"][k] = cov
@@ -372,6 +382,14 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
         if r >= 1.0:
             stat[k] = STATUS_NONPHYSICAL
             reason[k] = f"|n_h| = {r:.4f} >= 1 (sin of the dip): the gathers' dips are inconsistent"
+            continue
+        sigma_r = float(np.sqrt(nh @ cov @ nh)) / r if r > 0 else float(np.sqrt(np.trace(cov)))
+        if r + 2.0 * sigma_r >= 1.0:
+            stat[k] = STATUS_POOR
+            reason[k] = (
+                f"|n_h| = {r:.3f} +- {sigma_r:.3f}: the 2-sigma range of the dip reaches vertical, "
+                "so the dip is not constrained (too few or too noisy gathers)"
+            )
             continue
         out["dip_deg"][k] = np.degrees(np.arcsin(r))
         out["dip_direction_deg"][k] = _azimuth_deg(-nh[0], -nh[1])
