@@ -209,9 +209,13 @@ def strike_dip_symbol(colour: str, bar_mm: float = 7.0, tick_mm: float = 2.4,
     tick.setStrokeColor(QColor(colour))
     tick.setStrokeWidth(width_mm)
     tick.setAngle(90.0)  # the 'line' shape is vertical; 90 deg makes it horizontal
-    tick.setOffset(_qpointf(tick_mm / 2.0, 0.0))  # from the bar's middle toward +x (dip side)
+    # QGIS turns a layer's offset by that layer's own total angle (here 90 + strike), so an
+    # offset pointing "up" ends at azimuth strike + 90: from the bar's middle toward the dip.
+    tick.setOffset(_qpointf(0.0, -tick_mm / 2.0))
     tick.setOffsetUnit(QgsUnitTypes.RenderMillimeters)
-    symbol = QgsMarkerSymbol([bar, tick])
+    symbol = QgsMarkerSymbol()  # built layer by layer: these calls take ownership
+    symbol.changeSymbolLayer(0, bar)
+    symbol.appendSymbolLayer(tick)
     return symbol
 
 
@@ -234,7 +238,8 @@ def style_dips(layer: QgsVectorLayer, measured: bool = True, label_size: float =
     settings.placement = QgsPalLayerSettings.OverPoint
     # Beside the tick: offset 4 mm from the point toward the dip direction (on the map).
     props = QgsPropertyCollection()
-    angle = grid_north_rotation_expression() + " + 90 + @map_rotation"
+    # (labels are placed in the map's own frame; the offset is turned with the map by QGIS)
+    angle = grid_north_rotation_expression() + " + 90"
     props.setProperty(QgsPalLayerSettings.OffsetXY, QgsProperty.fromExpression(
         f"array_to_string(array(4 * sin(radians({angle})), -4 * cos(radians({angle}))))"))
     settings.setDataDefinedProperties(props)
