@@ -15,7 +15,10 @@ CUSTOM_TM = (
     "+proj=tmerc +lat_0=0 +lon_0=15.5 +k=0.9999 +x_0=50000 +y_0=-4000000 "
     "+ellps=GRS80 +towgs84=0,0,0,0,0,0,0 +units=m +no_defs +type=crs"
 )
-CUSTOM_LCC = "+proj=lcc +lat_1=45 +lat_2=47 +lat_0=46 +lon_0=8 +x_0=600000 +y_0=200000 +ellps=bessel +units=m +type=crs"
+CUSTOM_LCC = (
+    "+proj=lcc +lat_1=45 +lat_2=47 +lat_0=46 +lon_0=8 +x_0=600000 +y_0=200000 "
+    "+ellps=bessel +units=m +type=crs"
+)
 
 
 def _have(module):
