@@ -1,0 +1,133 @@
+"""CSV tables: exact numbers, formula-injection guard, read back with csv and pandas."""
+
+import csv
+
+import numpy as np
+import pytest
+from reflector_mapper.core.errors import OutputError
+from reflector_mapper.core.gpkg import Layer
+from reflector_mapper.core.tables import guard_text, layer_to_csv, write_csv
+from shapely.geometry import LineString, Point
+
+
+def _rows(path, encoding="utf-8"):
+    with open(path, newline="", encoding=encoding) as fh:
+        return list(csv.reader(fh))
+
+
+def test_floats_read_back_exactly(tmp_path, rng):
+    values = np.concatenate([rng.normal(0, 1e3, 200), [1e-300, -2.5e-7, 123456789.123, -0.0]])
+    path = write_csv(tmp_path / "t.csv", {"depth_m": values})
+    rows = _rows(path)
+    assert rows[0] == ["depth_m"]
+    # repr() is the shortest text that reads back to the same double (Python float semantics)
+    np.testing.assert_array_equal(np.array([float(r[0]) for r in rows[1:]]), values)
+
+
+def test_digits_option(tmp_path):
+    path = write_csv(tmp_path / "t.csv", {"v": np.array([1234.56789, -0.000123456])}, digits=4)
+    assert [r[0] for r in _rows(path)[1:]] == ["1235", "-0.0001235"]
+
+
+@pytest.mark.parametrize(
+    "prefix", ["=", "+", "-", "@", "\t", "\r"], ids=["eq", "plus", "minus", "at", "tab", "cr"]
+)
+def test_text_formula_prefixes_are_guarded(tmp_path, prefix):
+    # OWASP "CSV Injection": cells starting with these characters get a leading apostrophe
+    text = prefix + "cmd|' /C calc'!A0"
+    path = write_csv(tmp_path / "t.csv", {"status": np.array([text, "ok"], dtype=object)})
+    rows = _rows(path)
+    assert rows[1] == ["'" + text]
+    assert rows[2] == ["ok"]
+
+
+def test_numbers_stay_numbers_with_pandas(tmp_path):
+    pd = pytest.importorskip("pandas")  # reference CSV reader (in .venv and Debian's python3-pandas)
+    cols = {
+        "line": np.array(["L1", "-L2", "Ligne é"], dtype=object),
+        "elevation_m": np.array([-12.25, np.nan, 3.0]),
+        "picks_used": np.array([-3, 0, 24]),
+        "accepted": np.array([True, False, True]),
+    }
+    path = write_csv(tmp_path / "t.csv", cols)
+    df = pd.read_csv(path)
+    assert df["elevation_m"].dtype.kind == "f" and df["elevation_m"].iloc[0] == -12.25
+    assert np.isnan(df["elevation_m"].iloc[1])
+    assert df["picks_used"].tolist() == [-3, 0, 24]
+    assert df["accepted"].tolist() == [True, False, True]
+    assert df["line"].tolist() == ["L1", "'-L2", "Ligne é"]
+
+
+def test_guard_text_examples():
+    assert guard_text("@SUM(1)") == "'@SUM(1)"
+    assert guard_text("12") == "12"  # digits are not a formula
+    assert guard_text("L-1") == "L-1"  # only the first character matters
+
+
+def test_quoting_and_unicode(tmp_path):
+    cols = {"note": np.array(['a,b "c"', "線\nnext", None], dtype=object)}
+    path = write_csv(tmp_path / "t.csv", cols, bom=True)
+    raw = path.read_bytes()
+    assert raw.startswith(b"\xef\xbb\xbf")
+    rows = _rows(path, encoding="utf-8-sig")
+    assert rows == [["note"], ['a,b "c"'], ["線\nnext"], [""]]
+    assert raw.endswith(b"\r\n")  # RFC 4180 line ends
+
+
+def test_point_layer_gets_xy(tmp_path):
+    layer = Layer(
+        [Point(512000.125, 5001000.5), None],
+        {"line": np.array(["L1", "L2"]), "depth_m": np.array([14.5, np.nan])},
+    )
+    rows = _rows(layer_to_csv(tmp_path / "p.csv", layer))
+    assert rows == [
+        ["x", "y", "line", "depth_m"],
+        ["512000.125", "5001000.5", "L1", "14.5"],
+        ["", "", "L2", ""],
+    ]
+
+
+def test_line_layer_gets_wkt(tmp_path):
+    layer = Layer([LineString([(0, 0), (1.5, 2)])], {"elevation_m": np.array([200.0])})
+    rows = _rows(layer_to_csv(tmp_path / "l.csv", layer))
+    assert rows[0] == ["wkt", "elevation_m"]
+    from shapely import wkt
+
+    assert wkt.loads(rows[1][0]).equals(LineString([(0, 0), (1.5, 2)]))
+    rows = _rows(layer_to_csv(tmp_path / "n.csv", layer, geometry=None))
+    assert rows == [["elevation_m"], ["200.0"]]
+
+
+def test_attribute_layer(tmp_path):
+    rows = _rows(layer_to_csv(tmp_path / "a.csv", Layer(None, {"mistie_ms": np.array([1.5, -2.0])})))
+    assert rows == [["mistie_ms"], ["1.5"], ["-2.0"]]
+
+
+def test_repeat_write_is_byte_identical(tmp_path, rng):
+    cols = {"a": rng.normal(size=50), "b": np.arange(50), "c": np.array(["x"] * 50)}
+    a = write_csv(tmp_path / "a.csv", cols)
+    b = write_csv(tmp_path / "b.csv", cols)
+    assert a.read_bytes() == b.read_bytes()
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"columns": {"a": np.arange(3), "b": np.arange(2)}}, "one length"),
+        ({"columns": {"a": np.zeros((2, 2))}}, "1-D"),
+        ({"columns": {"a": np.array([1j])}}, "dtype complex128"),
+        ({"columns": {"a": np.arange(2)}, "digits": 0}, "digits=0"),
+    ],
+    ids=["ragged", "2d", "complex", "digits"],
+)
+def test_bad_tables_are_refused(tmp_path, kwargs, message):
+    target = tmp_path / "t.csv"
+    target.write_text("earlier")
+    with pytest.raises(OutputError, match=message):
+        write_csv(target, **kwargs)
+    assert target.read_text() == "earlier"
+
+
+def test_xy_field_clash(tmp_path):
+    with pytest.raises(OutputError, match="field 'x' clashes"):
+        layer_to_csv(tmp_path / "c.csv", Layer([Point(0, 0)], {"x": np.array([1.0])}))
