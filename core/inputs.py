@@ -248,12 +248,13 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
                 None,
                 f"fields are separated by spaces: use commas; expected the header {wanted}",
             )
-    if columns and all(_looks_numeric(c) for c in columns if c):
+    known_names = set(required) | set(optional)
+    if columns and not known_names & set(columns) and any(_looks_numeric(c) for c in columns):
         raise InputFileError(
             path,
             header_line,
             None,
-            f"the first row {header_raw.strip()[:60]!r} holds numbers, not column names: add the header "
+            f"the first row {header_raw.strip()[:60]!r} holds data, not column names: add the header "
             f"row {', '.join(required)}",
         )
     for j, name in enumerate(columns):
@@ -402,7 +403,7 @@ def _check_geographic(table: CsvTable, x, y, crs_in) -> None:
             path,
             lines[i],
             fld,
-            f"x={x[i]:g}, y={y[i]:g} look like projected coordinates in metres, but the survey CRS "
+            f"x={x[i]:.10g}, y={y[i]:.10g} look like projected coordinates in metres, but the survey CRS "
             f"{label} is geographic{note}: set crs in survey.toml to the projected CRS of the "
             "coordinates",
         )
@@ -413,16 +414,16 @@ def _check_geographic(table: CsvTable, x, y, crs_in) -> None:
             path,
             lines[i],
             "y",
-            f"latitude y={y[i]:g} is out of [-90, 90] while every x is a valid latitude: longitude and "
+            f"latitude y={y[i]:.10g} is out of [-90, 90] while every x is a valid latitude: longitude and "
             f"latitude look swapped; x must be the longitude and y the latitude ({crsmod.AXIS_ORDER_NOTE})",
         )
     lon_bad = np.abs(x) > 180
     if lon_bad.any():
         i = int(np.flatnonzero(lon_bad)[0])
-        raise InputFileError(path, lines[i], "x", f"longitude x={x[i]:g} is out of [-180, 180]{note}")
+        raise InputFileError(path, lines[i], "x", f"longitude x={x[i]:.10g} is out of [-180, 180]{note}")
     if lat_bad.any():
         i = int(np.flatnonzero(lat_bad)[0])
-        raise InputFileError(path, lines[i], "y", f"latitude y={y[i]:g} is out of [-90, 90]{note}")
+        raise InputFileError(path, lines[i], "y", f"latitude y={y[i]:.10g} is out of [-90, 90]{note}")
 
 
 def _lonlat(table: CsvTable, x, y, crs_in):
@@ -448,8 +449,8 @@ def _lonlat(table: CsvTable, x, y, crs_in):
                 table.path,
                 table.lines[i],
                 "x",
-                f"x={x[i]:g}, y={y[i]:g} cannot be located in the survey CRS {crsmod.crs_label(crs_in)}: "
-                "check crs in survey.toml",
+                f"x={x[i]:.10g}, y={y[i]:.10g} cannot be located in the survey CRS "
+                f"{crsmod.crs_label(crs_in)}: check crs in survey.toml",
             )
     bounds = crsmod.geographic_bounds(crs_in)
     if bounds is not None:
@@ -460,7 +461,8 @@ def _lonlat(table: CsvTable, x, y, crs_in):
                 table.path,
                 table.lines[worst],
                 "x",
-                f"x={x[worst]:g}, y={y[worst]:g} (longitude {lon[worst]:.3f}, latitude {lat[worst]:.3f}) "
+                f"x={x[worst]:.10g}, y={y[worst]:.10g} "
+                f"(longitude {lon[worst]:.3f}, latitude {lat[worst]:.3f}) "
                 f"lies {out[worst]:.1f} degrees outside the area of use of {crsmod.crs_label(crs_in)} "
                 f"(longitude {bounds[0]:g}..{bounds[2]:g}, latitude {bounds[1]:g}..{bounds[3]:g}): the "
                 "coordinates do not belong to this CRS; check crs in survey.toml",
@@ -826,7 +828,7 @@ class _Toml:
             m = self._HEADER.match(raw)
             if m:
                 current = m.group(1).strip().strip("\"'")
-                if key is None and current == table:
+                if (key is None and current == table) or (table is None and current == key):
                     return i
                 continue
             if key is not None and current == table:
@@ -854,11 +856,11 @@ def _unknown_key(toml: _Toml, table, key, valid):
     hint = f"'{key}' belongs in [{elsewhere[0]}]; " if elsewhere else _suggest(key, valid)
     if str(key).lower().startswith("out"):
         hint = "outputs are not set in survey.toml: give the output folder on the command line (--out DIR); "
-    where = f"[{table}]" if table else "the top level"
+    where = f"in [{table}]" if table else "at the top level"
     return toml.error(
         table,
         key,
-        f"unknown key '{key}' in {where}: {hint}valid keys: {', '.join(valid)}",
+        f"unknown key '{key}' {where}: {hint}valid keys: {', '.join(valid)}",
     )
 
 
@@ -1053,16 +1055,17 @@ def _file_value(toml, key, value, required):
         raise toml.error("files", key, "the file name is empty")
     try:
         resolved = (toml.path.parent / Path(value.strip()).expanduser()).resolve()
-        if resolved.is_dir():
-            raise toml.error("files", key, f"'{value}' is a folder ({resolved}), not a file")
-        if not resolved.is_file():
-            raise toml.error(
-                "files",
-                key,
-                f"file not found: '{value}' (resolved to {resolved}; paths are relative to survey.toml)",
-            )
-    except (OSError, ValueError) as exc:
+        is_dir, is_file = resolved.is_dir(), resolved.is_file()
+    except (OSError, ValueError, RuntimeError) as exc:
         raise toml.error("files", key, f"cannot use the path {value!r}: {exc}") from exc
+    if is_dir:
+        raise toml.error("files", key, f"'{value}' is a folder ({resolved}), not a file")
+    if not is_file:
+        raise toml.error(
+            "files",
+            key,
+            f"file not found: '{value}' (resolved to {resolved}; paths are relative to survey.toml)",
+        )
     return resolved
 
 
