@@ -44,6 +44,7 @@ __all__ = [
     "combine_lines",
     "cross_components",
     "dip_direction_from_strike",
+    "resolve_cross_dips",
     "strike_from_dip_direction",
     "surface_dips",
     "traveltime_dip_deg",
@@ -454,6 +455,59 @@ def cross_components(gathers, dips, max_distance_m=None) -> np.ndarray:
     nh = np.asarray(dips.normal_h, dtype=float)
     q[has] = -np.sum(w[has] * nh[k[has]], axis=1)
     return q
+
+
+def resolve_cross_dips(gathers, refit, fits=None, *, radius_m=None, min_angle_deg=30.0, max_condition=None,
+                       max_distance_m=None, max_iter=8, tol=1e-9):
+    """Alternate :func:`combine_lines` and a refit with the resolved cross-line components.
+
+    A gather fitted with q assumed 0 has a slightly biased s where the
+    receivers are not level with the source or not on a straight line (the
+    image-source time involves q through the cross-line offsets and
+    :math:`c = \\sqrt{1-s^2-q^2}`), so the first combination is slightly off;
+    refitting with the resolved q and combining again converges in a few
+    rounds (a fixed-point iteration). Stops when no q changes by more than
+    ``tol`` or after ``max_iter`` rounds.
+
+    Parameters
+    ----------
+    gathers : core.model.GatherSet
+    refit : callable
+        ``refit(q) -> fits`` with q per gather (0 where unresolved), e.g.
+        ``lambda q: inversion.fit_shot_gathers(gathers, settings, cross_component=q)``.
+    fits : optional
+        Fits with q = 0 to start from (``refit(zeros)`` when omitted).
+    radius_m, min_angle_deg, max_condition
+        Passed to :func:`combine_lines`.
+    max_distance_m
+        Passed to :func:`cross_components`.
+
+    Returns
+    -------
+    fits, dips, q, rounds
+        The last fits (made with ``q``), the last :class:`DipMeasurements`,
+        q per gather (NaN unresolved) and the number of refits done.
+    """
+    g = gathers.n_gathers
+    if fits is None:
+        fits = refit(np.zeros(g))
+    q_used = np.zeros(g)
+    dips = q = None
+    rounds = 0
+    for rounds in range(1, max_iter + 1):
+        dips = combine_lines(gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg,
+                             max_condition=max_condition)
+        q = cross_components(gathers, dips, max_distance_m=max_distance_m)
+        q_new = np.where(np.isfinite(q), q, 0.0)
+        change = float(np.max(np.abs(q_new - q_used))) if g else 0.0
+        if change <= tol:
+            return fits, dips, q, rounds - 1
+        fits = refit(q_new)
+        q_used = q_new
+    dips = combine_lines(
+        gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg, max_condition=max_condition
+    )
+    return fits, dips, cross_components(gathers, dips, max_distance_m=max_distance_m), rounds
 
 
 # ---------------------------------------------------------------------------
