@@ -32,7 +32,7 @@ import numpy as np
 from .atomic import atomic_path
 from .errors import OutputError
 
-__all__ = ["FORMULA_PREFIXES", "guard_text", "layer_to_csv", "write_csv"]
+__all__ = ["FORMULA_PREFIXES", "guard_text", "layer_to_csv", "write_csv", "write_layer_csv"]
 
 #: leading characters a spreadsheet may evaluate (OWASP, "CSV Injection")
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
@@ -130,7 +130,9 @@ def write_csv(
     return path
 
 
-def layer_to_csv(path, layer, *, geometry: str | None = "xy", digits: int | None = None, bom=False) -> Path:
+def write_layer_csv(
+    path, layer, *, geometry: str | None = "xy", digits: int | None = None, bom: bool = False
+) -> Path:
     """Write a :class:`.gpkg.Layer`'s attribute table to CSV.
 
     Parameters
@@ -171,3 +173,7 @@ def layer_to_csv(path, layer, *, geometry: str | None = "xy", digits: int | None
             raise OutputError(f"field '{name}' clashes with the geometry column '{name}'; rename the field")
         columns[name] = values
     return write_csv(path, columns, digits=digits, bom=bom)
+
+
+#: the same function under its older name
+layer_to_csv = write_layer_csv
