@@ -329,8 +329,8 @@ def transform_xy(x, y, src, dst, *, check_finite=True):
         i = int(np.flatnonzero(bad.ravel())[0])
         raise GeoreferenceError(
             f"{int(bad.sum())} point(s) cannot be transformed from {crs_label(src)} to "
-            f"{crs_label(dst)}, the first is x={x.ravel()[i]!r}, y={y.ravel()[i]!r}: check that the "
-            "coordinates belong to that CRS"
+            f"{crs_label(dst)}, the first is x={float(x.ravel()[i]):.10g}, y={float(y.ravel()[i]):.10g}: "
+            "check that the coordinates belong to that CRS"
         )
     return xo, yo
 
