@@ -68,6 +68,8 @@ References
 [Duchon 1977] Duchon, J. (1977). Splines minimizing rotation-invariant
     semi-norms in Sobolev spaces. Lecture Notes in Mathematics 571, 85-100.
 [Wahba 1990] Wahba, G. (1990). Spline Models for Observational Data. SIAM.
+[Gneiting & Raftery 2007] Gneiting, T. & Raftery, A. E. (2007). Strictly proper
+    scoring rules, prediction, and estimation. JASA 102(477), 359-378.
 """
 
 from __future__ import annotations
@@ -95,7 +97,9 @@ __all__ = [
     "SurfaceGrid",
     "ThinPlateSpline",
     "VariogramModel",
+    "choose_variogram",
     "cross_validate",
+    "default_max_distance",
     "experimental_variogram",
     "fit_variogram",
     "interpolate_surface",
@@ -746,6 +750,13 @@ class CrossValidation:
         (common practice; [Cressie 1993, s. 2.6.4]).
     fraction_within_2sigma : float
         Fraction of ``|standardised| <= 2`` (about 0.954 for Gaussian errors).
+    mean_log_score : float
+        Mean negative Gaussian log predictive density,
+        :math:`\\tfrac12\\overline{\\log(2\\pi s_i^2) + r_i^2/s_i^2}`, a proper
+        scoring rule that rewards both small residuals and honest std
+        ([Gneiting & Raftery 2007]); lower is better. NaN without std.
+    index : ndarray of int
+        Indices of the validated data (all, or a random subset).
     """
 
     estimate: np.ndarray
@@ -756,9 +767,11 @@ class CrossValidation:
     rmse: float
     mean_standardised_squared_error: float
     fraction_within_2sigma: float
+    mean_log_score: float
+    index: np.ndarray
 
     @classmethod
-    def from_residuals(cls, estimate, residual, std):
+    def from_residuals(cls, estimate, residual, std, index=None):
         estimate = np.asarray(estimate, float)
         residual = np.asarray(residual, float)
         std = np.asarray(std, float)
@@ -767,6 +780,10 @@ class CrossValidation:
         has = np.isfinite(s)
         msse = float(np.mean(s[has] ** 2)) if has.any() else float("nan")
         within = float(np.mean(np.abs(s[has]) <= 2.0)) if has.any() else float("nan")
+        if has.all() and np.all(std > 0):
+            score = float(0.5 * np.mean(np.log(2 * np.pi * std**2) + s**2))
+        else:
+            score = float("nan")
         return cls(
             estimate=estimate,
             residual=residual,
@@ -776,16 +793,76 @@ class CrossValidation:
             rmse=float(np.sqrt(np.mean(residual**2))),
             mean_standardised_squared_error=msse,
             fraction_within_2sigma=within,
+            mean_log_score=score,
+            index=np.arange(residual.size) if index is None else np.asarray(index),
         )
 
     def summary(self) -> dict:
-        """The four summary statistics as a plain dict."""
+        """The summary statistics as a plain dict."""
         return {
             "mean_error": self.mean_error,
             "rmse": self.rmse,
             "mean_standardised_squared_error": self.mean_standardised_squared_error,
             "fraction_within_2sigma": self.fraction_within_2sigma,
+            "mean_log_score": self.mean_log_score,
+            "n_validated": int(self.residual.size),
         }
+
+
+def choose_variogram(x, y, z, error_variance=None, model="auto", neighbours=32, max_points=2000,
+                     experimental=None):
+    """Fit a variogram to data, for kriging with measurement error.
+
+    1. :func:`experimental_variogram` of the data (unless ``experimental`` is given);
+    2. :func:`fit_variogram` of ``model``, or of each of the three models when
+       ``model="auto"``;
+    3. the mean error variance :math:`\\bar e` is subtracted from each fitted
+       nugget, which then holds only micro-scale variation:
+       :math:`c_{MS} = \\max(c_0 - \\bar e, 0)` ([Cressie 1993, s. 3.2.1]; the
+       experimental variogram of noisy data is that of the signal plus
+       :math:`(e_i + e_j)/2` on average);
+    4. with ``model="auto"`` the model with the lowest leave-one-out
+       :attr:`CrossValidation.mean_log_score` (on at most ``max_points``
+       data) is chosen: smooth reflectors usually pick the gaussian model,
+       whose parabolic start the spherical and exponential models cannot
+       follow (they overstate the short-lag variance and so the std).
+
+    Returns
+    -------
+    variogram : VariogramModel
+    info : dict
+        ``experimental_variogram``, ``fitted`` (model name -> VariogramModel as
+        fitted, before the nugget split), ``scores`` (model name -> mean log
+        score, with "auto") and ``mean_error_variance``.
+    """
+    x, y, z, e = _as_xyz(x, y, z, error_variance)
+    models = sorted(VARIOGRAM_MODELS) if model == "auto" else [model]
+    for m in models:
+        _check_model_name(m)
+    ev = experimental if experimental is not None else experimental_variogram(x, y, z)
+    mean_e = float(np.mean(e))
+    fitted = {}
+    used = {}
+    for m in models:
+        v = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, m)
+        fitted[m] = v
+        used[m] = VariogramModel(m, max(v.nugget - mean_e, 0.0), v.sill, v.range_m)
+    info = {"experimental_variogram": ev, "fitted": fitted, "scores": None, "mean_error_variance": mean_e}
+    if len(models) == 1:
+        return used[models[0]], info
+    scores = {}
+    for m in models:
+        try:
+            cv = OrdinaryKriging(used[m], neighbours=neighbours).fit(x, y, z, e).cross_validate(
+                max_points=max_points
+            )
+            sc = cv.mean_log_score
+        except (InversionError, np.linalg.LinAlgError):
+            sc = float("nan")
+        scores[m] = sc if math.isfinite(sc) else float("inf")
+    info["scores"] = scores
+    best = min(models, key=lambda m: scores[m])
+    return used[best], info
 
 
 def _default_threads():
@@ -813,15 +890,14 @@ class OrdinaryKriging:
     Parameters
     ----------
     variogram : VariogramModel or "auto"
-        The model, or "auto" to fit one in :meth:`fit` (experimental variogram
-        then :func:`fit_variogram` with ``variogram_model``). With "auto" and
-        error variances, the mean error variance is subtracted from the fitted
-        nugget (it is measurement error, not micro-scale variation:
-        :math:`c_{MS} = \\max(c_0 - \\bar e, 0)`, [Cressie 1993, s. 3.2.1]).
+        The model, or "auto" to fit one in :meth:`fit` with
+        :func:`choose_variogram` (the mean error variance is then taken out of
+        the fitted nugget).
     neighbours : int or None
         Number of nearest data per target (default 32); None = all data.
     variogram_model : str
-        Model fitted when ``variogram="auto"``.
+        Model fitted when ``variogram="auto"``: "spherical", "exponential",
+        "gaussian", or "auto" (the best of the three by cross-validation).
     n_threads : int, optional
         Worker threads for the chunks (default: the CPU count, at most 8).
 
@@ -831,6 +907,8 @@ class OrdinaryKriging:
         The model used.
     experimental_variogram_ : ExperimentalVariogram or None
         The experimental variogram when the model was fitted.
+    variogram_info_ : dict
+        What :func:`choose_variogram` returned beside the model (when fitted).
     n_data_ : int
 
     Examples
@@ -879,19 +957,13 @@ class OrdinaryKriging:
                 f"(global is limited to {GLOBAL_MAX_DATA} data)"
             )
         self.experimental_variogram_ = None
+        self.variogram_info_ = None
         if isinstance(self.variogram, VariogramModel):
             vario = self.variogram
         elif isinstance(self.variogram, str) and self.variogram == "auto":
-            _check_model_name(self.variogram_model)
-            ev = experimental_variogram(x, y, z)
-            vario = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, self.variogram_model)
-            mean_e = float(np.mean(e))
-            if mean_e > 0:
-                nug = max(vario.nugget - mean_e, 0.0)
-                if nug + vario.sill <= 0:  # pragma: no cover - sill > 0 by the fit bounds
-                    nug = vario.nugget
-                vario = VariogramModel(vario.model, nug, vario.sill, vario.range_m)
-            self.experimental_variogram_ = ev
+            vario, info = choose_variogram(x, y, z, e, self.variogram_model, neighbours=k)
+            self.experimental_variogram_ = info["experimental_variogram"]
+            self.variogram_info_ = info
         else:
             raise ValueError(
                 f"variogram must be a VariogramModel or 'auto', got {self.variogram!r}"
@@ -1100,7 +1172,7 @@ class OrdinaryKriging:
             method="kriging", n_data=self.n_data_,
         )
 
-    def cross_validate(self, progress=None):
+    def cross_validate(self, progress=None, max_points=None, seed=0):
         """Leave-one-out cross-validation of the fitted kriging.
 
         Each datum is estimated from the others with the same variogram. In a
@@ -1114,44 +1186,56 @@ class OrdinaryKriging:
         The residual's variance is :math:`\\sigma_K^2(\\mathbf s_i) + e_i`: the
         error of predicting the signal plus the datum's own measurement error.
 
+        Parameters
+        ----------
+        progress : object, optional
+        max_points : int, optional
+            Validate only a random subset of this many data (each still
+            estimated from *all* the other data); default all.
+        seed : int
+            Seed of that subset.
+
         Returns
         -------
         CrossValidation
         """
         self._check_fitted()
         n = self.n_data_
-        if n < 3:  # pragma: no cover - _as_xyz requires 3
-            raise InversionError("cross-validation needs at least 3 data")
+        sel = np.arange(n)
+        if max_points is not None and n > int(max_points):
+            sel = np.sort(np.random.default_rng(seed).choice(n, int(max_points), replace=False))
         s = self.variogram_.total_sill
         if self._k is None:
             bmat = np.linalg.inv(self._global_matrix())
             bz = bmat[:n, :n] @ self.z_
             bii = np.diag(bmat)[:n]
-            resid = bz / bii
-            var_tot = -s / bii
-            est = self.z_ - resid
-            return CrossValidation.from_residuals(est, resid, np.sqrt(np.maximum(var_tot, 0.0)))
+            resid = (bz / bii)[sel]
+            var_tot = (-s / bii)[sel]
+            est = self.z_[sel] - resid
+            return CrossValidation.from_residuals(est, resid, np.sqrt(np.maximum(var_tot, 0.0)), sel)
         k = min(self._k, n - 1)
         kq = k + 1
-        est = np.empty(n)
-        var = np.empty(n)
+        m = sel.size
+        est = np.empty(m)
+        var = np.empty(m)
         chunk = self._chunk_size(k)
 
         def work(sl):
-            tx = self._xc[sl]
-            ty = self._yc[sl]
+            own_idx = sel[sl]
+            tx = self._xc[own_idx]
+            ty = self._yc[own_idx]
             _, idx = self.tree_.query(np.column_stack([tx, ty]), k=kq, workers=1)
-            own = idx == np.arange(sl.start, sl.stop)[:, None]
+            own = idx == own_idx[:, None]
             order = np.argsort(own, axis=1, kind="stable")  # own index (if found) last
             idx = np.take_along_axis(idx, order, axis=1)[:, :k]
             e, v = self._solve_local(tx, ty, idx)
             est[sl] = e
             var[sl] = v
 
-        self._run_chunks(n, chunk, work, progress)
-        resid = self.z_ - est
-        std = np.sqrt(np.maximum(var, 0.0) + self.error_variance_)
-        return CrossValidation.from_residuals(est, resid, std)
+        self._run_chunks(m, chunk, work, progress)
+        resid = self.z_[sel] - est
+        std = np.sqrt(np.maximum(var, 0.0) + self.error_variance_[sel])
+        return CrossValidation.from_residuals(est, resid, std, sel)
 
 
 def _distance_mask(tree, spec, max_distance_m, origin):
@@ -1231,6 +1315,8 @@ class ThinPlateSpline:
         The :math:`\\lambda` used.
     cv_scores_ : dict or None
         Held-out RMSE (m) of each candidate when chosen automatically.
+    cv_ : CrossValidation or None
+        The 5-fold held-out residuals of the chosen smoothing (std NaN).
     """
 
     CANDIDATES = (0.0, 1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1, 1.0, 10.0)
@@ -1260,6 +1346,7 @@ class ThinPlateSpline:
         me = float(np.mean(e))
         w = e / me if me > 0 else np.ones_like(z)
         self.cv_scores_ = None
+        self.cv_ = None
         if isinstance(self.smoothing, str):
             if self.smoothing != "auto":
                 raise ValueError(f"smoothing must be a number >= 0 or 'auto', got {self.smoothing!r}")
@@ -1282,21 +1369,24 @@ class ThinPlateSpline:
         xy, z, w = xy[sel], z[sel], w[sel]
         fold = rng.permutation(len(z)) % folds
         scores = {}
+        preds = {}
         for lam in self.CANDIDATES:
-            sq = 0.0
-            for f in range(folds):
-                tr = fold != f
-                try:
-                    pred = self._rbf(xy[tr], z[tr], lam * w[tr])(xy[~tr])
-                except (np.linalg.LinAlgError, ValueError):
-                    sq = np.inf
-                    break
-                sq += float(np.sum((z[~tr] - pred) ** 2))
-            scores[lam] = math.sqrt(sq / len(z))
+            pred = np.empty(len(z))
+            try:
+                for f in range(folds):
+                    tr = fold != f
+                    pred[~tr] = self._rbf(xy[tr], z[tr], lam * w[tr])(xy[~tr])
+            except (np.linalg.LinAlgError, ValueError):
+                scores[lam] = math.inf
+                continue
+            scores[lam] = float(np.sqrt(np.mean((z - pred) ** 2)))
+            preds[lam] = pred
         self.cv_scores_ = scores
         best = min(scores.values())
         # the largest smoothing within 0.1 % of the best score
-        return max(lam for lam, s in scores.items() if s <= best * (1 + 1e-3))
+        lam = max(lam for lam, sc in scores.items() if sc <= best * (1 + 1e-3))
+        self.cv_ = CrossValidation.from_residuals(preds[lam], z - preds[lam], np.full(len(z), np.nan), sel)
+        return lam
 
     def predict(self, x, y, progress=None):
         """Spline value at points, and NaN as std (the spline has no variance)."""
@@ -1365,10 +1455,11 @@ def interpolate_surface(
     spec=None,
     method="kriging",
     neighbours=32,
-    variogram_model="spherical",
+    variogram_model="auto",
     max_distance_m=None,
     progress=None,
     variogram=None,
+    cv_max_points=20000,
 ):
     """Reflector surface on a grid, with diagnostics (the pipeline's call).
 
@@ -1378,61 +1469,72 @@ def interpolate_surface(
         Reflector points (m): easting, northing, elevation.
     sigma : array_like (n,) or float, optional
         Standard error of each elevation (m); 0 (or tiny) for boreholes.
-        Its square is the measurement-error variance on the kriging diagonal.
+        Its square is the measurement-error variance on the kriging diagonal
+        (and the relative smoothing weight of the spline).
     spec : GridSpec, optional
         Default :meth:`GridSpec.from_data`.
     method : "kriging" or "spline"
     neighbours : int or None
         Local neighbourhood size (None = global).
     variogram_model : str
-        Model fitted to the experimental variogram (kriging).
+        "auto" (default: the best of spherical, exponential and gaussian by
+        leave-one-out log score, see :func:`choose_variogram`) or one of them.
     max_distance_m : float, optional
         Mask distance; default :func:`default_max_distance`.
     progress : object, optional
         Progress sink; cancellation is checked between chunks.
     variogram : VariogramModel, optional
         Use this model instead of fitting one.
+    cv_max_points : int
+        Leave-one-out cross-validation of at most this many data (random,
+        seeded), each estimated from all others.
 
     Returns
     -------
     surface : SurfaceGrid
     diagnostics : dict
-        ``experimental_variogram`` (ExperimentalVariogram or None),
-        ``variogram`` (VariogramModel used or None), ``fitted_nugget``
-        (before subtracting the mean error variance), ``cross_validation``
-        (CrossValidation; kriging, or spline with NaN std),
-        ``max_distance_m``, ``n_cells``, ``n_cells_estimated``, ``smoothing``
-        (spline), ``method``.
+        ``method``, ``n_data``, ``experimental_variogram``
+        (ExperimentalVariogram or None), ``variogram`` (VariogramModel used,
+        kriging), ``variogram_fitted`` (model name -> model before the nugget
+        split), ``variogram_scores`` (model name -> log score, with "auto"),
+        ``cross_validation`` (CrossValidation; for the spline std is NaN),
+        ``smoothing`` (spline), ``max_distance_m``, ``n_cells``,
+        ``n_cells_estimated``.
     """
+    from .progress import SubProgress
+
     progress = progress or NullProgress()
-    x, y, z, e = _as_xyz(x, y, z, None if sigma is None else np.square(np.asarray(sigma, dtype=float)))
-    if sigma is not None and np.any(np.asarray(sigma, dtype=float) < 0):
-        raise ValueError("sigma must be >= 0 (m)")
+    if sigma is not None:
+        sig = np.asarray(sigma, dtype=float)
+        if np.any(sig < 0):
+            raise ValueError(f"sigma must be >= 0 (m), got {sig[sig < 0].ravel()[0]!r}")
+        e = np.square(sig)
+    else:
+        e = None
+    x, y, z, e = _as_xyz(x, y, z, e)
     if spec is None:
         spec = GridSpec.from_data(x, y)
     diag = {"method": method, "n_data": int(x.size), "experimental_variogram": None, "variogram": None,
-            "fitted_nugget": None, "smoothing": None}
-    from .progress import SubProgress
-
+            "variogram_fitted": None, "variogram_scores": None, "smoothing": None}
     if method == "kriging":
+        check_cancel(progress)
         if variogram is None:
-            check_cancel(progress)
-            ev = experimental_variogram(x, y, z)
-            fitted = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, variogram_model)
-            diag["experimental_variogram"] = ev
-            diag["fitted_nugget"] = fitted.nugget
-            me = float(np.mean(e))
-            nugget = max(fitted.nugget - me, 0.0)
-            variogram = VariogramModel(fitted.model, nugget, fitted.sill, fitted.range_m)
+            variogram, info = choose_variogram(x, y, z, e, variogram_model, neighbours=neighbours)
+            diag["experimental_variogram"] = info["experimental_variogram"]
+            diag["variogram_fitted"] = info["fitted"]
+            diag["variogram_scores"] = info["scores"]
+        check_cancel(progress)
         progress.set_progress(5)
         model = OrdinaryKriging(variogram, neighbours=neighbours).fit(x, y, z, e)
         diag["variogram"] = model.variogram_
-        diag["cross_validation"] = model.cross_validate(SubProgress(progress, 5, 30))
-        p0 = 30
+        diag["cross_validation"] = model.cross_validate(
+            SubProgress(progress, 5, 25), max_points=cv_max_points
+        )
+        p0 = 25
     elif method == "spline":
         model = ThinPlateSpline("auto", neighbours=neighbours).fit(x, y, z, e)
         diag["smoothing"] = model.smoothing_
-        diag["cross_validation"] = None
+        diag["cross_validation"] = model.cv_  # 5-fold, std NaN; None with a fixed smoothing
         p0 = 20
     else:
         raise ValueError(f"method must be 'kriging' or 'spline', got {method!r}")
@@ -1444,4 +1546,3 @@ def interpolate_surface(
     diag["n_cells_estimated"] = int((~surf.mask).sum())
     progress.set_progress(100)
     return surf, diag
-

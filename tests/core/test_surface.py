@@ -15,6 +15,7 @@ from reflector_mapper.core.surface import (
     OrdinaryKriging,
     ThinPlateSpline,
     VariogramModel,
+    choose_variogram,
     cross_validate,
     experimental_variogram,
     fit_variogram,
@@ -289,6 +290,23 @@ def test_fit_recovers_model_from_a_simulated_field(model):
     assert fit.nugget < 0.3
 
 
+@pytest.mark.parametrize(
+    ("truth_model", "allowed"),
+    [("gaussian", {"gaussian"}), ("exponential", {"exponential", "spherical"})],
+    ids=["smooth-field", "rough-field"],
+)
+def test_auto_model_choice_follows_the_field(truth_model, allowed):
+    # A smooth (gaussian-covariance) field has a parabolic variogram near the origin, a rough
+    # (exponential) one a linear start (Journel & Huijbregts 1978, ch. II): choosing by
+    # cross-validated log score must tell them apart. Spherical and exponential both start
+    # linearly, so either is accepted for the rough field.
+    truth = VariogramModel(truth_model, nugget=0.0, sill=1.0, range_m=400.0)
+    x, y, z, e, _ = _gaussian_field(11, n=400, vario=truth, error_var=0.01)
+    vario, info = choose_variogram(x, y, z, e, "auto", neighbours=32)
+    assert vario.model in allowed
+    assert info["scores"][vario.model] == min(info["scores"].values())
+
+
 def test_fit_needs_three_bins():
     with pytest.raises(InversionError, match="at least 3 non-empty lag bins"):
         fit_variogram([10.0, 20.0, 30.0], [1.0, 2.0, np.nan], [5, 5, 0])
@@ -394,7 +412,10 @@ def test_interpolate_surface_end_to_end(rng):
     spec = GridSpec(x0=-47.5, y0=447.5, cell_size_m=5.0, nx=100, ny=100)
     surf, diag = interpolate_surface(x, y, z, sigma, spec, neighbours=32, max_distance_m=60.0)
     assert surf.method == "kriging" and surf.n_data == x.size
-    assert diag["variogram"].model == "spherical"
+    # a plane's variogram starts parabolic: of the three models the gaussian one follows it,
+    # and the leave-one-out log score must choose it
+    assert diag["variogram"].model == "gaussian"
+    assert set(diag["variogram_scores"]) == {"spherical", "exponential", "gaussian"}
     cv = diag["cross_validation"]
     # leave-one-out residual = datum noise (sd 0.5 m) + interpolation error of a plane sampled
     # every 5 m along the lines (a few cm): rmse between 0.45 and 0.8 m (320 residuals: the
