@@ -114,9 +114,10 @@ __all__ = [
 CONDITION_LIMIT = 1.0e7
 
 _MAX_ITER = 100  # Levenberg-Marquardt iterations per fit
-_XTOL = 1.0e-8  # convergence: largest step of an internal parameter (relative for V, h)
+_XTOL = 1.0e-6  # convergence: largest accepted step of an internal parameter (relative for V, h)
 _MAX_STEP = 2.0  # largest step of an internal parameter per iteration
 _MAX_REJECTION_ROUNDS = 5
+_LAMBDA0 = 1.0e-9  # initial Levenberg-Marquardt damping (relative to diag H): nearly Gauss-Newton
 _BLOCK_ELEMENTS = 49152  # padded picks per block of the engine (cache-sized)
 _MAD_TO_SIGMA = 1.4826  # MAD of a Gaussian times this = its standard deviation
 _MIN_H_M = 0.01  # plane closer than this to the source: nonphysical
@@ -266,6 +267,38 @@ def _check_loss(loss: str) -> str:
     return loss
 
 
+def _loss_terms(e, loss, f_scale):
+    """Per-gather robust cost and per-pick :math:`\\rho'` and curvature weights of residuals e.
+
+    Returns ``cost`` (k,) = :math:`\\sum C^2\\rho(e^2/C^2)`, ``r1`` = :math:`\\rho'(z)` and
+    ``wc`` = :math:`\\max(\\psi'(e), 10^{-3}\\rho'(z))` with :math:`z = e^2/C^2`; one
+    pass for the three, as the engine needs them at every trial point.
+    """
+    C2 = f_scale * f_scale
+    z = e * e
+    if loss == "linear":
+        return np.sum(z, axis=1), np.ones_like(z), np.ones_like(z)
+    z *= 1.0 / C2
+    if loss == "huber":
+        inside = z <= 1.0
+        a = np.sqrt(z)
+        rho = np.where(inside, z, 2.0 * a - 1.0)
+        np.maximum(a, 1.0, out=a)
+        r1 = np.divide(1.0, a, out=a)
+        wc = np.where(inside, 1.0, 1e-3 * r1)
+    elif loss == "soft_l1":
+        a = np.sqrt(1.0 + z)
+        rho = 2.0 * (a - 1.0)
+        r1 = 1.0 / a
+        wc = r1 / (1.0 + z)
+    else:  # cauchy
+        a = 1.0 + z
+        rho = np.log(a)
+        r1 = 1.0 / a
+        wc = np.maximum((1.0 - z) * r1 * r1, 1e-3 * r1)
+    return C2 * np.sum(rho, axis=1), r1, wc
+
+
 def _rho(z, loss):
     """Loss :math:`\\rho(z)` of the squared scaled residual z (scipy's definitions)."""
     if loss == "linear":
@@ -330,21 +363,41 @@ def _loss_variance_inflation(loss: str, f_scale: float) -> float:
 
 
 def _pad_layout(gather: np.ndarray, n_gathers: int):
-    """Row/column of each pick in a ``(g, nmax)`` padded layout."""
+    """Row/column of each pick in a ``(g, nmax)`` padded layout.
+
+    When the picks are already grouped by gather in increasing order and all
+    gathers have the same number of picks (the usual case), ``row`` and
+    ``col`` are None and padding is a plain reshape.
+    """
     gather = np.asarray(gather, dtype=np.intp)
+    n = len(gather)
     counts = np.bincount(gather, minlength=n_gathers)
+    nmax = max(int(counts.max()) if len(counts) and n else 1, 1)
+    if n and n == n_gathers * nmax and np.all(gather[1:] >= gather[:-1]):
+        return None, None, nmax
     order = np.argsort(gather, kind="stable")
     starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    col = np.empty(len(gather), dtype=np.intp)
-    col[order] = np.arange(len(gather)) - starts[gather[order]]
-    nmax = int(counts.max()) if len(counts) and len(gather) else 1
-    return gather, col, max(nmax, 1)
+    col = np.empty(n, dtype=np.intp)
+    col[order] = np.arange(n) - starts[gather[order]]
+    return gather, col, nmax
 
 
 def _pad(values, row, col, shape, fill=0.0, dtype=float):
+    """Flat per-pick values to a padded ``(g, nmax)`` array (``fill`` where no pick)."""
+    if row is None:
+        out = np.empty(shape, dtype=dtype)
+        out[...] = np.reshape(values, shape) if np.ndim(values) else values
+        return out
     out = np.full(shape, fill, dtype=dtype)
     out[row, col] = values
     return out
+
+
+def _unpad(padded, row, col):
+    """Padded ``(g, nmax)`` array back to flat per-pick order."""
+    if row is None:
+        return padded.reshape(-1).copy()
+    return padded[row, col]
 
 
 def _safe_solve(A, b):
@@ -405,6 +458,8 @@ class _ShotModel:
     def __init__(self, x, y, dz, d2, q):
         self.x, self.y, self.dz, self.d2 = x, y, dz, d2
         self.q = q
+        self.qy = q[:, None] * y  # constant during a fit
+        self.has_dz = bool(np.any(dz != 0))
         self.smax = np.sqrt(np.clip(1.0 - q * q, 1e-12, 1.0))
         self.offset_key = x  # signed along-line offset: distinct-offset count
         self.offset_resolution = 0.01
@@ -422,8 +477,8 @@ class _ShotModel:
         return np.column_stack([np.log(params[:, 0]), np.log(params[:, 1]), np.arctanh(r)])
 
     def evaluate(self, theta, natural=False):
-        """Predicted times (k, n) and Jacobian (3, k, n) in internal (or natural) parameters."""
-        x, y, dz, d2 = self.x, self.y, self.dz, self.d2
+        """Predicted times (k, n) and Jacobian (k, 3, n) in internal (or natural) parameters."""
+        x, dz, d2 = self.x, self.dz, self.d2
         q, smax = self.q[:, None], self.smax[:, None]
         if natural:
             V, h, s = (theta[:, i, None] for i in range(3))
@@ -434,34 +489,75 @@ class _ShotModel:
             r = np.tanh(theta[:, 2, None])
             s = smax * r
         c = np.sqrt(np.maximum(1.0 - s * s - q * q, 1e-24))
-        lin = s * x + q * y + c * dz
-        root = np.sqrt(np.maximum(d2 + 4.0 * h * (lin + h), 1e-30))
-        t = root / V
-        inv = 1.0 / (V * root)
-        J = np.empty((3, *t.shape))
-        if natural:
-            J[0] = -t / V
-            J[1] = (2.0 * lin + 4.0 * h) * inv
-            J[2] = 2.0 * h * (x - (s / c) * dz) * inv
+        lin = s * x
+        lin += self.qy
+        if self.has_dz:
+            lin += c * dz
+        root = lin + h
+        root *= 4.0 * h
+        root += d2
+        np.maximum(root, 1e-30, out=root)
+        np.sqrt(root, out=root)
+        t = root * (1.0 / V)
+        inv = np.divide(1.0, root, out=root)  # root is not needed any more
+        J = np.empty((t.shape[0], 3, t.shape[1]))
+        J1, J2 = J[:, 1], J[:, 2]
+        np.multiply(lin, 2.0, out=J1)
+        J1 += 4.0 * h
+        J1 *= inv
+        if self.has_dz:
+            np.multiply(dz, -(s / c), out=J2)
+            J2 += x
         else:
-            J[0] = -t
-            J[1] = h * (2.0 * lin + 4.0 * h) * inv
-            J[2] = 2.0 * h * (x - (s / c) * dz) * inv * (smax * (1.0 - r * r))
+            J2[...] = x
+        J2 *= inv
+        if natural:
+            np.multiply(t, -1.0 / V, out=J[:, 0])
+            J1 *= 1.0 / V
+            J2 *= 2.0 * h / V
+        else:
+            np.negative(t, out=J[:, 0])
+            J1 *= h / V
+            J2 *= 2.0 * h / V * (smax * (1.0 - r * r))
         return t, J
 
     def start(self, t, sigma, usable, settings):
-        """Weighted linear least squares in t^2 (see :func:`fit_shot_gathers`)."""
+        """Weighted linear least squares in t^2 (see :func:`fit_shot_gathers`).
+
+        First :math:`t^2 = a|\\mathbf D|^2 + b\\,x_u + c_0`; then once more with the
+        regressor :math:`|\\mathbf D|^2 + 4h(q\\,y_w + c\\,\\Delta z)` evaluated at the
+        first estimate, which takes topography and crooked lines into account
+        (the model is linear in a, b, c0 for fixed h and c).
+        """
         w = np.where(usable, 1.0 / (2.0 * t * sigma) ** 2, 0.0)  # sigma(t^2) = 2 t sigma_t
-        cols = (self.d2, self.x, np.ones_like(self.x))
         y = t * t
-        A = np.empty((len(t), 3, 3))
-        b = np.empty((len(t), 3))
-        for i in range(3):
-            b[:, i] = np.sum(w * cols[i] * y, axis=1)
-            for j in range(i + 1):
-                A[:, i, j] = A[:, j, i] = np.sum(w * cols[i] * cols[j], axis=1)
-        a, bb, c0 = _safe_solve(A, b).T
+        one = np.ones_like(self.x)
+
+        def solve(first):
+            cols = (first, self.x, one)
+            A = np.empty((len(t), 3, 3))
+            b = np.empty((len(t), 3))
+            for i in range(3):
+                wc = w * cols[i]
+                b[:, i] = np.sum(wc * y, axis=1)
+                for j in range(i + 1):
+                    A[:, i, j] = A[:, j, i] = np.sum(wc * cols[j], axis=1)
+            return A, b, _safe_solve(A, b).T
+
+        A, b, (a, bb, c0) = solve(self.d2)
         with np.errstate(invalid="ignore", divide="ignore"):
+            h = 0.5 * np.sqrt(c0 / a)
+            s = bb / (2.0 * np.sqrt(a * c0))
+            good = (a > 0) & (c0 > 0) & (np.abs(s) < 0.95 * self.smax)
+            if np.any(good) and (np.any(self.y != 0) or np.any(self.dz != 0)):
+                sg = np.where(good, s, 0.0)
+                c = np.sqrt(np.maximum(1.0 - sg * sg - self.q * self.q, 0.0))
+                hg = np.where(good, h, 0.0)[:, None]
+                extra = 4.0 * hg * (self.q[:, None] * self.y + c[:, None] * self.dz)
+                _, _, (a2, bb2, c02) = solve(self.d2 + extra)
+                s2 = bb2 / (2.0 * np.sqrt(a2 * c02))
+                better = good & (a2 > 0) & (c02 > 0) & (np.abs(s2) < 0.95 * self.smax)
+                a, bb, c0 = (np.where(better, v2, v1) for v1, v2 in ((a, a2), (bb, bb2), (c0, c02)))
             V = a**-0.5
             h = 0.5 * np.sqrt(c0 / a)
             s = bb / (2.0 * np.sqrt(a * c0))
@@ -531,6 +627,7 @@ class _CmpModel:
 
     def __init__(self, x):
         self.x = x
+        self.x2 = x * x
         self.offset_key = np.abs(x)
         self.offset_resolution = 0.01
 
@@ -545,19 +642,20 @@ class _CmpModel:
         return np.log(params)
 
     def evaluate(self, theta, natural=False):
-        x2 = self.x**2
+        """Predicted times (k, n) and Jacobian (k, 2, n)."""
+        x2 = self.x2
         if natural:
             t0, vn = theta[:, 0, None], theta[:, 1, None]
         else:
             t0, vn = np.exp(theta[:, 0, None]), np.exp(theta[:, 1, None])
         t = np.sqrt(t0 * t0 + x2 / (vn * vn))
-        J = np.empty((2, *t.shape))
+        J = np.empty((t.shape[0], 2, t.shape[1]))
         if natural:
-            J[0] = t0 / t
-            J[1] = -x2 / (vn**3 * t)
+            J[:, 0] = t0 / t
+            J[:, 1] = -x2 / (vn**3 * t)
         else:
-            J[0] = t0 * t0 / t
-            J[1] = -x2 / (vn * vn * t)
+            J[:, 0] = t0 * t0 / t
+            J[:, 1] = -x2 / (vn * vn * t)
         return t, J
 
     def start(self, t, sigma, usable, settings):
@@ -689,28 +787,22 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
     theta = theta_out.copy()
     t_obs = time
     inv_s = np.where(usable, 1.0 / sigma, 0.0)
-    C2 = f_scale * f_scale
     pred, J = model.evaluate(theta)
     e = (t_obs - pred) * inv_s
-    cost = np.sum(C2 * _rho(e * e / C2, loss), axis=1)
-    lam = np.full(k, 1e-3)
+    cost, r1, wc = _loss_terms(e, loss, f_scale)
+    lam = np.full(k, _LAMBDA0)
     iters = np.zeros(k, dtype=int)
     eye = np.eye(p)
     for _ in range(max_iter):
         if rows.size == 0:
             break
         check_cancel(progress)
-        z = e * e / C2
-        r1, r12 = _rho1(z, loss), _rho12(z, loss)
-        w = np.maximum(r12, 1e-3 * r1) * inv_s * inv_s  # curvature weights / sigma^2
-        wr = r1 * e * inv_s  # psi(e) / sigma
-        H = np.empty((rows.size, p, p))
-        g = np.empty((rows.size, p))
-        for i in range(p):
-            wJi = w * J[i]
-            g[:, i] = np.sum(wr * J[i], axis=1)
-            for j in range(i + 1):
-                H[:, i, j] = H[:, j, i] = np.sum(wJi * J[j], axis=1)
+        wc *= inv_s
+        wc *= inv_s  # curvature weights psi'(e) / sigma^2
+        r1 *= e
+        r1 *= inv_s  # psi(e) / sigma
+        H = np.matmul(J * wc[:, None, :], J.transpose(0, 2, 1))
+        g = np.matmul(J, r1[:, :, None])[:, :, 0]
         dg = np.einsum("kii->ki", H)
         A = H + (lam[:, None] * np.maximum(dg, 1e-300))[:, :, None] * eye
         delta = _safe_solve(A, g)
@@ -718,19 +810,26 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         delta *= np.minimum(1.0, _MAX_STEP / np.maximum(big, 1e-300))[:, None]
         th_new = theta + delta
         pred_new, J_new = model.evaluate(th_new)
-        e_new = (t_obs - pred_new) * inv_s
-        cost_new = np.sum(C2 * _rho(e_new * e_new / C2, loss), axis=1)
+        e_new = t_obs - pred_new
+        e_new *= inv_s
+        cost_new, r1_new, wc_new = _loss_terms(e_new, loss, f_scale)
         accept = np.isfinite(cost_new) & (cost_new <= cost)
         iters += 1
         if np.all(accept):
-            theta, e, J, cost = th_new, e_new, J_new, cost_new
+            theta, e, J, cost, r1, wc = th_new, e_new, J_new, cost_new, r1_new, wc_new
         else:
-            theta = np.where(accept[:, None], th_new, theta)
-            e = np.where(accept[:, None], e_new, e)
-            J = np.where(accept[None, :, None], J_new, J)
+            a2, a3 = accept[:, None], accept[:, None, None]
+            theta = np.where(a2, th_new, theta)
             cost = np.where(accept, cost_new, cost)
-        lam = np.where(accept, np.maximum(lam / 3.0, 1e-12), np.minimum(lam * 4.0, 1e16))
-        done = (np.max(np.abs(delta), axis=1) < xtol) & ~conv_out[rows]
+            # the weights of the kept point are recomputed (r1, wc were scaled in place)
+            e = np.where(a2, e_new, e)
+            J = np.where(a3, J_new, J)
+            _, r1, wc = _loss_terms(e, loss, f_scale)
+        # converged: a step below xtol that was accepted or, if refused, was hardly damped (the
+        # cost then rose at the rounding level only)
+        big = np.max(np.abs(delta), axis=1)
+        done = (big < xtol) & (accept | (lam < 1e-2)) & ~conv_out[rows]
+        lam = np.where(accept, np.maximum(lam / 10.0, 1e-15), np.minimum(np.maximum(lam, 1e-6) * 10.0, 1e16))
         if np.any(done):
             fin = rows[done]
             theta_out[fin] = theta[done]
@@ -743,11 +842,12 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
                     rows[keep],
                     theta[keep],
                     e[keep],
-                    J[:, keep],
+                    J[keep],
                     cost[keep],
                     lam[keep],
                     iters[keep],
                 )
+                r1, wc = r1[keep], wc[keep]
                 t_obs, inv_s = t_obs[keep], inv_s[keep]
                 model = model.take(keep)
     # rows still in the working set that did not converge (or converged after the last compaction)
@@ -760,18 +860,13 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
 def _scaled_normal_matrix(J, inv_s):
     """Inverse of the correlation-scaled normal matrix, its scale and condition number.
 
-    ``J`` (p, k, n) natural-parameter Jacobian, ``inv_s`` (k, n) 1/sigma (0 for
+    ``J`` (k, p, n) natural-parameter Jacobian, ``inv_s`` (k, n) 1/sigma (0 for
     unused picks). With :math:`H = J^T\\Sigma^{-1}J` and :math:`d = \\sqrt{\\mathrm{diag}\\,H}`,
     :math:`R = D^{-1}HD^{-1}`; returns :math:`R^{-1}`, d and
     :math:`\\lambda_{max}(R)/\\lambda_{min}(R)` (inf when singular).
     """
-    p = J.shape[0]
-    k = J.shape[1]
-    Js = J * inv_s
-    H = np.empty((k, p, p))
-    for i in range(p):
-        for j in range(i + 1):
-            H[:, i, j] = H[:, j, i] = np.sum(Js[i] * Js[j], axis=1)
+    Js = J * inv_s[:, None, :]
+    H = np.matmul(Js, Js.transpose(0, 2, 1))
     d = np.sqrt(np.einsum("kii->ki", H))
     d = np.where(np.isfinite(d) & (d > 0), d, 1.0)
     R = H / d[:, :, None] / d[:, None, :]
@@ -1146,10 +1241,10 @@ def fit_shot_gathers(
         status=out["status"],
         reason=out["reason"],
         iterations=out["iterations"],
-        residual_s=out["resid"][row, col],
-        rejected=out["rejected"][row, col],
+        residual_s=_unpad(out["resid"], row, col),
+        rejected=_unpad(out["rejected"], row, col),
         excluded=ex.copy(),
-        weight=out["weight"][row, col],
+        weight=_unpad(out["weight"], row, col),
     )
 
 
@@ -1245,10 +1340,10 @@ def fit_cmp_gathers(
         status=out["status"],
         reason=out["reason"],
         iterations=out["iterations"],
-        residual_s=out["resid"][row, col],
-        rejected=out["rejected"][row, col],
+        residual_s=_unpad(out["resid"], row, col),
+        rejected=_unpad(out["rejected"], row, col),
         excluded=ex.copy(),
-        weight=out["weight"][row, col],
+        weight=_unpad(out["weight"], row, col),
     )
 
 
