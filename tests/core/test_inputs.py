@@ -1,0 +1,361 @@
+"""Tests for core.inputs: readers give back exactly what the files hold, in the working CRS.
+
+The bad-input corpus (test_bad_inputs.py) covers the error messages case by case;
+here the values, units, CRS handling and settings are checked.
+"""
+
+import dataclasses
+import hashlib
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pyproj
+import pytest
+from reflector_mapper.core import inputs
+from reflector_mapper.core.errors import (
+    InputFileError,
+    ReflectorMapperWarning,
+    SurveyConfigError,
+)
+from reflector_mapper.core.model import Settings
+
+STATIONS = """# invented site
+line,station,x,y,z
+L1,1,500000.0,5500000.0,300.0
+
+L1,2,500005.0,5500000.0,300.5
+L2,1,500002.5,5499995.0,299.0
+L2,2,500002.5,5500005.0,299.5
+"""
+
+PICKS = """line,shot,receiver,time_ms
+L1,1,2,30.5
+L2,1,2,31.25
+L2,2,1,31.0
+"""
+
+
+def write(path: Path, text, encoding="utf-8"):
+    path.write_bytes(text.encode(encoding) if isinstance(text, str) else text)
+    return path
+
+
+def survey_dir(tmp_path, toml_extra="", stations=STATIONS, picks=PICKS, boreholes=None, crs='"EPSG:32633"'):
+    write(tmp_path / "stations.csv", stations)
+    write(tmp_path / "picks.csv", picks)
+    files = 'stations = "stations.csv"\npicks = "picks.csv"\n'
+    if boreholes is not None:
+        write(tmp_path / "boreholes.csv", boreholes)
+        files += 'boreholes = "boreholes.csv"\n'
+    write(tmp_path / "survey.toml", f'[survey]\nname = "T"\ncrs = {crs}\n\n[files]\n{files}\n{toml_extra}')
+    return tmp_path / "survey.toml"
+
+
+# ----------------------------------------------------------------- stations
+
+
+def test_read_stations_values_lines_and_labels(tmp_path):
+    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), "EPSG:32633")
+    assert list(st.line) == ["L1", "L1", "L2", "L2"]
+    assert list(st.station) == ["1", "2", "1", "2"]  # labels stay text
+    np.testing.assert_array_equal(st.x_m, [500000.0, 500005.0, 500002.5, 500002.5])
+    np.testing.assert_array_equal(st.z_m, [300.0, 300.5, 299.0, 299.5])
+    # physical 1-based lines: comment (1), header (2), blank line (4) counted
+    assert list(st.file_line) == [3, 5, 6, 7]
+
+
+@pytest.mark.parametrize("newline", ["\n", "\r\n", "\r"], ids=["lf", "crlf", "cr"])
+def test_line_numbers_with_any_line_end(tmp_path, newline):
+    text = STATIONS.replace("\n", newline).replace("L2,1,500002.5", "L2,1,abc")
+    with pytest.raises(InputFileError, match=r"^s\.csv, line 6, field 'x': value 'abc' is not a number"):
+        inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
+
+
+def test_geographic_stations_end_in_utm(tmp_path):
+    lon = np.array([15.20, 15.201, 15.2005, 15.2005])
+    lat = np.array([48.10, 48.10, 48.0995, 48.1005])
+    rows = "\n".join(
+        f"L{1 + k // 2},{k % 2},{lo:.7f},{la:.7f},300" for k, (lo, la) in enumerate(zip(lon, lat))
+    )
+    st = inputs.read_stations(write(tmp_path / "g.csv", "line,station,x,y,z\n" + rows + "\n"), "EPSG:4326")
+    # reference: pyproj itself, x = longitude first (always_xy)
+    tr = pyproj.Transformer.from_crs(4326, 32633, always_xy=True)
+    x, y = tr.transform(np.round(lon, 7), np.round(lat, 7))
+    np.testing.assert_allclose(st.x_m, x, atol=1e-6)
+    np.testing.assert_allclose(st.y_m, y, atol=1e-6)
+
+
+def test_stations_explicit_working_crs(tmp_path):
+    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633, crs_work="EPSG:3035")
+    tr = pyproj.Transformer.from_crs(32633, 3035, always_xy=True)
+    x, _ = tr.transform(500000.0, 5500000.0)
+    assert abs(st.x_m[0] - x) < 1e-6
+
+
+def test_unknown_column_warns_and_is_ignored(tmp_path):
+    text = STATIONS.replace("line,station,x,y,z", "line,station,x,y,z,remark").replace("300.0", "300.0,flag")
+    text = text.replace("300.5", "300.5,").replace("299.0", "299.0,").replace("299.5", "299.5,")
+    with pytest.warns(ReflectorMapperWarning, match=r"s\.csv, line 2: column 'remark' not used"):
+        st = inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
+    assert len(st) == 4
+
+
+def test_unknown_column_suggests_name(tmp_path):
+    text = PICKS.replace("time_ms", "time_ms,sigma").replace("30.5", "30.5,1")
+    text = text.replace("31.25", "31.25,1").replace("31.0\n", "31.0,1\n")
+    with pytest.warns(ReflectorMapperWarning, match=r"'sigma' \(did you mean 'sigma_ms'\?\)"):
+        inputs.read_picks(write(tmp_path / "p.csv", text), 0.5)
+
+
+def test_area_of_use_warning_counts_points(tmp_path):
+    # 11.5 E is half a degree west of UTM zone 33's strip (EPSG area of use 12..18 E)
+    tr = pyproj.Transformer.from_crs(4326, 32633, always_xy=True)
+    x, y = tr.transform(11.5, 47.0)
+    text = f"line,station,x,y,z\nA,1,{x:.2f},{y:.2f},1\nA,2,{x + 5:.2f},{y:.2f},1\n"
+    with pytest.warns(
+        ReflectorMapperWarning,
+        match=r"2 point\(s\) lie outside the area of use of EPSG:32633 .*, up to 0\.50 degrees",
+    ):
+        inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
+
+
+# ----------------------------------------------------------------- picks
+
+
+def test_read_picks_units_defaults(tmp_path):
+    p = inputs.read_picks(write(tmp_path / "p.csv", PICKS), default_sigma_ms=0.75)
+    np.testing.assert_allclose(p.time_s, [0.0305, 0.03125, 0.031])  # ms -> s
+    np.testing.assert_allclose(p.sigma_s, 0.00075)
+    assert list(p.reflector) == ["1", "1", "1"]
+    assert list(p.file_line) == [2, 3, 4]
+
+
+def test_read_picks_optional_columns(tmp_path):
+    text = "LINE, Shot ,receiver,time_ms,sigma_ms,reflector\nL1,1,2,30,0.4,top\nL1,1,2,50,,base\nL1,2,1,30,1.5,\n"
+    p = inputs.read_picks(write(tmp_path / "p.csv", text), default_sigma_ms=0.5)
+    np.testing.assert_allclose(p.sigma_s, [0.0004, 0.0005, 0.0015])  # empty cell -> default
+    assert list(p.reflector) == ["top", "base", "1"]  # empty reflector -> "1"
+
+
+def test_picks_checked_against_stations_only_when_given(tmp_path):
+    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
+    text = PICKS + "L1,1,7,33.0\n"
+    path = write(tmp_path / "p.csv", text)
+    assert len(inputs.read_picks(path, 0.5)) == 4
+    with pytest.raises(
+        InputFileError, match=r"line 5, field 'receiver': receiver '7' is not a station of line 'L1'"
+    ):
+        inputs.read_picks(path, 0.5, st)
+
+
+@pytest.mark.parametrize(
+    "times, ok",
+    [
+        ([0.02, 0.03, 0.04], False),  # seconds: all < 1, median < 0.5
+        ([0.2, 0.4, 0.45], False),
+        ([20.0, 30.0, 40.0], True),
+        ([0.6, 0.7, 0.9], True),  # all < 1 ms but median >= 0.5: not the seconds pattern
+        ([0.2, 0.3, 1.5], True),  # one time >= 1: milliseconds
+    ],
+    ids=["s_small", "s_large", "ms", "sub_ms_high_median", "mixed"],
+)
+def test_seconds_heuristic(tmp_path, times, ok):
+    text = "line,shot,receiver,time_ms\n" + "".join(f"A,1,{k},{t}\n" for k, t in enumerate(times))
+    path = write(tmp_path / "p.csv", text)
+    if ok:
+        assert len(inputs.read_picks(path, 0.5)) == 3
+    else:
+        with pytest.raises(InputFileError, match=r"times look like seconds"):
+            inputs.read_picks(path, 0.5)
+
+
+def test_max_time_parameter(tmp_path):
+    path = write(tmp_path / "p.csv", "line,shot,receiver,time_ms\nA,1,2,2500\n")
+    with pytest.raises(InputFileError, match=r"line 2, field 'time_ms': time '2500' ms is beyond 2000 ms"):
+        inputs.read_picks(path, 0.5)
+    assert inputs.read_picks(path, 0.5, max_time_ms=3000.0).time_s[0] == 2.5
+
+
+@pytest.mark.parametrize("sigma", [0, -1.0, float("nan")], ids=["zero", "negative", "nan"])
+def test_default_sigma_must_be_positive(tmp_path, sigma):
+    with pytest.raises(InputFileError, match="must be > 0"):
+        inputs.read_picks(write(tmp_path / "p.csv", PICKS), sigma)
+
+
+# ----------------------------------------------------------------- boreholes
+
+
+def test_read_boreholes(tmp_path):
+    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
+    text = "borehole,x,y,z,depth_m,sigma_m\nB1,500001,5500001,300.2,12.5,\nB2,500003,5499999,299.8,13,0.3\n"
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ReflectorMapperWarning)
+        bh = inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, 0.2, stations=st)
+    np.testing.assert_allclose(bh.elevation_m, [300.2 - 12.5, 299.8 - 13.0])
+    np.testing.assert_allclose(bh.sigma_m, [0.2, 0.3])
+    assert list(bh.name) == ["B1", "B2"]
+
+
+def test_far_borehole_warns_with_distance(tmp_path):
+    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
+    text = "borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\nFAR,500000,5501000,300,12\n"
+    with pytest.warns(
+        ReflectorMapperWarning, match=r"line 3, field 'x': borehole 'FAR' is 995 m from the nearest"
+    ):
+        inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, stations=st)
+
+
+# ----------------------------------------------------------------- settings
+
+
+def _toml_value(v):
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return f'"{v}"'
+    return repr(v)
+
+
+def test_every_settings_field_is_accepted_with_its_default():
+    fields = [f for f in dataclasses.fields(Settings) if f.name not in ("dem", "work_crs")]
+    table = {f.name: f.default for f in fields if f.default is not None}
+    assert inputs.read_settings(table) == Settings()
+    assert set(inputs._tables()["processing"]) == {f.name for f in fields}
+
+
+def test_settings_from_toml(tmp_path):
+    extra = (
+        "[processing]\ndefault_sigma_ms = 1\nmin_picks = 8\ncell_size_m = 2.5\ncalibrate_velocity = true\n"
+    )
+    extra += 'surface_method = "spline"\n'
+    s = inputs.load_survey(survey_dir(tmp_path, extra)).settings
+    assert s.default_sigma_ms == 1.0 and isinstance(s.default_sigma_ms, float)  # int accepted for a float
+    assert s.min_picks == 8 and s.cell_size_m == 2.5 and s.calibrate_velocity is True
+    assert s.surface_method == "spline" and s.max_distance_m is None
+
+
+@pytest.mark.parametrize(
+    "key, value, match",
+    [
+        ("min_picks", "6.5", r"expected a whole number"),
+        ("min_picks", "2", r"must be at least 3"),
+        ("default_sigma_ms", "true", r"is true/false; expected a number"),
+        ("default_sigma_ms", "0", r"must be > 0"),
+        ("default_sigma_ms", "inf", r"not a finite number"),
+        ("robust_loss", '"L1"', r"is not one of 'huber', 'soft_l1', 'cauchy', 'linear'"),
+        ("variogram_model", '"spherica"', r"did you mean 'spherical'\?"),
+        ("min_line_angle_deg", "95.0", r"must be in \(0, 90\]"),
+        ("neighbours", '"32"', r"is text; expected a whole number"),
+        ("work_crs", '"EPSG:32633"', r"'work_crs' belongs in \[survey\]"),
+        ("cell_size", "2.0", r"did you mean 'cell_size_m'\?"),
+        ("contour_interval_m", "[1, 2]", r"is list; expected a number"),
+    ],
+    ids=[
+        "int_float",
+        "int_small",
+        "bool_for_float",
+        "zero_sigma",
+        "inf",
+        "choice",
+        "choice_typo",
+        "angle_range",
+        "text_for_int",
+        "work_crs_misplaced",
+        "typo_key",
+        "list",
+    ],
+)
+def test_settings_errors(tmp_path, key, value, match):
+    path = survey_dir(tmp_path, f"[processing]\n{key} = {value}\n")
+    with pytest.raises(
+        SurveyConfigError, match=rf"^survey\.toml, line 10, field 'processing\.{key}': .*{match}"
+    ):
+        inputs.load_survey(path)
+
+
+# ----------------------------------------------------------------- survey.toml
+
+
+def test_load_survey_fields(tmp_path):
+    bh = "borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\n"
+    path = survey_dir(tmp_path, boreholes=bh)
+    sv = inputs.load_survey(path)
+    assert sv.name == "T" and sv.path == path
+    assert sv.input_crs.to_epsg() == 32633 and sv.crs.to_epsg() == 32633
+    assert set(sv.files) == {"stations", "picks", "boreholes"}
+    assert sv.files["picks"] == (tmp_path / "picks.csv").resolve()
+    assert len(sv.stations) == 4 and len(sv.picks) == 3 and len(sv.boreholes) == 1
+
+
+def test_load_survey_geographic_with_work_crs_and_dem(tmp_path):
+    tr = pyproj.Transformer.from_crs(32633, 4326, always_xy=True)
+    lines = ["line,station,x,y,z"]
+    for row in STATIONS.splitlines()[2:]:
+        if row:
+            ln, st, x, y, z = row.split(",")
+            lo, la = tr.transform(float(x), float(y))
+            lines.append(f"{ln},{st},{lo:.9f},{la:.9f},{z}")
+    write(tmp_path / "ground.tif", b"not read here")
+    path = survey_dir(tmp_path, stations="\n".join(lines) + "\n", crs='"EPSG:4326"\nwork_crs = 3035')
+    text = path.read_text().replace('picks = "picks.csv"', 'picks = "picks.csv"\ndem = "ground.tif"')
+    write(path, text)
+    sv = inputs.load_survey(path)
+    assert sv.input_crs.is_geographic and sv.crs.to_epsg() == 3035
+    assert sv.settings.work_crs == "EPSG:3035"
+    assert sv.settings.dem == (tmp_path / "ground.tif").resolve()
+    x, _ = pyproj.Transformer.from_crs(32633, 3035, always_xy=True).transform(500000.0, 5500000.0)
+    assert abs(sv.stations.x_m[0] - x) < 1e-3  # 1e-9 deg of rounding is < 1e-4 m
+
+
+def test_load_survey_default_name_and_bom_toml(tmp_path):
+    path = survey_dir(tmp_path)
+    text = path.read_text().replace('name = "T"\n', "")
+    write(path, b"\xef\xbb\xbf" + text.replace("\n", "\r\n").encode())
+    assert inputs.load_survey(path).name == tmp_path.name
+
+
+@pytest.mark.parametrize(
+    "text, line",
+    [
+        ('[survey]\nname = "a"\ncrs = \n', 3),
+        ('[survey]\nname = "a"\n[survey]\ncrs = "EPSG:32633"\n', 3),
+        ('[survey]\nname = "a\n', 2),
+        ('\n\n\n[files\nstations = "s.csv"\n', 4),
+        ("[survey]\nname 'a'\n", 2),
+    ],
+    ids=["missing_value", "duplicate_table", "open_string", "open_header", "no_equals"],
+)
+def test_toml_syntax_error_line(tmp_path, text, line):
+    path = write(tmp_path / "survey.toml", text)
+    with pytest.raises(SurveyConfigError, match=rf"^survey\.toml, line {line}: not valid TOML: "):
+        inputs.load_survey(path)
+
+
+def test_missing_toml_and_not_utf8(tmp_path):
+    with pytest.raises(SurveyConfigError, match=r"survey file not found"):
+        inputs.load_survey(tmp_path / "nope.toml")
+    with pytest.raises(SurveyConfigError, match=r"is a folder"):
+        inputs.load_survey(tmp_path)
+    path = write(tmp_path / "survey.toml", '[survey]\nname = "caf\xe9"\n', encoding="latin-1")
+    with pytest.raises(SurveyConfigError, match=r"^survey\.toml, line 2: not UTF-8"):
+        inputs.load_survey(path)
+
+
+def test_inputs_are_never_modified(tmp_path):
+    path = survey_dir(tmp_path, boreholes="borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\n")
+    before = {
+        p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()
+    }
+    inputs.load_survey(path)
+    after = {
+        p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()
+    }
+    assert before == after  # same files, same bytes, untouched
+
+
+def test_unicode_labels(tmp_path):
+    text = STATIONS.replace("L1", "Linie Ä").replace("L2", "线2")
+    picks = PICKS.replace("L1", "Linie Ä").replace("L2", "线2")
+    sv = inputs.load_survey(survey_dir(tmp_path, stations=text, picks=picks))
+    assert set(sv.picks.line) == {"Linie Ä", "线2"}
