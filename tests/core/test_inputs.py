@@ -132,7 +132,8 @@ def test_read_picks_units_defaults(tmp_path):
 
 
 def test_read_picks_optional_columns(tmp_path):
-    text = "LINE, Shot ,receiver,time_ms,sigma_ms,reflector\nL1,1,2,30,0.4,top\nL1,1,2,50,,base\nL1,2,1,30,1.5,\n"
+    text = "LINE, Shot ,receiver,time_ms,sigma_ms,reflector\n"
+    text += "L1,1,2,30,0.4,top\nL1,1,2,50,,base\nL1,2,1,30,1.5,\n"
     p = inputs.read_picks(write(tmp_path / "p.csv", text), default_sigma_ms=0.5)
     np.testing.assert_allclose(p.sigma_s, [0.0004, 0.0005, 0.0015])  # empty cell -> default
     assert list(p.reflector) == ["top", "base", "1"]  # empty reflector -> "1"
