@@ -167,23 +167,64 @@ def crs_srs_row(crs) -> tuple:
 # ---------------------------------------------------------- geometry blobs
 
 
-def _geometry_blob(geom, srs_id: int) -> bytes | None:
-    """GeoPackage binary geometry (12-128r18 2.1.3.1.1) of a shapely geometry, or None."""
-    if geom is None or geom.is_empty:
-        return None
+_TYPE_NAMES = {
+    0: "Point", 1: "LineString", 2: "LinearRing", 3: "Polygon", 4: "MultiPoint", 5: "MultiLineString",
+    6: "MultiPolygon", 7: "GeometryCollection",
+}
+
+
+def _geometry_columns(geometries: Sequence[Any]):
+    """Type name (None for null/empty), 2D WKB and bounds of every geometry.
+
+    Vectorised with shapely 2; a loop over the geometries with shapely 1.8.
+    Bounds are NaN for null or empty geometries.
+    """
+    import shapely
     from shapely import wkb
 
-    body = wkb.dumps(geom, output_dimension=2)
-    if geom.geom_type == "Point":
-        # flags: bit 0 = little-endian header, envelope indicator 0 (a point is its own envelope)
-        return b"GP\x00\x01" + struct.pack("<i", srs_id) + body
-    minx, miny, maxx, maxy = geom.bounds
-    # flags 0b0000_0011: little-endian header, envelope indicator 1 = [minx, maxx, miny, maxy]
-    return b"GP\x00\x03" + struct.pack("<i4d", srs_id, minx, maxx, miny, maxy) + body
+    n = len(geometries)
+    if hasattr(shapely, "to_wkb"):  # shapely >= 2
+        arr = np.empty(n, dtype=object)
+        arr[:] = list(geometries)
+        null = shapely.is_missing(arr) | shapely.is_empty(arr)
+        ids = shapely.get_type_id(arr)
+        types = [None if nl else _TYPE_NAMES.get(int(t), "Geometry") for t, nl in zip(ids.tolist(), null)]
+        bodies = shapely.to_wkb(arr, output_dimension=2, byte_order=1, include_srid=False).tolist()
+        bounds = shapely.bounds(arr)
+        bounds[null] = np.nan
+        bodies = [None if nl else b for b, nl in zip(bodies, null)]
+        return types, bodies, bounds
+    types, bodies = [], []
+    bounds = np.full((n, 4), np.nan)
+    for i, g in enumerate(geometries):
+        if g is None or g.is_empty:
+            types.append(None)
+            bodies.append(None)
+            continue
+        types.append(g.geom_type)
+        bodies.append(wkb.dumps(g, output_dimension=2))
+        bounds[i] = g.bounds
+    return types, bodies, bounds
 
 
-def _infer_type(geometries: Sequence[Any]) -> str:
-    kinds = {g.geom_type for g in geometries if g is not None and not g.is_empty}
+def _blobs(types, bodies, bounds, srs_id: int) -> list:
+    """GeoPackage binary geometries (12-128r18 2.1.3.1.1); None for null geometries."""
+    point_header = b"GP\x00\x01" + struct.pack("<i", srs_id)
+    out = []
+    for t, body, (minx, miny, maxx, maxy) in zip(types, bodies, bounds.tolist()):
+        if body is None:
+            out.append(None)
+        elif t == "Point":
+            # flags 0b0000_0001: little-endian header, no envelope (a point is its own envelope)
+            out.append(point_header + body)
+        else:
+            # flags 0b0000_0011: little-endian header, envelope indicator 1 = [minx, maxx, miny, maxy]
+            out.append(b"GP\x00\x03" + struct.pack("<i4d", srs_id, minx, maxx, miny, maxy) + body)
+    return out
+
+
+def _infer_type(kinds) -> str:
+    kinds = {k for k in kinds if k is not None}
     if not kinds:
         return "GEOMETRY"
     if len(kinds) == 1:
@@ -195,12 +236,10 @@ def _infer_type(geometries: Sequence[Any]) -> str:
 
 
 def _promote(geom, geometry_type: str):
-    if geom is None or not geometry_type.startswith("MULTI"):
-        return geom
     from shapely.geometry import MultiLineString, MultiPoint, MultiPolygon
 
     single = geometry_type[5:].title().replace("string", "String")
-    if geom.geom_type == single:
+    if geom is not None and geom.geom_type == single:
         return {"Point": MultiPoint, "LineString": MultiLineString, "Polygon": MultiPolygon}[single]([geom])
     return geom
 
@@ -401,23 +440,28 @@ def _write_layer(con, name: str, layer: Layer, srs_id: int, last_change: str, us
     rows_cols = []
     extent = (None, None, None, None)
     if spatial:
-        gtype = (layer.geometry_type or _infer_type(layer.geometries)).upper()
+        geoms = list(layer.geometries)
+        types, bodies, bounds = _geometry_columns(geoms)
+        gtype = (layer.geometry_type or _infer_type(set(types))).upper()
         if gtype not in _GEOMETRY_TYPES:
             raise OutputError(
                 f"geometry type {layer.geometry_type!r} of layer '{name}' is not one of {_GEOMETRY_TYPES}"
             )
-        geoms = [_promote(g, gtype) for g in layer.geometries]
-        for g in geoms:
-            if g is not None and gtype != "GEOMETRY" and not g.is_empty and g.geom_type.upper() != gtype:
-                raise OutputError(f"layer '{name}' is declared {gtype} but holds a {g.geom_type}")
-        blobs = [_geometry_blob(g, srs_id) for g in geoms]
-        bounds = np.array([g.bounds for g in geoms if g is not None and not g.is_empty], dtype=float)
-        if len(bounds):
+        if gtype.startswith("MULTI") and gtype[5:] in {t.upper() for t in types if t}:
+            geoms = [_promote(g, gtype) for g in geoms]  # single parts into a multi-part layer
+            types, bodies, bounds = _geometry_columns(geoms)
+        if gtype != "GEOMETRY":
+            wrong = sorted({t for t in types if t is not None and t.upper() != gtype})
+            if wrong:
+                raise OutputError(f"layer '{name}' is declared {gtype} but holds a {wrong[0]}")
+        blobs = _blobs(types, bodies, bounds, srs_id)
+        valid = np.isfinite(bounds[:, 0])
+        if np.any(valid):
             extent = (
-                float(bounds[:, 0].min()),
-                float(bounds[:, 1].min()),
-                float(bounds[:, 2].max()),
-                float(bounds[:, 3].max()),
+                float(bounds[valid, 0].min()),
+                float(bounds[valid, 1].min()),
+                float(bounds[valid, 2].max()),
+                float(bounds[valid, 3].max()),
             )
         defs.append(f"{_quote(GEOMETRY_COLUMN)} {gtype}")
         names.append(GEOMETRY_COLUMN)
@@ -458,11 +502,8 @@ def _write_layer(con, name: str, layer: Layer, srs_id: int, last_change: str, us
         return
     rtree = f"rtree_{name}_{GEOMETRY_COLUMN}"
     con.execute(f"CREATE VIRTUAL TABLE {_quote(rtree)} USING rtree(id, minx, maxx, miny, maxy)")
-    rows = [
-        (fid, *(lambda b: (b[0], b[2], b[1], b[3]))(g.bounds))
-        for fid, g in zip(fids, geoms)
-        if g is not None and not g.is_empty
-    ]
+    keep = np.flatnonzero(valid)
+    rows = zip((keep + 1).tolist(), *(bounds[keep][:, j].tolist() for j in (0, 2, 1, 3)))
     con.executemany(f"INSERT INTO {_quote(rtree)} VALUES (?, ?, ?, ?, ?)", rows)
     triggers = _RTREE_TRIGGERS.format(t=name, c=GEOMETRY_COLUMN, i=FID_COLUMN)
     for statement in triggers.split("\nEND;")[:-1]:

@@ -282,3 +282,15 @@ def test_gdal_validator_accepts_it(tmp_path):
             pytest.skip("GDAL's python bindings are not importable by /usr/bin/python3")
         assert res.returncode == 0, res.stdout + res.stderr
         assert res.stdout.strip() == "" and res.stderr.strip() == "", res.stdout + res.stderr
+
+
+def test_mixed_layer_is_generic_geometry(tmp_path):
+    layer = Layer([Point(1, 2), LineString([(0, 0), (3, 4)]), None], {"v": np.array([1, 2, 3])})
+    path = write_geopackage(tmp_path / "m.gpkg", {"mixed": layer}, "EPSG:32633")
+    con = sqlite3.connect(str(path))
+    gtype = con.execute("SELECT geometry_type_name FROM gpkg_geometry_columns").fetchone()[0]
+    con.close()
+    assert gtype == "GEOMETRY"
+    geoms, fields, _ = _read_layer(path, "mixed")
+    assert geoms[0].equals(Point(1, 2)) and geoms[1].equals(LineString([(0, 0), (3, 4)])) and geoms[2] is None
+    assert list(fields["v"]) == [1, 2, 3]
