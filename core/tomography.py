@@ -68,9 +68,11 @@ scipy); the step is halved while it does not lower :math:`\\Phi`.
 
 Uncertainty: the linearised posterior covariance
 :math:`C = (J^T W J + \\lambda^2 D^T D + B^T W_b B)^{-1}` (scaled by the
-reduced chi-square when that exceeds 1). Its diagonal is solved exactly on
-small grids and estimated by probing with coloured random-sign vectors on
-large ones [Bekas et al. 2007] (see :func:`_covariance_diagonal`).
+reduced chi-square when that exceeds 1). Its diagonal is exact: a banded
+Cholesky factor of the node block (the nodes ordered with the shorter grid
+side fastest) and the Takahashi recurrence inside the band
+[Takahashi et al. 1973; Erisman & Tinney 1975], the velocity added by a
+Sherman-Morrison update (see :class:`_BandedSPD`).
 
 References
 ----------
@@ -88,13 +90,17 @@ References
 [Holland & Welsch 1977] Holland, P. W. & Welsch, R. E. (1977). Robust
     regression using iteratively reweighted least-squares. Communications in
     Statistics - Theory and Methods 6(9), 813-827.
-[Bekas et al. 2007] Bekas, C., Kokiopoulou, E. & Saad, Y. (2007). An estimator
-    for the diagonal of a matrix. Applied Numerical Mathematics 57(11-12),
-    1214-1229.
+[Takahashi et al. 1973] Takahashi, K., Fagan, J. & Chen, M.-S. (1973). Formation
+    of a sparse bus impedance matrix and its application to short circuit study.
+    Proc. 8th PICA Conference, Minneapolis, 63-69.
+[Erisman & Tinney 1975] Erisman, A. M. & Tinney, W. F. (1975). On computing
+    certain elements of the inverse of a sparse matrix. Communications of the
+    ACM 18(3), 177-179.
 """
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -103,7 +109,7 @@ import scipy.sparse.linalg as spla
 from scipy.spatial import cKDTree
 
 from . import forward
-from .errors import InversionError
+from .errors import InversionError, ReflectorMapperWarning
 from .progress import NullProgress, check_cancel
 
 __all__ = [
@@ -169,20 +175,14 @@ class NodeGrid:
         )
 
 
-def _attr(obj, names):
-    for name in names:
-        if hasattr(obj, name):
-            return getattr(obj, name)
-    raise AttributeError(names[0])
-
-
 def as_node_grid(grid) -> NodeGrid:
-    """Build a :class:`NodeGrid` from a tuple ``(x0, y0, spacing, nx, ny)`` or an object.
+    """Build a :class:`NodeGrid` from a tuple ``(x0_m, y0_m, spacing_m, nx, ny)`` or a grid object.
 
-    Objects are read duck-typed (``x0_m``/``x0``, ``y0_m``/``y0``,
-    ``spacing_m``/``cell_size_m``/``spacing``, ``nx``, ``ny``), so a grid
-    specification of another module can be passed as it is, provided its
-    ``(x0, y0)`` is the south-west *node* and its row 0 is the southern row.
+    A tuple (or a :class:`NodeGrid`) gives the **south-west** node and rows
+    running north. A north-up :class:`~.surface.GridSpec` (``x0, y0`` = centre
+    of the north-west cell, row 0 northernmost) is converted to the same nodes
+    (its cell centres), counted from the south: arrays on it must be flipped
+    with ``[::-1]`` before and after (this module always puts row 0 south).
     """
     if isinstance(grid, NodeGrid):
         g = grid
@@ -192,19 +192,14 @@ def as_node_grid(grid) -> NodeGrid:
                 f"grid specification {grid!r} has {len(grid)} items; expected (x0_m, y0_m, spacing_m, nx, ny)"
             )
         g = NodeGrid(float(grid[0]), float(grid[1]), float(grid[2]), int(grid[3]), int(grid[4]))
+    elif hasattr(grid, "cell_size_m") and hasattr(grid, "y_centres"):  # north-up GridSpec
+        c = float(grid.cell_size_m)
+        g = NodeGrid(float(grid.x0), float(grid.y0) - (int(grid.ny) - 1) * c, c, int(grid.nx), int(grid.ny))
     else:
-        try:
-            g = NodeGrid(
-                float(_attr(grid, ("x0_m", "x0"))),
-                float(_attr(grid, ("y0_m", "y0"))),
-                float(_attr(grid, ("spacing_m", "cell_size_m", "spacing"))),
-                int(_attr(grid, ("nx",))),
-                int(_attr(grid, ("ny",))),
-            )
-        except AttributeError as err:
-            raise InversionError(
-                f"grid specification {grid!r} lacks '{err.args[0]}'; pass (x0_m, y0_m, spacing_m, nx, ny)"
-            ) from err
+        raise InversionError(
+            f"grid specification {grid!r} is not understood; pass (x0_m, y0_m, spacing_m, nx, ny) with "
+            "(x0_m, y0_m) the south-west node, a NodeGrid or a surface GridSpec"
+        )
     if not (np.isfinite(g.spacing_m) and g.spacing_m > 0):
         raise InversionError(f"grid spacing {g.spacing_m!r} m must be a positive number")
     if g.nx < 3 or g.ny < 3:
@@ -643,46 +638,109 @@ def _robust_weights(u, robust_scale, reject_sigma):
     return w, rejected
 
 
-def _covariance_diagonal(lu, n, g: NodeGrid, exact_limit=3000, stride=12, samples=4, rng_seed=0):
-    """Diagonal of A^-1 from a sparse LU factorisation of the SPD matrix A.
+def _factorize(A):
+    """Sparse LU of a symmetric positive definite matrix, symmetric ordering, no pivoting."""
+    try:
+        return spla.splu(
+            sp.csc_matrix(A),
+            permc_spec="MMD_AT_PLUS_A",
+            diag_pivot_thresh=0.0,
+            options={"SymmetricMode": True},
+        )
+    except RuntimeError as err:
+        raise InversionError(
+            f"the tomography normal equations are singular ({err}); add picks or increase the smoothing"
+        ) from err
 
-    Node parameters come first (ny*nx, row-major), extra parameters after.
-    For ``n <= exact_limit`` the diagonal is exact (solves against blocks of
-    the identity). Otherwise it is estimated by probing [Bekas et al. 2007]:
-    the nodes are coloured so that nodes of one colour are ``stride`` nodes
-    apart in x and y; for each colour a vector of random signs on its nodes
-    is solved for and :math:`\\mathrm{diag}(A^{-1}) \\approx v \\odot A^{-1}v`,
-    averaged over ``samples`` sign draws. The estimate is unbiased; its error
-    comes from covariances between nodes ``stride`` spacings apart, which the
-    curvature penalty and the data make small. Extra parameters are solved
-    exactly.
+
+def _banded_order(g: NodeGrid):
+    """Node ordering with the smaller grid dimension fastest, and its half bandwidth.
+
+    A point's 16 node weights span 3 rows and 3 columns, so the normal matrix
+    has half bandwidth ``3 * min(nx, ny) + 3`` in that ordering.
     """
-    if n <= exact_limit:
-        out = np.empty(n)
-        for start in range(0, n, 500):
-            stop = min(n, start + 500)
-            e = np.zeros((n, stop - start))
-            e[np.arange(start, stop), np.arange(stop - start)] = 1.0
-            out[start:stop] = lu.solve(e)[np.arange(start, stop), np.arange(stop - start)]
+    idx = np.arange(g.nx * g.ny).reshape(g.shape)
+    if g.nx <= g.ny:
+        return idx.ravel(), 3 * g.nx + 3
+    return idx.T.ravel(), 3 * g.ny + 3
+
+
+class _BandedSPD:
+    """Banded Cholesky factor of an SPD sparse matrix in a given node ordering.
+
+    ``solve(rhs)`` solves in the original ordering; ``inverse_diagonal()``
+    returns diag(A^-1) exactly by the Takahashi recurrence on the band
+    [Takahashi et al. 1973; Erisman & Tinney 1975]: with
+    :math:`A = L\\,\\mathrm{diag}(d)\\,L^T` (unit lower L, half bandwidth b)
+    and :math:`Z = A^{-1}`, for j = n-1 down to 0
+
+    .. math::
+
+        Z_{ij} = -\\sum_{k=j+1}^{j+b} L_{kj} Z_{ik}\\ (j < i \\le j + b), \\qquad
+        Z_{jj} = \\frac{1}{d_j} - \\sum_{k=j+1}^{j+b} L_{kj} Z_{kj},
+
+    which only needs Z inside the band, kept in a sliding (b+1) x (b+1) window.
+    Cost O(n b^2) time, O(n b) memory.
+    """
+
+    def __init__(self, A, order, bandwidth):
+        import scipy.linalg as sla
+
+        self._sla = sla
+        self.order = order
+        n = len(order)
+        b = int(min(bandwidth, n - 1))
+        Ap = sp.csr_matrix(A)[order][:, order].tocoo()
+        low = Ap.row >= Ap.col
+        ab = np.zeros((b + 1, n))
+        d = Ap.row[low] - Ap.col[low]
+        if d.size and d.max() > b:
+            raise InversionError(f"internal error: normal matrix wider than its band ({d.max()} > {b})")
+        ab[d, Ap.col[low]] = Ap.data[low]
+        try:
+            self.cb = sla.cholesky_banded(ab, lower=True)
+        except np.linalg.LinAlgError as err:
+            raise InversionError(
+                f"the posterior covariance matrix is not positive definite ({err}); increase the smoothing"
+            ) from err
+        self.b = b
+
+    def solve(self, rhs):
+        out = np.empty_like(rhs)
+        out[self.order] = self._sla.cho_solve_banded((self.cb, True), rhs[self.order])
         return out
-    rng = np.random.default_rng(rng_seed)
-    nn = g.nx * g.ny
-    row, col = np.divmod(np.arange(nn), g.nx)
-    colour = (row % stride) * stride + (col % stride)
-    ncol = stride * stride
-    acc = np.zeros(n)
-    for _ in range(samples):
-        sign = rng.choice([-1.0, 1.0], size=nn)
-        V = np.zeros((n, ncol))
-        V[np.arange(nn), colour] = sign
-        X = lu.solve(V)
-        acc[:nn] += X[np.arange(nn), colour] * sign
-    acc[:nn] /= samples
-    for k in range(nn, n):
-        e = np.zeros(n)
-        e[k] = 1.0
-        acc[k] = lu.solve(e)[k]
-    return acc
+
+    def inverse_diagonal(self):
+        cb = self.cb
+        b = self.b
+        n = cb.shape[1]
+        m = b + 1
+        dinv = 1.0 / cb[0] ** 2
+        Lb = cb[1:] / cb[0]  # Lb[k - 1, j] = L[j + k, j]
+        W = np.zeros((m, m))
+        lp = np.zeros(m)
+        steps = np.arange(1, m)
+        zdiag = np.empty(n)
+        for j in range(n - 1, -1, -1):
+            s = j % m
+            kmax = min(b, n - 1 - j)
+            W[s, :] = 0.0
+            W[:, s] = 0.0
+            if kmax == 0:
+                W[s, s] = zdiag[j] = dinv[j]
+                continue
+            slots = (j + steps[:kmax]) % m
+            lvec = Lb[:kmax, j]
+            lp[:] = 0.0
+            lp[slots] = lvec
+            zvec = -(W[slots] @ lp)
+            zjj = dinv[j] - lvec @ zvec
+            W[slots, s] = zvec
+            W[s, slots] = zvec
+            W[s, s] = zdiag[j] = zjj
+        out = np.empty(n)
+        out[self.order] = zdiag
+        return out
 
 
 def invert_reflector(
@@ -696,11 +754,12 @@ def invert_reflector(
     boreholes=None,
     smoothing: float | None = None,
     max_iterations: int = 20,
-    tolerance_m: float = 0.01,
+    tolerance_m: float = 0.05,
     robust_scale: float = 1.5,
     reject_sigma: float = 4.0,
     fix_velocity: bool = False,
     mask_distance_m: float | None = None,
+    max_band_bytes: float = 1.0 * 2**30,
     progress=None,
 ) -> TomographyResult:
     """Invert all reflection picks at once for the reflector surface and the layer velocity.
@@ -738,8 +797,9 @@ def invert_reflector(
     max_iterations : int
         Gauss-Newton iterations at most.
     tolerance_m : float
-        Stop when no node moves more than this and V changes by less than
-        ``tolerance_m`` / median depth (relative).
+        Stop when no node touched by a ray or borehole moves more than this
+        and V changes by less than ``tolerance_m`` / median depth (relative),
+        or when an iteration lowers the objective by less than 1e-5 of it.
     robust_scale : float
         Huber threshold in robust standard deviations of residual/sigma.
     reject_sigma : float
@@ -750,6 +810,10 @@ def invert_reflector(
     mask_distance_m : float, optional
         Nodes farther than this from every used reflection point and borehole
         are masked; default 1.5 node spacings (the reach of the cubic weights).
+    max_band_bytes : float
+        Memory allowed for the band storage of the covariance factor (about
+        ``8 (3 min(nx, ny) + 4) nx ny`` bytes, twice at the peak); beyond it the
+        sigma grid is left NaN with a warning.
     progress : progress object, optional
         Receives percentages and messages; cancellation is checked between
         iterations.
@@ -883,12 +947,7 @@ def invert_reflector(
         rhs[:nn] -= lam**2 * (DtD @ z.ravel())
         if bh is not None:
             rhs[:nn] += B.T @ (Wb * (bh[2] - B @ z.ravel()))
-        try:
-            lu = spla.splu(A.tocsc(), permc_spec="MMD_AT_PLUS_A")
-        except RuntimeError as err:
-            raise InversionError(
-                f"the tomography normal equations are singular ({err}); add picks or smoothing"
-            ) from err
+        lu = _factorize(A)
         delta = lu.solve(rhs)
         dz = delta[:nn].reshape(g.shape)
         dlnv = 0.0 if fix_velocity else float(np.clip(delta[nn], -0.5, 0.5))
@@ -928,24 +987,24 @@ def invert_reflector(
             f"tomography iteration {it}: V = {V:.1f} m/s, rms misfit {misfit_hist[-1]:.3f} sigma, "
             f"largest change of a constrained node {alpha * dz_max:.3f} m (step length {alpha:g})"
         )
-        if change < tolerance_m:
+        # converged: the constrained model stopped moving, or the objective stalls
+        # (a decrease below 1e-5 of itself is statistically meaningless)
+        if change < tolerance_m or obj_old - obj_new < 1e-5 * obj_old:
             converged = True
             break
 
     # linearised posterior covariance at the final model
     check_cancel(progress)
+    progress.info("tomography: posterior standard deviations")
     r_cur = r
     J, ii, sw = jacobian(paths, weights)
     A = normal_matrix(J)
-    diag = A.diagonal()
-    damp = eps_damp * np.mean(diag[:nn])
-    A = A + sp.diags(np.where(np.arange(npar) < nn, damp, 0.0) + np.where(diag > 0, 0.0, 1.0))
-    lu = spla.splu(A.tocsc(), permc_spec="MMD_AT_PLUS_A")
+    damp = eps_damp * float(np.mean(A.diagonal()[:nn]))
+    A = (A + sp.diags(np.where(np.arange(npar) < nn, damp, 0.0))).tocsr()
     m_fin = np.isfinite(r) & (weights > 0)
     dof = max(int(m_fin.sum()) - (0 if fix_velocity else 1), 1)
     chi2 = float(np.sum(weights[m_fin] * (r[m_fin] / sig[m_fin]) ** 2)) / dof
     cscale = max(1.0, chi2)
-    cdiag = _covariance_diagonal(lu, npar, g) * cscale
 
     # mask: nodes near a used reflection point or a borehole
     reach = 1.5 * g.spacing_m if mask_distance_m is None else float(mask_distance_m)
@@ -960,26 +1019,40 @@ def invert_reflector(
     else:
         mask = np.zeros(g.shape, bool)
 
-    sigma = np.sqrt(np.maximum(cdiag[:nn], 0.0)).reshape(g.shape)
-    sigma[~mask] = np.nan
-    if fix_velocity:
-        sig_v = 0.0
-        corr = np.nan
+    sigma = np.full(g.shape, np.nan)
+    sig_v = 0.0 if fix_velocity else np.nan
+    corr = np.nan
+    order, band = _banded_order(g)
+    if (band + 1) * nn * 8 > max_band_bytes:
+        warnings.warn(
+            f"the node grid ({g.nx} x {g.ny}) is too large for exact posterior standard deviations "
+            f"({(band + 1) * nn * 8 / 2**30:.1f} GiB of band storage); sigma is left empty. "
+            "Use a coarser grid or a smaller area.",
+            ReflectorMapperWarning,
+            stacklevel=2,
+        )
     else:
-        e = np.zeros(npar)
-        e[nn] = 1.0
-        col_v = lu.solve(e) * cscale
-        sig_v = V * np.sqrt(max(col_v[nn], 0.0))
-        a = np.zeros(npar)
-        a[:nn] = mask.ravel() / max(mask.sum(), 1)
-        if mask.any():
-            col_a = lu.solve(a) * cscale
-            cov_vz = float(a @ col_v)  # cov(ln V, mean elevation)
-            var_z = float(a @ col_a)
-            # depth = ground - elevation: correlation with mean depth has the opposite sign
-            corr = -cov_vz / np.sqrt(max(col_v[nn] * var_z, 1e-300))
-        else:
-            corr = np.nan
+        # C = A^-1 with A = [[A_zz, a], [a^T, c]] (velocity last): the z block of C is
+        # A_zz^-1 + u u^T / s with u = A_zz^-1 a and s = c - a.u (Sherman-Morrison).
+        Azz = A[:nn, :nn]
+        fac = _BandedSPD(Azz, order, band)
+        zdiag = fac.inverse_diagonal()
+        am = mask.ravel() / max(int(mask.sum()), 1)
+        if not fix_velocity:
+            a_col = np.asarray(A[:nn, nn].todense()).ravel()
+            u = fac.solve(a_col)
+            schur = float(A[nn, nn]) - float(a_col @ u)
+            zdiag = zdiag + u**2 / schur
+            var_lnv = cscale / schur
+            sig_v = V * np.sqrt(var_lnv)
+            if mask.any():
+                au = float(am @ u)
+                var_mean = cscale * (float(am @ fac.solve(am)) + au**2 / schur)
+                cov = -cscale * au / schur  # cov(ln V, mean elevation)
+                # depth = ground - elevation: the correlation with mean depth has the opposite sign
+                corr = -cov / np.sqrt(max(var_lnv * var_mean, 1e-300))
+        sigma = np.sqrt(np.maximum(zdiag * cscale, 0.0)).reshape(g.shape)
+        sigma[~mask] = np.nan
     elev = np.where(mask, z, np.nan)
     progress.set_progress(100.0)
     return TomographyResult(
