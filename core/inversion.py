@@ -86,6 +86,8 @@ References
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -118,6 +120,7 @@ _XTOL = 1.0e-6  # convergence: largest accepted step of an internal parameter (r
 _MAX_STEP = 2.0  # largest step of an internal parameter per iteration
 _MAX_REJECTION_ROUNDS = 5
 _LAMBDA0 = 1.0e-9  # initial Levenberg-Marquardt damping (relative to diag H): nearly Gauss-Newton
+_MAX_THREADS = 4  # engine blocks run in up to this many threads (set 1 to disable)
 _BLOCK_ELEMENTS = 49152  # padded picks per block of the engine (cache-sized)
 _MAD_TO_SIGMA = 1.4826  # MAD of a Gaussian times this = its standard deviation
 _MIN_H_M = 0.01  # plane closer than this to the source: nonphysical
@@ -465,7 +468,9 @@ class _ShotModel:
         self.offset_resolution = 0.01
 
     def take(self, rows):
-        """The model restricted to some gathers (index or boolean mask)."""
+        """The model restricted to some gathers (index, boolean mask or slice)."""
+        if isinstance(rows, slice) and rows == slice(None):
+            return self
         return _ShotModel(self.x[rows], self.y[rows], self.dz[rows], self.d2[rows], self.q[rows])
 
     def natural(self, theta):
@@ -534,14 +539,10 @@ class _ShotModel:
         one = np.ones_like(self.x)
 
         def solve(first):
-            cols = (first, self.x, one)
-            A = np.empty((len(t), 3, 3))
-            b = np.empty((len(t), 3))
-            for i in range(3):
-                wc = w * cols[i]
-                b[:, i] = np.sum(wc * y, axis=1)
-                for j in range(i + 1):
-                    A[:, i, j] = A[:, j, i] = np.sum(wc * cols[j], axis=1)
+            cols = np.stack([first, self.x, one], axis=1)  # (k, 3, n)
+            wc = cols * w[:, None, :]
+            A = np.matmul(wc, cols.transpose(0, 2, 1))
+            b = np.matmul(wc, y[:, :, None])[:, :, 0]
             return A, b, _safe_solve(A, b).T
 
         A, b, (a, bb, c0) = solve(self.d2)
@@ -632,7 +633,9 @@ class _CmpModel:
         self.offset_resolution = 0.01
 
     def take(self, rows):
-        """The model restricted to some gathers (index or boolean mask)."""
+        """The model restricted to some gathers (index, boolean mask or slice)."""
+        if isinstance(rows, slice) and rows == slice(None):
+            return self
         return _CmpModel(self.x[rows])
 
     def natural(self, theta):
@@ -725,24 +728,38 @@ def _batched_least_squares(
     block = max(16, _BLOCK_ELEMENTS // max(nmax, 1))
     if k <= block:
         return _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter, progress)
-    parts = []
-    for lo in range(0, k, block):
-        sl = slice(lo, min(lo + block, k))
-        parts.append(
-            _lm_block(
-                model.take(sl),
-                theta0[sl],
-                time[sl],
-                sigma[sl],
-                usable[sl],
-                loss,
-                f_scale,
-                xtol,
-                max_iter,
-                progress,
-            )
+    slices = [slice(lo, min(lo + block, k)) for lo in range(0, k, block)]
+
+    def run(sl):
+        return _lm_block(
+            model.take(sl),
+            theta0[sl],
+            time[sl],
+            sigma[sl],
+            usable[sl],
+            loss,
+            f_scale,
+            xtol,
+            max_iter,
+            progress,
         )
+
+    workers = min(_workers(), len(slices))
+    if workers > 1:  # numpy releases the GIL inside its loops: blocks run in parallel
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            parts = list(pool.map(run, slices))
+    else:
+        parts = [run(sl) for sl in slices]
     return tuple(np.concatenate(x) for x in zip(*parts))
+
+
+def _workers() -> int:
+    """Threads for the engine's blocks: the usable processors, at most ``_MAX_THREADS``."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        n = os.cpu_count() or 1
+    return max(1, min(n, _MAX_THREADS))
 
 
 def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter, progress):
@@ -880,6 +897,11 @@ def _scaled_normal_matrix(J, inv_s):
     return Rinv, d, cond
 
 
+def _all_or(idx, n):
+    """``slice(None)`` (a view, no copy) when ``idx`` lists all n rows in order, else ``idx``."""
+    return slice(None) if len(idx) == n else idx
+
+
 def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
     """Shared driver: start, robust fit, mispick rejection, covariance, status.
 
@@ -912,17 +934,18 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
     theta = np.full((g, p), np.nan)
     iterations = np.zeros(g, dtype=int)
     converged = np.zeros(g, dtype=bool)
-    theta_start, _ = model.start(np.where(base, time, 1.0), np.where(base, sigma, 1.0), base, settings)
+    theta_start, _ = model.start(time, sigma, base, settings)  # padding holds t = sigma = 1
     todo = np.flatnonzero(fitted)
     if progress is not None:
         progress.set_progress(5.0)
     few_after = np.zeros(g, dtype=bool)
     for rnd in range(_MAX_REJECTION_ROUNDS + 1):
         if todo.size:
-            usable = base[todo] & ~rejected[todo]
-            start = np.where(np.isfinite(theta[todo]), theta[todo], theta_start[todo])
+            sel = _all_or(todo, g)
+            usable = base[sel] & ~rejected[sel]
+            start = np.where(np.isfinite(theta[sel]), theta[sel], theta_start[sel])
             th, it, conv = _batched_least_squares(
-                model.take(todo), start, time[todo], sigma[todo], usable, loss, C, progress=progress
+                model.take(sel), start, time[sel], sigma[sel], usable, loss, C, progress=progress
             )
             theta[todo] = th
             iterations[todo] += it
@@ -968,23 +991,24 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
     rms = np.full(g, np.nan)
     fi = np.flatnonzero(fitted)
     if fi.size:
-        sub = model.take(fi)
-        params[fi] = sub.natural(theta[fi])
-        pred, Jn = sub.evaluate(params[fi], natural=True)
-        r = time[fi] - pred
-        resid[fi] = np.where(valid[fi], r, np.nan)
-        u = usable[fi]
-        e = np.where(u, r / sigma[fi], 0.0)
-        weight[fi] = np.where(u, _rho1(e * e / (C * C), loss), 0.0)
-        rms[fi] = np.sqrt(np.sum(np.where(u, r * r, 0.0), axis=1) / n_used[fi])
-        chi2_factor[fi] = np.sum(e * e, axis=1) / (n_used[fi] - p)
-        inv_s = np.where(u, 1.0 / sigma[fi], 0.0)
-        Rinv, d, cond[fi] = _scaled_normal_matrix(Jn, inv_s)
+        fs = _all_or(fi, g)
+        sub = model.take(fs)
+        params[fs] = sub.natural(theta[fs])
+        pred, Jn = sub.evaluate(params[fs], natural=True)
+        r = time[fs] - pred
+        resid[fs] = np.where(valid[fs], r, np.nan)
+        u = usable[fs]
+        e = np.where(u, r / sigma[fs], 0.0)
+        weight[fs] = np.where(u, _rho1(e * e / (C * C), loss), 0.0)
+        rms[fs] = np.sqrt(np.sum(np.where(u, r * r, 0.0), axis=1) / n_used[fs])
+        chi2_factor[fs] = np.sum(e * e, axis=1) / (n_used[fs] - p)
+        inv_s = np.where(u, 1.0 / sigma[fs], 0.0)
+        Rinv, d, cond[fs] = _scaled_normal_matrix(Jn, inv_s)
         kappa = _loss_variance_inflation(loss, C)
-        factor = kappa * np.maximum(1.0, chi2_factor[fi])
+        factor = kappa * np.maximum(1.0, chi2_factor[fs])
         with np.errstate(over="ignore", invalid="ignore"):
-            cov[fi] = Rinv / d[:, :, None] / d[:, None, :] * factor[:, None, None]
-        bad, why = sub.physical(params[fi], settings)
+            cov[fs] = Rinv / d[:, :, None] / d[:, None, :] * factor[:, None, None]
+        bad, why = sub.physical(params[fs], settings)
         if np.any(bad):
             # a non-physical fit is judged at the nearest plausible parameters: is the geometry itself
             # unable to separate the parameters (then it is ill-conditioned) or are the data wrong?
@@ -1094,18 +1118,13 @@ def _shot_model(gathers: GatherSet, q):
     row, col, nmax = _pad_layout(gid, g)
     shape = (g, nmax)
     D = np.asarray(gathers.receiver_xyz, float) - np.asarray(gathers.source_xyz, float)
-    u = np.asarray(gathers.line_unit, float)[gid]
-    w = np.asarray(gathers.cross_unit, float)[gid]
-    xu = u[:, 0] * D[:, 0] + u[:, 1] * D[:, 1]
-    yw = w[:, 0] * D[:, 0] + w[:, 1] * D[:, 1]
-    d2 = np.sum(D * D, axis=1)
-    model = _ShotModel(
-        _pad(xu, row, col, shape),
-        _pad(yw, row, col, shape),
-        _pad(D[:, 2], row, col, shape),
-        _pad(d2, row, col, shape),
-        np.asarray(q, dtype=float),
-    )
+    Dx, Dy, Dz = (_pad(D[:, i], row, col, shape) for i in range(3))
+    u = np.asarray(gathers.line_unit, float)
+    w = np.asarray(gathers.cross_unit, float)
+    xu = Dx * u[:, 0:1] + Dy * u[:, 1:2]
+    yw = Dx * w[:, 0:1] + Dy * w[:, 1:2]
+    d2 = Dx * Dx + Dy * Dy + Dz * Dz
+    model = _ShotModel(xu, yw, Dz, d2, np.asarray(q, dtype=float))
     return model, row, col, shape
 
 
