@@ -200,8 +200,8 @@ def write_geotiff(
         (edges, not cell centres), metres in ``crs``.
     cell_size_m : float or (float, float)
         Cell size, or (dx, dy) both positive.
-    crs : pyproj.CRS or anything :meth:`pyproj.CRS.from_user_input` accepts
-        CRS of the grid.
+    crs : pyproj.CRS or anything :meth:`pyproj.CRS.from_user_input` accepts, or None
+        CRS of the grid (None: no CRS keys, only the pixel-is-area key).
     nodata : float or None
         Value written in place of NaN and declared in the GDAL_NODATA tag;
         None writes NaN cells as NaN and declares no nodata.
@@ -225,7 +225,7 @@ def write_geotiff(
         raise OutputError(f"grid origin ({x0_edge!r}, {y0_top_edge!r}) is not finite")
     if compress not in ("deflate", "none"):
         raise OutputError(f"compress={compress!r}; expected 'deflate' or 'none'")
-    keys = _crs_geokeys(crs)
+    keys = _crs_geokeys(crs) if crs is not None else {_GT_RASTER_TYPE: 1}
     ny, nx = data.shape
     values = data.astype("<f4")
     if nodata is not None:

@@ -533,8 +533,9 @@ def write_geopackage(
     layers : mapping of str to Layer
         Tables in the order they appear in ``gpkg_contents`` and in GIS layer
         lists. Names: letters, digits and ``_``.
-    crs : pyproj.CRS or anything :meth:`pyproj.CRS.from_user_input` accepts
-        CRS of every geometry (the survey's working CRS).
+    crs : pyproj.CRS or anything :meth:`pyproj.CRS.from_user_input` accepts, or None
+        CRS of every geometry (the survey's working CRS); None writes the
+        standard's "undefined Cartesian" reference system (srs_id -1).
     timestamp : datetime.datetime or str, optional
         Value of ``gpkg_contents.last_change``; default ``SOURCE_DATE_EPOCH`` or
         1970-01-01 (see the module notes on determinism).
@@ -550,8 +551,8 @@ def write_geopackage(
     path = Path(os.fspath(path))
     if not layers:
         raise OutputError(f"no layers to write to '{path}'")
-    row = crs_srs_row(crs)
-    srs_id = row[1]
+    row = crs_srs_row(crs) if crs is not None else None
+    srs_id = row[1] if row is not None else -1  # -1: undefined Cartesian (12-128r18 Req 11)
     last_change = _timestamp(timestamp)
     with atomic_path(path) as tmp:
         con = sqlite3.connect(str(tmp), isolation_level=None)
@@ -565,7 +566,7 @@ def write_geopackage(
             con.executescript(_CORE_SCHEMA)
             con.execute("BEGIN")
             srs_rows = list(_MANDATORY_SRS)
-            if srs_id not in (4326, -1, 0):
+            if row is not None and srs_id not in (4326, -1, 0):
                 srs_rows.append(row)
             con.executemany("INSERT INTO gpkg_spatial_ref_sys VALUES (?, ?, ?, ?, ?, ?)", srs_rows)
             for name, layer in layers.items():

@@ -289,3 +289,12 @@ def test_bad_input_is_refused_and_old_file_kept(tmp_path, args, exc, message):
 def test_nodata_must_fit_float32(tmp_path):
     with pytest.raises(OutputError, match="not exactly representable as float32"):
         write_geotiff(tmp_path / "z.tif", np.zeros((2, 2)), 0.0, 2.0, 1.0, "EPSG:32633", nodata=0.1)
+
+
+def test_no_crs(tmp_path, grid):
+    path = write_geotiff(tmp_path / "n.tif", grid, 0.0, 370.0, 10.0, None)
+    gt, _, _, wkt, tags = _ref_read(path)
+    assert gt == (0.0, 10.0, 0.0, 370.0, 0.0, -10.0) and tags.get("AREA_OR_POINT") == "Area"
+    # GDAL turns a key directory without a model type into an unnamed local CRS
+    assert not wkt or wkt.startswith("LOCAL_CS")
+    assert read_geotiff(path).crs is None

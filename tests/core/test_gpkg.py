@@ -294,3 +294,14 @@ def test_mixed_layer_is_generic_geometry(tmp_path):
     geoms, fields, _ = _read_layer(path, "mixed")
     assert geoms[0].equals(Point(1, 2)) and geoms[1].equals(LineString([(0, 0), (3, 4)])) and geoms[2] is None
     assert list(fields["v"]) == [1, 2, 3]
+
+
+def test_no_crs_is_undefined_cartesian(tmp_path):
+    path = write_geopackage(tmp_path / "n.gpkg", {"p": Layer([Point(1, 2)], {})}, None)
+    con = sqlite3.connect(str(path))
+    srs = con.execute("SELECT srs_id FROM gpkg_geometry_columns").fetchone()[0]
+    con.close()
+    assert srs == -1  # 12-128r18 Req 11: undefined Cartesian
+    geoms, _, wkt = _read_layer(path, "p")
+    assert geoms[0].equals(Point(1, 2))
+    assert not wkt or wkt.startswith("LOCAL_CS")  # GDAL names srs_id -1 a local (engineering) CRS
