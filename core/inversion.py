@@ -719,7 +719,7 @@ class _CmpModel:
 
 
 def _batched_least_squares(
-    model, theta0, time, sigma, usable, loss, f_scale, xtol=_XTOL, max_iter=_MAX_ITER, progress=None
+    model, theta0, time, sigma, usable, loss, f_scale, xtol=None, max_iter=None, progress=None
 ):
     """Robust Levenberg-Marquardt fit of many small problems at once (see :func:`_lm_block`).
 
@@ -727,6 +727,8 @@ def _batched_least_squares(
     picks so that the working arrays stay in the processor cache; this is
     about twice as fast as one pass over all gathers.
     """
+    xtol = _XTOL if xtol is None else xtol
+    max_iter = _MAX_ITER if max_iter is None else max_iter
     k = theta0.shape[0]
     if k == 0:
         return theta0.astype(float).copy(), np.zeros(0, dtype=int), np.zeros(0, dtype=bool)

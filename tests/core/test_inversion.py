@@ -664,3 +664,26 @@ def test_cmp_bins_then_levin_fit(rng):
     ok = fit.status == "ok"
     assert ok.sum() > 50
     np.testing.assert_allclose(fit.nmo_velocity_m_s[ok], V / np.cos(np.radians(dip)), rtol=1e-7)
+
+
+def test_not_converged_is_flagged(rng, monkeypatch):
+    # an iteration budget of one step cannot reach the tolerance from the linear start
+    monkeypatch.setattr(inv, "_MAX_ITER", 1)
+    gs, tr = make_gathers(rng, 3, noise_s=SIGMA)
+    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    assert list(fit.status) == ["not_converged"] * 3
+    assert all("did not converge" in r for r in fit.reason)
+    assert np.all(np.isfinite(fit.velocity_m_s))  # best values kept for inspection
+
+
+def test_empty_inputs(rng):
+    gs, _ = make_gathers(rng, 1, npick=1)
+    empty = GatherSet(
+        *(a[:0] for a in (gs.gather, gs.source_xyz, gs.receiver_xyz, gs.time_s, gs.sigma_s, gs.pick_index)),
+        *(a[:0] for a in (gs.line, gs.shot, gs.reflector, gs.line_unit, gs.cross_unit, gs.source_xyz_g)),
+        gs.spread_length_m[:0],
+    )
+    assert len(inv.fit_shot_gathers(empty)) == 0
+    assert len(inv.fit_cmp_gathers(np.zeros(0, int), [], [], [])) == 0
+    gid, centres, off = inv.cmp_bins(np.zeros((0, 2)), np.zeros((0, 2)), 1.0)
+    assert gid.shape == (0,) and centres.shape == (0, 2) and off.shape == (0,)
