@@ -305,3 +305,16 @@ def test_no_crs_is_undefined_cartesian(tmp_path):
     geoms, _, wkt = _read_layer(path, "p")
     assert geoms[0].equals(Point(1, 2))
     assert not wkt or wkt.startswith("LOCAL_CS")  # GDAL names srs_id -1 a local (engineering) CRS
+
+
+def test_random_doubles_and_ints_round_trip_exactly(tmp_path, rng):
+    n = 300
+    values = rng.normal(0.0, 1.0, n) * 10.0 ** rng.integers(-300, 300, n)  # the whole double range
+    ints = rng.integers(-(2**62), 2**62, n)
+    xy = rng.uniform(-1e6, 1e7, (n, 2))
+    layer = Layer([Point(x, y) for x, y in xy], {"v": values, "k": ints})
+    path = write_geopackage(tmp_path / "r.gpkg", {"r": layer}, "EPSG:32633")
+    geoms, fields, _ = _read_layer(path, "r")
+    np.testing.assert_array_equal(np.asarray(fields["v"], dtype=float), values)  # REAL is an IEEE double
+    np.testing.assert_array_equal(np.asarray(fields["k"], dtype=np.int64), ints)  # INTEGER is 64-bit
+    np.testing.assert_array_equal(np.array([(g.x, g.y) for g in geoms]), xy)  # WKB doubles, no rounding

@@ -132,3 +132,19 @@ def test_bad_tables_are_refused(tmp_path, kwargs, message):
 def test_xy_field_clash(tmp_path):
     with pytest.raises(OutputError, match="field 'x' clashes"):
         layer_to_csv(tmp_path / "c.csv", Layer([Point(0, 0)], {"x": np.array([1.0])}))
+
+
+def test_random_text_round_trips_through_guard(tmp_path, rng):
+    # random strings over an alphabet rich in formula starters, quotes, separators and line breaks
+    alphabet = list("=+-@\t\r\n,;\"' aZ09é線")
+    texts = ["".join(rng.choice(alphabet, size=int(rng.integers(0, 12)))) for _ in range(400)]
+    path = write_csv(tmp_path / "r.csv", {"t": np.array(texts, dtype=object)})
+    back = [r[0] for r in _rows(path)[1:]]
+    assert len(back) == len(texts)
+    for original, cell in zip(texts, back):
+        # a cell is the text itself, or the text behind one apostrophe when it starts like a formula
+        if original.startswith(("=", "+", "-", "@", "\t", "\r")):
+            assert cell == "'" + original
+        else:
+            assert cell == original
+        assert not cell.startswith(("=", "+", "-", "@", "\t", "\r"))
