@@ -45,7 +45,7 @@ import sqlite3
 import struct
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Dict, Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -579,14 +579,3 @@ def write_geopackage(
             con.close()
     return path
 
-
-def _describe(path) -> Dict[str, Any]:  # pragma: no cover - a debugging aid
-    con = sqlite3.connect(f"file:{os.fspath(path)}?mode=ro", uri=True)
-    try:
-        return {
-            "application_id": con.execute("PRAGMA application_id").fetchone()[0],
-            "user_version": con.execute("PRAGMA user_version").fetchone()[0],
-            "contents": con.execute("SELECT * FROM gpkg_contents").fetchall(),
-        }
-    finally:
-        con.close()
