@@ -173,3 +173,18 @@ def test_check_output_dir_refuses_input_as_folder(tmp_path):
     toml.write_text("")
     with pytest.raises(OutputError, match="is the input"):
         check_output_dir(toml, [toml])
+
+
+def test_check_output_dir_reports_a_failed_probe(tmp_path, monkeypatch):
+    # simulates a folder the user may not write to (running as root, permissions cannot show it)
+    import tempfile
+
+    def refuse(*args, **kwargs):
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr(tempfile, "mkstemp", refuse)
+    with pytest.raises(OutputError, match=r"cannot write in the output folder .*Permission denied"):
+        check_output_dir(tmp_path, [])
+    with pytest.raises(OutputError, match=r"cannot create a file in the output folder .*Permission denied"):
+        with atomic_path(tmp_path / "a.txt"):
+            pass
