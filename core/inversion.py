@@ -907,7 +907,7 @@ def _scaled_normal_matrix(J, inv_s):
     with np.errstate(divide="ignore", invalid="ignore"):
         cond = np.where(ev_min > ev_max * 1e-300, ev_max / ev_min, np.inf)
     inv_ev = 1.0 / np.maximum(ev, 1e-300)
-    Rinv = np.einsum("kij,kj,klj->kil", Q, inv_ev, Q)
+    Rinv = np.matmul(Q * inv_ev[:, None, :], Q.transpose(0, 2, 1))
     return Rinv, d, cond
 
 
@@ -921,6 +921,9 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
 
     ``time``, ``sigma``, ``valid`` (pick exists), ``excluded`` are padded
     ``(g, nmax)``. Returns a dict of per-gather and padded per-pick arrays.
+    Gathers are independent, so the whole procedure runs on cache-sized
+    blocks of gathers (in parallel threads where several processors are
+    available) and the results are joined.
     """
     loss = _check_loss(settings.robust_loss)
     C = float(settings.robust_scale)
@@ -931,6 +934,50 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
         raise InversionError(
             f"reject_sigma = {k_rej!r} must be positive (e.g. 4); use inf to disable rejection"
         )
+    kappa = _loss_variance_inflation(loss, C)
+    g, nmax = time.shape
+    block = max(16, _BLOCK_ELEMENTS // max(nmax, 1))
+    slices = [slice(lo, min(lo + block, g)) for lo in range(0, g, block)] or [slice(0, 0)]
+    if progress is not None:
+        progress.set_progress(1.0)
+
+    def run(sl):
+        return _engine_block(
+            model.take(sl) if len(slices) > 1 else model,
+            time[sl],
+            sigma[sl],
+            valid[sl],
+            excluded[sl],
+            settings,
+            loss,
+            C,
+            k_rej,
+            kappa,
+            progress,
+        )
+
+    workers = min(_workers(), len(slices))
+    parts = []
+    if workers > 1:  # numpy releases the GIL inside its loops: blocks run in parallel
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            for part in pool.map(run, slices):
+                parts.append(part)
+                if progress is not None:
+                    progress.set_progress(1.0 + 98.0 * len(parts) / len(slices))
+    else:
+        for sl in slices:
+            parts.append(run(sl))
+            if progress is not None:
+                progress.set_progress(1.0 + 98.0 * len(parts) / len(slices))
+    if progress is not None:
+        progress.set_progress(100.0)
+    if len(parts) == 1:
+        return parts[0]
+    return {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
+
+
+def _engine_block(model, time, sigma, valid, excluded, settings, loss, C, k_rej, kappa, progress):
+    """:func:`_fit_engine` on one block of gathers (the same arguments, padded arrays)."""
     p = model.n_params
     g, nmax = time.shape
     min_picks = max(int(settings.min_picks), p + 1)
@@ -950,8 +997,6 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
     converged = np.zeros(g, dtype=bool)
     theta_start, _ = model.start(time, sigma, base, settings)  # padding holds t = sigma = 1
     todo = np.flatnonzero(fitted)
-    if progress is not None:
-        progress.set_progress(5.0)
     few_after = np.zeros(g, dtype=bool)
     for rnd in range(_MAX_REJECTION_ROUNDS + 1):
         if todo.size:
@@ -964,8 +1009,6 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
             theta[todo] = th
             iterations[todo] += it
             converged[todo] = conv
-        if progress is not None:
-            progress.set_progress(10.0 + 80.0 * (rnd + 1) / (_MAX_REJECTION_ROUNDS + 1))
         if not np.isfinite(k_rej) or rnd == _MAX_REJECTION_ROUNDS:
             break
         # mispick test on all non-excluded picks of the fitted gathers
@@ -1018,7 +1061,6 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
         chi2_factor[fs] = np.sum(e * e, axis=1) / (n_used[fs] - p)
         inv_s = np.where(u, 1.0 / sigma[fs], 0.0)
         Rinv, d, cond[fs] = _scaled_normal_matrix(Jn, inv_s)
-        kappa = _loss_variance_inflation(loss, C)
         factor = kappa * np.maximum(1.0, chi2_factor[fs])
         with np.errstate(over="ignore", invalid="ignore"):
             cov[fs] = Rinv / d[:, :, None] / d[:, None, :] * factor[:, None, None]
@@ -1070,8 +1112,6 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
     reason = np.full(g, "fit accepted", dtype=object)
     for kk, text in reasons.items():
         reason[kk] = text
-    if progress is not None:
-        progress.set_progress(100.0)
     return dict(
         params=params,
         cov=cov,
