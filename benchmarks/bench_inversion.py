@@ -313,8 +313,8 @@ def main(argv=None):
             "ftol = xtol = gtol = 1e-12. Batched times are the best of 3 runs, with "
             f"{inv._workers()} threads and with 1 thread; scipy's loop runs once.",
             "",
-            "| N gathers | batched (s) | batched, 1 thread (s) | scipy loop (s) | speed-up | speed-up, 1 thread "
-            "| max rel. parameter difference |",
+            "| N gathers | batched (s) | batched, 1 thread (s) | scipy loop (s) | speed-up "
+            "| speed-up, 1 thread | max rel. parameter difference |",
             "|---:|---:|---:|---:|---:|---:|---:|",
         ]
         lines += [
