@@ -679,8 +679,9 @@ class _BandedSPD:
         Z_{ij} = -\\sum_{k=j+1}^{j+b} L_{kj} Z_{ik}\\ (j < i \\le j + b), \\qquad
         Z_{jj} = \\frac{1}{d_j} - \\sum_{k=j+1}^{j+b} L_{kj} Z_{kj},
 
-    which only needs Z inside the band, kept in a sliding (b+1) x (b+1) window.
-    Cost O(n b^2) time, O(n b) memory.
+    which only needs Z inside the band, kept in a sliding b x b window and
+    evaluated by blocks of columns (matrix products). Cost O(n b^2) time,
+    O(n b) memory.
     """
 
     def __init__(self, A, order, bandwidth):
@@ -710,34 +711,54 @@ class _BandedSPD:
         out[self.order] = self._sla.cho_solve_banded((self.cb, True), rhs[self.order])
         return out
 
-    def inverse_diagonal(self):
+    def inverse_diagonal(self, block: int = 64):
+        """diag(A^-1) by the blocked Takahashi recurrence (see the class notes).
+
+        Blocks J of ``block`` columns are processed from the last; with
+        K = the b indices after J and :math:`M = C_{KJ} C_{JJ}^{-1}` (C the
+        Cholesky factor, :math:`A = C C^T`):
+        :math:`Z_{KJ} = -Z_{KK} M` and
+        :math:`Z_{JJ} = (C_{JJ} C_{JJ}^T)^{-1} - M^T Z_{KJ}`.
+        """
+        sla = self._sla
         cb = self.cb
         b = self.b
         n = cb.shape[1]
-        m = b + 1
-        dinv = 1.0 / cb[0] ** 2
-        Lb = cb[1:] / cb[0]  # Lb[k - 1, j] = L[j + k, j]
-        W = np.zeros((m, m))
-        lp = np.zeros(m)
-        steps = np.arange(1, m)
         zdiag = np.empty(n)
-        for j in range(n - 1, -1, -1):
-            s = j % m
-            kmax = min(b, n - 1 - j)
-            W[s, :] = 0.0
-            W[:, s] = 0.0
-            if kmax == 0:
-                W[s, s] = zdiag[j] = dinv[j]
-                continue
-            slots = (j + steps[:kmax]) % m
-            lvec = Lb[:kmax, j]
-            lp[:] = 0.0
-            lp[slots] = lvec
-            zvec = -(W[slots] @ lp)
-            zjj = dinv[j] - lvec @ zvec
-            W[slots, s] = zvec
-            W[s, slots] = zvec
-            W[s, s] = zdiag[j] = zjj
+        win = np.zeros((0, 0))  # Z on indices [j1, j1 + len(win))
+        j1 = n
+        while j1 > 0:
+            j0 = max(0, j1 - block)
+            nbk = j1 - j0
+            kk = win.shape[0]
+            c = np.arange(nbk)
+            # C_JJ (lower) and C_KJ from the band: C[i, k] = cb[i - k, k] for 0 <= i - k <= b
+            dJ = c[:, None] - c[None, :]
+            okJ = (dJ >= 0) & (dJ <= b)
+            CJJ = np.where(okJ, cb[np.clip(dJ, 0, b), j0 + c[None, :]], 0.0)
+            Cinv = sla.solve_triangular(CJJ, np.eye(nbk), lower=True)
+            ZJJ = Cinv.T @ Cinv
+            if kk:
+                r = np.arange(kk)
+                dK = (j1 + r[:, None]) - (j0 + c[None, :])
+                okK = dK <= b
+                CKJ = np.where(okK, cb[np.clip(dK, 0, b), j0 + c[None, :]], 0.0)
+                M = CKJ @ Cinv  # C_KJ C_JJ^-1
+                ZKJ = -(win @ M)
+                ZJJ -= M.T @ ZKJ
+            zdiag[j0:j1] = np.diag(ZJJ)
+            nw = min(b, n - j0)
+            new = np.empty((nw, nw))
+            if nw <= nbk:
+                new[:, :] = ZJJ[:nw, :nw]
+            else:
+                rest = nw - nbk
+                new[:nbk, :nbk] = ZJJ
+                new[nbk:, :nbk] = ZKJ[:rest]
+                new[:nbk, nbk:] = ZKJ[:rest].T
+                new[nbk:, nbk:] = win[:rest, :rest]
+            win = new
+            j1 = j0
         out = np.empty(n)
         out[self.order] = zdiag
         return out
