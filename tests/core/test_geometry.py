@@ -374,6 +374,29 @@ def test_station_ground_model():
     assert float(g1(x[-1] + 5.0, y[-1] + 20.0)) == pytest.approx(zl[-1], abs=1e-9)
 
 
+def test_ground_interpolant_matches_scipy_on_line_shaped_station_sets():
+    # reference library: scipy's LinearNDInterpolator on the same Delaunay triangulation
+    # (grid-like station sets have cocircular points, so the triangulation must be shared);
+    # equal to rounding (1e-9 m), NaN outside the hull in both
+    from scipy.interpolate import LinearNDInterpolator
+
+    rng = np.random.default_rng(4)
+    c = np.arange(0.0, 300.0, 2.5)
+    xy = np.concatenate(
+        [np.column_stack([c, np.full_like(c, 60.0 * k)]) for k in range(5)]
+        + [np.column_stack([np.full_like(c, 60.0 * k + 30.0), c + 0.7 * k]) for k in range(5)]
+    )
+    xy = np.unique(xy, axis=0)
+    z = 200.0 + 0.02 * xy[:, 0] + rng.normal(0.0, 0.5, len(xy))
+    tin = geometry._LinearTin(xy, z)
+    q = rng.uniform(-20.0, 320.0, (20000, 2))
+    got = tin(q)
+    ref = LinearNDInterpolator(tin.tri, z)(q)
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(ref))
+    assert np.isnan(ref).sum() > 100  # some queries are outside the hull
+    np.testing.assert_allclose(got[~np.isnan(ref)], ref[~np.isnan(ref)], atol=1e-9)
+
+
 def test_refit_with_resolved_cross_dip_puts_points_on_the_plane():
     # real inversion, combine_lines, cross_components, refit: the points of every gather
     # in a good measurement lie on the true plane (noise-free round trip, 1e-6 m:
