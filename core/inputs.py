@@ -66,6 +66,9 @@ __all__ = [
     "AREA_OF_USE_ERROR_DEG",
     "MAX_ABS_ELEVATION_M",
     "MAX_TIME_MS",
+    "MIN_SIGMA_M",
+    "MIN_SIGMA_MS",
+    "MIN_TIME_MS",
     "load_survey",
     "read_boreholes",
     "read_csv_table",
@@ -77,6 +80,12 @@ __all__ = [
 #: Largest two-way time accepted in picks.csv (ms). Shallow engineering reflections
 #: arrive within a few hundred ms; more is a unit or typing error (common practice).
 MAX_TIME_MS = 2000.0
+#: Smallest two-way time accepted (ms): 0.1 ms is a 0.1-0.3 m reflection path in soil.
+MIN_TIME_MS = 0.1
+#: Smallest pick sigma accepted (ms, i.e. 1 microsecond, finer than any seismograph's timing).
+MIN_SIGMA_MS = 0.001
+#: Smallest borehole depth sigma accepted (m).
+MIN_SIGMA_M = 0.001
 #: Largest |elevation| (m) accepted for stations and borehole collars.
 MAX_ABS_ELEVATION_M = 10000.0
 #: Points farther than this (degrees) outside the CRS's area of use are an error.
@@ -586,12 +595,19 @@ def read_picks(path, default_sigma_ms=0.5, stations=None, *, max_time_ms=MAX_TIM
     Raises
     ------
     InputFileError
-        Per row: bad number, time <= 0 or > ``max_time_ms``, sigma <= 0,
+        Per row: bad number, time <= 0 or > ``max_time_ms``, sigma <= 0 (or
+        below :data:`MIN_SIGMA_MS`),
         duplicate (line, shot, receiver, reflector), unknown line or station;
-        per file: times that look like seconds.
+        per file: times that look like seconds; then any time below
+        :data:`MIN_TIME_MS`.
     """
-    if not (isinstance(default_sigma_ms, (int, float)) and default_sigma_ms > 0):
-        raise InputFileError(path, None, "sigma_ms", f"default sigma {default_sigma_ms!r} ms must be > 0")
+    if not (isinstance(default_sigma_ms, (int, float)) and default_sigma_ms >= MIN_SIGMA_MS):
+        raise InputFileError(
+            path,
+            None,
+            "sigma_ms",
+            f"default sigma {default_sigma_ms!r} ms must be >= {MIN_SIGMA_MS:g} (and > 0)",
+        )
     table = read_csv_table(path, PICK_COLUMNS, PICK_OPTIONAL, role="picks")
     cols = table.columns
     j_sig = cols.index("sigma_ms") if "sigma_ms" in cols else None
@@ -631,6 +647,14 @@ def read_picks(path, default_sigma_ms=0.5, stations=None, *, max_time_ms=MAX_TIM
             s = _number(table, i, "sigma_ms", r[j_sig])
             if s <= 0:
                 raise InputFileError(path, lineno, "sigma_ms", f"sigma {r[j_sig]!r} ms must be > 0")
+            if s < MIN_SIGMA_MS:
+                raise InputFileError(
+                    path,
+                    lineno,
+                    "sigma_ms",
+                    f"sigma {r[j_sig]!r} ms is below {MIN_SIGMA_MS:g} ms, finer than any seismograph's "
+                    "timing",
+                )
             sigma_ms[i] = s
         else:
             sigma_ms[i] = default_sigma_ms
@@ -654,6 +678,15 @@ def read_picks(path, default_sigma_ms=0.5, stations=None, *, max_time_ms=MAX_TIM
             "time_ms",
             f"times look like seconds (all below 1, median {np.median(time_ms):.3g}); time_ms must be "
             "milliseconds: multiply by 1000",
+        )
+    small = np.flatnonzero(time_ms < MIN_TIME_MS)
+    if small.size:
+        i = int(small[0])
+        raise InputFileError(
+            path,
+            table.lines[i],
+            "time_ms",
+            f"time {table.rows[i][3]!r} ms is below {MIN_TIME_MS:g} ms: not a reflection two-way time",
         )
     return Picks(
         line=line,
@@ -714,8 +747,10 @@ def read_boreholes(path, crs_in, crs_work=None, default_sigma_m=0.1, stations=No
     ------
     InputFileError
     """
-    if not (isinstance(default_sigma_m, (int, float)) and default_sigma_m > 0):
-        raise InputFileError(path, None, "sigma_m", f"default sigma {default_sigma_m!r} m must be > 0")
+    if not (isinstance(default_sigma_m, (int, float)) and default_sigma_m >= MIN_SIGMA_M):
+        raise InputFileError(
+            path, None, "sigma_m", f"default sigma {default_sigma_m!r} m must be >= {MIN_SIGMA_M:g} (and > 0)"
+        )
     table = read_csv_table(path, BOREHOLE_COLUMNS, BOREHOLE_OPTIONAL, role="boreholes")
     path = table.path
     n = len(table.rows)
@@ -747,6 +782,13 @@ def read_boreholes(path, crs_in, crs_work=None, default_sigma_m=0.1, stations=No
             s = _number(table, i, "sigma_m", r[j_sig])
             if s <= 0:
                 raise InputFileError(path, lineno, "sigma_m", f"sigma {r[j_sig]!r} m must be > 0")
+            if s < MIN_SIGMA_M:
+                raise InputFileError(
+                    path,
+                    lineno,
+                    "sigma_m",
+                    f"sigma {r[j_sig]!r} m is below {MIN_SIGMA_M:g} m: give a realistic error",
+                )
             sigma[i] = s
         else:
             sigma[i] = default_sigma_m
@@ -795,7 +837,13 @@ _CHOICES = {
     "surface_method": ("auto", "kriging", "spline", "tomography"),
     "variogram_model": ("spherical", "exponential", "gaussian"),
 }
-_MINIMUM = {"min_picks": 3, "neighbours": 3, "index_contour_every": 1}
+_MINIMUM = {
+    "min_picks": 3,
+    "neighbours": 3,
+    "index_contour_every": 1,
+    "default_sigma_ms": MIN_SIGMA_MS,
+    "borehole_sigma_m": MIN_SIGMA_M,
+}
 _RANGES = {"min_line_angle_deg": (0.0, 90.0)}  # (exclusive low, inclusive high)
 
 

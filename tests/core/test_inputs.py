@@ -178,10 +178,25 @@ def test_max_time_parameter(tmp_path):
     assert inputs.read_picks(path, 0.5, max_time_ms=3000.0).time_s[0] == 2.5
 
 
-@pytest.mark.parametrize("sigma", [0, -1.0, float("nan")], ids=["zero", "negative", "nan"])
+@pytest.mark.parametrize("sigma", [0, -1.0, float("nan"), 1e-300], ids=["zero", "negative", "nan", "tiny"])
 def test_default_sigma_must_be_positive(tmp_path, sigma):
-    with pytest.raises(InputFileError, match="must be > 0"):
+    with pytest.raises(InputFileError, match=r"must be >= 0\.001"):
         inputs.read_picks(write(tmp_path / "p.csv", PICKS), sigma)
+
+
+@pytest.mark.parametrize(
+    "row, match",
+    [
+        ("A,1,2,30,4.9e-324", r"line 3, field 'sigma_ms': sigma '4\.9e-324' ms is below 0\.001 ms"),
+        ("A,1,2,0.05,0.5", r"line 3, field 'time_ms': time '0\.05' ms is below 0\.1 ms"),
+    ],
+    ids=["sigma_underflow", "time_tiny"],
+)
+def test_tiny_values_refused(tmp_path, row, match):
+    # found by the fuzz tests: 4.9e-324 ms is > 0 but becomes 0 s after the unit change
+    text = "line,shot,receiver,time_ms,sigma_ms\nA,1,3,30,0.5\n" + row + "\n"
+    with pytest.raises(InputFileError, match=match):
+        inputs.read_picks(write(tmp_path / "p.csv", text), 0.5)
 
 
 # ----------------------------------------------------------------- boreholes
@@ -242,7 +257,7 @@ def test_settings_from_toml(tmp_path):
         ("min_picks", "6.5", r"expected a whole number"),
         ("min_picks", "2", r"must be at least 3"),
         ("default_sigma_ms", "true", r"is true/false; expected a number"),
-        ("default_sigma_ms", "0", r"must be > 0"),
+        ("default_sigma_ms", "0", r"must be at least 0\.001"),
         ("default_sigma_ms", "inf", r"not a finite number"),
         ("robust_loss", '"L1"', r"is not one of 'huber', 'soft_l1', 'cauchy', 'linear'"),
         ("variogram_model", '"spherica"', r"did you mean 'spherical'\?"),
