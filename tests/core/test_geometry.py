@@ -10,7 +10,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pytest
-from reflector_mapper.core import crs, forward, geometry, inversion, structure
+from reflector_mapper.core import forward, geometry, inputs, inversion, structure
 from reflector_mapper.core.errors import InputFileError, SurveyConfigError
 from reflector_mapper.core.model import Picks, Settings, Stations, Survey
 
@@ -496,10 +496,30 @@ def _run(survey):
     return g, dips, geometry.reflector_points(g, fits)
 
 
-def test_same_survey_in_lonlat_and_utm_gives_the_same_results():
-    # a survey built in UTM 33N, its stations written in lon/lat (pyproj, EPSG:4326) and
-    # brought back by core.crs (working CRS chosen from the extent). Dips within 0.01 deg,
-    # points within 1 cm (the round trip of pyproj is ~1e-9 m; the rest is the fits').
+def _write_survey(folder, stations, x, y, picks, crs_text):
+    folder.mkdir()
+    rows = ["line,station,x,y,z"] + [
+        f"{a},{b},{float(u)!r},{float(v)!r},{float(w)!r}"
+        for a, b, u, v, w in zip(stations.line, stations.station, x, y, stations.z_m)
+    ]
+    (folder / "stations.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+    rows = ["line,shot,receiver,time_ms,sigma_ms"] + [
+        f"{a},{b},{c},{float(1e3 * t)!r},{float(1e3 * e)!r}"
+        for a, b, c, t, e in zip(picks.line, picks.shot, picks.receiver, picks.time_s, picks.sigma_s)
+    ]
+    (folder / "picks.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+    toml = f'[survey]\nname = "t"\ncrs = "{crs_text}"\n\n[files]\nstations = "stations.csv"\n'
+    (folder / "survey.toml").write_text(toml + 'picks = "picks.csv"\n', encoding="utf-8")
+    return folder / "survey.toml"
+
+
+def test_same_survey_in_lonlat_and_utm_gives_the_same_results(tmp_path):
+    # one survey written twice, in UTM 33N and in lon/lat (EPSG:4326, converted with
+    # pyproj directly), read by inputs.load_survey (which picks the working CRS from the
+    # extent). Same dips within 0.01 deg and points within 1 cm; pyproj's round trip is
+    # ~1e-9 m and the CSV keeps 17 digits, so the fits see the same geometry.
+    from pyproj import Transformer
+
     ground = lambda x, y: 250.0 + hilly(x - 512400.0, y - 5455600.0)  # noqa: E731
     stations = make_stations(
         {
@@ -508,12 +528,17 @@ def test_same_survey_in_lonlat_and_utm_gives_the_same_results():
         }
     )
     normal, offset = forward.plane_through_point([512400.0, 5455600.0, 205.0], 14.0, 110.0)
-    utm = survey_over_plane(stations, normal, offset)
-    lon, lat = crs.transform_xy(stations.x_m, stations.y_m, "EPSG:32633", "EPSG:4326")
-    work = crs.working_crs("EPSG:4326", lon, lat)
-    assert work.to_epsg() == 32633
-    x, y = crs.transform_xy(lon, lat, "EPSG:4326", work)
-    geo = replace(utm, stations=replace(stations, x_m=x, y_m=y))
+    truth = survey_over_plane(stations, normal, offset)
+    lon, lat = Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True).transform(
+        stations.x_m, stations.y_m
+    )
+    utm = inputs.load_survey(
+        _write_survey(tmp_path / "utm", stations, stations.x_m, stations.y_m, truth.picks, "EPSG:32633")
+    )
+    geo = inputs.load_survey(_write_survey(tmp_path / "geo", stations, lon, lat, truth.picks, "EPSG:4326"))
+    assert geo.crs.to_epsg() == 32633  # the UTM zone of the site, chosen by core.crs
+    np.testing.assert_allclose(geo.stations.x_m, stations.x_m, atol=1e-6)
+    np.testing.assert_allclose(geo.stations.y_m, stations.y_m, atol=1e-6)
     g1, d1, p1 = _run(utm)
     g2, d2, p2 = _run(geo)
     np.testing.assert_allclose(g2.line_unit, g1.line_unit, atol=1e-9)  # same grid azimuths
@@ -521,4 +546,5 @@ def test_same_survey_in_lonlat_and_utm_gives_the_same_results():
     np.testing.assert_allclose(d2.dip_deg[d2.ok], d1.dip_deg[d1.ok], atol=0.01)
     np.testing.assert_allclose(d2.dip_direction_deg[d2.ok], d1.dip_direction_deg[d1.ok], atol=0.01)
     np.testing.assert_allclose(d1.dip_deg[d1.ok], 14.0, atol=0.01)  # and both are the truth
+    np.testing.assert_allclose(d1.dip_direction_deg[d1.ok], 110.0, atol=0.01)
     np.testing.assert_allclose(p2.xyz, p1.xyz, atol=0.01)
