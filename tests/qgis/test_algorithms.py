@@ -1,0 +1,274 @@
+"""Every Processing algorithm runs through processing.run and gives the core's results.
+
+The reference is the core called directly on the same survey (the sample
+survey of the invented Tarnwick Creek site): the algorithms are thin adapters,
+so their outputs must equal the core's to floating-point round trip (values
+pass through QGIS as doubles: exact), and the GeoTIFFs to float32.
+"""
+
+import csv
+import math
+import shutil
+
+import numpy as np
+import pytest
+
+pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
+
+from qgis.core import (  # noqa: E402
+    QgsFeature,
+    QgsGeometry,
+    QgsPointXY,
+    QgsProcessingException,
+    QgsProcessingFeedback,
+    QgsVectorLayer,
+)
+
+from qgis.PyQt.QtCore import QVariant  # noqa: E402
+
+from reflector_mapper.core import inputs, layers, pipeline, structure  # noqa: E402
+from reflector_mapper.plugin.feedback import FeedbackProgress  # noqa: E402
+
+
+def run(alg, params, feedback=None):
+    import processing
+
+    return processing.run(f"reflectormapper:{alg}", params, feedback=feedback)
+
+
+def layer_columns(layer):
+    names = [f.name() for f in layer.fields()]
+    rows = [f.attributes() for f in layer.getFeatures()]
+    cols = {n: [r[i] for r in rows] for i, n in enumerate(names)}
+    xy = np.array([[f.geometry().asPoint().x(), f.geometry().asPoint().y()] for f in layer.getFeatures()])
+    return names, cols, xy
+
+
+def is_null(value):
+    return value is None or (isinstance(value, QVariant) and value.isNull())
+
+
+def assert_same_as_core(layer, core_layer):
+    names, cols, xy = layer_columns(layer)
+    assert names == list(core_layer.fields)  # same fixed fields in the same order
+    for name, values in core_layer.fields.items():
+        values = np.asarray(values)
+        got = cols[name]
+        if values.dtype.kind == "f":
+            got = np.array([np.nan if is_null(v) else float(v) for v in got])
+            # doubles pass through QGIS unchanged: equal, NaN written as NULL
+            np.testing.assert_array_equal(got, values, err_msg=name)
+        else:
+            assert [str(v) for v in got] == [str(v) for v in values], name
+    core_xy = np.array([[g.x, g.y] for g in core_layer.geometries])
+    np.testing.assert_array_equal(xy, core_xy)
+
+
+def read_csv_rows(path):
+    with open(path, encoding="utf-8") as fh:
+        return list(csv.DictReader(line for line in fh if not line.startswith("#")))
+
+
+def memory_layers(survey_toml, stations_geometry="Point"):
+    """The survey's stations and picks as QGIS memory layers (as a user would have them)."""
+    folder = survey_toml.parent
+    st = QgsVectorLayer(f"{stations_geometry}?crs=EPSG:32633&field=line:string&field=station:string"
+                        "&field=z:double", "stations", "memory")
+    feats = []
+    for r in read_csv_rows(folder / "stations.csv"):
+        f = QgsFeature(st.fields())
+        x, y = float(r["x"]), float(r["y"])
+        if stations_geometry == "Point":
+            f.setGeometry(QgsGeometry.fromPointXY(QgsPointXY(x, y)))
+        else:
+            f.setGeometry(QgsGeometry.fromPolylineXY([QgsPointXY(x, y), QgsPointXY(x + 1, y)]))
+        f.setAttributes([r["line"], r["station"], float(r["z"])])
+        feats.append(f)
+    st.dataProvider().addFeatures(feats)
+    pk = QgsVectorLayer("None?field=ln:string&field=sp:string&field=rcv:string&field=twt:double"
+                        "&field=err:double", "picks", "memory")
+    feats = []
+    for r in read_csv_rows(folder / "picks.csv"):
+        f = QgsFeature(pk.fields())
+        f.setAttributes([r["line"], r["shot"], r["receiver"], float(r["time_ms"]), float(r["sigma_ms"])])
+        feats.append(f)
+    pk.dataProvider().addFeatures(feats)
+    return st, pk
+
+
+LAYER_PARAMS = {
+    "LINE_FIELD": "ln", "SHOT_FIELD": "sp", "RECEIVER_FIELD": "rcv", "TIME_FIELD": "twt", "SIGMA_FIELD": "err",
+    "STATION_LINE_FIELD": "line", "STATION_FIELD": "station", "Z_FIELD": "z",
+}
+
+
+@pytest.fixture
+def core_fit(sample_survey):
+    survey = inputs.load_survey(sample_survey)
+    return survey, pipeline.fit_step(survey)
+
+
+def test_fit_gathers_equals_core(provider, sample_survey, core_fit):
+    survey, step = core_fit
+    res = run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
+                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    shots, points = res["SHOTS"], res["REFLECTOR_POINTS"]
+    assert shots.crs().authid() == "EPSG:32633"
+    assert shots.featureCount() == len(step.fits) > 0
+    assert_same_as_core(shots, layers.shots_layer(step.gathers, step.fits))
+    assert_same_as_core(points, layers.reflector_points_layer(step.points))
+
+
+def test_fit_gathers_from_qgis_layers_equals_survey_file(provider, sample_survey, core_fit):
+    survey, step = core_fit
+    stations, picks = memory_layers(sample_survey)
+    res = run("fitgathers", {"PICKS": picks, "STATIONS": stations, **LAYER_PARAMS,
+                             "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    # the same numbers as from the survey file: coordinates and times pass unchanged (repr of doubles)
+    assert_same_as_core(res["SHOTS"], layers.shots_layer(step.gathers, step.fits))
+
+
+def test_setting_override_reaches_the_core(provider, sample_survey):
+    # a minimum pick count above every gather's size: no gather may be fitted
+    res = run("fitgathers", {"SURVEY": str(sample_survey), "MIN_PICKS": 100000, "SHOTS": "TEMPORARY_OUTPUT",
+                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    status = {f["status"] for f in res["SHOTS"].getFeatures()}
+    assert status == {"too_few_picks"}
+
+
+def test_stations_must_be_points(provider, sample_survey):
+    stations, picks = memory_layers(sample_survey, stations_geometry="LineString")
+    with pytest.raises(QgsProcessingException, match="point layer"):
+        run("fitgathers", {"PICKS": picks, "STATIONS": stations, **LAYER_PARAMS,
+                           "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+
+
+def test_core_input_error_becomes_processing_error(provider, sample_survey):
+    text = sample_survey.read_text().replace('crs = "EPSG:32633"', 'crs = "EPSG:999999"')
+    sample_survey.write_text(text)
+    with pytest.raises(QgsProcessingException, match="999999"):
+        run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
+                           "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+
+
+def test_cancel_stops_cleanly(provider, sample_survey):
+    feedback = QgsProcessingFeedback()
+    feedback.cancel()
+    res = run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
+                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"}, feedback=feedback)
+    assert "SHOTS" not in res or res["SHOTS"] is None
+
+
+def test_combine_lines_equals_core(provider, sample_survey, core_fit):
+    survey, step = core_fit
+    dips = structure.combine_lines(step.gathers, step.fits, radius_m=None, min_angle_deg=30.0)
+    res = run("combinelines", {"SURVEY": str(sample_survey), "MIN_ANGLE": 30.0,
+                               "DIP_MEASUREMENTS": "TEMPORARY_OUTPUT"})
+    layer = res["DIP_MEASUREMENTS"]
+    assert layer.featureCount() == len(dips.dip_deg) > 0
+    assert_same_as_core(layer, layers.dips_layer(dips))
+    # strike by the right-hand rule: dip direction = strike + 90 (DESIGN.md s.3)
+    for f in layer.getFeatures():
+        if not is_null(f["dip_deg"]):
+            assert math.isclose((f["strike_deg"] + 90.0) % 360.0, f["dip_direction_deg"], abs_tol=1e-9)
+
+
+def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
+    from osgeo import gdal
+
+    from reflector_mapper.core.surface import GridSpec, interpolate_surface
+
+    survey, step = core_fit
+    fit = run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
+                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    out, std = tmp_path / "surface.tif", tmp_path / "std.tif"
+    # a coarse grid and few neighbours keep the test fast; the core gets the same arguments
+    params = {"INPUT": fit["REFLECTOR_POINTS"], "VALUE_FIELD": "elevation_m", "ERROR_FIELD": "sigma_m",
+              "METHOD": 0, "VARIOGRAM": 0, "CELL_SIZE": 20.0, "NEIGHBOURS": 12, "OUTPUT": str(out),
+              "STD_OUTPUT": str(std)}
+    res = run("interpolatesurface", params)
+    assert res["OUTPUT"] == str(out)
+    p = step.points
+    ok = p.finite & np.isfinite(p.sigma_m)
+    x, y = p.x_m[ok], p.y_m[ok]
+    spec = GridSpec.from_data(x, y, cell_size_m=20.0)
+    surf, _ = interpolate_surface(x, y, p.elevation_m[ok], p.sigma_m[ok], spec, method="kriging",
+                                  neighbours=12, variogram_model="spherical")
+    ds = gdal.Open(str(out))
+    assert ds.GetGeoTransform() == pytest.approx(spec.geotransform)
+    got = ds.GetRasterBand(1).ReadAsArray()
+    # float32 storage: relative 6e-8, i.e. < 1e-4 m at elevations of a few hundred metres
+    np.testing.assert_allclose(got, surf.z.astype(np.float32), rtol=0, atol=1e-4, equal_nan=True)
+    assert np.isfinite(got).sum() > 10
+    ds_std = gdal.Open(str(std))  # keep the dataset alive while its band is read (GDAL)
+    got_std = ds_std.GetRasterBand(1).ReadAsArray()
+    np.testing.assert_allclose(got_std, surf.std.astype(np.float32), rtol=0, atol=1e-4, equal_nan=True)
+    ds = ds_std = None
+
+
+def test_interpolate_surface_refuses_geographic_points(provider):
+    layer = QgsVectorLayer("Point?crs=EPSG:4326&field=elevation_m:double", "p", "memory")
+    feats = []
+    for i in range(5):
+        f = QgsFeature(layer.fields())
+        f.setGeometry(QgsGeometry.fromPointXY(QgsPointXY(15 + i * 0.001, 48 + (i % 2) * 0.001)))
+        f.setAttributes([200.0 + i])
+        feats.append(f)
+    layer.dataProvider().addFeatures(feats)
+    with pytest.raises(QgsProcessingException, match="geographic"):
+        run("interpolatesurface", {"INPUT": layer, "VALUE_FIELD": "elevation_m", "OUTPUT": "TEMPORARY_OUTPUT"})
+
+
+def test_feedback_adapter():
+    fb = QgsProcessingFeedback()
+    progress = FeedbackProgress(fb)
+    progress.set_progress(42.0)
+    assert fb.progress() == pytest.approx(42.0)
+    progress.set_progress(250.0)  # clipped
+    assert fb.progress() == pytest.approx(100.0)
+    assert not progress.is_canceled()
+    fb.cancel()
+    assert progress.is_canceled()
+    FeedbackProgress(None).info("nothing")  # no feedback: silently ignored
+
+
+def test_run_survey_equals_core(provider, sample_survey, core_results, tmp_path):
+    from osgeo import gdal
+
+    core_out, _result = core_results
+    out = tmp_path / "results"
+    res = run("runsurvey", {"SURVEY": str(sample_survey), "OUTPUT": str(out), "LOAD_RESULTS": False})
+    assert res["OUTPUT"] == str(out)
+    for key, name in (("GEOPACKAGE", "survey.gpkg"), ("DEPTH", "reflector_depth.tif"),
+                      ("ELEVATION", "reflector_elevation.tif"), ("DEPTH_SIGMA", "depth_sigma.tif"),
+                      ("REPORT", "report.html")):
+        assert res[key] == str(out / name), key
+    for table in ("shots", "reflector_points", "dip_measurements", "contours"):
+        a = QgsVectorLayer(f"{out / 'survey.gpkg'}|layername={table}", table, "ogr")
+        b = QgsVectorLayer(f"{core_out / 'survey.gpkg'}|layername={table}", table, "ogr")
+        assert a.isValid() and b.isValid(), table
+        assert a.featureCount() == b.featureCount() > 0, table
+        assert [f.name() for f in a.fields()] == [f.name() for f in b.fields()]
+        for fa, fb in zip(a.getFeatures(), b.getFeatures()):
+            assert fa.attributes() == fb.attributes()
+            assert fa.geometry().equals(fb.geometry())
+        del a, b
+    for name in ("reflector_depth.tif", "reflector_elevation.tif", "depth_sigma.tif"):
+        ra = gdal.Open(str(out / name)).ReadAsArray()
+        rb = gdal.Open(str(core_out / name)).ReadAsArray()
+        np.testing.assert_array_equal(ra, rb)
+
+
+def test_run_survey_loads_styled_group(provider, sample_survey, core_results, tmp_path):
+    from qgis.core import QgsProject
+
+    # the whole-survey algorithm's post-processing loads the styled group into the project
+    out = tmp_path / "results"
+    shutil.copytree(core_results[0], out)
+    from reflector_mapper.plugin.styling import GROUP_NAME, load_results
+
+    group = load_results(str(out), QgsProject.instance())
+    assert QgsProject.instance().layerTreeRoot().findGroup(GROUP_NAME) is group
+    names = {node.layer().name() for node in group.findLayers()}
+    assert {"Shots (fit status)", "Reflector depth below ground", "Reflector elevation contours",
+            "Dip and strike (crossing lines)"} <= names
