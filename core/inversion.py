@@ -289,12 +289,16 @@ def _loss_terms(e, loss, f_scale):
         return np.sum(z, axis=1), np.ones_like(z), np.ones_like(z)
     z *= 1.0 / C2
     if loss == "huber":
-        inside = z <= 1.0
         a = np.sqrt(z)
-        rho = np.where(inside, z, 2.0 * a - 1.0)
+        m = np.minimum(a, 1.0)
+        rho = 2.0 * a
+        rho -= m
+        rho *= m  # m (2a - m): z inside, 2 sqrt(z) - 1 outside
+        wc = (a <= 1.0) * 0.999
+        wc += 1e-3
         np.maximum(a, 1.0, out=a)
         r1 = np.divide(1.0, a, out=a)
-        wc = np.where(inside, 1.0, 1e-3 * r1)
+        wc *= r1  # 1 inside, 1e-3 / sqrt(z) outside
     elif loss == "soft_l1":
         a = np.sqrt(1.0 + z)
         rho = 2.0 * (a - 1.0)
@@ -409,17 +413,59 @@ def _unpad(padded, row, col):
     return padded[row, col]
 
 
+def _inv_small(A):
+    """Inverses and determinants of stacked small matrices (k, p, p).
+
+    Closed-form adjugate for p <= 3 (one vectorised expression instead of a
+    LAPACK call per matrix); ``numpy.linalg`` otherwise. Singular matrices get
+    a zero determinant and non-finite entries.
+    """
+    p = A.shape[-1]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if p == 1:
+            det = A[:, 0, 0].copy()
+            return (1.0 / det)[:, None, None], det
+        if p == 2:
+            a, b, c, d = A[:, 0, 0], A[:, 0, 1], A[:, 1, 0], A[:, 1, 1]
+            det = a * d - b * c
+            adj = np.stack([np.stack([d, -b], -1), np.stack([-c, a], -1)], -2)
+            return adj / det[:, None, None], det
+        if p == 3:
+            a = A
+            c00 = a[:, 1, 1] * a[:, 2, 2] - a[:, 1, 2] * a[:, 2, 1]
+            c01 = a[:, 1, 2] * a[:, 2, 0] - a[:, 1, 0] * a[:, 2, 2]
+            c02 = a[:, 1, 0] * a[:, 2, 1] - a[:, 1, 1] * a[:, 2, 0]
+            c10 = a[:, 0, 2] * a[:, 2, 1] - a[:, 0, 1] * a[:, 2, 2]
+            c11 = a[:, 0, 0] * a[:, 2, 2] - a[:, 0, 2] * a[:, 2, 0]
+            c12 = a[:, 0, 1] * a[:, 2, 0] - a[:, 0, 0] * a[:, 2, 1]
+            c20 = a[:, 0, 1] * a[:, 1, 2] - a[:, 0, 2] * a[:, 1, 1]
+            c21 = a[:, 0, 2] * a[:, 1, 0] - a[:, 0, 0] * a[:, 1, 2]
+            c22 = a[:, 0, 0] * a[:, 1, 1] - a[:, 0, 1] * a[:, 1, 0]
+            det = a[:, 0, 0] * c00 + a[:, 0, 1] * c01 + a[:, 0, 2] * c02
+            adj = np.stack(
+                [np.stack([c00, c10, c20], -1), np.stack([c01, c11, c21], -1), np.stack([c02, c12, c22], -1)],
+                -2,
+            )
+            return adj / det[:, None, None], det
+        det = np.linalg.det(A)
+        inv = np.full(A.shape, np.nan)
+        ok = np.isfinite(det) & (det != 0)
+        if np.any(ok):
+            inv[ok] = np.linalg.pinv(A[ok])
+        return inv, np.where(ok, det, 0.0)
+
+
 def _safe_solve(A, b):
     """Solve stacked systems ``A x = b`` after Jacobi scaling; singular ones give 0."""
-    d = np.sqrt(np.abs(np.einsum("kii->ki", A)))
+    d = np.sqrt(np.abs(A.diagonal(axis1=1, axis2=2)))
     d = np.where(d > 0, d, 1.0)
     As = A / d[:, :, None] / d[:, None, :]
     bs = b / d
-    try:
-        x = np.linalg.solve(As, bs[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        x = np.einsum("kij,kj->ki", np.linalg.pinv(As), bs)
-    x = np.where(np.isfinite(x), x, 0.0)
+    inv, det = _inv_small(As)
+    with np.errstate(invalid="ignore", over="ignore"):
+        x = np.matmul(inv, bs[:, :, None])[:, :, 0]
+    good = (det > 0) & np.all(np.isfinite(x), axis=1)
+    x = np.where(good[:, None], x, 0.0)
     return x / d
 
 
@@ -828,13 +874,13 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         if rows.size == 0:
             break
         check_cancel(progress)
-        wc *= inv_s
-        wc *= inv_s  # curvature weights psi'(e) / sigma^2
-        r1 *= e
-        r1 *= inv_s  # psi(e) / sigma
-        H = np.matmul(J * wc[:, None, :], J.transpose(0, 2, 1))
-        g = np.matmul(J, r1[:, :, None])[:, :, 0]
-        dg = np.einsum("kii->ki", H)
+        ws = wc * inv_s
+        ws *= inv_s  # curvature weights psi'(e) / sigma^2
+        gs = r1 * e
+        gs *= inv_s  # psi(e) / sigma
+        H = np.matmul(J * ws[:, None, :], J.transpose(0, 2, 1))
+        g = np.matmul(J, gs[:, :, None])[:, :, 0]
+        dg = H.diagonal(axis1=1, axis2=2)
         A = H + (lam[:, None] * np.maximum(dg, 1e-300))[:, :, None] * eye
         delta = _safe_solve(A, g)
         big = np.max(np.abs(delta), axis=1)
@@ -848,14 +894,11 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         iters += 1
         if np.all(accept):
             theta, e, J, cost, r1, wc = th_new, e_new, J_new, cost_new, r1_new, wc_new
-        else:
-            a2, a3 = accept[:, None], accept[:, None, None]
-            theta = np.where(a2, th_new, theta)
-            cost = np.where(accept, cost_new, cost)
-            # the weights of the kept point are recomputed (r1, wc were scaled in place)
-            e = np.where(a2, e_new, e)
-            J = np.where(a3, J_new, J)
-            _, r1, wc = _loss_terms(e, loss, f_scale)
+        else:  # refused rows keep their previous state
+            ref = ~accept
+            th_new[ref], e_new[ref], J_new[ref] = theta[ref], e[ref], J[ref]
+            cost_new[ref], r1_new[ref], wc_new[ref] = cost[ref], r1[ref], wc[ref]
+            theta, e, J, cost, r1, wc = th_new, e_new, J_new, cost_new, r1_new, wc_new
         # converged: a step below xtol that was accepted or, if refused, was hardly damped (the
         # cost then rose at the rounding level only)
         big = np.max(np.abs(delta), axis=1)
@@ -893,21 +936,22 @@ def _scaled_normal_matrix(J, inv_s):
 
     ``J`` (k, p, n) natural-parameter Jacobian, ``inv_s`` (k, n) 1/sigma (0 for
     unused picks). With :math:`H = J^T\\Sigma^{-1}J` and :math:`d = \\sqrt{\\mathrm{diag}\\,H}`,
-    :math:`R = D^{-1}HD^{-1}`; returns :math:`R^{-1}`, d and
-    :math:`\\lambda_{max}(R)/\\lambda_{min}(R)` (inf when singular).
+    :math:`R = D^{-1}HD^{-1}`; returns :math:`R^{-1}`, d and the Frobenius-norm
+    condition number :math:`\\|R\\|_F\\,\\|R^{-1}\\|_F` (inf when singular), which
+    lies between the 2-norm condition number and p times it.
     """
     Js = J * inv_s[:, None, :]
     H = np.matmul(Js, Js.transpose(0, 2, 1))
-    d = np.sqrt(np.einsum("kii->ki", H))
+    d = np.sqrt(H.diagonal(axis1=1, axis2=2))
     d = np.where(np.isfinite(d) & (d > 0), d, 1.0)
     R = H / d[:, :, None] / d[:, None, :]
     R = np.where(np.isfinite(R), R, 0.0)
-    ev, Q = np.linalg.eigh(R)
-    ev_max, ev_min = ev[:, -1], ev[:, 0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cond = np.where(ev_min > ev_max * 1e-300, ev_max / ev_min, np.inf)
-    inv_ev = 1.0 / np.maximum(ev, 1e-300)
-    Rinv = np.matmul(Q * inv_ev[:, None, :], Q.transpose(0, 2, 1))
+    Rinv, det = _inv_small(R)
+    singular = ~(det > 0) | ~np.all(np.isfinite(Rinv), axis=(1, 2))
+    with np.errstate(over="ignore", invalid="ignore"):
+        cond = np.sqrt(np.sum(R * R, axis=(1, 2)) * np.sum(Rinv * Rinv, axis=(1, 2)))
+    cond = np.where(singular, np.inf, cond)
+    Rinv = np.where(singular[:, None, None], np.where(np.eye(R.shape[-1], dtype=bool), np.inf, 0.0), Rinv)
     return Rinv, d, cond
 
 
