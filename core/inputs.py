@@ -24,6 +24,18 @@ without regard to case or surrounding spaces; fields may be quoted
 Labels (line, station, shot, receiver, reflector, borehole) are text compared
 exactly after stripping spaces: ``1`` and ``01`` are different labels.
 
+``survey.toml``
+    ``[survey]``: ``name`` (text; default the folder's name), ``crs`` (required:
+    ``"EPSG:32633"``, WKT, a PROJ string, or an integer EPSG code such as
+    ``32633``), ``work_crs`` (optional projected CRS in metres to compute in;
+    without it a projected ``crs`` is kept and a geographic one goes to the
+    WGS 84 / UTM zone of the data). ``[files]``: ``stations``, ``picks``
+    (required), ``boreholes``, ``dem`` (optional); paths relative to the TOML
+    file. ``[processing]``: the fields of :class:`core.model.Settings` except
+    ``dem`` and ``work_crs``, type- and range-checked. Unknown keys in any table
+    are errors naming the nearest valid key. Outputs are never set here (the
+    command line's ``--out``). A UTF-8 byte-order mark is accepted.
+
 Decisions on suspicious input
 -----------------------------
 Unknown CSV columns are *ignored with a* :class:`ReflectorMapperWarning` (extra
