@@ -7,7 +7,8 @@ LF or CRLF line ends and one header row. Blank lines and lines whose first
 non-blank character is ``#`` are skipped anywhere. Header names are matched
 without regard to case or surrounding spaces; fields may be quoted
 (``"L1","101"``), but a field may not span lines. Trailing empty fields
-(``1,101,5,6,7,``, as some spreadsheets write) are ignored.
+(``1,101,5,6,7,``, as some spreadsheets write) are ignored, and so are rows
+of empty fields (``,,,,``).
 
 ``stations.csv``
     ``line, station, x, y, z``: x/y in the survey CRS (longitude/latitude in
@@ -238,10 +239,13 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
         stripped = raw.strip().strip("\ufeff").strip()
         if not stripped or stripped.startswith("#"):
             continue
-        if header is None:
-            header, header_line, header_raw = _split_row(path, i, raw), i, raw
+        fields = _split_row(path, i, raw)
+        if not any(fields):  # ",,,,": a blank row as spreadsheets export it
             continue
-        rows.append(_split_row(path, i, raw))
+        if header is None:
+            header, header_line, header_raw = fields, i, raw
+            continue
+        rows.append(fields)
         linenos.append(i)
     if header is None:
         raise InputFileError(

@@ -65,6 +65,12 @@ def test_read_stations_values_lines_and_labels(tmp_path):
     assert list(st.file_line) == [3, 5, 6, 7]
 
 
+def test_spreadsheet_blank_rows_skipped(tmp_path):
+    text = STATIONS.replace("\n\n", "\n,,,,\n , , ,,\n")
+    st = inputs.read_stations(write(tmp_path / "s.csv", text), "EPSG:32633")
+    assert list(st.file_line) == [3, 6, 7, 8]
+
+
 @pytest.mark.parametrize("newline", ["\n", "\r\n", "\r"], ids=["lf", "crlf", "cr"])
 def test_line_numbers_with_any_line_end(tmp_path, newline):
     text = STATIONS.replace("\n", newline).replace("L2,1,500002.5", "L2,1,abc")
