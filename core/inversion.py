@@ -294,11 +294,11 @@ def _loss_terms(e, loss, f_scale):
         rho = 2.0 * a
         rho -= m
         rho *= m  # m (2a - m): z inside, 2 sqrt(z) - 1 outside
-        wc = (a <= 1.0) * 0.999
-        wc += 1e-3
         np.maximum(a, 1.0, out=a)
-        r1 = np.divide(1.0, a, out=a)
-        wc *= r1  # 1 inside, 1e-3 / sqrt(z) outside
+        r1 = np.divide(1.0, a, out=a)  # 1 inside, 1 / sqrt(z) outside
+        wc = np.floor(r1)  # 1 inside, 0 outside
+        wc *= 0.999
+        wc += 1e-3 * r1  # 1 inside, 1e-3 / sqrt(z) outside
     elif loss == "soft_l1":
         a = np.sqrt(1.0 + z)
         rho = 2.0 * (a - 1.0)
