@@ -216,11 +216,11 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
         \\phi = \\operatorname{az}(-\\mathbf n_h)
 
     (DESIGN.md s.4). The covariance of :math:`\\mathbf n_h` is
-    :math:`F\\,(A^TWA)^{-1}` with :math:`F = \\chi^2/(n-2)` (so a reflector
-    that is not planar across the cluster widens the
-    errors), applied only when :math:`\\chi^2` exceeds its 95 % quantile for
-    n - 2 degrees of freedom, i.e. when the cluster's scatter is significantly
-    larger than the gathers' stated errors (so planar data keep nominal
+    :math:`(A^TWA)^{-1}`, multiplied by :math:`F = \\chi^2/(n-2)` when
+    :math:`\\chi^2` exceeds its 95 % quantile for n - 2 degrees of freedom,
+    i.e. when the cluster's scatter is significantly larger than the
+    gathers' stated errors (a reflector that is not planar across the
+    cluster then widens the errors, while planar data keep nominal
     coverage); ``sigma_dip_deg`` and ``sigma_dip_direction_deg`` follow by
     first-order propagation through :math:`\\delta = \\arcsin|\\mathbf n_h|`
     and the azimuth. Gathers of different fits are treated as independent.

@@ -5,7 +5,7 @@ traveltime (Sheriff & Geldart 1995, ch. 4) over a known plane, fitted with the
 project's inversion and combined; the recovered dip must be the plane's own.
 """
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pytest
@@ -314,6 +314,29 @@ def test_unevenly_weighted_directions_are_ill_conditioned():
     dips_eq = structure.combine_lines(gathers, truth_fits(gathers, *planes[0]))
     assert dips_eq.ok[0]
     np.testing.assert_allclose(dips_eq.dip_deg[dips_eq.ok], 20.0, atol=1e-9)
+
+
+def test_inconsistent_or_unconstrained_dips_are_flagged():
+    # two perpendicular lines whose s both say 0.9: |n_h| = 0.9 sqrt(2) > 1, no plane
+    # can do that (sin of the dip above 1) -> nonphysical, no dip
+    survey, planes = crossing_survey(20.0, 130.0, [0.0, 90.0])
+    gathers = geometry.build_gathers(survey)
+    f = truth_fits(gathers, *planes[0])
+    bad = replace(f, s_along=np.full(gathers.n_gathers, 0.9))
+    dips = structure.combine_lines(gathers, bad)
+    assert dips.status[0] == "nonphysical" and np.isnan(dips.dip_deg[0])
+    assert "|n_h| = 1.27" in dips.reason[0]
+    # the true s but errors so large that the dip's 2-sigma range reaches vertical
+    vague = replace(f, se_s_along=np.full(gathers.n_gathers, 2.0))
+    dips = structure.combine_lines(gathers, vague)
+    assert dips.status[0] == "poorly_constrained" and np.isnan(dips.dip_deg[0])
+    # failed fits are left out of every cluster
+    failed = replace(
+        f, status=np.where(np.arange(gathers.n_gathers) % 2 == 0, "too_few_picks", "ok").astype(object)
+    )
+    dips = structure.combine_lines(gathers, failed)
+    assert np.all(dips.gather_measurement[::2] == -1) and np.all(dips.gather_measurement[1::2] >= 0)
+    assert dips.ok[0] and dips.dip_deg[0] == pytest.approx(20.0, abs=1e-9)
 
 
 def test_combine_rejects_a_bad_angle():
