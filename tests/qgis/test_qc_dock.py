@@ -1,0 +1,94 @@
+"""The quality-control panel opens for a shot; excluding a pick and refitting changes that gather."""
+
+import numpy as np
+import pytest
+
+pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
+
+from qgis.core import QgsProject, QgsVectorLayer  # noqa: E402
+from qgis.PyQt.QtCore import Qt  # noqa: E402
+
+from reflector_mapper.core import inversion  # noqa: E402
+from reflector_mapper.plugin.qc_dock import GatherQc, QcDock  # noqa: E402
+
+
+@pytest.fixture
+def shots_layer(provider, sample_survey):
+    import processing
+
+    res = processing.run("reflectormapper:fitgathers", {
+        "SURVEY": str(sample_survey), "SHOTS": str(sample_survey.parent / "shots.gpkg"),
+        "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    layer = QgsVectorLayer(res["SHOTS"], "shots", "ogr")
+    assert layer.isValid()
+    QgsProject.instance().addMapLayer(layer)
+    return layer
+
+
+def test_model_curve_is_the_core_fit(sample_survey):
+    qc = GatherQc(sample_survey)
+    g = qc.gather_index("A", "1001")
+    rows = qc.pick_rows(g)
+    # residual = observed - modelled (core); the panel's curve is the image-source time of the fit
+    used = ~qc.fits.rejected[rows]
+    np.testing.assert_allclose(qc.model_times_s(rows)[used],
+                               (qc.gathers.time_s - qc.fits.residual_s)[rows][used], atol=1e-9)
+    assert np.all(np.diff(qc.offsets_m(rows)) >= 0)  # sorted by offset for the plot
+
+
+def test_panel_shows_selected_shot_and_refit_updates_layer(qgis_iface, sample_survey, shots_layer):
+    dock = QcDock(qgis_iface)
+    dock.set_survey(str(sample_survey), shots_layer)
+    # choose the shot from a selected feature of the shots layer
+    target = next(f for f in shots_layer.getFeatures() if f["line"] == "B")
+    shots_layer.selectByIds([target.id()])
+    assert dock.show_selected_shot()
+    g = dock.current
+    assert dock.qc.labels()[g] == ("B", str(target["shot"]))
+    n_rows = dock.table.rowCount()
+    assert n_rows == int((dock.qc.gathers.gather == g).sum()) > 6
+    assert "V</b> =" in dock.params_label.text() and "±" in dock.params_label.text()
+    before = dock.qc.fits.velocity_m_s.copy()
+    before_used = int(dock.qc.fits.picks_used[g])
+
+    # exclude the three farthest picks (the check boxes of the last table rows), then refit
+    for r in range(n_rows - 3, n_rows):
+        dock.set_pick_used(r, False)
+    assert dock.qc.exclude.sum() == 3
+    dock.refit()
+    after = dock.qc.fits
+    assert int(after.picks_excluded[g]) == 3
+    assert int(after.picks_used[g]) < before_used
+    assert after.velocity_m_s[g] != before[g]
+    others = np.arange(len(before)) != g
+    np.testing.assert_array_equal(after.velocity_m_s[others], before[others])  # gathers are independent
+    # the same numbers as the core given the same exclusions
+    ref = inversion.fit_shot_gathers(dock.qc.gathers, dock.qc.survey.settings, exclude=dock.qc.exclude)
+    assert after.velocity_m_s[g] == ref.velocity_m_s[g]
+    # the shots layer now holds the refitted values
+    feat = next(f for f in QgsVectorLayer(shots_layer.source(), "s", "ogr").getFeatures()
+                if f["line"] == "B" and str(f["shot"]) == str(target["shot"]))
+    assert feat["velocity_m_s"] == pytest.approx(float(after.velocity_m_s[g]), rel=1e-12)
+    assert feat["picks_used"] == int(after.picks_used[g])
+    assert dock.table.item(n_rows - 1, 0).checkState() == Qt.Unchecked
+    assert dock.table.item(n_rows - 1, 5).text() == "excluded"
+
+    # restore: back to the original fit
+    dock.restore_all()
+    assert dock.qc.fits.velocity_m_s[g] == before[g]
+    dock.close_panel()
+    dock.deleteLater()
+
+
+def test_panel_draws_plots(qgis_iface, sample_survey):
+    dock = QcDock(qgis_iface)
+    dock.set_survey(str(sample_survey))
+    dock.show_shot("A", "1001")
+    if dock.plots.use_matplotlib:
+        axes = dock.plots.figure.axes
+        assert len(axes) == 3
+        # t^2-x^2 panel: used picks plotted as x^2, t^2
+        xs = axes[0].lines[0].get_xdata()
+        assert np.all(xs >= 0)
+    dock.close_panel()
+    dock.deleteLater()
