@@ -117,8 +117,8 @@ def render_csv(s, name):
     return "\n".join(lines) + "\n"
 
 
-def write_case(name, s, expected):
-    folder = HERE / name
+def write_case(name, s, expected, out=HERE):
+    folder = Path(out) / name
     if folder.exists():
         shutil.rmtree(folder)
     folder.mkdir()
@@ -783,8 +783,10 @@ def boreholes_sigma_zero(s):
     return r"^boreholes\.csv, line 2, field 'sigma_m': sigma '0' m must be > 0"
 
 
-def main():
-    for folder in HERE.iterdir():
+def main(out=HERE):
+    """Write every case into ``out`` (default: this folder)."""
+    out = Path(out)
+    for folder in out.iterdir():
         if folder.is_dir() and (folder / "survey.toml").exists() and folder.name not in CASES:
             shutil.rmtree(folder)  # a case that was removed from CASES
     for name, fn in CASES.items():
@@ -794,8 +796,8 @@ def main():
             assert expected is None, name
         else:
             assert expected, name
-        write_case(name, s, expected)
-    print(f"{len(CASES)} cases written to {HERE}")
+        write_case(name, s, expected, out)
+    print(f"{len(CASES)} cases written to {out}")
 
 
 if __name__ == "__main__":

@@ -36,6 +36,25 @@ def _expected(case):
     return (CORPUS / case / "expected.txt").read_text(encoding="utf-8").strip()
 
 
+def test_corpus_matches_its_generator(tmp_path):
+    """The committed files are exactly what make_corpus.py writes (edit the script, not the files)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("make_corpus", CORPUS / "make_corpus.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    module.main(tmp_path)
+    made = {p.relative_to(tmp_path): p.read_bytes() for p in tmp_path.rglob("*") if p.is_file()}
+    committed = {
+        p.relative_to(CORPUS): p.read_bytes()
+        for p in CORPUS.rglob("*")
+        if p.is_file() and p.parent != CORPUS and "__pycache__" not in p.parts
+    }
+    assert sorted(made) == sorted(committed)
+    for rel, data in made.items():
+        assert committed[rel] == data, rel
+
+
 def test_corpus_size():
     # the brief asks for at least 40 distinct faults; the good cases are counted apart
     assert len(BAD) >= 40
