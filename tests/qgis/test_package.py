@@ -1,0 +1,76 @@
+"""`make package` builds a zip that follows the plugin repository's rules and loads in QGIS."""
+
+import importlib.util
+import os
+import subprocess
+import zipfile
+from pathlib import Path
+
+import pytest
+
+pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
+
+REPO = Path(__file__).resolve().parents[2]
+QGIS_PROCESS = "/usr/bin/qgis_process.bin"
+
+
+@pytest.fixture(scope="module")
+def packager():
+    spec = importlib.util.spec_from_file_location("package_plugin", REPO / "scripts" / "package_plugin.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+@pytest.fixture(scope="module")
+def plugin_zip(packager, tmp_path_factory):
+    return packager.build(tmp_path_factory.mktemp("dist"))
+
+
+def test_zip_follows_repository_rules(packager, plugin_zip):
+    version = packager.read_metadata(REPO / "metadata.txt")["version"]
+    assert plugin_zip.name == f"reflector_mapper-{version}.zip"
+    assert packager.check(plugin_zip) == []
+    names = zipfile.ZipFile(plugin_zip).namelist()
+    assert {n.split("/")[0] for n in names} == {"reflector_mapper"}
+    for needed in ("metadata.txt", "LICENSE", "__init__.py", "core/inversion.py", "plugin/main.py",
+                   "plugin/provider.py", "plugin/icons/icon.svg"):
+        assert f"reflector_mapper/{needed}" in names, needed
+    for n in names:
+        assert "/tests/" not in n and "/benchmarks/" not in n and "/sample_project/" not in n, n
+        assert "__pycache__" not in n and not n.endswith(".pyc"), n
+
+
+def test_zip_is_reproducible(packager, plugin_zip, tmp_path):
+    again = packager.build(tmp_path)
+    assert again.read_bytes() == plugin_zip.read_bytes()
+
+
+def test_checker_finds_broken_zips(packager, tmp_path):
+    bad = tmp_path / "bad.zip"
+    with zipfile.ZipFile(bad, "w") as zf:
+        zf.writestr("1plugin/metadata.txt", "[general]\nname=x\n")
+        zf.writestr("other/__init__.py", "")
+        zf.writestr("1plugin/lib/fast.so", b"\x7fELF")
+    problems = "\n".join(packager.check(bad))
+    assert "one top-level folder" in problems
+    assert "qgisMinimumVersion" in problems
+    assert "binary file" in problems
+    assert "LICENSE" in problems
+
+
+def test_unzipped_plugin_loads_in_qgis_process(plugin_zip, tmp_path):
+    if not os.path.exists(QGIS_PROCESS):
+        pytest.skip(f"{QGIS_PROCESS} not found")
+    plugins = tmp_path / "plugins"
+    zipfile.ZipFile(plugin_zip).extractall(plugins)
+    home = tmp_path / "home"
+    home.mkdir()
+    env = dict(os.environ, HOME=str(home), QGIS_CUSTOM_CONFIG_PATH=str(home), QGIS_PLUGINPATH=str(plugins),
+               QT_QPA_PLATFORM="offscreen", XDG_RUNTIME_DIR=str(home))
+    env.setdefault("PROJ_DATA", "/usr/share/proj")
+    out = subprocess.run([QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env, capture_output=True,
+                         text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    out = subprocess.run([QGIS_PROCESS, "list"], env=env, capture_output=True, text=True, timeout=120)
+    assert "reflectormapper:runsurvey" in out.stdout
