@@ -303,7 +303,7 @@ def main(argv=None):
         lines = [
             "",
             "## Inversion: batched engine vs scipy.optimize.least_squares loop "
-            f"({time.strftime('%Y-%m-%d %H:%M')})",
+            f"({time.strftime('%Y-%m-%d %H:%M %Z')})",
             "",
             f"`python benchmarks/bench_inversion.py{' --quick' if args.quick else ''}` on {machine()}; "
             f"load average {load0} at the start and {load1} at the end (other jobs on the machine "
@@ -323,6 +323,9 @@ def main(argv=None):
             for r in rows
         ]
         lines += [
+            "",
+            f"Target >= 50x at {big['n']} gathers with parameters equal to 1e-6: {verdict} in this run "
+            f"({big['ratio']:.0f}x with {inv._workers()} threads, {big['ratio_1']:.0f}x with 1 thread).",
             "",
             f"Normal equations J^T W J for {sizes[-1]} gathers: padded (g, nmax) "
             f"{lay['padded'] * 1e3:.2f} ms, bincount segment sums {lay['bincount'] * 1e3:.2f} ms.",
