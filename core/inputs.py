@@ -468,6 +468,20 @@ def _lonlat(table: CsvTable, x, y, crs_in):
         except GeoreferenceError as exc:
             raise InputFileError(table.path, None, "x", str(exc)) from exc
         bad = ~(np.isfinite(lon) & np.isfinite(lat))
+        bounds = crsmod.geographic_bounds(crs_in)
+        far = bad.copy()
+        if bounds is not None:
+            far |= crsmod.degrees_outside(lon, lat, bounds) > AREA_OF_USE_ERROR_DEG
+        if far.any() and _swapped_fits(x, y, crs_in, bounds):
+            i = int(np.flatnonzero(far)[0])
+            raise InputFileError(
+                table.path,
+                table.lines[i],
+                "x",
+                f"x={x[i]:.10g}, y={y[i]:.10g} fall outside the survey CRS {crsmod.crs_label(crs_in)}, but "
+                "with x and y exchanged every point fits: the columns look swapped; x must be the easting "
+                "and y the northing",
+            )
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
             raise InputFileError(
@@ -503,6 +517,19 @@ def _lonlat(table: CsvTable, x, y, crs_in):
                 stacklevel=4,
             )
     return lon, lat
+
+
+def _swapped_fits(x, y, crs_in, bounds) -> bool:
+    """True when (y, x) would lie inside the area of use of the projected ``crs_in``."""
+    if bounds is None:
+        return False
+    h = crsmod.horizontal_crs(crs_in)
+    try:
+        lon, lat = crsmod.transform_xy(y, x, h, h.geodetic_crs, check_finite=False)
+    except GeoreferenceError:
+        return False
+    ok = np.isfinite(lon) & np.isfinite(lat)
+    return bool(ok.all() and np.all(crsmod.degrees_outside(lon, lat, bounds) == 0.0))
 
 
 def _to_work(table, x, y, crs_in, crs_work):

@@ -613,6 +613,21 @@ def geographic_lon_out_of_range(s):
 
 
 @case
+def projected_xy_swapped(s):
+    text = render_csv(s, "stations").splitlines()
+    out = [text[0], text[1]]
+    for ln in text[2:]:
+        f = ln.split(",")
+        f[2], f[3] = f[3], f[2]
+        out.append(",".join(f))
+    s["raw"]["stations.csv"] = ("\n".join(out) + "\n").encode()
+    return (
+        r"^stations\.csv, line 3, field 'x': x=5500000, y=499972\.5 fall outside the survey CRS EPSG:32633 .*"
+        r"the columns look swapped"
+    )
+
+
+@case
 def projected_far_outside_area(s):
     row = s["stations"]["rows"][10]
     row[2], row[3] = f"{_xy(s, row[2], row[3])[0]:.3f}", "-4500000.000"
