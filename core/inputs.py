@@ -1090,9 +1090,14 @@ def _read_toml(path: Path):
         elif re.search(r"\(at end of document\)", msg):
             lineno = lineno or len(_LINE_BREAK.split(text))
         reason = re.sub(r"\s*\(at (line \d+, column \d+|end of document)\)", "", msg.splitlines()[0])
-        raise SurveyConfigError(
-            path, lineno, None, f"not valid TOML: {reason}; see survey.toml in the sample project"
-        ) from exc
+        lines = _LINE_BREAK.split(text)
+        hint = "see survey.toml in the sample project"
+        if lineno and 1 <= lineno <= len(lines) and "\\" in lines[lineno - 1]:
+            hint = (
+                'a backslash starts an escape in "...": write Windows paths with forward slashes '
+                "(\"C:/data/picks.csv\") or in single quotes ('C:\\data\\picks.csv')"
+            )
+        raise SurveyConfigError(path, lineno, None, f"not valid TOML: {reason}; {hint}") from exc
     except RecursionError as exc:
         raise SurveyConfigError(path, None, None, "not valid TOML: nested too deeply") from exc
     return _Toml(path, text), doc
@@ -1144,6 +1149,13 @@ def _file_value(toml, key, value, required):
         )
     if not value.strip():
         raise toml.error("files", key, "the file name is empty")
+    if any(ord(c) < 32 for c in value):
+        raise toml.error(
+            "files",
+            key,
+            f"the file name {value!r} holds a control character (a backslash escape such as \\n or \\t in "
+            '"..."): write Windows paths with forward slashes or in single quotes',
+        )
     try:
         resolved = (toml.path.parent / Path(value.strip()).expanduser()).resolve()
         is_dir, is_file = resolved.is_dir(), resolved.is_file()

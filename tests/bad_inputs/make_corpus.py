@@ -298,6 +298,12 @@ def toml_syntax_error(s):
 
 
 @case
+def toml_windows_backslash_path(s):
+    set_toml(s, "files", "picks", '"C:\\survey\\picks.csv"')
+    return r"^survey\.toml, line 7: not valid TOML: .*write Windows paths with forward slashes"
+
+
+@case
 def crs_unknown_code(s):
     set_toml(s, "survey", "crs", '"EPSG:999999"')
     return r"^survey\.toml, line 3, field 'survey\.crs': unknown CRS 'EPSG:999999'"

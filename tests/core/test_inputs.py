@@ -354,6 +354,21 @@ def test_toml_syntax_error_line(tmp_path, text, line):
         inputs.load_survey(path)
 
 
+def test_windows_paths_in_toml(tmp_path):
+    path = survey_dir(tmp_path)
+    text = path.read_text()
+    write(path, text.replace('picks = "picks.csv"', 'picks = "C:\\data\\picks.csv"'))
+    with pytest.raises(SurveyConfigError, match=r"^survey\.toml, line 7: not valid TOML: .*forward slashes"):
+        inputs.load_survey(path)
+    write(path, text.replace('picks = "picks.csv"', 'picks = "C:\\new.csv"'))  # \n is a valid escape
+    with pytest.raises(SurveyConfigError, match=r"line 7, field 'files\.picks': .*control character"):
+        inputs.load_survey(path)
+    # single quotes (literal strings) keep backslashes; the file then simply does not exist here
+    write(path, text.replace('picks = "picks.csv"', "picks = 'C:\\data\\picks.csv'"))
+    with pytest.raises(SurveyConfigError, match=r"line 7, field 'files\.picks': file not found"):
+        inputs.load_survey(path)
+
+
 def test_missing_toml_and_not_utf8(tmp_path):
     with pytest.raises(SurveyConfigError, match=r"survey file not found"):
         inputs.load_survey(tmp_path / "nope.toml")
