@@ -76,6 +76,7 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 import warnings
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -865,6 +866,107 @@ def choose_variogram(x, y, z, error_variance=None, model="auto", neighbours=32, 
     return used[best], info
 
 
+# --------------------------------------------------------------------------- BLAS threads
+
+_BLAS_SYMBOLS = (
+    ("openblas_get_num_threads", "openblas_set_num_threads"),
+    ("scipy_openblas_get_num_threads64_", "scipy_openblas_set_num_threads64_"),
+    ("scipy_openblas_get_num_threads", "scipy_openblas_set_num_threads"),
+    ("openblas_get_num_threads64_", "openblas_set_num_threads64_"),
+)
+_blas_controls_cache = None
+_blas_lock = threading.Lock()
+_blas_depth = 0
+_blas_saved = []
+
+
+def _blas_controls():
+    """(get, set) thread-count functions of every OpenBLAS loaded in this process.
+
+    Found through /proc/self/maps (Linux); elsewhere through threadpoolctl when
+    it is installed; otherwise none (the solves then run with the BLAS default).
+    """
+    global _blas_controls_cache
+    if _blas_controls_cache is not None:
+        return _blas_controls_cache
+    controls = []
+    try:
+        with open("/proc/self/maps", encoding="utf-8", errors="replace") as f:
+            paths = {line.split()[-1] for line in f if ".so" in line and "openblas" in line.lower()}
+    except OSError:
+        paths = set()
+    if paths:
+        import ctypes
+
+        seen = set()
+        for path in sorted(paths):
+            real = os.path.realpath(path)
+            if real in seen:
+                continue
+            seen.add(real)
+            try:
+                lib = ctypes.CDLL(path)
+            except OSError:
+                continue
+            for get_name, set_name in _BLAS_SYMBOLS:
+                if hasattr(lib, get_name) and hasattr(lib, set_name):
+                    get_fn = getattr(lib, get_name)
+                    set_fn = getattr(lib, set_name)
+                    get_fn.restype = ctypes.c_int
+                    set_fn.argtypes = [ctypes.c_int]
+                    controls.append((get_fn, set_fn))
+                    break
+    else:
+        try:
+            from threadpoolctl import ThreadpoolController
+        except ImportError:
+            ThreadpoolController = None
+        if ThreadpoolController is not None:
+            ctl = ThreadpoolController()
+
+            def _get(ctl=ctl):
+                counts = [m.get("num_threads", 1) for m in ctl.info() if m.get("user_api") == "blas"]
+                return max(counts or [1])
+
+            def _set(n, ctl=ctl):
+                ctl.limit(limits=n, user_api="blas")
+
+            controls.append((_get, _set))
+    _blas_controls_cache = controls
+    return controls
+
+
+class _SingleThreadedBlas:
+    """Context manager: BLAS/LAPACK on one thread while our own threads run.
+
+    The batched solves call LAPACK on tiny (k+1) systems; a threaded BLAS then
+    spends its time waking threads (measured 10-300 x slower on a loaded
+    2-core machine with Debian's OpenBLAS), and our worker threads on top of
+    BLAS threads would oversubscribe the cores. The previous thread counts are
+    restored on exit; nesting and concurrent use are counted under a lock.
+    """
+
+    def __enter__(self):
+        global _blas_depth, _blas_saved
+        with _blas_lock:
+            if _blas_depth == 0:
+                controls = _blas_controls()
+                _blas_saved = [(fset, int(fget())) for fget, fset in controls]
+                for fset, _ in _blas_saved:
+                    fset(1)
+            _blas_depth += 1
+        return self
+
+    def __exit__(self, *exc):
+        global _blas_depth
+        with _blas_lock:
+            _blas_depth -= 1
+            if _blas_depth == 0:
+                for fset, n in _blas_saved:
+                    fset(max(1, n))
+        return False
+
+
 def _default_threads():
     n = os.cpu_count() or 1
     return max(1, min(n, 8))
@@ -1073,6 +1175,15 @@ class OrdinaryKriging:
         slices = [slice(s, min(n, s + chunk)) for s in range(0, n, chunk)]
         threads = self.n_threads or _default_threads()
         out = [None] * len(slices)
+        if self._k is None:  # global: few large solves, let BLAS use its threads
+            threads = 1
+        else:
+            with _SingleThreadedBlas():
+                return self._run_threads(slices, threads, work, progress, p0, p1, out)
+        return self._run_threads(slices, threads, work, progress, p0, p1, out)
+
+    @staticmethod
+    def _run_threads(slices, threads, work, progress, p0, p1, out):
         if threads <= 1 or len(slices) <= 1:
             for i, sl in enumerate(slices):
                 check_cancel(progress)

@@ -22,7 +22,11 @@ from reflector_mapper.core.surface import (
     interpolate_surface,
 )
 
-pykrige_ok = pytest.importorskip("pykrige.ok", reason="pykrige is a test dependency (pip install pykrige)")
+
+@pytest.fixture
+def pykrige_ok():
+    """PyKrige's ordinary kriging module (a test-only reference; skips where it is missing)."""
+    return pytest.importorskip("pykrige.ok", reason="pykrige is a test dependency (pip install pykrige)")
 
 
 def _scattered(rng, n, size=1000.0):
@@ -55,7 +59,7 @@ MODELS = [
 
 @pytest.mark.parametrize("neighbours", [None, 16], ids=["global", "moving-window-16"])
 @pytest.mark.parametrize("vario", MODELS, ids=[m.model for m in MODELS])
-def test_matches_pykrige(rng, vario, neighbours):
+def test_matches_pykrige(rng, vario, neighbours, pykrige_ok):
     # Reference: PyKrige OrdinaryKriging with the same model (parameters mapped as in
     # _pykrige_params), vectorized global solve or the moving-window 'loop' backend with
     # n_closest_points. Both solve the same float64 systems, so results agree to round-off;
@@ -76,7 +80,7 @@ def test_matches_pykrige(rng, vario, neighbours):
     np.testing.assert_allclose(std**2, pv, rtol=1e-8, atol=1e-10 * vario.total_sill)
 
 
-def test_measurement_error_matches_pykrige_filtered_nugget(rng):
+def test_measurement_error_matches_pykrige_filtered_nugget(rng, pykrige_ok):
     # Reference: PyKrige with exact_values=False treats the whole nugget c0 as measurement
     # error (it keeps gamma(0+) = c0 in the right-hand side at a datum). That equals our
     # signal variogram without nugget plus error variance e_i = c0 on every datum
@@ -189,7 +193,7 @@ def test_cross_validation_statistics_on_a_gaussian_field(neighbours):
         assert c.mean_standardised_squared_error == pytest.approx(np.mean(c.standardised**2))
 
 
-def test_cross_validation_matches_pykrige_refits(rng):
+def test_cross_validation_matches_pykrige_refits(rng, pykrige_ok):
     # Reference: leave-one-out done the slow way with PyKrige, refitting on the other
     # n-1 points for each datum; our global closed form (Dubrule 1983) and our local
     # version with every other datum as neighbour must give the same estimates and
