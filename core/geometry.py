@@ -736,7 +736,8 @@ def reflector_points(gathers, fits, ground=None, cross_component=None) -> Reflec
     horizontal one. When the cross-line component q is *assumed* (no second
     line direction, q = 0), the true point may lie off the line's vertical
     plane by up to about :math:`h\\,|q|`; that lateral uncertainty from the
-    unknown cross-line dip is not in these sigmas.
+    unknown cross-line dip is not in these sigmas. Nor is the uncertainty of
+    a q resolved by crossing lines (see ``DipMeasurements.covariance``).
 
     Parameters
     ----------

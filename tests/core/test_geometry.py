@@ -236,6 +236,19 @@ def test_gather_axis_follows_its_own_spread_on_a_crooked_line():
     assert np.allclose(az[sx >= 140.0], 45.0)  # spread within the second leg
 
 
+def test_degenerate_spread_falls_back_to_the_line_axis():
+    # a gather whose only pick is at the source (zero offset) has no spread direction;
+    # it takes the line frame's axis (and a spread length of 0)
+    survey, _, _ = cross_survey()
+    pk = survey.picks
+    keep = ~((pk.line == "A") & (pk.shot == "116")) | (pk.receiver == "116")
+    survey = replace(survey, picks=Picks(*[getattr(pk, k)[keep] for k in Picks.__dataclass_fields__]))
+    g = geometry.build_gathers(survey)
+    k = int(np.flatnonzero((g.line == "A") & (g.shot == "116"))[0])
+    assert g.spread_length_m[k] == 0.0
+    np.testing.assert_allclose(g.line_unit[k], geometry.line_frames(survey.stations)["A"].unit, atol=1e-12)
+
+
 def test_build_gathers_reports_unknown_stations_and_reflectors():
     survey, _, _ = cross_survey()
     pk = survey.picks
