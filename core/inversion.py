@@ -588,13 +588,20 @@ class _ShotModel:
         """
         w = np.where(usable, 1.0 / (2.0 * t * sigma) ** 2, 0.0)  # sigma(t^2) = 2 t sigma_t
         y = t * t
-        one = np.ones_like(self.x)
+        x = self.x
 
-        def solve(first):
-            cols = np.stack([first, self.x, one], axis=1)  # (k, 3, n)
-            wc = cols * w[:, None, :]
-            A = np.matmul(wc, cols.transpose(0, 2, 1))
-            b = np.matmul(wc, y[:, :, None])[:, :, 0]
+        def solve(first):  # weighted normal equations of the columns (first, x, 1)
+            wf, wx = w * first, w * x
+            A = np.empty((len(t), 3, 3))
+            A[:, 0, 0] = np.einsum("kn,kn->k", wf, first)
+            A[:, 0, 1] = A[:, 1, 0] = np.einsum("kn,kn->k", wf, x)
+            A[:, 0, 2] = A[:, 2, 0] = wf.sum(axis=1)
+            A[:, 1, 1] = np.einsum("kn,kn->k", wx, x)
+            A[:, 1, 2] = A[:, 2, 1] = wx.sum(axis=1)
+            A[:, 2, 2] = w.sum(axis=1)
+            b = np.column_stack(
+                [np.einsum("kn,kn->k", wf, y), np.einsum("kn,kn->k", wx, y), np.einsum("kn,kn->k", w, y)]
+            )
             return A, b, _safe_solve(A, b).T
 
         A, b, (a, bb, c0) = solve(self.d2)
@@ -879,7 +886,7 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         gs = r1 * e
         gs *= inv_s  # psi(e) / sigma
         H = np.matmul(J * ws[:, None, :], J.transpose(0, 2, 1))
-        g = np.matmul(J, gs[:, :, None])[:, :, 0]
+        g = np.einsum("kpn,kn->kp", J, gs)
         dg = H.diagonal(axis1=1, axis2=2)
         A = H + (lam[:, None] * np.maximum(dg, 1e-300))[:, :, None] * eye
         delta = _safe_solve(A, g)
