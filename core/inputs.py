@@ -887,7 +887,8 @@ _MINIMUM = {
     "default_sigma_ms": MIN_SIGMA_MS,
     "borehole_sigma_m": MIN_SIGMA_M,
 }
-_RANGES = {"min_line_angle_deg": (0.0, 90.0)}  # (exclusive low, inclusive high)
+_RANGES = {"min_line_angle_deg": (0.0, 90.0)}
+_TOML_INT_MAX = 2**63 - 1  # (exclusive low, inclusive high)
 
 
 def _processing_fields() -> dict:
@@ -969,6 +970,10 @@ def _check_settings_value(toml: _Toml, key, value, field):
 
     def bad(expected):
         return toml.error("processing", key, f"value {shown} is {_type_name(value)}; expected {expected}")
+
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > _TOML_INT_MAX:
+        # TOML integers are 64-bit; Python's parser accepts longer ones
+        raise toml.error("processing", key, f"value {str(value)[:20]}... is too large")
 
     if base == "float":
         if isinstance(value, bool) or not isinstance(value, (int, float)):

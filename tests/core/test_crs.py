@@ -50,12 +50,25 @@ def test_parse_crs_forms_are_the_same_crs(value):
         ("", r"CRS is empty"),
         (0, r"not an EPSG code"),
         (-4326, r"not an EPSG code"),
+        (10**400, r"not an EPSG code"),
         (True, r"CRS True is a bool"),
         (3.5, r"CRS 3\.5 is a float"),
         (None, r"CRS None is a NoneType"),
         ([4326], r"is a list"),
     ],
-    ids=["unknown_code", "text", "unknown_int", "empty", "zero", "negative", "bool", "float", "none", "list"],
+    ids=[
+        "unknown_code",
+        "text",
+        "unknown_int",
+        "empty",
+        "zero",
+        "negative",
+        "huge",
+        "bool",
+        "float",
+        "none",
+        "list",
+    ],
 )
 def test_parse_crs_rejects(value, match):
     with pytest.raises(GeoreferenceError, match=match):

@@ -316,6 +316,7 @@ def _toml_scalar():
     return st.one_of(
         st.booleans(),
         st.integers(-(10**6), 10**6),
+        st.integers(),  # unbounded: Python's TOML parser accepts more than 64 bits
         st.floats(allow_nan=True, allow_infinity=True),
         st.text(max_size=12),
         st.sampled_from(
