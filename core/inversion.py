@@ -1283,6 +1283,8 @@ def fit_shot_gathers(
         rejection).
     cross_component : None, float or (g,) array
         q = -w.n per gather (0 when None), e.g. from a surface or crossing lines.
+        NaN entries mean "not resolved" and are taken as 0 (level across the
+        line); ``ShotFits.cross_component`` reports the value used.
     exclude : None or (n,) bool
         Picks the user excluded; reported as ``excluded``, not fitted.
     progress : object with ``set_progress``/``is_canceled``, optional
@@ -1318,8 +1320,9 @@ def fit_shot_gathers(
         q = np.zeros(g)
     else:
         q = np.broadcast_to(np.asarray(cross_component, dtype=float), (g,)).copy()
-    if np.any(~np.isfinite(q) | (np.abs(q) >= 1.0)):
-        bad = q[~np.isfinite(q) | (np.abs(q) >= 1.0)][0]
+    q = np.where(np.isfinite(q), q, 0.0)  # NaN: cross-line dip not resolved, taken as level
+    if np.any(np.abs(q) >= 1.0):
+        bad = float(q[np.abs(q) >= 1.0][0])
         raise InversionError(f"cross_component {bad!r} is not a sine of a dip; expected |q| < 1")
     ex = _exclude_mask(exclude, n)
     model, row, col, shape = _shot_model(gathers, q)

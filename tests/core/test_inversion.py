@@ -517,8 +517,11 @@ def test_bad_settings_and_inputs(rng):
         inv.fit_shot_gathers(gs, Settings(robust_loss="l3"))
     with pytest.raises(InversionError, match="robust_scale"):
         inv.fit_shot_gathers(gs, Settings(robust_scale=0.0))
-    with pytest.raises(InversionError, match=r"\|q\| < 1"):
+    with pytest.raises(InversionError, match=r"cross_component 1.2 .*\|q\| < 1"):
         inv.fit_shot_gathers(gs, cross_component=1.2)
+    # NaN = not resolved: fitted as level across the line, and reported as the 0 used
+    fit = inv.fit_shot_gathers(gs, cross_component=[np.nan, 0.2])
+    assert fit.cross_component.tolist() == [0.0, 0.2]
     bad = GatherSet(
         gs.gather,
         gs.source_xyz,
