@@ -146,8 +146,12 @@ class CsvTable:
 
 def _read_text(path: Path, role: str) -> str:
     try:
-        if path.is_dir():
-            raise InputFileError(path, None, None, f"'{path}' is a folder, not the {role} file")
+        is_dir = path.is_dir()
+    except (OSError, ValueError) as exc:
+        raise InputFileError(path, None, None, f"cannot use the path '{path}': {exc}") from exc
+    if is_dir:
+        raise InputFileError(path, None, None, f"'{path}' is a folder, not the {role} file")
+    try:
         data = path.read_bytes()
     except FileNotFoundError as exc:
         raise InputFileError(path, None, None, f"{role} file not found: '{path}'") from exc
@@ -1066,8 +1070,12 @@ def _read_toml(path: Path):
     if not isinstance(path, Path):
         path = Path(path)
     try:
-        if path.is_dir():
-            raise SurveyConfigError(path, None, None, f"'{path}' is a folder: give the survey.toml file")
+        is_dir = path.is_dir()
+    except (OSError, ValueError) as exc:
+        raise SurveyConfigError(path, None, None, f"cannot use the path '{path}': {exc}") from exc
+    if is_dir:
+        raise SurveyConfigError(path, None, None, f"'{path}' is a folder: give the survey.toml file")
+    try:
         data = path.read_bytes()
     except FileNotFoundError as exc:
         raise SurveyConfigError(path, None, None, f"survey file not found: '{path}'") from exc

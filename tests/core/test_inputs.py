@@ -372,8 +372,12 @@ def test_windows_paths_in_toml(tmp_path):
 def test_missing_toml_and_not_utf8(tmp_path):
     with pytest.raises(SurveyConfigError, match=r"survey file not found"):
         inputs.load_survey(tmp_path / "nope.toml")
-    with pytest.raises(SurveyConfigError, match=r"is a folder"):
+    with pytest.raises(SurveyConfigError, match=r"^[^:]+: '[^']+' is a folder: give the survey\.toml file$"):
         inputs.load_survey(tmp_path)
+    with pytest.raises(InputFileError, match=r"^[^:]+: '[^']+' is a folder, not the stations file$"):
+        inputs.read_stations(tmp_path, 32633)
+    with pytest.raises(InputFileError, match=r"^nope\.csv: picks file not found"):
+        inputs.read_picks(tmp_path / "nope.csv", 0.5)
     path = write(tmp_path / "survey.toml", '[survey]\nname = "caf\xe9"\n', encoding="latin-1")
     with pytest.raises(SurveyConfigError, match=r"^survey\.toml, line 2: not UTF-8"):
         inputs.load_survey(path)
