@@ -54,7 +54,7 @@ def gather_figure(offset_m, time_s, model_time_s, rejected, title, params_text, 
     tm = np.asarray(model_time_s, float) * 1e3
     rej = np.asarray(rejected, bool)
     order = np.argsort(x)
-    fig, axes = plt.subplots(1, 3, figsize=(11.5, 3.6), dpi=dpi, gridspec_kw={"width_ratios": [1, 1, 0.8]})
+    fig, axes = plt.subplots(1, 3, figsize=(11.5, 4.3), dpi=dpi, gridspec_kw={"width_ratios": [1, 1, 0.8]})
     ax = axes[0]
     for side, marker in ((x < 0, "v"), (x >= 0, "^")):
         ok = side & ~rej
@@ -86,7 +86,7 @@ def gather_figure(offset_m, time_s, model_time_s, rejected, title, params_text, 
     ax.set_title("residuals (rejected may lie off scale)", fontsize=9)
     fig.suptitle(title, fontsize=10, x=0.01, ha="left")
     fig.text(0.99, 0.97, params_text, fontsize=8, ha="right", va="top", family="monospace")
-    fig.tight_layout(rect=(0, 0, 1, 0.90))
+    fig.tight_layout(rect=(0, 0, 1, 0.80))
     return _png(fig)
 
 
@@ -239,6 +239,28 @@ def raster_figure(
     ax.set_aspect("equal")
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
+    ax.set_title(title, fontsize=9)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def variogram_figure(lag_m, semivariance, n_pairs, model, title="", dpi=90) -> bytes:
+    """Experimental semivariogram (points sized by pair count) and the fitted model."""
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(5.0, 3.6), dpi=dpi)
+    lag = np.asarray(lag_m, float)
+    gam = np.asarray(semivariance, float)
+    n = np.asarray(n_pairs, float)
+    ok = np.isfinite(gam) & (n > 0)
+    ax.scatter(lag[ok], gam[ok], s=8 + 40 * n[ok] / max(n[ok].max(), 1), color=USED, label="experimental")
+    if model is not None:
+        h = np.linspace(0, lag.max() * 1.05 if len(lag) else 1.0, 200)
+        ax.plot(h, model(h), "-", color=FIT, label=f"{model.model} model")
+    ax.set_xlabel("lag (m)")
+    ax.set_ylabel("semivariance (m²)")
+    ax.set_xlim(left=0)
+    ax.set_ylim(bottom=0)
+    ax.legend(fontsize=7)
     ax.set_title(title, fontsize=9)
     fig.tight_layout()
     return _png(fig)

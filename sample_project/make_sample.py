@@ -108,7 +108,7 @@ def reflection_times(src, rec, velocity_m_s=VELOCITY_M_S, iterations=60):
         ty = np.column_stack([np.zeros_like(zy), np.ones_like(zy), zy])
         grad = np.column_stack([np.sum(e * tx, 1), np.sum(e * ty, 1)])
 
-        def proj(t1, t2):
+        def proj(t1, t2, ea=ea, eb=eb, la=la, lb=lb):
             # d(e_a)/dP = (I - ea ea^T)/la, same for b
             return (np.sum(t1 * t2, 1) - np.sum(ea * t1, 1) * np.sum(ea * t2, 1)) / la + (
                 np.sum(t1 * t2, 1) - np.sum(eb * t1, 1) * np.sum(eb * t2, 1)
@@ -118,7 +118,9 @@ def reflection_times(src, rec, velocity_m_s=VELOCITY_M_S, iterations=60):
         hxy = proj(tx, ty) + e[:, 2] * zxy
         hyy = proj(ty, ty) + e[:, 2] * zyy
         det = hxx * hyy - hxy * hxy
-        step = np.column_stack([(hyy * grad[:, 0] - hxy * grad[:, 1]) / det, (hxx * grad[:, 1] - hxy * grad[:, 0]) / det])
+        step = np.column_stack(
+            [(hyy * grad[:, 0] - hxy * grad[:, 1]) / det, (hxx * grad[:, 1] - hxy * grad[:, 0]) / det]
+        )
         p = p - step
         if np.max(np.abs(step)) < 1e-11:
             break
@@ -132,7 +134,7 @@ def _polyline_stations(start_local, azimuths_deg, lengths_m):
     """Stations every STATION_SPACING_M along a polyline of straight legs."""
     pts = [np.asarray(start_local, float)]
     for az, length in zip(azimuths_deg, lengths_m):
-        n = int(round(length / STATION_SPACING_M))
+        n = round(length / STATION_SPACING_M)
         d = np.array([np.sin(np.radians(az)), np.cos(np.radians(az))])
         for _ in range(n):
             pts.append(pts[-1] + STATION_SPACING_M * d)
@@ -232,7 +234,8 @@ def make(out_dir: Path = HERE) -> dict:
             "channel_width_sigma_m": CHANNEL_WIDTH_M,
             "channel_axis_azimuth_deg": CHANNEL_AXIS_AZIMUTH_DEG,
             "channel_axis_point_local_m": list(CHANNEL_AXIS_POINT),
-            "formula": "z = z0 - tan(dip) * ((x-x0) sin(dd) + (y-y0) cos(dd)) - A exp(-d^2 / (2 w^2)), d = distance across the channel axis",
+            "formula": "z = z0 - tan(dip) * ((x-x0) sin(dd) + (y-y0) cos(dd)) - A exp(-d^2 / (2 w^2)), "
+            "d = distance across the channel axis",
         },
         "ground": "z = 250 + 0.020 (x-x0) - 0.012 (y-y0) + 1.2 sin((x-x0)/45) cos((y-y0)/60)",
         "counts": {"stations": len(stations), "picks": len(picks), "boreholes": len(boreholes)},

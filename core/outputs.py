@@ -1,0 +1,130 @@
+"""Write a :class:`~.pipeline.RunResult` to its output folder.
+
+Every file is staged beside its target and renamed only when the whole set is
+written (:class:`~.atomic.OutputSet`): a run that fails or is cancelled half
+way leaves the previous outputs byte-identical and no partial file.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from . import layers as lay
+from .atomic import OutputSet
+from .dxf import write_contours_dxf
+from .geotiff import write_geotiff_grid
+from .gpkg import write_geopackage
+from .pipeline import surface_data
+from .progress import check_cancel
+from .tables import write_layer_csv
+
+GPKG_NAME = "survey.gpkg"
+
+
+def result_layers(result) -> dict:
+    """The GeoPackage layers of a run, in the order a GIS should list them."""
+    fit = result.fit
+    out = {
+        "stations": lay.stations_layer(result.survey.stations),
+        "lines": lay.lines_layer(fit.frames),
+        "shots": lay.shots_layer(fit.gathers, fit.fits, result.tomography),
+        "reflector_points": lay.reflector_points_layer(fit.points),
+        "reflection_points": lay.reflection_points_layer(fit.receiver_points, fit.fits),
+    }
+    if result.dips is not None:
+        out["dip_measurements"] = lay.dips_layer(result.dips)
+    if result.surface_dips is not None:
+        out["surface_dips"] = lay.surface_dips_layer(result.surface_dips)
+    if result.misties is not None:
+        out["misties"] = lay.misties_layer(result.misties)
+    if result.borehole_check is not None:
+        out["boreholes"] = lay.boreholes_layer(result.survey.boreholes, result.borehole_check)
+    if result.contours is not None:
+        out["contours"] = result.contours
+    cv = (result.seismic_diag or {}).get("cross_validation")
+    if cv is not None:
+        x, y, _, _ = surface_data(result.fit.points)
+        out["cross_validation"] = lay.cross_validation_layer(x, y, cv)
+    return out
+
+
+def result_rasters(result) -> dict:
+    """File name -> (grid, description) of the GeoTIFF outputs (row 0 north)."""
+    if result.surface is None:
+        return {}
+    s = result.surface
+    z = np.where(s.mask, np.nan, s.z)
+    std = np.where(s.mask, np.nan, s.std)
+    return {
+        "reflector_elevation.tif": z,
+        "reflector_depth.tif": result.depth_m,
+        "depth_sigma.tif": std,
+    }
+
+
+def gather_qc_pngs(result):
+    """Yield (gather index, file name, PNG bytes) of the QC figure of every gather."""
+    from .figures import gather_figure
+
+    g, f = result.fit.gathers, result.fit.fits
+    d = g.receiver_xyz - g.source_xyz
+    x_along = np.einsum("ij,ij->i", d[:, :2], g.line_unit[g.gather])
+    model = g.time_s - f.residual_s
+    order = np.argsort(g.gather, kind="stable")
+    bounds = np.searchsorted(g.gather[order], np.arange(g.n_gathers + 1))
+    for k in range(g.n_gathers):
+        sel = order[bounds[k] : bounds[k + 1]]
+        title = f"line {g.line[k]}, shot {g.shot[k]}, reflector {g.reflector[k]}: {f.status[k]}"
+        if f.status[k] != "ok":
+            title += f" ({f.reason[k]})"
+        params = (
+            f"V  = {f.velocity_m_s[k]:7.0f} ± {f.se_velocity_m_s[k]:.0f} m/s\n"
+            f"h  = {f.normal_distance_m[k]:7.2f} ± {f.se_normal_distance_m[k]:.2f} m\n"
+            f"t0 = {f.t0_s[k] * 1e3:7.2f} ± {f.se_t0_s[k] * 1e3:.2f} ms\n"
+            f"traveltime dip = {f.traveltime_dip_deg[k]:.1f} ± {f.se_traveltime_dip_deg[k]:.1f}°\n"
+            f"rms {f.rms_residual_s[k] * 1e3:.2f} ms; used {f.picks_used[k]}, rejected {f.picks_rejected[k]}"
+        )
+        flagged = f.rejected[sel] | f.excluded[sel]
+        png = gather_figure(x_along[sel], g.time_s[sel], model[sel], flagged, title, params)
+        yield k, f"gather_{_safe(g.line[k])}_{_safe(g.shot[k])}_{_safe(g.reflector[k])}.png", png
+
+
+def _safe(text) -> str:
+    return "".join(c if c.isalnum() or c in "-_" else "_" for c in str(text))
+
+
+def write_all(result, out_dir, progress) -> list:
+    """Write every output; returns the list of files written."""
+    from .reporting import build_report
+
+    out_dir = Path(out_dir)
+    crs = result.survey.crs
+    layers = result_layers(result)
+    spec = result.spec
+    with OutputSet() as outputs:
+        write_geopackage(outputs.stage(out_dir / GPKG_NAME), layers, crs)
+        (out_dir / "csv").mkdir(exist_ok=True)
+        for name, layer in layers.items():
+            write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
+        progress.set_progress(15)
+        for name, grid in result_rasters(result).items():
+            write_geotiff_grid(outputs.stage(out_dir / name), spec.x_centres, spec.y_centres, grid, crs)
+        if result.contours is not None and len(result.contours):
+            for kind in ("elevation", "depth"):
+                write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)
+        check_cancel(progress)
+        progress.set_progress(25)
+        (out_dir / "qc").mkdir(exist_ok=True)
+        qc_pngs = {}
+        for k, name, png in gather_qc_pngs(result):
+            outputs.stage(out_dir / "qc" / name).write_bytes(png)
+            qc_pngs[k] = (name, png)
+            check_cancel(progress)
+            progress.set_progress(25 + 50 * (k + 1) / max(result.fit.gathers.n_gathers, 1))
+        html = build_report(result, layers, qc_pngs)
+        outputs.stage(out_dir / "report.html").write_text(html, encoding="utf-8")
+        written = outputs.targets
+    progress.set_progress(100)
+    return written

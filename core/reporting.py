@@ -1,0 +1,323 @@
+"""Content of report.html: what a reviewer of the survey asks to see.
+
+Sections: summary and cautions; site map; the surface (method, variogram,
+cross-validation, comparison of the two methods); boreholes; true dips at line
+crossings; misties; flagged gathers; one section per line (section view, fit
+table, QC figures); method notes.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import __version__, figures
+from .report import Report
+
+
+def _rms(values):
+    v = np.asarray(values, float)
+    v = v[np.isfinite(v)]
+    return float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
+
+
+def build_report(result, layers, qc_pngs) -> str:
+    """Render the report; ``qc_pngs`` maps gather index -> (file name, PNG bytes)."""
+    survey, fit = result.survey, result.fit
+    rep = Report(f"Reflector map — {survey.name}")
+    rep.caution()
+    _summary(rep, result)
+    if result.surface is not None:
+        _map(rep, result)
+        _surface(rep, result)
+    _boreholes(rep, result)
+    _dips(rep, result)
+    _misties(rep, result)
+    _flagged(rep, fit)
+    _lines(rep, result, layers, qc_pngs)
+    _method(rep)
+    rep.caution()
+    return rep.render()
+
+
+def _summary(rep, r):
+    survey, f = r.survey, r.fit.fits
+    n_ok = int(np.sum(f.status == "ok"))
+    n_picks = len(f.residual_s)
+    items = [
+        ("survey file", str(survey.path)),
+        ("working CRS", f"{survey.crs.name} ({survey.crs.to_string()})"),
+        ("input CRS", survey.input_crs.name),
+        ("lines", ", ".join(sorted(r.fit.frames))),
+        ("stations / picks", f"{len(survey.stations)} / {n_picks}"),
+        ("gathers", f"{len(f)} ({n_ok} ok, {len(f) - n_ok} flagged)"),
+        ("picks rejected as mispicks",
+         f"{int(f.picks_rejected.sum())} ({100 * f.picks_rejected.sum() / max(n_picks, 1):.1f} %)"),
+    ]
+    ok = f.status == "ok"
+    if np.any(ok):
+        v = f.velocity_m_s[ok]
+        med = float(np.median(v))
+        items.append(("overburden velocity, gather fits (median ± 1.4826 MAD)",
+                      f"{med:.0f} ± {1.4826 * np.median(np.abs(v - med)):.0f} m/s"))
+    tomo = r.tomography or {}
+    if "result" in tomo:
+        res = tomo["result"]
+        items.append(("overburden velocity, joint inversion",
+                      f"{res.velocity_m_s:.1f} ± {res.sigma_velocity_m_s:.1f} m/s"))
+    if r.surface is not None:
+        items += [
+            ("surface method", r.method_used),
+            ("grid", f"{r.spec.nx} × {r.spec.ny} cells of {r.spec.cell_size_m:g} m; "
+                     f"{int(np.sum(~r.surface.mask))} estimated, the rest farther than the masking distance from data"),
+            ("3D relocation", f"{len(r.relocation_history_m)} iterations, largest cell change per iteration (m): "
+                              + ", ".join(f"{c:.3f}" for c in r.relocation_history_m)),
+        ]
+        depth = r.depth_m[np.isfinite(r.depth_m)]
+        if depth.size:
+            items.append(("depth to reflector (mapped cells)", f"{depth.min():.1f} to {depth.max():.1f} m"))
+    if r.depth_ratio is not None:
+        d = r.depth_ratio
+        items.append(("borehole / seismic depth ratio (velocity check)",
+                      f"{d['factor']:.3f} ± {d['sigma_factor']:.3f} from {d['n']} boreholes"))
+    scale = _scale_note(r)
+    if scale:
+        items.append(("grid scale factor", scale))
+    items.append(("software", f"Reflector Mapper {__version__}"))
+    rep.heading("Summary")
+    rep.items(items)
+    for note in r.notes:
+        rep.paragraph(note, cls="small")
+
+
+def _scale_note(r):
+    try:
+        from .crs import grid_scale_factor
+    except ImportError:  # pragma: no cover
+        return ""
+    st = r.survey.stations
+    k = float(np.mean(grid_scale_factor(r.survey.crs, np.mean(st.x_m), np.mean(st.y_m))))
+    if not np.isfinite(k):
+        return ""
+    return (f"k = {k:.6f} at the site centre: ground distance = grid distance / k "
+            f"({(1 / k - 1) * 1e3:+.2f} m per km); offsets and depths are computed in grid metres")
+
+
+def _map(rep, r):
+    spec, s = r.spec, r.surface
+    contours = []
+    c = r.contours
+    if c is not None and len(c):
+        kinds = np.asarray(c.fields["kind"])
+        for geom, kind, idx, level in zip(c.geometries, kinds, c.fields["index"], c.fields["depth_m"]):
+            if kind != "depth" or geom is None:
+                continue
+            parts = getattr(geom, "geoms", [geom])
+            for part in parts:
+                contours.append((level, np.asarray(part.coords), bool(idx)))
+    lines = {name: np.column_stack([fr.x_m, fr.y_m]) for name, fr in r.fit.frames.items()}
+    pts = r.fit.points
+    dips = None
+    if r.dips is not None and len(r.dips):
+        ok = np.isfinite(r.dips.dip_deg)
+        dips = (r.dips.x_m[ok], r.dips.y_m[ok], r.dips.strike_deg[ok], r.dips.dip_deg[ok])
+    sd = r.surface_dips
+    sdips = None if sd is None else (sd.x_m, sd.y_m, sd.strike_deg, sd.dip_deg)
+    bh = r.survey.boreholes
+    bhs = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, list(bh.name))
+    png = figures.map_figure(
+        spec.x_centres, spec.y_centres, r.depth_m, contours, lines,
+        points_xy=np.column_stack([pts.x_m, pts.y_m]), dips=dips, surface_dips=sdips, boreholes=bhs,
+        title=f"Depth to reflector below ground ({r.method_used}), depth contours, reflector points\n"
+              "strike and dip: red = measured at line crossings, grey = from the mapped surface",
+    )
+    rep.heading("Map")
+    rep.figure(png, "map of depth to the reflector")
+    del s
+
+
+def _surface(rep, r):
+    rep.heading("Surface")
+    diag = r.seismic_diag or {}
+    if diag.get("variogram") is not None:
+        vm = diag["variogram"]
+        rep.paragraph(
+            f"Ordinary kriging with a {vm.model} variogram: nugget {vm.nugget:.3g} m², partial sill "
+            f"{vm.sill:.3g} m², range {vm.range_m:.1f} m (fitted by weighted least squares to the experimental "
+            "variogram, the mean measurement-error variance removed from the nugget), each point's "
+            "measurement-error variance on the kriging diagonal, "
+            f"{r.survey.settings.neighbours} nearest neighbours; cells farther than "
+            f"{diag.get('max_distance_m', float('nan')):.0f} m from any datum are left empty."
+        )
+        ev = diag.get("experimental_variogram")
+        if ev is not None:
+            rep.figure(figures.variogram_figure(ev.lag_m, ev.semivariance, ev.n_pairs, vm,
+                                                title="semivariogram of reflector elevations"), "variogram")
+    elif diag.get("smoothing") is not None:
+        rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag['smoothing']:.3g}; no standard deviation.")
+    cv = diag.get("cross_validation")
+    if cv is not None:
+        rep.heading("Leave-one-out cross-validation (seismic points only)", level=3)
+        rep.items([
+            ("mean error", f"{cv.mean_error:+.3f} m"),
+            ("RMSE", f"{cv.rmse:.3f} m"),
+            ("mean standardised squared error (≈ 1 when the stated sigma is honest)",
+             f"{cv.mean_standardised_squared_error:.2f}"),
+            ("fraction within 2 sigma (≈ 0.95)", f"{cv.fraction_within_2sigma:.2f}"),
+        ])
+        rep.figure(figures.scatter_figure(cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)",
+                                          "datum (m)", "cross-validation"), "cross-validation scatter")
+    tomo = r.tomography or {}
+    if "result" in tomo:
+        res = tomo["result"]
+        rep.heading("Joint inversion of all picks and comparison with the gather-fit surface", level=3)
+        f = r.fit.fits
+        used = f.weight > 0
+        rep.paragraph(
+            "Reflection traveltime tomography (Bishop et al. 1985): every pick is modelled through its "
+            "Fermat reflection point on a smooth surface through grid nodes, with one overburden velocity; "
+            f"Gauss-Newton with a curvature penalty and robust weights, {res.iterations} iterations "
+            f"({'converged' if res.converged else 'NOT converged'}). Velocity {res.velocity_m_s:.1f} ± "
+            f"{res.sigma_velocity_m_s:.1f} m/s; velocity and mean depth correlate at "
+            f"{res.velocity_depth_correlation:+.2f} (velocity and depth trade off: a velocity error of 1 % "
+            "moves depths by about 1 %)."
+        )
+        rep.items([
+            ("pick residual rms, per-gather plane fits", f"{_rms(f.residual_s[used]) * 1e3:.3f} ms"),
+            ("pick residual rms, joint inversion", f"{_rms(res.residual_s[res.used & ~res.rejected]) * 1e3:.3f} ms"),
+            ("picks rejected by the joint inversion", int(np.sum(res.rejected))),
+            ("gathers flagged by the site velocity check", int(np.sum(tomo["curvature_flag"]))),
+        ])
+        diff = tomo["difference_m"]
+        if np.any(np.isfinite(diff)):
+            rep.paragraph(
+                f"Difference joint inversion − kriged gather fits: mean {np.nanmean(diff):+.2f} m, rms "
+                f"{_rms(diff):.2f} m, largest {np.nanmax(np.abs(diff)):.2f} m. Large differences mark where the "
+                "planar assumption of the gather fits fails (curved reflector)."
+            )
+            rep.figure(figures.raster_figure(r.spec.x_centres, r.spec.y_centres, diff, "difference (m)",
+                                             "joint inversion minus kriged gather fits"), "difference map")
+    elif "skipped" in tomo:
+        rep.paragraph(f"Joint inversion not run: {tomo['skipped']}.")
+
+
+def _boreholes(rep, r):
+    chk, bh = r.borehole_check, r.survey.boreholes
+    if chk is None:
+        return
+    rep.heading("Borehole check")
+    rep.paragraph(
+        "Each borehole against the seismic-only surface (boreholes not used), so the check is independent; "
+        "the final surface then honours the boreholes within their stated error."
+    )
+    rep.table({
+        "borehole": [str(n) for n in bh.name],
+        "depth_m": list(bh.depth_m),
+        "elevation_m": list(bh.elevation_m),
+        "seismic_elevation_m": list(chk["seismic_elevation_m"]),
+        "seismic_sigma_m": list(chk["seismic_sigma_m"]),
+        "residual_m": list(chk["residual_m"]),
+        "residual/sigma": list(chk["standardised"]),
+    }, flag=list(np.abs(chk["standardised"]) > 2))
+
+
+def _dips(rep, r):
+    d = r.dips
+    if d is None:
+        return
+    rep.heading("True dip and strike at line crossings")
+    if not len(d):
+        rep.paragraph("No place where gathers of two well-separated line directions meet: no true dip measured.")
+        return
+    rep.table({
+        "lines": [str(x) for x in d.lines],
+        "dip_deg": list(d.dip_deg),
+        "sigma_dip_deg": list(d.sigma_dip_deg),
+        "dip_direction_deg": list(d.dip_direction_deg),
+        "strike_deg": list(d.strike_deg),
+        "gathers": list(d.n_gathers),
+        "status": [str(x) for x in d.status],
+        "reason": [str(x) for x in d.reason],
+    }, flag=list(d.status != "ok"))
+
+
+def _misties(rep, r):
+    m = r.misties
+    if m is None:
+        return
+    rep.heading("Line misties")
+    if not len(m):
+        rep.paragraph("No line crossings with reflector points on both lines.")
+        return
+    rep.table({
+        "line_a": [str(x) for x in m.line_a], "line_b": [str(x) for x in m.line_b],
+        "elevation_a_m": list(m.elevation_a_m), "elevation_b_m": list(m.elevation_b_m),
+        "mistie_m": list(m.mistie_m), "sigma_m": list(m.sigma_m),
+    }, flag=list(np.abs(m.mistie_m) > 2 * m.sigma_m))
+
+
+def _flagged(rep, fit):
+    f, g = fit.fits, fit.gathers
+    bad = np.flatnonzero(f.status != "ok")
+    rep.heading("Flagged gathers")
+    if not len(bad):
+        rep.paragraph("Every gather gave a physical, well-conditioned fit.")
+        return
+    rep.table({
+        "line": [str(g.line[k]) for k in bad], "shot": [str(g.shot[k]) for k in bad],
+        "status": [str(f.status[k]) for k in bad], "reason": [str(f.reason[k]) for k in bad],
+    }, caption="Gathers not used for the surface, with the reason")
+
+
+def _lines(rep, r, layers, qc_pngs):
+    fit = r.fit
+    f, g = fit.fits, fit.gathers
+    shots = layers["shots"]
+    rep.heading("Lines")
+    names = ["shot", "velocity_m_s", "se_velocity_m_s", "t0_ms", "se_t0_ms", "normal_distance_m",
+             "se_normal_distance_m", "traveltime_dip_deg", "rms_residual_ms", "picks_used", "picks_rejected", "status"]
+    for line in sorted(fit.frames):
+        frame = fit.frames[line]
+        rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
+        if r.surface is not None:
+            rep.figure(_section_png(r, line), f"section of line {line}")
+        sel = np.flatnonzero(np.asarray(g.line) == line)
+        rep.table({n: [shots.fields[n][i] for i in sel] for n in names},
+                  caption=f"Gather fits of line {line}", flag=[f.status[i] != "ok" for i in sel])
+        for i in sel:
+            if i in qc_pngs:
+                name, png = qc_pngs[i]
+                rep.figure(png, f"QC of line {line} shot {g.shot[i]}",
+                           collapsed_summary=f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})")
+
+
+def _section_png(r, line):
+    from .pipeline import _bilinear
+
+    frame = r.fit.frames[line]
+    pts = r.fit.points
+    sel = np.asarray(pts.line) == line
+    ch, _ = frame.locate(pts.x_m[sel], pts.y_m[sel])
+    ok = pts.status[sel] == "ok"
+    s = r.surface
+    z = _bilinear(r.spec, np.where(s.mask, np.nan, s.z), frame.x_m, frame.y_m)
+    sd = _bilinear(r.spec, np.where(s.mask, np.nan, s.std), frame.x_m, frame.y_m)
+    return figures.section_figure(
+        frame.chainage_m, frame.z_m, (ch, pts.elevation_m[sel], pts.sigma_m[sel], ok),
+        surface=(frame.chainage_m, z, sd), title=f"line {line}: ground, reflector points, mapped surface (±2σ)",
+    )
+
+
+def _method(rep):
+    rep.heading("Method and conventions")
+    rep.paragraph(
+        "Each shot gather is fitted with the exact image-source traveltime of a plane below a homogeneous "
+        "layer, t = |R − S'|/V with S' = S + 2hn, from the surveyed 3D source and receiver positions; a "
+        "linear t²–x² fit (Green 1938) gives the start, a robust nonlinear fit in time gives V, the normal "
+        "distance h, t0 = 2h/V and the along-line normal component s = sin(dip)·cos(β), with standard errors "
+        "from the covariance; picks beyond the rejection threshold are flagged, never dropped silently. "
+        "The traveltime dip asin(s) is not the apparent dip of the section (tan α = tan(dip)·cos(β)); true "
+        "dip comes from crossing lines or from the mapped surface. Reflector points are the feet of the "
+        "perpendicular S + hn, moved in 3D with the surface's cross-line dip until the surface stops "
+        "changing. Depth = ground elevation − reflector elevation (positive down); azimuths clockwise from "
+        "grid north; strike by the right-hand rule (dip direction = strike + 90°)."
+    )
