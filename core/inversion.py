@@ -115,10 +115,11 @@ __all__ = [
 ]
 
 #: Largest accepted condition number of the correlation-scaled normal matrix.
-#: It grows like (h / x_max)^4: a split spread whose longest offset is under a
-#: tenth of the normal distance h, or an end-on spread under a fifth, exceeds
-#: it; spreads as long as the depth stay near 1e3 (split) to 2e4 (end-on).
-#: Between those, the standard errors (not the status) say how well V is known.
+#: It grows like (h / x_max)^4 (Frobenius norm, see :func:`_scaled_normal_matrix`):
+#: a split spread whose longest offset is under about a twelfth of the normal
+#: distance h, or an end-on spread under about a fifth, exceeds it; spreads as
+#: long as h stay near 1e3 (split) to 2e4 (end-on). Between those, the
+#: standard errors (not the status) say how well V is known.
 CONDITION_LIMIT = 1.0e7
 
 _MAX_ITER = 100  # Levenberg-Marquardt iterations per fit
@@ -133,9 +134,7 @@ _MIN_H_M = 0.01  # plane closer than this to the source: nonphysical
 _S_LIMIT = 0.999  # |s| / s_max beyond this: nonphysical (vertical reflector)
 _LOSSES = ("linear", "huber", "soft_l1", "cauchy")
 
-_STATUS_NAMES = np.array(
-    ["ok", "too_few_picks", "nonphysical", "ill_conditioned", "not_converged"], dtype=object
-)
+_STATUS_NAMES = np.array(["ok", "too_few_picks", "nonphysical", "ill_conditioned", "not_converged"], dtype=object)
 _OK, _FEW, _NONPHYS, _ILL, _NOCONV = range(5)
 _DEFAULT_SETTINGS = Settings()  # frozen, safe to share as a default
 
@@ -631,9 +630,7 @@ class _ShotModel:
             with np.errstate(invalid="ignore", divide="ignore"):
                 V2 = np.where((a2 > 0) & (c2 > 0), a2**-0.5, vmid)
             V2 = np.where(np.isfinite(V2), V2, vmid)
-            h2 = np.where(
-                (a2 > 0) & (c2 > 0), 0.5 * np.sqrt(np.abs(c2 / np.where(a2 > 0, a2, 1.0))), 0.5 * V2 * tmin
-            )
+            h2 = np.where((a2 > 0) & (c2 > 0), 0.5 * np.sqrt(np.abs(c2 / np.where(a2 > 0, a2, 1.0))), 0.5 * V2 * tmin)
             h2 = np.where(np.isfinite(h2) & (h2 > 0), h2, 0.5 * V2 * tmin)
             V = np.where(bad, V2, V)
             h = np.where(bad, h2, h)
@@ -771,9 +768,7 @@ class _CmpModel:
 # --------------------------------------------------------------------------- engine
 
 
-def _batched_least_squares(
-    model, theta0, time, sigma, usable, loss, f_scale, xtol=None, max_iter=None, progress=None
-):
+def _batched_least_squares(model, theta0, time, sigma, usable, loss, f_scale, xtol=None, max_iter=None, progress=None):
     """Robust Levenberg-Marquardt fit of many small problems at once (see :func:`_lm_block`).
 
     The gathers are processed in blocks of about ``_BLOCK_ELEMENTS`` padded
@@ -982,9 +977,7 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
         raise InversionError(f"robust_scale = {C!r} must be a positive number of pick sigmas (e.g. 1.5)")
     k_rej = float(settings.reject_sigma) if settings.reject_sigma is not None else np.inf
     if not k_rej > 0:
-        raise InversionError(
-            f"reject_sigma = {k_rej!r} must be positive (e.g. 4); use inf to disable rejection"
-        )
+        raise InversionError(f"reject_sigma = {k_rej!r} must be positive (e.g. 4); use inf to disable rejection")
     kappa = _loss_variance_inflation(loss, C)
     g, nmax = time.shape
     block = max(16, _BLOCK_ELEMENTS // max(nmax, 1))
@@ -1313,9 +1306,7 @@ def fit_shot_gathers(
     time_s, sigma_s = _check_picks(gathers.time_s, gathers.sigma_s, gathers.pick_index)
     gid = np.asarray(gathers.gather, dtype=np.intp)
     if n and (gid.min() < 0 or gid.max() >= g):
-        raise InversionError(
-            f"gather index {int(gid.max())} out of range for {g} gathers; rebuild the GatherSet"
-        )
+        raise InversionError(f"gather index {int(gid.max())} out of range for {g} gathers; rebuild the GatherSet")
     if cross_component is None:
         q = np.zeros(g)
     else:
@@ -1507,17 +1498,12 @@ def cmp_bins(source_xy, receiver_xy, bin_size_m, line_unit=None, group=None):
     n = len(S)
     M = 0.5 * (S + R)
     off = np.hypot(*(R - S).T)
-    labels = (
-        np.zeros(n, dtype=np.intp) if group is None else np.unique(np.asarray(group), return_inverse=True)[1]
-    )
+    labels = np.zeros(n, dtype=np.intp) if group is None else np.unique(np.asarray(group), return_inverse=True)[1]
     labels = labels.ravel()
     ng = int(labels.max()) + 1 if n else 0
     if line_unit is None:
         cnt = np.bincount(labels, minlength=ng).astype(float)
-        mean = (
-            np.column_stack([np.bincount(labels, M[:, i], ng) for i in range(2)])
-            / np.maximum(cnt, 1)[:, None]
-        )
+        mean = np.column_stack([np.bincount(labels, M[:, i], ng) for i in range(2)]) / np.maximum(cnt, 1)[:, None]
         dM = M - mean[labels]
         cxx = np.bincount(labels, dM[:, 0] ** 2, ng)
         cyy = np.bincount(labels, dM[:, 1] ** 2, ng)
@@ -1563,9 +1549,7 @@ def dix_intervals(t0_s, vrms_m_s, se_t0_s=None, se_vrms_m_s=None) -> DixInterval
     t = np.asarray(t0_s, dtype=float).ravel()
     v = np.asarray(vrms_m_s, dtype=float).ravel()
     if t.shape != v.shape:
-        raise InversionError(
-            f"t0_s has {t.size} values and vrms_m_s {v.size}; expected one of each per reflector"
-        )
+        raise InversionError(f"t0_s has {t.size} values and vrms_m_s {v.size}; expected one of each per reflector")
     st = np.zeros_like(t) if se_t0_s is None else np.broadcast_to(np.asarray(se_t0_s, float), t.shape)
     sv = np.zeros_like(v) if se_vrms_m_s is None else np.broadcast_to(np.asarray(se_vrms_m_s, float), v.shape)
     order = np.argsort(t, kind="stable")
@@ -1615,10 +1599,7 @@ def dix_intervals(t0_s, vrms_m_s, se_t0_s=None, se_vrms_m_s=None) -> DixInterval
     reason = np.full(len(t), "interval velocity from the Dix relation", dtype=object)
     for k_ in np.flatnonzero(~ok):
         if not dt[k_] > 0:
-            reason[k_] = (
-                f"reflector at t0 = {t[k_] * 1e3:.2f} ms is not below the one above it "
-                f"({tp[k_] * 1e3:.2f} ms)"
-            )
+            reason[k_] = f"reflector at t0 = {t[k_] * 1e3:.2f} ms is not below the one above it ({tp[k_] * 1e3:.2f} ms)"
         else:
             reason[k_] = (
                 f"V_rms^2 t0 decreases from {vp[k_] ** 2 * tp[k_]:.4g} to {v[k_] ** 2 * t[k_]:.4g} m^2/s: "

@@ -324,9 +324,7 @@ def test_dix_errors_match_monte_carlo(rng):
     vr = np.array([1000.0, 1500.0, 2100.0])
     st_, sv = np.array([2e-4, 2e-4, 3e-4]), np.array([10.0, 12.0, 15.0])
     r = inv.dix_intervals(t0, vr, st_, sv)
-    draws = [
-        inv.dix_intervals(t0 + st_ * rng.normal(size=3), vr + sv * rng.normal(size=3)) for _ in range(4000)
-    ]
+    draws = [inv.dix_intervals(t0 + st_ * rng.normal(size=3), vr + sv * rng.normal(size=3)) for _ in range(4000)]
     vi = np.array([d.interval_velocity_m_s for d in draws])
     zz = np.array([d.thickness_m for d in draws])
     dd = np.array([d.depth_base_m for d in draws])
@@ -505,10 +503,18 @@ def test_flagged_gathers_leave_the_batch_unaffected(rng):
 
 
 def test_well_spread_gathers_are_well_conditioned(rng):
-    # the condition limit must leave ordinary spreads (longest offset ~ depth) far inside
+    # the condition limit must leave ordinary spreads far inside: end-on spreads of 96 m over
+    # reflectors 20-80 m away (longest offset >= 1.2 h), the harder case as x and x^2 correlate.
+    # The condition number grows like (h / x_max)^4, so a factor 30 below the limit still leaves
+    # room for spreads more than twice as short.
     gs, tr = make_gathers(rng, 200, spread="end_on", depth=(20.0, 80.0), noise_s=SIGMA)
     fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    assert np.all(fit.status == "ok")
     assert np.all(fit.condition_number < inv.CONDITION_LIMIT / 30)
+    # and a split spread with offsets up to a fifteenth of h is flagged (geometry, no noise)
+    x = np.linspace(-80.0 / 15, 80.0 / 15, 24)
+    short = inv.fit_shot_gathers(straight_line_gather(x, forward.line_traveltime(x, 80.0, 0.1, 2000.0)))
+    assert short.status[0] == "ill_conditioned" and short.condition_number[0] > inv.CONDITION_LIMIT
 
 
 def test_bad_settings_and_inputs(rng):
