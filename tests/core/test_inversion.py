@@ -758,3 +758,21 @@ def test_same_minimum_as_scipy_least_squares(loss):
         assert fit.velocity_m_s[k] == pytest.approx(ref.x[0], rel=1e-6)
         assert fit.normal_distance_m[k] == pytest.approx(ref.x[1], rel=1e-6)
         assert fit.s_along[k] == pytest.approx(ref.x[2], abs=1e-6)
+
+
+def test_cmp_standard_error_coverage():
+    # the CMP fit shares the engine, so its errors must be honest too: 400 hyperbolas (Levin 1971)
+    # with Gaussian noise of the stated sigma; |est - truth| < 1 SE for 68.3 % (binomial SD 0.023,
+    # accept +-3 SD as in the shot-gather test)
+    rng = np.random.default_rng(17)
+    g, x = 400, np.arange(4.0, 100.0, 4.0)
+    t0 = rng.uniform(0.02, 0.06, g)
+    vn = rng.uniform(1500.0, 3500.0, g)
+    gid = np.repeat(np.arange(g), len(x))
+    off = np.tile(x, g)
+    t = forward.cmp_traveltime(off, t0[gid], vn[gid]) + rng.normal(0.0, SIGMA, len(off))
+    fit = inv.fit_cmp_gathers(gid, off, t, np.full(len(t), SIGMA))
+    assert np.all(fit.status == "ok")
+    for est, se, true in [(fit.t0_s, fit.se_t0_s, t0), (fit.nmo_velocity_m_s, fit.se_nmo_velocity_m_s, vn)]:
+        cover = np.mean(np.abs(est - true) < se)
+        assert 0.61 <= cover <= 0.75, cover
