@@ -631,10 +631,30 @@ class VariogramModel:
 
     def _unit(self, h):
         """:math:`\\gamma(h)` divided by the total sill (for well-scaled systems)."""
+        return self._unit_inplace(np.array(h, dtype=float))
+
+    def _unit_inplace(self, h):
+        """:meth:`_unit` overwriting the float array ``h`` (no large temporaries)."""
+        zero = h <= ZERO_LAG_M
+        h *= 1.0 / self.range_m
+        if self.model == "spherical":
+            np.minimum(h, 1.0, out=h)
+            t = h * h
+            t *= -0.5
+            t += 1.5
+            h *= t  # 1.5 r - 0.5 r^3
+            del t
+        else:
+            if self.model == "gaussian":
+                np.multiply(h, h, out=h)
+            h *= -3.0
+            np.expm1(h, out=h)
+            h *= -1.0  # 1 - exp(-3 r) or 1 - exp(-3 r^2)
         s = self.total_sill
-        g = (self.nugget / s) + (self.sill / s) * VARIOGRAM_MODELS[self.model](h / self.range_m)
-        g[h <= ZERO_LAG_M] = 0.0
-        return g
+        h *= self.sill / s
+        h += self.nugget / s
+        h[zero] = 0.0
+        return h
 
     def covariance(self, h):
         """Covariance :math:`C(h) = c_0 + c - \\gamma(h)` (m^2)."""
@@ -1129,22 +1149,22 @@ class OrdinaryKriging:
         xs = self._xc[idx]
         ys = self._yc[idx]
         a = np.empty((c, k + 1, k + 1))
-        dx = xs[:, :, None] - xs[:, None, :]
+        h = xs[:, :, None] - xs[:, None, :]
+        np.multiply(h, h, out=h)
         dy = ys[:, :, None] - ys[:, None, :]
-        np.multiply(dx, dx, out=dx)
         np.multiply(dy, dy, out=dy)
-        dx += dy
+        h += dy
         del dy
-        np.sqrt(dx, out=dx)
-        a[:, :k, :k] = self.variogram_._unit(dx)
-        del dx
+        np.sqrt(h, out=h)
+        a[:, :k, :k] = self.variogram_._unit_inplace(h)
+        del h
         r = np.arange(k)
         a[:, r, r] = -self._e_unit[idx]
         a[:, k, :k] = 1.0
         a[:, :k, k] = 1.0
         a[:, k, k] = 0.0
         b = np.empty((c, k + 1))
-        b[:, :k] = self.variogram_._unit(np.hypot(xs - tx[:, None], ys - ty[:, None]))
+        b[:, :k] = self.variogram_._unit_inplace(np.hypot(xs - tx[:, None], ys - ty[:, None]))
         b[:, k] = 1.0
         sol = np.linalg.solve(a, b[:, :, None])[:, :, 0]
         lam = sol[:, :k]
