@@ -275,6 +275,11 @@ def _check_loss(loss: str) -> str:
     return loss
 
 
+def _row_sum(a):
+    """Sum of each row of a 2-D array (a matrix-vector product: faster than ``sum(axis=1)``)."""
+    return a @ np.ones(a.shape[1])
+
+
 def _loss_terms(e, loss, f_scale):
     """Per-gather robust cost and per-pick :math:`\\rho'` and curvature weights of residuals e.
 
@@ -285,7 +290,7 @@ def _loss_terms(e, loss, f_scale):
     C2 = f_scale * f_scale
     z = e * e
     if loss == "linear":
-        return np.sum(z, axis=1), np.ones_like(z), np.ones_like(z)
+        return _row_sum(z), np.ones_like(z), np.ones_like(z)
     z *= 1.0 / C2
     if loss == "huber":
         a = np.sqrt(z)
@@ -308,7 +313,7 @@ def _loss_terms(e, loss, f_scale):
         rho = np.log(a)
         r1 = 1.0 / a
         wc = np.maximum((1.0 - z) * r1 * r1, 1e-3 * r1)
-    return C2 * np.sum(rho, axis=1), r1, wc
+    return C2 * _row_sum(rho), r1, wc
 
 
 def _rho(z, loss):
@@ -594,10 +599,10 @@ class _ShotModel:
             A = np.empty((len(t), 3, 3))
             A[:, 0, 0] = np.einsum("kn,kn->k", wf, first)
             A[:, 0, 1] = A[:, 1, 0] = np.einsum("kn,kn->k", wf, x)
-            A[:, 0, 2] = A[:, 2, 0] = wf.sum(axis=1)
+            A[:, 0, 2] = A[:, 2, 0] = _row_sum(wf)
             A[:, 1, 1] = np.einsum("kn,kn->k", wx, x)
-            A[:, 1, 2] = A[:, 2, 1] = wx.sum(axis=1)
-            A[:, 2, 2] = w.sum(axis=1)
+            A[:, 1, 2] = A[:, 2, 1] = _row_sum(wx)
+            A[:, 2, 2] = _row_sum(w)
             b = np.column_stack(
                 [np.einsum("kn,kn->k", wf, y), np.einsum("kn,kn->k", wx, y), np.einsum("kn,kn->k", w, y)]
             )
