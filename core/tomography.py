@@ -516,7 +516,8 @@ class TomographyResult:
     elevation_unmasked_m : the same everywhere (penalty-interpolated beyond the data)
     sigma_m : linearised posterior standard deviation of the node elevations, NaN where masked
     mask : True where a reflection point or borehole constrains the node
-    velocity_m_s, sigma_velocity_m_s : layer velocity and its standard deviation
+    velocity_m_s, sigma_velocity_m_s : layer velocity and its standard deviation (with a
+        lateral field: its geometric mean over the velocity nodes)
     velocity_depth_correlation : correlation of V with the mean depth of the
         constrained nodes (near +1: velocity and depth trade off)
     residual_s : observed - modelled time per pick (NaN where not modelled)
@@ -529,6 +530,8 @@ class TomographyResult:
     converged : model change fell below the tolerance
     smoothing : curvature weight lambda used (1/m)
     chi2_reduced : weighted misfit per degree of freedom (robust weights)
+    velocity_grid, velocity_field_m_s, sigma_velocity_field_m_s : the lateral
+        velocity field and its standard deviation (None without ``velocity_grid``)
     method : name of the method
     """
 
@@ -550,6 +553,9 @@ class TomographyResult:
     converged: bool
     smoothing: float
     chi2_reduced: float
+    velocity_grid: NodeGrid | None = None
+    velocity_field_m_s: np.ndarray | None = None
+    sigma_velocity_field_m_s: np.ndarray | None = None
     method: str = METHOD_NAME
 
 
@@ -764,6 +770,80 @@ class _BandedSPD:
         return out
 
 
+class _Velocity:
+    """Velocity parameters q = ln V: one site value, or a Catmull-Rom field on a coarse grid.
+
+    With a field, each leg of a path (S to P, P to R) takes the mean slowness
+    along its horizontal projection by Simpson's rule over its ends and
+    midpoint (straight rays: first-order accurate for a smooth field, since
+    the time is stationary with respect to the ray path; Fermat's principle).
+    """
+
+    def __init__(self, vgrid, start, S, R):
+        self.S = S
+        self.R = R
+        if vgrid is None:
+            v0 = np.asarray(start, float)
+            if v0.ndim != 0:
+                raise InversionError(
+                    f"start velocity of shape {v0.shape} needs velocity_grid; give one value in m/s"
+                )
+            self.grid = None
+            self.nv = 1
+            self.q0 = np.array([np.log(float(v0))]) if v0 > 0 else np.array([np.nan])
+            self.D = None
+        else:
+            self.grid = as_node_grid(vgrid)
+            self.nv = self.grid.nx * self.grid.ny
+            v0 = (
+                np.broadcast_to(np.asarray(start, float), self.grid.shape)
+                if np.ndim(start) == 0
+                else np.asarray(start, float)
+            )
+            if v0.shape != self.grid.shape:
+                raise InversionError(
+                    f"start velocity grid has shape {v0.shape}; "
+                    f"the velocity grid is {self.grid.shape} (ny, nx)"
+                )
+            with np.errstate(invalid="ignore", divide="ignore"):
+                self.q0 = np.log(v0).ravel().copy()
+            self.D = _second_difference_operator(self.grid)
+            self._wS = self._weights(S[:, 0], S[:, 1])
+            self._wR = self._weights(R[:, 0], R[:, 1])
+
+    def _weights(self, x, y):
+        g = self.grid
+        xc = np.clip(x, g.x0_m, g.x0_m + (g.nx - 1) * g.spacing_m)
+        yc = np.clip(y, g.y0_m, g.y0_m + (g.ny - 1) * g.spacing_m)
+        return surface_weights(xc, yc, g)
+
+    def evaluate(self, q, P):
+        """Times (n,), dt/dz at P (n,) and dt/dq as (cols, vals) arrays (n, k)."""
+        S, R = self.S, self.R
+        lS = np.linalg.norm(P - S, axis=1)
+        lR = np.linalg.norm(P - R, axis=1)
+        ezS = (P[:, 2] - S[:, 2]) / lS
+        ezR = (P[:, 2] - R[:, 2]) / lR
+        if self.grid is None:
+            u = np.exp(-q[0])
+            t = (lS + lR) * u
+            return t, u * (ezS + ezR), np.zeros((len(t), 1), np.int64), -t[:, None]
+        pts = [
+            (self._wS, lS / 6.0),
+            (self._weights(0.5 * (S[:, 0] + P[:, 0]), 0.5 * (S[:, 1] + P[:, 1])), 4.0 * lS / 6.0),
+            (self._weights(P[:, 0], P[:, 1]), (lS + lR) / 6.0),
+            (self._weights(0.5 * (R[:, 0] + P[:, 0]), 0.5 * (R[:, 1] + P[:, 1])), 4.0 * lR / 6.0),
+            (self._wR, lR / 6.0),
+        ]
+        us = [np.exp(-np.sum(w * q[idx], axis=1)) for (idx, w), _ in pts]
+        uS = (us[0] + 4.0 * us[1] + us[2]) / 6.0  # mean slowness of each leg (Simpson)
+        uR = (us[2] + 4.0 * us[3] + us[4]) / 6.0
+        t = lS * uS + lR * uR
+        cols = np.concatenate([idx for (idx, _), _ in pts], axis=1)
+        vals = np.concatenate([-(c * u)[:, None] * w for ((_, w), c), u in zip(pts, us)], axis=1)
+        return t, uS * ezS + uR * ezR, cols, vals
+
+
 def invert_reflector(
     source_xyz,
     receiver_xyz,
@@ -779,6 +859,8 @@ def invert_reflector(
     robust_scale: float = 1.5,
     reject_sigma: float = 4.0,
     fix_velocity: bool = False,
+    velocity_grid=None,
+    velocity_smoothing: float = 100.0,
     mask_distance_m: float | None = None,
     max_band_bytes: float = 1.0 * 2**30,
     progress=None,
@@ -807,8 +889,9 @@ def invert_reflector(
         Row 0 southernmost; see :func:`as_node_grid`.
     start_elevation : array (ny, nx)
         Starting reflector elevations (e.g. a kriged surface of gather fits).
-    start_velocity_m_s : float
-        Starting velocity (e.g. the robust site velocity).
+    start_velocity_m_s : float or array
+        Starting velocity (e.g. the robust site velocity); with
+        ``velocity_grid`` also an array on that grid.
     boreholes : (x_m, y_m, elevation_m, sigma_m) arrays, dict, or :class:`~.model.Boreholes`
         Reflector elevations at boreholes (collar - depth) with their errors.
     smoothing : float, optional
@@ -828,6 +911,17 @@ def invert_reflector(
         are flagged ``rejected``.
     fix_velocity : bool
         Keep V at ``start_velocity_m_s`` (e.g. calibrated on boreholes).
+    velocity_grid : NodeGrid or tuple, optional
+        Invert for a smooth lateral velocity field, ln V on the nodes of this
+        coarse grid (row 0 south; it should cover the survey, points beyond
+        take the edge value), instead of one site value. Each leg of a path
+        takes its mean slowness along the straight leg (see :class:`_Velocity`).
+        Lateral velocity and reflector relief trade off at wavelengths near
+        the depth [Bishop et al. 1985]: keep the grid coarse (spacing of a few
+        depths) and the field smooth.
+    velocity_smoothing : float
+        Weight on the second differences of ln V on ``velocity_grid``:
+        100 means a standard deviation of 1 % per node.
     mask_distance_m : float, optional
         Nodes farther than this from every used reflection point and borehole
         are masked; default 1.5 node spacings (the reach of the cubic weights).
@@ -863,12 +957,17 @@ def invert_reflector(
         raise InversionError(f"start_elevation has shape {z.shape}; the node grid is {g.shape} (ny, nx)")
     if not np.all(np.isfinite(z)):
         raise InversionError("start_elevation has NaN or infinite nodes; fill the start surface everywhere")
-    V = float(start_velocity_m_s)
-    if not (np.isfinite(V) and V > 0):
+    vel = _Velocity(velocity_grid, start_velocity_m_s, S, R)
+    q = vel.q0.copy()
+    if not np.all(np.isfinite(q)):
         raise InversionError(f"start velocity {start_velocity_m_s!r} m/s must be positive")
     bh = _boreholes_arrays(boreholes)
     nn = g.nx * g.ny
-    npar = nn + 1
+    nq = 0 if fix_velocity else vel.nv
+    npar = nn + nq
+    lam_v = float(velocity_smoothing)
+    if vel.D is not None:
+        DvtDv = (vel.D.T @ vel.D).tocsr()
     finite = np.isfinite(t_obs) & np.all(np.isfinite(S), axis=1) & np.all(np.isfinite(R), axis=1)
 
     D = _second_difference_operator(g)
@@ -881,17 +980,23 @@ def invert_reflector(
         Wb = 1.0 / bh[3] ** 2
         BtWB = (B.T @ sp.diags(Wb) @ B).tocsr()
 
-    def penalty(zz, lam):
+    def penalty(zz, qq, lam):
         out = lam**2 * float(np.sum((D @ zz.ravel()) ** 2))
         if bh is not None:
             out += float(np.sum(Wb * (B @ zz.ravel() - bh[2]) ** 2))
+        if vel.D is not None:
+            out += lam_v**2 * float(np.sum((vel.D @ qq) ** 2))
         return out
 
-    def forward_all(zz, vv, start_xy):
-        return fermat_traveltime(S, R, zz, g, vv, start_xy=start_xy)
+    def forward_all(zz, qq, start_xy):
+        # geometry from Fermat's principle (path length), times from the velocity model
+        pth = fermat_traveltime(S, R, zz, g, 1.0, start_xy=start_xy)
+        t, dtdz, qcols, qvals = vel.evaluate(qq, pth.point_xyz)
+        return pth, t, dtdz, qcols, qvals
 
     check_cancel(progress)
-    paths = forward_all(z, V, None)
+    state = forward_all(z, q, None)
+    paths = state[0]
     used = finite & paths.inside
     if used.sum() < 3:
         raise InversionError(
@@ -907,11 +1012,10 @@ def invert_reflector(
             raise InversionError(f"smoothing {smoothing!r} must be a non-negative number (1/m)")
     depth_scale = max(float(np.median(S[used, 2] - paths.point_xyz[used, 2])), g.spacing_m)
 
-    def data_terms(pth, zz, vv):
-        r = np.where(used & pth.inside, t_obs - pth.time_s, np.nan)
-        return r
+    def data_terms(st):
+        return np.where(used & st[0].inside, t_obs - st[1], np.nan)
 
-    r = data_terms(paths, z, V)
+    r = data_terms(state)
     ok = used & paths.inside
     w, rejected = _robust_weights(r[ok] / sig[ok], robust_scale, reject_sigma)
     weights = np.zeros(npick)
@@ -919,47 +1023,49 @@ def invert_reflector(
     rej = np.zeros(npick, bool)
     rej[ok] = rejected
 
-    def objective(rr, wts, zz):
+    def objective(rr, wts, zz, qq):
         m = np.isfinite(rr)
-        return float(np.sum(wts[m] * (rr[m] / sig[m]) ** 2)) + penalty(zz, lam)
+        return float(np.sum(wts[m] * (rr[m] / sig[m]) ** 2)) + penalty(zz, qq, lam)
 
     def rms_misfit(rr, rj):
         m = np.isfinite(rr) & ~rj
         return float(np.sqrt(np.mean((rr[m] / sig[m]) ** 2))) if m.any() else np.nan
 
     misfit_hist = [rms_misfit(r, rej)]
-    obj_hist = [objective(r, weights, z)]
+    obj_hist = [objective(r, weights, z, q)]
     converged = False
     iterations = 0
     eps_damp = 1e-8
 
-    def jacobian(pth, wts):
+    def jacobian(st, wts):
+        pth, _, dtdz, qcols, qvals = st
         m = np.isfinite(r_cur) & (wts > 0)
         ii = np.nonzero(m)[0]
         node, wnode = surface_weights(pth.point_xyz[ii, 0], pth.point_xyz[ii, 1], g)
         sw = np.sqrt(wts[ii]) / sig[ii]
         rows = np.repeat(np.arange(ii.size), 16)
-        vals = (wnode * (pth.dt_dz_s_m[ii] * sw)[:, None]).ravel()
+        vals = (wnode * (dtdz[ii] * sw)[:, None]).ravel()
         cols = node.ravel()
-        if not fix_velocity:
-            rows = np.concatenate([rows, np.arange(ii.size)])
-            cols = np.concatenate([cols, np.full(ii.size, nn)])
-            vals = np.concatenate([vals, -pth.time_s[ii] * sw])  # dt/dlnV = -t
+        if not fix_velocity:  # dt/dlnV = -t for one site value
+            k = qcols.shape[1]
+            rows = np.concatenate([rows, np.repeat(np.arange(ii.size), k)])
+            cols = np.concatenate([cols, nn + qcols[ii].ravel()])
+            vals = np.concatenate([vals, (qvals[ii] * sw[:, None]).ravel()])
         J = sp.csr_matrix((vals, (rows, cols)), shape=(ii.size, npar))
         return J, ii, sw
 
     def normal_matrix(J):
         A = (J.T @ J).tocsr()
-        A = A + sp.block_diag([lam**2 * DtD, sp.csr_matrix((1, 1))], format="csr")
-        if bh is not None:
-            A = A + sp.block_diag([BtWB, sp.csr_matrix((1, 1))], format="csr")
-        return A
+        blocks = [lam**2 * DtD + BtWB if bh is not None else lam**2 * DtD]
+        if nq:
+            blocks.append(lam_v**2 * DvtDv if vel.D is not None else sp.csr_matrix((nq, nq)))
+        return (A + sp.block_diag(blocks, format="csr")).tocsr()
 
     for it in range(1, max_iterations + 1):
         check_cancel(progress)
         progress.set_progress(100.0 * (it - 1) / (max_iterations + 1))
         r_cur = r
-        J, ii, sw = jacobian(paths, weights)
+        J, ii, sw = jacobian(state, weights)
         A = normal_matrix(J)
         diag = A.diagonal()
         damp = eps_damp * (np.mean(diag[:nn]) if nn else 1.0)
@@ -968,23 +1074,26 @@ def invert_reflector(
         rhs[:nn] -= lam**2 * (DtD @ z.ravel())
         if bh is not None:
             rhs[:nn] += B.T @ (Wb * (bh[2] - B @ z.ravel()))
+        if nq and vel.D is not None:
+            rhs[nn:] -= lam_v**2 * (DvtDv @ q)
         lu = _factorize(A)
         delta = lu.solve(rhs)
         dz = delta[:nn].reshape(g.shape)
-        dlnv = 0.0 if fix_velocity else float(np.clip(delta[nn], -0.5, 0.5))
-        obj_old = objective(r, weights, z)
+        dq = np.clip(delta[nn:], -0.5, 0.5) if nq else np.zeros_like(q)
+        obj_old = objective(r, weights, z, q)
         alpha = 1.0
         for _ in range(6):
             z_try = z + alpha * dz
-            v_try = V * np.exp(alpha * dlnv)
-            p_try = forward_all(z_try, v_try, paths.point_xyz[:, :2])
-            r_try = data_terms(p_try, z_try, v_try)
+            q_try = q + alpha * dq
+            s_try = forward_all(z_try, q_try, paths.point_xyz[:, :2])
+            r_try = data_terms(s_try)
             # picks that left the grid: keep their old residual in the comparison
-            obj_new = objective(np.where(np.isfinite(r_try), r_try, r), weights, z_try)
+            obj_new = objective(np.where(np.isfinite(r_try), r_try, r), weights, z_try, q_try)
             if obj_new <= obj_old * (1 + 1e-12):
                 break
             alpha *= 0.5
-        z, V, paths = z_try, v_try, p_try
+        z, q, state = z_try, q_try, s_try
+        paths = state[0]
         iterations = it
         # convergence is judged on the nodes the data or boreholes touch: far
         # nodes only follow the penalty and may still drift by a lever effect
@@ -994,8 +1103,8 @@ def invert_reflector(
             touched[np.unique(bnode)] = True
         touched = touched[:nn]
         dz_max = float(np.max(np.abs(dz.ravel()[touched]))) if touched.any() else 0.0
-        change = alpha * max(dz_max, abs(dlnv) * depth_scale)
-        r = data_terms(paths, z, V)
+        change = alpha * max(dz_max, float(np.max(np.abs(dq))) * depth_scale)
+        r = data_terms(state)
         ok = used & paths.inside & np.isfinite(r)
         w, rejected = _robust_weights(r[ok] / sig[ok], robust_scale, reject_sigma)
         weights = np.zeros(npick)
@@ -1003,9 +1112,10 @@ def invert_reflector(
         rej = np.zeros(npick, bool)
         rej[ok] = rejected
         misfit_hist.append(rms_misfit(r, rej))
-        obj_hist.append(objective(r, weights, z))
+        obj_hist.append(objective(r, weights, z, q))
         progress.info(
-            f"tomography iteration {it}: V = {V:.1f} m/s, rms misfit {misfit_hist[-1]:.3f} sigma, "
+            f"tomography iteration {it}: V = {np.exp(np.mean(q)):.1f} m/s, "
+            f"rms misfit {misfit_hist[-1]:.3f} sigma, "
             f"largest change of a constrained node {alpha * dz_max:.3f} m (step length {alpha:g})"
         )
         # converged: the constrained model stopped moving, or the objective stalls
@@ -1018,12 +1128,12 @@ def invert_reflector(
     check_cancel(progress)
     progress.info("tomography: posterior standard deviations")
     r_cur = r
-    J, ii, sw = jacobian(paths, weights)
+    J, ii, sw = jacobian(state, weights)
     A = normal_matrix(J)
     damp = eps_damp * float(np.mean(A.diagonal()[:nn]))
     A = (A + sp.diags(np.where(np.arange(npar) < nn, damp, 0.0))).tocsr()
     m_fin = np.isfinite(r) & (weights > 0)
-    dof = max(int(m_fin.sum()) - (0 if fix_velocity else 1), 1)
+    dof = max(int(m_fin.sum()) - nq, 1)
     chi2 = float(np.sum(weights[m_fin] * (r[m_fin] / sig[m_fin]) ** 2)) / dof
     cscale = max(1.0, chi2)
 
@@ -1042,6 +1152,7 @@ def invert_reflector(
 
     sigma = np.full(g.shape, np.nan)
     sig_v = 0.0 if fix_velocity else np.nan
+    sig_q = np.zeros(vel.nv) if fix_velocity else np.full(vel.nv, np.nan)
     corr = np.nan
     order, band = _banded_order(g)
     if (band + 1) * nn * 8 > max_band_bytes:
@@ -1053,23 +1164,28 @@ def invert_reflector(
             stacklevel=2,
         )
     else:
-        # C = A^-1 with A = [[A_zz, a], [a^T, c]] (velocity last): the z block of C is
-        # A_zz^-1 + u u^T / s with u = A_zz^-1 a and s = c - a.u (Sherman-Morrison).
+        # C = A^-1 with A = [[A_zz, A_zq], [A_qz, A_qq]] (velocity last). Woodbury:
+        # C_zz = A_zz^-1 + U S^-1 U^T, C_qq = S^-1, C_qz = -S^-1 U^T,
+        # U = A_zz^-1 A_zq, S = A_qq - A_qz U (Sherman-Morrison for one velocity).
         Azz = A[:nn, :nn]
         fac = _BandedSPD(Azz, order, band)
         zdiag = fac.inverse_diagonal()
         am = mask.ravel() / max(int(mask.sum()), 1)
-        if not fix_velocity:
-            a_col = np.asarray(A[:nn, nn].todense()).ravel()
-            u = fac.solve(a_col)
-            schur = float(A[nn, nn]) - float(a_col @ u)
-            zdiag = zdiag + u**2 / schur
-            var_lnv = cscale / schur
-            sig_v = V * np.sqrt(var_lnv)
+        if nq:
+            Azq = np.asarray(A[:nn, nn:].todense())
+            U = fac.solve(Azq)
+            schur = np.asarray(A[nn:, nn:].todense()) - Azq.T @ U
+            Sinv = np.linalg.inv(schur)
+            zdiag = zdiag + np.einsum("ij,jk,ik->i", U, Sinv, U)
+            Cqq = cscale * Sinv
+            sig_q = np.sqrt(np.maximum(np.diag(Cqq), 0.0))
+            bq = np.full(nq, 1.0 / nq)  # mean ln V
+            var_lnv = float(bq @ Cqq @ bq)
+            sig_v = np.exp(np.mean(q)) * np.sqrt(max(var_lnv, 0.0))
             if mask.any():
-                au = float(am @ u)
-                var_mean = cscale * (float(am @ fac.solve(am)) + au**2 / schur)
-                cov = -cscale * au / schur  # cov(ln V, mean elevation)
+                au = U.T @ am
+                var_mean = cscale * (float(am @ fac.solve(am)) + float(au @ Sinv @ au))
+                cov = -cscale * float(bq @ Sinv @ au)  # cov(mean ln V, mean elevation)
                 # depth = ground - elevation: the correlation with mean depth has the opposite sign
                 corr = -cov / np.sqrt(max(var_lnv * var_mean, 1e-300))
         sigma = np.sqrt(np.maximum(zdiag * cscale, 0.0)).reshape(g.shape)
@@ -1082,7 +1198,7 @@ def invert_reflector(
         elevation_unmasked_m=z,
         sigma_m=sigma,
         mask=mask,
-        velocity_m_s=float(V),
+        velocity_m_s=float(np.exp(np.mean(q))),
         sigma_velocity_m_s=float(sig_v),
         velocity_depth_correlation=float(corr),
         residual_s=r,
@@ -1095,6 +1211,9 @@ def invert_reflector(
         converged=converged,
         smoothing=float(lam),
         chi2_reduced=chi2,
+        velocity_grid=vel.grid,
+        velocity_field_m_s=None if vel.grid is None else np.exp(q).reshape(vel.grid.shape),
+        sigma_velocity_field_m_s=None if vel.grid is None else (np.exp(q) * sig_q).reshape(vel.grid.shape),
     )
 
 
