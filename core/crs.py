@@ -105,9 +105,12 @@ def parse_crs(value) -> pyproj.CRS:
         return pyproj.CRS.from_user_input(value.strip() if isinstance(value, str) else value)
     except (CRSError, ProjError, ValueError, TypeError) as exc:
         shown = value if not isinstance(value, str) or len(value) <= 80 else value[:77] + "..."
+        reason = _first_line(exc)
+        inner = re.search(r"proj_create: ([^)]*)", reason)  # PROJ's own words, without the wrapping
+        if inner:
+            reason = inner.group(1).strip()
         raise GeoreferenceError(
-            f"unknown CRS {shown!r} ({_first_line(exc)}): give an EPSG code such as 'EPSG:32633', "
-            "WKT or a PROJ string"
+            f"unknown CRS {shown!r} ({reason}): give an EPSG code such as 'EPSG:32633', WKT or a PROJ string"
         ) from exc
 
 
@@ -234,8 +237,7 @@ def working_crs(input_crs, lon_deg=None, lat_deg=None, requested=None) -> pyproj
     south, north = float(lat.min()), float(lat.max())
     if west < -180 or east > 180 or south < -90 or north > 90:
         raise GeoreferenceError(
-            f"longitudes {west:g}..{east:g} / latitudes {south:g}..{north:g} are out of range "
-            "([-180, 180] / [-90, 90])"
+            f"longitudes {west:g}..{east:g} / latitudes {south:g}..{north:g} are out of range ([-180, 180] / [-90, 90])"
         )
     code = _utm_code(west, south, east, north)
     return pyproj.CRS.from_epsg(code)
@@ -397,9 +399,7 @@ def grid_scale_factor(crs, x_m, y_m) -> np.ndarray:
     try:
         factors = pyproj.Proj(crs).get_factors(lon, lat, errcheck=True)
     except (ProjError, CRSError) as exc:
-        raise GeoreferenceError(
-            f"cannot compute scale factors in {crs_label(crs)}: {_first_line(exc)}"
-        ) from exc
+        raise GeoreferenceError(f"cannot compute scale factors in {crs_label(crs)}: {_first_line(exc)}") from exc
     k = np.sqrt(np.asarray(factors.areal_scale, dtype=float)).reshape(np.shape(lon))
     if not np.all(np.isfinite(k)):
         raise GeoreferenceError(f"scale factor not finite for some points in {crs_label(crs)}")

@@ -252,9 +252,7 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
         rows.append(fields)
         linenos.append(i)
     if header is None:
-        raise InputFileError(
-            path, None, None, f"the {role} file is empty: expected a header row and data rows"
-        )
+        raise InputFileError(path, None, None, f"the {role} file is empty: expected a header row and data rows")
 
     columns = [h.lower() for h in header]
     while columns and columns[-1] == "":  # trailing separators after the last name
@@ -292,9 +290,7 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
                 path, header_line, None, f"column {j + 1} of the header has no name: name it or delete it"
             )
         if columns.index(name) != j:
-            raise InputFileError(
-                path, header_line, name, f"column '{name}' appears twice in the header: keep one"
-            )
+            raise InputFileError(path, header_line, name, f"column '{name}' appears twice in the header: keep one")
     missing = [c for c in required if c not in columns]
     if missing:
         unknown = [c for c in columns if c not in required and c not in optional]
@@ -347,8 +343,7 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
                     path,
                     lineno,
                     None,
-                    f"the row has {len(fields)} fields but the header has {ncol} "
-                    f"({', '.join(columns)}){hint}",
+                    f"the row has {len(fields)} fields but the header has {ncol} ({', '.join(columns)}){hint}",
                 )
             fields = fields[:ncol]
         elif len(fields) < ncol:
@@ -606,9 +601,7 @@ def read_stations(path, crs_in, crs_work=None) -> Stations:
     lon, lat = _lonlat(table, x, y, crs_in)
     crs_in, crs_work = _resolve_crs(crs_in, crs_work, lon, lat, table.path)
     xw, yw = _to_work(table, x, y, crs_in, crs_work)
-    return Stations(
-        line=line, station=station, x_m=xw, y_m=yw, z_m=z, file_line=np.asarray(table.lines, dtype=int)
-    )
+    return Stations(line=line, station=station, x_m=xw, y_m=yw, z_m=z, file_line=np.asarray(table.lines, dtype=int))
 
 
 def _parse_crs_or_raise(value, path):
@@ -699,8 +692,7 @@ def read_picks(path, default_sigma_ms=0.5, stations=None, *, max_time_ms=MAX_TIM
                     path,
                     lineno,
                     "sigma_ms",
-                    f"sigma {r[j_sig]!r} ms is below {MIN_SIGMA_MS:g} ms, finer than any seismograph's "
-                    "timing",
+                    f"sigma {r[j_sig]!r} ms is below {MIN_SIGMA_MS:g} ms, finer than any seismograph's timing",
                 )
             sigma_ms[i] = s
         else:
@@ -940,7 +932,13 @@ class _Toml:
         return cls(self.path, self.line_of(table, key), field, message)
 
 
+_ALIASES = {"epsg": "crs", "srs": "crs", "projection": "crs", "coordinate_system": "crs", "title": "name"}
+
+
 def _suggest(key, valid) -> str:
+    alias = _ALIASES.get(str(key).lower())
+    if alias in valid:
+        return f"did you mean '{alias}'? "
     close = difflib.get_close_matches(str(key).lower(), list(valid), n=1, cutoff=0.5)
     return f"did you mean '{close[0]}'? " if close else ""
 
@@ -961,9 +959,7 @@ def _unknown_key(toml: _Toml, table, key, valid):
 
 
 def _type_name(value) -> str:
-    return {str: "text", int: "integer", float: "number", bool: "true/false"}.get(
-        type(value), type(value).__name__
-    )
+    return {str: "text", int: "integer", float: "number", bool: "true/false"}.get(type(value), type(value).__name__)
 
 
 def _check_settings_value(toml: _Toml, key, value, field):
@@ -1105,6 +1101,8 @@ def _read_toml(path: Path):
         reason = re.sub(r"\s*\(at (line \d+, column \d+|end of document)\)", "", msg.splitlines()[0])
         lines = _LINE_BREAK.split(text)
         hint = "see survey.toml in the sample project"
+        if "Illegal character '\\n'" in reason or "Unterminated string" in reason:
+            hint = 'a quoted text is not closed on this line: end it with "'
         if lineno and 1 <= lineno <= len(lines) and "\\" in lines[lineno - 1]:
             hint = (
                 'a backslash starts an escape in "...": write Windows paths with forward slashes '
@@ -1157,9 +1155,7 @@ def _file_value(toml, key, value, required):
             )
         return None
     if not isinstance(value, str):
-        raise toml.error(
-            "files", key, f"value {value!r} is {_type_name(value)}; expected a file name in quotes"
-        )
+        raise toml.error("files", key, f"value {value!r} is {_type_name(value)}; expected a file name in quotes")
     if not value.strip():
         raise toml.error("files", key, "the file name is empty")
     if any(ord(c) < 32 for c in value):
@@ -1232,9 +1228,7 @@ def load_survey(toml_path) -> Survey:
     work_crs_text = None
     if "work_crs" in survey:
         requested = _crs_value(toml, "work_crs", survey["work_crs"])
-        work_crs_text = (
-            survey["work_crs"] if isinstance(survey["work_crs"], str) else f"EPSG:{survey['work_crs']}"
-        )
+        work_crs_text = survey["work_crs"] if isinstance(survey["work_crs"], str) else f"EPSG:{survey['work_crs']}"
         try:
             crsmod.working_crs(crs_in, requested=requested)
         except GeoreferenceError as exc:
@@ -1263,15 +1257,11 @@ def load_survey(toml_path) -> Survey:
     except GeoreferenceError as exc:
         raise toml.error("survey", "crs", f"{exc}") from exc
     xw, yw = _to_work(table, x, y, crs_in, crs_work)
-    stations = Stations(
-        line=line, station=station, x_m=xw, y_m=yw, z_m=z, file_line=np.asarray(table.lines, dtype=int)
-    )
+    stations = Stations(line=line, station=station, x_m=xw, y_m=yw, z_m=z, file_line=np.asarray(table.lines, dtype=int))
     picks = read_picks(paths["picks"], settings.default_sigma_ms, stations)
     boreholes = None
     if "boreholes" in paths:
-        boreholes = read_boreholes(
-            paths["boreholes"], crs_in, crs_work, settings.borehole_sigma_m, stations=stations
-        )
+        boreholes = read_boreholes(paths["boreholes"], crs_in, crs_work, settings.borehole_sigma_m, stations=stations)
     return Survey(
         name=name,
         path=toml.path,
