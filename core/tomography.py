@@ -48,6 +48,13 @@ fixed to first order) [Bishop et al. 1985]:
 
 with :math:`w_k(P)` the interpolation weight of node k at P.
 
+Velocity: one site value by default. Optionally (``velocity_grid``) a smooth
+lateral field, ln V on a coarse Catmull-Rom grid with its own curvature
+penalty; each leg then takes its mean slowness along the straight leg
+(Simpson's rule over its ends and midpoint) and the reflection point stays
+the path-length stationary point, both first-order accurate for a smooth
+field because the time is stationary with respect to the ray path.
+
 Inversion
 ---------
 Gauss-Newton on
@@ -117,6 +124,7 @@ __all__ = [
     "ReflectionPaths",
     "TomographyResult",
     "as_node_grid",
+    "auto_smoothing",
     "curvature_flags",
     "fermat_traveltime",
     "invert_reflector",
