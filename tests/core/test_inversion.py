@@ -175,9 +175,11 @@ def test_picks_in_any_order(rng):
     a = inv.fit_shot_gathers(gs, cross_component=tr["q"])
     b = inv.fit_shot_gathers(shuffled, cross_component=tr["q"])
     # equal up to the iteration's stopping rule (steps < 1e-6 in ln V, kept only as the iteration
-    # contracts, leaving ~1e-8): the sums run in another order
-    np.testing.assert_allclose(b.velocity_m_s, a.velocity_m_s, rtol=1e-7)
-    np.testing.assert_allclose(b.residual_s, a.residual_s[perm], atol=1e-9)
+    # contracts, leaving ~1e-8; allow 5e-7): the sums run in another order. Residuals then agree
+    # to t * 5e-7 with t < 0.1 s.
+    np.testing.assert_allclose(b.velocity_m_s, a.velocity_m_s, rtol=5e-7)
+    np.testing.assert_allclose(b.residual_s, a.residual_s[perm], atol=5e-8)
+    assert np.all(b.rejected == a.rejected[perm])
 
 
 def test_green_1938_horizontal_t2_x2():
