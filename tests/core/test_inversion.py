@@ -501,9 +501,12 @@ def test_flagged_gathers_leave_the_batch_unaffected(rng):
     assert "1 distinct offsets" in fit.reason[7]
     assert np.isnan(fit.velocity_m_s[3]) and np.isnan(fit.velocity_m_s[7])
     assert np.isfinite(fit.velocity_m_s[5])  # flagged gathers keep their best values
+    # the good gathers come out as when fitted alone: every gather is its own problem (row-wise
+    # sums only); 1e-7 leaves room for rounding that differs with a row's place in a BLAS kernel
     alone = inv.fit_shot_gathers(good, cross_component=tr["q"])
-    np.testing.assert_allclose(fit.velocity_m_s[:3], alone.velocity_m_s, rtol=1e-12)
-    np.testing.assert_allclose(fit.covariance[:3], alone.covariance, rtol=1e-9)
+    np.testing.assert_allclose(fit.velocity_m_s[:3], alone.velocity_m_s, rtol=1e-7)
+    np.testing.assert_allclose(fit.covariance[:3], alone.covariance, rtol=1e-6)
+    assert list(fit.status[:3]) == list(alone.status)
 
 
 def test_well_spread_gathers_are_well_conditioned(rng):
