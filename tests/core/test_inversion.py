@@ -462,7 +462,7 @@ def test_user_exclusions_counted_apart(rng):
         gs.spread_length_m,
     )
     ref = inv.fit_shot_gathers(sub, cross_component=tr["q"])
-    np.testing.assert_allclose(fit.velocity_m_s, ref.velocity_m_s, rtol=1e-7)
+    np.testing.assert_allclose(fit.velocity_m_s, ref.velocity_m_s, rtol=5e-7)  # stopping rule, as above
     with pytest.raises(InversionError, match="one flag per pick"):
         inv.fit_shot_gathers(gs, exclude=exclude[:-1])
 
