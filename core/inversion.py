@@ -399,9 +399,15 @@ def _pad_layout(gather: np.ndarray, n_gathers: int):
     return gather, col, nmax
 
 
-def _pad(values, row, col, shape, fill=0.0, dtype=float):
-    """Flat per-pick values to a padded ``(g, nmax)`` array (``fill`` where no pick)."""
+def _pad(values, row, col, shape, fill=0.0, dtype=float, fresh=False):
+    """Flat per-pick values to a padded ``(g, nmax)`` array (``fill`` where no pick).
+
+    ``fresh``: ``values`` is a temporary of the right dtype that may be reshaped
+    in place of a copy (regular layout only).
+    """
     if row is None:
+        if fresh:
+            return np.reshape(values, shape)
         out = np.empty(shape, dtype=dtype)
         out[...] = np.reshape(values, shape) if np.ndim(values) else values
         return out
@@ -1220,8 +1226,9 @@ def _shot_model(gathers: GatherSet, q):
     g = gathers.n_gathers
     row, col, nmax = _pad_layout(gid, g)
     shape = (g, nmax)
-    D = np.asarray(gathers.receiver_xyz, float) - np.asarray(gathers.source_xyz, float)
-    Dx, Dy, Dz = (_pad(D[:, i], row, col, shape) for i in range(3))
+    R = np.asarray(gathers.receiver_xyz, float)
+    S = np.asarray(gathers.source_xyz, float)
+    Dx, Dy, Dz = (_pad(R[:, i] - S[:, i], row, col, shape, fresh=True) for i in range(3))
     u = np.asarray(gathers.line_unit, float)
     w = np.asarray(gathers.cross_unit, float)
     xu = Dx * u[:, 0:1] + Dy * u[:, 1:2]
