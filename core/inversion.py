@@ -1066,8 +1066,9 @@ def _engine_block(model, time, sigma, valid, excluded, settings, loss, C, k_rej,
             converged[todo] = conv
         if not np.isfinite(k_rej) or rnd == _MAX_REJECTION_ROUNDS:
             break
-        # mispick test on all non-excluded picks of the fitted gathers
-        fi = np.flatnonzero(fitted)
+        # mispick test on all non-excluded picks of the gathers fitted in this round (the others
+        # kept their parameters and picks, so their test cannot change)
+        fi = todo[fitted[todo]]
         if fi.size == 0:
             break
         pred, _ = model.take(fi).evaluate(theta[fi])
