@@ -783,3 +783,17 @@ def test_cmp_standard_error_coverage():
     for est, se, true in [(fit.t0_s, fit.se_t0_s, t0), (fit.nmo_velocity_m_s, fit.se_nmo_velocity_m_s, vn)]:
         cover = np.mean(np.abs(est - true) < se)
         assert 0.61 <= cover <= 0.75, cover
+
+
+def test_blocks_and_threads_give_the_same_answer(rng, monkeypatch):
+    # the engine splits the gathers into cache-sized blocks run in threads: small blocks, one or
+    # several threads, all must give the same results (each gather is its own problem)
+    gs, tr = make_gathers(rng, 300, npick=24, noise_s=SIGMA)
+    monkeypatch.setattr(inv, "_MAX_THREADS", 1)
+    ref = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    monkeypatch.setattr(inv, "_BLOCK_ELEMENTS", 24 * 37)  # 37 gathers per block, uneven last block
+    monkeypatch.setattr(inv, "_workers", lambda: 3)
+    alt = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    np.testing.assert_allclose(alt.velocity_m_s, ref.velocity_m_s, rtol=1e-7)  # BLAS row rounding only
+    np.testing.assert_array_equal(alt.status, ref.status)
+    np.testing.assert_array_equal(alt.rejected, ref.rejected)
