@@ -71,7 +71,10 @@ thin-plate curvature penalty whose null space is a plane), Huber IRLS weights
 ``reject_sigma`` robust standard deviations rejected (weight 0, flagged).
 Boreholes enter as near-exact elevation data :math:`e_b` = collar - depth.
 The normal equations are solved by a sparse LU factorisation (SuperLU in
-scipy); the step is halved while it does not lower :math:`\\Phi`.
+scipy, symmetric mode); the step is halved while it does not lower
+:math:`\\Phi`, and a Levenberg-Marquardt damping of the step grows after
+such a halving and shrinks after full steps [Marquardt 1963] (the gradient
+stays undamped, so the solution is that of Gauss-Newton).
 
 Uncertainty: the linearised posterior covariance
 :math:`C = (J^T W J + \\lambda^2 D^T D + B^T W_b B)^{-1}` (scaled by the
@@ -92,6 +95,9 @@ References
     317-326.
 [Sheriff & Geldart 1995] Sheriff, R. E. & Geldart, L. P. (1995). Exploration
     Seismology, 2nd ed., Cambridge University Press, ch. 4.
+[Marquardt 1963] Marquardt, D. W. (1963). An algorithm for least-squares
+    estimation of nonlinear parameters. Journal of the Society for Industrial
+    and Applied Mathematics 11(2), 431-441.
 [Huber 1964] Huber, P. J. (1964). Robust estimation of a location parameter.
     Annals of Mathematical Statistics 35(1), 73-101.
 [Holland & Welsch 1977] Holland, P. W. & Welsch, R. E. (1977). Robust
@@ -211,9 +217,7 @@ def as_node_grid(grid) -> NodeGrid:
     if not (np.isfinite(g.spacing_m) and g.spacing_m > 0):
         raise InversionError(f"grid spacing {g.spacing_m!r} m must be a positive number")
     if g.nx < 3 or g.ny < 3:
-        raise InversionError(
-            f"grid of {g.nx} x {g.ny} nodes is too small; the cubic surface needs at least 3 x 3"
-        )
+        raise InversionError(f"grid of {g.nx} x {g.ny} nodes is too small; the cubic surface needs at least 3 x 3")
     return g
 
 
@@ -587,9 +591,7 @@ def _second_difference_operator(g: NodeGrid):
     add([idx[:-2, :], idx[1:-1, :], idx[2:, :]], [1.0, -2.0, 1.0])
     s2 = np.sqrt(2.0)
     add([idx[:-1, :-1], idx[:-1, 1:], idx[1:, :-1], idx[1:, 1:]], [s2, -s2, -s2, s2])
-    return sp.csr_matrix(
-        (np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(r0, g.nx * g.ny)
-    )
+    return sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(r0, g.nx * g.ny))
 
 
 def _boreholes_arrays(boreholes):
@@ -602,9 +604,7 @@ def _boreholes_arrays(boreholes):
     else:
         arr = tuple(boreholes)
         if len(arr) != 4:
-            raise InversionError(
-                f"boreholes must be (x_m, y_m, elevation_m, sigma_m) arrays; got {len(arr)} items"
-            )
+            raise InversionError(f"boreholes must be (x_m, y_m, elevation_m, sigma_m) arrays; got {len(arr)} items")
     bx, by, be, bs = (np.atleast_1d(np.asarray(a, float)) for a in arr)
     bs = np.broadcast_to(bs, bx.shape)
     if not (bx.shape == by.shape == be.shape):
@@ -793,9 +793,7 @@ class _Velocity:
         if vgrid is None:
             v0 = np.asarray(start, float)
             if v0.ndim != 0:
-                raise InversionError(
-                    f"start velocity of shape {v0.shape} needs velocity_grid; give one value in m/s"
-                )
+                raise InversionError(f"start velocity of shape {v0.shape} needs velocity_grid; give one value in m/s")
             self.grid = None
             self.nv = 1
             self.q0 = np.array([np.log(float(v0))]) if v0 > 0 else np.array([np.nan])
@@ -810,8 +808,7 @@ class _Velocity:
             )
             if v0.shape != self.grid.shape:
                 raise InversionError(
-                    f"start velocity grid has shape {v0.shape}; "
-                    f"the velocity grid is {self.grid.shape} (ny, nx)"
+                    f"start velocity grid has shape {v0.shape}; the velocity grid is {self.grid.shape} (ny, nx)"
                 )
             with np.errstate(invalid="ignore", divide="ignore"):
                 self.q0 = np.log(v0).ravel().copy()
@@ -982,9 +979,7 @@ def invert_reflector(
     DtD = (D.T @ D).tocsr()
     if bh is not None:
         bnode, bw = surface_weights(bh[0], bh[1], g)
-        B = sp.csr_matrix(
-            (bw.ravel(), (np.repeat(np.arange(bh[0].size), 16), bnode.ravel())), shape=(bh[0].size, nn)
-        )
+        B = sp.csr_matrix((bw.ravel(), (np.repeat(np.arange(bh[0].size), 16), bnode.ravel())), shape=(bh[0].size, nn))
         Wb = 1.0 / bh[3] ** 2
         BtWB = (B.T @ sp.diags(Wb) @ B).tocsr()
 
@@ -1044,6 +1039,7 @@ def invert_reflector(
     converged = False
     iterations = 0
     eps_damp = 1e-8
+    mu = 0.0
 
     def jacobian(st, wts):
         pth, _, dtdz, qcols, qvals = st
@@ -1077,7 +1073,9 @@ def invert_reflector(
         A = normal_matrix(J)
         diag = A.diagonal()
         damp = eps_damp * (np.mean(diag[:nn]) if nn else 1.0)
-        A = A + sp.diags(np.where(np.arange(npar) < nn, damp, 0.0) + np.where(diag > 0, 0.0, 1.0))
+        # Levenberg-Marquardt damping mu diag(A) of the step (the gradient is undamped,
+        # so the solution is that of Gauss-Newton); mu grows when a full step fails
+        A = A + sp.diags(np.where(np.arange(npar) < nn, damp, 0.0) + mu * diag + np.where(diag > 0, 0.0, 1.0))
         rhs = J.T @ (r[ii] * sw)
         rhs[:nn] -= lam**2 * (DtD @ z.ravel())
         if bh is not None:
@@ -1100,6 +1098,7 @@ def invert_reflector(
             if obj_new <= obj_old * (1 + 1e-12):
                 break
             alpha *= 0.5
+        mu = max(10.0 * mu, 0.1) if alpha < 1.0 else (mu / 3.0 if mu > 0.01 else 0.0)
         z, q, state = z_try, q_try, s_try
         paths = state[0]
         iterations = it

@@ -244,7 +244,7 @@ def test_valley_joint_inversion_recovers_truth(valley):
     # round trip from a flat start 10 % too fast: velocity within 0.5 %, elevation
     # within 0.5 m rms where constrained (noise 0.3 ms ~ 0.27 m of depth per pick,
     # averaged over ~100 picks per node; the curvature penalty adds a small bias).
-    # Measured: V 1799.9 +- 2.0 m/s (-0.004 %), rms 0.22 m, max 1.2 m over 373 nodes,
+    # Measured: V 1799.7 +- 2.0 m/s (-0.015 %), rms 0.21 m, max 1.2 m over 371 nodes,
     # 12 iterations, misfit 24.0 -> 0.97, all mispicks and no good pick rejected.
     assert abs(v_err) < 0.005, res.velocity_m_s
     assert rms < 0.5, rms
@@ -297,7 +297,7 @@ def test_per_gather_fits_are_biased_over_the_valley(valley):
     # the reflected wavefront is focused and the fitted velocity is far too
     # high, the depth (h = V t0 / 2) too large. Measured at the four axis shots:
     # V 2642-2736 m/s (+47 to +52 %), h 50-55 m against 35-37 m true depth
-    # (15-18 m too deep), against -0.004 % and 0.22 m rms for the joint
+    # (15-18 m too deep), against -0.015 % and 0.21 m rms for the joint
     # inversion (previous test).
     data, res = valley
     gs = _gather_set(data)
