@@ -159,9 +159,7 @@ def test_transform_known_points_epsg_definitions():
     assert abs(x[0] - 4321000.0) < 1e-6 and abs(y[0] - 3210000.0) < 1e-6
 
 
-@pytest.mark.parametrize(
-    "dst", ["EPSG:32633", "EPSG:3035", "EPSG:31256"], ids=["utm33", "laea", "gk_austria"]
-)
+@pytest.mark.parametrize("dst", ["EPSG:32633", "EPSG:3035", "EPSG:31256"], ids=["utm33", "laea", "gk_austria"])
 def test_transform_round_trip_below_1mm(dst, rng):
     lon = rng.uniform(14.0, 16.0, 500)
     lat = rng.uniform(46.5, 48.5, 500)

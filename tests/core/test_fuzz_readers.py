@@ -230,8 +230,7 @@ def test_numeric_edges_stations_boreholes(workdir, data, geographic, n):
     stations = _call(inputs.read_stations, path, crs, "EPSG:32633")
     _check_stations(stations)
     rows = "".join(
-        f"B{k},{_fmt(col['x'][k])},{_fmt(col['y'][k])},{_fmt(col['z'][k])},{_fmt(col['d'][k])}\n"
-        for k in range(n)
+        f"B{k},{_fmt(col['x'][k])},{_fmt(col['y'][k])},{_fmt(col['z'][k])},{_fmt(col['d'][k])}\n" for k in range(n)
     )
     path = _write(workdir, "b.csv", "borehole,x,y,z,depth_m\n" + rows)
     _check_boreholes(_call(inputs.read_boreholes, path, crs, "EPSG:32633", stations=stations))
@@ -239,9 +238,7 @@ def test_numeric_edges_stations_boreholes(workdir, data, geographic, n):
 
 @FUZZ
 @given(
-    values=st.lists(
-        st.tuples(_mostly(st.floats(0.1, 1999)), _mostly(st.floats(0.001, 20))), min_size=1, max_size=6
-    ),
+    values=st.lists(st.tuples(_mostly(st.floats(0.1, 1999)), _mostly(st.floats(0.001, 20))), min_size=1, max_size=6),
     sigma=_mostly(st.floats(0.001, 5)),
 )
 def test_numeric_edges_picks(workdir, values, sigma):
@@ -322,9 +319,7 @@ def _toml_scalar():
         st.integers(),  # unbounded: Python's TOML parser accepts more than 64 bits
         st.floats(allow_nan=True, allow_infinity=True),
         st.text(max_size=12),
-        st.sampled_from(
-            ["EPSG:32633", "EPSG:4326", "stations.csv", "picks.csv", "shot", "huber", "EPSG:2263"]
-        ),
+        st.sampled_from(["EPSG:32633", "EPSG:4326", "stations.csv", "picks.csv", "shot", "huber", "EPSG:2263"]),
     )
 
 
@@ -335,11 +330,7 @@ def _toml_literal(v):
         return str(v)
     if isinstance(v, float):
         return "nan" if math.isnan(v) else ("inf" if v == math.inf else "-inf" if v == -math.inf else repr(v))
-    return (
-        '"'
-        + "".join(c if c.isalnum() or c in " .:_-" else f"\\u{ord(c):04x}" for c in v if ord(c) < 0x10000)
-        + '"'
-    )
+    return '"' + "".join(c if c.isalnum() or c in " .:_-" else f"\\u{ord(c):04x}" for c in v if ord(c) < 0x10000) + '"'
 
 
 SURVEY_KEYS = st.sampled_from(["name", "name", "crs", "crs", "work_crs", "work_crs", "epsg"])  # weights

@@ -81,9 +81,7 @@ def test_line_numbers_with_any_line_end(tmp_path, newline):
 def test_geographic_stations_end_in_utm(tmp_path):
     lon = np.array([15.20, 15.201, 15.2005, 15.2005])
     lat = np.array([48.10, 48.10, 48.0995, 48.1005])
-    rows = "\n".join(
-        f"L{1 + k // 2},{k % 2},{lo:.7f},{la:.7f},300" for k, (lo, la) in enumerate(zip(lon, lat))
-    )
+    rows = "\n".join(f"L{1 + k // 2},{k % 2},{lo:.7f},{la:.7f},300" for k, (lo, la) in enumerate(zip(lon, lat)))
     st = inputs.read_stations(write(tmp_path / "g.csv", "line,station,x,y,z\n" + rows + "\n"), "EPSG:4326")
     # reference: pyproj itself, x = longitude first (always_xy)
     tr = pyproj.Transformer.from_crs(4326, 32633, always_xy=True)
@@ -150,9 +148,7 @@ def test_picks_checked_against_stations_only_when_given(tmp_path):
     text = PICKS + "L1,1,7,33.0\n"
     path = write(tmp_path / "p.csv", text)
     assert len(inputs.read_picks(path, 0.5)) == 4
-    with pytest.raises(
-        InputFileError, match=r"line 5, field 'receiver': receiver '7' is not a station of line 'L1'"
-    ):
+    with pytest.raises(InputFileError, match=r"line 5, field 'receiver': receiver '7' is not a station of line 'L1'"):
         inputs.read_picks(path, 0.5, st)
 
 
@@ -222,9 +218,7 @@ def test_read_boreholes(tmp_path):
 def test_far_borehole_warns_with_distance(tmp_path):
     st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
     text = "borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\nFAR,500000,5501000,300,12\n"
-    with pytest.warns(
-        ReflectorMapperWarning, match=r"line 3, field 'x': borehole 'FAR' is 995 m from the nearest"
-    ):
+    with pytest.warns(ReflectorMapperWarning, match=r"line 3, field 'x': borehole 'FAR' is 995 m from the nearest"):
         inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, stations=st)
 
 
@@ -247,9 +241,7 @@ def test_every_settings_field_is_accepted_with_its_default():
 
 
 def test_settings_from_toml(tmp_path):
-    extra = (
-        "[processing]\ndefault_sigma_ms = 1\nmin_picks = 8\ncell_size_m = 2.5\ncalibrate_velocity = true\n"
-    )
+    extra = "[processing]\ndefault_sigma_ms = 1\nmin_picks = 8\ncell_size_m = 2.5\ncalibrate_velocity = true\n"
     extra += 'surface_method = "spline"\n'
     s = inputs.load_survey(survey_dir(tmp_path, extra)).settings
     assert s.default_sigma_ms == 1.0 and isinstance(s.default_sigma_ms, float)  # int accepted for a float
@@ -290,9 +282,7 @@ def test_settings_from_toml(tmp_path):
 )
 def test_settings_errors(tmp_path, key, value, match):
     path = survey_dir(tmp_path, f"[processing]\n{key} = {value}\n")
-    with pytest.raises(
-        SurveyConfigError, match=rf"^survey\.toml, line 10, field 'processing\.{key}': .*{match}"
-    ):
+    with pytest.raises(SurveyConfigError, match=rf"^survey\.toml, line 10, field 'processing\.{key}': .*{match}"):
         inputs.load_survey(path)
 
 
@@ -385,13 +375,9 @@ def test_missing_toml_and_not_utf8(tmp_path):
 
 def test_inputs_are_never_modified(tmp_path):
     path = survey_dir(tmp_path, boreholes="borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\n")
-    before = {
-        p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()
-    }
+    before = {p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()}
     inputs.load_survey(path)
-    after = {
-        p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()
-    }
+    after = {p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()}
     assert before == after  # same files, same bytes, untouched
 
 
