@@ -316,6 +316,7 @@ class QcDock(QDockWidget):
         self.setWidget(body)
         survey = QgsProject.instance().readEntry(PROJECT_SCOPE, PROJECT_KEY_SURVEY, "")[0]
         if survey:
+            survey = QgsProject.instance().readPath(survey)  # stored relative to the project file
             try:
                 self.set_survey(survey)
             except Exception as err:

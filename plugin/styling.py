@@ -27,7 +27,6 @@ import os
 
 from qgis.core import (
     QgsColorRampShader,
-    QgsFeatureRequest,
     QgsLayerTreeGroup,
     QgsLineSymbol,
     QgsMarkerSymbol,
@@ -119,18 +118,25 @@ def _field_exists(layer, name):
     return layer.fields().indexOf(name) >= 0
 
 
-def style_contours(layer: QgsVectorLayer, value_field="elevation_m", colour="#5a3d1e") -> None:
-    """Thin contours, heavier index contours (field ``index`` true), index ones labelled."""
+def style_contours(layer: QgsVectorLayer, value_field="elevation_m", colour="#5a3d1e", kind=None) -> None:
+    """Thin contours, heavier index contours (field ``index`` true), index ones labelled.
+
+    ``kind`` ("elevation" or "depth") draws only the contours of that kind when
+    the layer holds both (field ``kind``); this is done with renderer and label
+    filters, not a subset string (a subset string on one GeoPackage layer made
+    QGIS 3.22 fail to open further layers of the same file).
+    """
     has_index = _field_exists(layer, "index")
+    only = f"\"kind\" = '{kind}'" if kind and _field_exists(layer, "kind") else "TRUE"
     thin = QgsLineSymbol.createSimple({"line_color": colour, "line_width": "0.25", "line_width_unit": "MM"})
     heavy = QgsLineSymbol.createSimple({"line_color": colour, "line_width": "0.6", "line_width_unit": "MM"})
+    root = QgsRuleBasedRenderer.Rule(None)
     if has_index:
-        root = QgsRuleBasedRenderer.Rule(None)
-        root.appendChild(QgsRuleBasedRenderer.Rule(heavy, 0, 0, '"index"', tr("index contour")))
-        root.appendChild(QgsRuleBasedRenderer.Rule(thin, 0, 0, 'NOT "index"', tr("contour")))
-        layer.setRenderer(QgsRuleBasedRenderer(root))
+        root.appendChild(QgsRuleBasedRenderer.Rule(heavy, 0, 0, f'{only} AND "index"', tr("index contour")))
+        root.appendChild(QgsRuleBasedRenderer.Rule(thin, 0, 0, f'{only} AND NOT "index"', tr("contour")))
     else:
-        layer.setRenderer(QgsSingleSymbolRenderer(thin))
+        root.appendChild(QgsRuleBasedRenderer.Rule(thin, 0, 0, only, tr("contour")))
+    layer.setRenderer(QgsRuleBasedRenderer(root))
     settings = QgsPalLayerSettings()
     settings.isExpression = True
     settings.fieldName = f'format_number("{value_field}", 1)'
@@ -148,10 +154,10 @@ def style_contours(layer: QgsVectorLayer, value_field="elevation_m", colour="#5a
     buf.setColor(QColor("white"))
     fmt.setBuffer(buf)
     settings.setFormat(fmt)
-    if has_index:
-        props = settings.dataDefinedProperties()
-        props.setProperty(QgsPalLayerSettings.Show, QgsProperty.fromExpression('"index"'))
-        settings.setDataDefinedProperties(props)
+    props = settings.dataDefinedProperties()
+    props.setProperty(QgsPalLayerSettings.Show,
+                      QgsProperty.fromExpression(f'{only} AND "index"' if has_index else only))
+    settings.setDataDefinedProperties(props)
     layer.setLabeling(QgsVectorLayerSimpleLabeling(settings))
     layer.setLabelsEnabled(True)
     layer.triggerRepaint()
@@ -170,7 +176,7 @@ def style_shots(layer: QgsVectorLayer) -> None:
                                                tr("fit ok")))
     root.appendChild(QgsRuleBasedRenderer.Rule(
         marker(FAILED_COLOUR, "cross2", "3.2"), 0, 0,
-        "\"status\" IN ('failed', 'not_fitted', 'too_few_picks', 'error') OR \"velocity_m_s\" IS NULL",
+        "\"velocity_m_s\" IS NULL OR \"status\" = 'too_few_picks'",
         tr("not fitted")))
     root.appendChild(QgsRuleBasedRenderer.Rule(marker(FLAGGED_COLOUR, "triangle", "3.0"), 0, 0, "ELSE",
                                                tr("fitted, flagged")))
@@ -231,7 +237,12 @@ def style_dips(layer: QgsVectorLayer, measured: bool = True, label_size: float =
     symbol = strike_dip_symbol(colour, bar_mm=7.0 if measured else 5.5, tick_mm=2.4 if measured else 1.9,
                                width_mm=0.5 if measured else 0.35)
     symbol.setDataDefinedAngle(QgsProperty.fromExpression(grid_north_rotation_expression()))
-    layer.setRenderer(QgsSingleSymbolRenderer(symbol))
+    # flagged rows (no dip: e.g. line directions too close) carry NULL values and are not drawn
+    root = QgsRuleBasedRenderer.Rule(None)
+    label = tr("dip and strike, crossing lines") if measured else tr("dip and strike, from surface")
+    root.appendChild(QgsRuleBasedRenderer.Rule(
+        symbol, 0, 0, '"dip_deg" IS NOT NULL AND "strike_deg" IS NOT NULL', label))
+    layer.setRenderer(QgsRuleBasedRenderer(root))
     settings = QgsPalLayerSettings()
     settings.isExpression = True
     settings.fieldName = 'format_number("dip_deg", 0)'
@@ -264,8 +275,10 @@ def style_dips(layer: QgsVectorLayer, measured: bool = True, label_size: float =
 VECTOR_LAYERS = (
     ("dip_measurements", "Dip and strike (crossing lines)", lambda lyr: style_dips(lyr, True), True),
     ("surface_dips", "Dip and strike (from surface)", lambda lyr: style_dips(lyr, False), False),
-    ("contours", "Reflector elevation contours", lambda lyr: style_contours(lyr, "elevation_m"), True),
-    ("contours", "Reflector depth contours", lambda lyr: style_contours(lyr, "depth_m", "#3b2f6b"), False),
+    ("contours", "Reflector elevation contours",
+     lambda lyr: style_contours(lyr, "elevation_m", kind="elevation"), True),
+    ("contours", "Reflector depth contours",
+     lambda lyr: style_contours(lyr, "depth_m", "#3b2f6b", kind="depth"), False),
     ("shots", "Shots (fit status)", style_shots, True),
     ("boreholes", "Boreholes", lambda lyr: style_points(lyr, "#f5f5f5", "circle", "2.8"), True),
     ("misties", "Line misties", None, False),
@@ -278,17 +291,6 @@ RASTER_LAYERS = (
     ("reflector_elevation.tif", "Reflector elevation", ELEVATION_RAMP, "m", False),
     ("depth_sigma.tif", "Depth standard deviation", SIGMA_RAMP, "m", False),
 )
-
-
-def _contour_subset(layer, display):
-    """Show elevation or depth contours from a contours layer that holds both kinds."""
-    if not _field_exists(layer, "kind"):
-        return
-    kinds = {f["kind"] for f in layer.getFeatures(QgsFeatureRequest().setNoAttributes()
-                                                  .setSubsetOfAttributes(["kind"], layer.fields()))}
-    want = "depth" if "depth" in display else "elevation"
-    if want in kinds:
-        layer.setSubsetString(f"\"kind\" = '{want}'")
 
 
 def gpkg_layer_names(gpkg_path: str) -> list:
@@ -326,8 +328,6 @@ def load_results(out_dir: str, project: QgsProject = None, group_name: str = GRO
         layer = QgsVectorLayer(f"{gpkg}|layername={table}", tr(display), "ogr")
         if not layer.isValid():
             continue
-        if table == "contours":
-            _contour_subset(layer, display)
         if styler is not None:
             styler(layer)
         project.addMapLayer(layer, False)

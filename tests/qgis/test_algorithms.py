@@ -27,6 +27,7 @@ from qgis.core import (  # noqa: E402
 from qgis.PyQt.QtCore import QVariant  # noqa: E402
 
 from reflector_mapper.core import inputs, layers, pipeline, structure  # noqa: E402
+from reflector_mapper.plugin.algorithms.run_survey import METHODS  # noqa: E402
 from reflector_mapper.plugin.feedback import FeedbackProgress  # noqa: E402
 
 
@@ -232,12 +233,14 @@ def test_feedback_adapter():
     FeedbackProgress(None).info("nothing")  # no feedback: silently ignored
 
 
+@pytest.mark.slow
 def test_run_survey_equals_core(provider, sample_survey, core_results, tmp_path):
     from osgeo import gdal
 
     core_out, _result = core_results
     out = tmp_path / "results"
-    res = run("runsurvey", {"SURVEY": str(sample_survey), "OUTPUT": str(out), "LOAD_RESULTS": False})
+    res = run("runsurvey", {"SURVEY": str(sample_survey), "OUTPUT": str(out), "LOAD_RESULTS": False,
+                            "METHOD": METHODS.index("kriging")})
     assert res["OUTPUT"] == str(out)
     for key, name in (("GEOPACKAGE", "survey.gpkg"), ("DEPTH", "reflector_depth.tif"),
                       ("ELEVATION", "reflector_elevation.tif"), ("DEPTH_SIGMA", "depth_sigma.tif"),
@@ -250,13 +253,19 @@ def test_run_survey_equals_core(provider, sample_survey, core_results, tmp_path)
         assert a.featureCount() == b.featureCount() > 0, table
         assert [f.name() for f in a.fields()] == [f.name() for f in b.fields()]
         for fa, fb in zip(a.getFeatures(), b.getFeatures()):
-            assert fa.attributes() == fb.attributes()
-            assert fa.geometry().equals(fb.geometry())
+            for va, vb in zip(fa.attributes(), fb.attributes()):
+                if isinstance(vb, float):
+                    # two runs of the core's iterative, threaded fits agree to rounding (seen: 3e-15)
+                    assert va == pytest.approx(vb, rel=1e-9, abs=1e-9)
+                else:
+                    assert va == vb
+            assert fa.geometry().asWkt(3) == fb.geometry().asWkt(3)  # to the millimetre
         del a, b
     for name in ("reflector_depth.tif", "reflector_elevation.tif", "depth_sigma.tif"):
-        ra = gdal.Open(str(out / name)).ReadAsArray()
-        rb = gdal.Open(str(core_out / name)).ReadAsArray()
-        np.testing.assert_array_equal(ra, rb)
+        da, db = gdal.Open(str(out / name)), gdal.Open(str(core_out / name))
+        # float32 grids of two runs: equal to float32 rounding of values of a few hundred metres
+        np.testing.assert_allclose(da.ReadAsArray(), db.ReadAsArray(), rtol=0, atol=1e-4, equal_nan=True)
+        da = db = None
 
 
 def test_run_survey_loads_styled_group(provider, sample_survey, core_results, tmp_path):

@@ -76,7 +76,7 @@ def test_run_fit_gathers(qp_env, sample_survey, tmp_path):
 def test_run_whole_survey(qp_env, sample_survey, tmp_path):
     out_dir = tmp_path / "results"
     out = qgis_process(qp_env, "run", "reflectormapper:runsurvey", "--", f"SURVEY={sample_survey}",
-                       f"OUTPUT={out_dir}", "LOAD_RESULTS=false")
+                       f"OUTPUT={out_dir}", "LOAD_RESULTS=false", "METHOD=2")  # 2 = kriging
     assert out.returncode == 0, out.stdout + out.stderr
     for name in ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
                  "report.html"):

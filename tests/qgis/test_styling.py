@@ -8,6 +8,7 @@ the symbol on the dip side.
 """
 
 import math
+import shutil
 
 import numpy as np
 import pytest
@@ -181,7 +182,131 @@ def test_measured_and_surface_symbols_differ(qgis_app):
     a, b = dip_layer(45.0), dip_layer(45.0)
     styling.style_dips(a, measured=True)
     styling.style_dips(b, measured=False)
-    ca = a.renderer().symbol().color().name()
-    cb = b.renderer().symbol().color().name()
-    assert ca != cb
-    assert a.renderer().symbol().symbolLayer(0).size() > b.renderer().symbol().symbolLayer(0).size()
+    sa = a.renderer().rootRule().children()[0].symbol()
+    sb = b.renderer().rootRule().children()[0].symbol()
+    assert sa.color().name() != sb.color().name()
+    assert sa.symbolLayer(0).size() > sb.symbolLayer(0).size()
+
+
+# --------------------------------------------------------------------------------- the styled group
+def _pixel(image, x, y):
+    c = QColor(image.pixel(int(round(x)), int(round(y))))
+    return np.array([c.red(), c.green(), c.blue()], float)
+
+
+def _ramp_colour(ramp, t):
+    pos = np.array([p for p, _ in ramp])
+    rgb = np.array([[QColor(c).red(), QColor(c).green(), QColor(c).blue()] for _, c in ramp], float)
+    return np.array([np.interp(t, pos, rgb[:, k]) for k in range(3)])
+
+
+@pytest.mark.slow
+def test_styled_group_renders(qgis_app, core_results, tmp_path):
+    from osgeo import gdal
+    from qgis.core import QgsProject, QgsRasterLayer
+
+    from reflector_mapper.plugin.make_sample_project import full_extent, render_png
+
+    out_dir, _ = core_results
+    project = QgsProject.instance()
+    group = styling.load_results(str(out_dir), project)
+    layers = styling.group_layers(group)
+    names = [lyr.name() for lyr in layers]
+    assert names[0].startswith("Dip and strike") and "Reflector depth below ground" in names
+    crs = layers[0].crs()
+    extent = full_extent(layers)
+    png = tmp_path / "group.png"
+    image = render_png(layers, png, crs, extent, size=(800, 640))
+    assert png.is_file() and png.stat().st_size > 10_000
+    white = sum(QColor(image.pixel(x, y)).name() == "#ffffff" for x in range(0, 800, 8) for y in range(0, 640, 8))
+    assert white < 0.6 * (100 * 80)  # the map is drawn, not blank
+
+    # the depth ramp: the colour at a cell is the ramp's colour for that cell's depth
+    depth = next(lyr for lyr in layers if isinstance(lyr, QgsRasterLayer) and "depth" in lyr.name().lower())
+    legend = [label for label, _colour in depth.renderer().legendSymbologyItems()]
+    assert len(legend) == len(styling.DEPTH_RAMP) and all(text.endswith(" m") for text in legend)
+    ds = gdal.Open(depth.source())
+    band = ds.GetRasterBand(1)
+    arr = band.ReadAsArray().astype(float)
+    if band.GetNoDataValue() is not None:
+        arr[arr == band.GetNoDataValue()] = np.nan
+    gt = ds.GetGeoTransform()
+    band = None
+    ds = None
+    lo, hi = np.nanmin(arr), np.nanmax(arr)
+    only_raster = render_png([depth], None, crs, extent, size=(800, 640))
+    from qgis.core import QgsMapSettings, QgsPointXY
+    from qgis.PyQt.QtCore import QSize
+
+    ms = QgsMapSettings()
+    ms.setDestinationCrs(crs)
+    ms.setOutputSize(QSize(800, 640))
+    ms.setExtent(extent)
+    m2p = ms.mapToPixel()
+    rows, cols = np.nonzero(np.isfinite(arr))
+    checked = 0
+    for k in np.linspace(0, len(rows) - 1, 25).astype(int):
+        r, c = rows[k], cols[k]
+        # cell centre; skip cells at the edge of the mask (their pixel may straddle nodata)
+        if not np.all(np.isfinite(arr[max(r - 1, 0): r + 2, max(c - 1, 0): c + 2])):
+            continue
+        x = gt[0] + (c + 0.5) * gt[1]
+        y = gt[3] + (r + 0.5) * gt[5]
+        p = m2p.transform(QgsPointXY(x, y))
+        want = _ramp_colour(styling.DEPTH_RAMP, (arr[r, c] - lo) / (hi - lo))
+        got = _pixel(only_raster, p.x(), p.y())
+        # 8-bit colours, linear interpolation between the stops: within a few levels
+        assert np.abs(got - want).max() <= 6, (arr[r, c], got, want)
+        checked += 1
+    assert checked >= 10
+
+    # shots coloured by fit status (all ok in the sample: green)
+    shots = next(lyr for lyr in layers if lyr.name().startswith("Shots"))
+    shots_only = render_png([shots], None, crs, extent, size=(800, 640))
+    f = next(shots.getFeatures())
+    assert f["status"] == "ok"
+    p = m2p.transform(f.geometry().asPoint())
+    np.testing.assert_allclose(_pixel(shots_only, p.x(), p.y()), _ramp_colour([(0, styling.STATUS_COLOURS["ok"]),
+                                                                              (1, styling.STATUS_COLOURS["ok"])], 0),
+                               atol=3)
+
+    # labelled contours: labels add pixels; index contours are drawn heavier
+    contours = next(lyr for lyr in layers if lyr.name() == "Reflector elevation contours")
+    contours.setLabelsEnabled(False)
+    plain = render_png([contours], None, crs, extent, size=(800, 640))
+    contours.setLabelsEnabled(True)
+    labelled = render_png([contours], None, crs, extent, size=(800, 640))
+    changed = sum(plain.pixel(x, y) != labelled.pixel(x, y) for x in range(0, 800, 2) for y in range(0, 640, 2))
+    assert changed > 50
+    rules = contours.renderer().rootRule().children()
+    assert rules[0].symbol().width() > rules[1].symbol().width()
+    assert "index" in rules[0].filterExpression() and "'elevation'" in rules[0].filterExpression()
+
+
+def test_sample_project_builder(qgis_app, core_results, tmp_path):
+    from qgis.core import QgsProject
+
+    from reflector_mapper.plugin.make_sample_project import build_project
+    from reflector_mapper.plugin.qc_dock import PROJECT_KEY_SURVEY, PROJECT_SCOPE
+
+    out_dir, _ = core_results
+    results = tmp_path / "results"
+    shutil.copytree(out_dir, results)
+    (tmp_path / "survey.toml").write_text("# placeholder\n")
+    qgz = tmp_path / "demo.qgz"
+    build_project(results, qgz, tmp_path / "survey.toml")
+    assert qgz.is_file()
+    QgsProject.instance().clear()
+    project = QgsProject.instance()
+    assert project.read(str(qgz))
+    group = project.layerTreeRoot().findGroup(styling.GROUP_NAME)
+    assert group is not None and len(group.findLayers()) >= 8
+    assert all(node.layer().isValid() for node in group.findLayers())
+    stored = project.readEntry(PROJECT_SCOPE, PROJECT_KEY_SURVEY, "")[0]
+    assert stored.startswith("./") or not stored.startswith("/")  # relative to the project
+    assert project.readPath(stored) == str(tmp_path / "survey.toml")
+    # the written project keeps the styles (rule-based dips rotated by strike)
+    dips = next(n.layer() for n in group.findLayers() if n.layer().name().startswith("Dip and strike (crossing"))
+    sym = dips.renderer().rootRule().children()[0].symbol()
+    assert "strike_deg" in sym.dataDefinedAngle().expressionString()
+    project.clear()
