@@ -82,6 +82,7 @@ __all__ = [
     "MIN_SIGMA_M",
     "MIN_SIGMA_MS",
     "MIN_TIME_MS",
+    "CsvTable",
     "load_survey",
     "read_boreholes",
     "read_csv_table",
