@@ -441,6 +441,7 @@ def test_curvature_flags_reasons():
         (dict(velocity=-1.0), "velocity"),
         (dict(receivers=np.zeros((2, 3))), "receiver_xyz"),
         (dict(boreholes=([0.0], [0.0], [1.0], [0.0])), "borehole sigma_m"),
+        (dict(velocity=np.full((2, 2), 1800.0)), "needs velocity_grid"),
     ],
     ids=[
         "small-grid",
@@ -451,6 +452,7 @@ def test_curvature_flags_reasons():
         "negative-v",
         "shapes",
         "borehole-sigma",
+        "velocity-array",
     ],
 )
 def test_input_errors(bad, match):
