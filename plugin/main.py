@@ -83,8 +83,9 @@ class ReflectorMapperPlugin:
         message = deps.missing_message(self.missing)
         QgsMessageLog.logMessage(message, LOG_TAG, Qgis.Critical)
         names = ", ".join(m.name for m in self.missing)
-        short = tr("missing Python package(s): {names}. See the log panel (Reflector Mapper) for how to "
-                   "install them.").format(names=names)
+        short = tr(
+            "missing Python package(s): {names}. See the log panel (Reflector Mapper) for how to install them."
+        ).format(names=names)
         self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
 
     def open_run_dialog(self):
@@ -102,4 +103,6 @@ class ReflectorMapperPlugin:
 
             self.dock = QcDock(self.iface, self.iface.mainWindow())
             self.iface.addDockWidget(Qt.RightDockWidgetArea, self.dock)
+        elif visible:
+            self.dock.load_from_project()  # a run may have set a new survey since
         self.dock.setVisible(bool(visible))

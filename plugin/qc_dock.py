@@ -15,6 +15,8 @@ widget so that it can be tested on its own.
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 from qgis.core import QgsProject, QgsVectorLayer
 from qgis.PyQt.QtCore import QCoreApplication, Qt
@@ -96,8 +98,9 @@ class GatherQc:
         src = self.gathers.source_xyz[rows]
         offset = np.sum(normals * src, axis=1) + h
         with np.errstate(invalid="ignore"):
-            return image_source_traveltime(src, self.gathers.receiver_xyz[rows], normals, offset,
-                                           self.fits.velocity_m_s[g])
+            return image_source_traveltime(
+                src, self.gathers.receiver_xyz[rows], normals, offset, self.fits.velocity_m_s[g]
+            )
 
     def parameters(self, g: int) -> dict:
         """The fitted parameters of gather ``g`` in display units (ms for times)."""
@@ -126,7 +129,8 @@ class GatherQc:
         exclusions change; the batched fit is simply run on all of them.
         """
         self.fits = self._inversion.fit_shot_gathers(
-            self.gathers, self.survey.settings, exclude=self.exclude.copy(), progress=progress)
+            self.gathers, self.survey.settings, exclude=self.exclude.copy(), progress=progress
+        )
         return self.fits
 
     def shot_attributes(self, g: int) -> dict:
@@ -165,7 +169,8 @@ def update_shots_layer(layer: QgsVectorLayer, line, shot, values: dict) -> int:
     if fields.indexOf("line") < 0 or fields.indexOf("shot") < 0:
         return 0
     expr = "\"line\" = '{}' AND to_string(\"shot\") = '{}'".format(
-        str(line).replace("'", "''"), str(shot).replace("'", "''"))
+        str(line).replace("'", "''"), str(shot).replace("'", "''")
+    )
     from qgis.core import QgsFeatureRequest
 
     fids = [f.id() for f in layer.getFeatures(QgsFeatureRequest().setFilterExpression(expr))]
@@ -176,8 +181,7 @@ def update_shots_layer(layer: QgsVectorLayer, line, shot, values: dict) -> int:
             for name, i in idx.items():
                 layer.changeAttributeValue(fid, i, values[name])
     else:
-        layer.dataProvider().changeAttributeValues({fid: {i: values[name] for name, i in idx.items()}
-                                                    for fid in fids})
+        layer.dataProvider().changeAttributeValues({fid: {i: values[name] for name, i in idx.items()} for fid in fids})
         layer.reload()
     layer.triggerRepaint()
     return len(fids)
@@ -253,8 +257,9 @@ class _Plots:
         o = np.argsort(x)
         for a, b in zip(o[:-1], o[1:]):
             if finite[a] and finite[b]:
-                self.scene.addLine((x[a] - x0) * sx, (model_ms[a] - t0) * st,
-                                   (x[b] - x0) * sx, (model_ms[b] - t0) * st, pen)
+                self.scene.addLine(
+                    (x[a] - x0) * sx, (model_ms[a] - t0) * st, (x[b] - x0) * sx, (model_ms[b] - t0) * st, pen
+                )
         for xi, ti, ok in zip(x, t_ms, used):
             colour = QColor("#1f4e79" if ok else "#c0392b")
             self.scene.addEllipse((xi - x0) * sx - 2, (ti - t0) * st - 2, 4, 4, QPen(colour), QBrush(colour))
@@ -299,8 +304,9 @@ class QcDock(QDockWidget):
         self.params_label.setWordWrap(True)
         lower_lay.addWidget(self.params_label)
         self.table = QTableWidget(0, len(self.COLUMNS), lower)
-        self.table.setHorizontalHeaderLabels([tr("use"), tr("receiver"), tr("offset (m)"), tr("time (ms)"),
-                                              tr("residual (ms)"), tr("flag")])
+        self.table.setHorizontalHeaderLabels(
+            [tr("use"), tr("receiver"), tr("offset (m)"), tr("time (ms)"), tr("residual (ms)"), tr("flag")]
+        )
         self.table.itemChanged.connect(self._item_changed)
         lower_lay.addWidget(self.table)
         buttons = QHBoxLayout()
@@ -314,13 +320,25 @@ class QcDock(QDockWidget):
         splitter.addWidget(lower)
         lay.addWidget(splitter, 1)
         self.setWidget(body)
-        survey = QgsProject.instance().readEntry(PROJECT_SCOPE, PROJECT_KEY_SURVEY, "")[0]
-        if survey:
-            survey = QgsProject.instance().readPath(survey)  # stored relative to the project file
-            try:
-                self.set_survey(survey)
-            except Exception as err:
-                self.params_label.setText(tr("Could not open the survey: {err}").format(err=err))
+        self.load_from_project()
+
+    def load_from_project(self):
+        """Open the survey remembered by the project (set by the whole-survey algorithm), if any."""
+        project = QgsProject.instance()
+        survey = project.readEntry(PROJECT_SCOPE, PROJECT_KEY_SURVEY, "")[0]
+        if not survey:
+            return False
+        survey = project.readPath(survey)  # stored relative to the project file
+        if self.qc is not None and os.path.abspath(self.qc.survey_path) == os.path.abspath(survey):
+            return True
+        from ..core.errors import ReflectorMapperError
+
+        try:
+            self.set_survey(survey)
+        except (OSError, ReflectorMapperError) as err:  # a stale path or a survey that no longer reads
+            self.params_label.setText(tr("Could not open the survey: {err}").format(err=err))
+            return False
+        return True
 
     # -- survey and shot choice ---------------------------------------------------------------
     def set_survey(self, survey_path, shots_layer=None):
@@ -402,7 +420,7 @@ class QcDock(QDockWidget):
             value, se = p[key]
             if value != value:  # NaN
                 return "–"
-            return (fmt.format(value) + (" ± " + fmt.format(se) if se is not None and se == se else ""))
+            return fmt.format(value) + (" ± " + fmt.format(se) if se is not None and se == se else "")
 
         return (
             f"<b>V</b> = {pm('velocity_m_s', '{:.0f}')} m/s &nbsp; "

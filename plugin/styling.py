@@ -155,8 +155,9 @@ def style_contours(layer: QgsVectorLayer, value_field="elevation_m", colour="#5a
     fmt.setBuffer(buf)
     settings.setFormat(fmt)
     props = settings.dataDefinedProperties()
-    props.setProperty(QgsPalLayerSettings.Show,
-                      QgsProperty.fromExpression(f'{only} AND "index"' if has_index else only))
+    props.setProperty(
+        QgsPalLayerSettings.Show, QgsProperty.fromExpression(f'{only} AND "index"' if has_index else only)
+    )
     settings.setDataDefinedProperties(props)
     layer.setLabeling(QgsVectorLayerSimpleLabeling(settings))
     layer.setLabelsEnabled(True)
@@ -170,36 +171,48 @@ def style_shots(layer: QgsVectorLayer) -> None:
 
     def marker(colour, shape="circle", size="2.6"):
         return QgsMarkerSymbol.createSimple(
-            {"name": shape, "color": colour, "outline_color": "#202020", "outline_width": "0.2", "size": size})
+            {"name": shape, "color": colour, "outline_color": "#202020", "outline_width": "0.2", "size": size}
+        )
 
-    root.appendChild(QgsRuleBasedRenderer.Rule(marker(STATUS_COLOURS["ok"]), 0, 0, "\"status\" = 'ok'",
-                                               tr("fit ok")))
-    root.appendChild(QgsRuleBasedRenderer.Rule(
-        marker(FAILED_COLOUR, "cross2", "3.2"), 0, 0,
-        "\"velocity_m_s\" IS NULL OR \"status\" = 'too_few_picks'",
-        tr("not fitted")))
-    root.appendChild(QgsRuleBasedRenderer.Rule(marker(FLAGGED_COLOUR, "triangle", "3.0"), 0, 0, "ELSE",
-                                               tr("fitted, flagged")))
+    root.appendChild(QgsRuleBasedRenderer.Rule(marker(STATUS_COLOURS["ok"]), 0, 0, "\"status\" = 'ok'", tr("fit ok")))
+    root.appendChild(
+        QgsRuleBasedRenderer.Rule(
+            marker(FAILED_COLOUR, "cross2", "3.2"),
+            0,
+            0,
+            '"velocity_m_s" IS NULL OR "status" = \'too_few_picks\'',
+            tr("not fitted"),
+        )
+    )
+    root.appendChild(
+        QgsRuleBasedRenderer.Rule(marker(FLAGGED_COLOUR, "triangle", "3.0"), 0, 0, "ELSE", tr("fitted, flagged"))
+    )
     layer.setRenderer(QgsRuleBasedRenderer(root))
     layer.triggerRepaint()
 
 
 def style_points(layer: QgsVectorLayer, colour: str, shape="circle", size="1.2") -> None:
     """A plain marker for stations, reflector points and boreholes."""
-    layer.setRenderer(QgsSingleSymbolRenderer(QgsMarkerSymbol.createSimple(
-        {"name": shape, "color": colour, "outline_color": "#303030", "outline_width": "0.1", "size": size})))
+    layer.setRenderer(
+        QgsSingleSymbolRenderer(
+            QgsMarkerSymbol.createSimple(
+                {"name": shape, "color": colour, "outline_color": "#303030", "outline_width": "0.1", "size": size}
+            )
+        )
+    )
 
 
 # -- strike and dip -----------------------------------------------------------------------------
 def grid_north_rotation_expression(strike_field="strike_deg") -> str:
     """Marker angle: strike plus the map-CRS azimuth of the layer's grid north at the point."""
-    north = ("degrees(azimuth(transform($geometry, @layer_crs, @map_crs), "
-             "transform(translate($geometry, 0, 10), @layer_crs, @map_crs)))")
+    north = (
+        "degrees(azimuth(transform($geometry, @layer_crs, @map_crs), "
+        "transform(translate($geometry, 0, 10), @layer_crs, @map_crs)))"
+    )
     return f'"{strike_field}" + coalesce({north}, 0)'
 
 
-def strike_dip_symbol(colour: str, bar_mm: float = 7.0, tick_mm: float = 2.4,
-                      width_mm: float = 0.5) -> QgsMarkerSymbol:
+def strike_dip_symbol(colour: str, bar_mm: float = 7.0, tick_mm: float = 2.4, width_mm: float = 0.5) -> QgsMarkerSymbol:
     """The strike-and-dip marker at angle 0: bar north-south, tick pointing east.
 
     At angle 0 the strike is north, so by the right-hand rule the dip direction
@@ -234,14 +247,16 @@ def _qpointf(x, y):
 def style_dips(layer: QgsVectorLayer, measured: bool = True, label_size: float = 8.0) -> None:
     """Strike-and-dip symbols rotated by ``strike_deg``, dip value labelled beside the tick."""
     colour = MEASURED_DIP_COLOUR if measured else SURFACE_DIP_COLOUR
-    symbol = strike_dip_symbol(colour, bar_mm=7.0 if measured else 5.5, tick_mm=2.4 if measured else 1.9,
-                               width_mm=0.5 if measured else 0.35)
+    symbol = strike_dip_symbol(
+        colour, bar_mm=7.0 if measured else 5.5, tick_mm=2.4 if measured else 1.9, width_mm=0.5 if measured else 0.35
+    )
     symbol.setDataDefinedAngle(QgsProperty.fromExpression(grid_north_rotation_expression()))
     # flagged rows (no dip: e.g. line directions too close) carry NULL values and are not drawn
     root = QgsRuleBasedRenderer.Rule(None)
     label = tr("dip and strike, crossing lines") if measured else tr("dip and strike, from surface")
-    root.appendChild(QgsRuleBasedRenderer.Rule(
-        symbol, 0, 0, '"dip_deg" IS NOT NULL AND "strike_deg" IS NOT NULL', label))
+    root.appendChild(
+        QgsRuleBasedRenderer.Rule(symbol, 0, 0, '"dip_deg" IS NOT NULL AND "strike_deg" IS NOT NULL', label)
+    )
     layer.setRenderer(QgsRuleBasedRenderer(root))
     settings = QgsPalLayerSettings()
     settings.isExpression = True
@@ -251,8 +266,10 @@ def style_dips(layer: QgsVectorLayer, measured: bool = True, label_size: float =
     props = QgsPropertyCollection()
     # (labels are placed in the map's own frame; the offset is turned with the map by QGIS)
     angle = grid_north_rotation_expression() + " + 90"
-    props.setProperty(QgsPalLayerSettings.OffsetXY, QgsProperty.fromExpression(
-        f"array_to_string(array(4 * sin(radians({angle})), -4 * cos(radians({angle}))))"))
+    props.setProperty(
+        QgsPalLayerSettings.OffsetXY,
+        QgsProperty.fromExpression(f"array_to_string(array(4 * sin(radians({angle})), -4 * cos(radians({angle}))))"),
+    )
     settings.setDataDefinedProperties(props)
     settings.offsetUnits = QgsUnitTypes.RenderMillimeters
     fmt = QgsTextFormat()
@@ -275,10 +292,18 @@ def style_dips(layer: QgsVectorLayer, measured: bool = True, label_size: float =
 VECTOR_LAYERS = (
     ("dip_measurements", "Dip and strike (crossing lines)", lambda lyr: style_dips(lyr, True), True),
     ("surface_dips", "Dip and strike (from surface)", lambda lyr: style_dips(lyr, False), False),
-    ("contours", "Reflector elevation contours",
-     lambda lyr: style_contours(lyr, "elevation_m", kind="elevation"), True),
-    ("contours", "Reflector depth contours",
-     lambda lyr: style_contours(lyr, "depth_m", "#3b2f6b", kind="depth"), False),
+    (
+        "contours",
+        "Reflector elevation contours",
+        lambda lyr: style_contours(lyr, "elevation_m", kind="elevation"),
+        True,
+    ),
+    (
+        "contours",
+        "Reflector depth contours",
+        lambda lyr: style_contours(lyr, "depth_m", "#3b2f6b", kind="depth"),
+        False,
+    ),
     ("shots", "Shots (fit status)", style_shots, True),
     ("boreholes", "Boreholes", lambda lyr: style_points(lyr, "#f5f5f5", "circle", "2.8"), True),
     ("misties", "Line misties", None, False),
@@ -356,5 +381,3 @@ def group_layers(group: QgsLayerTreeGroup, visible_only=True) -> list:
         if node.layer() is not None:
             out.append(node.layer())
     return out
-
-

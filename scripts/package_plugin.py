@@ -28,8 +28,7 @@ SKIP_DIRS = {"__pycache__", ".pytest_cache", ".ruff_cache", ".hypothesis", ".qgi
 SKIP_FILES = {"make_sample_project.py"}  # development tool, needs the repository's sample data
 FIXED_TIME = (1980, 1, 1, 0, 0, 0)
 MAX_BYTES = 25 * 1024 * 1024
-REQUIRED_METADATA = ("name", "qgisMinimumVersion", "description", "about", "version", "author", "email",
-                     "repository")
+REQUIRED_METADATA = ("name", "qgisMinimumVersion", "description", "about", "version", "author", "email", "repository")
 EXPECTED_METADATA = ("tracker", "homepage")
 BINARY_SUFFIXES = {".so", ".pyd", ".dll", ".dylib", ".exe", ".pyc", ".pyo", ".o", ".a"}
 
@@ -78,6 +77,27 @@ def build(out_dir: Path, repo: Path = REPO) -> Path:
     return target
 
 
+def _check_top(zf, names, top) -> list:
+    """Problems of one top-level folder of a plugin zip."""
+    problems = []
+    if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_-]*", top):
+        problems.append(f"top folder name {top!r} must be ASCII letters, digits, '_' or '-', not starting with a digit")
+    for req in ("metadata.txt", "__init__.py"):
+        if f"{top}/{req}" not in names:
+            problems.append(f"{top}/{req} missing")
+    if f"{top}/__init__.py" in names and "def classFactory" not in zf.read(f"{top}/__init__.py").decode():
+        problems.append(f"{top}/__init__.py has no classFactory")
+    if f"{top}/metadata.txt" in names:
+        parser = configparser.ConfigParser(interpolation=None)
+        parser.optionxform = str
+        parser.read_string(zf.read(f"{top}/metadata.txt").decode("utf-8"))
+        meta = dict(parser["general"]) if parser.has_section("general") else {}
+        for key in REQUIRED_METADATA + EXPECTED_METADATA:
+            if not meta.get(key, "").strip():
+                problems.append(f"{top}/metadata.txt lacks '{key}'")
+    return problems
+
+
 def check(zip_path: Path) -> list:
     """Problems of a plugin zip against the plugin repository's rules (empty list: fine)."""
     problems = []
@@ -88,25 +108,13 @@ def check(zip_path: Path) -> list:
         tops = {n.split("/", 1)[0] for n in names}
         if len(tops) != 1:
             problems.append(f"expected one top-level folder, found {sorted(tops)}")
-        top = next(iter(tops)) if tops else ""
-        if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_-]*", top):
-            problems.append(f"top folder name {top!r} must be ASCII letters, digits, '_' or '-', not starting "
-                            "with a digit")
-        for req in ("metadata.txt", "__init__.py"):
-            if f"{top}/{req}" not in names:
-                problems.append(f"{top}/{req} missing")
-        if f"{top}/__init__.py" in names and "def classFactory" not in zf.read(f"{top}/__init__.py").decode():
-            problems.append("__init__.py has no classFactory")
-        if f"{top}/metadata.txt" in names:
-            parser = configparser.ConfigParser(interpolation=None)
-            parser.optionxform = str
-            parser.read_string(zf.read(f"{top}/metadata.txt").decode("utf-8"))
-            meta = dict(parser["general"]) if parser.has_section("general") else {}
-            for key in REQUIRED_METADATA + EXPECTED_METADATA:
-                if not meta.get(key, "").strip():
-                    problems.append(f"metadata.txt lacks '{key}'")
-        licence = [n for n in names if n.split("/")[-1].upper().startswith(("LICENSE", "LICENCE", "COPYING"))
-                   and n.count("/") == 1]
+        for top in sorted(tops) or [""]:  # every top folder is checked, so problems are all listed
+            problems.extend(_check_top(zf, names, top))
+        licence = [
+            n
+            for n in names
+            if n.split("/")[-1].upper().startswith(("LICENSE", "LICENCE", "COPYING")) and n.count("/") == 1
+        ]
         if not licence:
             problems.append("no LICENSE file at the top of the plugin folder")
         else:

@@ -134,15 +134,19 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
         """Either a survey.toml, or a picks table plus a stations point layer chosen in QGIS."""
         self.addParameter(
             QgsProcessingParameterFile(
-                self.SURVEY, tr("Survey file (survey.toml); leave empty to use the layers below"),
-                behavior=QgsProcessingParameterFile.File, fileFilter=tr("Survey files (*.toml)"),
+                self.SURVEY,
+                tr("Survey file (survey.toml); leave empty to use the layers below"),
+                behavior=QgsProcessingParameterFile.File,
+                fileFilter=tr("Survey files (*.toml)"),
                 optional=True,
             )
         )
         self.addParameter(
             QgsProcessingParameterFeatureSource(
-                self.PICKS, tr("Picks table (one row per picked arrival)"),
-                [QgsProcessing.TypeVector], optional=True,
+                self.PICKS,
+                tr("Picks table (one row per picked arrival)"),
+                [QgsProcessing.TypeVector],
+                optional=True,
             )
         )
         for key, label, default in (
@@ -151,28 +155,61 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
             (self.RECEIVER_FIELD, "Receiver station field", "receiver"),
             (self.TIME_FIELD, "Two-way time field (ms)", "time_ms"),
         ):
-            self.addParameter(QgsProcessingParameterField(
-                key, tr(label), defaultValue=default, parentLayerParameterName=self.PICKS, optional=True))
-        self.addParameter(QgsProcessingParameterField(
-            self.SIGMA_FIELD, tr("Pick standard error field (ms), optional"),
-            parentLayerParameterName=self.PICKS, type=QgsProcessingParameterField.Numeric, optional=True))
+            self.addParameter(
+                QgsProcessingParameterField(
+                    key, tr(label), defaultValue=default, parentLayerParameterName=self.PICKS, optional=True
+                )
+            )
         self.addParameter(
-            QgsProcessingParameterFeatureSource(
-                self.STATIONS, tr("Stations (surveyed geophone and shot points)"),
-                [QgsProcessing.TypeVectorPoint], optional=True,
+            QgsProcessingParameterField(
+                self.SIGMA_FIELD,
+                tr("Pick standard error field (ms), optional"),
+                parentLayerParameterName=self.PICKS,
+                type=QgsProcessingParameterField.Numeric,
+                optional=True,
             )
         )
-        self.addParameter(QgsProcessingParameterField(
-            self.STATION_LINE_FIELD, tr("Stations: line field"), defaultValue="line",
-            parentLayerParameterName=self.STATIONS, optional=True))
-        self.addParameter(QgsProcessingParameterField(
-            self.STATION_FIELD, tr("Stations: station label field"), defaultValue="station",
-            parentLayerParameterName=self.STATIONS, optional=True))
-        self.addParameter(QgsProcessingParameterField(
-            self.Z_FIELD, tr("Stations: ground elevation field (m)"), defaultValue="z",
-            parentLayerParameterName=self.STATIONS, type=QgsProcessingParameterField.Numeric, optional=True))
-        self.addParameter(QgsProcessingParameterCrs(
-            self.CRS, tr("Projected CRS to work in (default: the stations layer's)"), optional=True))
+        self.addParameter(
+            QgsProcessingParameterFeatureSource(
+                self.STATIONS,
+                tr("Stations (surveyed geophone and shot points)"),
+                [QgsProcessing.TypeVectorPoint],
+                optional=True,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterField(
+                self.STATION_LINE_FIELD,
+                tr("Stations: line field"),
+                defaultValue="line",
+                parentLayerParameterName=self.STATIONS,
+                optional=True,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterField(
+                self.STATION_FIELD,
+                tr("Stations: station label field"),
+                defaultValue="station",
+                parentLayerParameterName=self.STATIONS,
+                optional=True,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterField(
+                self.Z_FIELD,
+                tr("Stations: ground elevation field (m)"),
+                defaultValue="z",
+                parentLayerParameterName=self.STATIONS,
+                type=QgsProcessingParameterField.Numeric,
+                optional=True,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterCrs(
+                self.CRS, tr("Projected CRS to work in (default: the stations layer's)"), optional=True
+            )
+        )
 
     def survey_path(self, parameters, context, feedback, workdir=None) -> str:
         """Path of a survey.toml: the one given, or one written from the two layers."""
@@ -184,27 +221,38 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
         picks = self.parameterAsSource(parameters, self.PICKS, context)
         stations = self.parameterAsSource(parameters, self.STATIONS, context)
         if picks is None or stations is None:
-            raise QgsProcessingException(tr(
-                "Give either a survey file (survey.toml) or both a picks table and a stations point "
-                "layer."))
+            raise QgsProcessingException(
+                tr("Give either a survey file (survey.toml) or both a picks table and a stations point layer.")
+            )
         if QgsWkbTypes.geometryType(stations.wkbType()) != QgsWkbTypes.PointGeometry:
             # Processing does not enforce the point-only filter in processing.run
-            raise QgsProcessingException(tr(
-                "The stations layer must be a point layer; '{name}' has {geom} geometry.").format(
-                    name=stations.sourceName(), geom=QgsWkbTypes.displayString(stations.wkbType())))
+            raise QgsProcessingException(
+                tr("The stations layer must be a point layer; '{name}' has {geom} geometry.").format(
+                    name=stations.sourceName(), geom=QgsWkbTypes.displayString(stations.wkbType())
+                )
+            )
         crs = self.parameterAsCrs(parameters, self.CRS, context)
         if not crs.isValid():
             crs = stations.sourceCrs()
         if not crs.isValid():
-            raise QgsProcessingException(tr(
-                "The stations layer has no CRS and none was chosen: choose the CRS of the survey."))
+            raise QgsProcessingException(
+                tr("The stations layer has no CRS and none was chosen: choose the CRS of the survey.")
+            )
         workdir = workdir or tempfile.mkdtemp(prefix="reflector-survey-")
         return write_survey_from_layers(
-            workdir, picks, stations, crs, context,
-            pick_fields=[self.parameterAsString(parameters, k, context) for k in (
-                self.LINE_FIELD, self.SHOT_FIELD, self.RECEIVER_FIELD, self.TIME_FIELD, self.SIGMA_FIELD)],
-            station_fields=[self.parameterAsString(parameters, k, context) for k in (
-                self.STATION_LINE_FIELD, self.STATION_FIELD, self.Z_FIELD)],
+            workdir,
+            picks,
+            stations,
+            crs,
+            context,
+            pick_fields=[
+                self.parameterAsString(parameters, k, context)
+                for k in (self.LINE_FIELD, self.SHOT_FIELD, self.RECEIVER_FIELD, self.TIME_FIELD, self.SIGMA_FIELD)
+            ],
+            station_fields=[
+                self.parameterAsString(parameters, k, context)
+                for k in (self.STATION_LINE_FIELD, self.STATION_FIELD, self.Z_FIELD)
+            ],
             feedback=feedback,
         )
 
@@ -217,8 +265,7 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
             survey = load_survey(path)
             overrides = {k: v for k, v in (overrides or {}).items() if v is not None}
             if overrides:
-                survey = dataclasses.replace(
-                    survey, settings=dataclasses.replace(survey.settings, **overrides))
+                survey = dataclasses.replace(survey, settings=dataclasses.replace(survey.settings, **overrides))
             return survey
         raise QgsProcessingException(tr("Cancelled while reading the survey."))
 
@@ -233,7 +280,8 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
 def optional_number_parameter(key, label, minimum=None, maximum=None, integer=False):
     """An optional number: empty means 'use the survey's setting'."""
     p = QgsProcessingParameterNumber(
-        key, tr(label),
+        key,
+        tr(label),
         type=QgsProcessingParameterNumber.Integer if integer else QgsProcessingParameterNumber.Double,
         optional=True,
     )
@@ -251,8 +299,7 @@ def _text(feature, name):
     return "" if value is None else str(value)
 
 
-def write_survey_from_layers(workdir, picks, stations, crs, context, pick_fields, station_fields,
-                             feedback=None) -> str:
+def write_survey_from_layers(workdir, picks, stations, crs, context, pick_fields, station_fields, feedback=None) -> str:
     """Write picks.csv, stations.csv and survey.toml from QGIS sources; return the TOML path.
 
     Station coordinates are taken from the point geometry, transformed to
@@ -262,15 +309,17 @@ def write_survey_from_layers(workdir, picks, stations, crs, context, pick_fields
     line_f, shot_f, recv_f, time_f, sigma_f = pick_fields
     for name, label in ((line_f, "line"), (shot_f, "shot"), (recv_f, "receiver"), (time_f, "time")):
         if not name or picks.fields().indexOf(name) < 0:
-            raise QgsProcessingException(tr(
-                "Picks table: choose the {label} field (field '{name}' not found).").format(
-                    label=label, name=name))
+            raise QgsProcessingException(
+                tr("Picks table: choose the {label} field (field '{name}' not found).").format(label=label, name=name)
+            )
     sline_f, station_f, z_f = station_fields
     for name, label in ((sline_f, "line"), (station_f, "station"), (z_f, "elevation")):
         if not name or stations.fields().indexOf(name) < 0:
-            raise QgsProcessingException(tr(
-                "Stations layer: choose the {label} field (field '{name}' not found).").format(
-                    label=label, name=name))
+            raise QgsProcessingException(
+                tr("Stations layer: choose the {label} field (field '{name}' not found).").format(
+                    label=label, name=name
+                )
+            )
     os.makedirs(workdir, exist_ok=True)
     transform = QgsCoordinateTransform(stations.sourceCrs(), crs, context.transformContext())
     with open(os.path.join(workdir, "stations.csv"), "w", newline="", encoding="utf-8") as fh:

@@ -50,13 +50,20 @@ class CombineLinesAlgorithm(ReflectorAlgorithm):
 
     def initAlgorithm(self, config=None):
         self.add_survey_parameters()
-        self.addParameter(optional_number_parameter(
-            self.RADIUS, "Search radius around each gather (m)", 0.1, 1.0e6))
-        self.addParameter(QgsProcessingParameterNumber(
-            self.MIN_ANGLE, tr("Least angle between line directions (degrees)"),
-            type=QgsProcessingParameterNumber.Double, defaultValue=30.0, minValue=5.0, maxValue=90.0))
-        self.addParameter(QgsProcessingParameterFeatureSink(
-            self.OUTPUT, tr("Dip measurements"), QgsProcessing.TypeVectorPoint))
+        self.addParameter(optional_number_parameter(self.RADIUS, "Search radius around each gather (m)", 0.1, 1.0e6))
+        self.addParameter(
+            QgsProcessingParameterNumber(
+                self.MIN_ANGLE,
+                tr("Least angle between line directions (degrees)"),
+                type=QgsProcessingParameterNumber.Double,
+                defaultValue=30.0,
+                minValue=5.0,
+                maxValue=90.0,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterFeatureSink(self.OUTPUT, tr("Dip measurements"), QgsProcessing.TypeVectorPoint)
+        )
 
     def processAlgorithm(self, parameters, context, feedback):
         from ...core import layers
@@ -69,6 +76,7 @@ class CombineLinesAlgorithm(ReflectorAlgorithm):
             _step, dips = combine_survey(survey, radius, angle, progress_for(feedback))
         if call.cancelled or dips is None:
             return {}
-        dest = write_core_layer(self, parameters, self.OUTPUT, context, layers.dips_layer(dips),
-                                crs_from_pyproj(survey.crs), feedback)
+        dest = write_core_layer(
+            self, parameters, self.OUTPUT, context, layers.dips_layer(dips), crs_from_pyproj(survey.crs), feedback
+        )
         return {self.OUTPUT: dest}

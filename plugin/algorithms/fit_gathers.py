@@ -36,18 +36,26 @@ class FitGathersAlgorithm(ReflectorAlgorithm):
 
     def initAlgorithm(self, config=None):
         self.add_survey_parameters()
-        self.addParameter(optional_number_parameter(
-            self.MIN_PICKS, "Fewest usable picks to fit a gather", 3, 100000, integer=True))
-        self.addParameter(optional_number_parameter(
-            self.REJECT_SIGMA, "Reject picks with |residual| above this many pick sigmas", 1.0, 1000.0))
-        self.addParameter(optional_number_parameter(
-            self.VELOCITY_MIN, "Lowest plausible overburden velocity (m/s)", 50.0, 10000.0))
-        self.addParameter(optional_number_parameter(
-            self.VELOCITY_MAX, "Highest plausible overburden velocity (m/s)", 50.0, 10000.0))
-        self.addParameter(QgsProcessingParameterFeatureSink(
-            self.SHOTS, tr("Shots (fit per gather)"), QgsProcessing.TypeVectorPoint))
-        self.addParameter(QgsProcessingParameterFeatureSink(
-            self.POINTS, tr("Reflector points"), QgsProcessing.TypeVectorPoint))
+        self.addParameter(
+            optional_number_parameter(self.MIN_PICKS, "Fewest usable picks to fit a gather", 3, 100000, integer=True)
+        )
+        self.addParameter(
+            optional_number_parameter(
+                self.REJECT_SIGMA, "Reject picks with |residual| above this many pick sigmas", 1.0, 1000.0
+            )
+        )
+        self.addParameter(
+            optional_number_parameter(self.VELOCITY_MIN, "Lowest plausible overburden velocity (m/s)", 50.0, 10000.0)
+        )
+        self.addParameter(
+            optional_number_parameter(self.VELOCITY_MAX, "Highest plausible overburden velocity (m/s)", 50.0, 10000.0)
+        )
+        self.addParameter(
+            QgsProcessingParameterFeatureSink(self.SHOTS, tr("Shots (fit per gather)"), QgsProcessing.TypeVectorPoint)
+        )
+        self.addParameter(
+            QgsProcessingParameterFeatureSink(self.POINTS, tr("Reflector points"), QgsProcessing.TypeVectorPoint)
+        )
 
     def processAlgorithm(self, parameters, context, feedback):
         overrides = {
@@ -69,10 +77,12 @@ class FitGathersAlgorithm(ReflectorAlgorithm):
         crs = crs_from_pyproj(survey.crs)
         from .base import write_core_layer
 
-        shots = write_core_layer(self, parameters, self.SHOTS, context,
-                                 layers.shots_layer(step.gathers, step.fits), crs, feedback)
-        points = write_core_layer(self, parameters, self.POINTS, context,
-                                  layers.reflector_points_layer(step.points), crs, feedback)
+        shots = write_core_layer(
+            self, parameters, self.SHOTS, context, layers.shots_layer(step.gathers, step.fits), crs, feedback
+        )
+        points = write_core_layer(
+            self, parameters, self.POINTS, context, layers.reflector_points_layer(step.points), crs, feedback
+        )
         n_ok = int((step.fits.status == "ok").sum())
         feedback.pushInfo(tr("{n} gathers fitted, {ok} with status ok.").format(n=len(step.fits), ok=n_ok))
         return {self.SHOTS: shots, self.POINTS: points}

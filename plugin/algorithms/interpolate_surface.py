@@ -95,27 +95,54 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
     )
 
     def initAlgorithm(self, config=None):
-        self.addParameter(QgsProcessingParameterFeatureSource(
-            self.INPUT, tr("Reflector points"), [QgsProcessing.TypeVectorPoint]))
-        self.addParameter(QgsProcessingParameterField(
-            self.Z_FIELD_POINTS, tr("Elevation field (m)"), defaultValue="elevation_m",
-            parentLayerParameterName=self.INPUT, type=QgsProcessingParameterField.Numeric))
-        self.addParameter(QgsProcessingParameterField(
-            self.SIGMA_FIELD_POINTS, tr("Standard error field (m)"), defaultValue="sigma_m",
-            parentLayerParameterName=self.INPUT, type=QgsProcessingParameterField.Numeric, optional=True))
-        self.addParameter(QgsProcessingParameterEnum(
-            self.METHOD, tr("Method"), options=[tr(m) for m in METHODS], defaultValue=0))
-        self.addParameter(QgsProcessingParameterEnum(
-            self.VARIOGRAM, tr("Variogram model (kriging)"), options=[tr(v) for v in VARIOGRAMS],
-            defaultValue=0))
+        self.addParameter(
+            QgsProcessingParameterFeatureSource(self.INPUT, tr("Reflector points"), [QgsProcessing.TypeVectorPoint])
+        )
+        self.addParameter(
+            QgsProcessingParameterField(
+                self.Z_FIELD_POINTS,
+                tr("Elevation field (m)"),
+                defaultValue="elevation_m",
+                parentLayerParameterName=self.INPUT,
+                type=QgsProcessingParameterField.Numeric,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterField(
+                self.SIGMA_FIELD_POINTS,
+                tr("Standard error field (m)"),
+                defaultValue="sigma_m",
+                parentLayerParameterName=self.INPUT,
+                type=QgsProcessingParameterField.Numeric,
+                optional=True,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterEnum(self.METHOD, tr("Method"), options=[tr(m) for m in METHODS], defaultValue=0)
+        )
+        self.addParameter(
+            QgsProcessingParameterEnum(
+                self.VARIOGRAM, tr("Variogram model (kriging)"), options=[tr(v) for v in VARIOGRAMS], defaultValue=0
+            )
+        )
         self.addParameter(optional_number_parameter(self.CELL_SIZE, "Cell size (m)", 0.01, 1.0e5))
         self.addParameter(optional_number_parameter(self.MAX_DISTANCE, "Masking distance (m)", 0.01, 1.0e6))
-        self.addParameter(QgsProcessingParameterNumber(
-            self.NEIGHBOURS, tr("Neighbours per estimate"), type=QgsProcessingParameterNumber.Integer,
-            defaultValue=32, minValue=3, maxValue=1000))
+        self.addParameter(
+            QgsProcessingParameterNumber(
+                self.NEIGHBOURS,
+                tr("Neighbours per estimate"),
+                type=QgsProcessingParameterNumber.Integer,
+                defaultValue=32,
+                minValue=3,
+                maxValue=1000,
+            )
+        )
         self.addParameter(QgsProcessingParameterRasterDestination(self.OUTPUT, tr("Reflector surface")))
-        self.addParameter(QgsProcessingParameterRasterDestination(
-            self.STD, tr("Standard deviation"), optional=True, createByDefault=True))
+        self.addParameter(
+            QgsProcessingParameterRasterDestination(
+                self.STD, tr("Standard deviation"), optional=True, createByDefault=True
+            )
+        )
 
     def processAlgorithm(self, parameters, context, feedback):
         from ...core.surface import GridSpec, interpolate_surface
@@ -124,19 +151,25 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         if source is None:
             raise QgsProcessingException(self.invalidSourceError(parameters, self.INPUT))
         if QgsWkbTypes.geometryType(source.wkbType()) != QgsWkbTypes.PointGeometry:
-            raise QgsProcessingException(tr("The input must be a point layer; it has {geom} geometry.").format(
-                geom=QgsWkbTypes.displayString(source.wkbType())))
+            raise QgsProcessingException(
+                tr("The input must be a point layer; it has {geom} geometry.").format(
+                    geom=QgsWkbTypes.displayString(source.wkbType())
+                )
+            )
         crs = source.sourceCrs()
         if crs.isGeographic():
-            raise QgsProcessingException(tr(
-                "The points are in a geographic CRS ({crs}); reproject them to a projected CRS in metres "
-                "first.").format(crs=crs.authid()))
+            raise QgsProcessingException(
+                tr(
+                    "The points are in a geographic CRS ({crs}); reproject them to a projected CRS in metres first."
+                ).format(crs=crs.authid())
+            )
         z_field = self.parameterAsString(parameters, self.Z_FIELD_POINTS, context)
         sigma_field = self.parameterAsString(parameters, self.SIGMA_FIELD_POINTS, context) or None
         x, y, z, sigma = read_points(source, z_field, sigma_field, feedback)
         if len(x) < 3:
-            raise QgsProcessingException(tr(
-                "Need at least 3 points with a value to interpolate, found {n}.").format(n=len(x)))
+            raise QgsProcessingException(
+                tr("Need at least 3 points with a value to interpolate, found {n}.").format(n=len(x))
+            )
         method = METHODS[self.parameterAsEnum(parameters, self.METHOD, context)]
         variogram = VARIOGRAMS[self.parameterAsEnum(parameters, self.VARIOGRAM, context)]
         cell = self.optional_number(parameters, self.CELL_SIZE, context)
@@ -149,8 +182,17 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
             try:
                 spec = GridSpec.from_data(x, y, cell_size_m=cell)
                 surf, _diag = interpolate_surface(
-                    x, y, z, sigma if sigma_field else None, spec, method=method, neighbours=neighbours,
-                    variogram_model=variogram, max_distance_m=max_distance, progress=progress_for(feedback))
+                    x,
+                    y,
+                    z,
+                    sigma if sigma_field else None,
+                    spec,
+                    method=method,
+                    neighbours=neighbours,
+                    variogram_model=variogram,
+                    max_distance_m=max_distance,
+                    progress=progress_for(feedback),
+                )
             except ValueError as err:  # the surface module's input checks
                 raise QgsProcessingException(str(err)) from err
         if call.cancelled or surf is None:

@@ -60,10 +60,14 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
 
     def initAlgorithm(self, config=None):
         self.add_survey_parameters()
-        self.addParameter(QgsProcessingParameterEnum(
-            self.METHOD, tr("Surface method"), options=[tr(m) for m in METHODS], defaultValue=0))
-        self.addParameter(QgsProcessingParameterBoolean(
-            self.LOAD, tr("Load styled results into the project"), defaultValue=True))
+        self.addParameter(
+            QgsProcessingParameterEnum(
+                self.METHOD, tr("Surface method"), options=[tr(m) for m in METHODS], defaultValue=0
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterBoolean(self.LOAD, tr("Load styled results into the project"), defaultValue=True)
+        )
         self.addParameter(QgsProcessingParameterFolderDestination(self.OUTPUT, tr("Output folder")))
         self.addOutput(QgsProcessingOutputFile(self.GEOPACKAGE, tr("GeoPackage")))
         for key, _table, label in self.VECTOR_OUTPUTS:

@@ -33,8 +33,9 @@ SAMPLE_INPUTS = ("survey.toml", "stations.csv", "picks.csv", "boreholes.csv")
 def pytest_collection_modifyitems(config, items):
     if HAVE_QGIS:
         return
-    skip = pytest.mark.skip(reason=f"QGIS Python bindings not importable here ({QGIS_ERROR}); "
-                                   "run with .venv-qgis (see scripts/test.sh)")
+    skip = pytest.mark.skip(
+        reason=f"QGIS Python bindings not importable here ({QGIS_ERROR}); run with .venv-qgis (see scripts/test.sh)"
+    )
     for item in items:
         if "tests/qgis" in str(item.fspath).replace(os.sep, "/"):
             item.add_marker(skip)

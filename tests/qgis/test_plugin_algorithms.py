@@ -15,7 +15,7 @@ import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
-from qgis.core import (  # noqa: E402
+from qgis.core import (
     QgsFeature,
     QgsGeometry,
     QgsPointXY,
@@ -23,12 +23,10 @@ from qgis.core import (  # noqa: E402
     QgsProcessingFeedback,
     QgsVectorLayer,
 )
-
-from qgis.PyQt.QtCore import QVariant  # noqa: E402
-
-from reflector_mapper.core import inputs, layers, pipeline, structure  # noqa: E402
-from reflector_mapper.plugin.algorithms.run_survey import METHODS  # noqa: E402
-from reflector_mapper.plugin.feedback import FeedbackProgress  # noqa: E402
+from qgis.PyQt.QtCore import QVariant
+from reflector_mapper.core import inputs, layers, pipeline, structure
+from reflector_mapper.plugin.algorithms.run_survey import METHODS
+from reflector_mapper.plugin.feedback import FeedbackProgress
 
 
 def run(alg, params, feedback=None):
@@ -73,8 +71,11 @@ def read_csv_rows(path):
 def memory_layers(survey_toml, stations_geometry="Point"):
     """The survey's stations and picks as QGIS memory layers (as a user would have them)."""
     folder = survey_toml.parent
-    st = QgsVectorLayer(f"{stations_geometry}?crs=EPSG:32633&field=line:string&field=station:string"
-                        "&field=z:double", "stations", "memory")
+    st = QgsVectorLayer(
+        f"{stations_geometry}?crs=EPSG:32633&field=line:string&field=station:string&field=z:double",
+        "stations",
+        "memory",
+    )
     feats = []
     for r in read_csv_rows(folder / "stations.csv"):
         f = QgsFeature(st.fields())
@@ -86,8 +87,9 @@ def memory_layers(survey_toml, stations_geometry="Point"):
         f.setAttributes([r["line"], r["station"], float(r["z"])])
         feats.append(f)
     st.dataProvider().addFeatures(feats)
-    pk = QgsVectorLayer("None?field=ln:string&field=sp:string&field=rcv:string&field=twt:double"
-                        "&field=err:double", "picks", "memory")
+    pk = QgsVectorLayer(
+        "None?field=ln:string&field=sp:string&field=rcv:string&field=twt:double&field=err:double", "picks", "memory"
+    )
     feats = []
     for r in read_csv_rows(folder / "picks.csv"):
         f = QgsFeature(pk.fields())
@@ -98,8 +100,14 @@ def memory_layers(survey_toml, stations_geometry="Point"):
 
 
 LAYER_PARAMS = {
-    "LINE_FIELD": "ln", "SHOT_FIELD": "sp", "RECEIVER_FIELD": "rcv", "TIME_FIELD": "twt", "SIGMA_FIELD": "err",
-    "STATION_LINE_FIELD": "line", "STATION_FIELD": "station", "Z_FIELD": "z",
+    "LINE_FIELD": "ln",
+    "SHOT_FIELD": "sp",
+    "RECEIVER_FIELD": "rcv",
+    "TIME_FIELD": "twt",
+    "SIGMA_FIELD": "err",
+    "STATION_LINE_FIELD": "line",
+    "STATION_FIELD": "station",
+    "Z_FIELD": "z",
 }
 
 
@@ -110,9 +118,11 @@ def core_fit(sample_survey):
 
 
 def test_fit_gathers_equals_core(provider, sample_survey, core_fit):
-    survey, step = core_fit
-    res = run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
-                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    _survey, step = core_fit
+    res = run(
+        "fitgathers",
+        {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"},
+    )
     shots, points = res["SHOTS"], res["REFLECTOR_POINTS"]
     assert shots.crs().authid() == "EPSG:32633"
     assert shots.featureCount() == len(step.fits) > 0
@@ -121,18 +131,33 @@ def test_fit_gathers_equals_core(provider, sample_survey, core_fit):
 
 
 def test_fit_gathers_from_qgis_layers_equals_survey_file(provider, sample_survey, core_fit):
-    survey, step = core_fit
+    _survey, step = core_fit
     stations, picks = memory_layers(sample_survey)
-    res = run("fitgathers", {"PICKS": picks, "STATIONS": stations, **LAYER_PARAMS,
-                             "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    res = run(
+        "fitgathers",
+        {
+            "PICKS": picks,
+            "STATIONS": stations,
+            **LAYER_PARAMS,
+            "SHOTS": "TEMPORARY_OUTPUT",
+            "REFLECTOR_POINTS": "TEMPORARY_OUTPUT",
+        },
+    )
     # the same numbers as from the survey file: coordinates and times pass unchanged (repr of doubles)
     assert_same_as_core(res["SHOTS"], layers.shots_layer(step.gathers, step.fits))
 
 
 def test_setting_override_reaches_the_core(provider, sample_survey):
     # a minimum pick count above every gather's size: no gather may be fitted
-    res = run("fitgathers", {"SURVEY": str(sample_survey), "MIN_PICKS": 100000, "SHOTS": "TEMPORARY_OUTPUT",
-                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    res = run(
+        "fitgathers",
+        {
+            "SURVEY": str(sample_survey),
+            "MIN_PICKS": 100000,
+            "SHOTS": "TEMPORARY_OUTPUT",
+            "REFLECTOR_POINTS": "TEMPORARY_OUTPUT",
+        },
+    )
     status = {f["status"] for f in res["SHOTS"].getFeatures()}
     assert status == {"too_few_picks"}
 
@@ -140,31 +165,43 @@ def test_setting_override_reaches_the_core(provider, sample_survey):
 def test_stations_must_be_points(provider, sample_survey):
     stations, picks = memory_layers(sample_survey, stations_geometry="LineString")
     with pytest.raises(QgsProcessingException, match="point layer"):
-        run("fitgathers", {"PICKS": picks, "STATIONS": stations, **LAYER_PARAMS,
-                           "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+        run(
+            "fitgathers",
+            {
+                "PICKS": picks,
+                "STATIONS": stations,
+                **LAYER_PARAMS,
+                "SHOTS": "TEMPORARY_OUTPUT",
+                "REFLECTOR_POINTS": "TEMPORARY_OUTPUT",
+            },
+        )
 
 
 def test_core_input_error_becomes_processing_error(provider, sample_survey):
     text = sample_survey.read_text().replace('crs = "EPSG:32633"', 'crs = "EPSG:999999"')
     sample_survey.write_text(text)
     with pytest.raises(QgsProcessingException, match="999999"):
-        run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
-                           "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+        run(
+            "fitgathers",
+            {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"},
+        )
 
 
 def test_cancel_stops_cleanly(provider, sample_survey):
     feedback = QgsProcessingFeedback()
     feedback.cancel()
-    res = run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
-                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"}, feedback=feedback)
+    res = run(
+        "fitgathers",
+        {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"},
+        feedback=feedback,
+    )
     assert "SHOTS" not in res or res["SHOTS"] is None
 
 
 def test_combine_lines_equals_core(provider, sample_survey, core_fit):
-    survey, step = core_fit
+    _survey, step = core_fit
     dips = structure.combine_lines(step.gathers, step.fits, radius_m=None, min_angle_deg=30.0)
-    res = run("combinelines", {"SURVEY": str(sample_survey), "MIN_ANGLE": 30.0,
-                               "DIP_MEASUREMENTS": "TEMPORARY_OUTPUT"})
+    res = run("combinelines", {"SURVEY": str(sample_survey), "MIN_ANGLE": 30.0, "DIP_MEASUREMENTS": "TEMPORARY_OUTPUT"})
     layer = res["DIP_MEASUREMENTS"]
     assert layer.featureCount() == len(dips.dip_deg) > 0
     assert_same_as_core(layer, layers.dips_layer(dips))
@@ -176,25 +213,35 @@ def test_combine_lines_equals_core(provider, sample_survey, core_fit):
 
 def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
     from osgeo import gdal
-
     from reflector_mapper.core.surface import GridSpec, interpolate_surface
 
-    survey, step = core_fit
-    fit = run("fitgathers", {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT",
-                             "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    _survey, step = core_fit
+    fit = run(
+        "fitgathers",
+        {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"},
+    )
     out, std = tmp_path / "surface.tif", tmp_path / "std.tif"
     # a coarse grid and few neighbours keep the test fast; the core gets the same arguments
-    params = {"INPUT": fit["REFLECTOR_POINTS"], "VALUE_FIELD": "elevation_m", "ERROR_FIELD": "sigma_m",
-              "METHOD": 0, "VARIOGRAM": 0, "CELL_SIZE": 20.0, "NEIGHBOURS": 12, "OUTPUT": str(out),
-              "STD_OUTPUT": str(std)}
+    params = {
+        "INPUT": fit["REFLECTOR_POINTS"],
+        "VALUE_FIELD": "elevation_m",
+        "ERROR_FIELD": "sigma_m",
+        "METHOD": 0,
+        "VARIOGRAM": 0,
+        "CELL_SIZE": 20.0,
+        "NEIGHBOURS": 12,
+        "OUTPUT": str(out),
+        "STD_OUTPUT": str(std),
+    }
     res = run("interpolatesurface", params)
     assert res["OUTPUT"] == str(out)
     p = step.points
     ok = p.finite & np.isfinite(p.sigma_m)
     x, y = p.x_m[ok], p.y_m[ok]
     spec = GridSpec.from_data(x, y, cell_size_m=20.0)
-    surf, _ = interpolate_surface(x, y, p.elevation_m[ok], p.sigma_m[ok], spec, method="kriging",
-                                  neighbours=12, variogram_model="spherical")
+    surf, _ = interpolate_surface(
+        x, y, p.elevation_m[ok], p.sigma_m[ok], spec, method="kriging", neighbours=12, variogram_model="spherical"
+    )
     ds = gdal.Open(str(out))
     assert ds.GetGeoTransform() == pytest.approx(spec.geotransform)
     got = ds.GetRasterBand(1).ReadAsArray()
@@ -239,12 +286,18 @@ def test_run_survey_equals_core(provider, sample_survey, core_results, tmp_path)
 
     core_out, _result = core_results
     out = tmp_path / "results"
-    res = run("runsurvey", {"SURVEY": str(sample_survey), "OUTPUT": str(out), "LOAD_RESULTS": False,
-                            "METHOD": METHODS.index("kriging")})
+    res = run(
+        "runsurvey",
+        {"SURVEY": str(sample_survey), "OUTPUT": str(out), "LOAD_RESULTS": False, "METHOD": METHODS.index("kriging")},
+    )
     assert res["OUTPUT"] == str(out)
-    for key, name in (("GEOPACKAGE", "survey.gpkg"), ("DEPTH", "reflector_depth.tif"),
-                      ("ELEVATION", "reflector_elevation.tif"), ("DEPTH_SIGMA", "depth_sigma.tif"),
-                      ("REPORT", "report.html")):
+    for key, name in (
+        ("GEOPACKAGE", "survey.gpkg"),
+        ("DEPTH", "reflector_depth.tif"),
+        ("ELEVATION", "reflector_elevation.tif"),
+        ("DEPTH_SIGMA", "depth_sigma.tif"),
+        ("REPORT", "report.html"),
+    ):
         assert res[key] == str(out / name), key
     for table in ("shots", "reflector_points", "dip_measurements", "contours"):
         a = QgsVectorLayer(f"{out / 'survey.gpkg'}|layername={table}", table, "ogr")
@@ -279,5 +332,9 @@ def test_run_survey_loads_styled_group(provider, sample_survey, core_results, tm
     group = load_results(str(out), QgsProject.instance())
     assert QgsProject.instance().layerTreeRoot().findGroup(GROUP_NAME) is group
     names = {node.layer().name() for node in group.findLayers()}
-    assert {"Shots (fit status)", "Reflector depth below ground", "Reflector elevation contours",
-            "Dip and strike (crossing lines)"} <= names
+    assert {
+        "Shots (fit status)",
+        "Reflector depth below ground",
+        "Reflector elevation contours",
+        "Dip and strike (crossing lines)",
+    } <= names

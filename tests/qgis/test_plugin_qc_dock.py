@@ -5,20 +5,24 @@ import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
-from qgis.core import QgsProject, QgsVectorLayer  # noqa: E402
-from qgis.PyQt.QtCore import Qt  # noqa: E402
-
-from reflector_mapper.core import inversion  # noqa: E402
-from reflector_mapper.plugin.qc_dock import GatherQc, QcDock  # noqa: E402
+from qgis.core import QgsProject, QgsVectorLayer
+from qgis.PyQt.QtCore import Qt
+from reflector_mapper.core import inversion
+from reflector_mapper.plugin.qc_dock import GatherQc, QcDock
 
 
 @pytest.fixture
 def shots_layer(provider, sample_survey):
     import processing
 
-    res = processing.run("reflectormapper:fitgathers", {
-        "SURVEY": str(sample_survey), "SHOTS": str(sample_survey.parent / "shots.gpkg"),
-        "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"})
+    res = processing.run(
+        "reflectormapper:fitgathers",
+        {
+            "SURVEY": str(sample_survey),
+            "SHOTS": str(sample_survey.parent / "shots.gpkg"),
+            "REFLECTOR_POINTS": "TEMPORARY_OUTPUT",
+        },
+    )
     layer = QgsVectorLayer(res["SHOTS"], "shots", "ogr")
     assert layer.isValid()
     QgsProject.instance().addMapLayer(layer)
@@ -31,8 +35,9 @@ def test_model_curve_is_the_core_fit(sample_survey):
     rows = qc.pick_rows(g)
     # residual = observed - modelled (core); the panel's curve is the image-source time of the fit
     used = ~qc.fits.rejected[rows]
-    np.testing.assert_allclose(qc.model_times_s(rows)[used],
-                               (qc.gathers.time_s - qc.fits.residual_s)[rows][used], atol=1e-9)
+    np.testing.assert_allclose(
+        qc.model_times_s(rows)[used], (qc.gathers.time_s - qc.fits.residual_s)[rows][used], atol=1e-9
+    )
     assert np.all(np.diff(qc.offsets_m(rows)) >= 0)  # sorted by offset for the plot
 
 
@@ -66,8 +71,11 @@ def test_panel_shows_selected_shot_and_refit_updates_layer(qgis_iface, sample_su
     ref = inversion.fit_shot_gathers(dock.qc.gathers, dock.qc.survey.settings, exclude=dock.qc.exclude)
     assert after.velocity_m_s[g] == ref.velocity_m_s[g]
     # the shots layer now holds the refitted values
-    feat = next(f for f in QgsVectorLayer(shots_layer.source(), "s", "ogr").getFeatures()
-                if f["line"] == "B" and str(f["shot"]) == str(target["shot"]))
+    feat = next(
+        f
+        for f in QgsVectorLayer(shots_layer.source(), "s", "ogr").getFeatures()
+        if f["line"] == "B" and str(f["shot"]) == str(target["shot"])
+    )
     assert feat["velocity_m_s"] == pytest.approx(float(after.velocity_m_s[g]), rel=1e-12)
     assert feat["picks_used"] == int(after.picks_used[g])
     assert dock.table.item(n_rows - 1, 0).checkState() == Qt.Unchecked

@@ -13,9 +13,8 @@ import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
-from qgis.core import QgsVectorLayer  # noqa: E402
-
-from reflector_mapper.core import inputs, layers, pipeline  # noqa: E402
+from qgis.core import QgsVectorLayer
+from reflector_mapper.core import inputs, layers, pipeline
 
 QGIS_PROCESS = shutil.which("qgis_process.bin") or "/usr/bin/qgis_process.bin"
 
@@ -27,11 +26,18 @@ def qp_env(plugin_dir, tmp_path_factory):
             pytest.fail(f"{QGIS_PROCESS} not found on CI")
         pytest.skip(f"{QGIS_PROCESS} not found")
     home = tmp_path_factory.mktemp("qgis-home")
-    env = dict(os.environ, HOME=str(home), QGIS_CUSTOM_CONFIG_PATH=str(home), QGIS_PLUGINPATH=str(plugin_dir),
-               QT_QPA_PLATFORM="offscreen", XDG_RUNTIME_DIR=str(home))
+    env = dict(
+        os.environ,
+        HOME=str(home),
+        QGIS_CUSTOM_CONFIG_PATH=str(home),
+        QGIS_PLUGINPATH=str(plugin_dir),
+        QT_QPA_PLATFORM="offscreen",
+        XDG_RUNTIME_DIR=str(home),
+    )
     env.setdefault("PROJ_DATA", "/usr/share/proj")
-    out = subprocess.run([QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env,
-                         capture_output=True, text=True, timeout=120)
+    out = subprocess.run(
+        [QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env, capture_output=True, text=True, timeout=120
+    )
     assert out.returncode == 0, out.stderr
     return env
 
@@ -56,8 +62,15 @@ def test_help_carries_the_caution(qp_env):
 
 def test_run_fit_gathers(qp_env, sample_survey, tmp_path):
     shots = tmp_path / "shots.gpkg"
-    out = qgis_process(qp_env, "run", "reflectormapper:fitgathers", "--", f"SURVEY={sample_survey}",
-                       f"SHOTS={shots}", f"REFLECTOR_POINTS={tmp_path / 'points.gpkg'}")
+    out = qgis_process(
+        qp_env,
+        "run",
+        "reflectormapper:fitgathers",
+        "--",
+        f"SURVEY={sample_survey}",
+        f"SHOTS={shots}",
+        f"REFLECTOR_POINTS={tmp_path / 'points.gpkg'}",
+    )
     assert out.returncode == 0, out.stdout + out.stderr
     step = pipeline.fit_step(inputs.load_survey(sample_survey))
     ref = layers.shots_layer(step.gathers, step.fits)
@@ -75,9 +88,16 @@ def test_run_fit_gathers(qp_env, sample_survey, tmp_path):
 @pytest.mark.slow
 def test_run_whole_survey(qp_env, sample_survey, tmp_path):
     out_dir = tmp_path / "results"
-    out = qgis_process(qp_env, "run", "reflectormapper:runsurvey", "--", f"SURVEY={sample_survey}",
-                       f"OUTPUT={out_dir}", "LOAD_RESULTS=false", "METHOD=2")  # 2 = kriging
+    out = qgis_process(
+        qp_env,
+        "run",
+        "reflectormapper:runsurvey",
+        "--",
+        f"SURVEY={sample_survey}",
+        f"OUTPUT={out_dir}",
+        "LOAD_RESULTS=false",
+        "METHOD=2",
+    )  # 2 = kriging
     assert out.returncode == 0, out.stdout + out.stderr
-    for name in ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
-                 "report.html"):
+    for name in ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif", "report.html"):
         assert (out_dir / name).is_file(), name

@@ -15,7 +15,7 @@ import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
-from qgis.core import (  # noqa: E402
+from qgis.core import (
     QgsCoordinateReferenceSystem,
     QgsExpressionContext,
     QgsExpressionContextUtils,
@@ -27,10 +27,9 @@ from qgis.core import (  # noqa: E402
     QgsRectangle,
     QgsVectorLayer,
 )
-from qgis.PyQt.QtCore import QSize  # noqa: E402
-from qgis.PyQt.QtGui import QColor  # noqa: E402
-
-from reflector_mapper.plugin import styling  # noqa: E402
+from qgis.PyQt.QtCore import QSize
+from qgis.PyQt.QtGui import QColor
+from reflector_mapper.plugin import styling
 
 LAYER_CRS = "EPSG:32633"
 POINT = (560000.0, 5320000.0)  # UTM 33N, about 15.8 E 48.0 N
@@ -39,8 +38,9 @@ SIZE = 600
 
 
 def dip_layer(strike_deg, dip_deg=25.0, crs=LAYER_CRS, point=POINT):
-    layer = QgsVectorLayer(f"Point?crs={crs}&field=dip_deg:double&field=dip_direction_deg:double"
-                           "&field=strike_deg:double", "dips", "memory")
+    layer = QgsVectorLayer(
+        f"Point?crs={crs}&field=dip_deg:double&field=dip_direction_deg:double&field=strike_deg:double", "dips", "memory"
+    )
     f = QgsFeature(layer.fields())
     f.setGeometry(QgsGeometry.fromPointXY(QgsPointXY(*point)))
     f.setAttributes([dip_deg, (strike_deg + 90.0) % 360.0, strike_deg])
@@ -106,7 +106,7 @@ def symbol_geometry(image, centre):
     far = r > 3.2 * mm  # beyond the tick (2.4 mm): bar pixels only
     assert far.sum() > 50, "no bar drawn"
     cov = np.cov(np.vstack([dx[far], dy[far]]))
-    w, v = np.linalg.eigh(cov)
+    _w, v = np.linalg.eigh(cov)
     bar_az = image_azimuth(v[0, 1], v[1, 1]) % 180.0
     # tick: pixels well off the bar's axis, within the tick length
     along = np.array([v[0, 1], v[1, 1]])
@@ -190,7 +190,7 @@ def test_measured_and_surface_symbols_differ(qgis_app):
 
 # --------------------------------------------------------------------------------- the styled group
 def _pixel(image, x, y):
-    c = QColor(image.pixel(int(round(x)), int(round(y))))
+    c = QColor(image.pixel(round(x), round(y)))
     return np.array([c.red(), c.green(), c.blue()], float)
 
 
@@ -204,7 +204,6 @@ def _ramp_colour(ramp, t):
 def test_styled_group_renders(qgis_app, core_results, tmp_path):
     from osgeo import gdal
     from qgis.core import QgsProject, QgsRasterLayer
-
     from reflector_mapper.plugin.make_sample_project import full_extent, render_png
 
     out_dir, _ = core_results
@@ -248,7 +247,7 @@ def test_styled_group_renders(qgis_app, core_results, tmp_path):
     for k in np.linspace(0, len(rows) - 1, 25).astype(int):
         r, c = rows[k], cols[k]
         # cell centre; skip cells at the edge of the mask (their pixel may straddle nodata)
-        if not np.all(np.isfinite(arr[max(r - 1, 0): r + 2, max(c - 1, 0): c + 2])):
+        if not np.all(np.isfinite(arr[max(r - 1, 0) : r + 2, max(c - 1, 0) : c + 2])):
             continue
         x = gt[0] + (c + 0.5) * gt[1]
         y = gt[3] + (r + 0.5) * gt[5]
@@ -266,9 +265,11 @@ def test_styled_group_renders(qgis_app, core_results, tmp_path):
     f = next(shots.getFeatures())
     assert f["status"] == "ok"
     p = m2p.transform(f.geometry().asPoint())
-    np.testing.assert_allclose(_pixel(shots_only, p.x(), p.y()), _ramp_colour([(0, styling.STATUS_COLOURS["ok"]),
-                                                                              (1, styling.STATUS_COLOURS["ok"])], 0),
-                               atol=3)
+    np.testing.assert_allclose(
+        _pixel(shots_only, p.x(), p.y()),
+        _ramp_colour([(0, styling.STATUS_COLOURS["ok"]), (1, styling.STATUS_COLOURS["ok"])], 0),
+        atol=3,
+    )
 
     # labelled contours: labels add pixels; index contours are drawn heavier
     contours = next(lyr for lyr in layers if lyr.name() == "Reflector elevation contours")
@@ -285,7 +286,6 @@ def test_styled_group_renders(qgis_app, core_results, tmp_path):
 
 def test_sample_project_builder(qgis_app, core_results, tmp_path):
     from qgis.core import QgsProject
-
     from reflector_mapper.plugin.make_sample_project import build_project
     from reflector_mapper.plugin.qc_dock import PROJECT_KEY_SURVEY, PROJECT_SCOPE
 

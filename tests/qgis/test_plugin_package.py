@@ -33,8 +33,15 @@ def test_zip_follows_repository_rules(packager, plugin_zip):
     assert packager.check(plugin_zip) == []
     names = zipfile.ZipFile(plugin_zip).namelist()
     assert {n.split("/")[0] for n in names} == {"reflector_mapper"}
-    for needed in ("metadata.txt", "LICENSE", "__init__.py", "core/inversion.py", "plugin/main.py",
-                   "plugin/provider.py", "plugin/icons/icon.svg"):
+    for needed in (
+        "metadata.txt",
+        "LICENSE",
+        "__init__.py",
+        "core/inversion.py",
+        "plugin/main.py",
+        "plugin/provider.py",
+        "plugin/icons/icon.svg",
+    ):
         assert f"reflector_mapper/{needed}" in names, needed
     for n in names:
         assert "/tests/" not in n and "/benchmarks/" not in n and "/sample_project/" not in n, n
@@ -66,11 +73,18 @@ def test_unzipped_plugin_loads_in_qgis_process(plugin_zip, tmp_path):
     zipfile.ZipFile(plugin_zip).extractall(plugins)
     home = tmp_path / "home"
     home.mkdir()
-    env = dict(os.environ, HOME=str(home), QGIS_CUSTOM_CONFIG_PATH=str(home), QGIS_PLUGINPATH=str(plugins),
-               QT_QPA_PLATFORM="offscreen", XDG_RUNTIME_DIR=str(home))
+    env = dict(
+        os.environ,
+        HOME=str(home),
+        QGIS_CUSTOM_CONFIG_PATH=str(home),
+        QGIS_PLUGINPATH=str(plugins),
+        QT_QPA_PLATFORM="offscreen",
+        XDG_RUNTIME_DIR=str(home),
+    )
     env.setdefault("PROJ_DATA", "/usr/share/proj")
-    out = subprocess.run([QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env, capture_output=True,
-                         text=True, timeout=120)
+    out = subprocess.run(
+        [QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env, capture_output=True, text=True, timeout=120
+    )
     assert out.returncode == 0, out.stderr
     out = subprocess.run([QGIS_PROCESS, "list"], env=env, capture_output=True, text=True, timeout=120)
     assert "reflectormapper:runsurvey" in out.stdout
