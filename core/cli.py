@@ -8,8 +8,14 @@ the traceback); 130 cancelled (Ctrl-C).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import warnings
+
+# The fits solve many tiny systems at once; a multi-threaded BLAS only adds
+# overhead there (and oversubscribes a small machine), so unless the user
+# says otherwise numpy's BLAS runs on one thread in this command.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from . import __version__
 from .errors import CancelledError, ReflectorMapperError

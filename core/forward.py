@@ -27,17 +27,17 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = [
-    "plane_normal",
-    "dip_from_normal",
-    "plane_through_point",
-    "plane_elevation",
-    "normal_distance",
-    "image_source_traveltime",
-    "reflection_point",
-    "line_traveltime",
     "cmp_traveltime",
-    "layered_t0_vrms",
+    "dip_from_normal",
+    "image_source_traveltime",
     "layered_reflection_traveltime",
+    "layered_t0_vrms",
+    "line_traveltime",
+    "normal_distance",
+    "plane_elevation",
+    "plane_normal",
+    "plane_through_point",
+    "reflection_point",
 ]
 
 

@@ -17,6 +17,7 @@ __all__ = [
     "boreholes_layer",
     "cross_validation_layer",
     "dips_layer",
+    "dix_layer",
     "lines_layer",
     "misties_layer",
     "reflection_points_layer",
@@ -227,6 +228,13 @@ def boreholes_layer(boreholes, check) -> Layer:
         "POINT",
         "Borehole check: borehole reflector elevation minus the seismic-only surface there",
     )
+
+
+def dix_layer(columns) -> Layer:
+    """Dix (1955) interval velocities and thicknesses under shots with several reflectors."""
+    cols = dict(columns)
+    return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT",
+                 "Interval velocity and thickness between successive reflectors (Dix 1955) under each shot")
 
 
 def cross_validation_layer(x_m, y_m, cv) -> Layer:

@@ -19,7 +19,7 @@ from typing import Optional
 
 import numpy as np
 
-__all__ = ["Stations", "Picks", "Boreholes", "Settings", "Survey", "GatherSet"]
+__all__ = ["Boreholes", "GatherSet", "Picks", "Settings", "Stations", "Survey"]
 
 
 @dataclass(frozen=True)
@@ -96,6 +96,7 @@ class Settings:
     robust_scale: float = 1.5  # loss threshold in units of the pick sigma
     reject_sigma: float = 4.0  # |residual| / sigma above this: pick rejected (flagged)
     combine_radius_m: Optional[float] = None  # None: half the median spread length
+    reflector: Optional[str] = None  # reflector to map; None: the only one, or the deepest picked
     min_line_angle_deg: float = 30.0  # least angle between line directions to combine
     cell_size_m: Optional[float] = None  # None: chosen from the data spacing
     max_distance_m: Optional[float] = None  # None: from the data spacing; farther = nodata

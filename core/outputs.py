@@ -41,11 +41,13 @@ def result_layers(result) -> dict:
         out["misties"] = lay.misties_layer(result.misties)
     if result.borehole_check is not None:
         out["boreholes"] = lay.boreholes_layer(result.survey.boreholes, result.borehole_check)
+    if result.dix is not None and len(result.dix["line"]):
+        out["dix_intervals"] = lay.dix_layer(result.dix)
     if result.contours is not None:
         out["contours"] = result.contours
     cv = (result.seismic_diag or {}).get("cross_validation")
     if cv is not None:
-        x, y, _, _ = surface_data(result.fit.points)
+        x, y, _, _ = surface_data(result.fit.points, result.survey.settings.reflector)
         out["cross_validation"] = lay.cross_validation_layer(x, y, cv)
     return out
 

@@ -17,7 +17,7 @@ algorithms can call one step at a time.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Optional
 
@@ -78,6 +78,7 @@ class RunResult:
     surface_dips: object = None
     borehole_check: dict = None
     depth_ratio: dict = None
+    dix: dict = None
     relocation_history_m: list = field(default_factory=list)
     notes: list = field(default_factory=list)
     outputs: list = field(default_factory=list)
@@ -137,9 +138,10 @@ def surface_cross_components(spec, z_grid, gathers, x_m, y_m):
     return -(w[:, 0] * gx + w[:, 1] * gy) / norm
 
 
-def surface_data(points, boreholes=None):
-    """Data of the surface: ok, finite reflector points (+ boreholes as near-exact data)."""
+def surface_data(points, reflector, boreholes=None):
+    """Data of the surface: ok, finite points of the mapped reflector (+ boreholes, near-exact)."""
     ok = (points.status == "ok") & points.finite & np.isfinite(points.sigma_m)
+    ok &= np.asarray(points.reflector).astype(str) == str(reflector)
     x, y, z, s = points.x_m[ok], points.y_m[ok], points.elevation_m[ok], points.sigma_m[ok]
     if boreholes is not None and len(boreholes):
         x = np.concatenate([x, boreholes.x_m])
@@ -151,7 +153,7 @@ def surface_data(points, boreholes=None):
 
 def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None):
     """Grid the reflector points (and boreholes, as near-exact data)."""
-    x, y, z, s = surface_data(points, boreholes)
+    x, y, z, s = surface_data(points, settings.reflector, boreholes)
     return interpolate_surface(
         x, y, z, s, spec, method=method, neighbours=settings.neighbours,
         variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m, progress=progress,
@@ -176,7 +178,8 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
     for it in range(max_iterations):
         check_cancel(progress)
         q = surface_cross_components(spec, surf.z, fit.gathers, fit.points.x_m, fit.points.y_m)
-        q = np.where(np.isfinite(q), q, 0.0)
+        mapped = np.asarray(fit.gathers.reflector).astype(str) == str(survey.settings.reflector)
+        q = np.where(np.isfinite(q) & mapped, q, 0.0)
         fit = fit_step(survey, cross_component=q, ground=ground, exclude=fit.fits.excluded)
         new, diag = interpolate_step(fit.points, spec, survey.settings, method,
                                      progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it))
@@ -192,7 +195,7 @@ def borehole_check(points, boreholes, settings, diag):
     """Seismic-only surface at each borehole: estimate, sigma, residual (borehole - seismic)."""
     from .surface import OrdinaryKriging, ThinPlateSpline
 
-    x, y, z, s = surface_data(points)
+    x, y, z, s = surface_data(points, settings.reflector)
     if diag.get("variogram") is not None:
         model = OrdinaryKriging(diag["variogram"], neighbours=settings.neighbours).fit(x, y, z, s**2)
     else:
@@ -258,8 +261,8 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     from .tomography import curvature_flags, invert_reflector, robust_site_velocity
 
     f, g = fit.fits, fit.gathers
-    n_lines = len(set(np.asarray(g.line[f.status == "ok"]).tolist()))
-    v_site, v_spread, n_v = robust_site_velocity(f.velocity_m_s, f.se_velocity_m_s, f.status)
+    mapped = np.asarray(g.reflector).astype(str) == str(survey.settings.reflector)
+    v_site, v_spread, n_v = robust_site_velocity(f.velocity_m_s, f.se_velocity_m_s, (f.status == "ok") & mapped)
     why = None
     if len(g.time_s) < 200:
         why = f"only {len(g.time_s)} picks (at least 200 needed)"
@@ -269,7 +272,7 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
         if forced:
             raise InversionError(f"the joint inversion is not supported by this survey: {why}")
         return {"skipped": why}
-    use = ~f.excluded
+    use = ~f.excluded & mapped[g.gather]
     bh = survey.boreholes
     boreholes = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, bh.elevation_m, bh.sigma_m)
     # nodes every NODE_CELLS output cells (row 0 south, as the tomography wants), covering the grid
@@ -311,12 +314,11 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
         "surface": surface,
         "result": res,
         "site_velocity_m_s": (v_site, v_spread, n_v),
-        "curvature_flag": flag & (f.status == "ok"),
+        "curvature_flag": flag & (f.status == "ok") & mapped,
         "curvature_reason": reason,
         "difference_m": z - start.z,
         "node_kriging": diag,
         "used": use,
-        "lines": n_lines,
     }
 
 
@@ -339,13 +341,23 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
             f"only {n_ok} of {len(fit.fits)} gathers gave a usable fit; a surface needs at least 3 "
             "(see the status and reason of each gather in the shots layer)"
         )
+    survey = replace(survey, settings=replace(settings, reflector=mapped_reflector(fit, settings)))
+    settings = survey.settings
     r = RunResult(survey, fit, ground=ground)
+    r.dix = dix_table(fit)
+    if len(set(np.asarray(fit.gathers.reflector).tolist())) > 1:
+        r.notes.append(
+            f"several reflectors picked: mapping reflector '{settings.reflector}' (set [processing] reflector "
+            "to choose); its depth comes from its own fit, whose velocity is the rms velocity of the layers "
+            "above (Dix 1955), so it overstates the depth by about V_rms/V_average; the dix_intervals layer "
+            "gives interval velocities and layered depths under each shot"
+        )
     progress.info("combining crossing lines into true dip and strike")
     r.dips = combine_lines(
         fit.gathers, fit.fits, radius_m=settings.combine_radius_m, min_angle_deg=settings.min_line_angle_deg
     )
     check_cancel(progress)
-    r.spec = grid_spec(survey, fit.points)
+    r.spec = grid_spec(survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector))
     interp = "spline" if method == "spline" else "kriging"
     progress.info(f"gridding the reflector ({interp}) with 3D relocation")
     r.fit, r.seismic_surface, r.seismic_diag, r.relocation_history_m = relocate_step(
@@ -385,6 +397,66 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     products_step(r)
     progress.set_progress(100)
     return r
+
+
+def mapped_reflector(fit, settings) -> str:
+    """The reflector label to map: the one asked for, the only one, or the deepest (latest median t0)."""
+    labels = np.asarray(fit.gathers.reflector).astype(str)
+    names = sorted(set(labels.tolist()))
+    if settings.reflector is not None:
+        if str(settings.reflector) not in names:
+            raise InversionError(
+                f"[processing] reflector = {settings.reflector!r} has no picks; the picks name {', '.join(names)}"
+            )
+        return str(settings.reflector)
+    if len(names) == 1:
+        return names[0]
+    ok = fit.fits.status == "ok"
+    t0 = {n: np.nanmedian(np.where(ok & (labels == n), fit.fits.t0_s, np.nan)) for n in names}
+    return max(names, key=lambda n: (np.nan_to_num(t0[n], nan=-1.0), n))
+
+
+def dix_table(fit):
+    """Dix (1955) interval velocities and thicknesses under every shot with several reflectors.
+
+    Per (line, shot), the ok gathers of its reflectors give (t0, V) pairs; with
+    V taken as the rms velocity (near-horizontal layers), :func:`dix_intervals`
+    gives the layers between them. Returns a dict of columns (empty when no
+    shot has two reflectors).
+    """
+    from .inversion import dix_intervals
+
+    g, f = fit.gathers, fit.fits
+    ok = f.status == "ok"
+    cols = {k: [] for k in ("line", "shot", "reflector_top", "reflector_base", "x_m", "y_m", "t0_top_ms",
+                            "t0_base_ms", "interval_velocity_m_s", "se_interval_velocity_m_s", "thickness_m",
+                            "se_thickness_m", "depth_base_m", "status", "reason")}
+    keys = np.array([f"{a}\x1f{b}" for a, b in zip(g.line, g.shot)], dtype=object)
+    for key in sorted(set(keys[ok].tolist())):
+        idx = np.flatnonzero((keys == key) & ok)
+        if len(idx) < 2:
+            continue
+        d = dix_intervals(f.t0_s[idx], f.velocity_m_s[idx], f.se_t0_s[idx], f.se_velocity_m_s[idx])
+        names = ["surface"] + [str(g.reflector[idx[j]]) for j in d.order]
+        for row in range(len(d.order)):
+            k = idx[d.order[row]]
+            cols["line"].append(str(g.line[k]))
+            cols["shot"].append(str(g.shot[k]))
+            cols["reflector_top"].append(names[row])
+            cols["reflector_base"].append(names[row + 1])
+            cols["x_m"].append(g.source_xyz_g[k, 0])
+            cols["y_m"].append(g.source_xyz_g[k, 1])
+            cols["t0_top_ms"].append(d.t0_top_s[row] * 1e3)
+            cols["t0_base_ms"].append(d.t0_base_s[row] * 1e3)
+            cols["interval_velocity_m_s"].append(d.interval_velocity_m_s[row])
+            cols["se_interval_velocity_m_s"].append(d.se_interval_velocity_m_s[row])
+            cols["thickness_m"].append(d.thickness_m[row])
+            cols["se_thickness_m"].append(d.se_thickness_m[row])
+            cols["depth_base_m"].append(d.depth_base_m[row])
+            cols["status"].append(str(d.status[row]))
+            cols["reason"].append(str(d.reason[row]))
+    return {k: np.array(v, dtype=object if k in ("line", "shot", "reflector_top", "reflector_base", "status",
+                                                 "reason") else float) for k, v in cols.items()}
 
 
 def borehole_depth_ratio(result, boreholes):

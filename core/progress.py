@@ -17,13 +17,13 @@ from .errors import CancelledError
 class NullProgress:
     """Progress sink that ignores everything and never cancels."""
 
-    def set_progress(self, percent: float) -> None:  # noqa: D102
+    def set_progress(self, percent: float) -> None:
         pass
 
-    def is_canceled(self) -> bool:  # noqa: D102
+    def is_canceled(self) -> bool:
         return False
 
-    def info(self, message: str) -> None:  # noqa: D102
+    def info(self, message: str) -> None:
         pass
 
 
@@ -34,13 +34,13 @@ class StderrProgress(NullProgress):
         self.stream = stream or sys.stderr
         self._last = -1
 
-    def set_progress(self, percent: float) -> None:  # noqa: D102
+    def set_progress(self, percent: float) -> None:
         p = int(percent)
         if p != self._last and p % 10 == 0:
             self._last = p
             print(f"  {p:3d} %", file=self.stream, flush=True)
 
-    def info(self, message: str) -> None:  # noqa: D102
+    def info(self, message: str) -> None:
         print(message, file=self.stream, flush=True)
 
 
@@ -52,13 +52,13 @@ class SubProgress(NullProgress):
         self.start = start
         self.stop = stop
 
-    def set_progress(self, percent: float) -> None:  # noqa: D102
+    def set_progress(self, percent: float) -> None:
         self.parent.set_progress(self.start + (self.stop - self.start) * percent / 100.0)
 
-    def is_canceled(self) -> bool:  # noqa: D102
+    def is_canceled(self) -> bool:
         return self.parent.is_canceled()
 
-    def info(self, message: str) -> None:  # noqa: D102
+    def info(self, message: str) -> None:
         self.parent.info(message)
 
 

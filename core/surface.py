@@ -1166,7 +1166,14 @@ class OrdinaryKriging:
         b = np.empty((c, k + 1))
         b[:, :k] = self.variogram_._unit_inplace(np.hypot(xs - tx[:, None], ys - ty[:, None]))
         b[:, k] = 1.0
-        sol = np.linalg.solve(a, b[:, :, None])[:, :, 0]
+        try:
+            sol = np.linalg.solve(a, b[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError as exc:
+            raise InversionError(
+                f"a local kriging system is singular ({exc}); usual causes: data at the same place with "
+                f"no error variance, or a {self.variogram_.model} model without nugget on dense data. "
+                "Give the data an error variance or the model a small nugget"
+            ) from exc
         lam = sol[:, :k]
         z = self.z_[idx] if zvals is None else zvals
         est = np.einsum("ij,ij->i", lam, z)

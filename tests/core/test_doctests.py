@@ -5,7 +5,6 @@ import importlib
 import pkgutil
 
 import pytest
-
 import reflector_mapper.core as core
 
 MODULES = sorted(m.name for m in pkgutil.iter_modules(core.__path__) if not m.name.startswith("_"))
