@@ -7,6 +7,7 @@ from qgis.core import (
     QgsProcessing,
     QgsProcessingException,
     QgsProcessingParameterEnum,
+    QgsProcessingParameterFeatureSink,
     QgsProcessingParameterFeatureSource,
     QgsProcessingParameterField,
     QgsProcessingParameterNumber,
@@ -14,7 +15,14 @@ from qgis.core import (
     QgsWkbTypes,
 )
 
-from .base import CoreCall, ReflectorAlgorithm, optional_number_parameter, progress_for, tr
+from .base import (
+    CoreCall,
+    ReflectorAlgorithm,
+    optional_number_parameter,
+    progress_for,
+    tr,
+    write_core_layer,
+)
 
 METHODS = ("kriging", "spline")
 VARIOGRAMS = ("spherical", "exponential", "gaussian")
@@ -47,22 +55,11 @@ def read_points(source, z_field, sigma_field, feedback=None):
     return np.array(xs), np.array(ys), np.array(zs), np.array(ss)
 
 
-def write_geotiff(path, spec, values, crs_wkt, description=""):
-    """Write one float32 band on a core GridSpec (north-up, NaN as nodata) with GDAL."""
-    from osgeo import gdal
+def pyproj_crs(crs):
+    """pyproj CRS of a QgsCoordinateReferenceSystem (by authority code when it has one)."""
+    from pyproj import CRS
 
-    driver = gdal.GetDriverByName("GTiff")
-    ds = driver.Create(str(path), spec.nx, spec.ny, 1, gdal.GDT_Float32, options=["COMPRESS=DEFLATE"])
-    if ds is None:
-        raise QgsProcessingException(tr("Cannot create the raster '{path}'.").format(path=path))
-    ds.SetGeoTransform(spec.geotransform)
-    ds.SetProjection(crs_wkt)
-    band = ds.GetRasterBand(1)
-    band.SetNoDataValue(float("nan"))
-    band.SetDescription(description)
-    band.WriteArray(np.asarray(values, dtype=np.float32))
-    band.FlushCache()
-    ds = None
+    return CRS.from_user_input(crs.authid()) if crs.authid() else CRS.from_wkt(crs.toWkt())
 
 
 class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
@@ -76,8 +73,10 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
     CELL_SIZE = "CELL_SIZE"
     MAX_DISTANCE = "MAX_DISTANCE"
     NEIGHBOURS = "NEIGHBOURS"
+    CONTOUR_INTERVAL = "CONTOUR_INTERVAL"
     OUTPUT = "OUTPUT"
     STD = "STD_OUTPUT"
+    CONTOURS = "CONTOURS"
 
     _name = "interpolatesurface"
     _display = "Interpolate reflector surface"
@@ -90,8 +89,10 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         "<p><b>Input</b>: a point layer in a projected CRS (metres), such as the reflector points of "
         "Fit shot gathers, with an elevation field and an optional standard-error field "
         "(boreholes: a small error).</p>"
-        "<p><b>Outputs</b>: the surface and its kriging standard deviation (empty for the "
-        "spline). Empty cell size or masking distance: chosen from the data spacing.</p>"
+        "<p><b>Outputs</b>: the surface and its kriging standard deviation (GeoTIFF; empty for the "
+        "spline) and contour lines of the surface (fields kind, elevation_m, depth_m, index; every "
+        "fifth an index contour). Empty cell size, masking distance or contour interval: chosen "
+        "from the data.</p>"
     )
 
     def initAlgorithm(self, config=None):
@@ -137,10 +138,20 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
                 maxValue=1000,
             )
         )
+        self.addParameter(optional_number_parameter(self.CONTOUR_INTERVAL, "Contour interval (m)", 0.001, 1.0e5))
         self.addParameter(QgsProcessingParameterRasterDestination(self.OUTPUT, tr("Reflector surface")))
         self.addParameter(
             QgsProcessingParameterRasterDestination(
                 self.STD, tr("Standard deviation"), optional=True, createByDefault=True
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterFeatureSink(
+                self.CONTOURS,
+                tr("Contours"),
+                QgsProcessing.TypeVectorLine,
+                optional=True,
+                createByDefault=True,
             )
         )
 
@@ -197,10 +208,20 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
                 raise QgsProcessingException(str(err)) from err
         if call.cancelled or surf is None:
             return {}
-        wkt = crs.toWkt()
-        write_geotiff(out, surf.spec, surf.z, wkt, "reflector elevation (m)")
+        interval = self.optional_number(parameters, self.CONTOUR_INTERVAL, context)
+        from ...core.contours import contours_layer
+        from ...core.geotiff import write_geotiff_grid
+
+        spec = surf.spec
+        with CoreCall(feedback):
+            target = pyproj_crs(crs)
+            write_geotiff_grid(out, spec.x_centres, spec.y_centres, surf.z, target)
+            if std_out:
+                write_geotiff_grid(std_out, spec.x_centres, spec.y_centres, surf.std, target)
+            lines = contours_layer(spec.x_centres, spec.y_centres, elevation_m=surf.z, elevation_interval_m=interval)
         results = {self.OUTPUT: out}
         if std_out:
-            write_geotiff(std_out, surf.spec, surf.std, wkt, "standard deviation (m)")
             results[self.STD] = std_out
+        if parameters.get(self.CONTOURS) is not None:
+            results[self.CONTOURS] = write_core_layer(self, parameters, self.CONTOURS, context, lines, crs, feedback)
         return results

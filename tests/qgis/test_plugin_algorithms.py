@@ -211,8 +211,21 @@ def test_combine_lines_equals_core(provider, sample_survey, core_fit):
             assert math.isclose((f["strike_deg"] + 90.0) % 360.0, f["dip_direction_deg"], abs_tol=1e-9)
 
 
-def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
+def _read_band(path):
     from osgeo import gdal
+
+    ds = gdal.Open(str(path))
+    band = ds.GetRasterBand(1)
+    arr = band.ReadAsArray().astype(float)
+    if band.GetNoDataValue() is not None:
+        arr[arr == band.GetNoDataValue()] = np.nan
+    gt = ds.GetGeoTransform()
+    band = ds = None  # release the dataset only after its band (GDAL)
+    return arr, gt
+
+
+def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
+    from reflector_mapper.core.contours import contours_layer
     from reflector_mapper.core.surface import GridSpec, interpolate_surface
 
     _survey, step = core_fit
@@ -230,8 +243,10 @@ def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_s
         "VARIOGRAM": 0,
         "CELL_SIZE": 20.0,
         "NEIGHBOURS": 12,
+        "CONTOUR_INTERVAL": 2.0,
         "OUTPUT": str(out),
         "STD_OUTPUT": str(std),
+        "CONTOURS": "TEMPORARY_OUTPUT",
     }
     res = run("interpolatesurface", params)
     assert res["OUTPUT"] == str(out)
@@ -242,16 +257,17 @@ def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_s
     surf, _ = interpolate_surface(
         x, y, p.elevation_m[ok], p.sigma_m[ok], spec, method="kriging", neighbours=12, variogram_model="spherical"
     )
-    ds = gdal.Open(str(out))
-    assert ds.GetGeoTransform() == pytest.approx(spec.geotransform)
-    got = ds.GetRasterBand(1).ReadAsArray()
+    got, gt = _read_band(out)
+    assert gt == pytest.approx(spec.geotransform)
     # float32 storage: relative 6e-8, i.e. < 1e-4 m at elevations of a few hundred metres
-    np.testing.assert_allclose(got, surf.z.astype(np.float32), rtol=0, atol=1e-4, equal_nan=True)
+    np.testing.assert_allclose(got, surf.z, rtol=0, atol=1e-4, equal_nan=True)
     assert np.isfinite(got).sum() > 10
-    ds_std = gdal.Open(str(std))  # keep the dataset alive while its band is read (GDAL)
-    got_std = ds_std.GetRasterBand(1).ReadAsArray()
-    np.testing.assert_allclose(got_std, surf.std.astype(np.float32), rtol=0, atol=1e-4, equal_nan=True)
-    ds = ds_std = None
+    got_std, _ = _read_band(std)
+    np.testing.assert_allclose(got_std, surf.std, rtol=0, atol=1e-4, equal_nan=True)
+    ref = contours_layer(spec.x_centres, spec.y_centres, elevation_m=surf.z, elevation_interval_m=2.0)
+    lines = res["CONTOURS"]
+    assert lines.featureCount() == len(ref) > 0
+    assert [f["elevation_m"] for f in lines.getFeatures()] == [float(v) for v in ref.fields["elevation_m"]]
 
 
 def test_interpolate_surface_refuses_geographic_points(provider):
