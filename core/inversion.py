@@ -882,7 +882,6 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
     cost, r1, wc = _loss_terms(e, loss, f_scale)
     lam = np.full(k, _LAMBDA0)
     iters = np.zeros(k, dtype=int)
-    prev = np.full(k, np.inf)  # size of the last kept step
     eye = np.eye(p)
     for _ in range(max_iter):
         if rows.size == 0:
@@ -914,14 +913,9 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
             cost_new[ref], r1_new[ref], wc_new[ref] = cost[ref], r1[ref], wc[ref]
             theta, e, J, cost, r1, wc = th_new, e_new, J_new, cost_new, r1_new, wc_new
         # converged: a step below xtol that was accepted or, if refused, was hardly damped (the
-        # cost then rose at the rounding level only); or a kept step after which the error left,
-        # estimated from the contraction rho = |step| / |previous kept step| as
-        # |step| rho / (1 - rho), is below xtol / 10
+        # cost then rose at the rounding level only)
         big = np.max(np.abs(delta), axis=1)
-        rho = big / prev
-        left = np.where(rho < 0.5, big * rho / (1.0 - rho), np.inf)
-        done = (((big < xtol) & (accept | (lam < 1e-2))) | (accept & (left < 0.1 * xtol))) & ~conv_out[rows]
-        prev = np.where(accept, big, prev)
+        done = (big < xtol) & (accept | (lam < 1e-2)) & ~conv_out[rows]
         lam = np.where(accept, np.maximum(lam / 10.0, 1e-15), np.minimum(np.maximum(lam, 1e-6) * 10.0, 1e16))
         if np.any(done):
             fin = rows[done]
@@ -931,7 +925,7 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
             finished = conv_out[rows]
             if finished.sum() * 8 >= rows.size:  # compact the working set
                 keep = ~finished
-                rows, theta, e, J, cost, lam, iters, prev = (
+                rows, theta, e, J, cost, lam, iters = (
                     rows[keep],
                     theta[keep],
                     e[keep],
@@ -939,7 +933,6 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
                     cost[keep],
                     lam[keep],
                     iters[keep],
-                    prev[keep],
                 )
                 r1, wc = r1[keep], wc[keep]
                 t_obs, inv_s = t_obs[keep], inv_s[keep]
