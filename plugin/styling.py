@@ -26,6 +26,7 @@ from __future__ import annotations
 import os
 
 from qgis.core import (
+    QgsBilinearRasterResampler,
     QgsColorRampShader,
     QgsLayerTreeGroup,
     QgsLineSymbol,
@@ -110,6 +111,8 @@ def style_raster(layer: QgsRasterLayer, ramp, unit_label: str, invert=False) -> 
     renderer.setClassificationMin(lo)
     renderer.setClassificationMax(hi)
     layer.setRenderer(renderer)
+    # smooth display of the coarse grid when zoomed in (values stay the cells' own)
+    layer.resampleFilter().setZoomedInResampler(QgsBilinearRasterResampler())
     layer.triggerRepaint()
 
 
