@@ -687,6 +687,29 @@ class _ShotModel:
         return bad, reasons
 
 
+class _ShotComponents:
+    """Padded receiver-minus-source components and line frames, before projection.
+
+    :meth:`take` builds the :class:`_ShotModel` of some gathers; projecting
+    block by block keeps the arrays in the processor cache.
+    """
+
+    def __init__(self, Dx, Dy, Dz, u, w, q):
+        self.Dx, self.Dy, self.Dz, self.u, self.w, self.q = Dx, Dy, Dz, u, w, q
+
+    def take(self, rows):
+        Dx, Dy, Dz = self.Dx[rows], self.Dy[rows], self.Dz[rows]
+        u, w = self.u[rows], self.w[rows]
+        x = Dx * u[:, 0:1]
+        x += Dy * u[:, 1:2]
+        y = Dx * w[:, 0:1]
+        y += Dy * w[:, 1:2]
+        d2 = Dx * Dx
+        d2 += Dy * Dy
+        d2 += Dz * Dz
+        return _ShotModel(x, y, Dz, d2, self.q[rows])
+
+
 class _CmpModel:
     """NMO hyperbola :math:`t^2 = t_0^2 + x^2/V_{nmo}^2` [Levin 1971]."""
 
@@ -998,7 +1021,7 @@ def _fit_engine(model, time, sigma, valid, excluded, settings, progress=None):
 
     def run(sl):
         return _engine_block(
-            model.take(sl) if len(slices) > 1 else model,
+            model.take(sl),
             time[sl],
             sigma[sl],
             valid[sl],
@@ -1222,7 +1245,7 @@ def _exclude_mask(exclude, n):
 
 
 def _shot_model(gathers: GatherSet, q):
-    """Padded image-source model of a GatherSet: (model, row, col, shape)."""
+    """Padded components of a GatherSet for the image-source model: (components, row, col, shape)."""
     gid = np.asarray(gathers.gather, dtype=np.intp)
     g = gathers.n_gathers
     row, col, nmax = _pad_layout(gid, g)
@@ -1232,10 +1255,7 @@ def _shot_model(gathers: GatherSet, q):
     Dx, Dy, Dz = (_pad(R[:, i] - S[:, i], row, col, shape, fresh=True) for i in range(3))
     u = np.asarray(gathers.line_unit, float)
     w = np.asarray(gathers.cross_unit, float)
-    xu = Dx * u[:, 0:1] + Dy * u[:, 1:2]
-    yw = Dx * w[:, 0:1] + Dy * w[:, 1:2]
-    d2 = Dx * Dx + Dy * Dy + Dz * Dz
-    model = _ShotModel(xu, yw, Dz, d2, np.asarray(q, dtype=float))
+    model = _ShotComponents(Dx, Dy, Dz, u, w, np.asarray(q, dtype=float))
     return model, row, col, shape
 
 
@@ -1245,7 +1265,7 @@ def _shot_start(gathers: GatherSet, q, settings: Settings = _DEFAULT_SETTINGS):
     valid = _pad(True, row, col, shape, fill=False, dtype=bool)
     t = _pad(np.asarray(gathers.time_s, float), row, col, shape, fill=1.0)
     sg = _pad(np.asarray(gathers.sigma_s, float), row, col, shape, fill=1.0)
-    return model.start(t, sg, valid, settings)[0]
+    return model.take(slice(0, shape[0])).start(t, sg, valid, settings)[0]
 
 
 def fit_shot_gathers(
