@@ -95,6 +95,7 @@ from __future__ import annotations
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -359,6 +360,7 @@ def _rho2(z, loss):
     return -1.0 / (1.0 + z) ** 2
 
 
+@lru_cache(maxsize=32)
 def _loss_variance_inflation(loss: str, f_scale: float) -> float:
     """:math:`\\kappa = E[\\psi(e)^2] / E[\\psi'(e)]^2` for unit Gaussian e [Huber 1981].
 
