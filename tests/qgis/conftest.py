@@ -105,3 +105,13 @@ def _clean_project():
 
         QgsProject.instance().removeAllMapLayers()
         QgsProject.instance().layerTreeRoot().removeAllChildren()
+
+
+@pytest.fixture
+def iface(qgis_iface):
+    """pytest-qgis's stub iface, its map canvas given a projected CRS (without one PROJ complains
+    'unrecognized format' when layers are added)."""
+    from qgis.core import QgsCoordinateReferenceSystem
+
+    qgis_iface.mapCanvas().setDestinationCrs(QgsCoordinateReferenceSystem("EPSG:32633"))
+    return qgis_iface

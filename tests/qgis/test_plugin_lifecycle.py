@@ -15,9 +15,9 @@ def _registry():
     return QgsApplication.processingRegistry()
 
 
-def test_load_and_unload_through_class_factory(qgis_iface, qgis_processing):
+def test_load_and_unload_through_class_factory(iface, qgis_processing):
     assert _registry().providerById("reflectormapper") is None
-    plugin = reflector_mapper.classFactory(qgis_iface)
+    plugin = reflector_mapper.classFactory(iface)
     plugin.initGui()
     try:
         prov = _registry().providerById("reflectormapper")
@@ -33,10 +33,10 @@ def test_load_and_unload_through_class_factory(qgis_iface, qgis_processing):
     assert plugin.provider is None and plugin.dock is None and plugin.actions == []
 
 
-def test_load_twice_in_a_row_leaves_one_provider(qgis_iface, qgis_processing):
+def test_load_twice_in_a_row_leaves_one_provider(iface, qgis_processing):
     # QGIS reloads plugins (Plugin Reloader, updates): unload must leave nothing behind.
     for _ in range(2):
-        plugin = reflector_mapper.classFactory(qgis_iface)
+        plugin = reflector_mapper.classFactory(iface)
         plugin.initGui()
         assert _registry().providerById("reflectormapper") is not None
         plugin.unload()
@@ -52,7 +52,7 @@ def test_every_algorithm_has_help_with_the_caution(provider):
 
 
 @pytest.mark.parametrize("missing", ["scipy", "shapely"], ids=["no-scipy", "no-shapely"])
-def test_missing_package_is_named_and_no_provider(qgis_iface, qgis_processing, missing):
+def test_missing_package_is_named_and_no_provider(iface, qgis_processing, missing):
     import importlib
 
     def importer(name):
@@ -60,11 +60,11 @@ def test_missing_package_is_named_and_no_provider(qgis_iface, qgis_processing, m
             raise ImportError(f"No module named '{name}'")
         return importlib.import_module(name)
 
-    bar = qgis_iface.messageBar()
+    bar = iface.messageBar()
     bar.clear_messages()
     from reflector_mapper.plugin.main import ReflectorMapperPlugin
 
-    plugin = ReflectorMapperPlugin(qgis_iface, importer=importer)
+    plugin = ReflectorMapperPlugin(iface, importer=importer)
     plugin.initGui()
     try:
         assert _registry().providerById("reflectormapper") is None

@@ -41,8 +41,8 @@ def test_model_curve_is_the_core_fit(sample_survey):
     assert np.all(np.diff(qc.offsets_m(rows)) >= 0)  # sorted by offset for the plot
 
 
-def test_panel_shows_selected_shot_and_refit_updates_layer(qgis_iface, sample_survey, shots_layer):
-    dock = QcDock(qgis_iface)
+def test_panel_shows_selected_shot_and_refit_updates_layer(iface, sample_survey, shots_layer):
+    dock = QcDock(iface)
     dock.set_survey(str(sample_survey), shots_layer)
     # choose the shot from a selected feature of the shots layer
     target = next(f for f in shots_layer.getFeatures() if f["line"] == "B")
@@ -88,8 +88,8 @@ def test_panel_shows_selected_shot_and_refit_updates_layer(qgis_iface, sample_su
     dock.deleteLater()
 
 
-def test_panel_draws_plots(qgis_iface, sample_survey):
-    dock = QcDock(qgis_iface)
+def test_panel_draws_plots(iface, sample_survey):
+    dock = QcDock(iface)
     dock.set_survey(str(sample_survey))
     dock.show_shot("A", "1001")
     if dock.plots.use_matplotlib:
