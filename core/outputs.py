@@ -14,6 +14,7 @@ import numpy as np
 from . import layers as lay
 from .atomic import OutputSet
 from .dxf import write_contours_dxf
+from .errors import OutputError
 from .geotiff import write_geotiff_grid
 from .gpkg import write_geopackage
 from .pipeline import surface_data
@@ -98,10 +99,24 @@ def _safe(text) -> str:
 
 
 def write_all(result, out_dir, progress) -> list:
-    """Write every output; returns the list of files written."""
+    """Write every output; returns the list of files written.
+
+    A system error while writing (disk full, permissions, a vanished folder)
+    becomes :class:`~.errors.OutputError`; the staged files are removed and
+    the previous outputs stay as they were.
+    """
+    try:
+        return _write_all(result, Path(out_dir), progress)
+    except OSError as exc:
+        raise OutputError(
+            f"could not write the outputs in {out_dir}: {exc.strerror or exc}"
+            f"{f' ({exc.filename})' if exc.filename else ''}; earlier outputs there are unchanged"
+        ) from exc
+
+
+def _write_all(result, out_dir, progress) -> list:
     from .reporting import build_report
 
-    out_dir = Path(out_dir)
     crs = result.survey.crs
     layers = result_layers(result)
     spec = result.spec
