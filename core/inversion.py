@@ -541,6 +541,17 @@ class _ShotModel:
         r = np.tanh(theta[:, 2])
         return np.column_stack([np.exp(theta[:, 0]), np.exp(theta[:, 1]), self.smax * r])
 
+    def natural_jacobian(self, J, theta):
+        """Jacobian in (V, h, s) from the one in the internal parameters (chain rule)."""
+        r = np.tanh(theta[:, 2])
+        scale = np.column_stack([np.exp(theta[:, 0]), np.exp(theta[:, 1]), self.smax * (1.0 - r * r)])
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            Jn = J / scale[:, :, None]
+        bad = ~np.all(np.isfinite(scale) & (scale > 0), axis=1)
+        if np.any(bad):  # s at its bound: evaluate the natural derivatives directly
+            Jn[bad] = self.take(bad).evaluate(self.take(bad).natural(theta[bad]), natural=True)[1]
+        return Jn
+
     def internal(self, params):
         r = np.clip(params[:, 2] / self.smax, -0.999999, 0.999999)
         return np.column_stack([np.log(params[:, 0]), np.log(params[:, 1]), np.arctanh(r)])
@@ -733,6 +744,10 @@ class _CmpModel:
     def natural(self, theta):
         return np.exp(theta)
 
+    def natural_jacobian(self, J, theta):
+        """Jacobian in (t0, Vnmo) from the one in (ln t0, ln Vnmo)."""
+        return J / np.exp(theta)[:, :, None]
+
     def internal(self, params):
         return np.log(params)
 
@@ -815,7 +830,14 @@ def _batched_least_squares(model, theta0, time, sigma, usable, loss, f_scale, xt
     max_iter = _MAX_ITER if max_iter is None else max_iter
     k = theta0.shape[0]
     if k == 0:
-        return theta0.astype(float).copy(), np.zeros(0, dtype=int), np.zeros(0, dtype=bool)
+        n, p = time.shape[1], theta0.shape[1]
+        return (
+            theta0.astype(float).copy(),
+            np.zeros(0, dtype=int),
+            np.zeros(0, dtype=bool),
+            np.zeros((0, n)),
+            np.zeros((0, p, n)),
+        )
     nmax = time.shape[1]
     block = max(16, _BLOCK_ELEMENTS // max(nmax, 1))
     if k <= block:
@@ -892,12 +914,15 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
 
     Returns
     -------
-    theta (k, p), iterations (k,), converged (k,) bool
+    theta (k, p), iterations (k,), converged (k,) bool, and the model's times
+    (k, nmax) and internal-parameter Jacobian (k, p, nmax) at the returned theta
     """
     k, p = theta0.shape
     theta_out = theta0.astype(float).copy()
     iters_out = np.zeros(k, dtype=int)
     conv_out = np.zeros(k, dtype=bool)
+    pred_out = np.empty(time.shape)
+    J_out = np.empty((k, p, time.shape[1]))
     rows = np.arange(k)
     theta = theta_out.copy()
     t_obs = time
@@ -931,12 +956,12 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         accept = np.isfinite(cost_new) & (cost_new <= cost)
         iters += 1
         if np.all(accept):
-            theta, e, J, cost, r1, wc = th_new, e_new, J_new, cost_new, r1_new, wc_new
+            theta, pred, e, J, cost, r1, wc = th_new, pred_new, e_new, J_new, cost_new, r1_new, wc_new
         else:  # refused rows keep their previous state
             ref = ~accept
-            th_new[ref], e_new[ref], J_new[ref] = theta[ref], e[ref], J[ref]
+            th_new[ref], pred_new[ref], e_new[ref], J_new[ref] = theta[ref], pred[ref], e[ref], J[ref]
             cost_new[ref], r1_new[ref], wc_new[ref] = cost[ref], r1[ref], wc[ref]
-            theta, e, J, cost, r1, wc = th_new, e_new, J_new, cost_new, r1_new, wc_new
+            theta, pred, e, J, cost, r1, wc = th_new, pred_new, e_new, J_new, cost_new, r1_new, wc_new
         # converged: a step below xtol that was accepted or, if refused, was hardly damped (the
         # cost then rose at the rounding level only)
         big = np.max(np.abs(delta), axis=1)
@@ -947,12 +972,15 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
             theta_out[fin] = theta[done]
             iters_out[fin] = iters[done]
             conv_out[fin] = True
+            pred_out[fin] = pred[done]
+            J_out[fin] = J[done]
             finished = conv_out[rows]
             if finished.sum() * 8 >= rows.size:  # compact the working set
                 keep = ~finished
-                rows, theta, e, J, cost, lam, iters = (
+                rows, theta, pred, e, J, cost, lam, iters = (
                     rows[keep],
                     theta[keep],
+                    pred[keep],
                     e[keep],
                     J[keep],
                     cost[keep],
@@ -966,7 +994,9 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
     live = ~conv_out[rows]
     theta_out[rows[live]] = theta[live]
     iters_out[rows[live]] = iters[live]
-    return theta_out, iters_out, conv_out
+    pred_out[rows[live]] = pred[live]
+    J_out[rows[live]] = J[live]
+    return theta_out, iters_out, conv_out, pred_out, J_out
 
 
 def _scaled_normal_matrix(J, inv_s):
@@ -1076,6 +1106,8 @@ def _engine_block(model, time, sigma, valid, excluded, settings, loss, C, k_rej,
     iterations = np.zeros(g, dtype=int)
     converged = np.zeros(g, dtype=bool)
     theta_start, _ = model.start(time, sigma, base, settings)  # padding holds t = sigma = 1
+    pred_all = np.full((g, nmax), np.nan)  # model times and Jacobian at theta, kept from the fits
+    J_all = np.full((g, p, nmax), np.nan)
     todo = np.flatnonzero(fitted)
     few_after = np.zeros(g, dtype=bool)
     for rnd in range(_MAX_REJECTION_ROUNDS + 1):
@@ -1083,12 +1115,14 @@ def _engine_block(model, time, sigma, valid, excluded, settings, loss, C, k_rej,
             sel = _all_or(todo, g)
             usable = base[sel] & ~rejected[sel]
             start = np.where(np.isfinite(theta[sel]), theta[sel], theta_start[sel])
-            th, it, conv = _batched_least_squares(
+            th, it, conv, pr, jac = _batched_least_squares(
                 model.take(sel), start, time[sel], sigma[sel], usable, loss, C, progress=progress
             )
             theta[todo] = th
             iterations[todo] += it
             converged[todo] = conv
+            pred_all[sel] = pr
+            J_all[sel] = jac
         if not np.isfinite(k_rej) or rnd == _MAX_REJECTION_ROUNDS:
             break
         # mispick test on all non-excluded picks of the gathers fitted in this round (the others
@@ -1096,8 +1130,7 @@ def _engine_block(model, time, sigma, valid, excluded, settings, loss, C, k_rej,
         fi = todo[fitted[todo]]
         if fi.size == 0:
             break
-        pred, _ = model.take(fi).evaluate(theta[fi])
-        e = (time[fi] - pred) / sigma[fi]
+        e = (time[fi] - pred_all[fi]) / sigma[fi]
         used = base[fi] & ~rejected[fi]
         med = _row_median(e, used)
         mad = _row_median(np.abs(e - med[:, None]), used)
@@ -1132,7 +1165,7 @@ def _engine_block(model, time, sigma, valid, excluded, settings, loss, C, k_rej,
         fs = _all_or(fi, g)
         sub = model.take(fs)
         params[fs] = sub.natural(theta[fs])
-        pred, Jn = sub.evaluate(params[fs], natural=True)
+        pred, Jn = pred_all[fs], sub.natural_jacobian(J_all[fs], theta[fs])
         r = time[fs] - pred
         resid[fs] = np.where(valid[fs], r, np.nan)
         u = usable[fs]
