@@ -368,6 +368,14 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     if bh is not None and len(bh):
         r.borehole_check = borehole_check(r.fit.points, bh, settings, r.seismic_diag)
         r.depth_ratio = borehole_depth_ratio(r, bh)
+        if settings.calibrate_velocity:
+            k = r.depth_ratio["factor"]
+            r.fit = calibrate_fit(r.fit, k, ground)
+            r.notes.append(
+                f"velocities scaled by the borehole calibration factor {k:.4f} ± "
+                f"{r.depth_ratio['sigma_factor']:.4f} (calibrate_velocity = true); the borehole check above "
+                "is from the uncalibrated seismic surface"
+            )
         r.kriged_surface, r.kriged_diag = interpolate_step(
             r.fit.points, r.spec, settings, interp, boreholes=bh, progress=SubProgress(progress, 50, 60)
         )
@@ -481,6 +489,29 @@ def borehole_depth_ratio(result, boreholes):
         chi2 = float(np.sum(w * (ratio - factor) ** 2) / (len(ratio) - 1))
         se *= max(1.0, np.sqrt(chi2))
     return {"ratio": ratio, "sigma": sig, "factor": factor, "sigma_factor": se, "n": len(ratio)}
+
+
+def calibrate_fit(fit: FitStep, factor: float, ground) -> FitStep:
+    """Scale every gather's velocity and normal distance by ``factor`` (t0 and dip unchanged).
+
+    With t0 = 2h/V fixed by the picks, a velocity error scales h, and so
+    every depth, by the same factor; the borehole/seismic depth ratio
+    (:func:`borehole_depth_ratio`) estimates it. Standard errors and the
+    (V, h) rows of the covariance scale with it.
+    """
+    f = fit.fits
+    scale = np.array([factor, factor, 1.0])
+    scaled = replace(
+        f,
+        velocity_m_s=f.velocity_m_s * factor,
+        normal_distance_m=f.normal_distance_m * factor,
+        se_velocity_m_s=f.se_velocity_m_s * factor,
+        se_normal_distance_m=f.se_normal_distance_m * factor,
+        covariance=f.covariance * scale[None, :, None] * scale[None, None, :],
+    )
+    pts = reflector_points(fit.gathers, scaled, ground=ground)
+    return FitStep(fit.frames, fit.gathers, scaled, pts.select(pts.kind == "zero_offset"),
+                   pts.select(pts.kind == "receiver"))
 
 
 def products_step(r: RunResult) -> None:

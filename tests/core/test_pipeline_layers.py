@@ -17,12 +17,12 @@ VINT_M_S = np.array([1500.0, 2400.0])
 GROUND_M = 100.0
 
 
-def _write_survey(folder, reflector_setting=None):
+def _write_survey(folder, reflector_setting=None, boreholes=False, calibrate=False):
     """Two crossing lines (E-W and N-S) over two flat interfaces; exact ray-traced times."""
     stations, picks = [], []
     for line, az in (("EW", 90.0), ("NS", 0.0)):
         d = np.array([np.sin(np.radians(az)), np.cos(np.radians(az))])
-        pos = (np.arange(61) - 30)[:, None] * 2.0 * d + 500_000.0 + np.array([0.0, 5_000_000.0])
+        pos = (np.arange(61) - 30)[:, None] * 2.0 * d + np.array([500_000.0, 5_000_000.0])
         labels = [str(100 + i) for i in range(len(pos))]
         stations += [(line, lab, x, y, GROUND_M) for lab, (x, y) in zip(labels, pos)]
         for i_shot in range(0, 61, 10):
@@ -37,10 +37,21 @@ def _write_survey(folder, reflector_setting=None):
     (folder / "picks.csv").write_text(
         "line,shot,receiver,time_ms,reflector\n" + "".join(",".join(p) + "\n" for p in picks)
     )
-    extra = f'\n[processing]\nreflector = "{reflector_setting}"\n' if reflector_setting else ""
+    files = 'stations = "stations.csv"\npicks = "picks.csv"\n'
+    if boreholes:  # three boreholes reaching the deeper interface at its true depth
+        rows = [(f"BH{i}", 500_000.0 + dx, 5_000_000.0 + dy) for i, (dx, dy) in enumerate([(-20, 0), (0, 20), (30, 0)])]
+        (folder / "boreholes.csv").write_text(
+            "borehole,x,y,z,depth_m\n" + "".join(f"{n},{x},{y},{GROUND_M},{THICKNESS_M.sum()}\n" for n, x, y in rows)
+        )
+        files += 'boreholes = "boreholes.csv"\n'
+    processing = []
+    if reflector_setting:
+        processing.append(f'reflector = "{reflector_setting}"')
+    if calibrate:
+        processing.append("calibrate_velocity = true")
+    extra = "[processing]\n" + "\n".join(processing) + "\n" if processing else ""
     (folder / "survey.toml").write_text(
-        '[survey]\nname = "two layers"\ncrs = "EPSG:32633"\n[files]\nstations = "stations.csv"\n'
-        'picks = "picks.csv"\n' + extra
+        '[survey]\nname = "two layers"\ncrs = "EPSG:32633"\n[files]\n' + files + extra
     )
     return folder / "survey.toml"
 
@@ -90,3 +101,15 @@ def test_unknown_reflector_is_refused(tmp_path):
 
     with pytest.raises(InversionError, match="reflector = 'basalt' has no picks; the picks name rock, top"):
         compute(load_survey(_write_survey(tmp_path, "basalt")), method="kriging")
+
+
+def test_velocity_calibration_to_boreholes(tmp_path):
+    """Boreholes at the true 30 m: the ratio measures the V_rms/V_average bias and removes it."""
+    r = compute(load_survey(_write_survey(tmp_path, boreholes=True, calibrate=True)), method="kriging")
+    t0, vrms = forward.layered_t0_vrms(THICKNESS_M, VINT_M_S)
+    seismic_depth = vrms[-1] * t0[-1] / 2  # what the uncalibrated fits see (Dix 1955), +fit bias
+    assert r.depth_ratio["factor"] == pytest.approx(THICKNESS_M.sum() / seismic_depth, rel=0.02)
+    assert r.depth_ratio["sigma_factor"] < 0.01
+    elev = r.surface.z[~r.surface.mask]
+    assert np.allclose(elev, GROUND_M - THICKNESS_M.sum(), atol=0.15)
+    assert any("calibration factor" in n for n in r.notes)
