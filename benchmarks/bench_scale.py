@@ -121,13 +121,13 @@ def run(quick=False, append=True):
     except OSError:
         load1 = "n/a"
     lines = ["| N points | cells | model chosen | variogram (s) | fit (s) | cross-val. (s) | grid (s) "
-             "| grid us/cell | total (s) | peak RSS (MiB) | LOO MSSE |",
-             "|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|"]
+             "| grid us/cell | total (s) | RSS before (MiB) | peak RSS (MiB) | LOO MSSE |",
+             "|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
     for r in results:
         lines.append(
             f"| {r['n_points']} | {r['n_cells']} | {r['model']} | {r['t_variogram']:.2f} | {r['t_fit']:.2f} | "
             f"{r['t_cv']:.2f} | {r['t_grid']:.2f} | {1e6 * r['t_grid'] / r['n_cells']:.1f} | "
-            f"{r['t_total']:.2f} | {r['peak_rss_mib']:.0f} | {r['msse']:.2f} |"
+            f"{r['t_total']:.2f} | {r['base_rss_mib']:.0f} | {r['peak_rss_mib']:.0f} | {r['msse']:.2f} |"
         )
     slopes = []
 
@@ -157,8 +157,8 @@ def run(quick=False, append=True):
         f"{os.cpu_count()} cores; Python {platform.python_version()}, numpy {np.__version__}, "
         f"scipy {scipy.__version__}; load average {load0} at the start and {load1} at the end "
         "(other jobs share the machine, so times are inflated and noisy).\n"
-        "Each case in its own process; peak RSS of that process (includes the interpreter, numpy/scipy "
-        "and the data: about 60 MiB before any work). k = 32 neighbours, 2 worker threads with BLAS "
+        "Each case in its own process; peak RSS of that process, and its RSS before the work (interpreter, "
+        "numpy/scipy, the data and the grid spec). k = 32 neighbours, 2 worker threads with BLAS "
         "on one thread; variogram = experimental (5000-point subsample) + three fits + choice by "
         "leave-one-out log score on 2000 points; cross-validation on at most 20 000 points.\n\n"
         + "\n".join(lines)
