@@ -468,16 +468,41 @@ def _inv_small(A):
 
 
 def _safe_solve(A, b):
-    """Solve stacked systems ``A x = b`` after Jacobi scaling; singular ones give 0."""
+    """Solve stacked symmetric systems ``A x = b`` after Jacobi scaling; singular ones give 0.
+
+    p = 2 and 3 by the closed-form adjugate of a symmetric matrix (no LAPACK
+    call per system); other sizes through :func:`_inv_small`.
+    """
     d = np.sqrt(np.abs(A.diagonal(axis1=1, axis2=2)))
     d = np.where(d > 0, d, 1.0)
-    As = A / d[:, :, None] / d[:, None, :]
+    a = A / (d[:, :, None] * d[:, None, :])
     bs = b / d
-    inv, det = _inv_small(As)
-    with np.errstate(invalid="ignore", over="ignore"):
-        x = np.matmul(inv, bs[:, :, None])[:, :, 0]
+    p = A.shape[-1]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if p == 3:
+            a00, a01, a02, a11, a12, a22 = a[:, 0, 0], a[:, 0, 1], a[:, 0, 2], a[:, 1, 1], a[:, 1, 2], a[:, 2, 2]
+            c00 = a11 * a22 - a12 * a12
+            c01 = a02 * a12 - a01 * a22
+            c02 = a01 * a12 - a02 * a11
+            c11 = a00 * a22 - a02 * a02
+            c12 = a01 * a02 - a00 * a12
+            c22 = a00 * a11 - a01 * a01
+            det = a00 * c00 + a01 * c01 + a02 * c02
+            b0, b1, b2 = bs[:, 0], bs[:, 1], bs[:, 2]
+            x = np.empty_like(bs)
+            inv_det = 1.0 / det
+            x[:, 0] = (c00 * b0 + c01 * b1 + c02 * b2) * inv_det
+            x[:, 1] = (c01 * b0 + c11 * b1 + c12 * b2) * inv_det
+            x[:, 2] = (c02 * b0 + c12 * b1 + c22 * b2) * inv_det
+        elif p == 2:
+            a00, a01, a11 = a[:, 0, 0], a[:, 0, 1], a[:, 1, 1]
+            det = a00 * a11 - a01 * a01
+            x = np.column_stack([a11 * bs[:, 0] - a01 * bs[:, 1], a00 * bs[:, 1] - a01 * bs[:, 0]]) / det[:, None]
+        else:
+            inv, det = _inv_small(a)
+            x = np.matmul(inv, bs[:, :, None])[:, :, 0]
     good = (det > 0) & np.all(np.isfinite(x), axis=1)
-    x = np.where(good[:, None], x, 0.0)
+    x[~good] = 0.0
     return x / d
 
 
