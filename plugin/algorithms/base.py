@@ -30,6 +30,7 @@ from qgis.core import (
     QgsProcessingParameterField,
     QgsProcessingParameterFile,
     QgsProcessingParameterNumber,
+    QgsProcessingUtils,
     QgsWkbTypes,
 )
 from qgis.PyQt.QtCore import QCoreApplication, QVariant
@@ -238,7 +239,8 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
             raise QgsProcessingException(
                 tr("The stations layer has no CRS and none was chosen: choose the CRS of the survey.")
             )
-        workdir = workdir or tempfile.mkdtemp(prefix="reflector-survey-")
+        # inside Processing's temporary folder, which QGIS removes when it exits
+        workdir = workdir or tempfile.mkdtemp(prefix="reflector-survey-", dir=QgsProcessingUtils.tempFolder())
         return write_survey_from_layers(
             workdir,
             picks,
