@@ -354,3 +354,56 @@ def test_run_survey_loads_styled_group(provider, sample_survey, core_results, tm
         "Reflector elevation contours",
         "Dip and strike (crossing lines)",
     } <= names
+
+
+def test_algorithms_chain_in_a_model(provider, sample_survey, tmp_path):
+    # the model designer's way: fit gathers -> reflector points -> interpolate surface
+    from qgis.core import (
+        QgsProcessingModelAlgorithm,
+        QgsProcessingModelChildAlgorithm,
+        QgsProcessingModelChildParameterSource,
+        QgsProcessingModelOutput,
+        QgsProcessingModelParameter,
+        QgsProcessingParameterFile,
+    )
+
+    model = QgsProcessingModelAlgorithm("reflector chain", "tests")
+    model.addModelParameter(
+        QgsProcessingParameterFile("survey", "survey", extension="toml"), QgsProcessingModelParameter("survey")
+    )
+    fit = QgsProcessingModelChildAlgorithm("reflectormapper:fitgathers")
+    fit.setChildId("fit")
+    fit.addParameterSources("SURVEY", [QgsProcessingModelChildParameterSource.fromModelParameter("survey")])
+    model.addChildAlgorithm(fit)
+    surf = QgsProcessingModelChildAlgorithm("reflectormapper:interpolatesurface")
+    surf.setChildId("surf")
+    surf.addParameterSources(
+        "INPUT", [QgsProcessingModelChildParameterSource.fromChildOutput("fit", "REFLECTOR_POINTS")]
+    )
+    for name, value in (
+        ("VALUE_FIELD", "elevation_m"),
+        ("ERROR_FIELD", "sigma_m"),
+        ("CELL_SIZE", 20.0),
+        ("NEIGHBOURS", 12),
+        ("METHOD", 0),
+        ("VARIOGRAM", 0),
+    ):
+        surf.addParameterSources(name, [QgsProcessingModelChildParameterSource.fromStaticValue(value)])
+    out = QgsProcessingModelOutput("surface")
+    out.setChildOutputName("OUTPUT")
+    surf.setModelOutputs({"surface": out})
+    model.addChildAlgorithm(surf)
+    ok, errors = model.validate()
+    assert ok, errors
+    target = tmp_path / "chained.tif"
+    res = run_model(model, {"survey": str(sample_survey), "surf:surface": str(target)})
+    assert target.is_file()
+    arr, _ = _read_band(target)
+    assert np.isfinite(arr).sum() > 10
+    assert res["surf:surface"] == str(target)
+
+
+def run_model(model, params):
+    import processing
+
+    return processing.run(model, params)
