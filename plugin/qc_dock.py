@@ -345,7 +345,7 @@ class QcDock(QDockWidget):
         """Load a survey (fits all its gathers) and fill the shot list."""
         self.qc = GatherQc(survey_path)
         if shots_layer is not None:
-            self.shots_layer = shots_layer
+            self.follow_layer(shots_layer)
         self._filling = True
         self.combo.clear()
         for line, shot in self.qc.labels():
@@ -375,9 +375,34 @@ class QcDock(QDockWidget):
         if layer is None or not isinstance(layer, QgsVectorLayer) or not layer.selectedFeatureCount():
             return False
         feat = next(iter(layer.getSelectedFeatures()))
-        self.shots_layer = layer
-        self.show_shot(feat["line"], feat["shot"])
+        self.follow_layer(layer)
+        if self.qc is None or layer.fields().indexOf("line") < 0 or layer.fields().indexOf("shot") < 0:
+            return False
+        try:
+            self.show_shot(feat["line"], feat["shot"])
+        except ValueError:  # a feature of another survey: nothing to show
+            return False
         return True
+
+    def follow_layer(self, layer):
+        """Use ``layer`` as the shots layer: selecting a shot on the map shows its gather."""
+        if layer is self.shots_layer:
+            return
+        self._unfollow()
+        self.shots_layer = layer
+        layer.selectionChanged.connect(self._selection_changed)
+
+    def _unfollow(self):
+        if self.shots_layer is not None:
+            try:
+                self.shots_layer.selectionChanged.disconnect(self._selection_changed)
+            except (TypeError, RuntimeError):  # already disconnected, or the layer was deleted
+                pass
+        self.shots_layer = None
+
+    def _selection_changed(self, selected, *_):
+        if selected and self.qc is not None:
+            self.show_selected_shot()
 
     # -- display ------------------------------------------------------------------------------
     def show_gather(self, g):
@@ -469,7 +494,7 @@ class QcDock(QDockWidget):
     def close_panel(self):
         """Release the survey (called by the plugin's unload)."""
         self.qc = None
-        self.shots_layer = None
+        self._unfollow()
 
 
 def _find_shots_layer():

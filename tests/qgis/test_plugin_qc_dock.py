@@ -44,11 +44,14 @@ def test_model_curve_is_the_core_fit(sample_survey):
 def test_panel_shows_selected_shot_and_refit_updates_layer(iface, sample_survey, shots_layer):
     dock = QcDock(iface)
     dock.set_survey(str(sample_survey), shots_layer)
-    # choose the shot from a selected feature of the shots layer
+    # choose the shot by selecting its feature on the shots layer (the panel follows the selection)
     target = next(f for f in shots_layer.getFeatures() if f["line"] == "B")
     shots_layer.selectByIds([target.id()])
-    assert dock.show_selected_shot()
     g = dock.current
+    assert dock.qc.labels()[g] == ("B", str(target["shot"]))
+    dock.show_gather(0)
+    assert dock.show_selected_shot()  # the button does the same
+    assert dock.current == g
     assert dock.qc.labels()[g] == ("B", str(target["shot"]))
     n_rows = dock.table.rowCount()
     assert n_rows == int((dock.qc.gathers.gather == g).sum()) > 6
