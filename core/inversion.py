@@ -923,8 +923,10 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
     :math:`\\lambda_k` grows tenfold (from at least :math:`10^{-6}`). Steps are
     capped at ``_MAX_STEP`` per internal parameter. A gather has converged when
     a step below ``xtol`` is kept (or refused while hardly damped: the cost
-    then rose at the rounding level only); near the solution the iteration
-    contracts fast, so the error left is well below ``xtol``. The fixed point
+    then rose at the rounding level only), or when the next undamped step
+    would be below ``xtol / 10``: the current point is then kept without
+    evaluating the model again. Near the solution the iteration contracts
+    fast, so the error left is well below ``xtol``. The fixed point
     is a stationary point of F, the same function scipy's ``least_squares``
     minimises with this loss and ``f_scale = C``. Converged gathers leave the
     working set, which is compacted so that the tail of slow gathers costs
@@ -973,6 +975,36 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         delta = _safe_solve(A, g)
         big = np.max(np.abs(delta), axis=1)
         delta *= np.minimum(1.0, _MAX_STEP / np.maximum(big, 1e-300))[:, None]
+        # converged without trying the step: where the undamped step is below xtol / 10 the
+        # current point is kept (with its model times and Jacobian), saving an evaluation
+        pre = (big < 0.1 * xtol) & (lam < 1e-2) & ~conv_out[rows]
+        if np.any(pre):
+            fin = rows[pre]
+            theta_out[fin] = theta[pre]
+            iters_out[fin] = iters[pre] + 1
+            conv_out[fin] = True
+            pred_out[fin] = pred[pre]
+            J_out[fin] = J[pre]
+            finished = conv_out[rows]
+            if finished.all():
+                rows = rows[:0]
+                break
+            if finished.sum() * 8 >= rows.size:  # compact the working set
+                keep = ~finished
+                rows, theta, pred, e, J, cost, lam, iters, delta = (
+                    rows[keep],
+                    theta[keep],
+                    pred[keep],
+                    e[keep],
+                    J[keep],
+                    cost[keep],
+                    lam[keep],
+                    iters[keep],
+                    delta[keep],
+                )
+                r1, wc = r1[keep], wc[keep]
+                t_obs, inv_s = t_obs[keep], inv_s[keep]
+                model = model.take(keep)
         th_new = theta + delta
         pred_new, J_new = model.evaluate(th_new)
         e_new = t_obs - pred_new
