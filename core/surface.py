@@ -82,7 +82,6 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import lu_factor, lu_solve
 from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
@@ -1008,7 +1007,7 @@ class OrdinaryKriging:
     (no N x M matrix). Chunks run on ``n_threads`` threads (NumPy releases the
     GIL in the batched solve); each thread's KD-tree query is single-threaded,
     so there is no nested thread pool. With ``neighbours=None`` (global, for at
-    most ``GLOBAL_MAX_DATA`` data) the (N+1) system is LU-factored once.
+    most ``GLOBAL_MAX_DATA`` data) the (N+1) system is inverted once.
 
     Systems are assembled with the variogram divided by its total sill (the
     Lagrange row of ones is then on the same scale as the rest), which does not
@@ -1109,9 +1108,17 @@ class OrdinaryKriging:
         self._e_unit = e / vario.total_sill
         self._check_duplicates()
         self.tree_ = cKDTree(np.column_stack([self._xc, self._yc]))
-        self._lu = None
+        self._ainv = None
         if k is None:
-            self._lu = lu_factor(self._global_matrix(), check_finite=False)
+            # the inverse (not an LU) so that every chunk of targets is one matrix product, and
+            # the closed-form cross-validation reuses it
+            try:
+                self._ainv = np.linalg.inv(self._global_matrix())
+            except np.linalg.LinAlgError as exc:
+                raise InversionError(
+                    f"the global kriging system is singular ({exc}); give the data an error variance "
+                    "or the model a small nugget"
+                ) from exc
         return self
 
     def _check_duplicates(self):
@@ -1188,13 +1195,15 @@ class OrdinaryKriging:
     def _predict_chunk(self, tx, ty):
         """Estimate and kriging variance for centred targets (one chunk)."""
         if self._k is None:
+            n = self.n_data_
+            b = np.empty((tx.size, n + 1))
             d = np.hypot(tx[:, None] - self._xc[None, :], ty[:, None] - self._yc[None, :])
-            b = np.empty((self.n_data_ + 1, tx.size))
-            b[:-1] = self.variogram_._unit(d).T
-            b[-1] = 1.0
-            sol = lu_solve(self._lu, b, check_finite=False)
-            est = sol[:-1].T @ self.z_
-            var = (np.einsum("ij,ij->j", sol[:-1], b[:-1]) + sol[-1]) * self.variogram_.total_sill
+            b[:, :n] = self.variogram_._unit_inplace(d)
+            del d
+            b[:, n] = 1.0
+            sol = b @ self._ainv  # A symmetric: rows are the weights and the Lagrange multiplier
+            est = sol[:, :n] @ self.z_
+            var = np.einsum("ij,ij->i", sol, b) * self.variogram_.total_sill
             return est, var
         _, idx = self.tree_.query(np.column_stack([tx, ty]), k=self._k, workers=1)
         if self._k == 1:
@@ -1349,7 +1358,7 @@ class OrdinaryKriging:
             sel = np.sort(np.random.default_rng(seed).choice(n, int(max_points), replace=False))
         s = self.variogram_.total_sill
         if self._k is None:
-            bmat = np.linalg.inv(self._global_matrix())
+            bmat = self._ainv
             bz = bmat[:n, :n] @ self.z_
             bii = np.diag(bmat)[:n]
             resid = (bz / bii)[sel]
