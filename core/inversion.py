@@ -47,6 +47,8 @@ Conventions of the fit, chosen and documented here
   refitted without them, and all picks are re-tested (a rejected pick may come
   back), until the set is stable or after five rounds. Rejected picks keep
   their residual and are reported (``rejected``); nothing is dropped silently.
+  A gather left with too few picks is flagged ``too_few_picks`` (with the
+  number rejected in its reason).
 * **User exclusions** (``exclude``, e.g. from the QC panel) are counted apart
   (``excluded``, ``picks_excluded``), never as rejections.
 * **Covariance.** :math:`\\mathrm{Cov} = \\kappa\\,F\\,(J^T\\Sigma^{-1}J)^{-1}`
