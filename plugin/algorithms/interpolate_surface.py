@@ -90,9 +90,9 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         "Fit shot gathers, with an elevation field and an optional standard-error field "
         "(boreholes: a small error).</p>"
         "<p><b>Outputs</b>: the surface and its kriging standard deviation (GeoTIFF; empty for the "
-        "spline) and contour lines of the surface (fields kind, elevation_m, depth_m, index; every "
-        "fifth an index contour). Empty cell size, masking distance or contour interval: chosen "
-        "from the data.</p>"
+        "spline) and contour lines of the surface (fields kind = 'elevation', elevation_m, index; "
+        "every fifth level an index contour). Empty cell size, masking distance or contour interval: "
+        "chosen from the data.</p>"
     )
 
     def initAlgorithm(self, config=None):

@@ -15,7 +15,11 @@ def _registry():
     return QgsApplication.processingRegistry()
 
 
-def test_load_and_unload_through_class_factory(iface, qgis_processing):
+def test_load_and_unload_through_class_factory(iface, qgis_processing, monkeypatch):
+    from unittest.mock import MagicMock
+
+    for name in ("removePluginMenu", "removeToolBarIcon", "removeDockWidget"):
+        monkeypatch.setattr(iface, name, MagicMock(wraps=getattr(iface, name)))
     assert _registry().providerById("reflectormapper") is None
     plugin = reflector_mapper.classFactory(iface)
     plugin.initGui()
@@ -24,6 +28,7 @@ def test_load_and_unload_through_class_factory(iface, qgis_processing):
         assert prov is not None
         assert {a.name() for a in prov.algorithms()} == ALGORITHM_IDS
         actions = list(plugin.actions)
+        plugin_qc_action = plugin.qc_action
         assert len(actions) == 2 and all(isinstance(a, QAction) for a in actions)
         plugin.show_qc_panel(True)
         assert plugin.dock is not None and not plugin.dock.isHidden()
@@ -31,6 +36,11 @@ def test_load_and_unload_through_class_factory(iface, qgis_processing):
         plugin.unload()
     assert _registry().providerById("reflectormapper") is None
     assert plugin.provider is None and plugin.dock is None and plugin.actions == []
+    # every menu entry and the toolbar button were taken out again (the stub records the calls)
+    removed = [c.args[1] for c in iface.removePluginMenu.call_args_list]
+    assert all(any(a is r for r in removed) for a in actions)
+    assert any(c.args[0] is plugin_qc_action for c in iface.removeToolBarIcon.call_args_list)
+    assert iface.removeDockWidget.call_count == 1
 
 
 def test_load_twice_in_a_row_leaves_one_provider(iface, qgis_processing):

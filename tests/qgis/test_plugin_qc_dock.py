@@ -67,12 +67,14 @@ def test_panel_shows_selected_shot_and_refit_updates_layer(iface, sample_survey,
     after = dock.qc.fits
     assert int(after.picks_excluded[g]) == 3
     assert int(after.picks_used[g]) < before_used
-    assert after.velocity_m_s[g] != before[g]
+    # a real change, far above the rounding of the fit (1e-12), not a last-bit difference
+    assert abs(after.velocity_m_s[g] - before[g]) > 1e-6 * before[g]
     others = np.arange(len(before)) != g
-    np.testing.assert_array_equal(after.velocity_m_s[others], before[others])  # gathers are independent
+    # gathers are independent: the others keep their values (to the last bits of threaded batches)
+    np.testing.assert_allclose(after.velocity_m_s[others], before[others], rtol=1e-12)
     # the same numbers as the core given the same exclusions
     ref = inversion.fit_shot_gathers(dock.qc.gathers, dock.qc.survey.settings, exclude=dock.qc.exclude)
-    assert after.velocity_m_s[g] == ref.velocity_m_s[g]
+    assert after.velocity_m_s[g] == pytest.approx(ref.velocity_m_s[g], rel=1e-12)
     # the shots layer now holds the refitted values
     feat = next(
         f
@@ -86,7 +88,7 @@ def test_panel_shows_selected_shot_and_refit_updates_layer(iface, sample_survey,
 
     # restore: back to the original fit
     dock.restore_all()
-    assert dock.qc.fits.velocity_m_s[g] == before[g]
+    assert dock.qc.fits.velocity_m_s[g] == pytest.approx(before[g], rel=1e-12)
     dock.close_panel()
     dock.deleteLater()
 
