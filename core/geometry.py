@@ -568,73 +568,12 @@ class ReflectorPoints:
         return ReflectorPoints(**{k: getattr(self, k)[mask] for k in self.__dataclass_fields__})
 
 
-class _LinearTin:
-    """Piecewise-linear interpolation on a Delaunay triangulation (2-D).
-
-    The interpolant of scipy's ``LinearNDInterpolator`` (barycentric weights
-    on the triangle holding the point) with the point location done here by a
-    visibility walk (Lawson 1977), vectorised over all query points: start in
-    the triangle with the nearest centroid (KD-tree) and step across the edge
-    facing the most negative barycentric coordinate until inside (or out of
-    the hull: NaN). On a Delaunay triangulation the walk terminates. This
-    avoids scipy's per-simplex LAPACK set-up, which can take seconds when BLAS
-    threads compete on a busy machine.
-
-    [Lawson 1977] Lawson, C. L. (1977). Software for C1 surface interpolation.
-        In Mathematical Software III, Academic Press, 161-194.
-    """
-
-    def __init__(self, xy, z):
-        from scipy.spatial import Delaunay, cKDTree
-
-        self.tri = Delaunay(xy)
-        self.z = np.asarray(z, float)
-        v = xy[self.tri.simplices]  # (t, 3, 2)
-        self.a = v[:, 0]
-        self.e1 = v[:, 1] - v[:, 0]
-        self.e2 = v[:, 2] - v[:, 0]
-        det = self.e1[:, 0] * self.e2[:, 1] - self.e1[:, 1] * self.e2[:, 0]
-        self.det = np.where(det != 0, det, 1e-300)
-        self.tree = cKDTree(v.mean(axis=1))
-
-    def barycentric(self, q, t):
-        r = q - self.a[t]
-        e1, e2, det = self.e1[t], self.e2[t], self.det[t]
-        l1 = (r[:, 0] * e2[:, 1] - r[:, 1] * e2[:, 0]) / det
-        l2 = (e1[:, 0] * r[:, 1] - e1[:, 1] * r[:, 0]) / det
-        return np.column_stack([1.0 - l1 - l2, l1, l2])
-
-    def __call__(self, q):
-        out = np.full(len(q), np.nan)
-        if len(q) == 0:
-            return out
-        cur = self.tree.query(q, k=1)[1]
-        todo = np.arange(len(q))
-        limit = 100 + 10 * int(np.sqrt(len(self.det)))
-        for _ in range(limit):
-            lam = self.barycentric(q[todo], cur)
-            worst = np.argmin(lam, axis=1)
-            inside = lam[np.arange(len(todo)), worst] >= -1e-10
-            if inside.any():
-                t = cur[inside]
-                out[todo[inside]] = np.sum(lam[inside] * self.z[self.tri.simplices[t]], axis=1)
-            nxt = self.tri.neighbors[cur[~inside], worst[~inside]]
-            keep = nxt >= 0  # -1: the point is outside the hull
-            todo = todo[~inside][keep]
-            cur = nxt[keep]
-            if len(todo) == 0:
-                break
-        return out
-
-
 def station_ground_model(stations):
     """Ground elevation model interpolated from surveyed points.
 
-    Piecewise-linear interpolation on the Delaunay triangulation of the points
-    (the interpolant of scipy's ``LinearNDInterpolator``), nearest point
-    outside their convex hull. When the points are (nearly) collinear, as on a
-    single straight line, the elevation is interpolated along that line (held
-    constant beyond its ends).
+    Piecewise-linear on the Delaunay triangulation of the points, nearest
+    point outside their hull, along the line for collinear points: see
+    :meth:`.ground.GroundModel.from_stations`, which this wraps.
 
     Parameters
     ----------
@@ -649,56 +588,10 @@ def station_ground_model(stations):
     >>> float(g(5.0, 5.0)), float(g(100.0, 0.0))
     (25.0, 20.0)
     """
-    from scipy.spatial import QhullError, cKDTree
+    from .ground import GroundModel
 
-    if hasattr(stations, "xyz"):
-        pts = np.asarray(stations.xyz, dtype=float)
-    else:
-        pts = np.asarray(stations, dtype=float).reshape(-1, 3)
-    pts = pts[np.all(np.isfinite(pts), axis=1)]
-    if len(pts) == 0:
-        raise InputFileError(None, None, "z", "no station with finite x, y, z to build a ground model from")
-    # average the elevations of points at one position
-    xy, inv = np.unique(pts[:, :2], axis=0, return_inverse=True)
-    inv = np.asarray(inv).ravel()
-    z = np.bincount(inv, pts[:, 2]) / np.bincount(inv)
-    centre = xy.mean(axis=0)
-    d = xy - centre
-    if len(xy) == 1:
-        z0 = float(z[0])
-        return lambda x_m, y_m: np.full(np.broadcast(np.asarray(x_m), np.asarray(y_m)).shape, z0)
-    evals, evecs = np.linalg.eigh(d.T @ d / len(d))
-
-    def along_line():
-        axis = evecs[:, -1]
-        t = d @ axis
-        order = np.argsort(t)
-
-        def ground(x_m, y_m):
-            x, y = np.broadcast_arrays(np.asarray(x_m, float), np.asarray(y_m, float))
-            tt = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
-            return np.interp(tt, t[order], z[order])
-
-        return ground
-
-    if len(xy) < 3 or evals[0] <= 1e-10 * evals[-1]:
-        return along_line()
-    try:
-        lin = _LinearTin(d, z)
-    except QhullError:  # nearly collinear points that pass the test above
-        return along_line()
-    near = cKDTree(d)
-
-    def ground(x_m, y_m):
-        x, y = np.broadcast_arrays(np.asarray(x_m, float), np.asarray(y_m, float))
-        q = np.column_stack([x.ravel() - centre[0], y.ravel() - centre[1]])
-        out = lin(q)
-        miss = ~np.isfinite(out)
-        if miss.any():
-            out[miss] = z[near.query(q[miss])[1]]
-        return out.reshape(x.shape)
-
-    return ground
+    pts = np.asarray(stations.xyz if hasattr(stations, "xyz") else stations, dtype=float).reshape(-1, 3)
+    return GroundModel.from_stations(pts[:, 0], pts[:, 1], pts[:, 2])
 
 
 def _points_local(src, rec, u, w, h, s, q, pick_gather):

@@ -46,6 +46,65 @@ def _as_crs(crs):
         raise GeoreferenceError(f"cannot read the CRS {crs!r}: {exc}; give e.g. 'EPSG:32633'") from exc
 
 
+class _LinearTin:
+    """Piecewise-linear interpolation on a Delaunay triangulation (2-D).
+
+    The interpolant of scipy's ``LinearNDInterpolator`` (barycentric weights
+    on the triangle holding the point) with the point location done here by a
+    visibility walk (Lawson 1977), vectorised over all query points: start in
+    the triangle with the nearest centroid (KD-tree) and step across the edge
+    facing the most negative barycentric coordinate until inside (or out of
+    the hull: NaN). On a Delaunay triangulation the walk terminates. This
+    avoids scipy's per-simplex LAPACK set-up, which can take seconds when BLAS
+    threads compete on a busy machine.
+
+    [Lawson 1977] Lawson, C. L. (1977). Software for C1 surface interpolation.
+        In Mathematical Software III, Academic Press, 161-194.
+    """
+
+    def __init__(self, xy, z):
+        from scipy.spatial import Delaunay, cKDTree
+
+        self.tri = Delaunay(xy)
+        self.z = np.asarray(z, float)
+        v = xy[self.tri.simplices]  # (t, 3, 2)
+        self.a = v[:, 0]
+        self.e1 = v[:, 1] - v[:, 0]
+        self.e2 = v[:, 2] - v[:, 0]
+        det = self.e1[:, 0] * self.e2[:, 1] - self.e1[:, 1] * self.e2[:, 0]
+        self.det = np.where(det != 0, det, 1e-300)
+        self.tree = cKDTree(v.mean(axis=1))
+
+    def barycentric(self, q, t):
+        r = q - self.a[t]
+        e1, e2, det = self.e1[t], self.e2[t], self.det[t]
+        l1 = (r[:, 0] * e2[:, 1] - r[:, 1] * e2[:, 0]) / det
+        l2 = (e1[:, 0] * r[:, 1] - e1[:, 1] * r[:, 0]) / det
+        return np.column_stack([1.0 - l1 - l2, l1, l2])
+
+    def __call__(self, q):
+        out = np.full(len(q), np.nan)
+        if len(q) == 0:
+            return out
+        cur = self.tree.query(q, k=1)[1]
+        todo = np.arange(len(q))
+        limit = 100 + 10 * int(np.sqrt(len(self.det)))
+        for _ in range(limit):
+            lam = self.barycentric(q[todo], cur)
+            worst = np.argmin(lam, axis=1)
+            inside = lam[np.arange(len(todo)), worst] >= -1e-10
+            if inside.any():
+                t = cur[inside]
+                out[todo[inside]] = np.sum(lam[inside] * self.z[self.tri.simplices[t]], axis=1)
+            nxt = self.tri.neighbors[cur[~inside], worst[~inside]]
+            keep = nxt >= 0  # -1: the point is outside the hull
+            todo = todo[~inside][keep]
+            cur = nxt[keep]
+            if len(todo) == 0:
+                break
+        return out
+
+
 class GroundModel:
     """Ground elevation (m) at points of the working CRS.
 
@@ -133,7 +192,7 @@ class GroundModel:
     @classmethod
     def from_stations(cls, x_m, y_m, z_m) -> GroundModel:
         """Ground model interpolated from surveyed stations (see the module notes)."""
-        from scipy.interpolate import LinearNDInterpolator, NearestNDInterpolator
+        from scipy.spatial import QhullError, cKDTree
 
         x = np.asarray(x_m, dtype=float).ravel()
         y = np.asarray(y_m, dtype=float).ravel()
@@ -155,27 +214,30 @@ class GroundModel:
             return cls(lambda px, py: np.full(px.shape, z0), "stations", note + " (flat)")
         centre = xy.mean(axis=0)
         _, s, vt = np.linalg.svd(xy - centre, full_matrices=False)
+        # one straight line of stations: interpolate along it, flat across and beyond it
+        u = vt[0]
+        t = (xy - centre) @ u
+        order = np.argsort(t)
+        t, zline = t[order], zs[order]
+
+        def along(px, py):
+            tq = (px - centre[0]) * u[0] + (py - centre[1]) * u[1]
+            return np.interp(tq, t, zline)
+
         if n == 2 or s[1] <= 1e-9 * s[0]:
-            # one straight line of stations: interpolate along it, flat across and beyond it
-            u = vt[0]
-            t = (xy - centre) @ u
-            order = np.argsort(t)
-            t, zline = t[order], zs[order]
-
-            def along(px, py):
-                tq = (px - centre[0]) * u[0] + (py - centre[1]) * u[1]
-                return np.interp(tq, t, zline)
-
             return cls(along, "stations", note + " on one straight line")
-        linear = LinearNDInterpolator(xy, zs)
-        nearest = NearestNDInterpolator(xy, zs)
+        try:
+            linear = _LinearTin(xy - centre, zs)
+        except QhullError:  # nearly collinear stations that pass the test above
+            return cls(along, "stations", note + " on one straight line")
+        nearest = cKDTree(xy - centre)
 
         def sample(px, py):
-            q = np.column_stack([px.ravel(), py.ravel()])
+            q = np.column_stack([px.ravel() - centre[0], py.ravel() - centre[1]])
             z = linear(q)
             out = ~np.isfinite(z)
             if np.any(out):
-                z[out] = nearest(q[out])
+                z[out] = zs[nearest.query(q[out])[1]]
             return z.reshape(px.shape)
 
         return cls(sample, "stations", note)
