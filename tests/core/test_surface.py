@@ -9,7 +9,7 @@ import math
 
 import numpy as np
 import pytest
-from reflector_mapper.core.errors import CancelledError, InversionError
+from reflector_mapper.core.errors import CancelledError, InversionError, ReflectorMapperWarning
 from reflector_mapper.core.surface import (
     GridSpec,
     OrdinaryKriging,
@@ -330,6 +330,29 @@ def test_gridspec_from_data_is_north_up_and_round():
     gx, gy = spec.coords()
     assert gx.shape == gy.shape == spec.shape
     assert spec.geotransform == (-10.0, 1.0, 0.0, 1011.0, 0.0, -1.0)
+
+
+def test_gridspec_from_data_coarsens_when_too_many_cells():
+    # 1 m spacing over 10 km: half-metre cells (half the spacing) would make 20000 x 2 cells;
+    # with max_cells = 10000 the next 1-2-5 step (1 m: 10000 x 1 cells) is taken, with a
+    # warning that says how to override.
+    x = np.arange(0.0, 10_001.0, 1.0)
+    y = np.zeros_like(x)
+    y[::2] = 1.0
+    with pytest.warns(ReflectorMapperWarning, match="Give cell_size_m"):
+        spec = GridSpec.from_data(x, y, pad_m=0.0, max_cells=10_000)
+    assert spec.cell_size_m == 1.0 and spec.size <= 10_000
+
+
+def test_variogram_subsample_is_reproducible(rng):
+    # Above max_points a seeded random subset is used (documented scaling rule): same seed,
+    # same variogram; the pair count is that of the subset.
+    x, y, z = _scattered(rng, 900)
+    a = experimental_variogram(x, y, z, n_lags=8, max_points=300, seed=4)
+    b = experimental_variogram(x, y, z, n_lags=8, max_points=300, seed=4)
+    assert a.n_points_used == 300
+    np.testing.assert_array_equal(a.semivariance, b.semivariance)
+    assert a.n_pairs.sum() <= 300 * 299 // 2
 
 
 def test_gridspec_rejects_bad_values():
