@@ -583,8 +583,11 @@ class _ShotModel:
         r = np.clip(params[:, 2] / self.smax, -0.999999, 0.999999)
         return np.column_stack([np.log(params[:, 0]), np.log(params[:, 1]), np.arctanh(r)])
 
-    def evaluate(self, theta, natural=False):
-        """Predicted times (k, n) and Jacobian (k, 3, n) in internal (or natural) parameters."""
+    def evaluate(self, theta, natural=False, jacobian=True):
+        """Predicted times (k, n) and Jacobian (k, 3, n) in internal (or natural) parameters.
+
+        With ``jacobian=False`` only the times are computed (the Jacobian is None).
+        """
         x, dz, d2 = self.x, self.dz, self.d2
         q, smax = self.q[:, None], self.smax[:, None]
         if natural:
@@ -606,6 +609,8 @@ class _ShotModel:
         np.maximum(root, 1e-30, out=root)
         np.sqrt(root, out=root)
         t = root * (1.0 / V)
+        if not jacobian:
+            return t, None
         inv = np.divide(1.0, root, out=root)  # root is not needed any more
         J = np.empty((t.shape[0], 3, t.shape[1]))
         J1, J2 = J[:, 1], J[:, 2]
@@ -778,14 +783,16 @@ class _CmpModel:
     def internal(self, params):
         return np.log(params)
 
-    def evaluate(self, theta, natural=False):
-        """Predicted times (k, n) and Jacobian (k, 2, n)."""
+    def evaluate(self, theta, natural=False, jacobian=True):
+        """Predicted times (k, n) and Jacobian (k, 2, n) (None with ``jacobian=False``)."""
         x2 = self.x2
         if natural:
             t0, vn = theta[:, 0, None], theta[:, 1, None]
         else:
             t0, vn = np.exp(theta[:, 0, None]), np.exp(theta[:, 1, None])
         t = np.sqrt(t0 * t0 + x2 / (vn * vn))
+        if not jacobian:
+            return t, None
         J = np.empty((t.shape[0], 2, t.shape[1]))
         if natural:
             J[:, 0] = t0 / t
@@ -926,8 +933,8 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
     capped at ``_MAX_STEP`` per internal parameter. A gather has converged when
     a step below ``xtol`` is kept (or refused while hardly damped: the cost
     then rose at the rounding level only), or when the next undamped step
-    would be below ``xtol / 10``: the current point is then kept without
-    evaluating the model again. Near the solution the iteration contracts
+    would be below ``xtol / 10``: that step is then taken without the usual
+    check and only the model times are evaluated there. Near the solution the iteration contracts
     fast, so the error left is well below ``xtol``. The fixed point
     is a stationary point of F, the same function scipy's ``least_squares``
     minimises with this loss and ``f_scale = C``. Converged gathers leave the
@@ -977,15 +984,18 @@ def _lm_block(model, theta0, time, sigma, usable, loss, f_scale, xtol, max_iter,
         delta = _safe_solve(A, g)
         big = np.max(np.abs(delta), axis=1)
         delta *= np.minimum(1.0, _MAX_STEP / np.maximum(big, 1e-300))[:, None]
-        # converged without trying the step: where the undamped step is below xtol / 10 the
-        # current point is kept (with its model times and Jacobian), saving an evaluation
+        # converged without trying the step: where the undamped step is below xtol / 10 it is
+        # taken without the usual check (the cost cannot change by more than rounding), with the
+        # model times at the new point but the Jacobian of the point before (a difference far
+        # below anything that matters for the covariance), saving most of an evaluation
         pre = (big < 0.1 * xtol) & (lam < 1e-2) & ~conv_out[rows]
         if np.any(pre):
             fin = rows[pre]
-            theta_out[fin] = theta[pre]
+            th_fin = theta[pre] + delta[pre]
+            theta_out[fin] = th_fin
             iters_out[fin] = iters[pre] + 1
             conv_out[fin] = True
-            pred_out[fin] = pred[pre]
+            pred_out[fin] = model.take(pre).evaluate(th_fin, jacobian=False)[0]
             J_out[fin] = J[pre]
             finished = conv_out[rows]
             if finished.all():
