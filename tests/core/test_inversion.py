@@ -148,9 +148,8 @@ def test_noise_free_round_trip_exact_3d(rng, spread):
     np.testing.assert_allclose(inv.gather_normals(gs, fit), tr["n"], atol=1e-6)
     # t0 = 2h/V by definition (Green 1938)
     np.testing.assert_allclose(fit.t0_s, 2 * tr["h"] / tr["V"], rtol=1e-6)
-    # noise-free: residuals vanish (the stopping rule leaves parameter errors near 1e-7 relative, so
-    # residuals of times under 0.1 s stay below ~2e-8 s; allow 5e-8 s), nothing rejected
-    assert np.nanmax(np.abs(fit.residual_s)) < 5e-8
+    # noise-free: residuals vanish (1e-9 s, a millionth of a millisecond), nothing rejected
+    assert np.nanmax(np.abs(fit.residual_s)) < 1e-9
     assert not fit.rejected.any()
 
 
