@@ -117,6 +117,7 @@ def write_all(result, out_dir, progress) -> list:
 def _write_all(result, out_dir, progress) -> list:
     from .reporting import build_report
 
+    out_dir.mkdir(parents=True, exist_ok=True)
     crs = result.survey.crs
     layers = result_layers(result)
     spec = result.spec
