@@ -1023,7 +1023,7 @@ class OrdinaryKriging:
         Number of nearest data per target (default 32); None = all data.
     variogram_model : str
         Model fitted when ``variogram="auto"``: "spherical", "exponential",
-        "gaussian", or "auto" (the best of the three by cross-validation).
+        "gaussian", or "auto" (default: the best of the three by cross-validation).
     n_threads : int, optional
         Worker threads for the chunks (default: the CPU count, at most 8).
 
@@ -1048,7 +1048,7 @@ class OrdinaryKriging:
     (2.0, 0.0)
     """
 
-    def __init__(self, variogram="auto", neighbours=32, variogram_model="spherical", n_threads=None):
+    def __init__(self, variogram="auto", neighbours=32, variogram_model="auto", n_threads=None):
         self.variogram = variogram
         self.neighbours = neighbours
         self.variogram_model = variogram_model
@@ -1410,9 +1410,9 @@ def _distance_mask(tree, spec, max_distance_m, origin):
 
 
 def cross_validate(x, y, z, error_variance=None, *, variogram="auto", neighbours=32,
-                   variogram_model="spherical", progress=None):
+                   variogram_model="auto", progress=None, max_points=None):
     """Leave-one-out cross-validation of ordinary kriging (see
-    :meth:`OrdinaryKriging.cross_validate`).
+    :meth:`OrdinaryKriging.cross_validate`; ``max_points`` validates a random subset).
 
     Returns
     -------
@@ -1422,7 +1422,7 @@ def cross_validate(x, y, z, error_variance=None, *, variogram="auto", neighbours
         model is right) and the fraction within 2 sigma (~0.95).
     """
     ok = OrdinaryKriging(variogram, neighbours=neighbours, variogram_model=variogram_model)
-    return ok.fit(x, y, z, error_variance).cross_validate(progress)
+    return ok.fit(x, y, z, error_variance).cross_validate(progress, max_points=max_points)
 
 
 # --------------------------------------------------------------------------- spline
