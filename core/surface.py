@@ -1005,8 +1005,10 @@ class OrdinaryKriging:
     by :func:`numpy.linalg.solve`; the chunk size keeps each batch under
     about 8 MiB (cache-sized), so memory does not grow with the number of data or targets
     (no N x M matrix). Chunks run on ``n_threads`` threads (NumPy releases the
-    GIL in the batched solve); each thread's KD-tree query is single-threaded,
-    so there is no nested thread pool. With ``neighbours=None`` (global, for at
+    GIL in the batched solve) while BLAS is held to one thread (OpenBLAS found
+    in the process, or threadpoolctl; where neither works the chunks run on one
+    thread and BLAS keeps its own); each thread's KD-tree query is
+    single-threaded, so there is no nested thread pool. With ``neighbours=None`` (global, for at
     most ``GLOBAL_MAX_DATA`` data) the (N+1) system is inverted once.
 
     Systems are assembled with the variogram divided by its total sill (the
@@ -1217,6 +1219,8 @@ class OrdinaryKriging:
         threads = self.n_threads or _default_threads()
         out = [None] * len(slices)
         if self._k is None:  # global: few large solves, let BLAS use its threads
+            threads = 1
+        elif not _blas_controls():  # BLAS threads cannot be limited: do not add ours on top
             threads = 1
         else:
             with _SingleThreadedBlas():
