@@ -397,12 +397,43 @@ def test_spline_smoothing_is_chosen_for_noisy_data(rng):
     y = rng.uniform(0, 1000, n)
     truth = 5.0 * np.sin(x / 200.0) + 3.0 * np.cos(y / 250.0)
     z = truth + rng.standard_normal(n)
-    tps = ThinPlateSpline(smoothing="auto").fit(x, y, z, error_variance=1.0)
+    e = np.ones(n)
+    e[:3] = 0.0  # three exact data (boreholes): per-point smoothing lambda * e_i / mean(e) = 0
+    z[:3] = truth[:3]
+    tps = ThinPlateSpline(smoothing="auto").fit(x, y, z, error_variance=e)
     assert tps.smoothing_ > 0
     est, _ = tps.predict(x, y)
     assert np.sqrt(np.mean((est - truth) ** 2)) < 0.8
+    # exact data are honoured (tolerance: round-off of the solve), noisy ones are not
+    np.testing.assert_allclose(est[:3], z[:3], atol=1e-6)
+    assert np.max(np.abs(est[3:] - z[3:])) > 0.5
     exact = ThinPlateSpline(smoothing=0.0).fit(x, y, z)
     np.testing.assert_allclose(exact.predict(x, y)[0], z, atol=1e-6)
+
+
+class _Record:
+    def __init__(self):
+        self.values = []
+
+    def set_progress(self, p):
+        self.values.append(p)
+
+    def is_canceled(self):
+        return False
+
+    def info(self, msg):
+        pass
+
+
+def test_interpolate_surface_default_grid_and_progress(rng):
+    # Without a grid spec the grid comes from the data (GridSpec.from_data); progress is
+    # reported in [0, 100], never backwards, and ends at 100.
+    x, y, z = _scattered(rng, 300)
+    rec = _Record()
+    surf, diag = interpolate_surface(x, y, z, 0.3, progress=rec)
+    assert surf.spec == GridSpec.from_data(x, y)
+    assert rec.values[-1] == 100 and np.all(np.diff(rec.values) >= 0) and min(rec.values) >= 0
+    assert diag["n_cells_estimated"] == int((~surf.mask).sum()) > 0
 
 
 class _Cancel:
