@@ -875,7 +875,8 @@ _CHOICES = {
     "gather": ("shot", "cmp"),
     "robust_loss": ("huber", "soft_l1", "cauchy", "linear"),
     "surface_method": ("auto", "kriging", "spline", "tomography"),
-    "variogram_model": ("spherical", "exponential", "gaussian"),
+    "variogram_model": ("auto", "spherical", "exponential", "gaussian"),
+    "trend": ("linear", "none"),
 }
 _MINIMUM = {
     "min_picks": 3,

@@ -101,7 +101,8 @@ class Settings:
     cell_size_m: Optional[float] = None  # None: chosen from the data spacing
     max_distance_m: Optional[float] = None  # None: from the data spacing; farther = nodata
     surface_method: str = "auto"  # "auto", "kriging", "spline", "tomography"
-    variogram_model: str = "spherical"  # "spherical", "exponential", "gaussian"
+    variogram_model: str = "auto"  # "auto" (best cross-validation score), "spherical", "exponential", "gaussian"
+    trend: str = "linear"  # "linear": krige the residuals from a fitted plane (regional dip); "none"
     neighbours: int = 32  # kriging neighbourhood size
     contour_interval_m: Optional[float] = None  # None: a round value from the range
     index_contour_every: int = 5

@@ -31,6 +31,7 @@ from .surface import GridSpec, interpolate_surface
 
 NODE_CELLS = 2  # tomography node spacing in output cells
 SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
+VARIOGRAM_MODELS = ("spherical", "exponential", "gaussian")
 OUTPUT_NAMES = ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
                 "report.html", "contours_elevation.dxf", "contours_depth.dxf")
 
@@ -151,13 +152,103 @@ def surface_data(points, reflector, boreholes=None):
     return x, y, z, s
 
 
+@dataclass(frozen=True)
+class PlaneTrend:
+    """A regional plane z = a + b (x - x0) + c (y - y0) fitted by weighted least squares.
+
+    A dipping reflector is a trend, not a stationary random field: its
+    experimental variogram grows like the square of the lag and no bounded
+    model fits it. Kriging the residuals from the plane (residual kriging
+    with a linear drift; Journel & Huijbregts 1978, ch. V) gives a variogram
+    that levels off and an honest standard deviation. ``coef`` = (a, b, c),
+    weights 1/sigma^2.
+    """
+
+    x0: float
+    y0: float
+    coef: tuple
+
+    @classmethod
+    def fit(cls, x, y, z, sigma):
+        x0, y0 = float(np.mean(x)), float(np.mean(y))
+        w = 1.0 / np.maximum(np.asarray(sigma, float), 1e-3)
+        a = np.column_stack([np.ones_like(x), x - x0, y - y0]) * w[:, None]
+        coef = np.linalg.lstsq(a, z * w, rcond=None)[0]
+        return cls(x0, y0, tuple(float(c) for c in coef))
+
+    def __call__(self, x, y):
+        a, b, c = self.coef
+        return a + b * (np.asarray(x, float) - self.x0) + c * (np.asarray(y, float) - self.y0)
+
+
+class _NoTrend:
+    coef = (0.0, 0.0, 0.0)
+
+    def __call__(self, x, y):
+        return np.zeros(np.broadcast(np.asarray(x), np.asarray(y)).shape)
+
+
+def _trend(settings, x, y, z, s):
+    return PlaneTrend.fit(x, y, z, s) if settings.trend == "linear" and len(x) >= 3 else _NoTrend()
+
+
+def grid_with_trend(x, y, z, s, spec, settings, method="kriging", progress=None):
+    """Interpolate (x, y, z) with sigma s onto ``spec``: trend removed, residuals gridded, trend added back.
+
+    With ``variogram_model = "auto"`` each model (spherical, exponential,
+    Gaussian) is fitted and the one with the best leave-one-out mean
+    logarithmic score (a proper scoring rule: small residuals *and* honest
+    standard deviations; Gneiting & Raftery 2007) is kept. Returns
+    ``(SurfaceGrid, diagnostics)``; the diagnostics carry the ``trend``, the
+    ``variogram_scores`` and a cross-validation expressed in elevations.
+    """
+    from .surface import SurfaceGrid
+
+    trend = _trend(settings, x, y, z, s)
+    if method == "kriging" and settings.variogram_model == "auto":
+        models = VARIOGRAM_MODELS
+    else:
+        models = (settings.variogram_model if settings.variogram_model != "auto" else "spherical",)
+    scores, best = {}, None
+    for model in models:
+        surf_m, diag_m = interpolate_surface(
+            x, y, z - trend(x, y), s, spec, method=method, neighbours=settings.neighbours,
+            variogram_model=model, max_distance_m=settings.max_distance_m, progress=progress,
+        )
+        cv = diag_m.get("cross_validation")
+        scores[model] = cv.mean_log_score if cv is not None and np.isfinite(cv.mean_log_score) else np.inf
+        if best is None or scores[model] < scores[best[0]]:
+            best = (model, surf_m, diag_m)
+    _, surf, diag = best
+    diag["variogram_scores"] = scores
+    cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
+    z_grid = np.where(surf.mask, np.nan, surf.z + trend(cx, cy))
+    diag["trend"] = trend
+    cv = diag.get("cross_validation")
+    if cv is not None:
+        idx = np.asarray(cv.index)
+        diag["cross_validation"] = replace(cv, estimate=cv.estimate + trend(x[idx], y[idx]))
+    return SurfaceGrid(spec, z_grid, surf.std, surf.mask, surf.method, surf.n_data), diag
+
+
+def predict_with_trend(x, y, z, s, diag, settings, x_new, y_new):
+    """Estimate and standard deviation at points, with the model and trend of ``diag``."""
+    from .surface import OrdinaryKriging, ThinPlateSpline
+
+    trend = diag.get("trend") or _NoTrend()
+    r = z - trend(x, y)
+    if diag.get("variogram") is not None:
+        model = OrdinaryKriging(diag["variogram"], neighbours=settings.neighbours).fit(x, y, r, s**2)
+    else:
+        model = ThinPlateSpline("auto", neighbours=settings.neighbours).fit(x, y, r, s**2)
+    est, std = model.predict(x_new, y_new)
+    return est + trend(x_new, y_new), std
+
+
 def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None):
     """Grid the reflector points (and boreholes, as near-exact data)."""
     x, y, z, s = surface_data(points, settings.reflector, boreholes)
-    return interpolate_surface(
-        x, y, z, s, spec, method=method, neighbours=settings.neighbours,
-        variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m, progress=progress,
-    )
+    return grid_with_trend(x, y, z, s, spec, settings, method, progress)
 
 
 def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=0.05, max_iterations=6):
@@ -193,14 +284,8 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
 
 def borehole_check(points, boreholes, settings, diag):
     """Seismic-only surface at each borehole: estimate, sigma, residual (borehole - seismic)."""
-    from .surface import OrdinaryKriging, ThinPlateSpline
-
     x, y, z, s = surface_data(points, settings.reflector)
-    if diag.get("variogram") is not None:
-        model = OrdinaryKriging(diag["variogram"], neighbours=settings.neighbours).fit(x, y, z, s**2)
-    else:
-        model = ThinPlateSpline("auto", neighbours=settings.neighbours).fit(x, y, z, s**2)
-    est, std = model.predict(boreholes.x_m, boreholes.y_m)
+    est, std = predict_with_trend(x, y, z, s, diag, settings, boreholes.x_m, boreholes.y_m)
     resid = boreholes.elevation_m - est
     total = np.sqrt(std**2 + boreholes.sigma_m**2)
     return {
@@ -300,11 +385,7 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     if boreholes is not None:
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
-    settings = survey.settings
-    surface, diag = interpolate_surface(
-        x, y, zz, ss, spec, method="kriging", neighbours=settings.neighbours,
-        variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m,
-    )
+    surface, diag = grid_with_trend(x, y, zz, ss, spec, survey.settings)
     mask = surface.mask | start.mask
     z = np.where(mask, np.nan, surface.z)
     surface = SurfaceGrid(spec, z, np.where(mask, np.nan, surface.std), mask, "tomography",

@@ -48,7 +48,7 @@ for d in ("numpy", "scipy", "shapely", "pyproj", "geopandas", "pandas", "GDAL", 
         pass
 PY
     "$venv/bin/python" -m pip install -q --disable-pip-version-check -c "$venv/debian-constraints.txt" \
-        pytest 'pytest-qgis==5.0.2' hypothesis pykrige
+        pytest 'pytest-qgis==5.0.2' hypothesis pykrige gstools
 }
 
 QGIS_DEBS=(qgis python3-qgis qgis-providers gdal-bin python3-venv python3-pip python3-scipy
