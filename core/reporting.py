@@ -148,10 +148,25 @@ def _surface(rep, r):
             f"{r.survey.settings.neighbours} nearest neighbours; cells farther than "
             f"{diag.get('max_distance_m', float('nan')):.0f} m from any datum are left empty."
         )
+        trend = diag.get("trend")
+        if trend is not None and any(trend.coef[1:]):
+            b, c = trend.coef[1], trend.coef[2]
+            rep.paragraph(
+                f"A regional plane was removed first and added back after kriging the residuals (linear drift): "
+                f"dip {np.degrees(np.arctan(np.hypot(b, c))):.2f}° toward "
+                f"{np.degrees(np.arctan2(-b, -c)) % 360:.0f}°. The variogram below is that of the residuals."
+            )
+        scores = diag.get("variogram_scores") or {}
+        if len(scores) > 1:
+            rep.paragraph(
+                "Variogram model chosen by leave-one-out mean log score (lower is better; Gneiting & Raftery "
+                "2007): " + ", ".join(f"{m} {v:.3f}" for m, v in scores.items()) + "."
+            )
         ev = diag.get("experimental_variogram")
         if ev is not None:
-            rep.figure(figures.variogram_figure(ev.lag_m, ev.semivariance, ev.n_pairs, vm,
-                                                title="semivariogram of reflector elevations"), "variogram")
+            png = figures.variogram_figure(ev.lag_m, ev.semivariance, ev.n_pairs, vm,
+                                           title="semivariogram of reflector elevations (after the trend)")
+            rep.figure(png, "variogram")
     elif diag.get("smoothing") is not None:
         rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag['smoothing']:.3g}; no standard deviation.")
     cv = diag.get("cross_validation")
