@@ -6,7 +6,9 @@ elevation with its kriging standard deviation:
 
 1. :func:`experimental_variogram` (omnidirectional or directional),
 2. :func:`fit_variogram` of a spherical, exponential or gaussian model by the
-   weighted least squares of [Cressie 1985],
+   weighted least squares of [Cressie 1985]; :func:`choose_variogram` fits all
+   three, moves the mean measurement-error variance out of the nugget and keeps
+   the model with the best leave-one-out log score,
 3. :class:`OrdinaryKriging` with the measurement-error variance of each datum on
    the diagonal of the kriging system, in a local neighbourhood of the ``k``
    nearest data (KD-tree) so that it scales to millions of points and cells,
