@@ -15,6 +15,7 @@ from .gpkg import Layer
 
 __all__ = [
     "boreholes_layer",
+    "cmp_layer",
     "cross_validation_layer",
     "dips_layer",
     "dix_layer",
@@ -235,6 +236,13 @@ def dix_layer(columns) -> Layer:
     cols = dict(columns)
     return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT",
                  "Interval velocity and thickness between successive reflectors (Dix 1955) under each shot")
+
+
+def cmp_layer(columns) -> Layer:
+    """Common-midpoint fits (t0, NMO velocity) at the bin centres."""
+    cols = dict(columns)
+    return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT",
+                 "Common-midpoint fits t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971); depth_m = Vnmo t0 / 2 (small dip)")
 
 
 def cross_validation_layer(x_m, y_m, cv) -> Layer:

@@ -42,6 +42,8 @@ def result_layers(result) -> dict:
         out["misties"] = lay.misties_layer(result.misties)
     if result.borehole_check is not None:
         out["boreholes"] = lay.boreholes_layer(result.survey.boreholes, result.borehole_check)
+    if result.cmp is not None:
+        out["cmp_fits"] = lay.cmp_layer(result.cmp)
     if result.dix is not None and len(result.dix["line"]):
         out["dix_intervals"] = lay.dix_layer(result.dix)
     if result.contours is not None:

@@ -80,6 +80,7 @@ class RunResult:
     borehole_check: dict = None
     depth_ratio: dict = None
     dix: dict = None
+    cmp: dict = None
     relocation_history_m: list = field(default_factory=list)
     notes: list = field(default_factory=list)
     outputs: list = field(default_factory=list)
@@ -426,6 +427,9 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     settings = survey.settings
     r = RunResult(survey, fit, ground=ground)
     r.dix = dix_table(fit)
+    if settings.gather == "cmp":
+        progress.info("common-midpoint velocity analysis")
+        r.cmp = cmp_step(survey, fit)
     if len(set(np.asarray(fit.gathers.reflector).tolist())) > 1:
         r.notes.append(
             f"several reflectors picked: mapping reflector '{settings.reflector}' (set [processing] reflector "
@@ -546,6 +550,54 @@ def dix_table(fit):
             cols["reason"].append(str(d.reason[row]))
     return {k: np.array(v, dtype=object if k in ("line", "shot", "reflector_top", "reflector_base", "status",
                                                  "reason") else float) for k, v in cols.items()}
+
+
+def cmp_step(survey, fit):
+    """Common-midpoint velocity analysis of all picks (``gather = "cmp"``).
+
+    Picks are sorted into midpoint bins along each line (per reflector) and
+    each bin is fitted with t^2 = t0^2 + x^2 / Vnmo^2 (Levin 1971; along dip
+    Vnmo = V / cos(dip)). The bin length defaults to the median shot spacing.
+    ``depth_m`` = Vnmo t0 / 2 below the bin centre is a vertical, small-dip
+    estimate; the map itself always comes from the exact 3D shot-gather fits.
+    Returns a dict of columns (with ``x_m``, ``y_m`` of the bin centres).
+    """
+    from .inversion import cmp_bins, fit_cmp_gathers
+
+    g = fit.gathers
+    bin_m = survey.settings.cmp_bin_m
+    if bin_m is None:
+        spacing = []
+        for line in sorted(set(np.asarray(g.line).tolist())):
+            src = np.unique(g.source_xyz_g[np.asarray(g.line) == line][:, :2], axis=0)
+            if len(src) > 1:
+                d = np.hypot(*np.diff(src[np.argsort(src @ g.line_unit[np.asarray(g.line) == line][0])], axis=0).T)
+                spacing.extend(d[d > 0].tolist())
+        bin_m = float(np.median(spacing)) if spacing else float(np.median(g.spread_length_m)) / 4
+    pick_line = np.asarray(g.line)[g.gather].astype(str)
+    pick_refl = np.asarray(g.reflector)[g.gather].astype(str)
+    group = np.char.add(np.char.add(pick_line, "\x1f"), pick_refl)
+    gid, centres, offset = cmp_bins(g.source_xyz[:, :2], g.receiver_xyz[:, :2], bin_m, group=group)
+    fits = fit_cmp_gathers(gid, offset, g.time_s, g.sigma_s, survey.settings)
+    first = np.zeros(len(centres), dtype=int)
+    first[gid[::-1]] = np.arange(len(gid))[::-1]
+    return {
+        "x_m": centres[:, 0],
+        "y_m": centres[:, 1],
+        "line": pick_line[first].astype(object),
+        "reflector": pick_refl[first].astype(object),
+        "t0_ms": fits.t0_s * 1e3,
+        "nmo_velocity_m_s": fits.nmo_velocity_m_s,
+        "se_t0_ms": fits.se_t0_s * 1e3,
+        "se_nmo_velocity_m_s": fits.se_nmo_velocity_m_s,
+        "depth_m": fits.nmo_velocity_m_s * fits.t0_s / 2,
+        "rms_residual_ms": fits.rms_residual_s * 1e3,
+        "picks_used": fits.picks_used.astype(np.int64),
+        "picks_rejected": fits.picks_rejected.astype(np.int64),
+        "status": fits.status.astype(object),
+        "reason": fits.reason.astype(object),
+        "bin_m": np.full(len(centres), bin_m),
+    }
 
 
 def borehole_depth_ratio(result, boreholes):

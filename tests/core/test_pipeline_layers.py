@@ -113,3 +113,17 @@ def test_velocity_calibration_to_boreholes(tmp_path):
     elev = r.surface.z[~r.surface.mask]
     assert np.allclose(elev, GROUND_M - THICKNESS_M.sum(), atol=0.15)
     assert any("calibration factor" in n for n in r.notes)
+
+
+def test_cmp_velocity_analysis(tmp_path):
+    """gather = "cmp": bins fitted with t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971) over flat layers."""
+    path = _write_survey(tmp_path, "top")
+    path.write_text(path.read_text() + 'gather = "cmp"\n')
+    r = compute(load_survey(path), method="kriging")
+    c = r.cmp
+    ok = (c["status"] == "ok") & (c["reflector"] == "top")
+    assert ok.sum() >= 10
+    # flat first interface: Vnmo = V1 = 1500 m/s, t0 = 2 z1 / V1 = 16 ms (exact hyperbola)
+    assert np.allclose(c["nmo_velocity_m_s"][ok].astype(float), VINT_M_S[0], rtol=1e-3)
+    assert np.allclose(c["t0_ms"][ok].astype(float), 2e3 * THICKNESS_M[0] / VINT_M_S[0], rtol=1e-3)
+    assert np.allclose(c["depth_m"][ok].astype(float), THICKNESS_M[0], rtol=1e-3)
