@@ -25,7 +25,8 @@ from .base import (
 )
 
 METHODS = ("kriging", "spline")
-VARIOGRAMS = ("spherical", "exponential", "gaussian")
+VARIOGRAMS = ("auto", "spherical", "exponential", "gaussian")
+TRENDS = ("linear", "none")
 
 
 def read_points(source, z_field, sigma_field, feedback=None):
@@ -70,6 +71,7 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
     SIGMA_FIELD_POINTS = "ERROR_FIELD"
     METHOD = "METHOD"
     VARIOGRAM = "VARIOGRAM"
+    TREND = "TREND"
     CELL_SIZE = "CELL_SIZE"
     MAX_DISTANCE = "MAX_DISTANCE"
     NEIGHBOURS = "NEIGHBOURS"
@@ -84,8 +86,11 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         "<p>Grids reflector elevations from points with their standard errors: ordinary kriging "
         "with the measurement-error variance on the diagonal and a variogram fitted to the data "
         "(Cressie 1993; Journel &amp; Huijbregts 1978), in a local neighbourhood, or a smoothing "
-        "thin-plate spline. Cells farther than the masking distance from every point are left empty "
-        "(no silent extrapolation).</p>"
+        "thin-plate spline. By default a regional plane (the overall dip) is removed first and "
+        "added back (linear drift), and the variogram model with the best leave-one-out score is "
+        "used (auto). The joint inversion of all picks for curved reflectors needs the picks: use "
+        "Run whole survey with the tomography method. Cells farther than the masking distance from "
+        "every point are left empty (no silent extrapolation).</p>"
         "<p><b>Input</b>: a point layer in a projected CRS (metres), such as the reflector points of "
         "Fit shot gathers, with an elevation field and an optional standard-error field "
         "(boreholes: a small error).</p>"
@@ -126,6 +131,11 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
                 self.VARIOGRAM, tr("Variogram model (kriging)"), options=[tr(v) for v in VARIOGRAMS], defaultValue=0
             )
         )
+        self.addParameter(
+            QgsProcessingParameterEnum(
+                self.TREND, tr("Trend removed before gridding"), options=[tr(v) for v in TRENDS], defaultValue=0
+            )
+        )
         self.addParameter(optional_number_parameter(self.CELL_SIZE, "Cell size (m)", 0.01, 1.0e5))
         self.addParameter(optional_number_parameter(self.MAX_DISTANCE, "Masking distance (m)", 0.01, 1.0e6))
         self.addParameter(
@@ -156,7 +166,9 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         )
 
     def processAlgorithm(self, parameters, context, feedback):
-        from ...core.surface import GridSpec, interpolate_surface
+        from ...core.model import Settings
+        from ...core.pipeline import grid_with_trend
+        from ...core.surface import GridSpec
 
         source = self.parameterAsSource(parameters, self.INPUT, context)
         if source is None:
@@ -183,6 +195,7 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
             )
         method = METHODS[self.parameterAsEnum(parameters, self.METHOD, context)]
         variogram = VARIOGRAMS[self.parameterAsEnum(parameters, self.VARIOGRAM, context)]
+        trend = TRENDS[self.parameterAsEnum(parameters, self.TREND, context)]
         cell = self.optional_number(parameters, self.CELL_SIZE, context)
         max_distance = self.optional_number(parameters, self.MAX_DISTANCE, context)
         neighbours = self.parameterAsInt(parameters, self.NEIGHBOURS, context)
@@ -192,17 +205,12 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         with CoreCall(feedback) as call:
             try:
                 spec = GridSpec.from_data(x, y, cell_size_m=cell)
-                surf, _diag = interpolate_surface(
-                    x,
-                    y,
-                    z,
-                    sigma if sigma_field else None,
-                    spec,
-                    method=method,
-                    neighbours=neighbours,
-                    variogram_model=variogram,
-                    max_distance_m=max_distance,
-                    progress=progress_for(feedback),
+                settings = Settings(
+                    neighbours=neighbours, variogram_model=variogram, max_distance_m=max_distance, trend=trend
+                )
+                surf, _diag = grid_with_trend(
+                    x, y, z, sigma if sigma_field else np.zeros_like(z), spec, settings, method,
+                    progress_for(feedback),
                 )
             except ValueError as err:  # the surface module's input checks
                 raise QgsProcessingException(str(err)) from err

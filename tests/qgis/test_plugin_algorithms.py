@@ -227,7 +227,9 @@ def _read_band(path):
 
 def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
     from reflector_mapper.core.contours import contours_layer
-    from reflector_mapper.core.surface import GridSpec, interpolate_surface
+    from reflector_mapper.core.model import Settings
+    from reflector_mapper.core.pipeline import grid_with_trend
+    from reflector_mapper.core.surface import GridSpec
 
     _survey, step = core_fit
     fit = run(
@@ -255,9 +257,8 @@ def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_s
     ok = p.finite & np.isfinite(p.sigma_m)
     x, y = p.x_m[ok], p.y_m[ok]
     spec = GridSpec.from_data(x, y, cell_size_m=20.0)
-    surf, _ = interpolate_surface(
-        x, y, p.elevation_m[ok], p.sigma_m[ok], spec, method="kriging", neighbours=12, variogram_model="spherical"
-    )
+    settings = Settings(neighbours=12, variogram_model="auto", trend="linear")  # the algorithm's defaults
+    surf, _ = grid_with_trend(x, y, p.elevation_m[ok], p.sigma_m[ok], spec, settings, "kriging")
     got, gt = _read_band(out)
     assert gt == pytest.approx(spec.geotransform)
     # float32 storage: relative 6e-8, i.e. < 1e-4 m at elevations of a few hundred metres
@@ -388,6 +389,7 @@ def test_algorithms_chain_in_a_model(provider, sample_survey, tmp_path):
         ("NEIGHBOURS", 12),
         ("METHOD", 0),
         ("VARIOGRAM", 0),
+        ("TREND", 0),
     ):
         surf.addParameterSources(name, [QgsProcessingModelChildParameterSource.fromStaticValue(value)])
     out = QgsProcessingModelOutput("surface")
