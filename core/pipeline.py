@@ -31,7 +31,6 @@ from .surface import GridSpec, interpolate_surface
 
 NODE_CELLS = 2  # tomography node spacing in output cells
 SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
-VARIOGRAM_MODELS = ("spherical", "exponential", "gaussian")
 OUTPUT_NAMES = ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
                 "report.html", "contours_elevation.dxf", "contours_depth.dxf")
 
@@ -196,32 +195,20 @@ def _trend(settings, x, y, z, s):
 def grid_with_trend(x, y, z, s, spec, settings, method="kriging", progress=None):
     """Interpolate (x, y, z) with sigma s onto ``spec``: trend removed, residuals gridded, trend added back.
 
-    With ``variogram_model = "auto"`` each model (spherical, exponential,
-    Gaussian) is fitted and the one with the best leave-one-out mean
-    logarithmic score (a proper scoring rule: small residuals *and* honest
-    standard deviations; Gneiting & Raftery 2007) is kept. Returns
+    With ``variogram_model = "auto"`` the surface module fits each model and
+    keeps the one with the best leave-one-out mean logarithmic score (a
+    proper scoring rule: small residuals *and* honest standard deviations;
+    Gneiting & Raftery 2007). Returns
     ``(SurfaceGrid, diagnostics)``; the diagnostics carry the ``trend``, the
     ``variogram_scores`` and a cross-validation expressed in elevations.
     """
     from .surface import SurfaceGrid
 
     trend = _trend(settings, x, y, z, s)
-    if method == "kriging" and settings.variogram_model == "auto":
-        models = VARIOGRAM_MODELS
-    else:
-        models = (settings.variogram_model if settings.variogram_model != "auto" else "spherical",)
-    scores, best = {}, None
-    for model in models:
-        surf_m, diag_m = interpolate_surface(
-            x, y, z - trend(x, y), s, spec, method=method, neighbours=settings.neighbours,
-            variogram_model=model, max_distance_m=settings.max_distance_m, progress=progress,
-        )
-        cv = diag_m.get("cross_validation")
-        scores[model] = cv.mean_log_score if cv is not None and np.isfinite(cv.mean_log_score) else np.inf
-        if best is None or scores[model] < scores[best[0]]:
-            best = (model, surf_m, diag_m)
-    _, surf, diag = best
-    diag["variogram_scores"] = scores
+    surf, diag = interpolate_surface(
+        x, y, z - trend(x, y), s, spec, method=method, neighbours=settings.neighbours,
+        variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m, progress=progress,
+    )
     cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
     z_grid = np.where(surf.mask, np.nan, surf.z + trend(cx, cy))
     diag["trend"] = trend

@@ -171,7 +171,8 @@ def _surface(rep, r):
         rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag['smoothing']:.3g}; no standard deviation.")
     cv = diag.get("cross_validation")
     if cv is not None:
-        rep.heading("Leave-one-out cross-validation (seismic points only)", level=3)
+        kind = "5-fold" if diag.get("method") == "spline" else "Leave-one-out"
+        rep.heading(f"{kind} cross-validation (seismic points only)", level=3)
         rep.items([
             ("mean error", f"{cv.mean_error:+.3f} m"),
             ("RMSE", f"{cv.rmse:.3f} m"),
