@@ -40,25 +40,9 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _import_package():
-    """Import the repository as ``reflector_mapper`` (the checkout folder may have any name)."""
-    try:
-        import reflector_mapper
+from _common import import_package  # noqa: E402
 
-        if Path(reflector_mapper.__file__).resolve().parent == ROOT:
-            return
-    except ImportError:
-        pass
-    import tempfile
-
-    link_dir = Path(tempfile.mkdtemp(prefix="rm-bench-"))
-    os.symlink(ROOT, link_dir / "reflector_mapper")
-    sys.path.insert(0, str(link_dir))
-    for name in [m for m in sys.modules if m == "reflector_mapper" or m.startswith("reflector_mapper.")]:
-        del sys.modules[name]
-
-
-_import_package()
+import_package()
 
 import scipy  # noqa: E402
 from reflector_mapper.core import forward  # noqa: E402

@@ -26,7 +26,6 @@ import argparse
 import datetime as _dt
 import os
 import platform
-import sys
 import time
 from pathlib import Path
 
@@ -37,14 +36,9 @@ ROOT = HERE.parent
 
 
 def _import_package():
-    try:
-        import reflector_mapper  # noqa: F401
-    except ImportError:
-        import tempfile
+    from _common import import_package
 
-        link = Path(tempfile.mkdtemp(prefix="rm-bench-")) / "reflector_mapper"
-        os.symlink(ROOT, link)
-        sys.path.insert(0, str(link.parent))
+    import_package()
     from reflector_mapper.core import surface
 
     return surface

@@ -21,6 +21,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from _common import import_package
+
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 SURVEY = REPO / "sample_project" / "survey.toml"
@@ -37,9 +39,13 @@ def machine_line() -> str:
 
 
 def cli_run(out: Path):
+    import_package()
+    import reflector_mapper
+
+    env = dict(os.environ, PYTHONPATH=str(Path(reflector_mapper.__path__[0]).parent))
     t = time.perf_counter()
     proc = subprocess.run([sys.executable, "-m", "reflector_mapper.core.cli", "run", str(SURVEY), "--out", str(out)],
-                          capture_output=True, text=True)
+                          capture_output=True, text=True, env=env)
     wall = time.perf_counter() - t
     if proc.returncode != 0:
         raise SystemExit(proc.stderr)
@@ -48,6 +54,7 @@ def cli_run(out: Path):
 
 
 def step_times(out: Path):
+    import_package()
     from reflector_mapper.core import pipeline
     from reflector_mapper.core.inputs import load_survey
 

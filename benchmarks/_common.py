@@ -1,0 +1,31 @@
+"""Shared set-up of the benchmark scripts (run as ``python benchmarks/<name>.py``)."""
+
+from __future__ import annotations
+
+import os
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def import_package() -> None:
+    """Make this checkout importable as ``reflector_mapper`` (the folder may have any name).
+
+    An installed ``reflector_mapper`` that is this checkout is used as it is;
+    otherwise a temporary folder with a link named after the package goes on
+    ``sys.path`` (the way QGIS loads a plugin folder).
+    """
+    try:
+        import reflector_mapper
+
+        if Path(reflector_mapper.__file__).resolve().parent == ROOT:
+            return
+    except ImportError:
+        pass
+    link_dir = Path(tempfile.mkdtemp(prefix="rm-bench-"))
+    os.symlink(ROOT, link_dir / "reflector_mapper")
+    sys.path.insert(0, str(link_dir))
+    for name in [m for m in sys.modules if m == "reflector_mapper" or m.startswith("reflector_mapper.")]:
+        del sys.modules[name]
