@@ -589,7 +589,7 @@ def test_progress_reaches_100(rng):
     assert seen[-1] == 100 and seen == sorted(seen)
 
 
-@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=600, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     npick=st.integers(0, 40),
     spacing=st.floats(0.01, 20.0),
