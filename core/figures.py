@@ -79,7 +79,8 @@ def gather_figure(offset_m, time_s, model_time_s, rejected, title, params_text, 
     ax.axhline(0, color="0.6", lw=0.8)
     ax.plot(x[~rej], r[~rej], "o", ms=3, color=USED, ls="none")
     ax.plot(x[rej], r[rej], "x", ms=5, color=REJECTED, ls="none")
-    lim = max(1.0, 1.2 * np.nanmax(np.abs(r[~rej]))) if np.any(~rej) else 1.0
+    finite = np.isfinite(r) & ~rej
+    lim = max(1.0, 1.2 * float(np.max(np.abs(r[finite])))) if np.any(finite) else 1.0
     ax.set_ylim(-lim, lim)
     ax.set_xlabel("x (m)")
     ax.set_ylabel("residual (ms)")

@@ -23,6 +23,7 @@ __all__ = [
     "misties_layer",
     "reflection_points_layer",
     "reflector_points_layer",
+    "run_info_layer",
     "shots_layer",
     "stations_layer",
     "surface_dips_layer",
@@ -243,6 +244,14 @@ def cmp_layer(columns) -> Layer:
     cols = dict(columns)
     return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT",
                  "Common-midpoint fits t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971); depth_m = Vnmo t0 / 2 (small dip)")
+
+
+def run_info_layer(items) -> Layer:
+    """A non-spatial key/value table saying how the outputs were made (method, velocity, grid...)."""
+    keys = [str(k) for k, _ in items]
+    values = [str(v) for _, v in items]
+    return Layer(None, {"key": np.array(keys, dtype=object), "value": np.array(values, dtype=object)},
+                 description="How this run made its outputs: surface method, velocities, grid, settings")
 
 
 def cross_validation_layer(x_m, y_m, cv) -> Layer:

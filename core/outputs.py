@@ -52,7 +52,48 @@ def result_layers(result) -> dict:
     if cv is not None:
         x, y, _, _ = surface_data(result.fit.points, result.survey.settings.reflector)
         out["cross_validation"] = lay.cross_validation_layer(x, y, cv)
+    out["run_info"] = lay.run_info_layer(run_info(result))
     return out
+
+
+def run_info(result) -> list:
+    """(key, value) pairs saying which method made which output, with the main numbers."""
+    from . import __version__
+
+    s = result.survey.settings
+    items = [
+        ("software", f"Reflector Mapper {__version__}"),
+        ("survey", result.survey.name),
+        ("crs", result.survey.crs.to_string()),
+        ("reflector", s.reflector),
+        ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
+    ]
+    if result.surface is not None:
+        items += [
+            ("surface_method", result.method_used),
+            ("reflector_elevation.tif", f"{result.method_used} surface of the reflector (m)"),
+            ("reflector_depth.tif", f"ground ({result.ground.description_}) minus reflector_elevation.tif (m)"),
+            ("depth_sigma.tif", "kriging standard deviation of the surface (m), ground taken as exact"),
+            ("cell_size_m", result.spec.cell_size_m),
+            ("trend", s.trend),
+        ]
+        vm = (result.seismic_diag or {}).get("variogram")
+        if vm is not None:
+            items.append(("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m2, sill {vm.sill:.4g} m2, "
+                                       f"range {vm.range_m:.1f} m"))
+    tomo = result.tomography or {}
+    if "result" in tomo:
+        t = tomo["result"]
+        items.append(("joint_inversion_velocity_m_s", f"{t.velocity_m_s:.2f} +- {t.sigma_velocity_m_s:.2f}"))
+    elif "skipped" in tomo:
+        items.append(("joint_inversion", f"not run: {tomo['skipped']}"))
+    if result.depth_ratio is not None:
+        d = result.depth_ratio
+        items.append(("borehole_depth_ratio", f"{d['factor']:.4f} +- {d['sigma_factor']:.4f}"))
+    items.append(("calibrate_velocity", s.calibrate_velocity))
+    items.append(("caution", "An interpretation with stated uncertainty; it does not replace borings. Check "
+                             "against borings; designs need sign-off by licensed professionals under local codes."))
+    return items
 
 
 def result_rasters(result) -> dict:

@@ -127,3 +127,41 @@ def test_cmp_velocity_analysis(tmp_path):
     assert np.allclose(c["nmo_velocity_m_s"][ok].astype(float), VINT_M_S[0], rtol=1e-3)
     assert np.allclose(c["t0_ms"][ok].astype(float), 2e3 * THICKNESS_M[0] / VINT_M_S[0], rtol=1e-3)
     assert np.allclose(c["depth_m"][ok].astype(float), THICKNESS_M[0], rtol=1e-3)
+
+
+def test_dem_gives_the_ground(tmp_path):
+    """A DEM named in [files] is the ground of the depth grid (not the station elevations)."""
+    from reflector_mapper.core.geotiff import write_geotiff
+
+    path = _write_survey(tmp_path, "top")
+    # DEM 1.5 m above the stations' 100 m everywhere, covering the survey with a margin
+    dem = np.full((60, 60), GROUND_M + 1.5)
+    write_geotiff(tmp_path / "dem.tif", dem, 499_850.0, 5_000_150.0, 5.0, "EPSG:32633")
+    path.write_text(path.read_text().replace('picks = "picks.csv"\n', 'picks = "picks.csv"\ndem = "dem.tif"\n'))
+    r = compute(load_survey(path), method="kriging")
+    ok = ~r.surface.mask
+    np.testing.assert_allclose(r.depth_m[ok], GROUND_M + 1.5 - r.surface.z[ok], atol=1e-9)
+    assert "dem.tif" in r.ground.description_
+
+
+def test_degenerate_gather_is_flagged_reported_and_the_run_goes_on(tmp_path):
+    """A shot left with 3 picks: status too_few_picks with a reason, listed in the report."""
+    from reflector_mapper.core.outputs import result_layers
+    from reflector_mapper.core.pipeline import write_outputs
+
+    path = _write_survey(tmp_path, "top")
+    picks = (tmp_path / "picks.csv").read_text().splitlines()
+    head, rows = picks[0], picks[1:]
+    victim = [r for r in rows if r.startswith("EW,120,")]
+    keep = [r for r in rows if not r.startswith("EW,120,")] + victim[:3]
+    (tmp_path / "picks.csv").write_text("\n".join([head, *keep]) + "\n")
+    r = compute(load_survey(path), method="kriging")
+    shots = result_layers(r)["shots"].fields
+    bad = (shots["line"] == "EW") & (shots["shot"] == "120") & (shots["reflector"] == "top")
+    assert shots["status"][bad].tolist() == ["too_few_picks"]
+    assert "3" in shots["reason"][bad][0]
+    assert np.all(shots["reason"][shots["status"] != "ok"] != "")  # every flagged gather says why
+    write_outputs(r, tmp_path / "out")
+    html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
+    flagged = html[html.index("Flagged gathers"):]
+    assert "too_few_picks" in flagged[:3000] and "120" in flagged[:3000]
