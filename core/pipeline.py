@@ -363,13 +363,22 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
         robust_scale=survey.settings.robust_scale, reject_sigma=survey.settings.reject_sigma, progress=progress,
     )
     # Between the lines no pick constrains the surface; there the inversion's
-    # penalty-interpolated values carry no usable sigma. So the constrained
-    # nodes (elevation, posterior sigma) are kriged with the boreholes onto
-    # the output grid: the joint inversion corrects the curvature bias along
-    # the lines, kriging interpolates between them with a standard deviation.
-    keep = np.asarray(res.mask) & np.isfinite(res.elevation_m) & np.isfinite(res.sigma_m)
-    x, y = gx[keep], gy[keep]
-    zz, ss = np.asarray(res.elevation_m)[keep], np.asarray(res.sigma_m)[keep]
+    # penalty-interpolated values carry no usable sigma. So the inverted surface
+    # is read at the gathers' reflector points (elevation and the nodes' posterior
+    # sigma, bilinear) and those points are kriged with the boreholes onto the
+    # output grid: the joint inversion corrects the curvature bias of each
+    # gather's point, kriging interpolates between the lines with a standard
+    # deviation, on the same data layout as the gather-fit surface.
+    from .tomography import surface_values
+
+    pts = fit.points
+    sel = mapped & (f.status == "ok") & pts.finite & np.asarray(res.grid.contains(pts.x_m, pts.y_m))
+    x, y = pts.x_m[sel], pts.y_m[sel]
+    zz = surface_values(np.asarray(res.elevation_unmasked_m), x, y, grid)
+    node_spec = GridSpec(x_w, y_s + (ny - 1) * step, step, nx, ny)
+    ss = _bilinear(node_spec, np.asarray(res.sigma_m)[::-1], x, y)
+    keep = np.isfinite(zz) & np.isfinite(ss)
+    x, y, zz, ss = x[keep], y[keep], zz[keep], ss[keep]
     if boreholes is not None:
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
