@@ -18,6 +18,17 @@ apt_install() {  # apt_install PKG... : install the Debian packages that are mis
     fi
 }
 
+quiet() {  # quiet CMD...: run CMD, show its output only if it fails
+    local log
+    log=$(mktemp)
+    if ! "$@" >"$log" 2>&1; then
+        cat "$log" >&2
+        rm -f "$log"
+        return 1
+    fi
+    rm -f "$log"
+}
+
 # Current PyPI releases, in .venv: the command line and the core tests.
 setup_pypi_venv() {  # setup_pypi_venv EXTRAS
     local extras=${1:-plots}
@@ -26,8 +37,8 @@ setup_pypi_venv() {  # setup_pypi_venv EXTRAS
         echo "== creating .venv (current PyPI releases)"
         "$py" -m venv "$REPO_ROOT/.venv"
     fi
-    "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check --upgrade pip >/dev/null
-    "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check -e "$REPO_ROOT[$extras]"
+    quiet "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check --upgrade pip
+    quiet "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check -e "$REPO_ROOT[$extras]"
 }
 
 # Debian's QGIS Python (numpy 1.24, scipy 1.10, shapely 1.8, pyproj 3.4) in .venv-qgis,
@@ -47,7 +58,7 @@ for d in ("numpy", "scipy", "shapely", "pyproj", "geopandas", "pandas", "GDAL", 
     except PackageNotFoundError:
         pass
 PY
-    "$venv/bin/python" -m pip install -q --disable-pip-version-check -c "$venv/debian-constraints.txt" \
+    quiet "$venv/bin/python" -m pip install -q --disable-pip-version-check -c "$venv/debian-constraints.txt" \
         pytest 'pytest-qgis==5.0.2' hypothesis pykrige gstools
 }
 

@@ -10,7 +10,7 @@ cd "$REPO_ROOT"
 apt_install "${QGIS_DEBS[@]}"
 setup_pypi_venv test,plots
 setup_qgis_venv
-.venv/bin/python -m pip install -q --disable-pip-version-check gstools rasterio pyogrio geopandas
+quiet .venv/bin/python -m pip install -q --disable-pip-version-check gstools rasterio pyogrio geopandas
 
 echo "== 1/2 core tests on current PyPI releases"
 .venv/bin/python -c "import numpy, scipy, pyproj, shapely; print('numpy', numpy.__version__, 'scipy', scipy.__version__, 'pyproj', pyproj.__version__, 'shapely', shapely.__version__)"
