@@ -6,7 +6,7 @@ or the tests) never needs QGIS.
 """
 
 
-def classFactory(iface):  # noqa: N802 (name fixed by QGIS)
+def classFactory(iface):  # the name is fixed by QGIS
     """Return the plugin object QGIS asks for."""
     from .plugin.main import ReflectorMapperPlugin
 

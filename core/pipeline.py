@@ -395,7 +395,7 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
         "curvature_flag": flag & (f.status == "ok") & mapped,
         "curvature_reason": reason,
         "difference_m": z - start.z,
-        "node_kriging": diag,
+        "kriging_diag": diag,
         "used": use,
     }
 
