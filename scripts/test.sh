@@ -12,6 +12,9 @@ setup_pypi_venv test,plots
 setup_qgis_venv
 quiet .venv/bin/python -m pip install -q --disable-pip-version-check gstools rasterio pyogrio geopandas
 
+echo "== lint (ruff)"
+.venv/bin/ruff check .
+
 echo "== 1/2 core tests on current PyPI releases"
 .venv/bin/python -c "import numpy, scipy, pyproj, shapely; print('numpy', numpy.__version__, 'scipy', scipy.__version__, 'pyproj', pyproj.__version__, 'shapely', shapely.__version__)"
 .venv/bin/python -m pytest -q --ignore=tests/qgis "$@"
