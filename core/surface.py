@@ -68,7 +68,7 @@ References
 [Dubrule 1983] Dubrule, O. (1983). Cross validation of kriging in a unique
     neighborhood. Mathematical Geology 15(6), 687-699.
 [Duchon 1977] Duchon, J. (1977). Splines minimizing rotation-invariant
-    semi-norms in Sobolev spaces. Lecture Notes in Mathematics 571, 85-100.
+    semi-norms in Sobolev spaces. Springer, LNM vol. 571, 85-100.
 [Wahba 1990] Wahba, G. (1990). Spline Models for Observational Data. SIAM.
 [Gneiting & Raftery 2007] Gneiting, T. & Raftery, A. E. (2007). Strictly proper
     scoring rules, prediction, and estimation. JASA 102(477), 359-378.
