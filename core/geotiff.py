@@ -111,16 +111,9 @@ class Raster:
 
 def _crs_geokeys(crs):
     """GeoKey entries (key, value or ascii) and the citation for a CRS."""
-    import pyproj
+    from .crs import horizontal_crs, parse_crs
 
-    try:
-        crs = pyproj.CRS.from_user_input(crs)
-    except pyproj.exceptions.CRSError as exc:
-        raise GeoreferenceError(
-            f"cannot read the CRS {crs!r}: {exc}; give e.g. 'EPSG:32633' or a WKT"
-        ) from exc
-    if crs.is_compound and crs.sub_crs_list:
-        crs = crs.sub_crs_list[0]
+    crs = horizontal_crs(parse_crs(crs))  # the horizontal part; elevations are plain numbers
     code = crs.to_epsg()
     keys: Dict[int, object] = {_GT_RASTER_TYPE: 1}  # RasterPixelIsArea
     if crs.is_geographic:

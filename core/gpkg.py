@@ -50,7 +50,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .atomic import atomic_path
-from .errors import GeoreferenceError, OutputError
+from .errors import OutputError
 
 __all__ = ["GPKG_APPLICATION_ID", "GPKG_USER_VERSION", "Layer", "crs_srs_row", "write_geopackage"]
 
@@ -143,14 +143,9 @@ def crs_srs_row(crs) -> tuple:
     """
     import pyproj
 
-    try:
-        crs = pyproj.CRS.from_user_input(crs)
-    except pyproj.exceptions.CRSError as exc:
-        raise GeoreferenceError(
-            f"cannot read the CRS {crs!r}: {exc}; give e.g. 'EPSG:32633' or a WKT"
-        ) from exc
-    if crs.is_compound and crs.sub_crs_list:
-        crs = crs.sub_crs_list[0]  # the horizontal part; elevations are plain numbers
+    from .crs import horizontal_crs, parse_crs
+
+    crs = horizontal_crs(parse_crs(crs))  # the horizontal part; elevations are plain numbers
     code = crs.to_epsg()
     try:
         wkt = crs.to_wkt("WKT1_GDAL")
