@@ -1592,16 +1592,26 @@ class ThinPlateSpline:
 def default_max_distance(x, y, variogram=None):
     """Default masking distance (m): 15 % of the diagonal of the data bounding
     box, and not more than the variogram range (beyond it kriging returns the
-    mean). A rule of this project, to be overridden with site knowledge.
+    mean), but never less than the median distance between neighbouring data
+    (so that the cells between data along a line are mapped even when the
+    fitted range collapses, e.g. over a flat reflector). A rule of this
+    project, to be overridden with site knowledge.
 
-    >>> default_max_distance([0, 300], [0, 400])
+    >>> default_max_distance([0, 10, 20, 300], [0, 0, 0, 400])  # diagonal 500 m
     75.0
+    >>> default_max_distance([0, 20, 40, 60], [0, 0, 0, 0])  # one line: the 20 m spacing
+    20.0
     """
     x = np.asarray(x, float)
     y = np.asarray(y, float)
     d = 0.15 * math.hypot(np.ptp(x), np.ptp(y))
     if variogram is not None:
         d = min(d, variogram.range_m)
+    if x.size > 1:
+        from scipy.spatial import cKDTree
+
+        nn = cKDTree(np.column_stack([x, y])).query(np.column_stack([x, y]), k=2)[0][:, 1]
+        d = max(d, float(np.median(nn)))
     return float(d)
 
 

@@ -165,3 +165,16 @@ def test_degenerate_gather_is_flagged_reported_and_the_run_goes_on(tmp_path):
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
     flagged = html[html.index("Flagged gathers"):]
     assert "too_few_picks" in flagged[:3000] and "120" in flagged[:3000]
+
+
+def test_single_line_survey_runs_and_gives_no_invented_dip(tmp_path):
+    """One line: a line sees only the along-line normal component, so no true dip is given."""
+    path = _write_survey(tmp_path, "top")
+    for name in ("stations.csv", "picks.csv"):
+        rows = (tmp_path / name).read_text().splitlines()
+        (tmp_path / name).write_text("\n".join([rows[0]] + [r for r in rows[1:] if not r.startswith("NS,")]) + "\n")
+    r = compute(load_survey(path), method="kriging")
+    assert len(r.dips) >= 1 and not np.any(r.dips.status == "ok")
+    assert np.all(np.isnan(r.dips.dip_deg))
+    assert set(r.dips.status) == {"single_direction"}
+    assert np.any(~r.surface.mask)  # the map is still made along the line
