@@ -29,3 +29,32 @@ def import_package() -> None:
     sys.path.insert(0, str(link_dir))
     for name in [m for m in sys.modules if m == "reflector_mapper" or m.startswith("reflector_mapper.")]:
         del sys.modules[name]
+
+
+def load_average() -> str:
+    """The 1, 5 and 15 minute load averages ("n/a" where the system has none)."""
+    try:
+        return " ".join(f"{v:.1f}" for v in os.getloadavg())
+    except (AttributeError, OSError):
+        return "n/a"
+
+
+def memory_gib() -> float:
+    """Physical memory of the machine (GiB; NaN when unknown)."""
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
+    except (ValueError, OSError, AttributeError):
+        return float("nan")
+
+
+def machine() -> str:
+    """Processor, cores, memory and the numeric library versions, for RESULTS.md."""
+    import platform
+
+    import numpy
+    import scipy
+
+    return (
+        f"{platform.machine()}, {os.cpu_count()} cores, {memory_gib():.1f} GiB RAM; Python "
+        f"{platform.python_version()}, numpy {numpy.__version__}, scipy {scipy.__version__}"
+    )

@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import platform
 import sys
 import time
 from pathlib import Path
@@ -40,11 +39,11 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 
 
-from _common import import_package  # noqa: E402
+from _common import import_package, machine  # noqa: E402
+from _common import load_average as _load  # noqa: E402
 
 import_package()
 
-import scipy  # noqa: E402
 from reflector_mapper.core import forward  # noqa: E402
 from reflector_mapper.core import inversion as inv  # noqa: E402
 from reflector_mapper.core.model import GatherSet, Settings  # noqa: E402
@@ -239,30 +238,6 @@ def layout_comparison(n_gathers, repeat=5):
             best = min(best, time.perf_counter() - t0)
         times[name] = best
     return times
-
-
-def _load():
-    try:
-        return " ".join(f"{v:.1f}" for v in os.getloadavg())
-    except (AttributeError, OSError):
-        return "?"
-
-
-def machine():
-    cores = os.cpu_count()
-    mem = "?"
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemTotal"):
-                    mem = f"{int(line.split()[1]) / 1024**2:.1f} GiB"
-                    break
-    except OSError:
-        pass
-    return (
-        f"{platform.processor() or platform.machine()}, {cores} cores, {mem}; Python "
-        f"{platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}"
-    )
 
 
 def main(argv=None):

@@ -35,6 +35,10 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 
 
+from _common import load_average as _load  # noqa: E402
+from _common import memory_gib as _meminfo_gib  # noqa: E402
+
+
 def _import_package():
     from _common import import_package
 
@@ -42,24 +46,6 @@ def _import_package():
     from reflector_mapper.core import surface
 
     return surface
-
-
-def _meminfo_gib():
-    try:
-        with open("/proc/meminfo") as f:
-            for line in f:
-                if line.startswith("MemTotal:"):
-                    return int(line.split()[1]) / 2**20
-    except OSError:
-        pass
-    return float("nan")
-
-
-def _load():
-    try:
-        return " ".join(f"{v:.1f}" for v in os.getloadavg())
-    except OSError:
-        return "n/a"
 
 
 def _data(n, seed=1, size=1000.0):

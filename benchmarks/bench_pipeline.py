@@ -13,7 +13,6 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import os
-import platform
 import resource
 import subprocess
 import sys
@@ -21,7 +20,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from _common import import_package
+from _common import import_package, load_average, machine
 
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
@@ -29,13 +28,7 @@ SURVEY = REPO / "sample_project" / "survey.toml"
 
 
 def machine_line() -> str:
-    import numpy
-    import scipy
-
-    mem_gib = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
-    load = " ".join(f"{v:.1f}" for v in os.getloadavg())
-    return (f"{platform.machine()}, {os.cpu_count()} cores, {mem_gib:.1f} GiB RAM, load average {load} at the "
-            f"start; Python {platform.python_version()}, numpy {numpy.__version__}, scipy {scipy.__version__}")
+    return f"{machine()}; load average {load_average()} at the start"
 
 
 def cli_run(out: Path):

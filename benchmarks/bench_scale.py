@@ -36,6 +36,9 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 
 
+from _common import load_average  # noqa: E402
+
+
 def _import_package():
     from _common import import_package
 
@@ -94,10 +97,7 @@ def _slope(xs, ys):
 def run(quick=False, append=True):
     sizes = [10_000, 100_000] if quick else [10_000, 100_000, 1_000_000]
     cases = [(n, m) for n in sizes for m in sizes]
-    try:
-        load0 = " ".join(f"{v:.1f}" for v in os.getloadavg())
-    except OSError:
-        load0 = "n/a"
+    load0 = load_average()
     results = []
     for n, m in cases:
         proc = subprocess.run([sys.executable, __file__, "--child", str(n), str(m)],
@@ -111,10 +111,7 @@ def run(quick=False, append=True):
         print(f"N={n:>8} cells={r['n_cells']:>8}  variogram {r['t_variogram']:.1f}s fit {r['t_fit']:.1f}s "
               f"cv {r['t_cv']:.1f}s grid {r['t_grid']:.1f}s  peak {r['peak_rss_mib']:.0f} MiB "
               f"({r['model']}, MSSE {r['msse']:.2f})", flush=True)
-    try:
-        load1 = " ".join(f"{v:.1f}" for v in os.getloadavg())
-    except OSError:
-        load1 = "n/a"
+    load1 = load_average()
     lines = ["| N points | cells | model chosen | variogram (s) | fit (s) | cross-val. (s) | grid (s) "
              "| grid us/cell | total (s) | RSS before (MiB) | peak RSS (MiB) | LOO MSSE |",
              "|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]

@@ -25,7 +25,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import platform
 import resource
 import subprocess
 import sys
@@ -37,11 +36,10 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 
 
-from _common import import_package  # noqa: E402
+from _common import import_package, load_average, machine  # noqa: E402
 
 import_package()
 
-import scipy  # noqa: E402
 from reflector_mapper.core import tomography as tm  # noqa: E402
 
 V_TRUE = 1800.0
@@ -149,23 +147,9 @@ def run_case(kind: str, quick: bool) -> dict:
 
 
 def _machine() -> str:
-    try:
-        mem = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
-        mem_txt = f"{mem:.1f} GiB RAM"
-    except (ValueError, OSError, AttributeError):
-        mem_txt = "RAM unknown"
-    try:
-        load = os.getloadavg()[0]
-        load_txt = f", load average {load:.1f} at the start"
-    except OSError:
-        load_txt = ""
     threads = os.environ.get("OPENBLAS_NUM_THREADS") or os.environ.get("OMP_NUM_THREADS")
-    if threads:
-        load_txt += f", BLAS threads {threads}"
-    return (
-        f"{platform.machine()}, {os.cpu_count()} cores, {mem_txt}{load_txt}; "
-        f"Python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}"
-    )
+    extra = f", BLAS threads {threads}" if threads else ""
+    return f"{machine()}; load average {load_average().split()[0]} at the start{extra}"
 
 
 def main(argv=None):
