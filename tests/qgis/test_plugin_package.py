@@ -1,8 +1,6 @@
 """`make package` builds a zip that follows the plugin repository's rules and loads in QGIS."""
 
 import importlib.util
-import os
-import subprocess
 import zipfile
 from pathlib import Path
 
@@ -11,7 +9,6 @@ import pytest
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 REPO = Path(__file__).resolve().parents[2]
-QGIS_PROCESS = "/usr/bin/qgis_process.bin"
 
 
 @pytest.fixture(scope="module")
@@ -67,24 +64,12 @@ def test_checker_finds_broken_zips(packager, tmp_path):
 
 
 def test_unzipped_plugin_loads_in_qgis_process(plugin_zip, tmp_path):
-    if not os.path.exists(QGIS_PROCESS):
-        pytest.skip(f"{QGIS_PROCESS} not found")
+    from qgis_process_env import enabled_env, run
+
     plugins = tmp_path / "plugins"
     zipfile.ZipFile(plugin_zip).extractall(plugins)
     home = tmp_path / "home"
     home.mkdir()
-    env = dict(
-        os.environ,
-        HOME=str(home),
-        QGIS_CUSTOM_CONFIG_PATH=str(home),
-        QGIS_PLUGINPATH=str(plugins),
-        QT_QPA_PLATFORM="offscreen",
-        XDG_RUNTIME_DIR=str(home),
-    )
-    env.setdefault("PROJ_DATA", "/usr/share/proj")
-    out = subprocess.run(
-        [QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env, capture_output=True, text=True, timeout=120
-    )
-    assert out.returncode == 0, out.stderr
-    out = subprocess.run([QGIS_PROCESS, "list"], env=env, capture_output=True, text=True, timeout=120)
+    env = enabled_env(home, plugins)
+    out = run(env, "list", timeout=120)
     assert "reflectormapper:runsurvey" in out.stdout

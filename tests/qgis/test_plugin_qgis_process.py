@@ -1,49 +1,19 @@
-"""The provider works from the qgis_process command line (the plugin loaded as QGIS loads it).
+"""The provider works from the qgis_process command line (the plugin loaded as QGIS loads it)."""
 
-Debian's /usr/bin/qgis_process wrapper passes an option 3.22 rejects, so the
-binary /usr/bin/qgis_process.bin is called. A private profile folder keeps the
-user's QGIS settings untouched.
-"""
-
-import os
-import shutil
-import subprocess
 
 import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsVectorLayer
+from qgis_process_env import enabled_env
+from qgis_process_env import run as qgis_process
 from reflector_mapper.core import inputs, layers, pipeline
-
-QGIS_PROCESS = shutil.which("qgis_process.bin") or "/usr/bin/qgis_process.bin"
 
 
 @pytest.fixture(scope="module")
 def qp_env(plugin_dir, tmp_path_factory):
-    if not os.path.exists(QGIS_PROCESS):
-        if os.environ.get("CI") == "true":
-            pytest.fail(f"{QGIS_PROCESS} not found on CI")
-        pytest.skip(f"{QGIS_PROCESS} not found")
-    home = tmp_path_factory.mktemp("qgis-home")
-    env = dict(
-        os.environ,
-        HOME=str(home),
-        QGIS_CUSTOM_CONFIG_PATH=str(home),
-        QGIS_PLUGINPATH=str(plugin_dir),
-        QT_QPA_PLATFORM="offscreen",
-        XDG_RUNTIME_DIR=str(home),
-    )
-    env.setdefault("PROJ_DATA", "/usr/share/proj")
-    out = subprocess.run(
-        [QGIS_PROCESS, "plugins", "enable", "reflector_mapper"], env=env, capture_output=True, text=True, timeout=120
-    )
-    assert out.returncode == 0, out.stderr
-    return env
-
-
-def qgis_process(env, *args, timeout=300):
-    return subprocess.run([QGIS_PROCESS, *args], env=env, capture_output=True, text=True, timeout=timeout)
+    return enabled_env(tmp_path_factory.mktemp("qgis-home"), plugin_dir)
 
 
 def test_list_shows_provider(qp_env):
