@@ -13,7 +13,7 @@ import pytest
 from reflector_mapper.core import tomography as tm
 from reflector_mapper.core.inputs import load_survey
 from reflector_mapper.core.pipeline import compute
-from test_tomography import GRID, SIGMA_S, V_TRUE, ground, true_nodes
+from test_tomography import GRID, SIGMA_S, V_TRUE, ground, true_nodes, valley_lines
 
 E0, N0 = 500_000.0, 5_000_000.0  # local site coordinates placed in UTM zone 33N
 
@@ -22,13 +22,7 @@ E0, N0 = 500_000.0, 5_000_000.0  # local site coordinates placed in UTM zone 33N
 def valley_run(tmp_path_factory):
     rng = np.random.default_rng(7)
     folder = tmp_path_factory.mktemp("valley")
-    s = np.arange(-100.0, 100.01, 2.0)
-    lines = {
-        "L1": np.column_stack([s, np.full_like(s, -25.0)]),
-        "L2": np.column_stack([s, np.full_like(s, 30.0)]),
-        "L3": np.column_stack([np.zeros_like(s), s]),
-        "L4": np.column_stack([np.full_like(s, 45.0), s]),
-    }
+    lines = valley_lines()  # the lines of test_tomography's valley survey
     st_rows, pk_rows = [], []
     for name, xy in lines.items():
         z = ground(xy[:, 0], xy[:, 1])

@@ -49,6 +49,17 @@ def true_nodes(grid=GRID):
     return reflector(X, Y)
 
 
+def valley_lines():
+    """Station positions (m, local) of the four valley lines, every 2 m."""
+    s = np.arange(-100.0, 100.01, 2.0)
+    return {
+        "L1": np.column_stack([s, np.full_like(s, -25.0)]),
+        "L2": np.column_stack([s, np.full_like(s, 30.0)]),
+        "L3": np.column_stack([np.zeros_like(s), s]),
+        "L4": np.column_stack([np.full_like(s, 45.0), s]),
+    }
+
+
 def valley_survey(rng, noise_s=SIGMA_S, mispick=0.03):
     """Four lines (two across the valley axis, one on it, one on the flank).
 
@@ -56,13 +67,7 @@ def valley_survey(rng, noise_s=SIGMA_S, mispick=0.03):
     shot), a shot every 4th station. Times: Fermat times on the true
     (Catmull-Rom) surface, Gaussian noise, and 3 % mispicks of 3-8 ms.
     """
-    s = np.arange(-100.0, 100.01, 2.0)
-    lines = {
-        "L1": np.column_stack([s, np.full_like(s, -25.0)]),
-        "L2": np.column_stack([s, np.full_like(s, 30.0)]),
-        "L3": np.column_stack([np.zeros_like(s), s]),
-        "L4": np.column_stack([np.full_like(s, 45.0), s]),
-    }
+    lines = valley_lines()
     src, rec, gid, units, names = [], [], [], [], []
     for name, st in lines.items():
         xyz = np.column_stack([st, ground(st[:, 0], st[:, 1])])
