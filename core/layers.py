@@ -232,18 +232,24 @@ def boreholes_layer(boreholes, check) -> Layer:
     )
 
 
+def _point_columns_layer(columns, description) -> Layer:
+    """A point layer from a dict of columns holding ``x_m`` and ``y_m``."""
+    cols = dict(columns)
+    return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT", description)
+
+
 def dix_layer(columns) -> Layer:
     """Dix (1955) interval velocities and thicknesses under shots with several reflectors."""
-    cols = dict(columns)
-    return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT",
-                 "Interval velocity and thickness between successive reflectors (Dix 1955) under each shot")
+    return _point_columns_layer(
+        columns, "Interval velocity and thickness between successive reflectors (Dix 1955) under each shot"
+    )
 
 
 def cmp_layer(columns) -> Layer:
     """Common-midpoint fits (t0, NMO velocity) at the bin centres."""
-    cols = dict(columns)
-    return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT",
-                 "Common-midpoint fits t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971); depth_m = Vnmo t0 / 2 (small dip)")
+    return _point_columns_layer(
+        columns, "Common-midpoint fits t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971); depth_m = Vnmo t0 / 2 (small dip)"
+    )
 
 
 def run_info_layer(items) -> Layer:

@@ -336,16 +336,16 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     f, g = fit.fits, fit.gathers
     mapped = np.asarray(g.reflector).astype(str) == str(survey.settings.reflector)
     v_site, v_spread, n_v = robust_site_velocity(f.velocity_m_s, f.se_velocity_m_s, (f.status == "ok") & mapped)
+    use = ~f.excluded & mapped[g.gather]
     why = None
-    if len(g.time_s) < 200:
-        why = f"only {len(g.time_s)} picks (at least 200 needed)"
+    if use.sum() < 200:
+        why = f"only {int(use.sum())} picks of the mapped reflector (at least 200 needed)"
     elif n_v < 5:
         why = f"only {n_v} usable gathers for a starting velocity (at least 5 needed)"
     if why:
         if forced:
             raise InversionError(f"the joint inversion is not supported by this survey: {why}")
         return {"skipped": why}
-    use = ~f.excluded & mapped[g.gather]
     bh = survey.boreholes
     boreholes = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, bh.elevation_m, bh.sigma_m)
     # nodes every NODE_CELLS output cells (row 0 south, as the tomography wants), covering the grid
