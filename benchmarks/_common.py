@@ -11,23 +11,23 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def import_package() -> None:
-    """Make this checkout importable as ``reflector_mapper`` (the folder may have any name).
+    """Make this checkout importable as ``rockhead`` (the folder may have any name).
 
-    An installed ``reflector_mapper`` that is this checkout is used as it is;
+    An installed ``rockhead`` that is this checkout is used as it is;
     otherwise a temporary folder with a link named after the package goes on
     ``sys.path`` (the way QGIS loads a plugin folder).
     """
     try:
-        import reflector_mapper
+        import rockhead
 
-        if Path(reflector_mapper.__file__).resolve().parent == ROOT:
+        if Path(rockhead.__file__).resolve().parent == ROOT:
             return
     except ImportError:
         pass
     link_dir = Path(tempfile.mkdtemp(prefix="rm-bench-"))
-    os.symlink(ROOT, link_dir / "reflector_mapper")
+    os.symlink(ROOT, link_dir / "rockhead")
     sys.path.insert(0, str(link_dir))
-    for name in [m for m in sys.modules if m == "reflector_mapper" or m.startswith("reflector_mapper.")]:
+    for name in [m for m in sys.modules if m == "rockhead" or m.startswith("rockhead.")]:
         del sys.modules[name]
 
 

@@ -43,7 +43,7 @@ def _import_package():
     from _common import import_package
 
     import_package()
-    from reflector_mapper.core import surface
+    from rockhead.core import surface
 
     return surface
 

@@ -1,6 +1,6 @@
 """Benchmark (d): the sample project end to end through the command line.
 
-Runs ``reflector-map run sample_project/survey.toml --out <tmp>`` in a child
+Runs ``rockhead run sample_project/survey.toml --out <tmp>`` in a child
 process (wall time and the child's peak resident memory), then the same job
 in-process with a timer around each step, so the table shows where the time
 goes. Appends a section to benchmarks/RESULTS.md.
@@ -33,11 +33,11 @@ def machine_line() -> str:
 
 def cli_run(out: Path):
     import_package()
-    import reflector_mapper
+    import rockhead
 
-    env = dict(os.environ, PYTHONPATH=str(Path(reflector_mapper.__path__[0]).parent))
+    env = dict(os.environ, PYTHONPATH=str(Path(rockhead.__path__[0]).parent))
     t = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-m", "reflector_mapper.core.cli", "run", str(SURVEY), "--out", str(out)],
+    proc = subprocess.run([sys.executable, "-m", "rockhead.core.cli", "run", str(SURVEY), "--out", str(out)],
                           capture_output=True, text=True, env=env)
     wall = time.perf_counter() - t
     if proc.returncode != 0:
@@ -48,8 +48,8 @@ def cli_run(out: Path):
 
 def step_times(out: Path):
     import_package()
-    from reflector_mapper.core import pipeline
-    from reflector_mapper.core.inputs import load_survey
+    from rockhead.core import pipeline
+    from rockhead.core.inputs import load_survey
 
     times = {}
 

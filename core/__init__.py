@@ -1,4 +1,4 @@
-"""Pure-Python core of Reflector Mapper (no QGIS, no Qt).
+"""Pure-Python core of Rockhead (no QGIS, no Qt).
 
 Conventions used in every module (see DEVELOPERS.md):
 

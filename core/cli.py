@@ -1,4 +1,4 @@
-"""Command line: ``reflector-map run SURVEY.toml --out DIR``.
+"""Command line: ``rockhead run SURVEY.toml --out DIR``.
 
 Exit codes: 0 success; 2 bad input or an output that cannot be written (one
 line on stderr, no traceback); 1 an internal error (one line, ``--debug`` shows
@@ -18,7 +18,7 @@ import warnings
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from . import __version__
-from .errors import CancelledError, ReflectorMapperError
+from .errors import CancelledError, RockheadError
 from .progress import NullProgress, StderrProgress
 
 CAUTION = (
@@ -30,7 +30,7 @@ CAUTION = (
 
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
-        prog="reflector-map",
+        prog="rockhead",
         description="Map a seismic reflector (usually bedrock) from shallow reflection picks.",
         epilog=CAUTION,
     )
@@ -79,25 +79,25 @@ def main(argv=None) -> int:
                 result = run(args.survey, args.out, method=args.method, progress=progress)
                 print(result.summary())
     except CancelledError:
-        print("reflector-map: cancelled", file=sys.stderr)
+        print("rockhead: cancelled", file=sys.stderr)
         return 130
     except KeyboardInterrupt:
-        print("reflector-map: interrupted", file=sys.stderr)
+        print("rockhead: interrupted", file=sys.stderr)
         return 130
-    except ReflectorMapperError as err:
-        print(f"reflector-map: error: {_one_line(err)}", file=sys.stderr)
+    except RockheadError as err:
+        print(f"rockhead: error: {_one_line(err)}", file=sys.stderr)
         return 2
     except Exception as err:  # an internal error: say so in one line unless --debug
         if getattr(args, "debug", False):
             raise
         print(
-            f"reflector-map: internal error: {type(err).__name__}: {_one_line(err)} (rerun with --debug)",
+            f"rockhead: internal error: {type(err).__name__}: {_one_line(err)} (rerun with --debug)",
             file=sys.stderr,
         )
         return 1
     for w in caught:
         if issubclass(w.category, UserWarning):
-            print(f"reflector-map: warning: {_one_line(w.message)}", file=sys.stderr)
+            print(f"rockhead: warning: {_one_line(w.message)}", file=sys.stderr)
     return 0
 
 

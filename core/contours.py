@@ -168,7 +168,7 @@ def contours_layer(
 
     Returns
     -------
-    reflector_mapper.core.gpkg.Layer
+    rockhead.core.gpkg.Layer
         LINESTRING features with fields ``kind`` (``"elevation"`` or
         ``"depth"``), ``elevation_m`` (NaN on depth contours), ``depth_m``
         (NaN on elevation contours) and ``index`` (bool).

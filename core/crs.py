@@ -1,6 +1,6 @@
 """Coordinate reference systems: parsing, the working CRS, transforms and grid scale.
 
-Reflector Mapper computes in a *projected* CRS whose axes are easting and
+Rockhead computes in a *projected* CRS whose axes are easting and
 northing in metres (x, y) with elevation z up. Input coordinates may be
 projected (kept as they are) or geographic (longitude, latitude in degrees),
 in which case they are transformed with pyproj to a projected working CRS:
@@ -57,7 +57,7 @@ __all__ = [
 
 AXIS_ORDER_NOTE = (
     "x is always easting or longitude and y northing or latitude, whatever axis order the "
-    "CRS authority declares (EPSG:4326 is latitude first by definition; Reflector Mapper "
+    "CRS authority declares (EPSG:4326 is latitude first by definition; Rockhead "
     "reads it as x = longitude, y = latitude)"
 )
 
@@ -167,7 +167,7 @@ def _check_projected_metres(crs: pyproj.CRS, what: str) -> pyproj.CRS:
     units = {(a.unit_name or "").lower() for a in h.axis_info[:2]}
     if not units <= {"metre", "meter", "m"}:
         raise GeoreferenceError(
-            f"{what} {crs_label(crs)} has axes in {', '.join(sorted(units))}: Reflector Mapper works "
+            f"{what} {crs_label(crs)} has axes in {', '.join(sorted(units))}: Rockhead works "
             "in metres; choose a metre-based projected CRS"
         )
     return h

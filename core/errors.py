@@ -1,6 +1,6 @@
-"""Error and warning types of Reflector Mapper.
+"""Error and warning types of Rockhead.
 
-Every error the core raises on purpose derives from :class:`ReflectorMapperError`,
+Every error the core raises on purpose derives from :class:`RockheadError`,
 so callers (the command line, the QGIS adapter) can catch one root and show its
 message. Messages quote the bad value, say what was expected and, for input
 files, name the file, the line and the field.
@@ -11,11 +11,11 @@ from __future__ import annotations
 import os
 
 
-class ReflectorMapperError(Exception):
-    """Root of all errors raised on purpose by Reflector Mapper."""
+class RockheadError(Exception):
+    """Root of all errors raised on purpose by Rockhead."""
 
 
-class InputFileError(ReflectorMapperError, ValueError):
+class InputFileError(RockheadError, ValueError):
     """Bad content in an input file (CSV, TOML, raster).
 
     Parameters
@@ -53,19 +53,19 @@ class SurveyConfigError(InputFileError):
     """Bad or inconsistent survey.toml."""
 
 
-class GeoreferenceError(ReflectorMapperError):
+class GeoreferenceError(RockheadError):
     """A CRS or coordinate transformation problem (wraps pyproj errors)."""
 
 
-class InversionError(ReflectorMapperError):
+class InversionError(RockheadError):
     """A fit that cannot be set up at all (not a flagged gather: those carry a status)."""
 
 
-class OutputError(ReflectorMapperError):
+class OutputError(RockheadError):
     """An output cannot be written (folder not writable, output equals an input, ...)."""
 
 
-class MissingDependencyError(ReflectorMapperError, ImportError):
+class MissingDependencyError(RockheadError, ImportError):
     """An optional package needed for one feature is not installed."""
 
     def __init__(self, package: str, feature: str, hint: str | None = None):
@@ -75,9 +75,9 @@ class MissingDependencyError(ReflectorMapperError, ImportError):
         super().__init__(f"{feature} needs the Python package '{package}', which is not installed: {hint}")
 
 
-class CancelledError(ReflectorMapperError):
+class CancelledError(RockheadError):
     """The user cancelled a long computation."""
 
 
-class ReflectorMapperWarning(UserWarning):
+class RockheadWarning(UserWarning):
     """Input that is valid but suspicious (the run goes on)."""

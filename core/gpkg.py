@@ -13,7 +13,7 @@ What the file holds (section numbers of 12-128r18):
   4326, -1 undefined Cartesian, 0 undefined geographic; 1.1.2.1.2, Req 11) and
   the survey CRS: organisation ``EPSG`` and its code when
   :meth:`pyproj.CRS.to_epsg` finds one, else organisation
-  ``REFLECTOR_MAPPER`` with srs_id 100000 and the WKT;
+  ``ROCKHEAD`` with srs_id 100000 and the WKT;
 * ``gpkg_contents`` (1.1.3) with each table's extent, in the order given;
 * ``gpkg_geometry_columns`` (2.1.5) and one table per layer with
   ``fid INTEGER PRIMARY KEY AUTOINCREMENT`` (Req 29) and a ``geom`` column of
@@ -56,7 +56,7 @@ __all__ = ["GPKG_APPLICATION_ID", "GPKG_USER_VERSION", "Layer", "crs_srs_row", "
 
 GPKG_APPLICATION_ID = 0x47504B47  # 'GPKG'
 GPKG_USER_VERSION = 10300  # GeoPackage 1.3.0
-PROJECT_ORGANIZATION = "REFLECTOR_MAPPER"
+PROJECT_ORGANIZATION = "ROCKHEAD"
 PROJECT_SRS_ID = 100000
 GEOMETRY_COLUMN = "geom"
 FID_COLUMN = "fid"
@@ -139,7 +139,7 @@ def crs_srs_row(crs) -> tuple:
     >>> row[:4]
     ('WGS 84 / UTM zone 33N', 32633, 'EPSG', 32633)
     >>> crs_srs_row("+proj=tmerc +lon_0=15.5 +k=1 +x_0=50000 +ellps=GRS80 +units=m")[1:4]
-    (100000, 'REFLECTOR_MAPPER', 100000)
+    (100000, 'ROCKHEAD', 100000)
     """
     import pyproj
 

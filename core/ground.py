@@ -29,7 +29,7 @@ import warnings
 
 import numpy as np
 
-from .errors import GeoreferenceError, InputFileError, ReflectorMapperWarning
+from .errors import GeoreferenceError, InputFileError, RockheadWarning
 from .geotiff import Raster, read_raster
 
 __all__ = ["GroundModel"]
@@ -170,7 +170,7 @@ class GroundModel:
         if work is not None and dem_crs is None:
             warnings.warn(
                 f"{name} declares no CRS; it is taken to be in the working CRS '{work.name}'",
-                ReflectorMapperWarning,
+                RockheadWarning,
                 stacklevel=2,
             )
         elif work is not None and not dem_crs.equals(work, ignore_axis_order=True):

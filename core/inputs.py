@@ -39,7 +39,7 @@ exactly after stripping spaces: ``1`` and ``01`` are different labels.
 
 Decisions on suspicious input
 -----------------------------
-Unknown CSV columns are *ignored with a* :class:`ReflectorMapperWarning` (extra
+Unknown CSV columns are *ignored with a* :class:`RockheadWarning` (extra
 columns such as a remark or a pick quality are common and harmless). Points of
 a projected CRS that lie outside the CRS's EPSG area of use give a warning (a
 UTM zone is routinely used a little beyond its 6 degree strip); more than
@@ -67,7 +67,7 @@ from pathlib import Path
 import numpy as np
 
 from . import crs as crsmod
-from .errors import GeoreferenceError, InputFileError, ReflectorMapperWarning, SurveyConfigError
+from .errors import GeoreferenceError, InputFileError, RockheadWarning, SurveyConfigError
 from .model import Boreholes, Picks, Settings, Stations, Survey
 
 try:  # Python 3.11+
@@ -216,7 +216,7 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
     separated files are recognised and refused with a hint), a header with
     every required column, no duplicate or empty column name, at least one
     data row, and the same number of fields in every row. Unknown columns are
-    ignored with a :class:`ReflectorMapperWarning`.
+    ignored with a :class:`RockheadWarning`.
 
     Parameters
     ----------
@@ -319,9 +319,9 @@ def read_csv_table(path, required, optional=(), role="CSV") -> CsvTable:
             close = difflib.get_close_matches(c, list(required) + list(optional), n=1, cutoff=0.6)
             suggestions.append(f"'{c}'" + (f" (did you mean '{close[0]}'?)" if close else ""))
         warnings.warn(
-            ReflectorMapperWarning(
+            RockheadWarning(
                 f"{path.name}, line {header_line}: column{'s' if len(extra) > 1 else ''} "
-                f"{', '.join(suggestions)} not used by Reflector Mapper and ignored; known columns: "
+                f"{', '.join(suggestions)} not used by Rockhead and ignored; known columns: "
                 f"{', '.join(list(required) + list(optional))}"
             ),
             stacklevel=3,
@@ -509,7 +509,7 @@ def _lonlat(table: CsvTable, x, y, crs_in):
         if out[worst] > 0:
             n = int(np.count_nonzero(out > 0))
             warnings.warn(
-                ReflectorMapperWarning(
+                RockheadWarning(
                     f"{table.path.name}, line {table.lines[worst]}: {n} point(s) lie outside the area of "
                     f"use of {crsmod.crs_label(crs_in)}, up to {out[worst]:.2f} degrees: check that crs in "
                     "survey.toml is right"
@@ -857,7 +857,7 @@ def _warn_far_boreholes(table, name, xw, yw, stations):
     d = np.hypot(xw[:, None] - sx[None, :], yw[:, None] - sy[None, :]).min(axis=1)
     for i in np.flatnonzero(d > limit):
         warnings.warn(
-            ReflectorMapperWarning(
+            RockheadWarning(
                 f"{table.path.name}, line {table.lines[i]}, field 'x': borehole {name[i]!r} is "
                 f"{d[i]:.0f} m from the nearest station, farther than the survey's extent ({limit:.0f} m): "
                 "check its coordinates; it will hardly constrain the map"

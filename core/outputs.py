@@ -62,7 +62,7 @@ def run_info(result) -> list:
 
     s = result.survey.settings
     items = [
-        ("software", f"Reflector Mapper {__version__}"),
+        ("software", f"Rockhead {__version__}"),
         ("survey", result.survey.name),
         ("crs", result.survey.crs.to_string()),
         ("reflector", s.reflector),

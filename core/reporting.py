@@ -82,7 +82,7 @@ def _summary(rep, r):
     scale = _scale_note(r)
     if scale:
         items.append(("grid scale factor", scale))
-    items.append(("software", f"Reflector Mapper {__version__}"))
+    items.append(("software", f"Rockhead {__version__}"))
     rep.heading("Summary")
     rep.items(items)
     for note in r.notes:

@@ -87,7 +87,7 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
-from .errors import InversionError, ReflectorMapperWarning
+from .errors import InversionError, RockheadWarning
 from .progress import NullProgress, check_cancel
 
 __all__ = [
@@ -305,7 +305,7 @@ class GridSpec:
             warnings.warn(
                 f"a {cell:g} m cell would need {nx * ny} cells (> {max_cells}); using {new:g} m cells. "
                 "Give cell_size_m to choose yourself.",
-                ReflectorMapperWarning,
+                RockheadWarning,
                 stacklevel=2,
             )
             cell = new

@@ -139,7 +139,7 @@ def write_layer_csv(
     ----------
     path : str or path-like
         Output file.
-    layer : reflector_mapper.core.gpkg.Layer
+    layer : rockhead.core.gpkg.Layer
         The layer.
     geometry : {"xy", "wkt", None}
         ``"xy"``: ``x`` and ``y`` columns first (point layers; a point-less

@@ -128,7 +128,7 @@ import scipy.sparse.linalg as spla
 from scipy.spatial import cKDTree
 
 from . import forward
-from .errors import InversionError, ReflectorMapperWarning
+from .errors import InversionError, RockheadWarning
 from .progress import NullProgress, check_cancel
 
 __all__ = [
@@ -1173,7 +1173,7 @@ def invert_reflector(
             f"the node grid ({g.nx} x {g.ny}) is too large for exact posterior standard deviations "
             f"({(band + 1) * nn * 8 / 2**30:.1f} GiB of band storage); sigma is left empty. "
             "Use a coarser grid or a smaller area.",
-            ReflectorMapperWarning,
+            RockheadWarning,
             stacklevel=2,
         )
     else:

@@ -1,5 +1,5 @@
-"""QGIS adapter of Reflector Mapper: Processing provider, QC panel, styling.
+"""QGIS adapter of Rockhead: Processing provider, QC panel, styling.
 
-Nothing here computes: every number comes from :mod:`reflector_mapper.core`.
+Nothing here computes: every number comes from :mod:`rockhead.core`.
 This package may import qgis and PyQt; the core never does.
 """

@@ -60,7 +60,7 @@ def missing_message(missing: list[MissingPackage]) -> str:
     """One readable message naming every missing package and how to install it."""
     names = ", ".join(m.name for m in missing)
     lines = [
-        f"Reflector Mapper cannot start: the Python package(s) {names} could not be imported "
+        f"Rockhead cannot start: the Python package(s) {names} could not be imported "
         f"by QGIS's Python. Its Processing tools are not available until they are installed."
     ]
     for m in missing:

@@ -10,16 +10,16 @@ from qgis.PyQt.QtWidgets import QAction
 from . import deps
 from .provider import ICON_PATH
 
-MENU = "&Reflector Mapper"
-LOG_TAG = "Reflector Mapper"
+MENU = "&Rockhead"
+LOG_TAG = "Rockhead"
 
 
 def tr(text: str) -> str:
     """Translate a user-visible string (translate first, format afterwards)."""
-    return QCoreApplication.translate("ReflectorMapper", text)
+    return QCoreApplication.translate("Rockhead", text)
 
 
-class ReflectorMapperPlugin:
+class RockheadPlugin:
     """Registers the Processing provider and the quality-control panel.
 
     ``unload`` removes everything ``initGui`` added: menu entries, the toolbar
@@ -44,10 +44,10 @@ class ReflectorMapperPlugin:
         self.initProcessing()
         icon = QIcon(ICON_PATH)
         run_action = QAction(icon, tr("Run whole survey…"), self.iface.mainWindow())
-        run_action.setObjectName("reflectorMapperRunSurvey")
+        run_action.setObjectName("rockheadRunSurvey")
         run_action.triggered.connect(self.open_run_dialog)
         qc_action = QAction(icon, tr("Quality-control panel"), self.iface.mainWindow())
-        qc_action.setObjectName("reflectorMapperQcPanel")
+        qc_action.setObjectName("rockheadQcPanel")
         qc_action.setCheckable(True)
         qc_action.toggled.connect(self.show_qc_panel)
         for action in (run_action, qc_action):
@@ -57,10 +57,10 @@ class ReflectorMapperPlugin:
         self.qc_action = qc_action
 
     def initProcessing(self):
-        from .provider import ReflectorMapperProvider
+        from .provider import RockheadProvider
 
         if self.provider is None:
-            self.provider = ReflectorMapperProvider()
+            self.provider = RockheadProvider()
             QgsApplication.processingRegistry().addProvider(self.provider)
 
     def unload(self):
@@ -84,7 +84,7 @@ class ReflectorMapperPlugin:
         QgsMessageLog.logMessage(message, LOG_TAG, Qgis.Critical)
         names = ", ".join(m.name for m in self.missing)
         short = tr(
-            "missing Python package(s): {names}. See the log panel (Reflector Mapper) for how to install them."
+            "missing Python package(s): {names}. See the log panel (Rockhead) for how to install them."
         ).format(names=names)
         self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
 
@@ -92,7 +92,7 @@ class ReflectorMapperPlugin:
         """Open the Processing dialog of the whole-survey algorithm."""
         import processing
 
-        processing.execAlgorithmDialog("reflectormapper:runsurvey", {})
+        processing.execAlgorithmDialog("rockhead:runsurvey", {})
 
     def show_qc_panel(self, visible=True):
         """Create (once) and show or hide the quality-control dock."""

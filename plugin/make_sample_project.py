@@ -2,11 +2,11 @@
 
 Usage (with QGIS's Python)::
 
-    QT_QPA_PLATFORM=offscreen python3 -m reflector_mapper.plugin.make_sample_project \\
+    QT_QPA_PLATFORM=offscreen python3 -m rockhead.plugin.make_sample_project \\
         sample_project/results sample_project/tarnwick.qgz [--survey sample_project/survey.toml] \\
         [--png preview.png]
 
-The results folder is what ``reflector-map run survey.toml --out results`` writes.
+The results folder is what ``rockhead run survey.toml --out results`` writes.
 The project stores paths relative to itself, so the sample folder can be moved.
 """
 

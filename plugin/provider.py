@@ -1,4 +1,4 @@
-"""The Processing provider that holds the Reflector Mapper algorithms."""
+"""The Processing provider that holds the Rockhead algorithms."""
 
 from __future__ import annotations
 
@@ -8,12 +8,12 @@ from qgis.core import QgsProcessingProvider
 from qgis.PyQt.QtCore import QCoreApplication
 from qgis.PyQt.QtGui import QIcon
 
-PROVIDER_ID = "reflectormapper"
+PROVIDER_ID = "rockhead"
 ICON_PATH = os.path.join(os.path.dirname(__file__), "icons", "icon.svg")
 
 
-class ReflectorMapperProvider(QgsProcessingProvider):
-    """Provider ``reflectormapper``: fit gathers, combine lines, interpolate surface, run survey."""
+class RockheadProvider(QgsProcessingProvider):
+    """Provider ``rockhead``: fit gathers, combine lines, interpolate surface, run survey."""
 
     def loadAlgorithms(self):
         from .algorithms import all_algorithms
@@ -25,7 +25,7 @@ class ReflectorMapperProvider(QgsProcessingProvider):
         return PROVIDER_ID
 
     def name(self):
-        return QCoreApplication.translate("ReflectorMapper", "Reflector Mapper")
+        return QCoreApplication.translate("Rockhead", "Rockhead")
 
     def longName(self):
         return self.name()

@@ -36,13 +36,13 @@ from qgis.PyQt.QtWidgets import (
 
 from . import deps
 
-PROJECT_SCOPE = "ReflectorMapper"
+PROJECT_SCOPE = "Rockhead"
 PROJECT_KEY_SURVEY = "survey"
 
 
 def tr(text: str) -> str:
     """Translate a user-visible string."""
-    return QCoreApplication.translate("ReflectorMapper", text)
+    return QCoreApplication.translate("Rockhead", text)
 
 
 # --------------------------------------------------------------------------------------------- state
@@ -272,8 +272,8 @@ class QcDock(QDockWidget):
     COLUMNS = ("use", "receiver", "offset_m", "time_ms", "residual_ms", "flag")
 
     def __init__(self, iface=None, parent=None):
-        super().__init__(tr("Reflector Mapper QC"), parent)
-        self.setObjectName("ReflectorMapperQcDock")
+        super().__init__(tr("Rockhead QC"), parent)
+        self.setObjectName("RockheadQcDock")
         self.iface = iface
         self.qc = None
         self.current = None  # gather index
@@ -331,11 +331,11 @@ class QcDock(QDockWidget):
         survey = project.readPath(survey)  # stored relative to the project file
         if self.qc is not None and os.path.abspath(self.qc.survey_path) == os.path.abspath(survey):
             return True
-        from ..core.errors import ReflectorMapperError
+        from ..core.errors import RockheadError
 
         try:
             self.set_survey(survey)
-        except (OSError, ReflectorMapperError) as err:  # a stale path or a survey that no longer reads
+        except (OSError, RockheadError) as err:  # a stale path or a survey that no longer reads
             self.params_label.setText(tr("Could not open the survey: {err}").format(err=err))
             return False
         return True
@@ -478,11 +478,11 @@ class QcDock(QDockWidget):
         """Refit with the current exclusions, redraw, and update the shots layer."""
         if self.qc is None or self.current is None:
             return
-        from ..core.errors import ReflectorMapperError
+        from ..core.errors import RockheadError
 
         try:
             self.qc.refit()
-        except ReflectorMapperError as err:
+        except RockheadError as err:
             self.params_label.setText(str(err))
             return
         self.show_gather(self.current)

@@ -81,12 +81,12 @@ FLAGGED_COLOUR = "#e08a1e"
 FAILED_COLOUR = "#c0262d"
 
 #: Default group name in the layer tree.
-GROUP_NAME = "Reflector Mapper results"
+GROUP_NAME = "Rockhead results"
 
 
 def tr(text: str) -> str:
     """Translate a user-visible string."""
-    return QCoreApplication.translate("ReflectorMapper", text)
+    return QCoreApplication.translate("Rockhead", text)
 
 
 # -- rasters ------------------------------------------------------------------------------------

@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
-"""Build the QGIS plugin zip: dist/reflector_mapper-<version>.zip, and check it.
+"""Build the QGIS plugin zip: dist/rockhead-<version>.zip, and check it.
 
-The zip holds one top folder, ``reflector_mapper``, with metadata.txt, LICENSE,
+The zip holds one top folder, ``rockhead``, with metadata.txt, LICENSE,
 README.md, the root ``__init__.py`` (classFactory), ``core/`` and ``plugin/``:
 no tests, benchmarks, sample results, caches or compiled files. Entries are
 written in sorted order with a fixed timestamp, so the same sources give the
@@ -20,7 +20,7 @@ import zipfile
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parents[1]
-TOP = "reflector_mapper"
+TOP = "rockhead"
 ROOT_FILES = ("metadata.txt", "LICENSE", "README.md", "__init__.py")
 PACKAGE_DIRS = ("core", "plugin")
 SUFFIXES = {".py", ".svg", ".png", ".qml", ".yaml", ".txt", ".md", ".json"}

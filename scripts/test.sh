@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Every test of Reflector Mapper, with all set-up, on a fresh Debian/Ubuntu machine:
+# Every test of Rockhead, with all set-up, on a fresh Debian/Ubuntu machine:
 #   1. the core on current PyPI releases (.venv);
 #   2. the core and the QGIS plugin inside Debian's real QGIS 3.22, headless (.venv-qgis).
 # Extra arguments go to both pytest runs (e.g. -x, -k name).

@@ -1,4 +1,4 @@
-"""Make the plugin importable under its own package name, ``reflector_mapper``.
+"""Make the plugin importable under its own package name, ``rockhead``.
 
 The checkout folder may have any name (CI clones into another one), so the
 package is reached through a temporary folder holding a link named after the
@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 REPO = Path(__file__).resolve().parents[1]
-PACKAGE = "reflector_mapper"
+PACKAGE = "rockhead"
 
 
 def _ensure_package():
@@ -27,7 +27,7 @@ def _ensure_package():
             del sys.modules[name]
     except ImportError:
         pass
-    link_dir = Path(tempfile.mkdtemp(prefix="rm-pkg-"))
+    link_dir = Path(tempfile.mkdtemp(prefix="rockhead-pkg-"))
     os.symlink(REPO, link_dir / PACKAGE)
     sys.path.insert(0, str(link_dir))
     importlib.import_module(PACKAGE)

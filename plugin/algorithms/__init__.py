@@ -1,4 +1,4 @@
-"""The Processing algorithms of the ``reflectormapper`` provider."""
+"""The Processing algorithms of the ``rockhead`` provider."""
 
 
 def all_algorithms():

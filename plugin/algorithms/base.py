@@ -1,4 +1,4 @@
-"""Shared parts of the Reflector Mapper Processing algorithms.
+"""Shared parts of the Rockhead Processing algorithms.
 
 Every algorithm follows one pattern: read the parameters into plain Python
 values, make ONE call into the core through :class:`~..feedback.FeedbackProgress`,
@@ -44,7 +44,7 @@ GROUP_ID = "survey"
 
 def tr(text: str) -> str:
     """Translate a user-visible string (translate first, format afterwards)."""
-    return QCoreApplication.translate("ReflectorMapper", text)
+    return QCoreApplication.translate("Rockhead", text)
 
 
 def caution_text() -> str:
@@ -73,14 +73,14 @@ class CoreCall:
     def __exit__(self, exc_type, exc, tb):
         if exc_type is None:
             return False
-        from ...core.errors import CancelledError, ReflectorMapperError
+        from ...core.errors import CancelledError, RockheadError
 
         if issubclass(exc_type, CancelledError):
             self.cancelled = True
             if self.feedback is not None:
                 self.feedback.reportError(tr("Cancelled: no output written."), fatalError=False)
             return True
-        if issubclass(exc_type, ReflectorMapperError):
+        if issubclass(exc_type, RockheadError):
             raise QgsProcessingException(str(exc)) from exc
         return False
 
@@ -349,7 +349,7 @@ def write_survey_from_layers(workdir, picks, stations, crs, context, pick_fields
     crs_text = crs.authid() or crs.toWkt()
     toml_path = os.path.join(workdir, "survey.toml")
     with open(toml_path, "w", encoding="utf-8") as fh:
-        fh.write("# written by the Reflector Mapper QGIS plugin from map layers\n")
+        fh.write("# written by the Rockhead QGIS plugin from map layers\n")
         fh.write('[survey]\nname = "QGIS layers"\n')
         fh.write("crs = " + _toml_string(crs_text) + "\n")
         fh.write('[files]\nstations = "stations.csv"\npicks = "picks.csv"\n')

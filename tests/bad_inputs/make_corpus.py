@@ -8,7 +8,7 @@ Run from anywhere::
 Every case starts from the same good base survey (an invented site: two
 crossing lines of 12 stations, 5 m apart, over a flat reflector 20 m deep) and
 changes one thing. Folders named ``good_*`` must load without error or warning,
-``warn_*`` must load with a ReflectorMapperWarning matching ``expected.txt``,
+``warn_*`` must load with a RockheadWarning matching ``expected.txt``,
 all others must raise an error whose one-line message matches the regular
 expression in ``expected.txt`` (anchored at the start, so it pins the file,
 line and field). To add a case, write a function below and list it in CASES.
@@ -267,7 +267,7 @@ def warn_extra_column(s):
     s["picks"]["header"].append("quality")
     for row in s["picks"]["rows"]:
         row.append("good")
-    return r"^picks\.csv, line 1: column 'quality' not used by Reflector Mapper and ignored"
+    return r"^picks\.csv, line 1: column 'quality' not used by Rockhead and ignored"
 
 
 @case

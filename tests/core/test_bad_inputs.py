@@ -1,8 +1,8 @@
 """Run every case of the bad-input corpus (tests/bad_inputs/, made by make_corpus.py).
 
-* ``good_*``: the survey loads, with no ReflectorMapperWarning.
-* ``warn_*``: the survey loads and a ReflectorMapperWarning matches expected.txt.
-* every other folder: load_survey raises a ReflectorMapperError whose message is
+* ``good_*``: the survey loads, with no RockheadWarning.
+* ``warn_*``: the survey loads and a RockheadWarning matches expected.txt.
+* every other folder: load_survey raises a RockheadError whose message is
   one line, matches the regular expression in expected.txt (anchored at the
   start, so it pins file, line and field) and, for file errors, names the
   file's basename, the line and the field it carries.
@@ -20,9 +20,9 @@ import warnings
 from pathlib import Path
 
 import pytest
-from reflector_mapper.core.errors import InputFileError, ReflectorMapperError, ReflectorMapperWarning
-from reflector_mapper.core.inputs import load_survey
-from reflector_mapper.core.model import Survey
+from rockhead.core.errors import InputFileError, RockheadError, RockheadWarning
+from rockhead.core.inputs import load_survey
+from rockhead.core.model import Survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 CASES = sorted(p.name for p in CORPUS.iterdir() if (p / "survey.toml").is_file())
@@ -67,8 +67,8 @@ def test_corpus_size():
 def test_bad_case_raises_named_error(case):
     pattern = _expected(case)
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ReflectorMapperWarning)
-        with pytest.raises(ReflectorMapperError) as info:
+        warnings.simplefilter("ignore", RockheadWarning)
+        with pytest.raises(RockheadError) as info:
             load_survey(CORPUS / case / "survey.toml")
     err = info.value
     msg = str(err)
@@ -91,7 +91,7 @@ def test_bad_case_raises_named_error(case):
 @pytest.mark.parametrize("case", GOOD, ids=GOOD)
 def test_good_case_loads_without_warning(case):
     with warnings.catch_warnings():
-        warnings.simplefilter("error", ReflectorMapperWarning)
+        warnings.simplefilter("error", RockheadWarning)
         survey = load_survey(CORPUS / case / "survey.toml")
     assert isinstance(survey, Survey)
     base = load_survey(CORPUS / "good_base" / "survey.toml")
@@ -131,14 +131,14 @@ def test_warning_case_loads_and_warns(case):
         warnings.simplefilter("always")
         survey = load_survey(CORPUS / case / "survey.toml")
     assert isinstance(survey, Survey)
-    messages = [str(w.message) for w in caught if issubclass(w.category, ReflectorMapperWarning)]
+    messages = [str(w.message) for w in caught if issubclass(w.category, RockheadWarning)]
     assert any(re.search(pattern, m) for m in messages), messages
 
 
 def _cli_main():
     if not CLI.is_file():
         pytest.skip("core/cli.py not written yet")
-    from reflector_mapper.core.cli import main
+    from rockhead.core.cli import main
 
     return main
 
@@ -165,11 +165,11 @@ def test_cli_check_accepts_good_cases(case, capsys):
 
 
 def _cli_env():
-    import reflector_mapper
+    import rockhead
 
     env = dict(os.environ)
     # the folder that holds the package under its own name (conftest's link or site-packages)
-    parent = str(Path(reflector_mapper.__file__).parent.parent)
+    parent = str(Path(rockhead.__file__).parent.parent)
     env["PYTHONPATH"] = parent + os.pathsep + env.get("PYTHONPATH", "")
     return env
 
@@ -192,7 +192,7 @@ def test_cli_process_exit_code_2(case, tmp_path):
         [
             sys.executable,
             "-m",
-            "reflector_mapper.core.cli",
+            "rockhead.core.cli",
             "run",
             str(CORPUS / case / "survey.toml"),
             "--out",

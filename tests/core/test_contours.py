@@ -4,8 +4,8 @@ import math
 
 import numpy as np
 import pytest
-from reflector_mapper.core.contours import contour_levels, contour_lines, contours_layer, nice_interval
-from reflector_mapper.core.errors import OutputError
+from rockhead.core.contours import contour_levels, contour_lines, contours_layer, nice_interval
+from rockhead.core.errors import OutputError
 from shapely.geometry import LineString, Point, box
 
 CELL = 5.0

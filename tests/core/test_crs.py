@@ -7,8 +7,8 @@ import pyproj
 import pytest
 from pyproj.aoi import AreaOfInterest
 from pyproj.database import query_utm_crs_info
-from reflector_mapper.core import crs as C  # noqa: N812
-from reflector_mapper.core.errors import GeoreferenceError
+from rockhead.core import crs as C  # noqa: N812
+from rockhead.core.errors import GeoreferenceError
 
 GEOD = pyproj.Geod(ellps="WGS84")
 

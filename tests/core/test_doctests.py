@@ -5,7 +5,7 @@ import importlib
 import pkgutil
 
 import pytest
-import reflector_mapper.core as core
+import rockhead.core as core
 
 MODULES = sorted(m.name for m in pkgutil.iter_modules(core.__path__) if not m.name.startswith("_"))
 
@@ -13,7 +13,7 @@ MODULES = sorted(m.name for m in pkgutil.iter_modules(core.__path__) if not m.na
 @pytest.mark.parametrize("name", MODULES, ids=MODULES)
 def test_module_doctests(name):
     try:
-        module = importlib.import_module(f"reflector_mapper.core.{name}")
+        module = importlib.import_module(f"rockhead.core.{name}")
     except ImportError as exc:  # an optional dependency of that module is missing
         pytest.fail(f"core module {name} does not import: {exc}")
     result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE | doctest.ELLIPSIS)

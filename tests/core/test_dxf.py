@@ -2,9 +2,9 @@
 
 import numpy as np
 import pytest
-from reflector_mapper.core.contours import contours_layer
-from reflector_mapper.core.dxf import CONTOUR_LAYERS, DxfPolyline, DxfText, write_contours_dxf, write_dxf
-from reflector_mapper.core.errors import OutputError
+from rockhead.core.contours import contours_layer
+from rockhead.core.dxf import CONTOUR_LAYERS, DxfPolyline, DxfText, write_contours_dxf, write_dxf
+from rockhead.core.errors import OutputError
 from shapely import wkb as shapely_wkb
 
 

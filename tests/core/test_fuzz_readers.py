@@ -2,7 +2,7 @@
 
 Random bytes, CSV-like text, numeric edge values and TOML-like text go into
 read_stations, read_picks, read_boreholes and load_survey. Whatever the input,
-the call either returns a sane result or raises a ReflectorMapperError subclass
+the call either returns a sane result or raises a RockheadError subclass
 (never KeyError, IndexError, UnicodeDecodeError, csv.Error, ...), and the
 message stays on one line. About 4600 cases in total.
 """
@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from reflector_mapper.core import inputs
-from reflector_mapper.core.errors import InputFileError, ReflectorMapperError
+from rockhead.core import inputs
+from rockhead.core.errors import InputFileError, RockheadError
 
 # Together with the inversion's property test these generate over 10,000 cases per run
 # (6 reader tests x 1500 + the survey test x 800 + the fit's 600), in well under a minute.
@@ -44,7 +44,7 @@ def _call(fn, *args, **kwargs):
         warnings.simplefilter("ignore")
         try:
             return fn(*args, **kwargs)
-        except ReflectorMapperError as err:
+        except RockheadError as err:
             msg = str(err)
             assert msg and "\n" not in msg, repr(msg)
             if isinstance(err, InputFileError) and err.line is not None:

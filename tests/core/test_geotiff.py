@@ -7,8 +7,8 @@ import subprocess
 import numpy as np
 import pyproj
 import pytest
-from reflector_mapper.core.errors import GeoreferenceError, MissingDependencyError, OutputError
-from reflector_mapper.core.geotiff import read_geotiff, read_raster, write_geotiff, write_geotiff_grid
+from rockhead.core.errors import GeoreferenceError, MissingDependencyError, OutputError
+from rockhead.core.geotiff import read_geotiff, read_raster, write_geotiff, write_geotiff_grid
 
 GDALINFO = shutil.which("gdalinfo")
 CUSTOM_TM = (

@@ -10,8 +10,8 @@ from pathlib import Path
 import numpy as np
 import pyproj
 import pytest
-from reflector_mapper.core.errors import OutputError
-from reflector_mapper.core.gpkg import Layer, write_geopackage
+from rockhead.core.errors import OutputError
+from rockhead.core.gpkg import Layer, write_geopackage
 from shapely import wkb as shapely_wkb
 from shapely.geometry import LineString, MultiLineString, Point, Polygon
 
@@ -172,7 +172,7 @@ def test_crs_round_trip(tmp_path, crs_text):
         con = sqlite3.connect(str(path))
         org = con.execute("SELECT organization FROM gpkg_spatial_ref_sys WHERE srs_id = 100000").fetchone()
         con.close()
-        assert org == ("REFLECTOR_MAPPER",)
+        assert org == ("ROCKHEAD",)
 
 
 def test_extent_and_spatial_index(gpkg):

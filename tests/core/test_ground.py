@@ -3,9 +3,9 @@
 import numpy as np
 import pyproj
 import pytest
-from reflector_mapper.core.errors import GeoreferenceError, InputFileError, ReflectorMapperWarning
-from reflector_mapper.core.geotiff import Raster, write_geotiff
-from reflector_mapper.core.ground import GroundModel
+from rockhead.core.errors import GeoreferenceError, InputFileError, RockheadWarning
+from rockhead.core.geotiff import Raster, write_geotiff
+from rockhead.core.ground import GroundModel
 from scipy.spatial import cKDTree
 
 X0, Y0, CELL, NX, NY = 512000.0, 5001200.0, 10.0, 40, 30  # north-up DEM, top-left edge
@@ -94,7 +94,7 @@ def test_nodata_cells_give_nan():
 
 def test_dem_without_crs_warns():
     dem = _dem(_plane)
-    with pytest.warns(ReflectorMapperWarning, match="declares no CRS"):
+    with pytest.warns(RockheadWarning, match="declares no CRS"):
         GroundModel.from_dem(Raster(dem.values, X0, Y0, CELL, -CELL, None, None), "EPSG:32633")
 
 

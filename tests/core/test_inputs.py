@@ -12,13 +12,13 @@ from pathlib import Path
 import numpy as np
 import pyproj
 import pytest
-from reflector_mapper.core import inputs
-from reflector_mapper.core.errors import (
+from rockhead.core import inputs
+from rockhead.core.errors import (
     InputFileError,
-    ReflectorMapperWarning,
+    RockheadWarning,
     SurveyConfigError,
 )
-from reflector_mapper.core.model import Settings
+from rockhead.core.model import Settings
 
 STATIONS = """# invented site
 line,station,x,y,z
@@ -100,7 +100,7 @@ def test_stations_explicit_working_crs(tmp_path):
 def test_unknown_column_warns_and_is_ignored(tmp_path):
     text = STATIONS.replace("line,station,x,y,z", "line,station,x,y,z,remark").replace("300.0", "300.0,flag")
     text = text.replace("300.5", "300.5,").replace("299.0", "299.0,").replace("299.5", "299.5,")
-    with pytest.warns(ReflectorMapperWarning, match=r"s\.csv, line 2: column 'remark' not used"):
+    with pytest.warns(RockheadWarning, match=r"s\.csv, line 2: column 'remark' not used"):
         st = inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
     assert len(st) == 4
 
@@ -108,7 +108,7 @@ def test_unknown_column_warns_and_is_ignored(tmp_path):
 def test_unknown_column_suggests_name(tmp_path):
     text = PICKS.replace("time_ms", "time_ms,sigma").replace("30.5", "30.5,1")
     text = text.replace("31.25", "31.25,1").replace("31.0\n", "31.0,1\n")
-    with pytest.warns(ReflectorMapperWarning, match=r"'sigma' \(did you mean 'sigma_ms'\?\)"):
+    with pytest.warns(RockheadWarning, match=r"'sigma' \(did you mean 'sigma_ms'\?\)"):
         inputs.read_picks(write(tmp_path / "p.csv", text), 0.5)
 
 
@@ -118,7 +118,7 @@ def test_area_of_use_warning_counts_points(tmp_path):
     x, y = tr.transform(11.5, 47.0)
     text = f"line,station,x,y,z\nA,1,{x:.2f},{y:.2f},1\nA,2,{x + 5:.2f},{y:.2f},1\n"
     with pytest.warns(
-        ReflectorMapperWarning,
+        RockheadWarning,
         match=r"2 point\(s\) lie outside the area of use of EPSG:32633 .*, up to 0\.50 degrees",
     ):
         inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
@@ -208,7 +208,7 @@ def test_read_boreholes(tmp_path):
     st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
     text = "borehole,x,y,z,depth_m,sigma_m\nB1,500001,5500001,300.2,12.5,\nB2,500003,5499999,299.8,13,0.3\n"
     with warnings.catch_warnings():
-        warnings.simplefilter("error", ReflectorMapperWarning)
+        warnings.simplefilter("error", RockheadWarning)
         bh = inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, 0.2, stations=st)
     np.testing.assert_allclose(bh.elevation_m, [300.2 - 12.5, 299.8 - 13.0])
     np.testing.assert_allclose(bh.sigma_m, [0.2, 0.3])
@@ -218,7 +218,7 @@ def test_read_boreholes(tmp_path):
 def test_far_borehole_warns_with_distance(tmp_path):
     st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
     text = "borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\nFAR,500000,5501000,300,12\n"
-    with pytest.warns(ReflectorMapperWarning, match=r"line 3, field 'x': borehole 'FAR' is 995 m from the nearest"):
+    with pytest.warns(RockheadWarning, match=r"line 3, field 'x': borehole 'FAR' is 995 m from the nearest"):
         inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, stations=st)
 
 

@@ -9,10 +9,10 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from reflector_mapper.core import forward
-from reflector_mapper.core import inversion as inv
-from reflector_mapper.core.errors import CancelledError, InversionError, ReflectorMapperError
-from reflector_mapper.core.model import GatherSet, Settings
+from rockhead.core import forward
+from rockhead.core import inversion as inv
+from rockhead.core.errors import CancelledError, InversionError, RockheadError
+from rockhead.core.model import GatherSet, Settings
 
 SIGMA = 5e-4  # 0.5 ms pick error, the project default
 
@@ -638,7 +638,7 @@ def test_property_fit_or_flag(npick, spacing, spread, depth, dip, velocity, nois
         )
     try:
         fit = inv.fit_shot_gathers(gs, Settings(robust_loss=loss), cross_component=tr["q"])
-    except ReflectorMapperError:
+    except RockheadError:
         return
     assert fit.status[0] in ("ok", "too_few_picks", "nonphysical", "ill_conditioned", "not_converged")
     assert isinstance(fit.reason[0], str) and fit.reason[0]

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import reflector_mapper
+import rockhead
 
 REPO = Path(__file__).resolve().parents[2]
 SAMPLE = REPO / "sample_project"
@@ -30,16 +30,16 @@ def _truth_module():
 
 
 def _env():
-    """Environment in which a child Python imports the same reflector_mapper as the tests."""
+    """Environment in which a child Python imports the same rockhead as the tests."""
     env = dict(os.environ)
-    parent = str(Path(reflector_mapper.__path__[0]).parent)  # the link folder made by conftest
+    parent = str(Path(rockhead.__path__[0]).parent)  # the link folder made by conftest
     env["PYTHONPATH"] = os.pathsep.join([parent, env.get("PYTHONPATH", "")])
     return env
 
 
 def run_cli(*args):
     return subprocess.run(
-        [sys.executable, "-m", "reflector_mapper.core.cli", *map(str, args)],
+        [sys.executable, "-m", "rockhead.core.cli", *map(str, args)],
         capture_output=True, text=True, env=_env(), timeout=600,
     )
 
@@ -202,7 +202,7 @@ def test_depth_raster_is_ground_minus_elevation(sample_run):
     ok = np.isfinite(z) & np.isfinite(d)
     # the ground model interpolates stations; away from lines it departs from the true
     # topography by up to a metre or two (rolling ground), so compare where stations are near
-    from reflector_mapper.core.inputs import load_survey
+    from rockhead.core.inputs import load_survey
     from scipy.spatial import cKDTree
 
     st = load_survey(SAMPLE / "survey.toml").stations

@@ -11,7 +11,7 @@ import hashlib
 from pathlib import Path
 
 import pytest
-from reflector_mapper.core import errors, pipeline
+from rockhead.core import errors, pipeline
 from test_pipeline_layers import _write_survey  # a small two-layer survey made by the forward models
 
 
@@ -49,7 +49,7 @@ def test_disk_full_mid_run_keeps_earlier_outputs(survey_path, tmp_path, monkeypa
         raise OSError(errno.ENOSPC, "No space left on device", str(path))
 
     # the DXF is written after the GeoPackage, CSVs and rasters have been staged
-    monkeypatch.setattr("reflector_mapper.core.outputs.write_contours_dxf", full_disk)
+    monkeypatch.setattr("rockhead.core.outputs.write_contours_dxf", full_disk)
     with pytest.raises(errors.OutputError, match=r"No space left on device.*earlier outputs there are unchanged"):
         pipeline.run(survey_path, out, method="kriging")
     assert _digest(out) == before  # byte-identical, and no partial or temporary file

@@ -9,8 +9,8 @@ import math
 
 import numpy as np
 import pytest
-from reflector_mapper.core.errors import CancelledError, InversionError, ReflectorMapperWarning
-from reflector_mapper.core.surface import (
+from rockhead.core.errors import CancelledError, InversionError, RockheadWarning
+from rockhead.core.surface import (
     GridSpec,
     OrdinaryKriging,
     ThinPlateSpline,
@@ -339,7 +339,7 @@ def test_gridspec_from_data_coarsens_when_too_many_cells():
     x = np.arange(0.0, 10_001.0, 1.0)
     y = np.zeros_like(x)
     y[::2] = 1.0
-    with pytest.warns(ReflectorMapperWarning, match="Give cell_size_m"):
+    with pytest.warns(RockheadWarning, match="Give cell_size_m"):
         spec = GridSpec.from_data(x, y, pad_m=0.0, max_cells=10_000)
     assert spec.cell_size_m == 1.0 and spec.size <= 10_000
 

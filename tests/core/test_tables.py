@@ -4,10 +4,10 @@ import csv
 
 import numpy as np
 import pytest
-from reflector_mapper.core.errors import OutputError
-from reflector_mapper.core.gpkg import Layer
-from reflector_mapper.core.tables import guard_text, write_csv
-from reflector_mapper.core.tables import write_layer_csv as layer_to_csv
+from rockhead.core.errors import OutputError
+from rockhead.core.gpkg import Layer
+from rockhead.core.tables import guard_text, write_csv
+from rockhead.core.tables import write_layer_csv as layer_to_csv
 from shapely.geometry import LineString, Point
 
 

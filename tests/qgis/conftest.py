@@ -43,9 +43,9 @@ def pytest_collection_modifyitems(config, items):
 
 @pytest.fixture(scope="session")
 def plugin_dir():
-    """A folder holding a link named ``reflector_mapper`` to this checkout (as QGIS loads it)."""
+    """A folder holding a link named ``rockhead`` to this checkout (as QGIS loads it)."""
     folder = Path(tempfile.mkdtemp(prefix="rm-plugins-"))
-    os.symlink(REPO, folder / "reflector_mapper")
+    os.symlink(REPO, folder / "rockhead")
     yield folder
     shutil.rmtree(folder, ignore_errors=True)
 
@@ -65,7 +65,7 @@ def sample_survey(tmp_path):
 @pytest.fixture(scope="session")
 def core_results(tmp_path_factory):
     """The core pipeline run once on the sample survey (reference for the plugin's outputs)."""
-    from reflector_mapper.core import pipeline
+    from rockhead.core import pipeline
 
     src = REPO / "sample_project"
     dst = tmp_path_factory.mktemp("core-run")
@@ -80,16 +80,16 @@ def core_results(tmp_path_factory):
 
 @pytest.fixture
 def provider(qgis_processing):
-    """The Reflector Mapper provider registered for one test, removed afterwards."""
+    """The Rockhead provider registered for one test, removed afterwards."""
     from qgis.core import QgsApplication
-    from reflector_mapper.plugin.provider import ReflectorMapperProvider
+    from rockhead.plugin.provider import RockheadProvider
 
     registry = QgsApplication.processingRegistry()
-    existing = registry.providerById("reflectormapper")
+    existing = registry.providerById("rockhead")
     if existing is not None:
         yield existing
         return
-    prov = ReflectorMapperProvider()
+    prov = RockheadProvider()
     assert registry.addProvider(prov)
     yield prov
     registry.removeProvider(prov)

@@ -32,7 +32,7 @@ def enabled_env(home, plugin_path):
         XDG_RUNTIME_DIR=str(home),
     )
     env.setdefault("PROJ_DATA", "/usr/share/proj")
-    out = run(env, "plugins", "enable", "reflector_mapper", timeout=120)
+    out = run(env, "plugins", "enable", "rockhead", timeout=120)
     assert out.returncode == 0, out.stderr
     return env
 

@@ -24,15 +24,15 @@ from qgis.core import (
     QgsVectorLayer,
 )
 from qgis.PyQt.QtCore import QVariant
-from reflector_mapper.core import inputs, layers, pipeline, structure
-from reflector_mapper.plugin.algorithms.run_survey import METHODS
-from reflector_mapper.plugin.feedback import FeedbackProgress
+from rockhead.core import inputs, layers, pipeline, structure
+from rockhead.plugin.algorithms.run_survey import METHODS
+from rockhead.plugin.feedback import FeedbackProgress
 
 
 def run(alg, params, feedback=None):
     import processing
 
-    return processing.run(f"reflectormapper:{alg}", params, feedback=feedback)
+    return processing.run(f"rockhead:{alg}", params, feedback=feedback)
 
 
 def layer_columns(layer):
@@ -226,10 +226,10 @@ def _read_band(path):
 
 
 def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
-    from reflector_mapper.core.contours import contours_layer
-    from reflector_mapper.core.model import Settings
-    from reflector_mapper.core.pipeline import grid_with_trend
-    from reflector_mapper.core.surface import GridSpec
+    from rockhead.core.contours import contours_layer
+    from rockhead.core.model import Settings
+    from rockhead.core.pipeline import grid_with_trend
+    from rockhead.core.surface import GridSpec
 
     _survey, step = core_fit
     fit = run(
@@ -345,7 +345,7 @@ def test_run_survey_loads_styled_group(provider, sample_survey, core_results, tm
     # the whole-survey algorithm's post-processing loads the styled group into the project
     out = tmp_path / "results"
     shutil.copytree(core_results[0], out)
-    from reflector_mapper.plugin.styling import GROUP_NAME, load_results
+    from rockhead.plugin.styling import GROUP_NAME, load_results
 
     group = load_results(str(out), QgsProject.instance())
     assert QgsProject.instance().layerTreeRoot().findGroup(GROUP_NAME) is group
@@ -373,11 +373,11 @@ def test_algorithms_chain_in_a_model(provider, sample_survey, tmp_path):
     model.addModelParameter(
         QgsProcessingParameterFile("survey", "survey", extension="toml"), QgsProcessingModelParameter("survey")
     )
-    fit = QgsProcessingModelChildAlgorithm("reflectormapper:fitgathers")
+    fit = QgsProcessingModelChildAlgorithm("rockhead:fitgathers")
     fit.setChildId("fit")
     fit.addParameterSources("SURVEY", [QgsProcessingModelChildParameterSource.fromModelParameter("survey")])
     model.addChildAlgorithm(fit)
-    surf = QgsProcessingModelChildAlgorithm("reflectormapper:interpolatesurface")
+    surf = QgsProcessingModelChildAlgorithm("rockhead:interpolatesurface")
     surf.setChildId("surf")
     surf.addParameterSources(
         "INPUT", [QgsProcessingModelChildParameterSource.fromChildOutput("fit", "REFLECTOR_POINTS")]

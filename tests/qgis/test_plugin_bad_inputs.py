@@ -13,8 +13,8 @@ import pytest
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsProcessingException, QgsProcessingFeedback
-from reflector_mapper.core.errors import ReflectorMapperError
-from reflector_mapper.core.inputs import load_survey
+from rockhead.core.errors import RockheadError
+from rockhead.core.inputs import load_survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 BAD = sorted(
@@ -24,7 +24,7 @@ BAD = sorted(
 
 
 def _core_message(case):
-    with pytest.raises(ReflectorMapperError) as info:
+    with pytest.raises(RockheadError) as info:
         load_survey(CORPUS / case / "survey.toml")
     return str(info.value)
 
@@ -37,7 +37,7 @@ def test_bad_survey_is_reported_through_processing(provider, case, tmp_path):
     feedback = QgsProcessingFeedback()
     with pytest.raises(QgsProcessingException) as info:
         processing.run(
-            "reflectormapper:runsurvey",
+            "rockhead:runsurvey",
             {"SURVEY": str(CORPUS / case / "survey.toml"), "METHOD": 2, "OUTPUT": str(out)},
             feedback=feedback,
         )
@@ -49,7 +49,7 @@ def test_qgis_still_runs_after_the_faults(provider, sample_survey, tmp_path):
     import processing
 
     res = processing.run(
-        "reflectormapper:fitgathers",
+        "rockhead:fitgathers",
         {"SURVEY": str(sample_survey), "SHOTS": "TEMPORARY_OUTPUT", "REFLECTOR_POINTS": "TEMPORARY_OUTPUT"},
     )
     assert res["SHOTS"].featureCount() == 56

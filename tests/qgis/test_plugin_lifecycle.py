@@ -4,7 +4,7 @@ import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
-import reflector_mapper
+import rockhead
 from qgis.core import Qgis, QgsApplication
 from qgis.PyQt.QtWidgets import QAction
 
@@ -20,11 +20,11 @@ def test_load_and_unload_through_class_factory(iface, qgis_processing, monkeypat
 
     for name in ("removePluginMenu", "removeToolBarIcon", "removeDockWidget"):
         monkeypatch.setattr(iface, name, MagicMock(wraps=getattr(iface, name)))
-    assert _registry().providerById("reflectormapper") is None
-    plugin = reflector_mapper.classFactory(iface)
+    assert _registry().providerById("rockhead") is None
+    plugin = rockhead.classFactory(iface)
     plugin.initGui()
     try:
-        prov = _registry().providerById("reflectormapper")
+        prov = _registry().providerById("rockhead")
         assert prov is not None
         assert {a.name() for a in prov.algorithms()} == ALGORITHM_IDS
         actions = list(plugin.actions)
@@ -34,7 +34,7 @@ def test_load_and_unload_through_class_factory(iface, qgis_processing, monkeypat
         assert plugin.dock is not None and not plugin.dock.isHidden()
     finally:
         plugin.unload()
-    assert _registry().providerById("reflectormapper") is None
+    assert _registry().providerById("rockhead") is None
     assert plugin.provider is None and plugin.dock is None and plugin.actions == []
     # every menu entry and the toolbar button were taken out again (the stub records the calls)
     removed = [c.args[1] for c in iface.removePluginMenu.call_args_list]
@@ -46,11 +46,11 @@ def test_load_and_unload_through_class_factory(iface, qgis_processing, monkeypat
 def test_load_twice_in_a_row_leaves_one_provider(iface, qgis_processing):
     # QGIS reloads plugins (Plugin Reloader, updates): unload must leave nothing behind.
     for _ in range(2):
-        plugin = reflector_mapper.classFactory(iface)
+        plugin = rockhead.classFactory(iface)
         plugin.initGui()
-        assert _registry().providerById("reflectormapper") is not None
+        assert _registry().providerById("rockhead") is not None
         plugin.unload()
-        assert _registry().providerById("reflectormapper") is None
+        assert _registry().providerById("rockhead") is None
 
 
 def test_every_algorithm_has_help_with_the_caution(provider):
@@ -58,7 +58,7 @@ def test_every_algorithm_has_help_with_the_caution(provider):
         text = alg.shortHelpString()
         assert "does not replace borings" in text, alg.id()
         assert "licensed professionals" in text, alg.id()
-        assert alg.id().startswith("reflectormapper:")
+        assert alg.id().startswith("rockhead:")
 
 
 @pytest.mark.parametrize("missing", ["scipy", "shapely"], ids=["no-scipy", "no-shapely"])
@@ -72,15 +72,15 @@ def test_missing_package_is_named_and_no_provider(iface, qgis_processing, missin
 
     bar = iface.messageBar()
     bar.clear_messages()
-    from reflector_mapper.plugin.main import ReflectorMapperPlugin
+    from rockhead.plugin.main import RockheadPlugin
 
-    plugin = ReflectorMapperPlugin(iface, importer=importer)
+    plugin = RockheadPlugin(iface, importer=importer)
     plugin.initGui()
     try:
-        assert _registry().providerById("reflectormapper") is None
+        assert _registry().providerById("rockhead") is None
         messages = bar.get_messages(Qgis.Critical)
         assert messages and missing in messages[-1]
-        from reflector_mapper.plugin import deps
+        from rockhead.plugin import deps
 
         full = deps.missing_message(plugin.missing)
         assert f"pip install {missing}" in full and f"apt install python3-{missing}" in full

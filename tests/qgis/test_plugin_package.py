@@ -26,10 +26,10 @@ def plugin_zip(packager, tmp_path_factory):
 
 def test_zip_follows_repository_rules(packager, plugin_zip):
     version = packager.read_metadata(REPO / "metadata.txt")["version"]
-    assert plugin_zip.name == f"reflector_mapper-{version}.zip"
+    assert plugin_zip.name == f"rockhead-{version}.zip"
     assert packager.check(plugin_zip) == []
     names = zipfile.ZipFile(plugin_zip).namelist()
-    assert {n.split("/")[0] for n in names} == {"reflector_mapper"}
+    assert {n.split("/")[0] for n in names} == {"rockhead"}
     for needed in (
         "metadata.txt",
         "LICENSE",
@@ -39,7 +39,7 @@ def test_zip_follows_repository_rules(packager, plugin_zip):
         "plugin/provider.py",
         "plugin/icons/icon.svg",
     ):
-        assert f"reflector_mapper/{needed}" in names, needed
+        assert f"rockhead/{needed}" in names, needed
     for n in names:
         assert "/tests/" not in n and "/benchmarks/" not in n and "/sample_project/" not in n, n
         assert "__pycache__" not in n and not n.endswith(".pyc"), n
@@ -72,4 +72,4 @@ def test_unzipped_plugin_loads_in_qgis_process(plugin_zip, tmp_path):
     home.mkdir()
     env = enabled_env(home, plugins)
     out = run(env, "list", timeout=120)
-    assert "reflectormapper:runsurvey" in out.stdout
+    assert "rockhead:runsurvey" in out.stdout

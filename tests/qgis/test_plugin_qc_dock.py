@@ -7,8 +7,8 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsProject, QgsVectorLayer
 from qgis.PyQt.QtCore import Qt
-from reflector_mapper.core import inversion
-from reflector_mapper.plugin.qc_dock import GatherQc, QcDock
+from rockhead.core import inversion
+from rockhead.plugin.qc_dock import GatherQc, QcDock
 
 
 @pytest.fixture
@@ -16,7 +16,7 @@ def shots_layer(provider, sample_survey):
     import processing
 
     res = processing.run(
-        "reflectormapper:fitgathers",
+        "rockhead:fitgathers",
         {
             "SURVEY": str(sample_survey),
             "SHOTS": str(sample_survey.parent / "shots.gpkg"),

@@ -8,7 +8,7 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 from qgis.core import QgsVectorLayer
 from qgis_process_env import enabled_env
 from qgis_process_env import run as qgis_process
-from reflector_mapper.core import inputs, layers, pipeline
+from rockhead.core import inputs, layers, pipeline
 
 
 @pytest.fixture(scope="module")
@@ -20,11 +20,11 @@ def test_list_shows_provider(qp_env):
     out = qgis_process(qp_env, "list")
     assert out.returncode == 0, out.stderr
     for alg in ("fitgathers", "combinelines", "interpolatesurface", "runsurvey"):
-        assert f"reflectormapper:{alg}" in out.stdout
+        assert f"rockhead:{alg}" in out.stdout
 
 
 def test_help_carries_the_caution(qp_env):
-    out = qgis_process(qp_env, "help", "reflectormapper:runsurvey")
+    out = qgis_process(qp_env, "help", "rockhead:runsurvey")
     assert out.returncode == 0, out.stderr
     assert "does not replace borings" in out.stdout
     assert "SURVEY" in out.stdout and "OUTPUT" in out.stdout
@@ -35,7 +35,7 @@ def test_run_fit_gathers(qp_env, sample_survey, tmp_path):
     out = qgis_process(
         qp_env,
         "run",
-        "reflectormapper:fitgathers",
+        "rockhead:fitgathers",
         "--",
         f"SURVEY={sample_survey}",
         f"SHOTS={shots}",
@@ -61,7 +61,7 @@ def test_run_whole_survey(qp_env, sample_survey, tmp_path):
     out = qgis_process(
         qp_env,
         "run",
-        "reflectormapper:runsurvey",
+        "rockhead:runsurvey",
         "--",
         f"SURVEY={sample_survey}",
         f"OUTPUT={out_dir}",

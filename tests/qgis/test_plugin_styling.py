@@ -29,7 +29,7 @@ from qgis.core import (
 )
 from qgis.PyQt.QtCore import QSize
 from qgis.PyQt.QtGui import QColor
-from reflector_mapper.plugin import styling
+from rockhead.plugin import styling
 
 LAYER_CRS = "EPSG:32633"
 POINT = (560000.0, 5320000.0)  # UTM 33N, about 15.8 E 48.0 N
@@ -204,7 +204,7 @@ def _ramp_colour(ramp, t):
 def test_styled_group_renders(qgis_app, core_results, tmp_path):
     from osgeo import gdal
     from qgis.core import QgsProject, QgsRasterLayer
-    from reflector_mapper.plugin.make_sample_project import full_extent, render_png
+    from rockhead.plugin.make_sample_project import full_extent, render_png
 
     out_dir, _ = core_results
     project = QgsProject.instance()
@@ -286,8 +286,8 @@ def test_styled_group_renders(qgis_app, core_results, tmp_path):
 
 def test_sample_project_builder(qgis_app, core_results, tmp_path):
     from qgis.core import QgsProject
-    from reflector_mapper.plugin.make_sample_project import build_project
-    from reflector_mapper.plugin.qc_dock import PROJECT_KEY_SURVEY, PROJECT_SCOPE
+    from rockhead.plugin.make_sample_project import build_project
+    from rockhead.plugin.qc_dock import PROJECT_KEY_SURVEY, PROJECT_SCOPE
 
     out_dir, _ = core_results
     results = tmp_path / "results"
