@@ -44,9 +44,9 @@ from _common import load_average as _load  # noqa: E402
 
 import_package()
 
-from rockhead.core import forward  # noqa: E402
-from rockhead.core import inversion as inv  # noqa: E402
-from rockhead.core.model import GatherSet, Settings  # noqa: E402
+from rockhead.core.seismic import forward  # noqa: E402
+from rockhead.core.seismic import inversion as inv  # noqa: E402
+from rockhead.core.survey.model import GatherSet, Settings  # noqa: E402
 from scipy.optimize import least_squares  # noqa: E402
 
 NPICK = 48

@@ -48,8 +48,8 @@ def cli_run(out: Path):
 
 def step_times(out: Path):
     import_package()
-    from rockhead.core import pipeline
-    from rockhead.core.inputs import load_survey
+    from rockhead.core import job, workflow
+    from rockhead.core.survey.inputs import load_survey
 
     times = {}
 
@@ -60,10 +60,10 @@ def step_times(out: Path):
         return value
 
     survey = timed("read inputs", load_survey, SURVEY)
-    ground = pipeline.ground_model(survey)
-    fit = timed("fit all gathers", pipeline.fit_step, survey, ground=ground)
-    result = timed("whole computation", pipeline.compute, survey)
-    timed("write outputs", pipeline.write_outputs, result, out)
+    ground = workflow.ground_model(survey)
+    fit = timed("fit all gathers", workflow.fit_step, survey, ground=ground)
+    result = timed("whole computation", workflow.compute, survey)
+    timed("write outputs", job.write_outputs, result, out)
     times["picks"] = len(survey.picks)
     times["gathers"] = len(fit.fits)
     return times

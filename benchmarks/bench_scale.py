@@ -43,7 +43,7 @@ def _import_package():
     from _common import import_package
 
     import_package()
-    from rockhead.core import surface
+    from rockhead.core.surface import interpolation as surface
 
     return surface
 

@@ -40,7 +40,7 @@ from _common import import_package, load_average, machine  # noqa: E402
 
 import_package()
 
-from rockhead.core import tomography as tm  # noqa: E402
+from rockhead.core.tomography import joint as tm  # noqa: E402
 
 V_TRUE = 1800.0
 

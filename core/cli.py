@@ -65,7 +65,7 @@ def main(argv=None) -> int:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             if args.command == "check":
-                from .inputs import load_survey
+                from .survey.inputs import load_survey
 
                 survey = load_survey(args.survey)
                 n_bh = 0 if survey.boreholes is None else len(survey.boreholes)
@@ -74,7 +74,7 @@ def main(argv=None) -> int:
                     f"{n_bh} boreholes; CRS {survey.crs.name}"
                 )
             else:
-                from .pipeline import run
+                from .job import run
 
                 result = run(args.survey, args.out, method=args.method, progress=progress)
                 print(result.summary())

@@ -56,7 +56,8 @@ class GatherQc:
     """
 
     def __init__(self, survey_path):
-        from ..core import geometry, inputs, inversion
+        from ..core.seismic import geometry, inversion
+        from ..core.survey import inputs
 
         self._inversion = inversion
         self.survey_path = str(survey_path)
@@ -90,7 +91,7 @@ class GatherQc:
 
     def model_times_s(self, rows) -> np.ndarray:
         """Fitted two-way times at the picks' receivers (exact image source, real 3D geometry)."""
-        from ..core.forward import image_source_traveltime
+        from ..core.seismic.forward import image_source_traveltime
 
         g = self.gathers.gather[rows]
         normals = self._inversion.gather_normals(self.gathers, self.fits)[g]

@@ -260,7 +260,7 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
 
     def load_survey(self, parameters, context, feedback, overrides=None):
         """Load the survey (core.inputs.load_survey) and apply setting overrides."""
-        from ...core.inputs import load_survey
+        from ...core.survey.inputs import load_survey
 
         path = self.survey_path(parameters, context, feedback)
         with CoreCall(feedback):

@@ -17,10 +17,11 @@ from .base import (
 
 def combine_survey(survey, radius_m, min_angle_deg, progress):
     """Fit the gathers, then combine crossing lines (core.pipeline.fit_step + core.structure)."""
-    from ...core import pipeline, structure
+    from ...core import workflow
     from ...core.progress import SubProgress
+    from ...core.seismic import structure
 
-    step = pipeline.fit_step(survey, SubProgress(progress, 0, 80))
+    step = workflow.fit_step(survey, SubProgress(progress, 0, 80))
     dips = structure.combine_lines(step.gathers, step.fits, radius_m=radius_m, min_angle_deg=min_angle_deg)
     progress.set_progress(100)
     return step, dips
@@ -66,7 +67,7 @@ class CombineLinesAlgorithm(ReflectorAlgorithm):
         )
 
     def processAlgorithm(self, parameters, context, feedback):
-        from ...core import layers
+        from ...core.products import layers
 
         survey = self.load_survey(parameters, context, feedback)
         radius = self.optional_number(parameters, self.RADIUS, context)

@@ -67,11 +67,12 @@ class FitGathersAlgorithm(ReflectorAlgorithm):
         if overrides["min_picks"] is not None:
             overrides["min_picks"] = int(overrides["min_picks"])
         survey = self.load_survey(parameters, context, feedback, overrides)
-        from ...core import layers, pipeline
+        from ...core import workflow
+        from ...core.products import layers
 
         step = None
         with CoreCall(feedback) as call:
-            step = pipeline.fit_step(survey, progress_for(feedback))
+            step = workflow.fit_step(survey, progress_for(feedback))
         if call.cancelled or step is None:
             return {}
         crs = crs_from_pyproj(survey.crs)

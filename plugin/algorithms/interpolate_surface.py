@@ -166,9 +166,9 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         )
 
     def processAlgorithm(self, parameters, context, feedback):
-        from ...core.model import Settings
-        from ...core.pipeline import grid_with_trend
-        from ...core.surface import GridSpec
+        from ...core.surface.interpolation import GridSpec
+        from ...core.surface.trend import grid_with_trend
+        from ...core.survey.model import Settings
 
         source = self.parameterAsSource(parameters, self.INPUT, context)
         if source is None:
@@ -217,8 +217,8 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         if call.cancelled or surf is None:
             return {}
         interval = self.optional_number(parameters, self.CONTOUR_INTERVAL, context)
-        from ...core.contours import contours_layer
-        from ...core.geotiff import write_geotiff_grid
+        from ...core.formats.geotiff import write_geotiff_grid
+        from ...core.surface.contours import contours_layer
 
         spec = surf.spec
         with CoreCall(feedback):

@@ -77,7 +77,7 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
         self.addOutput(QgsProcessingOutputHtml(self.REPORT, tr("Report")))
 
     def processAlgorithm(self, parameters, context, feedback):
-        from ...core import pipeline
+        from ...core import job
 
         survey_path = self.survey_path(parameters, context, feedback)
         out_dir = self.parameterAsFileOutput(parameters, self.OUTPUT, context)
@@ -88,7 +88,7 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
         method = None if index == 0 else METHODS[index]
         result = None
         with CoreCall(feedback) as call:
-            result = pipeline.run(survey_path, out_dir, method=method, progress=progress_for(feedback))
+            result = job.run(survey_path, out_dir, method=method, progress=progress_for(feedback))
         if call.cancelled or result is None:
             return {}
         feedback.pushInfo(result.summary())

@@ -4,8 +4,8 @@ import os
 import stat
 
 import pytest
-from rockhead.core.atomic import OutputSet, atomic_path, check_not_input, check_output_dir
 from rockhead.core.errors import CancelledError, OutputError
+from rockhead.core.formats.atomic import OutputSet, atomic_path, check_not_input, check_output_dir
 
 
 def _visible(folder):

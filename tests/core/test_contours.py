@@ -4,8 +4,8 @@ import math
 
 import numpy as np
 import pytest
-from rockhead.core.contours import contour_levels, contour_lines, contours_layer, nice_interval
 from rockhead.core.errors import OutputError
+from rockhead.core.surface.contours import contour_levels, contour_lines, contours_layer, nice_interval
 from shapely.geometry import LineString, Point, box
 
 CELL = 5.0

@@ -7,7 +7,11 @@ import pkgutil
 import pytest
 import rockhead.core as core
 
-MODULES = sorted(m.name for m in pkgutil.iter_modules(core.__path__) if not m.name.startswith("_"))
+MODULES = sorted(
+    m.name.removeprefix("rockhead.core.")
+    for m in pkgutil.walk_packages(core.__path__, prefix="rockhead.core.")
+    if not m.name.rsplit(".", 1)[-1].startswith("_")
+)
 
 
 @pytest.mark.parametrize("name", MODULES, ids=MODULES)

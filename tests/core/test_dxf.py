@@ -2,9 +2,9 @@
 
 import numpy as np
 import pytest
-from rockhead.core.contours import contours_layer
-from rockhead.core.dxf import CONTOUR_LAYERS, DxfPolyline, DxfText, write_contours_dxf, write_dxf
 from rockhead.core.errors import OutputError
+from rockhead.core.formats.dxf import CONTOUR_LAYERS, DxfPolyline, DxfText, write_contours_dxf, write_dxf
+from rockhead.core.surface.contours import contours_layer
 from shapely import wkb as shapely_wkb
 
 

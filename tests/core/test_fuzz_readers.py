@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from rockhead.core import inputs
 from rockhead.core.errors import InputFileError, RockheadError
+from rockhead.core.survey import inputs
 
 # Together with the inversion's property test these generate over 10,000 cases per run
 # (6 reader tests x 1500 + the survey test x 800 + the fit's 600), in well under a minute.

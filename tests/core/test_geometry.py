@@ -10,9 +10,10 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pytest
-from rockhead.core import forward, geometry, inputs, inversion, structure
 from rockhead.core.errors import InputFileError, SurveyConfigError
-from rockhead.core.model import Picks, Settings, Stations, Survey
+from rockhead.core.seismic import forward, geometry, inversion, structure
+from rockhead.core.survey import inputs
+from rockhead.core.survey.model import Picks, Settings, Stations, Survey
 
 # ---------------------------------------------------------------------------
 # synthetic surveys
@@ -401,7 +402,7 @@ def test_ground_interpolant_matches_scipy_on_line_shaped_station_sets():
     )
     xy = np.unique(xy, axis=0)
     z = 200.0 + 0.02 * xy[:, 0] + rng.normal(0.0, 0.5, len(xy))
-    from rockhead.core.ground import _LinearTin
+    from rockhead.core.survey.ground import _LinearTin
 
     tin = _LinearTin(xy, z)
     q = rng.uniform(-20.0, 320.0, (20000, 2))

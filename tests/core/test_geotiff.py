@@ -8,7 +8,7 @@ import numpy as np
 import pyproj
 import pytest
 from rockhead.core.errors import GeoreferenceError, MissingDependencyError, OutputError
-from rockhead.core.geotiff import read_geotiff, read_raster, write_geotiff, write_geotiff_grid
+from rockhead.core.formats.geotiff import read_geotiff, read_raster, write_geotiff, write_geotiff_grid
 
 GDALINFO = shutil.which("gdalinfo")
 CUSTOM_TM = (

@@ -11,7 +11,7 @@ import numpy as np
 import pyproj
 import pytest
 from rockhead.core.errors import OutputError
-from rockhead.core.gpkg import Layer, write_geopackage
+from rockhead.core.formats.gpkg import Layer, write_geopackage
 from shapely import wkb as shapely_wkb
 from shapely.geometry import LineString, MultiLineString, Point, Polygon
 

@@ -4,8 +4,8 @@ import numpy as np
 import pyproj
 import pytest
 from rockhead.core.errors import GeoreferenceError, InputFileError, RockheadWarning
-from rockhead.core.geotiff import Raster, write_geotiff
-from rockhead.core.ground import GroundModel
+from rockhead.core.formats.geotiff import Raster, write_geotiff
+from rockhead.core.survey.ground import GroundModel
 from scipy.spatial import cKDTree
 
 X0, Y0, CELL, NX, NY = 512000.0, 5001200.0, 10.0, 40, 30  # north-up DEM, top-left edge

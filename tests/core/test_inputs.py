@@ -12,13 +12,9 @@ from pathlib import Path
 import numpy as np
 import pyproj
 import pytest
-from rockhead.core import inputs
-from rockhead.core.errors import (
-    InputFileError,
-    RockheadWarning,
-    SurveyConfigError,
-)
-from rockhead.core.model import Settings
+from rockhead.core.errors import InputFileError, RockheadWarning, SurveyConfigError
+from rockhead.core.survey import inputs
+from rockhead.core.survey.model import Settings
 
 STATIONS = """# invented site
 line,station,x,y,z

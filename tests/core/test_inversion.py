@@ -9,10 +9,10 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from rockhead.core import forward
-from rockhead.core import inversion as inv
 from rockhead.core.errors import CancelledError, InversionError, RockheadError
-from rockhead.core.model import GatherSet, Settings
+from rockhead.core.seismic import forward
+from rockhead.core.seismic import inversion as inv
+from rockhead.core.survey.model import GatherSet, Settings
 
 SIGMA = 5e-4  # 0.5 ms pick error, the project default
 

@@ -8,9 +8,9 @@ chosen as the pipeline documents.
 
 import numpy as np
 import pytest
-from rockhead.core import forward
-from rockhead.core.inputs import load_survey
-from rockhead.core.pipeline import compute
+from rockhead.core.seismic import forward
+from rockhead.core.survey.inputs import load_survey
+from rockhead.core.workflow import compute
 
 THICKNESS_M = np.array([12.0, 18.0])
 VINT_M_S = np.array([1500.0, 2400.0])
@@ -131,7 +131,7 @@ def test_cmp_velocity_analysis(tmp_path):
 
 def test_dem_gives_the_ground(tmp_path):
     """A DEM named in [files] is the ground of the depth grid (not the station elevations)."""
-    from rockhead.core.geotiff import write_geotiff
+    from rockhead.core.formats.geotiff import write_geotiff
 
     path = _write_survey(tmp_path, "top")
     # DEM 1.5 m above the stations' 100 m everywhere, covering the survey with a margin
@@ -146,8 +146,8 @@ def test_dem_gives_the_ground(tmp_path):
 
 def test_degenerate_gather_is_flagged_reported_and_the_run_goes_on(tmp_path):
     """A shot left with 3 picks: status too_few_picks with a reason, listed in the report."""
-    from rockhead.core.outputs import result_layers
-    from rockhead.core.pipeline import write_outputs
+    from rockhead.core.job import write_outputs
+    from rockhead.core.products.outputs import result_layers
 
     path = _write_survey(tmp_path, "top")
     picks = (tmp_path / "picks.csv").read_text().splitlines()

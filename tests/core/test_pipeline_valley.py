@@ -10,9 +10,9 @@ must beat the kriged gather fits against the truth.
 
 import numpy as np
 import pytest
-from rockhead.core import tomography as tm
-from rockhead.core.inputs import load_survey
-from rockhead.core.pipeline import compute
+from rockhead.core.survey.inputs import load_survey
+from rockhead.core.tomography import joint as tm
+from rockhead.core.workflow import compute
 from test_tomography import GRID, SIGMA_S, V_TRUE, ground, true_nodes, valley_lines
 
 E0, N0 = 500_000.0, 5_000_000.0  # local site coordinates placed in UTM zone 33N

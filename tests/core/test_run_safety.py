@@ -11,7 +11,7 @@ import hashlib
 from pathlib import Path
 
 import pytest
-from rockhead.core import errors, pipeline
+from rockhead.core import errors, job
 from test_pipeline_layers import _write_survey  # a small two-layer survey made by the forward models
 
 
@@ -30,8 +30,8 @@ def survey_path(tmp_path_factory):
 
 def test_two_runs_give_identical_files(survey_path, tmp_path):
     before = _digest(survey_path.parent)
-    pipeline.run(survey_path, tmp_path / "a")
-    pipeline.run(survey_path, tmp_path / "b")
+    job.run(survey_path, tmp_path / "a")
+    job.run(survey_path, tmp_path / "b")
     a, b = _digest(tmp_path / "a"), _digest(tmp_path / "b")
     assert a.keys() == b.keys()
     differ = [k for k in a if a[k] != b[k]]
@@ -41,7 +41,7 @@ def test_two_runs_give_identical_files(survey_path, tmp_path):
 
 def test_disk_full_mid_run_keeps_earlier_outputs(survey_path, tmp_path, monkeypatch):
     out = tmp_path / "out"
-    pipeline.run(survey_path, out, method="kriging")
+    job.run(survey_path, out, method="kriging")
     before = _digest(out)
 
     def full_disk(path, *args, **kwargs):
@@ -49,9 +49,9 @@ def test_disk_full_mid_run_keeps_earlier_outputs(survey_path, tmp_path, monkeypa
         raise OSError(errno.ENOSPC, "No space left on device", str(path))
 
     # the DXF is written after the GeoPackage, CSVs and rasters have been staged
-    monkeypatch.setattr("rockhead.core.outputs.write_contours_dxf", full_disk)
+    monkeypatch.setattr("rockhead.core.products.outputs.write_contours_dxf", full_disk)
     with pytest.raises(errors.OutputError, match=r"No space left on device.*earlier outputs there are unchanged"):
-        pipeline.run(survey_path, out, method="kriging")
+        job.run(survey_path, out, method="kriging")
     assert _digest(out) == before  # byte-identical, and no partial or temporary file
 
 
@@ -59,7 +59,7 @@ def test_output_folder_that_cannot_be_made(survey_path, tmp_path):
     blocker = tmp_path / "a_file"
     blocker.write_text("not a folder")
     with pytest.raises(errors.OutputError):
-        pipeline.run(survey_path, blocker / "out", method="kriging")
+        job.run(survey_path, blocker / "out", method="kriging")
 
 
 def test_output_over_an_input_is_refused(survey_path, tmp_path):
@@ -72,5 +72,5 @@ def test_output_over_an_input_is_refused(survey_path, tmp_path):
     toml.write_text(toml.read_text().replace('picks = "picks.csv"', 'picks = "report.html"'))
     before = _digest(folder)
     with pytest.raises(errors.OutputError, match=r"report\.html"):
-        pipeline.run(toml, folder, method="kriging")
+        job.run(toml, folder, method="kriging")
     assert _digest(folder) == before

@@ -9,9 +9,9 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pytest
-from rockhead.core import forward, geometry, inversion, structure
 from rockhead.core.errors import InversionError
-from rockhead.core.model import Picks, Settings, Stations, Survey
+from rockhead.core.seismic import forward, geometry, inversion, structure
+from rockhead.core.survey.model import Picks, Settings, Stations, Survey
 
 # ---------------------------------------------------------------------------
 # synthetic surveys

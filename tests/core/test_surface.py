@@ -10,7 +10,7 @@ import math
 import numpy as np
 import pytest
 from rockhead.core.errors import CancelledError, InversionError, RockheadWarning
-from rockhead.core.surface import (
+from rockhead.core.surface.interpolation import (
     GridSpec,
     OrdinaryKriging,
     ThinPlateSpline,

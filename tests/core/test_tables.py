@@ -5,9 +5,9 @@ import csv
 import numpy as np
 import pytest
 from rockhead.core.errors import OutputError
-from rockhead.core.gpkg import Layer
-from rockhead.core.tables import guard_text, write_csv
-from rockhead.core.tables import write_layer_csv as layer_to_csv
+from rockhead.core.formats.gpkg import Layer
+from rockhead.core.formats.tables import guard_text, write_csv
+from rockhead.core.formats.tables import write_layer_csv as layer_to_csv
 from shapely.geometry import LineString, Point
 
 

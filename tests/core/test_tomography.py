@@ -16,11 +16,11 @@ References checked against (named beside each check):
 
 import numpy as np
 import pytest
-from rockhead.core import forward
-from rockhead.core import tomography as tm
 from rockhead.core.errors import CancelledError, InversionError
-from rockhead.core.inversion import fit_shot_gathers
-from rockhead.core.model import GatherSet, Settings
+from rockhead.core.seismic import forward
+from rockhead.core.seismic.inversion import fit_shot_gathers
+from rockhead.core.survey.model import GatherSet, Settings
+from rockhead.core.tomography import joint as tm
 from scipy import stats
 
 V_TRUE = 1800.0
@@ -502,7 +502,7 @@ def test_cancel_between_iterations():
 
 def test_gridspec_is_read_north_up():
     # a north-up GridSpec of core.surface (x0, y0 = north-west cell centre)
-    from rockhead.core.surface import GridSpec
+    from rockhead.core.surface.interpolation import GridSpec
 
     spec = GridSpec(x0=100.0, y0=500.0, cell_size_m=10.0, nx=5, ny=4)
     g = tm.as_node_grid(spec)

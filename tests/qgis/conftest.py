@@ -65,7 +65,7 @@ def sample_survey(tmp_path):
 @pytest.fixture(scope="session")
 def core_results(tmp_path_factory):
     """The core pipeline run once on the sample survey (reference for the plugin's outputs)."""
-    from rockhead.core import pipeline
+    from rockhead.core import job
 
     src = REPO / "sample_project"
     dst = tmp_path_factory.mktemp("core-run")
@@ -74,7 +74,7 @@ def core_results(tmp_path_factory):
             shutil.copy2(src / name, dst / name)
     out = dst / "results"
     # kriging: the surface method the plugin tests compare (tomography is the core's own test)
-    result = pipeline.run(str(dst / "survey.toml"), str(out), method="kriging")
+    result = job.run(str(dst / "survey.toml"), str(out), method="kriging")
     return out, result
 
 

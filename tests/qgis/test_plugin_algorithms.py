@@ -24,7 +24,10 @@ from qgis.core import (
     QgsVectorLayer,
 )
 from qgis.PyQt.QtCore import QVariant
-from rockhead.core import inputs, layers, pipeline, structure
+from rockhead.core import workflow
+from rockhead.core.products import layers
+from rockhead.core.seismic import structure
+from rockhead.core.survey import inputs
 from rockhead.plugin.algorithms.run_survey import METHODS
 from rockhead.plugin.feedback import FeedbackProgress
 
@@ -115,7 +118,7 @@ LAYER_PARAMS = {
 @pytest.fixture
 def core_fit(sample_survey):
     survey = inputs.load_survey(sample_survey)
-    return survey, pipeline.fit_step(survey)
+    return survey, workflow.fit_step(survey)
 
 
 def test_fit_gathers_equals_core(provider, sample_survey, core_fit):
@@ -226,10 +229,10 @@ def _read_band(path):
 
 
 def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
-    from rockhead.core.contours import contours_layer
-    from rockhead.core.model import Settings
-    from rockhead.core.pipeline import grid_with_trend
-    from rockhead.core.surface import GridSpec
+    from rockhead.core.surface.contours import contours_layer
+    from rockhead.core.surface.interpolation import GridSpec
+    from rockhead.core.surface.trend import grid_with_trend
+    from rockhead.core.survey.model import Settings
 
     _survey, step = core_fit
     fit = run(

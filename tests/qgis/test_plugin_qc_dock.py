@@ -7,7 +7,7 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsProject, QgsVectorLayer
 from qgis.PyQt.QtCore import Qt
-from rockhead.core import inversion
+from rockhead.core.seismic import inversion
 from rockhead.plugin.qc_dock import GatherQc, QcDock
 
 

@@ -1,103 +1,41 @@
-"""The whole job: survey files in, map layers, rasters and a report out.
+"""The steps of the whole job and :func:`compute`, which runs them (no files written).
 
 Data flow (one way)::
 
-    load_survey -> build_gathers -> fit_shot_gathers -> reflector_points
+    Survey -> build_gathers -> fit_shot_gathers -> reflector_points
       -> combine_lines (true dip at crossings), line_misties
       -> surface (kriging or spline; 3D relocation loop) -> borehole check
       -> joint inversion of all picks (curved reflectors) where supported
-      -> depth grid, contours, surface dips -> GeoPackage, GeoTIFF, DXF, CSV, report
+      -> depth grid, contours, surface dips  ==> RunResult
 
-:func:`compute` does the science and returns a :class:`RunResult`;
-:func:`write_outputs` writes it, every file staged and renamed only at the end
-(:class:`~.atomic.OutputSet`), so a failure leaves earlier outputs untouched;
-:func:`run` does both. The step functions are public so that the QGIS
-algorithms can call one step at a time.
+:mod:`.job` writes a :class:`~.results.RunResult` to files. The step
+functions are public so that the QGIS algorithms can call one step at a time.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
-from pathlib import Path
+from dataclasses import replace
 from typing import Optional
 
 import numpy as np
 
 from .errors import InversionError
-from .geometry import build_gathers, line_frames, reflector_points
-from .inversion import fit_shot_gathers
+from .grid import bilinear, fill_nearest, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
-from .surface import GridSpec, interpolate_surface
+from .results import FitStep, RunResult
+from .seismic.geometry import build_gathers, line_frames, line_misties, reflector_points
+from .seismic.inversion import cmp_bins, dix_intervals, fit_cmp_gathers, fit_shot_gathers
+from .seismic.structure import combine_lines, surface_dips
+from .surface.contours import contours_layer
+from .surface.interpolation import GridSpec, SurfaceGrid
+from .surface.trend import grid_with_trend, predict_with_trend
+from .survey.ground import GroundModel
+from .tomography.joint import curvature_flags, invert_reflector, robust_site_velocity, surface_values
 
 NODE_CELLS = 2  # tomography node spacing in output cells
 SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
-OUTPUT_NAMES = ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
-                "report.html", "contours_elevation.dxf", "contours_depth.dxf")
 
-__all__ = ["FitStep", "RunResult", "compute", "fit_step", "run", "write_outputs"]
-
-
-@dataclass
-class FitStep:
-    """Gathers, their fits and the georeferenced points of one survey."""
-
-    frames: dict
-    gathers: object
-    fits: object
-    points: object  # zero-offset reflector points (one per gather)
-    receiver_points: object  # reflection point of every pick
-
-
-@dataclass
-class RunResult:
-    """Everything :func:`compute` found; :func:`write_outputs` turns it into files.
-
-    Grids are on ``spec`` (north-up, row 0 north). ``seismic_surface`` is the
-    seismic-only surface after the 3D relocation loop (used for the
-    independent borehole check), ``kriged_surface`` the same data plus the
-    boreholes, ``surface`` the final one (``method_used`` says which method
-    made it: "kriging", "spline" or "tomography").
-    """
-
-    survey: object
-    fit: FitStep
-    ground: object = None
-    spec: object = None
-    dips: object = None
-    misties: object = None
-    seismic_surface: object = None
-    seismic_diag: dict = None
-    kriged_surface: object = None
-    kriged_diag: dict = None
-    tomography: dict = None
-    surface: object = None
-    method_used: str = ""
-    ground_grid_m: np.ndarray = None
-    depth_m: np.ndarray = None
-    contours: object = None
-    surface_dips: object = None
-    borehole_check: dict = None
-    depth_ratio: dict = None
-    dix: dict = None
-    cmp: dict = None
-    relocation_history_m: list = field(default_factory=list)
-    notes: list = field(default_factory=list)
-    outputs: list = field(default_factory=list)
-
-    def summary(self) -> str:
-        f = self.fit.fits
-        n_ok = int(np.sum(f.status == "ok"))
-        lines = [
-            f"{self.survey.name}: {len(f)} gathers fitted ({n_ok} ok, {len(f) - n_ok} flagged), "
-            f"{int(f.picks_rejected.sum())} of {len(f.residual_s)} picks rejected",
-        ]
-        if self.surface is not None:
-            est = int(np.sum(~self.surface.mask))
-            lines.append(f"surface by {self.method_used}: {est} of {self.surface.mask.size} cells of "
-                         f"{self.spec.cell_size_m:g} m estimated")
-        if self.outputs:
-            lines.append(f"wrote {len(self.outputs)} files to {Path(self.outputs[0]).parent}")
-        return "\n".join(lines + self.notes)
+__all__ = ["SURFACE_METHODS", "compute", "fit_step"]
 
 
 def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=None) -> FitStep:
@@ -115,15 +53,6 @@ def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=N
     return FitStep(frames, gathers, fits, zero, recv)
 
 
-def _bilinear(spec, grid, x_m, y_m):
-    """Bilinear sample of a north-up grid (NaN outside or next to NaN cells)."""
-    from scipy.ndimage import map_coordinates
-
-    col = (np.asarray(x_m, float) - spec.x0) / spec.cell_size_m
-    row = (spec.y0 - np.asarray(y_m, float)) / spec.cell_size_m
-    return map_coordinates(np.asarray(grid, float), [row, col], order=1, mode="constant", cval=np.nan)
-
-
 def surface_cross_components(spec, z_grid, gathers, x_m, y_m):
     """Cross-line normal component q = -w.n of the gridded surface at each gather.
 
@@ -132,8 +61,8 @@ def surface_cross_components(spec, z_grid, gathers, x_m, y_m):
     NaN where the surface is not defined.
     """
     zy, zx = np.gradient(np.asarray(z_grid, float), -spec.cell_size_m, spec.cell_size_m)
-    gx = _bilinear(spec, zx, x_m, y_m)
-    gy = _bilinear(spec, zy, x_m, y_m)
+    gx = bilinear(spec, zx, x_m, y_m)
+    gy = bilinear(spec, zy, x_m, y_m)
     norm = np.sqrt(1.0 + gx * gx + gy * gy)
     w = gathers.cross_unit
     return -(w[:, 0] * gx + w[:, 1] * gy) / norm
@@ -150,87 +79,6 @@ def surface_data(points, reflector, boreholes=None):
         z = np.concatenate([z, boreholes.elevation_m])
         s = np.concatenate([s, boreholes.sigma_m])
     return x, y, z, s
-
-
-@dataclass(frozen=True)
-class PlaneTrend:
-    """A regional plane z = a + b (x - x0) + c (y - y0) fitted by weighted least squares.
-
-    A dipping reflector is a trend, not a stationary random field: its
-    experimental variogram grows like the square of the lag and no bounded
-    model fits it. Kriging the residuals from the plane (residual kriging
-    with a linear drift; Journel & Huijbregts 1978, ch. V) gives a variogram
-    that levels off and an honest standard deviation. ``coef`` = (a, b, c),
-    weights 1/sigma^2.
-    """
-
-    x0: float
-    y0: float
-    coef: tuple
-
-    @classmethod
-    def fit(cls, x, y, z, sigma):
-        x0, y0 = float(np.mean(x)), float(np.mean(y))
-        w = 1.0 / np.maximum(np.asarray(sigma, float), 1e-3)
-        a = np.column_stack([np.ones_like(x), x - x0, y - y0]) * w[:, None]
-        coef = np.linalg.lstsq(a, z * w, rcond=None)[0]
-        return cls(x0, y0, tuple(float(c) for c in coef))
-
-    def __call__(self, x, y):
-        a, b, c = self.coef
-        return a + b * (np.asarray(x, float) - self.x0) + c * (np.asarray(y, float) - self.y0)
-
-
-class _NoTrend:
-    coef = (0.0, 0.0, 0.0)
-
-    def __call__(self, x, y):
-        return np.zeros(np.broadcast(np.asarray(x), np.asarray(y)).shape)
-
-
-def _trend(settings, x, y, z, s):
-    return PlaneTrend.fit(x, y, z, s) if settings.trend == "linear" and len(x) >= 3 else _NoTrend()
-
-
-def grid_with_trend(x, y, z, s, spec, settings, method="kriging", progress=None):
-    """Interpolate (x, y, z) with sigma s onto ``spec``: trend removed, residuals gridded, trend added back.
-
-    With ``variogram_model = "auto"`` the surface module fits each model and
-    keeps the one with the best leave-one-out mean logarithmic score (a
-    proper scoring rule: small residuals *and* honest standard deviations;
-    Gneiting & Raftery 2007). Returns
-    ``(SurfaceGrid, diagnostics)``; the diagnostics carry the ``trend``, the
-    ``variogram_scores`` and a cross-validation expressed in elevations.
-    """
-    from .surface import SurfaceGrid
-
-    trend = _trend(settings, x, y, z, s)
-    surf, diag = interpolate_surface(
-        x, y, z - trend(x, y), s, spec, method=method, neighbours=settings.neighbours,
-        variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m, progress=progress,
-    )
-    cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
-    z_grid = np.where(surf.mask, np.nan, surf.z + trend(cx, cy))
-    diag["trend"] = trend
-    cv = diag.get("cross_validation")
-    if cv is not None:
-        idx = np.asarray(cv.index)
-        diag["cross_validation"] = replace(cv, estimate=cv.estimate + trend(x[idx], y[idx]))
-    return SurfaceGrid(spec, z_grid, surf.std, surf.mask, surf.method, surf.n_data), diag
-
-
-def predict_with_trend(x, y, z, s, diag, settings, x_new, y_new):
-    """Estimate and standard deviation at points, with the model and trend of ``diag``."""
-    from .surface import OrdinaryKriging, ThinPlateSpline
-
-    trend = diag.get("trend") or _NoTrend()
-    r = z - trend(x, y)
-    if diag.get("variogram") is not None:
-        model = OrdinaryKriging(diag["variogram"], neighbours=settings.neighbours).fit(x, y, r, s**2)
-    else:
-        model = ThinPlateSpline("auto", neighbours=settings.neighbours).fit(x, y, r, s**2)
-    est, std = model.predict(x_new, y_new)
-    return est + trend(x_new, y_new), std
 
 
 def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None):
@@ -303,23 +151,10 @@ def grid_spec(survey, points):
 
 def ground_model(survey):
     """Ground elevation callable: the DEM if the survey names one, else the stations."""
-    from .ground import GroundModel
-
     if survey.settings.dem is not None:
         return GroundModel.from_raster(survey.settings.dem, survey.crs)
     st = survey.stations
     return GroundModel.from_stations(st.x_m, st.y_m, st.z_m)
-
-
-def _fill_nearest(grid):
-    """Fill NaN cells with the value of the nearest finite cell."""
-    from scipy.ndimage import distance_transform_edt
-
-    bad = ~np.isfinite(grid)
-    if not bad.any():
-        return grid
-    idx = distance_transform_edt(bad, return_distances=False, return_indices=True)
-    return grid[tuple(idx)]
 
 
 def tomography_step(survey, fit, start, spec, forced=False, progress=None):
@@ -330,9 +165,6 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     ``{"skipped": reason}`` (auto mode) when the picks do not support it;
     raises InversionError when the method was asked for explicitly.
     """
-    from .surface import SurfaceGrid
-    from .tomography import curvature_flags, invert_reflector, robust_site_velocity
-
     f, g = fit.fits, fit.gathers
     mapped = np.asarray(g.reflector).astype(str) == str(survey.settings.reflector)
     v_site, v_spread, n_v = robust_site_velocity(f.velocity_m_s, f.se_velocity_m_s, (f.status == "ok") & mapped)
@@ -355,8 +187,8 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     ny = int(np.ceil((y_n - y_s) / step)) + 1
     grid = (x_w, y_s, step, nx, ny)
     gx, gy = np.meshgrid(x_w + step * np.arange(nx), y_s + step * np.arange(ny))
-    start_nodes = _bilinear(spec, _fill_nearest(start.z), gx, gy)
-    start_nodes = _fill_nearest(np.where(np.isfinite(start_nodes), start_nodes, np.nan))
+    start_nodes = bilinear(spec, fill_nearest(start.z), gx, gy)
+    start_nodes = fill_nearest(np.where(np.isfinite(start_nodes), start_nodes, np.nan))
     res = invert_reflector(
         g.source_xyz[use], g.receiver_xyz[use], g.time_s[use], g.sigma_s[use], grid,
         start_nodes, v_site, boreholes=boreholes,
@@ -369,14 +201,12 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     # output grid: the joint inversion corrects the curvature bias of each
     # gather's point, kriging interpolates between the lines with a standard
     # deviation, on the same data layout as the gather-fit surface.
-    from .tomography import surface_values
-
     pts = fit.points
     sel = mapped & (f.status == "ok") & pts.finite & np.asarray(res.grid.contains(pts.x_m, pts.y_m))
     x, y = pts.x_m[sel], pts.y_m[sel]
     zz = surface_values(np.asarray(res.elevation_unmasked_m), x, y, grid)
     node_spec = GridSpec(x_w, y_s + (ny - 1) * step, step, nx, ny)
-    ss = _bilinear(node_spec, np.asarray(res.sigma_m)[::-1], x, y)
+    ss = bilinear(node_spec, np.asarray(res.sigma_m)[::-1], x, y)
     keep = np.isfinite(zz) & np.isfinite(ss)
     x, y, zz, ss = x[keep], y[keep], zz[keep], ss[keep]
     if boreholes is not None:
@@ -402,9 +232,6 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
 
 def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     """Run the science of the whole job (no files written)."""
-    from .geometry import line_misties
-    from .structure import combine_lines
-
     progress = progress or NullProgress()
     settings = survey.settings
     method = method or settings.surface_method
@@ -513,8 +340,6 @@ def dix_table(fit):
     gives the layers between them. Returns a dict of columns (empty when no
     shot has two reflectors).
     """
-    from .inversion import dix_intervals
-
     g, f = fit.gathers, fit.fits
     ok = f.status == "ok"
     cols = {k: [] for k in ("line", "shot", "reflector_top", "reflector_base", "x_m", "y_m", "t0_top_ms",
@@ -558,8 +383,6 @@ def cmp_step(survey, fit):
     estimate; the map itself always comes from the exact 3D shot-gather fits.
     Returns a dict of columns (with ``x_m``, ``y_m`` of the bin centres).
     """
-    from .inversion import cmp_bins, fit_cmp_gathers
-
     g = fit.gathers
     bin_m = survey.settings.cmp_bin_m
     if bin_m is None:
@@ -645,9 +468,6 @@ def calibrate_fit(fit: FitStep, factor: float, ground) -> FitStep:
 
 def products_step(r: RunResult) -> None:
     """Depth below ground, contours and surface dip symbols of the final surface."""
-    from .contours import contours_layer
-    from .structure import surface_dips
-
     spec, st = r.spec, r.survey.settings
     cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
     r.ground_grid_m = np.asarray(r.ground(cx, cy), float)
@@ -659,32 +479,5 @@ def products_step(r: RunResult) -> None:
         index_every=st.index_contour_every,
     )
     extent = max(spec.nx, spec.ny) * spec.cell_size_m
-    spacing = max(spec.cell_size_m * 2, _nice_step(extent / 5.0))
+    spacing = max(spec.cell_size_m * 2, nice_step(extent / 5.0))
     r.surface_dips = surface_dips(spec.x_centres, spec.y_centres, z, spacing, mask=~r.surface.mask)
-
-
-def _nice_step(value):
-    """Largest 1-2-5 step not above ``value``."""
-    e = 10.0 ** np.floor(np.log10(value))
-    return float(max(m * e for m in (1, 2, 5) if m * e <= value))
-
-
-def write_outputs(result: RunResult, out_dir, progress=None) -> list:
-    """Write every output of ``result`` into ``out_dir`` (atomically, as one set)."""
-    from . import outputs
-
-    return outputs.write_all(result, out_dir, progress or NullProgress())
-
-
-def run(survey_path, out_dir, method: Optional[str] = None, progress=None) -> RunResult:
-    """Read the survey, run the whole job and write every output into ``out_dir``."""
-    from .atomic import check_output_dir
-    from .inputs import load_survey
-
-    progress = progress or NullProgress()
-    survey = load_survey(survey_path)
-    inputs = [Path(p) for p in survey.files.values() if p is not None] + [Path(survey_path)]
-    check_output_dir(out_dir, inputs, OUTPUT_NAMES)
-    result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
-    result.outputs = write_outputs(result, Path(out_dir), SubProgress(progress, 85, 100))
-    return result

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from shapely.geometry import LineString, Point
 
-from .gpkg import Layer
+from ..formats.gpkg import Layer
 
 __all__ = [
     "boreholes_layer",

@@ -49,8 +49,8 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from ..errors import OutputError
 from .atomic import atomic_path
-from .errors import OutputError
 
 __all__ = ["GPKG_APPLICATION_ID", "GPKG_USER_VERSION", "Layer", "crs_srs_row", "write_geopackage"]
 
@@ -143,7 +143,7 @@ def crs_srs_row(crs) -> tuple:
     """
     import pyproj
 
-    from .crs import horizontal_crs, parse_crs
+    from ..crs import horizontal_crs, parse_crs
 
     crs = horizontal_crs(parse_crs(crs))  # the horizontal part; elevations are plain numbers
     code = crs.to_epsg()

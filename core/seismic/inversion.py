@@ -101,9 +101,9 @@ from functools import lru_cache
 
 import numpy as np
 
-from .errors import InversionError
-from .model import GatherSet, Settings
-from .progress import check_cancel
+from ..errors import InversionError
+from ..progress import check_cancel
+from ..survey.model import GatherSet, Settings
 
 __all__ = [
     "CONDITION_LIMIT",

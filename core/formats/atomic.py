@@ -20,7 +20,7 @@ import tempfile
 from pathlib import Path
 from typing import Iterable, Iterator, List, Tuple, Union
 
-from .errors import OutputError
+from ..errors import OutputError
 
 __all__ = ["OutputSet", "atomic_path", "check_not_input", "check_output_dir"]
 

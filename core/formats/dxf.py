@@ -27,8 +27,8 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
+from ..errors import OutputError
 from .atomic import atomic_path
-from .errors import OutputError
 
 __all__ = [
     "CONTOUR_LAYERS",

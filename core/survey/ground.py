@@ -29,8 +29,8 @@ import warnings
 
 import numpy as np
 
-from .errors import GeoreferenceError, InputFileError, RockheadWarning
-from .geotiff import Raster, read_raster
+from ..errors import GeoreferenceError, InputFileError, RockheadWarning
+from ..formats.geotiff import Raster, read_raster
 
 __all__ = ["GroundModel"]
 

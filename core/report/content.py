@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import __version__, figures
-from .report import Report
+from .. import __version__
+from . import figures
+from .html import Report
 
 
 def _rms(values):
@@ -91,7 +92,7 @@ def _summary(rep, r):
 
 def _scale_note(r):
     try:
-        from .crs import grid_scale_factor
+        from ..crs import grid_scale_factor
     except ImportError:  # pragma: no cover
         return ""
     st = r.survey.stations
@@ -307,7 +308,7 @@ def _lines(rep, r, layers, qc_pngs):
 
 
 def _section_png(r, line):
-    from .pipeline import _bilinear
+    from ..grid import bilinear as _bilinear
 
     frame = r.fit.frames[line]
     pts = r.fit.points

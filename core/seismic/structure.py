@@ -35,7 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import InversionError
+from ..errors import InversionError
 
 __all__ = [
     "DipMeasurements",

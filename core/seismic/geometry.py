@@ -32,9 +32,9 @@ from itertools import combinations
 
 import numpy as np
 
+from ..errors import InputFileError, SurveyConfigError
+from ..survey.model import GatherSet
 from . import forward
-from .errors import InputFileError, SurveyConfigError
-from .model import GatherSet
 
 __all__ = [
     "LineFrame",
@@ -588,7 +588,7 @@ def station_ground_model(stations):
     >>> float(g(5.0, 5.0)), float(g(100.0, 0.0))
     (25.0, 20.0)
     """
-    from .ground import GroundModel
+    from ..survey.ground import GroundModel
 
     pts = np.asarray(stations.xyz if hasattr(stations, "xyz") else stations, dtype=float).reshape(-1, 3)
     return GroundModel.from_stations(pts[:, 0], pts[:, 1], pts[:, 2])

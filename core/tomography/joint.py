@@ -127,9 +127,9 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.spatial import cKDTree
 
-from . import forward
-from .errors import InversionError, RockheadWarning
-from .progress import NullProgress, check_cancel
+from ..errors import InversionError, RockheadWarning
+from ..progress import NullProgress, check_cancel
+from ..seismic import forward
 
 __all__ = [
     "NodeGrid",

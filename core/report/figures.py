@@ -11,7 +11,7 @@ import io
 
 import numpy as np
 
-from .errors import MissingDependencyError
+from ..errors import MissingDependencyError
 
 # colours of our own choosing (colour-blind-safe pairs)
 USED = "#1f4e79"

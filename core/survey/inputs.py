@@ -66,8 +66,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import crs as crsmod
-from .errors import GeoreferenceError, InputFileError, RockheadWarning, SurveyConfigError
+from .. import crs as crsmod
+from ..errors import GeoreferenceError, InputFileError, RockheadWarning, SurveyConfigError
 from .model import Boreholes, Picks, Settings, Stations, Survey
 
 try:  # Python 3.11+

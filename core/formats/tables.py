@@ -29,8 +29,8 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from ..errors import OutputError
 from .atomic import atomic_path
-from .errors import OutputError
 
 __all__ = ["FORMULA_PREFIXES", "guard_text", "layer_to_csv", "write_csv", "write_layer_csv"]
 

@@ -20,7 +20,7 @@ from typing import List, Sequence, Tuple
 
 import numpy as np
 
-from .errors import MissingDependencyError, OutputError
+from ..errors import MissingDependencyError, OutputError
 
 __all__ = ["contour_levels", "contour_lines", "contours_layer", "nice_interval"]
 
@@ -173,7 +173,7 @@ def contours_layer(
         ``"depth"``), ``elevation_m`` (NaN on depth contours), ``depth_m``
         (NaN on elevation contours) and ``index`` (bool).
     """
-    from .gpkg import Layer
+    from ..formats.gpkg import Layer
 
     if index_every < 1:
         raise OutputError(f"index_every={index_every!r}; expected a positive integer")

@@ -42,8 +42,8 @@ from typing import Dict, Tuple
 
 import numpy as np
 
+from ..errors import GeoreferenceError, InputFileError, MissingDependencyError, OutputError
 from .atomic import atomic_path
-from .errors import GeoreferenceError, InputFileError, MissingDependencyError, OutputError
 
 __all__ = ["Raster", "read_geotiff", "read_raster", "write_geotiff", "write_geotiff_grid"]
 
@@ -111,7 +111,7 @@ class Raster:
 
 def _crs_geokeys(crs):
     """GeoKey entries (key, value or ascii) and the citation for a CRS."""
-    from .crs import horizontal_crs, parse_crs
+    from ..crs import horizontal_crs, parse_crs
 
     crs = horizontal_crs(parse_crs(crs))  # the horizontal part; elevations are plain numbers
     code = crs.to_epsg()

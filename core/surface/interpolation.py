@@ -87,8 +87,8 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial import cKDTree
 
-from .errors import InversionError, RockheadWarning
-from .progress import NullProgress, check_cancel
+from ..errors import InversionError, RockheadWarning
+from ..progress import NullProgress, check_cancel
 
 __all__ = [
     "VARIOGRAM_MODELS",
@@ -1669,7 +1669,7 @@ def interpolate_surface(
         ``smoothing`` (spline), ``max_distance_m``, ``n_cells``,
         ``n_cells_estimated``.
     """
-    from .progress import SubProgress
+    from ..progress import SubProgress
 
     progress = progress or NullProgress()
     if sigma is not None:

@@ -11,15 +11,15 @@ from pathlib import Path
 
 import numpy as np
 
+from ..errors import OutputError
+from ..formats.atomic import OutputSet
+from ..formats.dxf import write_contours_dxf
+from ..formats.geotiff import write_geotiff_grid
+from ..formats.gpkg import write_geopackage
+from ..formats.tables import write_layer_csv
+from ..progress import check_cancel
+from ..workflow import surface_data
 from . import layers as lay
-from .atomic import OutputSet
-from .dxf import write_contours_dxf
-from .errors import OutputError
-from .geotiff import write_geotiff_grid
-from .gpkg import write_geopackage
-from .pipeline import surface_data
-from .progress import check_cancel
-from .tables import write_layer_csv
 
 GPKG_NAME = "survey.gpkg"
 
@@ -58,7 +58,7 @@ def result_layers(result) -> dict:
 
 def run_info(result) -> list:
     """(key, value) pairs saying which method made which output, with the main numbers."""
-    from . import __version__
+    from .. import __version__
 
     s = result.survey.settings
     items = [
@@ -112,7 +112,7 @@ def result_rasters(result) -> dict:
 
 def gather_qc_pngs(result):
     """Yield (gather index, file name, PNG bytes) of the QC figure of every gather."""
-    from .figures import gather_figure
+    from ..report.figures import gather_figure
 
     g, f = result.fit.gathers, result.fit.fits
     d = g.receiver_xyz - g.source_xyz
@@ -158,7 +158,7 @@ def write_all(result, out_dir, progress) -> list:
 
 
 def _write_all(result, out_dir, progress) -> list:
-    from .reporting import build_report
+    from ..report.content import build_report
 
     out_dir.mkdir(parents=True, exist_ok=True)
     crs = result.survey.crs
