@@ -20,14 +20,14 @@ from typing import Optional
 import numpy as np
 
 from .errors import InversionError
-from .grid import bilinear, fill_nearest, nice_step
+from .grid import GridSpec, bilinear, fill_nearest, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import FitStep, RunResult
 from .seismic.geometry import build_gathers, line_frames, line_misties, reflector_points
 from .seismic.inversion import cmp_bins, dix_intervals, fit_cmp_gathers, fit_shot_gathers
 from .seismic.structure import combine_lines, surface_dips
 from .surface.contours import contours_layer
-from .surface.interpolation import GridSpec, SurfaceGrid
+from .surface.interpolation import SurfaceGrid
 from .surface.trend import grid_with_trend, predict_with_trend
 from .survey.ground import GroundModel
 from .tomography.joint import curvature_flags, invert_reflector, robust_site_velocity, surface_values

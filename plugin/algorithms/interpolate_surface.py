@@ -166,7 +166,7 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         )
 
     def processAlgorithm(self, parameters, context, feedback):
-        from ...core.surface.interpolation import GridSpec
+        from ...core.grid import GridSpec
         from ...core.surface.trend import grid_with_trend
         from ...core.survey.model import Settings
 

@@ -502,7 +502,7 @@ def test_cancel_between_iterations():
 
 def test_gridspec_is_read_north_up():
     # a north-up GridSpec of core.surface (x0, y0 = north-west cell centre)
-    from rockhead.core.surface.interpolation import GridSpec
+    from rockhead.core.grid import GridSpec
 
     spec = GridSpec(x0=100.0, y0=500.0, cell_size_m=10.0, nx=5, ny=4)
     g = tm.as_node_grid(spec)

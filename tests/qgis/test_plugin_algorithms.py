@@ -229,8 +229,8 @@ def _read_band(path):
 
 
 def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_survey, core_fit, tmp_path):
+    from rockhead.core.grid import GridSpec
     from rockhead.core.surface.contours import contours_layer
-    from rockhead.core.surface.interpolation import GridSpec
     from rockhead.core.surface.trend import grid_with_trend
     from rockhead.core.survey.model import Settings
 
