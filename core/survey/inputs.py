@@ -68,6 +68,7 @@ import numpy as np
 
 from .. import crs as crsmod
 from ..errors import GeoreferenceError, InputFileError, RockheadWarning, SurveyConfigError
+from .handoff import DESIGN_KEYS, SECTION_KEYS, SURVEY_EXTRA_KEYS, read_handoff
 from .model import Boreholes, Picks, Settings, Stations, Survey
 
 try:  # Python 3.11+
@@ -899,7 +900,8 @@ def _processing_fields() -> dict:
 
 
 def _tables() -> dict:
-    return {"survey": _SURVEY_KEYS, "files": _FILE_KEYS, "processing": tuple(_processing_fields())}
+    return {"survey": _SURVEY_KEYS + SURVEY_EXTRA_KEYS, "files": _FILE_KEYS, "processing": tuple(_processing_fields()),
+            "design": DESIGN_KEYS, "sections": SECTION_KEYS}
 
 
 class _Toml:
@@ -1264,6 +1266,14 @@ def load_survey(toml_path) -> Survey:
     boreholes = None
     if "boreholes" in paths:
         boreholes = read_boreholes(paths["boreholes"], crs_in, crs_work, settings.borehole_sigma_m, stations=stations)
+    handoff = read_handoff(
+        survey, _get_table(toml, doc, "design", required=False), _get_table(toml, doc, "sections", required=False),
+        toml_dir=toml.path.parent, error=toml.error, crs_in=crs_in, crs_work=crs_work, read_table=read_csv_table,
+    )
+    if handoff.design_area_path is not None:
+        paths["design_area"] = handoff.design_area_path
+    for a in handoff.alignments:
+        paths[f"alignment_{a.name}"] = a.path
     return Survey(
         name=name,
         path=toml.path,
@@ -1274,4 +1284,5 @@ def load_survey(toml_path) -> Survey:
         boreholes=boreholes,
         settings=settings,
         files=dict(paths),
+        handoff=handoff,
     )

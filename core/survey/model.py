@@ -19,7 +19,7 @@ from typing import Optional
 
 import numpy as np
 
-__all__ = ["Boreholes", "GatherSet", "Picks", "Settings", "Stations", "Survey"]
+__all__ = ["Alignment", "Boreholes", "GatherSet", "Handoff", "Picks", "Settings", "Stations", "Survey"]
 
 
 @dataclass(frozen=True)
@@ -114,6 +114,37 @@ class Settings:
 
 
 @dataclass(frozen=True)
+class Alignment:
+    """A polyline along which a section is drawn (vertices in order, working CRS)."""
+
+    name: str  # used in the section's file name
+    x_m: np.ndarray
+    y_m: np.ndarray
+    path: Optional[Path] = None  # the vertex file it came from
+
+
+@dataclass(frozen=True)
+class Handoff:
+    """What survey.toml asks of the hand-off products (``[design]``, ``[sections]``, title block).
+
+    ``design_area`` is a shapely (Multi)Polygon in the working CRS, or None for
+    the whole mapped area. ``corridor_m`` is the full width of the strip centred
+    on an alignment inside which boreholes and shots are projected onto it.
+    """
+
+    design_elevation_m: Optional[float] = None  # pile toe or excavation grade (m, the survey's heights)
+    design_area: Optional[object] = None
+    design_area_path: Optional[Path] = None
+    simulations: int = 500  # conditional simulations for the rock volume
+    seed: int = 1  # random seed of those simulations (same inputs, same volumes)
+    alignments: tuple = ()  # Alignment, besides the seismic lines
+    corridor_m: float = 25.0
+    section_format: str = "pdf"  # "pdf" or "svg"
+    survey_date: Optional[str] = None  # ISO date of the field survey, when stated
+    vertical_datum: Optional[str] = None  # name of the vertical datum of the heights, when stated
+
+
+@dataclass(frozen=True)
 class Survey:
     """Everything read from one survey.toml and the files it names."""
 
@@ -126,6 +157,7 @@ class Survey:
     boreholes: Optional[Boreholes]
     settings: Settings = field(default_factory=Settings)
     files: dict = field(default_factory=dict)  # role -> Path of each input file
+    handoff: Handoff = field(default_factory=Handoff)
 
 
 @dataclass(frozen=True)

@@ -796,6 +796,83 @@ def boreholes_sigma_zero(s):
     return r"^boreholes\.csv, line 2, field 'sigma_m': sigma '0' m must be > 0"
 
 
+
+# ----------------------------------------------------------------- hand-off settings ([design], [sections])
+
+AXIS_CSV = "x,y\n499970.000,5499990.000\n500030.000,5500010.000\n"
+AREA_GEOJSON = (
+    '{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": "EPSG:32633"}}, '
+    '"features": [{"type": "Feature", "properties": {}, "geometry": {"type": "Polygon", "coordinates": '
+    "[[[499980, 5499980], [500020, 5499980], [500020, 5500020], [499980, 5500020], [499980, 5499980]]]}}]}\n"
+)
+
+
+@case
+def good_handoff(s):
+    s["raw"]["axis.csv"] = AXIS_CSV.encode()
+    s["raw"]["area.geojson"] = AREA_GEOJSON.encode()
+    set_toml(s, "survey", "date", "2025-06-14")
+    set_toml(s, "design", "elevation_m", "292.5")
+    set_toml(s, "design", "area", '"area.geojson"')
+    set_toml(s, "sections", "alignment", '"axis.csv"')
+    set_toml(s, "sections", "corridor_m", "30")
+    return None
+
+
+@case
+def design_elevation_text(s):
+    set_toml(s, "design", "elevation_m", '"292.5 m"')
+    return r"^survey\.toml, line 14, field 'design\.elevation_m': value '292\.5 m' is text; expected a number"
+
+
+@case
+def design_area_without_elevation(s):
+    s["raw"]["area.geojson"] = AREA_GEOJSON.encode()
+    set_toml(s, "design", "area", '"area.geojson"')
+    return r"^survey\.toml, line 14, field 'design\.area': \[design\] has no elevation_m"
+
+
+@case
+def design_simulations_too_few(s):
+    set_toml(s, "design", "elevation_m", "292.5")
+    set_toml(s, "design", "simulations", "50")
+    return r"^survey\.toml, line 15, field 'design\.simulations': value 50 must be at least 200"
+
+
+@case
+def design_area_self_crossing(s):
+    s["raw"]["area.csv"] = b"x,y\n499980,5499980\n500020,5500020\n500020,5499980\n499980,5500020\n"
+    set_toml(s, "design", "elevation_m", "292.5")
+    set_toml(s, "design", "area", '"area.csv"')
+    return r"^area\.csv, line 2: the polygon is not valid \(its edges cross themselves\)"
+
+
+@case
+def sections_alignment_decimal_comma(s):
+    s["raw"]["axis.csv"] = b'x,y\n499970.0,5499990.0\n"500030,5",5500010.0\n'
+    set_toml(s, "sections", "alignment", '"axis.csv"')
+    return r"^axis\.csv, line 3, field 'x': value '500030,5' uses a decimal comma"
+
+
+@case
+def sections_alignment_one_vertex(s):
+    s["raw"]["axis.csv"] = b"x,y\n499970.0,5499990.0\n"
+    set_toml(s, "sections", "alignment", '"axis.csv"')
+    return r"^axis\.csv, line 2: an alignment needs at least two distinct vertices"
+
+
+@case
+def sections_corridor_negative(s):
+    set_toml(s, "sections", "corridor_m", "-5")
+    return r"^survey\.toml, line 14, field 'sections\.corridor_m': value -5\.0 must be > 0"
+
+
+@case
+def sections_unknown_key(s):
+    set_toml(s, "sections", "corridor", "25")
+    return r"^survey\.toml, line 14, field 'sections\.corridor': unknown key 'corridor' in \[sections\]: did you mean 'corridor_m'"
+
+
 def main(out=HERE):
     """Write every case into ``out`` (default: this folder)."""
     out = Path(out)
