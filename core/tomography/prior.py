@@ -8,7 +8,7 @@ relief's covariance is the Matern covariance with smoothness nu = 1,
     C(r) = \\sigma^2\\, \\kappa r\\, K_1(\\kappa r), \\qquad \\rho = \\sqrt 8 / \\kappa,
 
 (:math:`K_1` the modified Bessel function of the second kind, :math:`\\rho`
-the distance at which the correlation has dropped to about 0.14). It is the
+the distance at which the correlation has dropped to 0.1397). It is the
 stationary solution of the stochastic partial differential equation
 :math:`(\\kappa^2 - \\Delta) u = \\mathcal W / \\tau` in two dimensions, so on a
 regular lattice of spacing h with the five-point Laplacian
@@ -89,7 +89,7 @@ def matern_correlation(r_m, range_m):
     """Matern (nu = 1) correlation :math:`\\kappa r K_1(\\kappa r)`, :math:`\\kappa = \\sqrt 8/\\rho`.
 
     >>> round(float(matern_correlation(10.0, 10.0)), 4)
-    0.1399
+    0.1397
     """
     kr = math.sqrt(8.0) / float(range_m) * np.asarray(r_m, float)
     with np.errstate(invalid="ignore", over="ignore"):
