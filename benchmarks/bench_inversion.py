@@ -44,8 +44,11 @@ from _common import load_average as _load  # noqa: E402
 
 import_package()
 
-from rockhead.core.seismic import forward  # noqa: E402
-from rockhead.core.seismic import inversion as inv  # noqa: E402
+from rockhead.core.seismic import (  # noqa: E402
+    forward,
+    lm,
+    shot_fits,
+)
 from rockhead.core.survey.model import GatherSet, Settings  # noqa: E402
 from scipy.optimize import least_squares  # noqa: E402
 
@@ -108,7 +111,11 @@ def scipy_loop(gs, q, settings):
     yw = np.sum(w * D[:, :2], axis=1)
     d2 = np.sum(D * D, axis=1)
     # same starting values as the batched engine: its weighted linear fit in t^2
-    theta0 = inv._shot_start(gs, q, settings)
+    start = shot_fits.linear_start(gs, q, settings)
+    smax = np.sqrt(np.clip(1.0 - q * q, 1e-12, 1.0))
+    theta0 = np.column_stack(  # the engine's internal parameters: ln V, ln h, artanh(s / s_max)
+        [np.log(start[:, 0]), np.log(start[:, 1]), np.arctanh(np.clip(start[:, 2] / smax, -0.999999, 0.999999))]
+    )
     starts = np.searchsorted(gid, np.arange(g + 1))
     out = np.empty((g, 3))
     for k in range(g):
@@ -169,19 +176,19 @@ def compare(n_gathers, settings, repeat=3):
     """
     gs, q = synthetic_gathers(n_gathers, seed=n_gathers)
     times, cpu = {}, {}
-    default_threads = inv._MAX_THREADS
+    default_threads = lm.MAX_THREADS
     try:
         for label, threads in (("ours", default_threads), ("ours_1", 1)):
-            inv._MAX_THREADS = threads
+            lm.MAX_THREADS = threads
             best = best_cpu = np.inf
             for _ in range(repeat):
                 t0, c0 = time.perf_counter(), time.process_time()
-                fit = inv.fit_shot_gathers(gs, settings, cross_component=q)
+                fit = shot_fits.fit_shot_gathers(gs, settings, cross_component=q)
                 best = min(best, time.perf_counter() - t0)
                 best_cpu = min(best_cpu, time.process_time() - c0)
             times[label], cpu[label] = best, best_cpu
     finally:
-        inv._MAX_THREADS = default_threads
+        lm.MAX_THREADS = default_threads
     t0, c0 = time.perf_counter(), time.process_time()
     ref = scipy_loop(gs, q, settings)
     t_scipy, c_scipy = time.perf_counter() - t0, time.process_time() - c0
@@ -250,7 +257,7 @@ def main(argv=None):
     rows = []
     load0 = _load()
     print(f"loss = {settings.robust_loss}, f_scale = {settings.robust_scale}, {NPICK} picks per gather")
-    print(f"threads for the batched engine: {inv._workers()}; load average at start: {load0}")
+    print(f"threads for the batched engine: {lm.worker_count()}; load average at start: {load0}")
     print(
         f"{'N':>7} {'ours (s)':>10} {'1 thread':>10} {'scipy (s)':>10} {'ratio':>7} {'ratio 1t':>8} "
         f"{'cpu ratio':>9} {'max rel diff':>13} {'ok':>7}"
@@ -283,7 +290,7 @@ def main(argv=None):
             "no rejection, same model, parametrisation, analytic Jacobian and start; scipy `trf` with "
             "ftol = xtol = gtol = 1e-12; OPENBLAS_NUM_THREADS = "
             f"{os.environ.get('OPENBLAS_NUM_THREADS')}. Batched times are the best of 3 runs, with "
-            f"{inv._workers()} threads and with 1 thread; scipy's loop runs once.",
+            f"{lm.worker_count()} threads and with 1 thread; scipy's loop runs once.",
             "",
             "| N gathers | batched (s) | batched, 1 thread (s) | scipy loop (s) | speed-up "
             "| speed-up, 1 thread | CPU-time speed-up, 1 thread | max rel. parameter difference |",
@@ -298,7 +305,7 @@ def main(argv=None):
         lines += [
             "",
             f"Target >= 50x (wall clock) at {big['n']} gathers with parameters equal to 1e-6: {verdict} "
-            f"in this run ({big['ratio']:.0f}x with {inv._workers()} threads, {big['ratio_1']:.0f}x with "
+            f"in this run ({big['ratio']:.0f}x with {lm.worker_count()} threads, {big['ratio_1']:.0f}x with "
             f"1 thread; {big['ratio_cpu']:.0f}x in processor time).",
             "",
             f"Normal equations J^T W J for {sizes[-1]} gathers: padded (g, nmax) "

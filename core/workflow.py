@@ -23,8 +23,11 @@ from .errors import InversionError
 from .grid import GridSpec, bilinear, fill_nearest, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import FitStep, RunResult
-from .seismic.geometry import build_gathers, line_frames, line_misties, reflector_points
-from .seismic.inversion import cmp_bins, dix_intervals, fit_cmp_gathers, fit_shot_gathers
+from .seismic.cmp import cmp_bins, fit_cmp_gathers
+from .seismic.dix import dix_intervals
+from .seismic.geometry import build_gathers, line_frames, reflector_points
+from .seismic.misties import line_misties
+from .seismic.shot_fits import fit_shot_gathers
 from .seismic.structure import combine_lines, surface_dips
 from .surface.contours import contours_layer
 from .surface.interpolation import SurfaceGrid

@@ -6,7 +6,7 @@ slope 1/V^2 and intercept t0^2, Green 1938) and in the t-x plane, the
 residuals, and the fitted parameters with their standard errors. A table
 lists the picks with a check box each: clearing a box excludes the pick, and
 "Refit" runs the core's fit again with those exclusions
-(``core.inversion.fit_shot_gathers(..., exclude=...)``) and writes the new
+(``core.seismic.shot_fits.fit_shot_gathers(..., exclude=...)``) and writes the new
 values into the shots layer.
 
 All numbers come from the core; :class:`GatherQc` holds the state without any
@@ -56,15 +56,16 @@ class GatherQc:
     """
 
     def __init__(self, survey_path):
-        from ..core.seismic import geometry, inversion
+        from ..core.seismic import geometry, shot_fits
         from ..core.survey import inputs
 
-        self._inversion = inversion
+        self._geometry = geometry
+        self._shot_fits = shot_fits
         self.survey_path = str(survey_path)
         self.survey = inputs.load_survey(self.survey_path)
         self.gathers = geometry.build_gathers(self.survey)
         self.exclude = np.zeros(len(self.gathers.time_s), dtype=bool)
-        self.fits = inversion.fit_shot_gathers(self.gathers, self.survey.settings)
+        self.fits = shot_fits.fit_shot_gathers(self.gathers, self.survey.settings)
 
     # -- lookup -------------------------------------------------------------------------------
     def labels(self) -> list:
@@ -94,7 +95,7 @@ class GatherQc:
         from ..core.seismic.forward import image_source_traveltime
 
         g = self.gathers.gather[rows]
-        normals = self._inversion.gather_normals(self.gathers, self.fits)[g]
+        normals = self._geometry.gather_normals(self.gathers, self.fits)[g]
         h = self.fits.normal_distance_m[g]
         src = self.gathers.source_xyz[rows]
         offset = np.sum(normals * src, axis=1) + h
@@ -129,7 +130,7 @@ class GatherQc:
         Gathers are fitted independently, so only gathers with changed
         exclusions change; the batched fit is simply run on all of them.
         """
-        self.fits = self._inversion.fit_shot_gathers(
+        self.fits = self._shot_fits.fit_shot_gathers(
             self.gathers, self.survey.settings, exclude=self.exclude.copy(), progress=progress
         )
         return self.fits

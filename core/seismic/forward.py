@@ -42,15 +42,15 @@ __all__ = [
 
 
 def plane_normal(dip_deg, dip_direction_deg):
-    """Downward unit normal of a plane with the given dip and dip direction.
+    r"""Downward unit normal of a plane with the given dip and dip direction.
 
     .. math::
 
-        \\mathbf n = (-\\sin\\delta\\,\\sin\\phi,\\; -\\sin\\delta\\,\\cos\\phi,\\; -\\cos\\delta)
+        \mathbf n = (-\sin\delta\,\sin\phi,\; -\sin\delta\,\cos\phi,\; -\cos\delta)
 
-    with dip :math:`\\delta` and dip direction (azimuth) :math:`\\phi`. The plane
-    deepens toward :math:`\\phi`, so the horizontal part of the normal points
-    up-dip and the dip direction is the azimuth of :math:`-\\mathbf n_h`.
+    with dip :math:`\delta` and dip direction (azimuth) :math:`\phi`. The plane
+    deepens toward :math:`\phi`, so the horizontal part of the normal points
+    up-dip and the dip direction is the azimuth of :math:`-\mathbf n_h`.
 
     >>> np.round(plane_normal(0.0, 0.0), 12) + 0.0
     array([ 0.,  0., -1.])
@@ -100,13 +100,13 @@ def normal_distance(point_xyz, normal, offset_m):
 
 
 def image_source_traveltime(source_xyz, receiver_xyz, normal, offset_m, velocity_m_s):
-    """Exact two-way reflection time by the image-source construction.
+    r"""Exact two-way reflection time by the image-source construction.
 
     .. math::
 
-        h = d - \\mathbf n\\cdot\\mathbf S, \\qquad
-        \\mathbf S' = \\mathbf S + 2h\\,\\mathbf n, \\qquad
-        t = |\\mathbf R - \\mathbf S'| / V
+        h = d - \mathbf n\cdot\mathbf S, \qquad
+        \mathbf S' = \mathbf S + 2h\,\mathbf n, \qquad
+        t = |\mathbf R - \mathbf S'| / V
 
     exact in 3D for a homogeneous layer over a plane, sources and receivers at
     any elevation above it [Sheriff & Geldart 1995, ch. 4].
@@ -124,10 +124,10 @@ def image_source_traveltime(source_xyz, receiver_xyz, normal, offset_m, velocity
 
 
 def reflection_point(source_xyz, receiver_xyz, normal, offset_m):
-    """Specular reflection point on the plane for a source-receiver pair.
+    r"""Specular reflection point on the plane for a source-receiver pair.
 
     The point where the segment from the image source S' to R crosses the
-    plane: :math:`P = S' + \\frac{h_S}{h_S + h_R}(R - S')` with :math:`h_S, h_R`
+    plane: :math:`P = S' + \frac{h_S}{h_S + h_R}(R - S')` with :math:`h_S, h_R`
     the normal distances of S and R to the plane.
     """
     s = np.asarray(source_xyz, dtype=float)
@@ -141,14 +141,14 @@ def reflection_point(source_xyz, receiver_xyz, normal, offset_m):
 
 
 def line_traveltime(offset_m, normal_distance_m, s, velocity_m_s):
-    """Two-way time along a straight horizontal line over a dipping plane.
+    r"""Two-way time along a straight horizontal line over a dipping plane.
 
     .. math::
 
-        t^2 = \\frac{x^2 + 4 h s x + 4 h^2}{V^2}, \\qquad s = \\sin\\delta\\cos\\beta
+        t^2 = \frac{x^2 + 4 h s x + 4 h^2}{V^2}, \qquad s = \sin\delta\cos\beta
 
     with signed offset x along the line's unit vector u, h the normal distance
-    from the source to the plane and :math:`s = -\\mathbf u\\cdot\\mathbf n`
+    from the source to the plane and :math:`s = -\mathbf u\cdot\mathbf n`
     [Sheriff & Geldart 1995, ch. 4]. For s = 0 this is the t^2-x^2 relation of
     a horizontal reflector [Green 1938], with :math:`t_0 = 2h/V`.
 
@@ -160,16 +160,16 @@ def line_traveltime(offset_m, normal_distance_m, s, velocity_m_s):
 
 
 def cmp_traveltime(offset_m, t0_s, velocity_m_s, dip_deg=0.0, beta_deg=0.0):
-    """Common-midpoint two-way time over a dipping plane [Levin 1971].
+    r"""Common-midpoint two-way time over a dipping plane [Levin 1971].
 
     .. math::
 
-        t^2 = t_0^2 + \\frac{x^2\\,(1 - \\sin^2\\delta\\cos^2\\beta)}{V^2}
+        t^2 = t_0^2 + \frac{x^2\,(1 - \sin^2\delta\cos^2\beta)}{V^2}
 
     with full source-receiver offset x, zero-offset time :math:`t_0` at the
-    midpoint, true dip :math:`\\delta` and :math:`\\beta` the angle between the
+    midpoint, true dip :math:`\delta` and :math:`\beta` the angle between the
     line and the dip direction. Along dip the NMO velocity is
-    :math:`V/\\cos\\delta`.
+    :math:`V/\cos\delta`.
     """
     x = np.asarray(offset_m, dtype=float)
     sd = np.sin(np.radians(dip_deg))
@@ -178,12 +178,12 @@ def cmp_traveltime(offset_m, t0_s, velocity_m_s, dip_deg=0.0, beta_deg=0.0):
 
 
 def layered_t0_vrms(thickness_m, interval_velocity_m_s):
-    """Zero-offset times and rms velocities to the base of each flat layer.
+    r"""Zero-offset times and rms velocities to the base of each flat layer.
 
     .. math::
 
-        t_{0,n} = \\sum_{k\\le n} \\frac{2 z_k}{v_k}, \\qquad
-        V_{rms,n}^2 = \\frac{\\sum_{k\\le n} v_k^2\\,\\Delta t_k}{\\sum_{k\\le n}\\Delta t_k}
+        t_{0,n} = \sum_{k\le n} \frac{2 z_k}{v_k}, \qquad
+        V_{rms,n}^2 = \frac{\sum_{k\le n} v_k^2\,\Delta t_k}{\sum_{k\le n}\Delta t_k}
 
     [Dix 1955]. Returns ``(t0_s, vrms_m_s)`` arrays, one value per interface.
     """
@@ -196,14 +196,14 @@ def layered_t0_vrms(thickness_m, interval_velocity_m_s):
 
 
 def layered_reflection_traveltime(offset_m, thickness_m, interval_velocity_m_s, tol_m=1e-9):
-    """Exact (ray-traced) two-way time to the base of a stack of flat layers.
+    r"""Exact (ray-traced) two-way time to the base of a stack of flat layers.
 
     For ray parameter p, offset and time are [Sheriff & Geldart 1995, ch. 4]
 
     .. math::
 
-        x(p) = \\sum_k \\frac{2 z_k p v_k}{\\sqrt{1 - p^2 v_k^2}}, \\qquad
-        t(p) = \\sum_k \\frac{2 z_k}{v_k \\sqrt{1 - p^2 v_k^2}}
+        x(p) = \sum_k \frac{2 z_k p v_k}{\sqrt{1 - p^2 v_k^2}}, \qquad
+        t(p) = \sum_k \frac{2 z_k}{v_k \sqrt{1 - p^2 v_k^2}}
 
     solved for p at each offset by a safeguarded Newton iteration.
     """

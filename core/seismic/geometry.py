@@ -1,4 +1,4 @@
-"""Line frames, gathers, georeferenced reflector points and line misties.
+r"""Line frames, gathers, georeferenced reflector points and line misties.
 
 Everything here works in the survey's projected working CRS: x east, y north,
 z elevation up, metres. A line's unit vector ``u`` points toward increasing
@@ -11,8 +11,8 @@ downward unit normal ``n`` and the normal distance ``h`` from the source S
 
 .. math::
 
-    \\mathbf n = -s\\,\\mathbf u - q\\,\\mathbf w - c\\,\\mathbf e_z, \\qquad
-    c = \\sqrt{1 - s^2 - q^2}
+    \mathbf n = -s\,\mathbf u - q\,\mathbf w - c\,\mathbf e_z, \qquad
+    c = \sqrt{1 - s^2 - q^2}
 
 with ``s = -u.n`` fitted along the line and ``q = -w.n`` the cross-line
 component (0 unless resolved by a second line direction, see
@@ -28,9 +28,10 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
-from itertools import combinations
+from typing import Any, Optional
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import InputFileError, SurveyConfigError
 from ..survey.model import GatherSet
@@ -38,16 +39,16 @@ from . import forward
 
 __all__ = [
     "LineFrame",
-    "Misties",
     "ReflectorPoints",
     "build_gathers",
     "gather_normals",
     "line_frames",
-    "line_misties",
     "project_onto_polyline",
     "reflector_points",
     "station_ground_model",
     "station_order",
+    "unique_in_order",
+    "vector_azimuth_deg",
     "vertical_depth_below_source",
 ]
 
@@ -134,7 +135,7 @@ def station_order(stations) -> np.ndarray:
     label = np.asarray(stations.station).astype(str)
     file_line = np.asarray(getattr(stations, "file_line", np.arange(len(line))))
     rank = np.zeros(len(line), dtype=int)
-    for name in _unique_in_order(line):
+    for name in unique_in_order(line):
         idx = np.flatnonzero(line == name)
         labels = label[idx]
         if all(_is_number(v) for v in labels):
@@ -146,16 +147,48 @@ def station_order(stations) -> np.ndarray:
     return rank
 
 
-def _unique_in_order(values) -> list:
-    """Distinct values in order of first appearance."""
+def unique_in_order(values: ArrayLike) -> list:
+    """Distinct values in order of first appearance.
+
+    Parameters
+    ----------
+    values : array_like
+        Labels or numbers.
+
+    Returns
+    -------
+    list
+        Each distinct value once, in the order it first appears.
+
+    Examples
+    --------
+    >>> [str(v) for v in unique_in_order(["L2", "L1", "L2", "L3"])]
+    ['L2', 'L1', 'L3']
+    """
     values = np.asarray(values)
     _, first = np.unique(values, return_index=True)
     return [values[i] for i in np.sort(first)]
 
 
-def _azimuth_deg(vx, vy):
-    """Azimuth of a horizontal vector, clockwise from north, in [0, 360)."""
-    return np.degrees(np.arctan2(vx, vy)) % 360.0
+def vector_azimuth_deg(east: ArrayLike, north: ArrayLike) -> np.ndarray:
+    """Azimuth of a horizontal vector, clockwise from grid north.
+
+    Parameters
+    ----------
+    east, north : float or array_like
+        Easting and northing components (any common unit).
+
+    Returns
+    -------
+    ndarray
+        Azimuth in degrees, in [0, 360); 0 for the zero vector.
+
+    Examples
+    --------
+    >>> vector_azimuth_deg([0.0, 1.0, 0.0, -1.0], [1.0, 0.0, -1.0, 0.0]).tolist()
+    [0.0, 90.0, 180.0, 270.0]
+    """
+    return np.degrees(np.arctan2(east, north)) % 360.0
 
 
 def line_frames(stations, path=None) -> dict:
@@ -201,7 +234,7 @@ def line_frames(stations, path=None) -> dict:
     file_line = np.asarray(getattr(stations, "file_line", np.arange(len(x)) + 2))
     rank = station_order(stations)
     frames = {}
-    for name in _unique_in_order(line):
+    for name in unique_in_order(line):
         idx = np.flatnonzero(line == name)
         idx = idx[np.argsort(rank[idx], kind="stable")]
         labels = label[idx]
@@ -245,7 +278,7 @@ def line_frames(stations, path=None) -> dict:
             centre_xy=centre,
             unit=u,
             cross_unit=w,
-            azimuth_deg=float(_azimuth_deg(u[0], u[1])),
+            azimuth_deg=float(vector_azimuth_deg(u[0], u[1])),
             polyline=LineString([tuple(p) for p in xy]),
             length_m=float(chain[-1]),
         )
@@ -462,14 +495,60 @@ def build_gathers(survey, reflector=None, frames=None) -> GatherSet:
 # ---------------------------------------------------------------------------
 
 
-def _fit_array(fits, name, g, default=np.nan):
+def _fit_array(fits: Any, name: str, g: int, default: float = np.nan) -> np.ndarray:
     value = getattr(fits, name, None)
     if value is None:
         return np.full(g, default, dtype=float)
     return np.broadcast_to(np.asarray(value, dtype=float), (g,)).copy()
 
 
-def _normals_from(u, w, s, q):
+def gather_normals(gathers: GatherSet, fits: Any, cross_component: Optional[ArrayLike] = None) -> np.ndarray:
+    r"""Downward unit normal of each gather's fitted plane.
+
+    .. math::
+
+        \mathbf n = -s\,\mathbf u - q\,\mathbf w - \sqrt{1-s^2-q^2}\,\mathbf e_z
+
+    with the line's unit vector u and cross unit w (see the module notes).
+
+    Parameters
+    ----------
+    gathers : GatherSet
+        The gathers (``line_unit``, ``cross_unit``).
+    fits : ShotFits or object with ``s_along`` (and optionally ``cross_component``)
+        Along-line component s of each gather (NaN for a gather without a fit).
+    cross_component : float or (g,) array_like, optional
+        Cross-line component q; else ``fits.cross_component`` when the fits
+        carry one, else 0. NaN entries mean 0 (cross-line dip not resolved,
+        the plane taken as level across the line).
+
+    Returns
+    -------
+    (g, 3) ndarray
+        Unit normals (east, north, up components); NaN rows where
+        :math:`s^2 + q^2 > 1` or the fit failed.
+
+    Examples
+    --------
+    A line running north (u = (0, 1), w = (1, 0)) over a plane dipping 30
+    degrees toward the north, along the line: s = -u.n = sin 30 = 0.5, q = 0.
+
+    >>> from types import SimpleNamespace
+    >>> gs = SimpleNamespace(n_gathers=1, line_unit=np.array([[0.0, 1.0]]), cross_unit=np.array([[1.0, 0.0]]))
+    >>> n = gather_normals(gs, SimpleNamespace(s_along=np.array([0.5])))
+    >>> [round(float(v), 6) + 0.0 for v in n[0]]
+    [0.0, -0.5, -0.866025]
+    """
+    g = gathers.n_gathers
+    s = _fit_array(fits, "s_along", g)
+    if cross_component is None:
+        cross_component = getattr(fits, "cross_component", None)
+    q = np.zeros(g) if cross_component is None else np.broadcast_to(np.asarray(cross_component, dtype=float), (g,))
+    return _normals_from(np.asarray(gathers.line_unit, float), np.asarray(gathers.cross_unit, float), s, q)
+
+
+def _normals_from(u: np.ndarray, w: np.ndarray, s: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """Downward unit normals (g, 3) of :func:`gather_normals` from u, w (g, 2), s and q (g,)."""
     s = np.asarray(s, float)
     q = np.where(np.isfinite(q), q, 0.0)
     c2 = 1.0 - s * s - q * q
@@ -479,36 +558,10 @@ def _normals_from(u, w, s, q):
     ) - c[:, None] * np.array([0.0, 0.0, 1.0])
 
 
-def gather_normals(gathers, fits, cross_component=None) -> np.ndarray:
-    """Downward unit normal of each gather's fitted plane, shape (g, 3).
-
-    .. math::
-
-        \\mathbf n = -s\\,\\mathbf u - q\\,\\mathbf w - \\sqrt{1-s^2-q^2}\\,\\mathbf e_z
-
-    ``s = fits.s_along``; ``q`` is ``cross_component`` if given, else
-    ``fits.cross_component`` if the fits carry one, NaN entries meaning 0
-    (cross-line dip not resolved, the plane assumed level across the line).
-    Rows with ``s^2 + q^2 > 1`` or a failed fit are NaN.
-    """
-    g = gathers.n_gathers
-    q_fit = getattr(fits, "cross_component", None)
-    if cross_component is None and hasattr(fits, "normal") and q_fit is not None:
-        if np.all(np.isfinite(np.asarray(q_fit, dtype=float))):
-            return fits.normal(gathers)  # the inversion's own definition (same formula)
-    s = _fit_array(fits, "s_along", g)
-    if cross_component is None:
-        cross_component = getattr(fits, "cross_component", None)
-    q = np.zeros(g) if cross_component is None else np.broadcast_to(
-        np.asarray(cross_component, dtype=float), (g,)
-    )
-    return _normals_from(np.asarray(gathers.line_unit, float), np.asarray(gathers.cross_unit, float), s, q)
-
-
 def vertical_depth_below_source(normal_distance_m, dip_deg):
-    """Vertical distance from the source down to the plane.
+    r"""Vertical distance from the source down to the plane.
 
-    .. math:: z_v = h / \\cos\\delta
+    .. math:: z_v = h / \cos\delta
 
     (DESIGN.md s.4; the perpendicular h is the shortest distance, the vertical
     one is longer on a dipping plane.)
@@ -605,17 +658,17 @@ def _points_local(src, rec, u, w, h, s, q, pick_gather):
 
 
 def reflector_points(gathers, fits, ground=None, cross_component=None) -> ReflectorPoints:
-    """Georeferenced reflector points of every gather and every pick.
+    r"""Georeferenced reflector points of every gather and every pick.
 
     For gather k with source S, normal distance h and downward normal n
-    (:func:`gather_normals`), the plane is :math:`\\mathbf n\\cdot\\mathbf P =
-    \\mathbf n\\cdot\\mathbf S + h` and
+    (:func:`gather_normals`), the plane is :math:`\mathbf n\cdot\mathbf P =
+    \mathbf n\cdot\mathbf S + h` and
 
     .. math::
 
-        \\mathbf P_0 = \\mathbf S + h\\,\\mathbf n, \\qquad
-        \\mathbf P_R = \\mathbf S' + \\frac{h_S}{h_S + h_R}(\\mathbf R - \\mathbf S'),\\;
-        \\mathbf S' = \\mathbf S + 2h\\,\\mathbf n
+        \mathbf P_0 = \mathbf S + h\,\mathbf n, \qquad
+        \mathbf P_R = \mathbf S' + \frac{h_S}{h_S + h_R}(\mathbf R - \mathbf S'),\;
+        \mathbf S' = \mathbf S + 2h\,\mathbf n
 
     (zero-offset point = foot of the perpendicular, displaced up-dip; receiver
     point where the image-source ray crosses the plane [Sheriff & Geldart
@@ -628,7 +681,7 @@ def reflector_points(gathers, fits, ground=None, cross_component=None) -> Reflec
     ``sigma_m`` is the elevation standard error, ``sigma_xy_m`` the radial
     horizontal one. When the cross-line component q is *assumed* (no second
     line direction, q = 0), the true point may lie off the line's vertical
-    plane by up to about :math:`h\\,|q|`; that lateral uncertainty from the
+    plane by up to about :math:`h\,|q|`; that lateral uncertainty from the
     unknown cross-line dip is not in these sigmas. Nor is the uncertainty of
     a q resolved by crossing lines (see ``DipMeasurements.covariance``).
 
@@ -720,164 +773,4 @@ def reflector_points(gathers, fits, ground=None, cross_component=None) -> Reflec
         kind=np.array(["zero_offset"] * g + ["receiver"] * npk, dtype=object),
         status=status[all_g],
         normal=np.concatenate([n, n[gid]]),
-    )
-
-
-# ---------------------------------------------------------------------------
-# Misties
-# ---------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class Misties:
-    """Reflector elevation differences where two lines cross.
-
-    ``mistie_m = elevation_a_m - elevation_b_m``; ``sigma_m`` combines the two
-    sides' standard errors in quadrature. Rows where one line has no
-    zero-offset coverage at the crossing have NaN values and a ``status``
-    saying which.
-    """
-
-    x_m: np.ndarray
-    y_m: np.ndarray
-    line_a: np.ndarray
-    line_b: np.ndarray
-    reflector: np.ndarray
-    chainage_a_m: np.ndarray
-    chainage_b_m: np.ndarray
-    elevation_a_m: np.ndarray
-    elevation_b_m: np.ndarray
-    mistie_m: np.ndarray
-    sigma_m: np.ndarray
-    status: np.ndarray
-
-    def __len__(self) -> int:
-        return len(self.x_m)
-
-
-def _intersection_points(geom) -> list:
-    """Point parts of a shapely intersection (shapely 1.8 and 2.x)."""
-    if geom.is_empty:
-        return []
-    kind = geom.geom_type
-    if kind == "Point":
-        return [(geom.x, geom.y)]
-    if kind in ("MultiPoint", "GeometryCollection"):
-        out = []
-        for part in geom.geoms:
-            out.extend(_intersection_points(part))
-        return out
-    return []  # overlapping (collinear) stretches have no single crossing point
-
-
-def _line_profile(frame, points, mask):
-    """Zero-offset points of one line/reflector sorted by chainage."""
-    idx = np.flatnonzero(mask)
-    if len(idx) == 0:
-        return None
-    ch, _ = frame.locate(points.x_m[idx], points.y_m[idx])
-    order = np.argsort(ch, kind="stable")
-    return ch[order], idx[order]
-
-
-def _value_at(profile, points, chain, x, y, max_gap):
-    """Elevation and sigma seen by one line at (x, y), chainage ``chain``."""
-    if profile is None:
-        return np.nan, np.nan, "no points"
-    ch, idx = profile
-    if len(ch) == 0 or chain < ch[0] or chain > ch[-1]:
-        return np.nan, np.nan, "beyond coverage"
-    hi = int(np.searchsorted(ch, chain, side="left"))
-    if ch[hi] == chain:
-        lo = hi
-    else:
-        lo = hi - 1
-    gap = ch[hi] - ch[lo]
-    if gap > max_gap:
-        return np.nan, np.nan, f"gap of {gap:.1f} m"
-
-    def carried(k):
-        # elevation of gather k's own plane at (x, y): n.(X - P) = 0
-        j = idx[k]
-        nx, ny, nz = points.normal[j]
-        return points.elevation_m[j] - (nx * (x - points.x_m[j]) + ny * (y - points.y_m[j])) / nz
-
-    if lo == hi:
-        return carried(hi), points.sigma_m[idx[hi]], "ok"
-    t = (chain - ch[lo]) / gap
-    z = (1 - t) * carried(lo) + t * carried(hi)
-    sig = (1 - t) * points.sigma_m[idx[lo]] + t * points.sigma_m[idx[hi]]
-    return z, sig, "ok"
-
-
-def line_misties(frames, points, max_gap_m=None) -> Misties:
-    """Misties of the reflector elevation at every crossing of two lines.
-
-    Crossings are the point intersections of the line polylines (shapely).
-    The elevation seen by a line at a crossing X is interpolated linearly in
-    chainage between the two zero-offset points of that line (and reflector)
-    that bracket X along the line, each first carried to X along its own
-    gather's fitted plane, :math:`z_k(X) = z_k - (n_x \\Delta x + n_y \\Delta
-    y)/n_z` (so on a planar reflector with the true normals the mistie is
-    zero even though the points lie off the line). The sigma of each side is
-    interpolated the same way (neighbouring gathers treated as fully
-    correlated, the cautious choice); the two sides combine in quadrature.
-
-    Parameters
-    ----------
-    frames : dict
-        ``line -> LineFrame`` (:func:`line_frames`).
-    points : ReflectorPoints
-        Only finite ``"zero_offset"`` rows are used.
-    max_gap_m : float, optional
-        Largest chainage gap between the bracketing points; default three
-        times the median spacing of that line's points. No value is given
-        beyond a line's first or last point, or across a larger gap.
-
-    Returns
-    -------
-    Misties
-        One row per (crossing, reflector seen on either line).
-    """
-    zo = (np.asarray(points.kind) == "zero_offset") & points.finite
-    p_line = np.asarray(points.line).astype(str)
-    p_refl = np.asarray(points.reflector).astype(str)
-    reflectors = _unique_in_order(p_refl[zo]) if zo.any() else []
-    profiles = {}
-    gaps = {}
-    for name, frame in frames.items():
-        for refl in reflectors:
-            prof = _line_profile(frame, points, zo & (p_line == name) & (p_refl == refl))
-            profiles[name, refl] = prof
-            if max_gap_m is not None:
-                gaps[name, refl] = float(max_gap_m)
-            elif prof is not None and len(prof[0]) > 1:
-                step = np.diff(prof[0])
-                step = step[step > 0]
-                gaps[name, refl] = 3.0 * float(np.median(step)) if len(step) else 0.0
-            else:
-                gaps[name, refl] = 0.0
-    rows = []
-    for a, b in combinations(list(frames), 2):
-        fa, fb = frames[a], frames[b]
-        crossing = fa.polyline.intersection(fb.polyline)
-        for x, y in _intersection_points(crossing):
-            ca = float(fa.locate(x, y)[0])
-            cb = float(fb.locate(x, y)[0])
-            for refl in reflectors:
-                prof_a, prof_b = profiles[a, refl], profiles[b, refl]
-                if prof_a is None and prof_b is None:
-                    continue
-                za, sa, why_a = _value_at(prof_a, points, ca, x, y, gaps[a, refl])
-                zb, sb, why_b = _value_at(prof_b, points, cb, x, y, gaps[b, refl])
-                reasons = [f"line {n}: {why}" for n, why in ((a, why_a), (b, why_b)) if why != "ok"]
-                rows.append((x, y, a, b, refl, ca, cb, za, zb, za - zb, np.hypot(sa, sb),
-                             "ok" if not reasons else "no value: " + "; ".join(reasons)))
-    cols = list(zip(*rows)) if rows else [[] for _ in range(12)]
-    f = lambda i: np.asarray(cols[i], dtype=float)  # noqa: E731
-    o = lambda i: np.asarray(cols[i], dtype=object)  # noqa: E731
-    return Misties(
-        x_m=f(0), y_m=f(1), line_a=o(2), line_b=o(3), reflector=o(4),
-        chainage_a_m=f(5), chainage_b_m=f(6), elevation_a_m=f(7), elevation_b_m=f(8),
-        mistie_m=f(9), sigma_m=f(10), status=o(11),
     )

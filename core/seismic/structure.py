@@ -1,4 +1,4 @@
-"""Dip and strike algebra: true dip from crossing lines, apparent dips, surface dips.
+r"""Dip and strike algebra: true dip from crossing lines, apparent dips, surface dips.
 
 Conventions (DESIGN.md s.3): azimuths clockwise from grid north in [0, 360);
 dip below horizontal in [0, 90); dip direction = azimuth toward which the
@@ -7,11 +7,11 @@ reflector deepens; strike by the right-hand rule, dip direction = strike + 90.
 Two different "dips along a line" must be kept apart (DESIGN.md s.4):
 
 * the **apparent dip** of the reflector's trace in a vertical section at angle
-  beta to the dip direction, :math:`\\tan\\alpha = \\tan\\delta\\cos\\beta`
+  beta to the dip direction, :math:`\tan\alpha = \tan\delta\cos\beta`
   (structural geology; e.g. Ragan 2009, ch. 2; Rowland et al. 2007, ch. 1 --
   cited from memory);
 * the **traveltime dip** a straight line's fit returns,
-  :math:`\\sin\\alpha_t = s = -\\mathbf u\\cdot\\mathbf n = \\sin\\delta\\cos\\beta`
+  :math:`\sin\alpha_t = s = -\mathbf u\cdot\mathbf n = \sin\delta\cos\beta`
   [Sheriff & Geldart 1995, ch. 4].
 
 They agree only along dip or for small dips.
@@ -36,6 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import InversionError
+from .geometry import gather_normals, vector_azimuth_deg
 
 __all__ = [
     "DipMeasurements",
@@ -84,14 +85,14 @@ def dip_direction_from_strike(strike_deg):
 
 
 def apparent_dip_deg(true_dip_deg, beta_deg):
-    """Apparent dip of a plane in a vertical section (structural geology).
+    r"""Apparent dip of a plane in a vertical section (structural geology).
 
-    .. math:: \\tan\\alpha = \\tan\\delta\\,\\cos\\beta
+    .. math:: \tan\alpha = \tan\delta\,\cos\beta
 
-    with true dip :math:`\\delta` and :math:`\\beta` the horizontal angle
+    with true dip :math:`\delta` and :math:`\beta` the horizontal angle
     between the section and the dip direction [Ragan 2009; Rowland et al.
     2007]. Signed: positive when the section's direction points down-dip
-    (:math:`|\\beta| < 90`).
+    (:math:`|\beta| < 90`).
 
     >>> round(float(apparent_dip_deg(30.0, 60.0)), 2)
     16.1
@@ -102,9 +103,9 @@ def apparent_dip_deg(true_dip_deg, beta_deg):
 
 
 def traveltime_dip_deg(true_dip_deg, beta_deg):
-    """Dip a straight line's traveltime fit sees: asin(sin(dip) cos(beta)).
+    r"""Dip a straight line's traveltime fit sees: asin(sin(dip) cos(beta)).
 
-    .. math:: \\sin\\alpha_t = s = \\sin\\delta\\,\\cos\\beta
+    .. math:: \sin\alpha_t = s = \sin\delta\,\cos\beta
 
     [Sheriff & Geldart 1995, ch. 4]. Not the apparent dip of
     :func:`apparent_dip_deg`.
@@ -115,10 +116,6 @@ def traveltime_dip_deg(true_dip_deg, beta_deg):
     dip = np.radians(np.asarray(true_dip_deg, dtype=float))
     beta = np.radians(np.asarray(beta_deg, dtype=float))
     return np.degrees(np.arcsin(np.sin(dip) * np.cos(beta)))
-
-
-def _azimuth_deg(vx, vy):
-    return np.degrees(np.arctan2(vx, vy)) % 360.0
 
 
 def _max_axial_angle_deg(u):
@@ -193,36 +190,34 @@ def _se_s(fits, g):
 
 def zero_offset_points_xy(gathers, fits) -> np.ndarray:
     """Horizontal position (g, 2) of each gather's zero-offset point S + h n."""
-    from .geometry import gather_normals
-
     n = gather_normals(gathers, fits)
     h = np.asarray(fits.normal_distance_m, dtype=float)
     return np.asarray(gathers.source_xyz_g, float)[:, :2] + h[:, None] * n[:, :2]
 
 
 def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_condition=None):
-    """True dip and dip direction where gathers of different line directions meet.
+    r"""True dip and dip direction where gathers of different line directions meet.
 
-    Each gather k with line unit :math:`\\mathbf u_k` fitted
-    :math:`s_k = -\\mathbf u_k\\cdot\\mathbf n`; only the horizontal part
-    :math:`\\mathbf n_h` of the downward normal enters, so a cluster of
+    Each gather k with line unit :math:`\mathbf u_k` fitted
+    :math:`s_k = -\mathbf u_k\cdot\mathbf n`; only the horizontal part
+    :math:`\mathbf n_h` of the downward normal enters, so a cluster of
     gathers with at least two line directions gives it by weighted least
     squares [Bevington & Robinson 2003]:
 
     .. math::
 
-        \\min_{\\mathbf n_h}\\sum_k \\frac{(s_k + \\mathbf u_k\\cdot\\mathbf n_h)^2}{\\sigma_{s,k}^2},
-        \\qquad \\sin\\delta = |\\mathbf n_h|,\\qquad
-        \\phi = \\operatorname{az}(-\\mathbf n_h)
+        \min_{\mathbf n_h}\sum_k \frac{(s_k + \mathbf u_k\cdot\mathbf n_h)^2}{\sigma_{s,k}^2},
+        \qquad \sin\delta = |\mathbf n_h|,\qquad
+        \phi = \operatorname{az}(-\mathbf n_h)
 
-    (DESIGN.md s.4). The covariance of :math:`\\mathbf n_h` is
-    :math:`(A^TWA)^{-1}`, multiplied by :math:`F = \\chi^2/(n-2)` when
-    :math:`\\chi^2` exceeds its 95 % quantile for n - 2 degrees of freedom,
+    (DESIGN.md s.4). The covariance of :math:`\mathbf n_h` is
+    :math:`(A^TWA)^{-1}`, multiplied by :math:`F = \chi^2/(n-2)` when
+    :math:`\chi^2` exceeds its 95 % quantile for n - 2 degrees of freedom,
     i.e. when the cluster's scatter is significantly larger than the
     gathers' stated errors (a reflector that is not planar across the
     cluster then widens the errors, while planar data keep nominal
     coverage); ``sigma_dip_deg`` and ``sigma_dip_direction_deg`` follow by
-    first-order propagation through :math:`\\delta = \\arcsin|\\mathbf n_h|`
+    first-order propagation through :math:`\delta = \arcsin|\mathbf n_h|`
     and the azimuth. Gathers of different fits are treated as independent.
 
     Clustering (per reflector): around every gather's zero-offset point the
@@ -233,7 +228,7 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     cluster whose line directions (axial: u and -u alike) span less than
     ``min_angle_deg``, or whose weighted design is worse conditioned than
     ``max_condition``, is flagged and gets no dip (NaN) instead of an
-    invented one. So is a cluster whose fitted :math:`|\\mathbf n_h|` is 1 or
+    invented one. So is a cluster whose fitted :math:`|\mathbf n_h|` is 1 or
     more (``nonphysical``) or within two standard errors of 1
     (``poorly_constrained``: the first-order errors no longer hold).
 
@@ -249,9 +244,9 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     min_angle_deg : float
         Least angle between two line directions of one cluster.
     max_condition : float, optional
-        Largest condition number :math:`\\sqrt{\\lambda_{max}/\\lambda_{min}}`
+        Largest condition number :math:`\sqrt{\lambda_{max}/\lambda_{min}}`
         of the weighted design matrix; default
-        :math:`2\\cot(\\theta_{min}/2)`, twice that of two equally weighted
+        :math:`2\cot(\theta_{min}/2)`, twice that of two equally weighted
         lines at the least angle (7.46 for 30 degrees).
 
     Returns
@@ -393,7 +388,7 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
             )
             continue
         out["dip_deg"][k] = np.degrees(np.arcsin(r))
-        out["dip_direction_deg"][k] = _azimuth_deg(-nh[0], -nh[1])
+        out["dip_direction_deg"][k] = vector_azimuth_deg(-nh[0], -nh[1])
         # first-order propagation: d(dip)/dn_h = n_h / (r sqrt(1 - r^2)); d(az)/dn_h = (n_y, -n_x) / r^2
         if r > 0:
             gd = nh / (r * np.sqrt(1.0 - r * r))
@@ -419,7 +414,7 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
 
 
 def cross_components(gathers, dips, max_distance_m=None) -> np.ndarray:
-    """Resolved cross-line component :math:`q_k = -\\mathbf w_k\\cdot\\mathbf n_h` per gather.
+    r"""Resolved cross-line component :math:`q_k = -\mathbf w_k\cdot\mathbf n_h` per gather.
 
     Uses the measurement each gather belongs to (``dips.gather_measurement``)
     when its status is ``"ok"``. With ``max_distance_m``, a gather outside
@@ -459,12 +454,12 @@ def cross_components(gathers, dips, max_distance_m=None) -> np.ndarray:
 
 def resolve_cross_dips(gathers, refit, fits=None, *, radius_m=None, min_angle_deg=30.0, max_condition=None,
                        max_distance_m=None, max_iter=8, tol=1e-9):
-    """Alternate :func:`combine_lines` and a refit with the resolved cross-line components.
+    r"""Alternate :func:`combine_lines` and a refit with the resolved cross-line components.
 
     A gather fitted with q assumed 0 has a slightly biased s where the
     receivers are not level with the source or not on a straight line (the
     image-source time involves q through the cross-line offsets and
-    :math:`c = \\sqrt{1-s^2-q^2}`), so the first combination is slightly off;
+    :math:`c = \sqrt{1-s^2-q^2}`), so the first combination is slightly off;
     refitting with the resolved q and combining again converges in a few
     rounds (a fixed-point iteration). Stops when no q changes by more than
     ``tol`` or after ``max_iter`` rounds.
@@ -531,11 +526,11 @@ class SurfaceDips:
 
 
 def surface_dips(x_m, y_m, z_grid, spacing_m, mask=None) -> SurfaceDips:
-    """Dip and dip direction of a gridded surface, sampled every ``spacing_m``.
+    r"""Dip and dip direction of a gridded surface, sampled every ``spacing_m``.
 
     .. math::
 
-        \\delta = \\arctan|\\nabla z|, \\qquad \\phi = \\operatorname{az}(-\\nabla z)
+        \delta = \arctan|\nabla z|, \qquad \phi = \operatorname{az}(-\nabla z)
 
     (DESIGN.md s.4) with the gradient by central differences in metres
     (``numpy.gradient`` with the axis coordinates, so a north-up grid with
@@ -595,7 +590,7 @@ def surface_dips(x_m, y_m, z_grid, spacing_m, mask=None) -> SurfaceDips:
         keep &= mask[jj, ii]
     jj, ii, gx, gy = jj[keep], ii[keep], gx[keep], gy[keep]
     dip = np.degrees(np.arctan(np.hypot(gx, gy)))
-    dd = _azimuth_deg(-gx, -gy)
+    dd = vector_azimuth_deg(-gx, -gy)
     return SurfaceDips(
         x_m=x[ii],
         y_m=y[jj],

@@ -2,7 +2,7 @@
 
 Data flow (one way)::
 
-    files --io--> Survey --geometry--> GatherSet --inversion--> GatherFits
+    files --survey readers--> Survey --geometry--> GatherSet --shot_fits--> ShotFits
           --geometry--> reflector points --structure/surface--> map products
 
 All arrays of one container have the same length; text columns are numpy

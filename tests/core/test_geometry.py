@@ -7,11 +7,12 @@ test; CRS checks against pyproj.
 """
 
 from dataclasses import dataclass, replace
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
 from rockhead.core.errors import InputFileError, SurveyConfigError
-from rockhead.core.seismic import forward, geometry, inversion, structure
+from rockhead.core.seismic import forward, geometry, misties, shot_fits, structure
 from rockhead.core.survey import inputs
 from rockhead.core.survey.model import Picks, Settings, Stations, Survey
 
@@ -422,7 +423,7 @@ def test_refit_with_resolved_cross_dip_puts_points_on_the_plane():
     # on hilly ground the q = 0 fits' s are slightly biased (0.018 deg of dip here),
     # so combine and refit alternate until q settles (structure.resolve_cross_dips)
     refit, dips, q, rounds = structure.resolve_cross_dips(
-        g, lambda q: inversion.fit_shot_gathers(g, survey.settings, cross_component=q)
+        g, lambda q: shot_fits.fit_shot_gathers(g, survey.settings, cross_component=q)
     )
     assert 1 <= rounds < 8
     np.testing.assert_allclose(dips.dip_deg[dips.ok], 14.0, atol=1e-6)
@@ -444,7 +445,7 @@ def test_two_lines_over_a_plane_have_no_mistie():
     frames = geometry.line_frames(survey.stations)
     g = geometry.build_gathers(survey, frames=frames)
     pts = geometry.reflector_points(g, truth_fits(g, normal, offset))
-    m = geometry.line_misties(frames, pts)
+    m = misties.line_misties(frames, pts)
     assert len(m) == 1 and m.status[0] == "ok"
     assert (m.line_a[0], m.line_b[0]) == ("A", "B")
     assert np.hypot(m.x_m[0], m.y_m[0]) == pytest.approx(0.0, abs=1e-9)  # the lines cross at the origin
@@ -466,9 +467,9 @@ def test_an_elevation_static_on_one_line_shows_as_the_mistie():
     frames = geometry.line_frames(survey.stations)
     g = geometry.build_gathers(survey, frames=frames)
     refit, _, _, _ = structure.resolve_cross_dips(
-        g, lambda q: inversion.fit_shot_gathers(g, survey.settings, cross_component=q), max_distance_m=500.0
+        g, lambda q: shot_fits.fit_shot_gathers(g, survey.settings, cross_component=q), max_distance_m=500.0
     )
-    m = geometry.line_misties(frames, geometry.reflector_points(g, refit))
+    m = misties.line_misties(frames, geometry.reflector_points(g, refit))
     assert m.status[0] == "ok"
     assert m.mistie_m[0] == pytest.approx(-0.30, abs=1e-3)
     z_plane = float(forward.plane_elevation(0.0, 0.0, normal, offset))
@@ -488,13 +489,13 @@ def test_mistie_needs_coverage_on_both_lines():
     frames = geometry.line_frames(survey.stations)
     g = geometry.build_gathers(survey, frames=frames)
     pts = geometry.reflector_points(g, truth_fits(g, normal, offset))
-    m = geometry.line_misties(frames, pts)
+    m = misties.line_misties(frames, pts)
     assert len(m) == 1
     assert m.elevation_a_m[0] == pytest.approx(-45.0, abs=1e-9)
     assert np.isnan(m.elevation_b_m[0]) and np.isnan(m.mistie_m[0])
     assert "line B: beyond coverage" in m.status[0]
     # a gap wider than max_gap_m also gives no value
-    m2 = geometry.line_misties(frames, pts, max_gap_m=1.0)
+    m2 = misties.line_misties(frames, pts, max_gap_m=1.0)
     assert "gap of" in m2.status[0] or "beyond" in m2.status[0]
 
 
@@ -507,7 +508,7 @@ def _run(survey):
     frames = geometry.line_frames(survey.stations)
     g = geometry.build_gathers(survey, frames=frames)
     fits, dips, _, _ = structure.resolve_cross_dips(
-        g, lambda q: inversion.fit_shot_gathers(g, survey.settings, cross_component=q)
+        g, lambda q: shot_fits.fit_shot_gathers(g, survey.settings, cross_component=q)
     )
     return g, dips, geometry.reflector_points(g, fits)
 
@@ -564,3 +565,43 @@ def test_same_survey_in_lonlat_and_utm_gives_the_same_results(tmp_path):
     np.testing.assert_allclose(d1.dip_deg[d1.ok], 14.0, atol=0.01)  # and both are the truth
     np.testing.assert_allclose(d1.dip_direction_deg[d1.ok], 110.0, atol=0.01)
     np.testing.assert_allclose(p2.xyz, p1.xyz, atol=0.01)
+
+
+@pytest.mark.parametrize(
+    ("east", "north", "azimuth"),
+    [(0.0, 1.0, 0.0), (1.0, 1.0, 45.0), (1.0, 0.0, 90.0), (0.0, -1.0, 180.0), (-1.0, 0.0, 270.0),
+     (-1e-12, 1.0, 360.0 - np.degrees(1e-12)), (-1.0, -np.sqrt(3.0), 210.0)],
+    ids=["N", "NE", "E", "S", "W", "just-W-of-N", "SSW"],
+)
+def test_vector_azimuth_is_clockwise_from_north(east, north, azimuth):
+    # compass convention (common practice): clockwise from grid north, in [0, 360)
+    got = float(geometry.vector_azimuth_deg(east, north))
+    assert 0.0 <= got < 360.0
+    assert got == pytest.approx(azimuth, abs=1e-9)  # arctan2 in double precision
+
+
+def test_gather_normals_one_formula_for_fits_and_overrides(rng):
+    # the normal of a plane dipping `dip` toward azimuth `ddir` is -(sin dip d, cos dip) with d the
+    # horizontal unit vector of the dip direction (plane geometry, e.g. Sheriff & Geldart 1995 ch. 4);
+    # s = -u.n and q = -w.n come from it, and gather_normals must rebuild n from (s, q, u, w)
+    g = 50
+    dip, ddir = np.radians(rng.uniform(0, 60, g)), np.radians(rng.uniform(0, 360, g))
+    n_true = np.column_stack([-np.sin(dip) * np.sin(ddir), -np.sin(dip) * np.cos(ddir), -np.cos(dip)])
+    az = np.radians(rng.uniform(0, 360, g))
+    u = np.column_stack([np.sin(az), np.cos(az)])
+    w = np.column_stack([u[:, 1], -u[:, 0]])
+    s = -np.sum(u * n_true[:, :2], axis=1)
+    q = -np.sum(w * n_true[:, :2], axis=1)
+    gs = SimpleNamespace(n_gathers=g, line_unit=u, cross_unit=w)
+    np.testing.assert_allclose(geometry.gather_normals(gs, SimpleNamespace(s_along=s, cross_component=q)), n_true,
+                               atol=1e-12)
+    np.testing.assert_allclose(geometry.gather_normals(gs, SimpleNamespace(s_along=s), cross_component=q), n_true,
+                               atol=1e-12)
+    # no cross component known: level across the line (q = 0), still a unit vector
+    level = geometry.gather_normals(gs, SimpleNamespace(s_along=s, cross_component=np.full(g, np.nan)))
+    np.testing.assert_allclose(np.linalg.norm(level, axis=1), 1.0, atol=1e-12)
+    np.testing.assert_allclose(-np.sum(level[:, :2] * w, axis=1), 0.0, atol=1e-12)
+    # impossible components (s^2 + q^2 > 1) and failed fits give no normal at all
+    bad = geometry.gather_normals(gs, SimpleNamespace(s_along=np.r_[0.9, np.nan, s[2:]]),
+                                  cross_component=np.r_[0.9, 0.0, q[2:]])
+    assert np.all(np.isnan(bad[:2])) and np.all(np.isfinite(bad[2:]))

@@ -1,4 +1,4 @@
-"""Tests of the batched per-gather inversion (core/inversion.py).
+"""Tests of the batched per-gather fits (core/seismic: shot_fits, cmp, dix, gather_fit, robust, lm).
 
 Checks are against published relations (Green 1938, Sheriff & Geldart 1995,
 Levin 1971, Dix 1955, Huber 1981), exact forward-model round trips through
@@ -10,8 +10,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from rockhead.core.errors import CancelledError, InversionError, RockheadError
-from rockhead.core.seismic import forward
-from rockhead.core.seismic import inversion as inv
+from rockhead.core.seismic import cmp, dix, forward, gather_fit, geometry, lm, robust, shot_fits
 from rockhead.core.survey.model import GatherSet, Settings
 
 SIGMA = 5e-4  # 0.5 ms pick error, the project default
@@ -138,14 +137,14 @@ def test_noise_free_round_trip_exact_3d(rng, spread):
     # stopping rule (a kept step under 1e-6 in ln V, ln h; Gauss-Newton contracts quadratically on
     # exact data) limits the agreement.
     gs, tr = make_gathers(rng, 200, spread=spread)
-    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
     assert np.all(fit.status == "ok"), fit.reason[fit.status != "ok"]
     np.testing.assert_allclose(fit.velocity_m_s, tr["V"], rtol=1e-6)
     np.testing.assert_allclose(fit.normal_distance_m, tr["h"], rtol=1e-6)
     np.testing.assert_allclose(fit.s_along, tr["s"], rtol=0, atol=1e-6)
     # the full downward normal is rebuilt from s, q and the line frame
     np.testing.assert_allclose(fit.normal(gs), tr["n"], atol=1e-6)
-    np.testing.assert_allclose(inv.gather_normals(gs, fit), tr["n"], atol=1e-6)
+    np.testing.assert_allclose(geometry.gather_normals(gs, fit), tr["n"], atol=1e-6)
     # t0 = 2h/V by definition (Green 1938)
     np.testing.assert_allclose(fit.t0_s, 2 * tr["h"] / tr["V"], rtol=1e-6)
     # noise-free: residuals vanish (1e-9 s, a millionth of a millisecond), nothing rejected
@@ -172,8 +171,8 @@ def test_picks_in_any_order(rng):
         gs.source_xyz_g,
         gs.spread_length_m,
     )
-    a = inv.fit_shot_gathers(gs, cross_component=tr["q"])
-    b = inv.fit_shot_gathers(shuffled, cross_component=tr["q"])
+    a = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
+    b = shot_fits.fit_shot_gathers(shuffled, cross_component=tr["q"])
     # equal up to the iteration's stopping rule (steps < 1e-6 in ln V, kept only as the iteration
     # contracts, leaving ~1e-8; allow 5e-7): the sums run in another order. Residuals then agree
     # to t * 5e-7 with t < 0.1 s.
@@ -188,7 +187,7 @@ def test_green_1938_horizontal_t2_x2():
     x = np.arange(-46.0, 47.0, 2.0)
     t = np.sqrt(x**2 + 4 * 25.0**2) / 1800.0
     slope, intercept = np.polyfit(x**2, t**2, 1)
-    fit = inv.fit_shot_gathers(straight_line_gather(x, t))
+    fit = shot_fits.fit_shot_gathers(straight_line_gather(x, t))
     assert fit.status[0] == "ok"
     assert fit.velocity_m_s[0] == pytest.approx(slope**-0.5, rel=1e-8)
     assert fit.t0_s[0] == pytest.approx(np.sqrt(intercept), rel=1e-8)
@@ -203,7 +202,7 @@ def test_sheriff_geldart_dipping_quadratic(s, q):
     # component q drops out of the image-source model, so any q must recover the same (V, h, s).
     x = np.arange(2.0, 98.0, 2.0)  # end-on
     t = forward.line_traveltime(x, 35.0, s, 2400.0)
-    fit = inv.fit_shot_gathers(straight_line_gather(x, t), cross_component=q)
+    fit = shot_fits.fit_shot_gathers(straight_line_gather(x, t), cross_component=q)
     assert fit.status[0] == "ok"
     assert fit.velocity_m_s[0] == pytest.approx(2400.0, rel=1e-7)
     assert fit.normal_distance_m[0] == pytest.approx(35.0, rel=1e-7)
@@ -215,7 +214,7 @@ def test_common_practice_t0_of_40_m_at_3000_m_s():
     # Common practice (from memory): a reflector 40 m down at 3000 m/s comes back at 26.7 ms.
     x = np.arange(-47.0, 48.0, 2.0)
     t = forward.line_traveltime(x, 40.0, 0.0, 3000.0)
-    fit = inv.fit_shot_gathers(straight_line_gather(x, t))
+    fit = shot_fits.fit_shot_gathers(straight_line_gather(x, t))
     assert round(fit.t0_s[0] * 1e3, 1) == 26.7
 
 
@@ -241,7 +240,7 @@ def test_levin_1971_cmp_velocity_exact(dip, beta):
     S = mid - 0.5 * x[:, None] * u
     R = mid + 0.5 * x[:, None] * u
     t = forward.image_source_traveltime(S, R, n, d, V)
-    fit = inv.fit_cmp_gathers(np.zeros(len(x), int), x, t, np.full(len(x), SIGMA))
+    fit = cmp.fit_cmp_gathers(np.zeros(len(x), int), x, t, np.full(len(x), SIGMA))
     sd, cb = np.sin(np.radians(dip)), np.cos(np.radians(beta))
     assert fit.status[0] == "ok"
     assert fit.nmo_velocity_m_s[0] == pytest.approx(V / np.sqrt(1 - (sd * cb) ** 2), rel=1e-7)
@@ -265,7 +264,7 @@ def test_cmp_batch_with_rejection_and_status(rng):
         tt += list(t)
     tt = np.array(tt)
     tt[5] += 0.012  # mispick in gather 0
-    fit = inv.fit_cmp_gathers(np.array(gid), np.array(off), tt, np.full(len(tt), SIGMA))
+    fit = cmp.fit_cmp_gathers(np.array(gid), np.array(off), tt, np.full(len(tt), SIGMA))
     assert fit.status.tolist() == ["ok", "ok", "too_few_picks"]
     assert fit.rejected[5] and fit.picks_rejected[0] == 1
     assert fit.residual_s[5] == pytest.approx(0.012, abs=5 * SIGMA)  # reported, not dropped
@@ -281,7 +280,7 @@ def test_dix_1955_three_layers_exact():
     z = np.array([12.0, 25.0, 40.0])
     v = np.array([800.0, 1900.0, 3200.0])
     t0, vrms = forward.layered_t0_vrms(z, v)
-    r = inv.dix_intervals(t0[::-1], vrms[::-1])  # any input order
+    r = dix.dix_intervals(t0[::-1], vrms[::-1])  # any input order
     np.testing.assert_allclose(r.interval_velocity_m_s, v, rtol=1e-12)
     np.testing.assert_allclose(r.thickness_m, z, rtol=1e-12)
     np.testing.assert_allclose(r.depth_base_m, np.cumsum(z), rtol=1e-12)
@@ -306,7 +305,7 @@ def test_dix_1955_from_fitted_short_spread_vrms():
             gid += [k] * len(x)
             off += list(x)
             tt += list(forward.layered_reflection_traveltime(x, z[: k + 1], v[: k + 1]))
-        fit = inv.fit_cmp_gathers(np.array(gid), np.array(off), np.array(tt), np.full(len(tt), 1e-5))
+        fit = cmp.fit_cmp_gathers(np.array(gid), np.array(off), np.array(tt), np.full(len(tt), 1e-5))
         errs[frac], fits[frac] = np.abs(fit.nmo_velocity_m_s / vrms - 1), fit
         np.testing.assert_allclose(fit.t0_s, t0, rtol=1e-4)
     # one homogeneous layer: the hyperbola is exact (Green 1938)
@@ -316,7 +315,7 @@ def test_dix_1955_from_fitted_short_spread_vrms():
     assert np.all(errs[0.15][1:] < errs[0.3][1:])
     # Dix on the fitted t0 and NMO velocities recovers the interval velocities within 3 %
     # (the 0.04 % velocity bias is amplified by the Dix differencing, 1/(1 - t_{k-1}/t_k))
-    r = inv.dix_intervals(fits[0.15].t0_s, fits[0.15].nmo_velocity_m_s)
+    r = dix.dix_intervals(fits[0.15].t0_s, fits[0.15].nmo_velocity_m_s)
     np.testing.assert_allclose(r.interval_velocity_m_s, v, rtol=0.03)
     np.testing.assert_allclose(r.thickness_m, z, rtol=0.03)
 
@@ -327,8 +326,8 @@ def test_dix_errors_match_monte_carlo(rng):
     t0 = np.array([0.03, 0.05, 0.08])
     vr = np.array([1000.0, 1500.0, 2100.0])
     st_, sv = np.array([2e-4, 2e-4, 3e-4]), np.array([10.0, 12.0, 15.0])
-    r = inv.dix_intervals(t0, vr, st_, sv)
-    draws = [inv.dix_intervals(t0 + st_ * rng.normal(size=3), vr + sv * rng.normal(size=3)) for _ in range(4000)]
+    r = dix.dix_intervals(t0, vr, st_, sv)
+    draws = [dix.dix_intervals(t0 + st_ * rng.normal(size=3), vr + sv * rng.normal(size=3)) for _ in range(4000)]
     vi = np.array([d.interval_velocity_m_s for d in draws])
     zz = np.array([d.thickness_m for d in draws])
     dd = np.array([d.depth_base_m for d in draws])
@@ -340,7 +339,7 @@ def test_dix_errors_match_monte_carlo(rng):
 def test_dix_nonphysical_flagged_not_hidden():
     # V_rms^2 t0 must grow downward (Dix 1955); a sharp rms velocity drop gives a negative
     # interval velocity squared, which is flagged with a reason (NaN values, not clipped)
-    r = inv.dix_intervals([0.02, 0.04, 0.06], [2000.0, 1000.0, 1500.0])
+    r = dix.dix_intervals([0.02, 0.04, 0.06], [2000.0, 1000.0, 1500.0])
     assert list(r.status) == ["ok", "nonphysical", "ok"]
     assert np.isnan(r.interval_velocity_m_s[1]) and np.isnan(r.depth_base_m[2])
     assert "negative interval velocity squared" in r.reason[1]
@@ -358,7 +357,7 @@ def test_standard_error_coverage(loss):
     # only inflates, which moves the expectation up by ~1-2 points.)
     rng = np.random.default_rng(7)
     gs, tr = make_gathers(rng, 400, noise_s=SIGMA)
-    fit = inv.fit_shot_gathers(gs, Settings(robust_loss=loss), cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, Settings(robust_loss=loss), cross_component=tr["q"])
     assert np.all(fit.status == "ok")
     for est, se, true in [
         (fit.velocity_m_s, fit.se_velocity_m_s, tr["V"]),
@@ -376,7 +375,7 @@ def test_understated_pick_errors_widen_the_errors():
     # picks 3x noisier than stated: the a-posteriori factor (~9) widens the SEs, coverage stays honest
     rng = np.random.default_rng(11)
     gs, tr = make_gathers(rng, 400, noise_s=3 * SIGMA)
-    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
     assert np.median(fit.variance_factor) == pytest.approx(9.0, rel=0.15)
     cover = np.mean(np.abs(fit.velocity_m_s - tr["V"]) < fit.se_velocity_m_s)
     assert 0.61 <= cover <= 0.78, cover
@@ -387,8 +386,8 @@ def test_understated_pick_errors_widen_the_errors():
 def test_huber_variance_inflation_matches_known_efficiency():
     # Huber (1981): with k = 1.345 the Huber M-estimator has 95 % efficiency at the normal
     # (common practice, from memory), i.e. a variance inflation of 1/0.95.
-    assert inv._loss_variance_inflation("huber", 1.345) == pytest.approx(1 / 0.95, abs=2e-3)
-    assert inv._loss_variance_inflation("linear", 1.0) == 1.0
+    assert robust.variance_inflation("huber", 1.345) == pytest.approx(1 / 0.95, abs=2e-3)
+    assert robust.variance_inflation("linear", 1.0) == 1.0
 
 
 # --------------------------------------------------------------------------- mispicks, exclusions
@@ -420,7 +419,7 @@ def test_mispicks_rejected_and_reported():
         gs.source_xyz_g,
         gs.spread_length_m,
     )
-    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
     assert np.all(fit.status == "ok")
     assert np.all(fit.rejected[bad])
     assert fit.rejected[~bad].mean() < 0.002  # false rejections: ~6e-5 expected at 4 sigma
@@ -440,7 +439,7 @@ def test_user_exclusions_counted_apart(rng):
     gs, tr = make_gathers(rng, 10, npick=24, noise_s=SIGMA)
     exclude = np.zeros(len(gs.time_s), bool)
     exclude[[0, 1, 30]] = True
-    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"], exclude=exclude)
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"], exclude=exclude)
     assert fit.picks_excluded.tolist() == [2, 1] + [0] * 8
     assert not fit.rejected[exclude].any() and np.all(fit.excluded == exclude)
     assert np.all(fit.weight[exclude] == 0) and np.all(np.isfinite(fit.residual_s[exclude]))
@@ -461,10 +460,10 @@ def test_user_exclusions_counted_apart(rng):
         gs.source_xyz_g,
         gs.spread_length_m,
     )
-    ref = inv.fit_shot_gathers(sub, cross_component=tr["q"])
+    ref = shot_fits.fit_shot_gathers(sub, cross_component=tr["q"])
     np.testing.assert_allclose(fit.velocity_m_s, ref.velocity_m_s, rtol=5e-7)  # stopping rule, as above
     with pytest.raises(InversionError, match="one flag per pick"):
-        inv.fit_shot_gathers(gs, exclude=exclude[:-1])
+        shot_fits.fit_shot_gathers(gs, exclude=exclude[:-1])
 
 
 # --------------------------------------------------------------------------- status and reasons
@@ -486,7 +485,7 @@ def test_flagged_gathers_leave_the_batch_unaffected(rng):
     same_x = straight_line_gather(np.full(10, 20.0), np.full(10, 0.03))  # one offset, ten picks
     batch = concat(good, few, falling, fast, tiny, same_x)
     q = np.concatenate([tr["q"], np.zeros(5)])
-    fit = inv.fit_shot_gathers(batch, cross_component=q)
+    fit = shot_fits.fit_shot_gathers(batch, cross_component=q)
     assert fit.status.tolist() == ["ok"] * 3 + [
         "too_few_picks",
         "nonphysical",
@@ -503,7 +502,7 @@ def test_flagged_gathers_leave_the_batch_unaffected(rng):
     assert np.isfinite(fit.velocity_m_s[5])  # flagged gathers keep their best values
     # the good gathers come out as when fitted alone: every gather is its own problem (row-wise
     # sums only); 1e-7 leaves room for rounding that differs with a row's place in a BLAS kernel
-    alone = inv.fit_shot_gathers(good, cross_component=tr["q"])
+    alone = shot_fits.fit_shot_gathers(good, cross_component=tr["q"])
     np.testing.assert_allclose(fit.velocity_m_s[:3], alone.velocity_m_s, rtol=1e-7)
     np.testing.assert_allclose(fit.covariance[:3], alone.covariance, rtol=1e-6)
     assert list(fit.status[:3]) == list(alone.status)
@@ -515,25 +514,25 @@ def test_well_spread_gathers_are_well_conditioned(rng):
     # The condition number grows like (h / x_max)^4, so a factor 30 below the limit still leaves
     # room for spreads more than twice as short.
     gs, tr = make_gathers(rng, 200, spread="end_on", depth=(20.0, 80.0), noise_s=SIGMA)
-    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
     assert np.all(fit.status == "ok")
-    assert np.all(fit.condition_number < inv.CONDITION_LIMIT / 30)
+    assert np.all(fit.condition_number < gather_fit.CONDITION_LIMIT / 30)
     # and a split spread with offsets up to a fifteenth of h is flagged (geometry, no noise)
     x = np.linspace(-80.0 / 15, 80.0 / 15, 24)
-    short = inv.fit_shot_gathers(straight_line_gather(x, forward.line_traveltime(x, 80.0, 0.1, 2000.0)))
-    assert short.status[0] == "ill_conditioned" and short.condition_number[0] > inv.CONDITION_LIMIT
+    short = shot_fits.fit_shot_gathers(straight_line_gather(x, forward.line_traveltime(x, 80.0, 0.1, 2000.0)))
+    assert short.status[0] == "ill_conditioned" and short.condition_number[0] > gather_fit.CONDITION_LIMIT
 
 
 def test_bad_settings_and_inputs(rng):
     gs, _ = make_gathers(rng, 2, npick=10)
     with pytest.raises(InversionError, match="robust_loss = 'l3'"):
-        inv.fit_shot_gathers(gs, Settings(robust_loss="l3"))
+        shot_fits.fit_shot_gathers(gs, Settings(robust_loss="l3"))
     with pytest.raises(InversionError, match="robust_scale"):
-        inv.fit_shot_gathers(gs, Settings(robust_scale=0.0))
+        shot_fits.fit_shot_gathers(gs, Settings(robust_scale=0.0))
     with pytest.raises(InversionError, match=r"cross_component 1.2 .*\|q\| < 1"):
-        inv.fit_shot_gathers(gs, cross_component=1.2)
+        shot_fits.fit_shot_gathers(gs, cross_component=1.2)
     # NaN = not resolved: fitted as level across the line, and reported as the 0 used
-    fit = inv.fit_shot_gathers(gs, cross_component=[np.nan, 0.2])
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=[np.nan, 0.2])
     assert fit.cross_component.tolist() == [0.0, 0.2]
     bad = GatherSet(
         gs.gather,
@@ -551,7 +550,37 @@ def test_bad_settings_and_inputs(rng):
         gs.spread_length_m,
     )
     with pytest.raises(InversionError, match=r"pick \(row in the picks table\) 4 has pick error -1.0"):
-        inv.fit_shot_gathers(bad)
+        shot_fits.fit_shot_gathers(bad)
+
+
+def test_wrong_shapes_are_project_errors(rng):
+    # every argument that does not fit the picks is refused with the project's error naming it,
+    # never a bare numpy broadcasting error
+    gs, _ = make_gathers(rng, 2, npick=10)
+    with pytest.raises(InversionError, match=r"cross_component has shape \(3,\); expected one value or one per gather"):
+        shot_fits.fit_shot_gathers(gs, cross_component=[0.0, 0.1, 0.2])
+    with pytest.raises(InversionError, match=r"cross_component has shape \(3,\)"):
+        shot_fits.linear_start(gs, [0.0, 0.1, 0.2])
+    with pytest.raises(InversionError, match=r"se_vrms_m_s has shape \(3,\); expected one value or one per reflector"):
+        dix.dix_intervals([0.02, 0.05], [1000.0, 1500.0], se_vrms_m_s=[1.0, 2.0, 3.0])
+    xy = np.zeros((4, 2))
+    with pytest.raises(InversionError, match=r"source_xy \(4,\) and receiver_xy \(4, 2\) must have the same shape"):
+        cmp.cmp_bins(np.zeros(4), xy, 1.0)
+    with pytest.raises(InversionError, match=r"line_unit has shape \(3,\); expected \(2,\) or \(4, 2\)"):
+        cmp.cmp_bins(xy, xy + 1.0, 1.0, line_unit=[1.0, 0.0, 0.0])
+    with pytest.raises(InversionError, match=r"group has shape \(2,\); expected one label per pick"):
+        cmp.cmp_bins(xy, xy + 1.0, 1.0, group=["a", "b"])
+    with pytest.raises(InversionError, match=r"bin_size_m = 'two' must be a positive distance"):
+        cmp.cmp_bins(xy, xy + 1.0, "two")
+
+
+def test_linear_start_is_the_t2_x2_line_of_a_dipping_layer():
+    # flat straight split spread over a dipping plane: t^2 V^2 = x^2 + 4 h s x + 4 h^2 is exactly
+    # linear in (x^2, x, 1), so the weighted linear fit returns V, h and s to rounding (Green 1938
+    # for s = 0; the dipping-layer quadratic, Sheriff & Geldart 1995 ch. 4)
+    x = np.arange(-47.5, 48.0, 2.5)
+    gs = straight_line_gather(x, forward.line_traveltime(x, 30.0, 0.2, 1800.0))
+    np.testing.assert_allclose(shot_fits.linear_start(gs)[0], [1800.0, 30.0, 0.2], rtol=1e-9)
 
 
 def test_cancel_is_honoured(rng):
@@ -568,7 +597,7 @@ def test_cancel_is_honoured(rng):
             pass
 
     with pytest.raises(CancelledError):
-        inv.fit_shot_gathers(gs, progress=Cancelled())
+        shot_fits.fit_shot_gathers(gs, progress=Cancelled())
 
 
 def test_progress_reaches_100(rng):
@@ -585,7 +614,7 @@ def test_progress_reaches_100(rng):
         def info(self, m):
             pass
 
-    inv.fit_shot_gathers(gs, cross_component=tr["q"], progress=Rec())
+    shot_fits.fit_shot_gathers(gs, cross_component=tr["q"], progress=Rec())
     assert seen[-1] == 100 and seen == sorted(seen)
 
 
@@ -637,7 +666,7 @@ def test_property_fit_or_flag(npick, spacing, spread, depth, dip, velocity, nois
             noise_s=noise,
         )
     try:
-        fit = inv.fit_shot_gathers(gs, Settings(robust_loss=loss), cross_component=tr["q"])
+        fit = shot_fits.fit_shot_gathers(gs, Settings(robust_loss=loss), cross_component=tr["q"])
     except RockheadError:
         return
     assert fit.status[0] in ("ok", "too_few_picks", "nonphysical", "ill_conditioned", "not_converged")
@@ -656,12 +685,12 @@ def test_cmp_bins_by_hand():
     # midpoints 5, 15, 15, 16.5, 17.5, 31: bins [5, 7), [15, 17), [17, 19), [31, 33)
     s = np.array([[0.0, 0.0], [0.0, 0.0], [10.0, 0.0], [13.0, 0.0], [15.0, 0.0], [30.0, 0.0]])
     r = np.array([[10.0, 0.0], [30.0, 0.0], [20.0, 0.0], [20.0, 0.0], [20.0, 0.0], [32.0, 0.0]])
-    gid, centres, off = inv.cmp_bins(s, r, 2.0)
+    gid, centres, off = cmp.cmp_bins(s, r, 2.0)
     assert gid.tolist() == [0, 1, 1, 1, 2, 3]
     np.testing.assert_allclose(centres[:, 0], [5.0, (15.0 + 15.0 + 16.5) / 3, 17.5, 31.0])
     np.testing.assert_allclose(off, [10.0, 30.0, 10.0, 7.0, 5.0, 2.0])
     # separate lines never share a bin
-    gid2, _, _ = inv.cmp_bins(s, r, 100.0, group=["a", "a", "b", "b", "b", "b"])
+    gid2, _, _ = cmp.cmp_bins(s, r, 100.0, group=["a", "a", "b", "b", "b", "b"])
     assert gid2.tolist() == [0, 0, 1, 1, 1, 1]
 
 
@@ -679,8 +708,8 @@ def test_cmp_bins_then_levin_fit(rng):
     Sx = np.column_stack([S, np.zeros_like(S), np.zeros_like(S)])
     Rx = np.column_stack([R, np.zeros_like(R), np.zeros_like(R)])
     t = forward.image_source_traveltime(Sx, Rx, n, d, V)
-    gid, _, off = inv.cmp_bins(Sx[:, :2], Rx[:, :2], 1.0, line_unit=[1.0, 0.0])
-    fit = inv.fit_cmp_gathers(gid, off, t, np.full(len(t), SIGMA))
+    gid, _, off = cmp.cmp_bins(Sx[:, :2], Rx[:, :2], 1.0, line_unit=[1.0, 0.0])
+    fit = cmp.fit_cmp_gathers(gid, off, t, np.full(len(t), SIGMA))
     ok = fit.status == "ok"
     assert ok.sum() > 50
     np.testing.assert_allclose(fit.nmo_velocity_m_s[ok], V / np.cos(np.radians(dip)), rtol=1e-7)
@@ -688,9 +717,9 @@ def test_cmp_bins_then_levin_fit(rng):
 
 def test_not_converged_is_flagged(rng, monkeypatch):
     # an iteration budget of one step cannot reach the tolerance from the linear start
-    monkeypatch.setattr(inv, "_MAX_ITER", 1)
+    monkeypatch.setattr(lm, "MAX_ITERATIONS", 1)
     gs, tr = make_gathers(rng, 3, noise_s=SIGMA)
-    fit = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
     assert list(fit.status) == ["not_converged"] * 3
     assert all("did not converge" in r for r in fit.reason)
     assert np.all(np.isfinite(fit.velocity_m_s))  # best values kept for inspection
@@ -703,9 +732,9 @@ def test_empty_inputs(rng):
         *(a[:0] for a in (gs.line, gs.shot, gs.reflector, gs.line_unit, gs.cross_unit, gs.source_xyz_g)),
         gs.spread_length_m[:0],
     )
-    assert len(inv.fit_shot_gathers(empty)) == 0
-    assert len(inv.fit_cmp_gathers(np.zeros(0, int), [], [], [])) == 0
-    gid, centres, off = inv.cmp_bins(np.zeros((0, 2)), np.zeros((0, 2)), 1.0)
+    assert len(shot_fits.fit_shot_gathers(empty)) == 0
+    assert len(cmp.fit_cmp_gathers(np.zeros(0, int), [], [], [])) == 0
+    gid, centres, off = cmp.cmp_bins(np.zeros((0, 2)), np.zeros((0, 2)), 1.0)
     assert gid.shape == (0,) and centres.shape == (0, 2) and off.shape == (0,)
 
 
@@ -736,7 +765,7 @@ def test_same_minimum_as_scipy_least_squares(loss):
         gs.spread_length_m,
     )
     st = Settings(robust_loss=loss, reject_sigma=np.inf)
-    fit = inv.fit_shot_gathers(gs, st, cross_component=tr["q"])
+    fit = shot_fits.fit_shot_gathers(gs, st, cross_component=tr["q"])
     assert np.all(fit.status == "ok")
     for k in range(20):
         m = gs.gather == k
@@ -778,7 +807,7 @@ def test_cmp_standard_error_coverage():
     gid = np.repeat(np.arange(g), len(x))
     off = np.tile(x, g)
     t = forward.cmp_traveltime(off, t0[gid], vn[gid]) + rng.normal(0.0, SIGMA, len(off))
-    fit = inv.fit_cmp_gathers(gid, off, t, np.full(len(t), SIGMA))
+    fit = cmp.fit_cmp_gathers(gid, off, t, np.full(len(t), SIGMA))
     assert np.all(fit.status == "ok")
     for est, se, true in [(fit.t0_s, fit.se_t0_s, t0), (fit.nmo_velocity_m_s, fit.se_nmo_velocity_m_s, vn)]:
         cover = np.mean(np.abs(est - true) < se)
@@ -789,11 +818,11 @@ def test_blocks_and_threads_give_the_same_answer(rng, monkeypatch):
     # the engine splits the gathers into cache-sized blocks run in threads: small blocks, one or
     # several threads, all must give the same results (each gather is its own problem)
     gs, tr = make_gathers(rng, 300, npick=24, noise_s=SIGMA)
-    monkeypatch.setattr(inv, "_MAX_THREADS", 1)
-    ref = inv.fit_shot_gathers(gs, cross_component=tr["q"])
-    monkeypatch.setattr(inv, "_BLOCK_ELEMENTS", 24 * 37)  # 37 gathers per block, uneven last block
-    monkeypatch.setattr(inv, "_workers", lambda: 3)
-    alt = inv.fit_shot_gathers(gs, cross_component=tr["q"])
+    monkeypatch.setattr(lm, "MAX_THREADS", 1)
+    ref = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
+    monkeypatch.setattr(lm, "BLOCK_ELEMENTS", 24 * 37)  # 37 gathers per block, uneven last block
+    monkeypatch.setattr(lm, "worker_count", lambda: 3)
+    alt = shot_fits.fit_shot_gathers(gs, cross_component=tr["q"])
     np.testing.assert_allclose(alt.velocity_m_s, ref.velocity_m_s, rtol=1e-7)  # BLAS row rounding only
     np.testing.assert_array_equal(alt.status, ref.status)
     np.testing.assert_array_equal(alt.rejected, ref.rejected)

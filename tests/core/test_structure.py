@@ -10,7 +10,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pytest
 from rockhead.core.errors import InversionError
-from rockhead.core.seismic import forward, geometry, inversion, structure
+from rockhead.core.seismic import forward, geometry, shot_fits, structure
 from rockhead.core.survey.model import Picks, Settings, Stations, Survey
 
 # ---------------------------------------------------------------------------
@@ -212,7 +212,7 @@ CASES = [
 def test_combine_recovers_true_dip_noise_free(dip, dip_dir, az, angle):
     survey, planes = crossing_survey(dip, dip_dir, [az, az + angle])
     gathers = geometry.build_gathers(survey)
-    fits = inversion.fit_shot_gathers(gathers, survey.settings)
+    fits = shot_fits.fit_shot_gathers(gathers, survey.settings)
     dips = structure.combine_lines(gathers, fits)
     ok = dips.ok
     # round trip through the real inversion: it converges to ~1e-10 in s, so 0.01 deg is
@@ -238,7 +238,7 @@ def test_combine_recovers_true_dip_noise_free(dip, dip_dir, az, angle):
 def test_cross_components_can_borrow_the_nearest_measurement():
     survey, planes = crossing_survey(20.0, 130.0, [20.0, 80.0])
     gathers = geometry.build_gathers(survey)
-    fits = inversion.fit_shot_gathers(gathers, survey.settings)
+    fits = shot_fits.fit_shot_gathers(gathers, survey.settings)
     dips = structure.combine_lines(gathers, fits)
     q = structure.cross_components(gathers, dips, max_distance_m=1000.0)
     q_true = -gathers.cross_unit @ planes[0][0][:2]
@@ -258,7 +258,7 @@ def test_combine_errors_cover_the_truth_at_the_nominal_rate(rng):
     sites = [(3000.0 * (i % 20), 3000.0 * (i // 20)) for i in range(n_sites)]
     survey, _ = crossing_survey(20.0, 130.0, [20.0, 80.0], sites=sites, noise_s=2.5e-4, rng=rng)
     gathers = geometry.build_gathers(survey)
-    fits = inversion.fit_shot_gathers(gathers, survey.settings)
+    fits = shot_fits.fit_shot_gathers(gathers, survey.settings)
     dips = structure.combine_lines(gathers, fits)
     ok = dips.ok
     assert ok.sum() == n_sites
@@ -276,7 +276,7 @@ def test_combine_errors_cover_the_truth_at_the_nominal_rate(rng):
 def test_nearly_parallel_lines_are_flagged_without_a_dip(angle):
     survey, _ = crossing_survey(20.0, 130.0, [20.0, 20.0 + angle], max_offset_m=40.0)
     gathers = geometry.build_gathers(survey)
-    fits = inversion.fit_shot_gathers(gathers, survey.settings)
+    fits = shot_fits.fit_shot_gathers(gathers, survey.settings)
     dips = structure.combine_lines(gathers, fits, min_angle_deg=30.0)
     assert len(dips) > 0
     assert not dips.ok.any()
@@ -291,7 +291,7 @@ def test_nearly_parallel_lines_are_flagged_without_a_dip(angle):
 def test_single_line_is_flagged_without_a_dip():
     survey, _ = crossing_survey(20.0, 130.0, [20.0])
     gathers = geometry.build_gathers(survey)
-    fits = inversion.fit_shot_gathers(gathers, survey.settings)
+    fits = shot_fits.fit_shot_gathers(gathers, survey.settings)
     dips = structure.combine_lines(gathers, fits)
     assert len(dips) > 0 and set(dips.status) == {"single_direction"}
     assert np.all(np.isnan(dips.dip_deg))

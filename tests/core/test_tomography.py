@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from rockhead.core.errors import CancelledError, InversionError
 from rockhead.core.seismic import forward
-from rockhead.core.seismic.inversion import fit_shot_gathers
+from rockhead.core.seismic.shot_fits import fit_shot_gathers
 from rockhead.core.survey.model import GatherSet, Settings
 from rockhead.core.tomography import joint as tm
 from scipy import stats

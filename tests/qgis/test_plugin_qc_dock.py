@@ -7,7 +7,7 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsProject, QgsVectorLayer
 from qgis.PyQt.QtCore import Qt
-from rockhead.core.seismic import inversion
+from rockhead.core.seismic import shot_fits
 from rockhead.plugin.qc_dock import GatherQc, QcDock
 
 
@@ -73,7 +73,7 @@ def test_panel_shows_selected_shot_and_refit_updates_layer(iface, sample_survey,
     # gathers are independent: the others keep their values (to the last bits of threaded batches)
     np.testing.assert_allclose(after.velocity_m_s[others], before[others], rtol=1e-12)
     # the same numbers as the core given the same exclusions
-    ref = inversion.fit_shot_gathers(dock.qc.gathers, dock.qc.survey.settings, exclude=dock.qc.exclude)
+    ref = shot_fits.fit_shot_gathers(dock.qc.gathers, dock.qc.survey.settings, exclude=dock.qc.exclude)
     assert after.velocity_m_s[g] == pytest.approx(ref.velocity_m_s[g], rel=1e-12)
     # the shots layer now holds the refitted values
     feat = next(
