@@ -12,6 +12,7 @@ import numpy as np
 from shapely.geometry import LineString, Point
 
 from ..formats.gpkg import Layer
+from ..seismic.geometry import vector_azimuth_deg
 
 __all__ = [
     "boreholes_layer",
@@ -108,7 +109,7 @@ def shots_layer(gathers, fits, tomography=None) -> Layer:
             "picks_excluded": fits.picks_excluded.astype(np.int64),
             "variance_factor": fits.variance_factor,
             "source_z_m": src[:, 2],
-            "line_azimuth_deg": np.degrees(np.arctan2(gathers.line_unit[:, 0], gathers.line_unit[:, 1])) % 360.0,
+            "line_azimuth_deg": vector_azimuth_deg(gathers.line_unit[:, 0], gathers.line_unit[:, 1]),
             "spread_length_m": gathers.spread_length_m,
             "site_velocity_flag": flag,
             "note": note.astype(str),
