@@ -43,9 +43,11 @@ def _import_package():
     from _common import import_package
 
     import_package()
-    from rockhead.core.surface import interpolation as surface
+    from rockhead.core.grid import GridSpec
+    from rockhead.core.surface.kriging import OrdinaryKriging
+    from rockhead.core.surface.variogram import VariogramModel
 
-    return surface
+    return GridSpec, OrdinaryKriging, VariogramModel
 
 
 def _data(n, seed=1, size=1000.0):
@@ -67,7 +69,7 @@ def _best(fn, repeat):
 
 
 def run(quick=False, append=True):
-    surface = _import_package()
+    GridSpec, OrdinaryKriging, VariogramModel = _import_package()
     import pykrige
     from pykrige.ok import OrdinaryKriging as PyKrigeOK
 
@@ -76,7 +78,7 @@ def run(quick=False, append=True):
     except ImportError:
         gs = None
 
-    vario = surface.VariogramModel("spherical", nugget=0.01, sill=1.0, range_m=300.0)
+    vario = VariogramModel("spherical", nugget=0.01, sill=1.0, range_m=300.0)
     pk_params = {"psill": vario.sill, "range": vario.range_m, "nugget": vario.nugget}
     k = 32
     if quick:
@@ -90,9 +92,9 @@ def run(quick=False, append=True):
     start_load = _load()
     for n, side, subset in local_cases:
         x, y, z = _data(n)
-        spec = surface.GridSpec(x0=2.0, y0=998.0, cell_size_m=996.0 / (side - 1), nx=side, ny=side)
+        spec = GridSpec(x0=2.0, y0=998.0, cell_size_m=996.0 / (side - 1), nx=side, ny=side)
         gx, gy = spec.coords()
-        ours = surface.OrdinaryKriging(vario, neighbours=k)
+        ours = OrdinaryKriging(vario, neighbours=k)
 
         def our_run(ours=ours, x=x, y=y, z=z, spec=spec):
             ours.fit(x, y, z)
@@ -115,9 +117,9 @@ def run(quick=False, append=True):
         print(rows[-1], flush=True)
     for n, side in global_cases:
         x, y, z = _data(n)
-        spec = surface.GridSpec(x0=2.0, y0=998.0, cell_size_m=996.0 / (side - 1), nx=side, ny=side)
+        spec = GridSpec(x0=2.0, y0=998.0, cell_size_m=996.0 / (side - 1), nx=side, ny=side)
         gx, gy = spec.coords()
-        ours = surface.OrdinaryKriging(vario, neighbours=None)
+        ours = OrdinaryKriging(vario, neighbours=None)
 
         def our_run(ours=ours, x=x, y=y, z=z, spec=spec):
             ours.fit(x, y, z)

@@ -2,7 +2,7 @@
 
 Each case runs in its own Python process (so its peak resident memory,
 ``resource.getrusage(RUSAGE_SELF).ru_maxrss``, is that case's alone) and times
-the stages of ``core.surface.interpolate_surface``:
+the stages of ``core.surface.gridding.interpolate_surface``:
 
 * variogram: experimental variogram (5000-point subsample), fit of three
   models, choice by leave-one-out log score on 2000 points;
@@ -43,9 +43,10 @@ def _import_package():
     from _common import import_package
 
     import_package()
-    from rockhead.core.surface import interpolation as surface
+    from rockhead.core.grid import GridSpec
+    from rockhead.core.surface.kriging import OrdinaryKriging, choose_variogram
 
-    return surface
+    return GridSpec, OrdinaryKriging, choose_variogram
 
 
 def _rss_mib():
@@ -55,7 +56,7 @@ def _rss_mib():
 
 
 def child(n_points, n_cells):
-    surface = _import_package()
+    GridSpec, OrdinaryKriging, choose_variogram = _import_package()
     rng = np.random.default_rng(3)
     side_m = 10.0 * np.sqrt(n_points)
     x = rng.uniform(0.0, side_m, n_points)
@@ -65,15 +66,15 @@ def child(n_points, n_cells):
     e = np.full(n_points, 0.09)
     nside = round(float(np.sqrt(n_cells)))
     cell = side_m / nside
-    spec = surface.GridSpec(x0=cell / 2, y0=side_m - cell / 2, cell_size_m=cell, nx=nside, ny=nside)
+    spec = GridSpec(x0=cell / 2, y0=side_m - cell / 2, cell_size_m=cell, nx=nside, ny=nside)
     base = _rss_mib()
     out = {"n_points": n_points, "n_cells": spec.size, "base_rss_mib": base}
     t = time.perf_counter()
-    vario, _ = surface.choose_variogram(x, y, z, e, "auto", neighbours=32)
+    vario, _ = choose_variogram(x, y, z, e, "auto", neighbours=32)
     out["t_variogram"] = time.perf_counter() - t
     out["model"] = vario.model
     t = time.perf_counter()
-    ok = surface.OrdinaryKriging(vario, neighbours=32).fit(x, y, z, e)
+    ok = OrdinaryKriging(vario, neighbours=32).fit(x, y, z, e)
     out["t_fit"] = time.perf_counter() - t
     t = time.perf_counter()
     cv = ok.cross_validate(max_points=20000)

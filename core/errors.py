@@ -61,6 +61,28 @@ class InversionError(RockheadError):
     """A fit that cannot be set up at all (not a flagged gather: those carry a status)."""
 
 
+class SurfaceError(RockheadError, ValueError):
+    """Data or a setting the surface step cannot grid (points, variogram, kriging, spline).
+
+    Also a :class:`ValueError` (it reports a bad value), so ``except ValueError``
+    catches it too.
+    """
+
+
+class GridError(RockheadError, ValueError):
+    """A raster grid that cannot be built (cell size, origin, shape, extent).
+
+    Also a :class:`ValueError`, as :class:`SurfaceError`.
+    """
+
+
+class NotFittedError(RockheadError, RuntimeError):
+    """A fitted model (kriging, spline) used before its ``fit``.
+
+    Also a :class:`RuntimeError` (a call out of order, not a bad value).
+    """
+
+
 class OutputError(RockheadError):
     """An output cannot be written (folder not writable, output equals an input, ...)."""
 

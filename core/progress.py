@@ -10,8 +10,22 @@ and raise :class:`~.errors.CancelledError` rather than return partial results.
 from __future__ import annotations
 
 import sys
+from typing import Protocol
 
 from .errors import CancelledError
+
+
+class Progress(Protocol):
+    """What the core needs of a progress sink (for type hints; any such object works)."""
+
+    def set_progress(self, percent: float) -> None:
+        """Report ``percent`` (0-100) done."""
+
+    def is_canceled(self) -> bool:
+        """Whether the user asked to stop."""
+
+    def info(self, message: str) -> None:
+        """Show a message."""
 
 
 class NullProgress:

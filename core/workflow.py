@@ -29,8 +29,8 @@ from .seismic.geometry import build_gathers, line_frames, reflector_points
 from .seismic.misties import line_misties
 from .seismic.shot_fits import fit_shot_gathers
 from .seismic.structure import combine_lines, surface_dips
+from .surface.base import SurfaceGrid
 from .surface.contours import contours_layer
-from .surface.interpolation import SurfaceGrid
 from .surface.trend import grid_with_trend, predict_with_trend
 from .survey.ground import GroundModel
 from .tomography.joint import curvature_flags, invert_reflector, robust_site_velocity, surface_values

@@ -3,10 +3,17 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
+from typing import Any, Optional, Union
 
 import numpy as np
+from numpy.typing import ArrayLike
 
-from .interpolation import OrdinaryKriging, SurfaceGrid, ThinPlateSpline, interpolate_surface
+from ..grid import GridSpec
+from ..progress import Progress
+from .base import SurfaceGrid
+from .gridding import interpolate_surface
+from .kriging import OrdinaryKriging
+from .spline import ThinPlateSpline
 
 __all__ = ["NoTrend", "PlaneTrend", "fit_trend", "grid_with_trend", "predict_with_trend"]
 
@@ -19,8 +26,19 @@ class PlaneTrend:
     experimental variogram grows like the square of the lag and no bounded
     model fits it. Kriging the residuals from the plane (residual kriging
     with a linear drift; Journel & Huijbregts 1978, ch. V) gives a variogram
-    that levels off and an honest standard deviation. ``coef`` = (a, b, c),
-    weights 1/sigma^2.
+    that levels off and an honest standard deviation.
+
+    Attributes
+    ----------
+    x0, y0 : float
+        Easting and northing (m) of the plane's reference point (the data mean).
+    coef : tuple of float
+        (a, b, c): elevation at the reference point (m) and the slopes
+        dz/dx and dz/dy (m/m).
+
+    >>> t = PlaneTrend.fit(np.array([0.0, 10, 0]), np.array([0.0, 0, 10]), np.array([5.0, 6, 3]), np.ones(3))
+    >>> [round(c, 9) for c in t.coef], round(float(t(10.0, 10.0)), 9)
+    ([4.666666667, 0.1, -0.2], 4.0)
     """
 
     x0: float
@@ -28,14 +46,30 @@ class PlaneTrend:
     coef: tuple
 
     @classmethod
-    def fit(cls, x, y, z, sigma):
+    def fit(cls, x: np.ndarray, y: np.ndarray, z: np.ndarray, sigma: ArrayLike) -> PlaneTrend:
+        """Fit the plane with weights 1/sigma^2 (sigma floored at 1 mm).
+
+        Parameters
+        ----------
+        x, y : ndarray (n,)
+            Easting and northing of the data (m).
+        z : ndarray (n,)
+            Elevations (m).
+        sigma : array_like (n,)
+            Standard error of each elevation (m).
+
+        Returns
+        -------
+        PlaneTrend
+        """
         x0, y0 = float(np.mean(x)), float(np.mean(y))
         w = 1.0 / np.maximum(np.asarray(sigma, float), 1e-3)
         a = np.column_stack([np.ones_like(x), x - x0, y - y0]) * w[:, None]
         coef = np.linalg.lstsq(a, z * w, rcond=None)[0]
         return cls(x0, y0, tuple(float(c) for c in coef))
 
-    def __call__(self, x, y):
+    def __call__(self, x: ArrayLike, y: ArrayLike) -> np.ndarray:
+        """Elevation of the plane (m) at easting ``x`` and northing ``y`` (m)."""
         a, b, c = self.coef
         return a + b * (np.asarray(x, float) - self.x0) + c * (np.asarray(y, float) - self.y0)
 
@@ -45,24 +79,76 @@ class NoTrend:
 
     coef = (0.0, 0.0, 0.0)
 
-    def __call__(self, x, y):
+    def __call__(self, x: ArrayLike, y: ArrayLike) -> np.ndarray:
+        """Zeros (m) of the broadcast shape of ``x`` and ``y``."""
         return np.zeros(np.broadcast(np.asarray(x), np.asarray(y)).shape)
 
 
-def fit_trend(settings, x, y, z, s):
-    """The plane of ``settings.trend = "linear"`` (with at least 3 points), else no trend."""
+def fit_trend(
+    settings: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, s: ArrayLike
+) -> Union[PlaneTrend, NoTrend]:
+    """Fit the trend the settings ask for.
+
+    Parameters
+    ----------
+    settings : Settings
+        ``settings.trend`` is "linear" (a plane) or "none" (``[processing] trend``).
+    x, y : ndarray (n,)
+        Easting and northing of the data (m).
+    z : ndarray (n,)
+        Elevations (m).
+    s : array_like (n,)
+        Standard error of each elevation (m).
+
+    Returns
+    -------
+    PlaneTrend or NoTrend
+        The plane with ``trend = "linear"`` and at least 3 points, else no trend.
+    """
     return PlaneTrend.fit(x, y, z, s) if settings.trend == "linear" and len(x) >= 3 else NoTrend()
 
 
-def grid_with_trend(x, y, z, s, spec, settings, method="kriging", progress=None):
+def grid_with_trend(
+    x: np.ndarray,
+    y: np.ndarray,
+    z: np.ndarray,
+    s: np.ndarray,
+    spec: GridSpec,
+    settings: Any,
+    method: str = "kriging",
+    progress: Optional[Progress] = None,
+) -> tuple[SurfaceGrid, dict[str, Any]]:
     """Interpolate (x, y, z) with sigma s onto ``spec``: trend removed, residuals gridded, trend added back.
 
     With ``variogram_model = "auto"`` the surface module fits each model and
     keeps the one with the best leave-one-out mean logarithmic score (a
     proper scoring rule: small residuals *and* honest standard deviations;
-    Gneiting & Raftery 2007). Returns
-    ``(SurfaceGrid, diagnostics)``; the diagnostics carry the ``trend``, the
-    ``variogram_scores`` and a cross-validation expressed in elevations.
+    Gneiting & Raftery 2007).
+
+    Parameters
+    ----------
+    x, y : ndarray (n,)
+        Easting and northing of the reflector points (m).
+    z : ndarray (n,)
+        Reflector elevation (m).
+    s : ndarray (n,)
+        Standard error of each elevation (m).
+    spec : GridSpec
+        The output grid.
+    settings : Settings
+        Uses ``trend``, ``neighbours``, ``variogram_model`` and ``max_distance_m``.
+    method : str
+        "kriging" or "spline".
+    progress : Progress, optional
+        Progress sink; cancellation is checked between chunks.
+
+    Returns
+    -------
+    surface : SurfaceGrid
+        Elevation (m) with the trend added back, and its std (m).
+    diagnostics : dict
+        Those of :func:`~.gridding.interpolate_surface`, plus ``trend``; the
+        ``cross_validation`` estimates are elevations (trend added back).
     """
     trend = fit_trend(settings, x, y, z, s)
     surf, diag = interpolate_surface(
@@ -79,10 +165,44 @@ def grid_with_trend(x, y, z, s, spec, settings, method="kriging", progress=None)
     return SurfaceGrid(spec, z_grid, surf.std, surf.mask, surf.method, surf.n_data), diag
 
 
-def predict_with_trend(x, y, z, s, diag, settings, x_new, y_new):
-    """Estimate and standard deviation at points, with the model and trend of ``diag``."""
+def predict_with_trend(
+    x: np.ndarray,
+    y: np.ndarray,
+    z: np.ndarray,
+    s: np.ndarray,
+    diag: dict[str, Any],
+    settings: Any,
+    x_new: ArrayLike,
+    y_new: ArrayLike,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Estimate and standard deviation at points, with the model and trend of ``diag``.
+
+    Parameters
+    ----------
+    x, y : ndarray (n,)
+        Easting and northing of the data (m).
+    z : ndarray (n,)
+        Elevations (m).
+    s : ndarray (n,)
+        Standard error of each elevation (m).
+    diag : dict
+        Diagnostics of :func:`grid_with_trend` (its ``trend`` and ``variogram``;
+        without a variogram the spline is refitted).
+    settings : Settings
+        Uses ``neighbours``.
+    x_new, y_new : array_like
+        Easting and northing of the targets (m).
+
+    Returns
+    -------
+    estimate : ndarray
+        Elevation (m) with the trend added back.
+    std : ndarray
+        Its standard deviation (m); NaN for the spline.
+    """
     trend = diag.get("trend") or NoTrend()
     r = z - trend(x, y)
+    model: Union[OrdinaryKriging, ThinPlateSpline]
     if diag.get("variogram") is not None:
         model = OrdinaryKriging(diag["variogram"], neighbours=settings.neighbours).fit(x, y, r, s**2)
     else:

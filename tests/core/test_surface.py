@@ -10,17 +10,11 @@ import math
 import numpy as np
 import pytest
 from rockhead.core.errors import CancelledError, InversionError, RockheadWarning
-from rockhead.core.surface.interpolation import (
-    GridSpec,
-    OrdinaryKriging,
-    ThinPlateSpline,
-    VariogramModel,
-    choose_variogram,
-    cross_validate,
-    experimental_variogram,
-    fit_variogram,
-    interpolate_surface,
-)
+from rockhead.core.grid import GridSpec
+from rockhead.core.surface.gridding import cross_validate, interpolate_surface
+from rockhead.core.surface.kriging import OrdinaryKriging, choose_variogram
+from rockhead.core.surface.spline import ThinPlateSpline
+from rockhead.core.surface.variogram import VariogramModel, experimental_variogram, fit_variogram
 
 
 @pytest.fixture
