@@ -123,7 +123,7 @@ def check_points(
         i = int(np.flatnonzero(bad)[0])
         raise SurfaceError(
             f"{int(bad.sum())} data point(s) have NaN or infinite x, y or z (first at index {i}: "
-            f"x={xa[i]!r}, y={ya[i]!r}, z={za[i]!r}); drop them before interpolating"
+            f"x={float(xa[i])!r}, y={float(ya[i])!r}, z={float(za[i])!r}); drop them before interpolating"
         )
     if error_variance is None:
         e = np.zeros_like(za)
@@ -133,7 +133,7 @@ def check_points(
         if badv.any():
             i = int(np.flatnonzero(badv)[0])
             raise SurfaceError(
-                f"error_variance must be finite and >= 0 (m^2), got {e[i]!r} at index {i}; "
+                f"error_variance must be finite and >= 0 (m^2), got {float(e[i])!r} at index {i}; "
                 "give sigma_m**2 per datum, 0 for an exact datum"
             )
     return xa, ya, za, e
@@ -219,7 +219,7 @@ def distance_mask(
 
 @dataclass(frozen=True)
 class CrossValidation:
-    """Held-out (leave-one-out or k-fold) residuals of an interpolator.
+    r"""Held-out (leave-one-out or k-fold) residuals of an interpolator.
 
     Attributes
     ----------
@@ -228,7 +228,7 @@ class CrossValidation:
     residual : ndarray (n,)
         Datum minus estimate (m).
     std : ndarray (n,)
-        Standard deviation of the residual (m): :math:`\\sqrt{\\sigma_K^2 + e_i}`
+        Standard deviation of the residual (m): :math:`\sqrt{\sigma_K^2 + e_i}`
         (kriging variance of the signal plus the datum's own measurement error);
         NaN for the spline.
     standardised : ndarray (n,)
@@ -244,7 +244,7 @@ class CrossValidation:
         Fraction of ``|standardised| <= 2`` (about 0.954 for Gaussian errors).
     mean_log_score : float
         Mean negative Gaussian log predictive density,
-        :math:`\\tfrac12\\overline{\\log(2\\pi s_i^2) + r_i^2/s_i^2}`, a proper
+        :math:`\tfrac12\overline{\log(2\pi s_i^2) + r_i^2/s_i^2}`, a proper
         scoring rule that rewards both small residuals and honest std
         ([Gneiting & Raftery 2007]); lower is better. NaN without std.
     index : ndarray of int

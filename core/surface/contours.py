@@ -16,11 +16,16 @@ memory).
 from __future__ import annotations
 
 import math
-from typing import List, Sequence, Tuple
+from typing import TYPE_CHECKING, Any, List, Optional, Tuple
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import MissingDependencyError, OutputError
+from ..grid import next_nice_step, nice_step
+
+if TYPE_CHECKING:
+    from ..formats.gpkg import Layer
 
 __all__ = ["contour_levels", "contour_lines", "contours_layer", "nice_interval"]
 
@@ -29,8 +34,27 @@ def nice_interval(zmin: float, zmax: float, target_count: int = 10) -> float:
     """Round contour interval (1, 2 or 5 times a power of ten) giving about ``target_count`` lines.
 
     The interval is the smallest value of the 1-2-5 sequence not below
-    ``(zmax - zmin) / target_count``, so there are at most ``target_count``
-    (+1) lines and at least about ``target_count / 2.5``.
+    ``(zmax - zmin) / target_count`` (the steps of
+    :func:`~rockhead.core.grid.nice_step`), so there are at most
+    ``target_count`` (+1) lines and at least about ``target_count / 2.5``.
+
+    Parameters
+    ----------
+    zmin, zmax : float
+        Range of the gridded values (m), ``zmax > zmin``.
+    target_count : int
+        Most contour lines wanted, >= 1.
+
+    Returns
+    -------
+    float
+        Contour interval (m), the decimal value of its step (``5e-06``, not
+        the binary product ``5 * 10.0**-6``).
+
+    Raises
+    ------
+    OutputError
+        An empty or non-finite range, or ``target_count`` < 1.
 
     >>> nice_interval(203.7, 241.2), nice_interval(0.0, 100.0), nice_interval(4.0, 4.7, 10)
     (5.0, 10.0, 0.1)
@@ -43,16 +67,35 @@ def nice_interval(zmin: float, zmax: float, target_count: int = 10) -> float:
     if target_count < 1:
         raise OutputError(f"target_count={target_count!r}; expected at least 1")
     raw = span / target_count
-    exp = math.floor(math.log10(raw))
-    for mant in (1.0, 2.0, 5.0, 10.0):
-        step = float(f"{mant}e{exp}")
-        if step >= raw * (1 - 1e-12):
-            return step
-    return float(f"1e{exp + 1}")  # pragma: no cover - the loop always returns
+    # 12 significant digits give a step's decimal value (1e-05, not 9.999999999999999e-06)
+    step = float(f"{nice_step(raw):.12g}")  # the largest step not above raw (within 1e-12) ...
+    if step < raw * (1 - 1e-12):
+        step = float(f"{next_nice_step(step):.12g}")  # ... or the next one up
+    return step
 
 
 def contour_levels(zmin: float, zmax: float, interval: float) -> Tuple[np.ndarray, np.ndarray]:
-    """Multiples of ``interval`` within [zmin, zmax], and their integer multipliers.
+    """Return the multiples of ``interval`` within [zmin, zmax], and their integer multipliers.
+
+    Parameters
+    ----------
+    zmin, zmax : float
+        Range of the gridded values (m).
+    interval : float
+        Contour interval (m), > 0.
+
+    Returns
+    -------
+    levels : ndarray of float
+        Contour values (m), each printed to 12 significant digits and read
+        back, so 0.3 and not 0.30000000000000004.
+    multipliers : ndarray of int
+        ``levels / interval``.
+
+    Raises
+    ------
+    OutputError
+        A non-positive interval, or more than 10,000 levels.
 
     >>> lv, k = contour_levels(203.7, 241.2, 5.0)
     >>> lv.tolist(), k.tolist()
@@ -73,7 +116,7 @@ def contour_levels(zmin: float, zmax: float, interval: float) -> Tuple[np.ndarra
     return levels, k
 
 
-def _generator(x, y, z):
+def _generator(x: np.ndarray, y: np.ndarray, z: np.ndarray) -> Any:
     try:
         import contourpy
     except ImportError as exc:
@@ -88,23 +131,26 @@ def _generator(x, y, z):
     )
 
 
-def contour_lines(x_centres, y_centres, z, levels: Sequence[float]) -> List[Tuple[float, object]]:
+def contour_lines(
+    x_centres: ArrayLike, y_centres: ArrayLike, z: ArrayLike, levels: ArrayLike
+) -> List[Tuple[float, Any]]:
     """Trace contour lines of a grid.
 
     Parameters
     ----------
-    x_centres : array-like, shape (nx,)
-        Easting of the cell centres (grid nodes), strictly monotonic.
-    y_centres : array-like, shape (ny,)
-        Northing of the cell centres, strictly monotonic.
-    z : array-like, shape (ny, nx)
-        Values, NaN where the surface is undefined.
-    levels : sequence of float
-        Contour values.
+    x_centres : array_like (nx,)
+        Easting of the cell centres (grid nodes, m), strictly monotonic.
+    y_centres : array_like (ny,)
+        Northing of the cell centres (m), strictly monotonic.
+    z : array_like (ny, nx)
+        Values (m), NaN where the surface is undefined.
+    levels : array_like of float
+        Contour values (same unit as ``z``).
 
     Returns
     -------
     list of (float, shapely.geometry.LineString)
+        The level and the line, coordinates in the grid's CRS (m).
         One entry per connected line, in level order; a closed loop has its
         first vertex repeated at the end. A level touching the surface in a
         single point gives no line.
@@ -128,7 +174,7 @@ def contour_lines(x_centres, y_centres, z, levels: Sequence[float]) -> List[Tupl
         return []
     gen = _generator(x, y, z)
     out = []
-    for level in levels:
+    for level in np.asarray(levels, dtype=float).ravel():
         for seg in gen.lines(float(level)):
             seg = np.asarray(seg, dtype=float)
             # a line through a grid node repeats that vertex: keep one copy
@@ -141,26 +187,26 @@ def contour_lines(x_centres, y_centres, z, levels: Sequence[float]) -> List[Tupl
 
 
 def contours_layer(
-    x_centres,
-    y_centres,
-    elevation_m=None,
-    depth_m=None,
+    x_centres: ArrayLike,
+    y_centres: ArrayLike,
+    elevation_m: Optional[ArrayLike] = None,
+    depth_m: Optional[ArrayLike] = None,
     *,
     elevation_interval_m: float | None = None,
     depth_interval_m: float | None = None,
     index_every: int = 5,
     target_count: int = 10,
-):
-    """The ``contours`` layer: elevation and depth contours of gridded surfaces.
+) -> Layer:
+    """Build the ``contours`` layer: elevation and depth contours of gridded surfaces.
 
     Parameters
     ----------
-    x_centres, y_centres : array-like
-        Grid node coordinates (see :func:`contour_lines`).
-    elevation_m, depth_m : array-like (ny, nx), optional
-        Reflector elevation and depth below ground; either may be omitted.
+    x_centres, y_centres : array_like
+        Grid node coordinates (m; see :func:`contour_lines`).
+    elevation_m, depth_m : array_like (ny, nx), optional
+        Reflector elevation and depth below ground (m); either may be omitted.
     elevation_interval_m, depth_interval_m : float, optional
-        Contour intervals; default :func:`nice_interval` of the grid's range.
+        Contour intervals (m); default :func:`nice_interval` of the grid's range.
     index_every : int
         Every ``index_every``-th level (counted from zero) is an index contour.
     target_count : int
@@ -168,7 +214,7 @@ def contours_layer(
 
     Returns
     -------
-    rockhead.core.gpkg.Layer
+    rockhead.core.formats.gpkg.Layer
         LINESTRING features with fields ``kind`` (``"elevation"`` or
         ``"depth"``), ``elevation_m`` (NaN on depth contours), ``depth_m``
         (NaN on elevation contours) and ``index`` (bool).
@@ -184,15 +230,15 @@ def contours_layer(
     ):
         if grid is None:
             continue
-        grid = np.asarray(grid, dtype=float)
-        finite = grid[np.isfinite(grid)]
+        values = np.asarray(grid, dtype=float)
+        finite = values[np.isfinite(values)]
         if finite.size == 0 or finite.min() == finite.max():
             continue
         zmin, zmax = float(finite.min()), float(finite.max())
         step = interval if interval is not None else nice_interval(zmin, zmax, target_count)
         levels, mult = contour_levels(zmin, zmax, step)
         is_index = dict(zip(levels.tolist(), (mult % index_every == 0).tolist()))
-        for level, line in contour_lines(x_centres, y_centres, grid, levels):
+        for level, line in contour_lines(x_centres, y_centres, values, levels):
             geoms.append(line)
             kinds.append(kind)
             elev.append(level if kind == "elevation" else np.nan)

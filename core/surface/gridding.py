@@ -186,7 +186,7 @@ def interpolate_surface(
         sig = np.asarray(sigma, dtype=float)
         if np.any(sig < 0):
             raise SurfaceError(
-                f"sigma must be >= 0 (m), got {sig[sig < 0].ravel()[0]!r}; give the standard error of "
+                f"sigma must be >= 0 (m), got {float(sig[sig < 0].ravel()[0])!r}; give the standard error of "
                 "each elevation, 0 for an exact one"
             )
         e = np.square(sig)

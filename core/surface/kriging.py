@@ -345,9 +345,9 @@ class OrdinaryKriging:
             if exact.any():
                 i, j = pairs[np.flatnonzero(exact)[0]]
                 raise InversionError(
-                    f"data {i} and {j} are at the same location ({self.x_[i]!r}, {self.y_[i]!r}) and both "
-                    "have zero error variance, so the kriging system is singular; average them, or give "
-                    "them an error variance"
+                    f"data {i} and {j} are at the same location ({float(self.x_[i])!r}, "
+                    f"{float(self.y_[i])!r}) and both have zero error variance, so the kriging system is "
+                    "singular; average them, or give them an error variance"
                 )
 
     def _check_fitted(self) -> None:

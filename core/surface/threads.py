@@ -121,15 +121,14 @@ class SingleThreadedBlas:
             _blas_depth += 1
         return self
 
-    def __exit__(self, *exc: object) -> bool:
-        """Restore the saved thread counts (on the last exit); never swallow an error."""
+    def __exit__(self, *exc: object) -> None:
+        """Restore the saved thread counts (on the last exit); an error passes on."""
         global _blas_depth
         with _blas_lock:
             _blas_depth -= 1
             if _blas_depth == 0:
                 for fset, n in _blas_saved:
                     fset(max(1, n))
-        return False
 
 
 def default_thread_count() -> int:
@@ -215,7 +214,7 @@ def _run_threads(
         return out
     with ThreadPoolExecutor(max_workers=threads) as pool:
         # submit in bounded waves so memory stays ~threads x chunk
-        pending: dict[int, Future] = {}
+        pending: dict[int, Future[Any]] = {}
         nxt = 0
         done = 0
         try:

@@ -43,7 +43,7 @@ class PlaneTrend:
 
     x0: float
     y0: float
-    coef: tuple
+    coef: tuple[float, ...]
 
     @classmethod
     def fit(cls, x: np.ndarray, y: np.ndarray, z: np.ndarray, sigma: ArrayLike) -> PlaneTrend:

@@ -123,6 +123,28 @@ def test_nice_interval_properties(rng):
         assert n <= target * (1 + 1e-9) and n > target / 2.5 - 1e-9
 
 
+def _smallest_step_not_below(raw):
+    """The 1-2-5 rule by enumeration: the smallest decimal 1, 2 or 5 x 10^k not below raw."""
+    steps = sorted(float(f"{m}e{k}") for k in range(-30, 31) for m in (1, 2, 5))
+    return next(s for s in steps if s >= raw * (1 - 1e-12))  # 1e-12: the documented rounding allowance
+
+
+EDGES = [float(f"{m}e{k}") * f for k in range(-8, 9) for m in (1, 2, 5)
+         for f in (1.0, 1 + 1e-12, 1 - 1e-12, 1 + 1.1e-12, 1 - 1.1e-12, 1.3, 0.8)]
+
+
+def test_nice_interval_is_the_enumerated_step(rng):
+    # the definition, enumerated (contour intervals of 1, 2 or 5 x 10^k: common practice of
+    # map making, from memory), over ranges from 1e-8 to 1e8 and at every step's rounding
+    # edge, where a step computed as 5 * 10.0**-6 (one unit in the last place below 5e-06)
+    # would tip the choice: exact equality, the interval is the step's decimal value
+    spans = [*EDGES, *(10 ** rng.uniform(-8, 8, 3000))]
+    targets = [1, 7, 10, 10]
+    for i, span in enumerate(spans):
+        target = targets[i % len(targets)]
+        assert nice_interval(0.0, span * target, target) == _smallest_step_not_below(span * target / target)
+
+
 def test_levels_are_clean_multiples():
     levels, k = contour_levels(0.05, 1.02, 0.1)
     assert levels.tolist() == [0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 1.0]  # no 0.30000000000000004

@@ -9,11 +9,20 @@ import math
 
 import numpy as np
 import pytest
-from rockhead.core.errors import CancelledError, InversionError, RockheadWarning
-from rockhead.core.grid import GridSpec
+from rockhead.core.errors import (
+    CancelledError,
+    GridError,
+    InversionError,
+    NotFittedError,
+    RockheadError,
+    RockheadWarning,
+    SurfaceError,
+)
+from rockhead.core.grid import GridSpec, nice_step
 from rockhead.core.surface.gridding import cross_validate, interpolate_surface
 from rockhead.core.surface.kriging import OrdinaryKriging, choose_variogram
 from rockhead.core.surface.spline import ThinPlateSpline
+from rockhead.core.surface.threads import blas_thread_controls
 from rockhead.core.surface.variogram import VariogramModel, experimental_variogram, fit_variogram
 
 
@@ -360,6 +369,100 @@ def test_bad_error_variance_is_rejected(rng):
     x, y, z = _scattered(rng, 10)
     with pytest.raises(ValueError, match="error_variance must be finite and >= 0"):
         OrdinaryKriging(VariogramModel("spherical", 0, 1, 100)).fit(x, y, z, -np.ones(10))
+
+
+_V = VariogramModel("spherical", 0.0, 1.0, 100.0)
+_XYZ = ([0.0, 40.0, 0.0, 40.0, 20.0], [0.0, 0.0, 30.0, 30.0, 15.0], [1.0, 2.0, 3.0, 4.0, 2.5])
+
+# Bad values and settings: a SurfaceError (also a ValueError, so older callers still catch it)
+# whose message quotes the value and says what to do, naming the survey.toml setting where a
+# setting is the cause (DEVELOPERS.md, "Errors").
+SURFACE_ERRORS = [
+    (lambda: interpolate_surface(*_XYZ, method="nearest"), r"got 'nearest'.*\[processing\] surface_method"),
+    (lambda: OrdinaryKriging(_V, neighbours=0).fit(*_XYZ), r"got 0;.*\[processing\] neighbours"),
+    (lambda: OrdinaryKriging(_V, neighbours=2.5).fit(*_XYZ), r"got 2\.5;"),
+    (lambda: ThinPlateSpline(neighbours=2).fit(*_XYZ), r"integer >= 3 or None, got 2;.*\[processing\] neighbours"),
+    (lambda: OrdinaryKriging(_V).fit(*_XYZ).grid(GridSpec(0.0, 30.0, 10.0, 5, 4), max_distance_m=-5.0),
+     r"got -5\.0;.*\[processing\] max_distance_m"),
+    (lambda: choose_variogram(*_XYZ, model="linear"), r"'linear'.*\[processing\] variogram_model"),
+    (lambda: VariogramModel("cubic", 0.0, 1.0, 10.0), r"unknown variogram model 'cubic'"),
+    (lambda: VariogramModel("spherical", 0.0, 1.0, 0.0), r"range_m must be > 0 \(m\), got 0\.0"),
+    (lambda: VariogramModel("spherical", -1.0, 1.0, 10.0), r"nugget must be finite and >= 0, got -1\.0"),
+    (lambda: VariogramModel("spherical", 0.0, 0.0, 10.0), r"nugget=0\.0 and sill=0\.0"),
+    (lambda: OrdinaryKriging("fitted").fit(*_XYZ), r"got 'fitted';"),
+    (lambda: OrdinaryKriging(_V).fit(*_XYZ).predict([1.0, 2.0], [1.0]), r"same shape, got \(2,\) and \(1,\)"),
+    (lambda: ThinPlateSpline(smoothing="gcv").fit(*_XYZ), r"got 'gcv';.*'auto'"),
+    (lambda: ThinPlateSpline(smoothing=-1.0).fit(*_XYZ), r"got -1\.0;"),
+    (lambda: interpolate_surface(*_XYZ, sigma=[0.1, -0.2, 0.1, 0.1, 0.1]), r"sigma must be >= 0 \(m\), got -0\.2"),
+    (lambda: interpolate_surface([0.0, 1.0, 2.0], [0.0, 1.0], [1.0, 2.0, 3.0]), r"same length, got \(3,\), \(2,\)"),
+    (lambda: interpolate_surface([0.0, 1.0, np.nan], [0.0, 1.0, 2.0], [1.0, 2.0, 3.0]), r"index 2: x=nan"),
+    (lambda: experimental_variogram(*_XYZ, n_lags=0), r"n_lags must be >= 1, got 0"),
+    (lambda: experimental_variogram(*_XYZ, tolerance_deg=0.0), r"tolerance_deg must be in \(0, 90\] degrees, got 0\.0"),
+    (lambda: experimental_variogram([1.0, 1.0], [2.0, 2.0], [0.0, 1.0]), r"max_lag_m must be positive, got 0\.0"),
+    (lambda: fit_variogram([1.0, 2.0], [1.0], [3, 3]), r"equal lengths, got \(2,\), \(1,\), \(2,\)"),
+]
+
+
+@pytest.mark.parametrize(
+    "call, match",
+    SURFACE_ERRORS,
+    ids=["method", "kriging-neighbours", "fractional-neighbours", "spline-neighbours", "max-distance",
+         "variogram-setting", "model-name", "range", "nugget", "flat-model", "variogram-type", "target-shape",
+         "smoothing-name", "smoothing-value", "sigma", "lengths", "nan", "n-lags", "tolerance", "one-place",
+         "fit-lengths"],
+)
+def test_bad_values_raise_a_surface_error_with_the_fix(call, match):
+    with pytest.raises(SurfaceError, match=match) as info:
+        call()
+    assert isinstance(info.value, RockheadError) and isinstance(info.value, ValueError)
+
+
+@pytest.mark.parametrize(
+    "call, match",
+    [
+        (lambda: GridSpec(0.0, 0.0, 0.0, 3, 3), r"got 0\.0;.*\[processing\] cell_size_m"),
+        (lambda: GridSpec(0.0, 0.0, 1.0, 3, 2.5), r"ny must be a positive integer, got 2\.5"),
+        (lambda: GridSpec(math.inf, 0.0, 1.0, 3, 3), r"x0 must be finite, got inf"),
+        (lambda: GridSpec.from_data([5.0, 5.0, 5.0], [1.0, 1.0, 1.0]), r"is 0\.0 m.*\[processing\] cell_size_m"),
+        (lambda: GridSpec.from_data([0.0, 10.0], [0.0, 10.0], cell_size_m=-2.0), r"got -2\.0;.*cell_size_m"),
+        (lambda: GridSpec.from_data([0.0, 10.0], [0.0, np.inf]), r"index 1: x=10\.0, y=inf"),
+        (lambda: GridSpec.from_data([0.0, 10.0], [0.0]), r"got \(2,\) and \(1,\)"),
+        (lambda: GridSpec.from_data([0.0, 10.0], [0.0, 1.0], pad_m=-1.0), r"pad_m must be >= 0 and finite \(m\)"),
+        (lambda: nice_step(0.0), r"positive finite value, got 0\.0"),
+    ],
+    ids=["cell", "rows", "origin", "one-place", "given-cell", "nan", "lengths", "pad", "step"],
+)
+def test_bad_grids_raise_a_grid_error_with_the_fix(call, match):
+    with pytest.raises(GridError, match=match) as info:
+        call()
+    assert isinstance(info.value, RockheadError) and isinstance(info.value, ValueError)
+
+
+@pytest.mark.parametrize(
+    "model", [OrdinaryKriging(_V), ThinPlateSpline(0.0)], ids=["kriging", "spline"]
+)
+def test_unfitted_models_raise_not_fitted(model):
+    with pytest.raises(NotFittedError, match=r"not fitted yet: call fit\(x, y, z\) first") as info:
+        model.predict([1.0], [1.0])
+    assert isinstance(info.value, RockheadError) and isinstance(info.value, RuntimeError)
+    with pytest.raises(NotFittedError):
+        model.grid(GridSpec(0.0, 30.0, 10.0, 5, 4))
+
+
+def test_worker_threads_change_nothing_and_blas_threads_come_back(rng):
+    # Each chunk of targets is one independent batched solve, so running the chunks on 4
+    # threads must give the serial numbers bit for bit (common practice: a thread pool only
+    # reorders independent work). OpenBLAS's own getter must report the thread count it had
+    # before (the library is the reference for its state).
+    x, y, z = _scattered(rng, 800)
+    v = VariogramModel("exponential", 0.05, 1.0, 250.0)
+    tx, ty = rng.uniform(0, 1000, 6000), rng.uniform(0, 1000, 6000)
+    before = [get() for get, _ in blas_thread_controls()]
+    est1, std1 = OrdinaryKriging(v, neighbours=24, n_threads=1).fit(x, y, z, 0.01).predict(tx, ty)
+    est4, std4 = OrdinaryKriging(v, neighbours=24, n_threads=4).fit(x, y, z, 0.01).predict(tx, ty)
+    np.testing.assert_array_equal(est4, est1)
+    np.testing.assert_array_equal(std4, std1)
+    assert [get() for get, _ in blas_thread_controls()] == before
 
 
 def test_global_kriging_refuses_too_many_points(rng):
