@@ -54,7 +54,7 @@ from scipy.optimize import least_squares
 from scipy.special import i0e, k1
 
 from ..grid import GridSpec
-from ..surface.interpolation import experimental_variogram
+from ..surface.variogram import experimental_variogram
 
 __all__ = ["MaternPrior", "fit_matern", "lattice_variance", "matern_correlation", "matern_precision", "plane_fit"]
 
@@ -198,7 +198,7 @@ def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8) -> MaternPrior:
     """Matern (nu = 1) prior of a surface from scattered elevation points.
 
     A plane is removed (weighted by 1/sigma^2), the experimental variogram of
-    the residuals is computed (:func:`~rockhead.core.surface.interpolation.experimental_variogram`)
+    the residuals is computed (:func:`~rockhead.core.surface.variogram.experimental_variogram`)
     and :math:`\\gamma(h) = c_0 + \\sigma^2 (1 - \\kappa h K_1(\\kappa h))` is fitted by
     weighted least squares with Cressie's weights :math:`N(h)/\\gamma(h)^2`
     [Cressie 1985]. With too few points or no usable fit, the residuals'
