@@ -49,7 +49,7 @@ def cli_run(out: Path):
 def step_times(out: Path):
     import_package()
     from rockhead.core import job, workflow
-    from rockhead.core.survey.inputs import load_survey
+    from rockhead.core.survey.config import load_survey
 
     times = {}
 

@@ -65,7 +65,7 @@ def main(argv=None) -> int:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             if args.command == "check":
-                from .survey.inputs import load_survey
+                from .survey.config import load_survey
 
                 survey = load_survey(args.survey)
                 n_bh = 0 if survey.boreholes is None else len(survey.boreholes)

@@ -9,7 +9,7 @@ from .formats.atomic import check_output_dir
 from .products import outputs
 from .progress import NullProgress, SubProgress
 from .results import RunResult
-from .survey.inputs import load_survey
+from .survey.config import load_survey
 from .workflow import compute
 
 OUTPUT_NAMES = ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",

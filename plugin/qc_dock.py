@@ -57,12 +57,12 @@ class GatherQc:
 
     def __init__(self, survey_path):
         from ..core.seismic import geometry, shot_fits
-        from ..core.survey import inputs
+        from ..core.survey import config
 
         self._geometry = geometry
         self._shot_fits = shot_fits
         self.survey_path = str(survey_path)
-        self.survey = inputs.load_survey(self.survey_path)
+        self.survey = config.load_survey(self.survey_path)
         self.gathers = geometry.build_gathers(self.survey)
         self.exclude = np.zeros(len(self.gathers.time_s), dtype=bool)
         self.fits = shot_fits.fit_shot_gathers(self.gathers, self.survey.settings)

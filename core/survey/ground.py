@@ -29,21 +29,11 @@ import warnings
 
 import numpy as np
 
+from ..crs import parse_crs
 from ..errors import GeoreferenceError, InputFileError, RockheadWarning
 from ..formats.geotiff import Raster, read_raster
 
 __all__ = ["GroundModel"]
-
-
-def _as_crs(crs):
-    import pyproj
-
-    if crs is None:
-        return None
-    try:
-        return pyproj.CRS.from_user_input(crs)
-    except pyproj.exceptions.CRSError as exc:
-        raise GeoreferenceError(f"cannot read the CRS {crs!r}: {exc}; give e.g. 'EPSG:32633'") from exc
 
 
 class _LinearTin:
@@ -165,7 +155,7 @@ class GroundModel:
 
         model = cls(sample, "dem", "", extent)
         dem_crs = raster.crs
-        work = _as_crs(working_crs)
+        work = None if working_crs is None else parse_crs(working_crs)
         crs_note = dem_crs.name if dem_crs is not None else "no CRS"
         if work is not None and dem_crs is None:
             warnings.warn(

@@ -259,8 +259,8 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
         )
 
     def load_survey(self, parameters, context, feedback, overrides=None):
-        """Load the survey (core.inputs.load_survey) and apply setting overrides."""
-        from ...core.survey.inputs import load_survey
+        """Load the survey (core.survey.config.load_survey) and apply setting overrides."""
+        from ...core.survey.config import load_survey
 
         path = self.survey_path(parameters, context, feedback)
         with CoreCall(feedback):

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pytest
 from rockhead.core.errors import InputFileError, RockheadError, RockheadWarning
-from rockhead.core.survey.inputs import load_survey
+from rockhead.core.survey.config import load_survey
 from rockhead.core.survey.model import Survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"

@@ -15,7 +15,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from rockhead.core.errors import InputFileError, RockheadError
-from rockhead.core.survey import inputs
+from rockhead.core.survey import config, readers
 
 # Together with the inversion's property test these generate over 10,000 cases per run
 # (6 reader tests x 1500 + the survey test x 800 + the fit's 600), in well under a minute.
@@ -87,9 +87,9 @@ def _write(workdir, name, data):
 def _read_all(workdir, data):
     """Feed the same content to the three CSV readers."""
     path = _write(workdir, "f.csv", data)
-    _check_stations(_call(inputs.read_stations, path, "EPSG:32633"))
-    _check_picks(_call(inputs.read_picks, path, 0.5))
-    _check_boreholes(_call(inputs.read_boreholes, path, "EPSG:32633", "EPSG:32633"))
+    _check_stations(_call(readers.read_stations, path, "EPSG:32633"))
+    _check_picks(_call(readers.read_picks, path, 0.5))
+    _check_boreholes(_call(readers.read_boreholes, path, "EPSG:32633", "EPSG:32633"))
 
 
 # ----------------------------------------------------------------- random bytes
@@ -229,13 +229,13 @@ def test_numeric_edges_stations_boreholes(workdir, data, geographic, n):
     }
     rows = "".join(f"A,{k},{_fmt(col['x'][k])},{_fmt(col['y'][k])},{_fmt(col['z'][k])}\n" for k in range(n))
     path = _write(workdir, "s.csv", "line,station,x,y,z\n" + rows)
-    stations = _call(inputs.read_stations, path, crs, "EPSG:32633")
+    stations = _call(readers.read_stations, path, crs, "EPSG:32633")
     _check_stations(stations)
     rows = "".join(
         f"B{k},{_fmt(col['x'][k])},{_fmt(col['y'][k])},{_fmt(col['z'][k])},{_fmt(col['d'][k])}\n" for k in range(n)
     )
     path = _write(workdir, "b.csv", "borehole,x,y,z,depth_m\n" + rows)
-    _check_boreholes(_call(inputs.read_boreholes, path, crs, "EPSG:32633", stations=stations))
+    _check_boreholes(_call(readers.read_boreholes, path, crs, "EPSG:32633", stations=stations))
 
 
 @FUZZ
@@ -247,7 +247,7 @@ def test_numeric_edges_picks(workdir, values, sigma):
     rows = "".join(f"A,1,{k},{_fmt(t)},{_fmt(s)}\n" for k, (t, s) in enumerate(values))
     path = _write(workdir, "p.csv", "line,shot,receiver,time_ms,sigma_ms\n" + rows)
     default = sigma if isinstance(sigma, (int, float)) else 0.5
-    _check_picks(_call(inputs.read_picks, path, default))
+    _check_picks(_call(readers.read_picks, path, default))
 
 
 # ----------------------------------------------------------------- TOML
@@ -311,7 +311,7 @@ TOML_TOKENS = st.sampled_from(
 def test_random_toml_text(workdir, tokens):
     _survey_files(workdir)
     path = _write(workdir, "survey.toml", "".join(tokens))
-    _call(inputs.load_survey, path)
+    _call(config.load_survey, path)
 
 
 def _toml_scalar():
@@ -337,7 +337,7 @@ def _toml_literal(v):
 
 SURVEY_KEYS = st.sampled_from(["name", "name", "crs", "crs", "work_crs", "work_crs", "epsg"])  # weights
 FILE_KEYS = st.sampled_from(["stations", "picks", "boreholes", "boreholes", "dem", "dem", "output"])
-PROC_KEYS = st.sampled_from([*inputs._tables()["processing"], "dem", "min_pick"])
+PROC_KEYS = st.sampled_from([*config.toml_keys()["processing"], "dem", "min_pick"])
 
 
 @FUZZ_SURVEY
@@ -355,7 +355,7 @@ def test_structured_toml(workdir, survey, files, processing):
     for name, table in (("survey", survey), ("files", files), ("processing", processing)):
         text += f"[{name}]\n" + "".join(f"{k} = {_toml_literal(v)}\n" for k, v in table.items())
     path = _write(workdir, "survey.toml", text)
-    result = _call(inputs.load_survey, path)
+    result = _call(config.load_survey, path)
     if result is not None:
         _check_stations(result.stations)
         _check_picks(result.picks)

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from rockhead.core.errors import InputFileError, SurveyConfigError
 from rockhead.core.seismic import forward, geometry, misties, shot_fits, structure
-from rockhead.core.survey import inputs
+from rockhead.core.survey import config
 from rockhead.core.survey.model import Picks, Settings, Stations, Survey
 
 # ---------------------------------------------------------------------------
@@ -532,7 +532,7 @@ def _write_survey(folder, stations, x, y, picks, crs_text):
 
 def test_same_survey_in_lonlat_and_utm_gives_the_same_results(tmp_path):
     # one survey written twice, in UTM 33N and in lon/lat (EPSG:4326, converted with
-    # pyproj directly), read by inputs.load_survey (which picks the working CRS from the
+    # pyproj directly), read by config.load_survey (which picks the working CRS from the
     # extent). Same dips within 0.01 deg and points within 1 cm; pyproj's round trip is
     # ~1e-9 m and the CSV keeps 17 digits, so the fits see the same geometry.
     from pyproj import Transformer
@@ -549,10 +549,10 @@ def test_same_survey_in_lonlat_and_utm_gives_the_same_results(tmp_path):
     lon, lat = Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True).transform(
         stations.x_m, stations.y_m
     )
-    utm = inputs.load_survey(
+    utm = config.load_survey(
         _write_survey(tmp_path / "utm", stations, stations.x_m, stations.y_m, truth.picks, "EPSG:32633")
     )
-    geo = inputs.load_survey(_write_survey(tmp_path / "geo", stations, lon, lat, truth.picks, "EPSG:4326"))
+    geo = config.load_survey(_write_survey(tmp_path / "geo", stations, lon, lat, truth.picks, "EPSG:4326"))
     assert geo.crs.to_epsg() == 32633  # the UTM zone of the site, chosen by core.crs
     np.testing.assert_allclose(geo.stations.x_m, stations.x_m, atol=1e-6)
     np.testing.assert_allclose(geo.stations.y_m, stations.y_m, atol=1e-6)

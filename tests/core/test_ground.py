@@ -92,6 +92,21 @@ def test_nodata_cells_give_nan():
     assert np.isfinite(model(xc + 13.0, yc))  # one cell further: fine
 
 
+def test_unknown_working_crs_is_the_crs_modules_message():
+    # one CRS parser for the whole core: the same words as core.crs.parse_crs, and an integer EPSG
+    # code is accepted like everywhere else
+    from rockhead.core.crs import parse_crs
+
+    with pytest.raises(GeoreferenceError) as expected:
+        parse_crs("EPSG:999999")
+    with pytest.raises(GeoreferenceError) as got:
+        GroundModel.from_dem(_dem(_plane), "EPSG:999999")
+    assert str(got.value) == str(expected.value)
+    assert "unknown CRS 'EPSG:999999'" in str(got.value)
+    model = GroundModel.from_dem(_dem(_plane), 32633)
+    assert "transformation" not in model.description_  # same CRS as the DEM: sampled directly
+
+
 def test_dem_without_crs_warns():
     dem = _dem(_plane)
     with pytest.warns(RockheadWarning, match="declares no CRS"):

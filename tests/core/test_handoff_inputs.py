@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from pyproj import Transformer
 from rockhead.core.errors import InputFileError, SurveyConfigError
-from rockhead.core.survey.inputs import load_survey
+from rockhead.core.survey.config import load_survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 

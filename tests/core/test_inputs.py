@@ -1,4 +1,4 @@
-"""Tests for core.inputs: readers give back exactly what the files hold, in the working CRS.
+"""Tests for core.survey (csvfile, readers, config): readers give back exactly what the files hold, in the working CRS.
 
 The bad-input corpus (test_bad_inputs.py) covers the error messages case by case;
 here the values, units, CRS handling and settings are checked.
@@ -12,8 +12,9 @@ from pathlib import Path
 import numpy as np
 import pyproj
 import pytest
+from rockhead.core.crs import parse_crs
 from rockhead.core.errors import InputFileError, RockheadWarning, SurveyConfigError
-from rockhead.core.survey import inputs
+from rockhead.core.survey import config, csvfile, readers
 from rockhead.core.survey.model import Settings
 
 STATIONS = """# invented site
@@ -52,7 +53,7 @@ def survey_dir(tmp_path, toml_extra="", stations=STATIONS, picks=PICKS, borehole
 
 
 def test_read_stations_values_lines_and_labels(tmp_path):
-    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), "EPSG:32633")
+    st = readers.read_stations(write(tmp_path / "s.csv", STATIONS), "EPSG:32633")
     assert list(st.line) == ["L1", "L1", "L2", "L2"]
     assert list(st.station) == ["1", "2", "1", "2"]  # labels stay text
     np.testing.assert_array_equal(st.x_m, [500000.0, 500005.0, 500002.5, 500002.5])
@@ -63,7 +64,7 @@ def test_read_stations_values_lines_and_labels(tmp_path):
 
 def test_spreadsheet_blank_rows_skipped(tmp_path):
     text = STATIONS.replace("\n\n", "\n,,,,\n , , ,,\n")
-    st = inputs.read_stations(write(tmp_path / "s.csv", text), "EPSG:32633")
+    st = readers.read_stations(write(tmp_path / "s.csv", text), "EPSG:32633")
     assert list(st.file_line) == [3, 6, 7, 8]
 
 
@@ -71,14 +72,14 @@ def test_spreadsheet_blank_rows_skipped(tmp_path):
 def test_line_numbers_with_any_line_end(tmp_path, newline):
     text = STATIONS.replace("\n", newline).replace("L2,1,500002.5", "L2,1,abc")
     with pytest.raises(InputFileError, match=r"^s\.csv, line 6, field 'x': value 'abc' is not a number"):
-        inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
+        readers.read_stations(write(tmp_path / "s.csv", text), 32633)
 
 
 def test_geographic_stations_end_in_utm(tmp_path):
     lon = np.array([15.20, 15.201, 15.2005, 15.2005])
     lat = np.array([48.10, 48.10, 48.0995, 48.1005])
     rows = "\n".join(f"L{1 + k // 2},{k % 2},{lo:.7f},{la:.7f},300" for k, (lo, la) in enumerate(zip(lon, lat)))
-    st = inputs.read_stations(write(tmp_path / "g.csv", "line,station,x,y,z\n" + rows + "\n"), "EPSG:4326")
+    st = readers.read_stations(write(tmp_path / "g.csv", "line,station,x,y,z\n" + rows + "\n"), "EPSG:4326")
     # reference: pyproj itself, x = longitude first (always_xy)
     tr = pyproj.Transformer.from_crs(4326, 32633, always_xy=True)
     x, y = tr.transform(np.round(lon, 7), np.round(lat, 7))
@@ -87,7 +88,7 @@ def test_geographic_stations_end_in_utm(tmp_path):
 
 
 def test_stations_explicit_working_crs(tmp_path):
-    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633, crs_work="EPSG:3035")
+    st = readers.read_stations(write(tmp_path / "s.csv", STATIONS), 32633, crs_work="EPSG:3035")
     tr = pyproj.Transformer.from_crs(32633, 3035, always_xy=True)
     x, _ = tr.transform(500000.0, 5500000.0)
     assert abs(st.x_m[0] - x) < 1e-6
@@ -97,7 +98,7 @@ def test_unknown_column_warns_and_is_ignored(tmp_path):
     text = STATIONS.replace("line,station,x,y,z", "line,station,x,y,z,remark").replace("300.0", "300.0,flag")
     text = text.replace("300.5", "300.5,").replace("299.0", "299.0,").replace("299.5", "299.5,")
     with pytest.warns(RockheadWarning, match=r"s\.csv, line 2: column 'remark' not used"):
-        st = inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
+        st = readers.read_stations(write(tmp_path / "s.csv", text), 32633)
     assert len(st) == 4
 
 
@@ -105,7 +106,7 @@ def test_unknown_column_suggests_name(tmp_path):
     text = PICKS.replace("time_ms", "time_ms,sigma").replace("30.5", "30.5,1")
     text = text.replace("31.25", "31.25,1").replace("31.0\n", "31.0,1\n")
     with pytest.warns(RockheadWarning, match=r"'sigma' \(did you mean 'sigma_ms'\?\)"):
-        inputs.read_picks(write(tmp_path / "p.csv", text), 0.5)
+        readers.read_picks(write(tmp_path / "p.csv", text), 0.5)
 
 
 def test_area_of_use_warning_counts_points(tmp_path):
@@ -117,14 +118,14 @@ def test_area_of_use_warning_counts_points(tmp_path):
         RockheadWarning,
         match=r"2 point\(s\) lie outside the area of use of EPSG:32633 .*, up to 0\.50 degrees",
     ):
-        inputs.read_stations(write(tmp_path / "s.csv", text), 32633)
+        readers.read_stations(write(tmp_path / "s.csv", text), 32633)
 
 
 # ----------------------------------------------------------------- picks
 
 
 def test_read_picks_units_defaults(tmp_path):
-    p = inputs.read_picks(write(tmp_path / "p.csv", PICKS), default_sigma_ms=0.75)
+    p = readers.read_picks(write(tmp_path / "p.csv", PICKS), default_sigma_ms=0.75)
     np.testing.assert_allclose(p.time_s, [0.0305, 0.03125, 0.031])  # ms -> s
     np.testing.assert_allclose(p.sigma_s, 0.00075)
     assert list(p.reflector) == ["1", "1", "1"]
@@ -134,18 +135,18 @@ def test_read_picks_units_defaults(tmp_path):
 def test_read_picks_optional_columns(tmp_path):
     text = "LINE, Shot ,receiver,time_ms,sigma_ms,reflector\n"
     text += "L1,1,2,30,0.4,top\nL1,1,2,50,,base\nL1,2,1,30,1.5,\n"
-    p = inputs.read_picks(write(tmp_path / "p.csv", text), default_sigma_ms=0.5)
+    p = readers.read_picks(write(tmp_path / "p.csv", text), default_sigma_ms=0.5)
     np.testing.assert_allclose(p.sigma_s, [0.0004, 0.0005, 0.0015])  # empty cell -> default
     assert list(p.reflector) == ["top", "base", "1"]  # empty reflector -> "1"
 
 
 def test_picks_checked_against_stations_only_when_given(tmp_path):
-    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
+    st = readers.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
     text = PICKS + "L1,1,7,33.0\n"
     path = write(tmp_path / "p.csv", text)
-    assert len(inputs.read_picks(path, 0.5)) == 4
+    assert len(readers.read_picks(path, 0.5)) == 4
     with pytest.raises(InputFileError, match=r"line 5, field 'receiver': receiver '7' is not a station of line 'L1'"):
-        inputs.read_picks(path, 0.5, st)
+        readers.read_picks(path, 0.5, st)
 
 
 @pytest.mark.parametrize(
@@ -163,23 +164,23 @@ def test_seconds_heuristic(tmp_path, times, ok):
     text = "line,shot,receiver,time_ms\n" + "".join(f"A,1,{k},{t}\n" for k, t in enumerate(times))
     path = write(tmp_path / "p.csv", text)
     if ok:
-        assert len(inputs.read_picks(path, 0.5)) == 3
+        assert len(readers.read_picks(path, 0.5)) == 3
     else:
         with pytest.raises(InputFileError, match=r"times look like seconds"):
-            inputs.read_picks(path, 0.5)
+            readers.read_picks(path, 0.5)
 
 
 def test_max_time_parameter(tmp_path):
     path = write(tmp_path / "p.csv", "line,shot,receiver,time_ms\nA,1,2,2500\n")
     with pytest.raises(InputFileError, match=r"line 2, field 'time_ms': time '2500' ms is beyond 2000 ms"):
-        inputs.read_picks(path, 0.5)
-    assert inputs.read_picks(path, 0.5, max_time_ms=3000.0).time_s[0] == 2.5
+        readers.read_picks(path, 0.5)
+    assert readers.read_picks(path, 0.5, max_time_ms=3000.0).time_s[0] == 2.5
 
 
 @pytest.mark.parametrize("sigma", [0, -1.0, float("nan"), 1e-300], ids=["zero", "negative", "nan", "tiny"])
 def test_default_sigma_must_be_positive(tmp_path, sigma):
     with pytest.raises(InputFileError, match=r"must be >= 0\.001"):
-        inputs.read_picks(write(tmp_path / "p.csv", PICKS), sigma)
+        readers.read_picks(write(tmp_path / "p.csv", PICKS), sigma)
 
 
 @pytest.mark.parametrize(
@@ -194,28 +195,28 @@ def test_tiny_values_refused(tmp_path, row, match):
     # found by the fuzz tests: 4.9e-324 ms is > 0 but becomes 0 s after the unit change
     text = "line,shot,receiver,time_ms,sigma_ms\nA,1,3,30,0.5\n" + row + "\n"
     with pytest.raises(InputFileError, match=match):
-        inputs.read_picks(write(tmp_path / "p.csv", text), 0.5)
+        readers.read_picks(write(tmp_path / "p.csv", text), 0.5)
 
 
 # ----------------------------------------------------------------- boreholes
 
 
 def test_read_boreholes(tmp_path):
-    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
+    st = readers.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
     text = "borehole,x,y,z,depth_m,sigma_m\nB1,500001,5500001,300.2,12.5,\nB2,500003,5499999,299.8,13,0.3\n"
     with warnings.catch_warnings():
         warnings.simplefilter("error", RockheadWarning)
-        bh = inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, 0.2, stations=st)
+        bh = readers.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, 0.2, stations=st)
     np.testing.assert_allclose(bh.elevation_m, [300.2 - 12.5, 299.8 - 13.0])
     np.testing.assert_allclose(bh.sigma_m, [0.2, 0.3])
     assert list(bh.name) == ["B1", "B2"]
 
 
 def test_far_borehole_warns_with_distance(tmp_path):
-    st = inputs.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
+    st = readers.read_stations(write(tmp_path / "s.csv", STATIONS), 32633)
     text = "borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\nFAR,500000,5501000,300,12\n"
     with pytest.warns(RockheadWarning, match=r"line 3, field 'x': borehole 'FAR' is 995 m from the nearest"):
-        inputs.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, stations=st)
+        readers.read_boreholes(write(tmp_path / "b.csv", text), 32633, 32633, stations=st)
 
 
 # ----------------------------------------------------------------- settings
@@ -232,14 +233,14 @@ def _toml_value(v):
 def test_every_settings_field_is_accepted_with_its_default():
     fields = [f for f in dataclasses.fields(Settings) if f.name not in ("dem", "work_crs")]
     table = {f.name: f.default for f in fields if f.default is not None}
-    assert inputs.read_settings(table) == Settings()
-    assert set(inputs._tables()["processing"]) == {f.name for f in fields}
+    assert config.read_settings(table) == Settings()
+    assert set(config.toml_keys()["processing"]) == {f.name for f in fields}
 
 
 def test_settings_from_toml(tmp_path):
     extra = "[processing]\ndefault_sigma_ms = 1\nmin_picks = 8\ncell_size_m = 2.5\ncalibrate_velocity = true\n"
     extra += 'surface_method = "spline"\n'
-    s = inputs.load_survey(survey_dir(tmp_path, extra)).settings
+    s = config.load_survey(survey_dir(tmp_path, extra)).settings
     assert s.default_sigma_ms == 1.0 and isinstance(s.default_sigma_ms, float)  # int accepted for a float
     assert s.min_picks == 8 and s.cell_size_m == 2.5 and s.calibrate_velocity is True
     assert s.surface_method == "spline" and s.max_distance_m is None
@@ -279,7 +280,7 @@ def test_settings_from_toml(tmp_path):
 def test_settings_errors(tmp_path, key, value, match):
     path = survey_dir(tmp_path, f"[processing]\n{key} = {value}\n")
     with pytest.raises(SurveyConfigError, match=rf"^survey\.toml, line 10, field 'processing\.{key}': .*{match}"):
-        inputs.load_survey(path)
+        config.load_survey(path)
 
 
 # ----------------------------------------------------------------- survey.toml
@@ -288,7 +289,7 @@ def test_settings_errors(tmp_path, key, value, match):
 def test_load_survey_fields(tmp_path):
     bh = "borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\n"
     path = survey_dir(tmp_path, boreholes=bh)
-    sv = inputs.load_survey(path)
+    sv = config.load_survey(path)
     assert sv.name == "T" and sv.path == path
     assert sv.input_crs.to_epsg() == 32633 and sv.crs.to_epsg() == 32633
     assert set(sv.files) == {"stations", "picks", "boreholes"}
@@ -308,7 +309,7 @@ def test_load_survey_geographic_with_work_crs_and_dem(tmp_path):
     path = survey_dir(tmp_path, stations="\n".join(lines) + "\n", crs='"EPSG:4326"\nwork_crs = 3035')
     text = path.read_text().replace('picks = "picks.csv"', 'picks = "picks.csv"\ndem = "ground.tif"')
     write(path, text)
-    sv = inputs.load_survey(path)
+    sv = config.load_survey(path)
     assert sv.input_crs.is_geographic and sv.crs.to_epsg() == 3035
     assert sv.settings.work_crs == "EPSG:3035"
     assert sv.settings.dem == (tmp_path / "ground.tif").resolve()
@@ -320,7 +321,7 @@ def test_load_survey_default_name_and_bom_toml(tmp_path):
     path = survey_dir(tmp_path)
     text = path.read_text().replace('name = "T"\n', "")
     write(path, b"\xef\xbb\xbf" + text.replace("\n", "\r\n").encode())
-    assert inputs.load_survey(path).name == tmp_path.name
+    assert config.load_survey(path).name == tmp_path.name
 
 
 @pytest.mark.parametrize(
@@ -337,7 +338,7 @@ def test_load_survey_default_name_and_bom_toml(tmp_path):
 def test_toml_syntax_error_line(tmp_path, text, line):
     path = write(tmp_path / "survey.toml", text)
     with pytest.raises(SurveyConfigError, match=rf"^survey\.toml, line {line}: not valid TOML: "):
-        inputs.load_survey(path)
+        config.load_survey(path)
 
 
 def test_windows_paths_in_toml(tmp_path):
@@ -345,34 +346,34 @@ def test_windows_paths_in_toml(tmp_path):
     text = path.read_text()
     write(path, text.replace('picks = "picks.csv"', 'picks = "C:\\data\\picks.csv"'))
     with pytest.raises(SurveyConfigError, match=r"^survey\.toml, line 7: not valid TOML: .*forward slashes"):
-        inputs.load_survey(path)
+        config.load_survey(path)
     write(path, text.replace('picks = "picks.csv"', 'picks = "C:\\new.csv"'))  # \n is a valid escape
     with pytest.raises(SurveyConfigError, match=r"line 7, field 'files\.picks': .*control character"):
-        inputs.load_survey(path)
+        config.load_survey(path)
     # single quotes (literal strings) keep backslashes; the file then simply does not exist here
     write(path, text.replace('picks = "picks.csv"', "picks = 'C:\\data\\picks.csv'"))
     with pytest.raises(SurveyConfigError, match=r"line 7, field 'files\.picks': file not found"):
-        inputs.load_survey(path)
+        config.load_survey(path)
 
 
 def test_missing_toml_and_not_utf8(tmp_path):
     with pytest.raises(SurveyConfigError, match=r"survey file not found"):
-        inputs.load_survey(tmp_path / "nope.toml")
+        config.load_survey(tmp_path / "nope.toml")
     with pytest.raises(SurveyConfigError, match=r"^[^:]+: '[^']+' is a folder: give the survey\.toml file$"):
-        inputs.load_survey(tmp_path)
+        config.load_survey(tmp_path)
     with pytest.raises(InputFileError, match=r"^[^:]+: '[^']+' is a folder, not the stations file$"):
-        inputs.read_stations(tmp_path, 32633)
+        readers.read_stations(tmp_path, 32633)
     with pytest.raises(InputFileError, match=r"^nope\.csv: picks file not found"):
-        inputs.read_picks(tmp_path / "nope.csv", 0.5)
+        readers.read_picks(tmp_path / "nope.csv", 0.5)
     path = write(tmp_path / "survey.toml", '[survey]\nname = "caf\xe9"\n', encoding="latin-1")
     with pytest.raises(SurveyConfigError, match=r"^survey\.toml, line 2: not UTF-8"):
-        inputs.load_survey(path)
+        config.load_survey(path)
 
 
 def test_inputs_are_never_modified(tmp_path):
     path = survey_dir(tmp_path, boreholes="borehole,x,y,z,depth_m\nB1,500001,5500001,300,12\n")
     before = {p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()}
-    inputs.load_survey(path)
+    config.load_survey(path)
     after = {p.name: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in tmp_path.iterdir()}
     assert before == after  # same files, same bytes, untouched
 
@@ -380,5 +381,34 @@ def test_inputs_are_never_modified(tmp_path):
 def test_unicode_labels(tmp_path):
     text = STATIONS.replace("L1", "Linie Ä").replace("L2", "线2")
     picks = PICKS.replace("L1", "Linie Ä").replace("L2", "线2")
-    sv = inputs.load_survey(survey_dir(tmp_path, stations=text, picks=picks))
+    sv = config.load_survey(survey_dir(tmp_path, stations=text, picks=picks))
     assert set(sv.picks.line) == {"Linie Ä", "线2"}
+
+
+def test_station_rows_then_working_crs_equal_read_stations(tmp_path):
+    # the two-step path that load_survey takes (rows, checked lon/lat, working CRS) gives the same
+    # stations as read_stations in one call; the coordinates against pyproj directly
+    path = write(tmp_path / "s.csv", STATIONS)
+    rows = readers.parse_stations(path)
+    crs_in = parse_crs(32633)
+    lon, lat = readers.locate_lonlat(rows.table, rows.x, rows.y, crs_in)
+    to_ll = pyproj.Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True)
+    # pyproj's own transform, same pipeline: equal to rounding (1e-12 degrees is 0.1 micrometre)
+    expected = np.column_stack(to_ll.transform(rows.x, rows.y))
+    np.testing.assert_allclose(np.column_stack([lon, lat]), expected, atol=1e-12)
+    two_step = rows.stations(*readers.to_working_crs(rows.table, rows.x, rows.y, crs_in, parse_crs("EPSG:3035")))
+    one_call = readers.read_stations(path, 32633, crs_work="EPSG:3035")
+    for name in ("line", "station", "x_m", "y_m", "z_m", "file_line"):
+        np.testing.assert_array_equal(getattr(two_step, name), getattr(one_call, name))
+
+
+def test_csv_lines_and_fields_are_located(tmp_path):
+    # line numbers count LF, CRLF and lone CR alike (common practice of spreadsheet exports)
+    assert csvfile.split_lines("a\r\nb\rc\nd") == ["a", "b", "c", "d"]
+    table = csvfile.read_csv_table(write(tmp_path / "t.csv", "# note\r\nline,station\r\n\r\nL1, 12 \r\n"),
+                                   ("line", "station"), role="stations")
+    assert table.lines == [4] and table.rows == [["L1", "12"]]
+    with pytest.raises(InputFileError, match=r"t.csv, line 4, field 'station': value '12,5' uses a decimal comma"):
+        table.number(0, "station", "12,5")
+    with pytest.raises(InputFileError, match=r"line 4, field 'line': empty label"):
+        table.label(0, "line", "")

@@ -202,7 +202,7 @@ def test_depth_raster_is_ground_minus_elevation(sample_run):
     ok = np.isfinite(z) & np.isfinite(d)
     # the ground model interpolates stations; away from lines it departs from the true
     # topography by up to a metre or two (rolling ground), so compare where stations are near
-    from rockhead.core.survey.inputs import load_survey
+    from rockhead.core.survey.config import load_survey
     from scipy.spatial import cKDTree
 
     st = load_survey(SAMPLE / "survey.toml").stations

@@ -9,7 +9,7 @@ chosen as the pipeline documents.
 import numpy as np
 import pytest
 from rockhead.core.seismic import forward
-from rockhead.core.survey.inputs import load_survey
+from rockhead.core.survey.config import load_survey
 from rockhead.core.workflow import compute
 
 THICKNESS_M = np.array([12.0, 18.0])

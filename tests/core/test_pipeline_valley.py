@@ -10,7 +10,7 @@ must beat the kriged gather fits against the truth.
 
 import numpy as np
 import pytest
-from rockhead.core.survey.inputs import load_survey
+from rockhead.core.survey.config import load_survey
 from rockhead.core.tomography import joint as tm
 from rockhead.core.workflow import compute
 from test_tomography import GRID, SIGMA_S, V_TRUE, ground, true_nodes, valley_lines

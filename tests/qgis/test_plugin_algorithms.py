@@ -27,7 +27,7 @@ from qgis.PyQt.QtCore import QVariant
 from rockhead.core import workflow
 from rockhead.core.products import layers
 from rockhead.core.seismic import structure
-from rockhead.core.survey import inputs
+from rockhead.core.survey import config
 from rockhead.plugin.algorithms.run_survey import METHODS
 from rockhead.plugin.feedback import FeedbackProgress
 
@@ -117,7 +117,7 @@ LAYER_PARAMS = {
 
 @pytest.fixture
 def core_fit(sample_survey):
-    survey = inputs.load_survey(sample_survey)
+    survey = config.load_survey(sample_survey)
     return survey, workflow.fit_step(survey)
 
 

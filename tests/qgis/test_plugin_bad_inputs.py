@@ -14,7 +14,7 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsProcessingException, QgsProcessingFeedback
 from rockhead.core.errors import RockheadError
-from rockhead.core.survey.inputs import load_survey
+from rockhead.core.survey.config import load_survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 BAD = sorted(

@@ -10,7 +10,7 @@ from qgis_process_env import enabled_env
 from qgis_process_env import run as qgis_process
 from rockhead.core import workflow
 from rockhead.core.products import layers
-from rockhead.core.survey import inputs
+from rockhead.core.survey import config
 
 
 @pytest.fixture(scope="module")
@@ -44,7 +44,7 @@ def test_run_fit_gathers(qp_env, sample_survey, tmp_path):
         f"REFLECTOR_POINTS={tmp_path / 'points.gpkg'}",
     )
     assert out.returncode == 0, out.stdout + out.stderr
-    step = workflow.fit_step(inputs.load_survey(sample_survey))
+    step = workflow.fit_step(config.load_survey(sample_survey))
     ref = layers.shots_layer(step.gathers, step.fits)
     layer = QgsVectorLayer(str(shots), "shots", "ogr")
     assert layer.featureCount() == len(ref)
