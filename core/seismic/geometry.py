@@ -27,14 +27,17 @@ References
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Optional
+from pathlib import Path
+from typing import Any, Callable, Optional, Union
 
 import numpy as np
 from numpy.typing import ArrayLike
 
 from ..errors import InputFileError, SurveyConfigError
-from ..survey.model import GatherSet
+from ..survey.ground import GroundModel
+from ..survey.model import GatherSet, Stations, Survey
 from . import forward
 
 __all__ = [
@@ -104,27 +107,48 @@ class LineFrame:
         """(k, 2) polyline vertices."""
         return np.column_stack([self.x_m, self.y_m])
 
-    def locate(self, x_m, y_m):
-        """Chainage along the polyline and signed offset (+ toward ``cross_unit``).
+    def locate(self, x_m: ArrayLike, y_m: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+        """Chainage along the line's polyline and signed offset from it.
 
-        See :func:`project_onto_polyline`.
+        Parameters
+        ----------
+        x_m, y_m : float or array_like
+            Points in the working CRS (m).
+
+        Returns
+        -------
+        chainage_m, offset_m : ndarray
+            Distance along the polyline from the first station, and offset
+            (m, positive toward ``cross_unit``); see :func:`project_onto_polyline`.
         """
         return project_onto_polyline(self.vertices, x_m, y_m)
 
 
-def _is_number(text) -> bool:
+def _is_number(text: Any) -> bool:
     try:
         return np.isfinite(float(text))
     except (TypeError, ValueError):
         return False
 
 
-def station_order(stations) -> np.ndarray:
+def station_order(stations: Stations) -> np.ndarray:
     """Rank (0, 1, ...) of every station within its line.
 
     Stations are ordered numerically when every label of the line is a number
     (``"2" < "10"``), otherwise in file order (``file_line``, then row).
 
+    Parameters
+    ----------
+    stations : Stations
+        Or any object with ``line``, ``station`` and ``file_line`` arrays.
+
+    Returns
+    -------
+    (n,) int ndarray
+        Rank of each station within its line.
+
+    Examples
+    --------
     >>> from types import SimpleNamespace as NS
     >>> st = NS(line=np.array(["A", "A", "A"], dtype=object),
     ...         station=np.array(["10", "2", "7.5"], dtype=object), file_line=np.array([2, 3, 4]))
@@ -191,7 +215,7 @@ def vector_azimuth_deg(east: ArrayLike, north: ArrayLike) -> np.ndarray:
     return np.degrees(np.arctan2(east, north)) % 360.0
 
 
-def line_frames(stations, path=None) -> dict:
+def line_frames(stations: Stations, path: Optional[Union[str, Path]] = None) -> dict[str, LineFrame]:
     """Build a :class:`LineFrame` for every line of ``stations``.
 
     The line's unit vector is the principal axis of its station positions
@@ -200,7 +224,7 @@ def line_frames(stations, path=None) -> dict:
 
     Parameters
     ----------
-    stations : core.model.Stations
+    stations : Stations
         Station table in the working CRS.
     path : path-like, optional
         The stations file, quoted in error messages.
@@ -285,7 +309,9 @@ def line_frames(stations, path=None) -> dict:
     return frames
 
 
-def project_onto_polyline(vertices, x_m, y_m, chunk=4096):
+def project_onto_polyline(
+    vertices: ArrayLike, x_m: ArrayLike, y_m: ArrayLike, chunk: int = 4096
+) -> tuple[np.ndarray, np.ndarray]:
     """Project points onto a polyline: chainage and signed lateral offset.
 
     For every point the closest point on any segment is found (vectorised over
@@ -296,14 +322,19 @@ def project_onto_polyline(vertices, x_m, y_m, chunk=4096):
     Parameters
     ----------
     vertices : array_like, shape (k, 2)
+        Polyline vertices in order (m).
     x_m, y_m : array_like
-        Points (any shape, broadcast together).
+        Points (m; any shape, broadcast together).
+    chunk : int
+        Points handled at once (bounds the memory of the points x segments arrays).
 
     Returns
     -------
     chainage_m, offset_m : ndarray
-        Same shape as the points.
+        Same shape as the points (m).
 
+    Examples
+    --------
     >>> c, o = project_onto_polyline([[0, 0], [10, 0], [10, 10]], [5.0, 12.0], [-2.0, 4.0])
     >>> c.tolist(), o.tolist()
     ([5.0, 14.0], [2.0, 2.0])
@@ -345,7 +376,11 @@ def project_onto_polyline(vertices, x_m, y_m, chunk=4096):
 # ---------------------------------------------------------------------------
 
 
-def build_gathers(survey, reflector=None, frames=None) -> GatherSet:
+def build_gathers(
+    survey: Survey,
+    reflector: Union[str, Sequence[str], None] = None,
+    frames: Optional[dict[str, LineFrame]] = None,
+) -> GatherSet:
     """Join picks to station coordinates and group them into shot gathers.
 
     One gather per (line, shot, reflector). Picks are sorted by gather and,
@@ -357,7 +392,8 @@ def build_gathers(survey, reflector=None, frames=None) -> GatherSet:
 
     Parameters
     ----------
-    survey : core.model.Survey
+    survey : Survey
+        Stations and picks (working CRS), and the input files for messages.
     reflector : str or sequence of str, optional
         Keep only these reflector labels (default: all).
     frames : dict, optional
@@ -365,7 +401,9 @@ def build_gathers(survey, reflector=None, frames=None) -> GatherSet:
 
     Returns
     -------
-    core.model.GatherSet
+    GatherSet
+        Picks sorted by gather, with source and receiver positions (m), times
+        and pick errors (s), and each gather's line frame.
 
     Raises
     ------
@@ -558,14 +596,28 @@ def _normals_from(u: np.ndarray, w: np.ndarray, s: np.ndarray, q: np.ndarray) ->
     ) - c[:, None] * np.array([0.0, 0.0, 1.0])
 
 
-def vertical_depth_below_source(normal_distance_m, dip_deg):
+def vertical_depth_below_source(normal_distance_m: ArrayLike, dip_deg: ArrayLike) -> np.ndarray:
     r"""Vertical distance from the source down to the plane.
 
     .. math:: z_v = h / \cos\delta
 
-    (DESIGN.md s.4; the perpendicular h is the shortest distance, the vertical
-    one is longer on a dipping plane.)
+    The perpendicular h is the shortest distance; the vertical one is longer
+    on a dipping plane.
 
+    Parameters
+    ----------
+    normal_distance_m : float or array_like
+        h (m).
+    dip_deg : float or array_like
+        True dip of the plane (degrees, below 90).
+
+    Returns
+    -------
+    ndarray
+        Vertical distance (m).
+
+    Examples
+    --------
     >>> round(float(vertical_depth_below_source(10.0, 60.0)), 9)
     20.0
     """
@@ -604,6 +656,7 @@ class ReflectorPoints:
     normal: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of points."""
         return len(self.x_m)
 
     @property
@@ -613,36 +666,49 @@ class ReflectorPoints:
 
     @property
     def xyz(self) -> np.ndarray:
+        """(n, 3) positions: x, y, elevation (m)."""
         return np.column_stack([self.x_m, self.y_m, self.elevation_m])
 
-    def select(self, mask) -> ReflectorPoints:
-        """A new ReflectorPoints with the rows where ``mask`` is true."""
+    def select(self, mask: ArrayLike) -> ReflectorPoints:
+        """Return the rows where ``mask`` is true.
+
+        Parameters
+        ----------
+        mask : (n,) bool array_like (or index array)
+            Rows to keep.
+
+        Returns
+        -------
+        ReflectorPoints
+            A new set with those rows.
+        """
         mask = np.asarray(mask)
         return ReflectorPoints(**{k: getattr(self, k)[mask] for k in self.__dataclass_fields__})
 
 
-def station_ground_model(stations):
+def station_ground_model(stations: Union[Stations, ArrayLike]) -> GroundModel:
     """Ground elevation model interpolated from surveyed points.
 
     Piecewise-linear on the Delaunay triangulation of the points, nearest
     point outside their hull, along the line for collinear points: see
-    :meth:`.ground.GroundModel.from_stations`, which this wraps.
+    :meth:`core.survey.ground.GroundModel.from_stations`, which this wraps.
 
     Parameters
     ----------
-    stations : core.model.Stations or array_like, shape (n, 3)
+    stations : Stations or array_like, shape (n, 3)
+        Surveyed points x, y, z (m, working CRS).
 
     Returns
     -------
-    callable
-        ``ground(x_m, y_m) -> z_m`` broadcasting over arrays.
+    GroundModel
+        Callable ``ground(x_m, y_m) -> z_m`` (m) broadcasting over arrays.
 
+    Examples
+    --------
     >>> g = station_ground_model([[0, 0, 10], [10, 0, 20], [0, 10, 30], [10, 10, 40]])
     >>> float(g(5.0, 5.0)), float(g(100.0, 0.0))
     (25.0, 20.0)
     """
-    from ..survey.ground import GroundModel
-
     pts = np.asarray(stations.xyz if hasattr(stations, "xyz") else stations, dtype=float).reshape(-1, 3)
     return GroundModel.from_stations(pts[:, 0], pts[:, 1], pts[:, 2])
 
@@ -657,7 +723,12 @@ def _points_local(src, rec, u, w, h, s, q, pick_gather):
     return p0, pr, n
 
 
-def reflector_points(gathers, fits, ground=None, cross_component=None) -> ReflectorPoints:
+def reflector_points(
+    gathers: GatherSet,
+    fits: Any,
+    ground: Optional[Callable[[np.ndarray, np.ndarray], np.ndarray]] = None,
+    cross_component: Optional[ArrayLike] = None,
+) -> ReflectorPoints:
     r"""Georeferenced reflector points of every gather and every pick.
 
     For gather k with source S, normal distance h and downward normal n
@@ -687,8 +758,9 @@ def reflector_points(gathers, fits, ground=None, cross_component=None) -> Reflec
 
     Parameters
     ----------
-    gathers : core.model.GatherSet
-    fits : object
+    gathers : GatherSet
+        The gathers (positions in m).
+    fits : ShotFits or object
         Per-gather fit results with ``normal_distance_m``, ``s_along``,
         ``covariance`` (g, 3, 3) over (V, h, s), optionally
         ``cross_component`` and ``status``.
