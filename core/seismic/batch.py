@@ -134,7 +134,7 @@ def pad(
     if row is None:
         if fresh:
             return np.reshape(values, shape)
-        out = np.empty(shape, dtype=dtype)
+        out: np.ndarray = np.empty(shape, dtype=dtype)
         out[...] = np.reshape(values, shape) if np.ndim(values) else values
         return out
     out = np.full(shape, fill, dtype=dtype)
@@ -143,7 +143,7 @@ def pad(
 
 
 def unpad(padded: np.ndarray, row: Optional[np.ndarray], col: Optional[np.ndarray]) -> np.ndarray:
-    """Padded ``(g, nmax)`` values back to flat per-pick order (the inverse of :func:`pad`).
+    """Return padded ``(g, nmax)`` values to flat per-pick order (the inverse of :func:`pad`).
 
     Parameters
     ----------
@@ -309,7 +309,7 @@ def row_median(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
 
 
 def distinct_count(key: np.ndarray, mask: np.ndarray, resolution: float) -> np.ndarray:
-    """Number of distinct values per row, after rounding to ``resolution``.
+    """Count the distinct values of each row, after rounding to ``resolution``.
 
     Parameters
     ----------

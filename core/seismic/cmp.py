@@ -62,6 +62,7 @@ class CmpFits:
     weight: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of gathers."""
         return len(self.t0_s)
 
     @property
@@ -74,8 +75,8 @@ class CmpFits:
 class _CmpModel:
     """NMO hyperbola :math:`t^2 = t_0^2 + x^2/V_{nmo}^2` [Levin 1971]."""
 
-    n_params = 2
-    names = ("t0", "NMO velocity")
+    n_params: int = 2
+    names: tuple[str, ...] = ("t0", "NMO velocity")
 
     def __init__(self, x: np.ndarray):
         self.x = x
@@ -166,15 +167,15 @@ class _CmpModel:
         bad_v = ~((vn >= lo) & (vn <= hi))
         bad_t = ~(t0 > 1e-5)
         bad = bad_v | bad_t
-        reasons = {}
+        reasons: dict[int, str] = {}
         for k in np.flatnonzero(bad):
             if bad_v[k]:
-                reasons[k] = (
+                reasons[int(k)] = (
                     f"fitted NMO velocity {vn[k]:.0f} m/s is outside the plausible range "
                     f"{lo:.0f}-{hi:.0f} m/s; check the picks or the velocity limits"
                 )
             else:
-                reasons[k] = f"fitted zero-offset time {t0[k] * 1e3:.3g} ms is not positive; check the picks"
+                reasons[int(k)] = f"fitted zero-offset time {t0[k] * 1e3:.3g} ms is not positive; check the picks"
         return bad, reasons
 
 

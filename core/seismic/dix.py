@@ -173,7 +173,7 @@ def dix_intervals(
 
 
 def _per_reflector(value: Union[float, np.ndarray, None], shape: tuple[int, ...], name: str) -> np.ndarray:
-    """Standard errors broadcast to one per reflector (zeros for None)."""
+    """Broadcast standard errors to one per reflector (zeros for None)."""
     if value is None:
         return np.zeros(shape)
     a = np.asarray(value, dtype=float)

@@ -166,7 +166,8 @@ def plane_elevation(x_m: ArrayLike, y_m: ArrayLike, normal: ArrayLike, offset_m:
     -50.0
     """
     n = np.asarray(normal, dtype=float)
-    return (offset_m - n[..., 0] * x_m - n[..., 1] * y_m) / n[..., 2]
+    d, x, y = (np.asarray(v, dtype=float) for v in (offset_m, x_m, y_m))
+    return (d - n[..., 0] * x - n[..., 1] * y) / n[..., 2]
 
 
 def normal_distance(point_xyz: ArrayLike, normal: ArrayLike, offset_m: ArrayLike) -> np.ndarray:
@@ -194,7 +195,7 @@ def normal_distance(point_xyz: ArrayLike, normal: ArrayLike, offset_m: ArrayLike
     >>> float(normal_distance([5.0, 5.0, 2.0], n, d))
     42.0
     """
-    return offset_m - np.sum(np.asarray(normal, float) * np.asarray(point_xyz, float), axis=-1)
+    return np.asarray(offset_m, float) - np.sum(np.asarray(normal, float) * np.asarray(point_xyz, float), axis=-1)
 
 
 def image_source_traveltime(
@@ -238,7 +239,7 @@ def image_source_traveltime(
     n = np.asarray(normal, dtype=float)
     h = normal_distance(s, n, offset_m)
     image = s + 2.0 * h[..., None] * n
-    return np.linalg.norm(r - image, axis=-1) / velocity_m_s
+    return np.linalg.norm(r - image, axis=-1) / np.asarray(velocity_m_s, dtype=float)
 
 
 def reflection_point(
@@ -318,7 +319,8 @@ def line_traveltime(
     26.6667
     """
     x = np.asarray(offset_m, dtype=float)
-    return np.sqrt(x * x + 4.0 * normal_distance_m * s * x + 4.0 * normal_distance_m**2) / velocity_m_s
+    h = np.asarray(normal_distance_m, dtype=float)
+    return np.sqrt(x * x + 4.0 * h * np.asarray(s, dtype=float) * x + 4.0 * h**2) / np.asarray(velocity_m_s, float)
 
 
 def cmp_traveltime(
@@ -361,7 +363,8 @@ def cmp_traveltime(
     x = np.asarray(offset_m, dtype=float)
     sd = np.sin(np.radians(dip_deg))
     cb = np.cos(np.radians(beta_deg))
-    return np.sqrt(t0_s**2 + x * x * (1.0 - (sd * cb) ** 2) / velocity_m_s**2)
+    t0 = np.asarray(t0_s, dtype=float)
+    return np.sqrt(t0**2 + x * x * (1.0 - (sd * cb) ** 2) / np.asarray(velocity_m_s, dtype=float) ** 2)
 
 
 def layered_t0_vrms(thickness_m: ArrayLike, interval_velocity_m_s: ArrayLike) -> tuple[np.ndarray, np.ndarray]:

@@ -64,7 +64,7 @@ import numpy as np
 from ..errors import InversionError
 from ..survey.model import Settings
 from .batch import distinct_count, inverse_small, row_median
-from .lm import LmModel, Rows, batched_least_squares, block_slices, map_blocks
+from .lm import LmModel, Rows, batched_least_squares, block_slices, map_blocks, times_and_jacobian
 from .robust import check_loss, rho_prime, variance_inflation
 
 __all__ = [
@@ -115,33 +115,123 @@ class GatherModel(LmModel, Protocol):
     offset_resolution: float
 
     def take(self, rows: Rows) -> GatherModel:
-        """Return the model restricted to some gathers (index, boolean mask or slice)."""
+        """Return the model restricted to some gathers.
+
+        Parameters
+        ----------
+        rows : slice, int ndarray or bool ndarray
+            The rows (gathers) to keep.
+
+        Returns
+        -------
+        GatherModel
+        """
         ...
 
     def natural(self, theta: np.ndarray) -> np.ndarray:
-        """Return the reported parameters (k, p) from the internal ones."""
+        """Return the reported parameters from the internal ones.
+
+        Parameters
+        ----------
+        theta : (k, p) ndarray
+            Internal parameters.
+
+        Returns
+        -------
+        (k, p) ndarray
+            Reported parameters (in their units, e.g. m/s, m).
+        """
         ...
 
     def natural_jacobian(self, J: np.ndarray, theta: np.ndarray) -> np.ndarray:
-        """Return the Jacobian in the reported parameters from the one in the internal ones."""
+        """Return the Jacobian in the reported parameters from the one in the internal ones.
+
+        Parameters
+        ----------
+        J : (k, p, nmax) ndarray
+            Derivatives of the times (s) with respect to the internal parameters.
+        theta : (k, p) ndarray
+            Internal parameters where J was taken.
+
+        Returns
+        -------
+        (k, p, nmax) ndarray
+            Derivatives with respect to the reported parameters (chain rule).
+        """
         ...
 
     def internal(self, params: np.ndarray) -> np.ndarray:
-        """Return the internal parameters (k, p) from the reported ones."""
+        """Return the internal parameters from the reported ones.
+
+        Parameters
+        ----------
+        params : (k, p) ndarray
+            Reported parameters.
+
+        Returns
+        -------
+        (k, p) ndarray
+            Internal parameters.
+        """
         ...
 
     def start(
         self, t: np.ndarray, sigma: np.ndarray, usable: np.ndarray, settings: Settings
     ) -> tuple[np.ndarray, np.ndarray]:
-        """Return internal start parameters (k, p) and a flag for a start from the full linear fit."""
+        """Return start values from a weighted linear fit in :math:`t^2`.
+
+        Parameters
+        ----------
+        t, sigma : (k, nmax) ndarray
+            Padded two-way times and pick errors (s).
+        usable : (k, nmax) bool ndarray
+            Picks taking part.
+        settings : Settings
+            The plausible velocity range.
+
+        Returns
+        -------
+        theta : (k, p) ndarray
+            Internal start parameters.
+        full : (k,) bool ndarray
+            The start came from the full linear fit (not a fallback).
+        """
         ...
 
     def reference(self, params: np.ndarray, settings: Settings) -> np.ndarray:
-        """Return the nearest plausible parameters (for the conditioning check)."""
+        """Return the nearest plausible parameters (for the conditioning check).
+
+        Parameters
+        ----------
+        params : (k, p) ndarray
+            Reported parameters of non-physical fits.
+        settings : Settings
+            The plausible velocity range.
+
+        Returns
+        -------
+        (k, p) ndarray
+            Plausible parameters with the same zero-offset time.
+        """
         ...
 
     def physical(self, params: np.ndarray, settings: Settings) -> tuple[np.ndarray, dict[int, str]]:
-        """Return a flag for non-physical parameters and a reason for each flagged row."""
+        """Flag non-physical parameters.
+
+        Parameters
+        ----------
+        params : (k, p) ndarray
+            Reported parameters.
+        settings : Settings
+            The plausible velocity range.
+
+        Returns
+        -------
+        bad : (k,) bool ndarray
+            Non-physical rows.
+        reasons : dict
+            Row to a sentence saying why.
+        """
         ...
 
 
@@ -149,7 +239,17 @@ class GatherBlocks(Protocol):
     """Gathers that give the :class:`GatherModel` of any block of them (e.g. a :class:`GatherModel`)."""
 
     def take(self, rows: Rows) -> GatherModel:
-        """Return the model of some gathers (index, boolean mask or slice)."""
+        """Return the model of some gathers.
+
+        Parameters
+        ----------
+        rows : slice, int ndarray or bool ndarray
+            The rows (gathers) to keep.
+
+        Returns
+        -------
+        GatherModel
+        """
         ...
 
 
@@ -510,23 +610,23 @@ def _fit_block(
             # unable to separate the parameters (then it is ill-conditioned) or are the data wrong?
             jb = np.flatnonzero(bad)
             ref = sub.take(jb).reference(params[fi[jb]], settings)
-            _, Jr = sub.take(jb).evaluate(ref, natural=True)
+            _, Jr = times_and_jacobian(sub.take(jb), ref, natural=True)
             cond[fi[jb]] = _scaled_normal_matrix(Jr, inv_s[jb])[2]
 
     status = np.full(g, _OK, dtype=int)
-    reasons = {}
+    reasons: dict[int, str] = {}
     # precedence: too few picks > ill-conditioned > nonphysical > not converged
     for kk in np.flatnonzero(~fitted):
         status[kk] = _FEW
         if few_after[kk]:
             nr = int((rejected[kk] & base[kk]).sum())
             nu = int((base[kk] & ~rejected[kk]).sum())
-            reasons[kk] = (
+            reasons[int(kk)] = (
                 f"only {nu} usable picks remain after rejecting {nr} mispicks; at least "
                 f"{min_picks} picks at {min_distinct} distinct offsets are needed"
             )
         else:
-            reasons[kk] = (
+            reasons[int(kk)] = (
                 f"only {int(n_used0[kk])} usable picks at {int(n_dist0[kk])} distinct offsets; "
                 f"at least {min_picks} picks at {min_distinct} distinct offsets are needed"
             )
@@ -535,23 +635,23 @@ def _fit_block(
         for j in np.flatnonzero(ill):
             kk = fi[j]
             status[kk] = _ILL
-            reasons[kk] = (
+            reasons[int(kk)] = (
                 f"{model.names[0]} and {model.names[1]} trade off (condition number {cond[kk]:.2g} "
                 f"> {CONDITION_LIMIT:.0e}): the offsets are too short for the reflector depth; "
                 "use longer offsets or fix the velocity from neighbouring gathers"
             )
-        for j, text in why.items():
-            if not ill[j]:
-                status[fi[j]] = _NONPHYS
-                reasons[fi[j]] = text
+        for jw, text in why.items():
+            if not ill[jw]:
+                status[fi[jw]] = _NONPHYS
+                reasons[int(fi[jw])] = text
         noconv = ~converged[fi] & ~bad & ~ill
         for j in np.flatnonzero(noconv):
             kk = fi[j]
             status[kk] = _NOCONV
-            reasons[kk] = f"the fit did not converge in {int(iterations[kk])} iterations; check the picks"
+            reasons[int(kk)] = f"the fit did not converge in {int(iterations[kk])} iterations; check the picks"
     reason = np.full(g, "fit accepted", dtype=object)
-    for kk, text in reasons.items():
-        reason[kk] = text
+    for row, text in reasons.items():
+        reason[row] = text
     return PaddedFits(
         params=params,
         covariance=cov,

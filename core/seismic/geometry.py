@@ -99,7 +99,7 @@ class LineFrame:
     unit: np.ndarray
     cross_unit: np.ndarray
     azimuth_deg: float
-    polyline: object
+    polyline: Any
     length_m: float
 
     @property

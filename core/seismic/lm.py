@@ -29,6 +29,7 @@ from typing import Any, Callable, Optional, Protocol, TypeVar, Union
 
 import numpy as np
 
+from ..errors import InversionError
 from ..progress import check_cancel
 from .batch import safe_solve
 from .robust import loss_terms
@@ -43,6 +44,7 @@ __all__ = [
     "batched_least_squares",
     "block_slices",
     "map_blocks",
+    "times_and_jacobian",
     "worker_count",
 ]
 
@@ -70,11 +72,38 @@ class LmModel(Protocol):
     def evaluate(
         self, theta: np.ndarray, natural: bool = False, jacobian: bool = True
     ) -> tuple[np.ndarray, Optional[np.ndarray]]:
-        """Return the modelled times (k, nmax) in s and the Jacobian (k, p, nmax), or None without ``jacobian``."""
+        """Return the modelled times and their derivatives.
+
+        Parameters
+        ----------
+        theta : (k, p) ndarray
+            Parameters of each row (internal ones, or the reported ones with ``natural``).
+        natural : bool
+            ``theta`` holds the reported parameters.
+        jacobian : bool
+            Also compute the Jacobian.
+
+        Returns
+        -------
+        time_s : (k, nmax) ndarray
+            Modelled two-way times (s).
+        jacobian : (k, p, nmax) ndarray or None
+            Their derivatives with respect to ``theta`` (None without ``jacobian``).
+        """
         ...
 
     def take(self, rows: Rows) -> LmModel:
-        """Return the model restricted to some rows (index, boolean mask or slice)."""
+        """Return the model restricted to some rows.
+
+        Parameters
+        ----------
+        rows : slice, int ndarray or bool ndarray
+            The rows (gathers) to keep.
+
+        Returns
+        -------
+        LmModel
+        """
         ...
 
 
@@ -118,6 +147,36 @@ class LmSolution:
             One solution over all rows.
         """
         return cls(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(cls)))
+
+
+def times_and_jacobian(model: LmModel, theta: np.ndarray, natural: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Evaluate a model's times and Jacobian, which it must provide.
+
+    Parameters
+    ----------
+    model : LmModel
+        The model.
+    theta : (k, p) ndarray
+        Parameters (internal, or reported with ``natural``).
+    natural : bool
+        ``theta`` holds the reported parameters.
+
+    Returns
+    -------
+    time_s : (k, nmax) ndarray
+        Modelled times (s).
+    jacobian : (k, p, nmax) ndarray
+        Their derivatives with respect to ``theta``.
+
+    Raises
+    ------
+    InversionError
+        When the model returns no Jacobian (a programming error in the model).
+    """
+    t, J = model.evaluate(theta, natural=natural)
+    if J is None:
+        raise InversionError(f"{type(model).__name__}.evaluate gave no Jacobian; it must give one by default")
+    return t, J
 
 
 def worker_count() -> int:
@@ -325,7 +384,7 @@ def _lm_block(
     theta = theta_out.copy()
     t_obs = time
     inv_s = np.where(usable, 1.0 / sigma, 0.0)
-    pred, J = model.evaluate(theta)
+    pred, J = times_and_jacobian(model, theta)
     e = (t_obs - pred) * inv_s
     cost, r1, wc = loss_terms(e, loss, f_scale)
     lam = np.full(k, INITIAL_DAMPING)
@@ -380,7 +439,7 @@ def _lm_block(
                 t_obs, inv_s = t_obs[keep], inv_s[keep]
                 model = model.take(keep)
         th_new = theta + delta
-        pred_new, J_new = model.evaluate(th_new)
+        pred_new, J_new = times_and_jacobian(model, th_new)
         e_new = t_obs - pred_new
         e_new *= inv_s
         cost_new, r1_new, wc_new = loss_terms(e_new, loss, f_scale)

@@ -43,6 +43,7 @@ class Misties:
     status: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of crossings (rows)."""
         return len(self.x_m)
 
 
@@ -175,7 +176,7 @@ def line_misties(
                 reasons = [f"line {n}: {why}" for n, why in ((a, why_a), (b, why_b)) if why != "ok"]
                 rows.append((x, y, a, b, refl, ca, cb, za, zb, za - zb, np.hypot(sa, sb),
                              "ok" if not reasons else "no value: " + "; ".join(reasons)))
-    cols = list(zip(*rows)) if rows else [[] for _ in range(12)]
+    cols: list[Any] = list(zip(*rows)) if rows else [[] for _ in range(12)]
     f = lambda i: np.asarray(cols[i], dtype=float)  # noqa: E731
     o = lambda i: np.asarray(cols[i], dtype=object)  # noqa: E731
     return Misties(

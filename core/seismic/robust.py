@@ -166,7 +166,7 @@ def rho(z: np.ndarray, loss: str) -> np.ndarray:
 
 
 def rho_prime(z: np.ndarray, loss: str) -> np.ndarray:
-    r"""Derivative :math:`\rho'(z)`: the iteratively-reweighted-least-squares weight of a residual.
+    r"""Compute :math:`\rho'(z)`, the iteratively-reweighted-least-squares weight of a residual.
 
     Parameters
     ----------

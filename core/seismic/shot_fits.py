@@ -40,7 +40,7 @@ from ..survey.model import GatherSet, Settings
 from .batch import pad, pad_layout, row_sum, safe_solve, unpad
 from .gather_fit import check_pick_times, exclude_mask, fit_padded_gathers
 from .geometry import gather_normals
-from .lm import Rows
+from .lm import Rows, times_and_jacobian
 
 __all__ = ["MIN_NORMAL_DISTANCE_M", "S_LIMIT", "ShotFits", "fit_shot_gathers", "linear_start"]
 
@@ -94,6 +94,7 @@ class ShotFits:
     weight: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of gathers."""
         return len(self.velocity_m_s)
 
     @property
@@ -134,8 +135,8 @@ class _ShotModel:
     quadratic :math:`t^2V^2 = x^2 + 4hsx + 4h^2`; s = 0: [Green 1938].
     """
 
-    n_params = 3
-    names = ("velocity", "normal distance", "s")
+    n_params: int = 3
+    names: tuple[str, ...] = ("velocity", "normal distance", "s")
 
     def __init__(self, x: np.ndarray, y: np.ndarray, dz: np.ndarray, d2: np.ndarray, q: np.ndarray):
         self.x, self.y, self.dz, self.d2 = x, y, dz, d2
@@ -165,7 +166,7 @@ class _ShotModel:
             Jn = J / scale[:, :, None]
         bad = ~np.all(np.isfinite(scale) & (scale > 0), axis=1)
         if np.any(bad):  # s at its bound: evaluate the natural derivatives directly
-            Jn[bad] = self.take(bad).evaluate(self.take(bad).natural(theta[bad]), natural=True)[1]
+            Jn[bad] = times_and_jacobian(self.take(bad), self.take(bad).natural(theta[bad]), natural=True)[1]
         return Jn
 
     def internal(self, params: np.ndarray) -> np.ndarray:
@@ -316,17 +317,17 @@ class _ShotModel:
         bad_h = ~(h >= MIN_NORMAL_DISTANCE_M)
         bad_s = ~(np.abs(s) < S_LIMIT * smax)
         bad = bad_v | bad_h | bad_s
-        reasons = {}
+        reasons: dict[int, str] = {}
         for k in np.flatnonzero(bad):
             if bad_v[k]:
-                reasons[k] = (
+                reasons[int(k)] = (
                     f"fitted velocity {V[k]:.0f} m/s is outside the plausible range "
                     f"{lo:.0f}-{hi:.0f} m/s; check the picks (wrong event?) or the velocity limits"
                 )
             elif bad_h[k]:
-                reasons[k] = f"the fit puts the reflector at the source (h = {h[k]:.3g} m); check the picks"
+                reasons[int(k)] = f"the fit puts the reflector at the source (h = {h[k]:.3g} m); check the picks"
             else:
-                reasons[k] = (
+                reasons[int(k)] = (
                     f"the moveout asymmetry needs s = {s[k]:+.4f}, a near-vertical reflector; "
                     "check the picks or the cross-line component"
                 )
@@ -362,7 +363,7 @@ class _ShotComponents:
 def _shot_model(
     gathers: GatherSet, q: np.ndarray
 ) -> tuple[_ShotComponents, Optional[np.ndarray], Optional[np.ndarray], tuple[int, int]]:
-    """Padded components of a GatherSet for the image-source model: (components, row, col, shape)."""
+    """Pad a GatherSet's components for the image-source model: (components, row, col, shape)."""
     gid = np.asarray(gathers.gather, dtype=np.intp)
     g = gathers.n_gathers
     row, col, nmax = pad_layout(gid, g)

@@ -1,10 +1,10 @@
 r"""Dip and strike algebra: true dip from crossing lines, apparent dips, surface dips.
 
-Conventions (DESIGN.md s.3): azimuths clockwise from grid north in [0, 360);
+Conventions (DEVELOPERS.md): azimuths clockwise from grid north in [0, 360);
 dip below horizontal in [0, 90); dip direction = azimuth toward which the
 reflector deepens; strike by the right-hand rule, dip direction = strike + 90.
 
-Two different "dips along a line" must be kept apart (DESIGN.md s.4):
+Two different "dips along a line" must be kept apart:
 
 * the **apparent dip** of the reflector's trace in a vertical section at angle
   beta to the dip direction, :math:`\tan\alpha = \tan\delta\cos\beta`
@@ -32,10 +32,13 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any, Callable, Optional
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import InversionError
+from ..survey.model import GatherSet
 from .geometry import gather_normals, vector_azimuth_deg
 
 __all__ = [
@@ -66,25 +69,49 @@ STATUS_POOR = "poorly_constrained"
 # ---------------------------------------------------------------------------
 
 
-def strike_from_dip_direction(dip_direction_deg):
+def strike_from_dip_direction(dip_direction_deg: ArrayLike) -> np.ndarray:
     """Right-hand-rule strike: dip direction - 90, in [0, 360).
 
+    Parameters
+    ----------
+    dip_direction_deg : float or array_like
+        Azimuth toward which the plane deepens (degrees clockwise from north).
+
+    Returns
+    -------
+    ndarray
+        Strike azimuth (degrees, [0, 360)), the dip to its right.
+
+    Examples
+    --------
     >>> float(strike_from_dip_direction(45.0)), float(strike_from_dip_direction(30.0))
     (315.0, 300.0)
     """
     return (np.asarray(dip_direction_deg, dtype=float) - 90.0) % 360.0
 
 
-def dip_direction_from_strike(strike_deg):
+def dip_direction_from_strike(strike_deg: ArrayLike) -> np.ndarray:
     """Dip direction from a right-hand-rule strike: strike + 90, in [0, 360).
 
+    Parameters
+    ----------
+    strike_deg : float or array_like
+        Strike azimuth by the right-hand rule (degrees clockwise from north).
+
+    Returns
+    -------
+    ndarray
+        Dip direction (degrees, [0, 360)).
+
+    Examples
+    --------
     >>> float(dip_direction_from_strike(315.0))
     45.0
     """
     return (np.asarray(strike_deg, dtype=float) + 90.0) % 360.0
 
 
-def apparent_dip_deg(true_dip_deg, beta_deg):
+def apparent_dip_deg(true_dip_deg: ArrayLike, beta_deg: ArrayLike) -> np.ndarray:
     r"""Apparent dip of a plane in a vertical section (structural geology).
 
     .. math:: \tan\alpha = \tan\delta\,\cos\beta
@@ -94,6 +121,20 @@ def apparent_dip_deg(true_dip_deg, beta_deg):
     2007]. Signed: positive when the section's direction points down-dip
     (:math:`|\beta| < 90`).
 
+    Parameters
+    ----------
+    true_dip_deg : float or array_like
+        True dip :math:`\delta` (degrees).
+    beta_deg : float or array_like
+        Angle :math:`\beta` between the section and the dip direction (degrees).
+
+    Returns
+    -------
+    ndarray
+        Apparent dip :math:`\alpha` (degrees).
+
+    Examples
+    --------
     >>> round(float(apparent_dip_deg(30.0, 60.0)), 2)
     16.1
     """
@@ -102,7 +143,7 @@ def apparent_dip_deg(true_dip_deg, beta_deg):
     return np.degrees(np.arctan(np.tan(dip) * np.cos(beta)))
 
 
-def traveltime_dip_deg(true_dip_deg, beta_deg):
+def traveltime_dip_deg(true_dip_deg: ArrayLike, beta_deg: ArrayLike) -> np.ndarray:
     r"""Dip a straight line's traveltime fit sees: asin(sin(dip) cos(beta)).
 
     .. math:: \sin\alpha_t = s = \sin\delta\,\cos\beta
@@ -110,6 +151,20 @@ def traveltime_dip_deg(true_dip_deg, beta_deg):
     [Sheriff & Geldart 1995, ch. 4]. Not the apparent dip of
     :func:`apparent_dip_deg`.
 
+    Parameters
+    ----------
+    true_dip_deg : float or array_like
+        True dip :math:`\delta` (degrees).
+    beta_deg : float or array_like
+        Angle :math:`\beta` between the line and the dip direction (degrees).
+
+    Returns
+    -------
+    ndarray
+        Traveltime dip :math:`\alpha_t` (degrees).
+
+    Examples
+    --------
     >>> round(float(traveltime_dip_deg(30.0, 60.0)), 2)
     14.48
     """
@@ -171,14 +226,16 @@ class DipMeasurements:
     gather_measurement: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of measurements."""
         return len(self.x_m)
 
     @property
     def ok(self) -> np.ndarray:
+        """Boolean mask of the measurements with status ``ok``."""
         return self.status == STATUS_OK
 
 
-def _se_s(fits, g):
+def _se_s(fits: Any, g: int) -> np.ndarray:
     se = getattr(fits, "se_s_along", None)
     if se is None:
         cov = getattr(fits, "covariance", None)
@@ -188,15 +245,34 @@ def _se_s(fits, g):
     return np.asarray(se, dtype=float)
 
 
-def zero_offset_points_xy(gathers, fits) -> np.ndarray:
-    """Horizontal position (g, 2) of each gather's zero-offset point S + h n."""
+def zero_offset_points_xy(gathers: GatherSet, fits: Any) -> np.ndarray:
+    r"""Horizontal position of each gather's zero-offset point :math:`\mathbf S + h\mathbf n`.
+
+    Parameters
+    ----------
+    gathers : GatherSet
+        The gathers (``source_xyz_g``, line frames).
+    fits : ShotFits or alike
+        ``normal_distance_m``, ``s_along`` and optionally ``cross_component``.
+
+    Returns
+    -------
+    (g, 2) ndarray
+        Easting and northing (m); NaN for a gather without a fit.
+    """
     n = gather_normals(gathers, fits)
     h = np.asarray(fits.normal_distance_m, dtype=float)
     return np.asarray(gathers.source_xyz_g, float)[:, :2] + h[:, None] * n[:, :2]
 
 
-def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_condition=None):
-    r"""True dip and dip direction where gathers of different line directions meet.
+def combine_lines(
+    gathers: GatherSet,
+    fits: Any,
+    radius_m: Optional[float] = None,
+    min_angle_deg: float = 30.0,
+    max_condition: Optional[float] = None,
+) -> DipMeasurements:
+    r"""Find the true dip and dip direction where gathers of different line directions meet.
 
     Each gather k with line unit :math:`\mathbf u_k` fitted
     :math:`s_k = -\mathbf u_k\cdot\mathbf n`; only the horizontal part
@@ -210,7 +286,7 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
         \qquad \sin\delta = |\mathbf n_h|,\qquad
         \phi = \operatorname{az}(-\mathbf n_h)
 
-    (DESIGN.md s.4). The covariance of :math:`\mathbf n_h` is
+    The covariance of :math:`\mathbf n_h` is
     :math:`(A^TWA)^{-1}`, multiplied by :math:`F = \chi^2/(n-2)` when
     :math:`\chi^2` exceeds its 95 % quantile for n - 2 degrees of freedom,
     i.e. when the cluster's scatter is significantly larger than the
@@ -234,15 +310,16 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
 
     Parameters
     ----------
-    gathers : core.model.GatherSet
+    gathers : GatherSet
+        The gathers (line units, zero-offset points, reflector labels).
     fits : ShotFits or alike
         Uses ``s_along``, ``se_s_along`` (or ``covariance``),
         ``normal_distance_m``, ``cross_component`` and ``status`` (only
         ``"ok"`` gathers are combined when a status is present).
     radius_m : float, optional
-        Cluster radius; default half the median spread length.
+        Cluster radius (m); default half the median spread length.
     min_angle_deg : float
-        Least angle between two line directions of one cluster.
+        Least angle between two line directions of one cluster (degrees).
     max_condition : float, optional
         Largest condition number :math:`\sqrt{\lambda_{max}/\lambda_{min}}`
         of the weighted design matrix; default
@@ -252,6 +329,12 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     Returns
     -------
     DipMeasurements
+        One row per cluster (dips in degrees, azimuths clockwise from north).
+
+    Raises
+    ------
+    InversionError
+        ``min_angle_deg`` outside (0, 90] or ``radius_m`` not a distance.
     """
     from scipy.spatial import cKDTree
     from scipy.stats import chi2 as chi2_dist
@@ -282,7 +365,7 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     line = np.asarray(gathers.line).astype(str)
     refl = np.asarray(gathers.reflector).astype(str)
     membership = np.full(g, -1, dtype=np.int64)
-    clusters = []  # (reflector, member indices)
+    clusters: list[tuple[str, np.ndarray]] = []  # (reflector, member indices)
     for name in sorted(set(refl[usable])):
         idx = np.flatnonzero(usable & (refl == name))
         tree = cKDTree(xy[idx])
@@ -413,16 +496,32 @@ def combine_lines(gathers, fits, radius_m=None, min_angle_deg=30.0, max_conditio
     )
 
 
-def cross_components(gathers, dips, max_distance_m=None) -> np.ndarray:
-    r"""Resolved cross-line component :math:`q_k = -\mathbf w_k\cdot\mathbf n_h` per gather.
+def cross_components(
+    gathers: GatherSet, dips: DipMeasurements, max_distance_m: Optional[float] = None
+) -> np.ndarray:
+    r"""Find the resolved cross-line component :math:`q_k = -\mathbf w_k\cdot\mathbf n_h` of each gather.
 
     Uses the measurement each gather belongs to (``dips.gather_measurement``)
     when its status is ``"ok"``. With ``max_distance_m``, a gather outside
     any good measurement takes the nearest good measurement of its reflector
     whose centre lies within that distance of the gather's source. NaN where
-    nothing applies. Feed the result to the inversion (``cross_component``) to
+    nothing applies. Feed the result to the shot fits (``cross_component``) to
     refit with the resolved cross-line dip, NaN entries meaning "not
     resolved" (use 0 there).
+
+    Parameters
+    ----------
+    gathers : GatherSet
+        The gathers (cross units, sources, reflector labels).
+    dips : DipMeasurements
+        From :func:`combine_lines`.
+    max_distance_m : float, optional
+        Reach of a good measurement to gathers outside it (m).
+
+    Returns
+    -------
+    (g,) ndarray
+        q per gather (dimensionless, |q| < 1), NaN where not resolved.
     """
     from scipy.spatial import cKDTree
 
@@ -452,8 +551,18 @@ def cross_components(gathers, dips, max_distance_m=None) -> np.ndarray:
     return q
 
 
-def resolve_cross_dips(gathers, refit, fits=None, *, radius_m=None, min_angle_deg=30.0, max_condition=None,
-                       max_distance_m=None, max_iter=8, tol=1e-9):
+def resolve_cross_dips(
+    gathers: GatherSet,
+    refit: Callable[[np.ndarray], Any],
+    fits: Any = None,
+    *,
+    radius_m: Optional[float] = None,
+    min_angle_deg: float = 30.0,
+    max_condition: Optional[float] = None,
+    max_distance_m: Optional[float] = None,
+    max_iter: int = 8,
+    tol: float = 1e-9,
+) -> tuple[Any, DipMeasurements, np.ndarray, int]:
     r"""Alternate :func:`combine_lines` and a refit with the resolved cross-line components.
 
     A gather fitted with q assumed 0 has a slightly biased s where the
@@ -466,16 +575,21 @@ def resolve_cross_dips(gathers, refit, fits=None, *, radius_m=None, min_angle_de
 
     Parameters
     ----------
-    gathers : core.model.GatherSet
+    gathers : GatherSet
+        The gathers.
     refit : callable
         ``refit(q) -> fits`` with q per gather (0 where unresolved), e.g.
-        ``lambda q: inversion.fit_shot_gathers(gathers, settings, cross_component=q)``.
-    fits : optional
+        ``lambda q: shot_fits.fit_shot_gathers(gathers, settings, cross_component=q)``.
+    fits : ShotFits or alike, optional
         Fits with q = 0 to start from (``refit(zeros)`` when omitted).
-    radius_m, min_angle_deg, max_condition
-        Passed to :func:`combine_lines`.
-    max_distance_m
-        Passed to :func:`cross_components`.
+    radius_m, min_angle_deg, max_condition : float, optional
+        Passed to :func:`combine_lines` (m, degrees, dimensionless).
+    max_distance_m : float, optional
+        Passed to :func:`cross_components` (m).
+    max_iter : int
+        Most refits.
+    tol : float
+        Largest change of any q (dimensionless) that counts as converged.
 
     Returns
     -------
@@ -487,7 +601,6 @@ def resolve_cross_dips(gathers, refit, fits=None, *, radius_m=None, min_angle_de
     if fits is None:
         fits = refit(np.zeros(g))
     q_used = np.zeros(g)
-    dips = q = None
     rounds = 0
     for rounds in range(1, max_iter + 1):
         dips = combine_lines(gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg,
@@ -512,7 +625,19 @@ def resolve_cross_dips(gathers, refit, fits=None, *, radius_m=None, min_angle_de
 
 @dataclass(frozen=True)
 class SurfaceDips:
-    """Dip symbols sampled from a gridded reflector surface (one row per symbol)."""
+    """Dip symbols sampled from a gridded reflector surface (one row per symbol).
+
+    Attributes
+    ----------
+    x_m, y_m : (k,) ndarray
+        Symbol position (m, working CRS).
+    elevation_m : (k,) ndarray
+        Surface elevation there (m).
+    dip_deg : (k,) ndarray
+        Dip of the surface (degrees).
+    dip_direction_deg, strike_deg : (k,) ndarray
+        Dip direction and right-hand-rule strike (degrees clockwise from north).
+    """
 
     x_m: np.ndarray
     y_m: np.ndarray
@@ -522,38 +647,50 @@ class SurfaceDips:
     strike_deg: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of symbols."""
         return len(self.x_m)
 
 
-def surface_dips(x_m, y_m, z_grid, spacing_m, mask=None) -> SurfaceDips:
+def surface_dips(
+    x_m: ArrayLike, y_m: ArrayLike, z_grid: ArrayLike, spacing_m: float, mask: Optional[ArrayLike] = None
+) -> SurfaceDips:
     r"""Dip and dip direction of a gridded surface, sampled every ``spacing_m``.
 
     .. math::
 
         \delta = \arctan|\nabla z|, \qquad \phi = \operatorname{az}(-\nabla z)
 
-    (DESIGN.md s.4) with the gradient by central differences in metres
+    with the gradient by central differences in metres
     (``numpy.gradient`` with the axis coordinates, so a north-up grid with
     decreasing y is handled). Cells whose gradient involves a NaN cell are
     skipped.
 
     Parameters
     ----------
-    x_m : (nx,) array
-        Cell-centre eastings (equally or unequally spaced, monotonic).
-    y_m : (ny,) array
-        Cell-centre northings (increasing or decreasing).
-    z_grid : (ny, nx) array
-        Elevations, NaN = no data.
+    x_m : (nx,) array_like
+        Cell-centre eastings (m; equally or unequally spaced, monotonic).
+    y_m : (ny,) array_like
+        Cell-centre northings (m; increasing or decreasing).
+    z_grid : (ny, nx) array_like
+        Elevations (m), NaN = no data.
     spacing_m : float
-        Distance between symbols (rounded to whole cells, at least one).
-    mask : (ny, nx) bool array, optional
+        Distance between symbols (m; rounded to whole cells, at least one).
+    mask : (ny, nx) bool array_like, optional
         True where symbols may be placed.
 
     Returns
     -------
     SurfaceDips
+        One row per symbol.
 
+    Raises
+    ------
+    InversionError
+        Grid and axes of different shapes, a grid under 2 x 2, a spacing that
+        is not a positive distance, or a mask of another shape.
+
+    Examples
+    --------
     >>> x = np.arange(5.0) * 10; y = np.arange(4.0) * 10
     >>> z = -0.5 * x[None, :] + 0 * y[:, None]   # deepens toward the east
     >>> d = surface_dips(x, y, z, 20.0)
@@ -577,9 +714,9 @@ def surface_dips(x_m, y_m, z_grid, spacing_m, mask=None) -> SurfaceDips:
     step_y = max(1, round(float(spacing_m / abs(np.median(np.diff(y))))))
     iy = np.arange(step_y // 2, len(y), step_y)
     ix = np.arange(step_x // 2, len(x), step_x)
-    jj, ii = np.meshgrid(iy, ix, indexing="ij")
-    jj = jj.ravel()
-    ii = ii.ravel()
+    jj_grid, ii_grid = np.meshgrid(iy, ix, indexing="ij")
+    jj = jj_grid.ravel()
+    ii = ii_grid.ravel()
     gx = dz_dx[jj, ii]
     gy = dz_dy[jj, ii]
     keep = np.isfinite(gx) & np.isfinite(gy) & np.isfinite(z[jj, ii])

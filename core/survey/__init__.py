@@ -1,1 +1,1 @@
-"""survey"""
+"""The survey: survey.toml and the CSV tables it names, the ground model, the frozen survey containers."""

@@ -83,7 +83,7 @@ def _processing_fields() -> dict[str, dataclasses.Field]:
 
 
 def toml_keys() -> dict[str, tuple[str, ...]]:
-    """Valid keys of each table of survey.toml.
+    """Return the valid keys of each table of survey.toml.
 
     Returns
     -------

@@ -26,8 +26,12 @@ from __future__ import annotations
 
 import os
 import warnings
+from pathlib import Path
+from typing import Callable, Optional, Union, cast
 
 import numpy as np
+import pyproj
+from numpy.typing import ArrayLike
 
 from ..crs import parse_crs
 from ..errors import GeoreferenceError, InputFileError, RockheadWarning
@@ -109,23 +113,84 @@ class GroundModel:
         One line for the report (file name, CRS, number of stations).
     """
 
-    def __init__(self, sampler, source: str, description: str, extent=None):
+    def __init__(
+        self,
+        sampler: Callable[[np.ndarray, np.ndarray], np.ndarray],
+        source: str,
+        description: str,
+        extent: Optional[tuple[float, float, float, float]] = None,
+    ):
         self._sampler = sampler
         self.source_ = source
         self.description_ = description
         self._extent = extent  # (xmin, xmax, ymin, ymax) in the sampler's CRS, DEM only
-        self._to_dem = None
+        self._to_dem: Optional[pyproj.Transformer] = None
 
     # ---------------------------------------------------------------- DEM
     @classmethod
-    def from_raster(cls, path, working_crs=None, *, band: int = 1, engine=None) -> GroundModel:
-        """Ground model from a DEM file (any format GDAL reads; see :func:`.geotiff.read_raster`)."""
+    def from_raster(
+        cls,
+        path: Union[str, Path],
+        working_crs: Optional[Union[str, int, pyproj.CRS]] = None,
+        *,
+        band: int = 1,
+        engine: Optional[str] = None,
+    ) -> GroundModel:
+        """Build the ground model from a DEM file (any format GDAL reads).
+
+        Parameters
+        ----------
+        path : str or Path
+            The DEM file (heights in m, on the survey's vertical datum).
+        working_crs : str, int or pyproj.CRS, optional
+            The survey's working CRS; a DEM in another CRS is sampled through
+            a transformation.
+        band : int
+            1-based band of the heights.
+        engine : {None, "gdal", "rasterio", "builtin"}
+            Reader, as in :func:`core.formats.geotiff.read_raster`.
+
+        Returns
+        -------
+        GroundModel
+            Bilinear in the DEM's cells (see the module notes).
+
+        Raises
+        ------
+        InputFileError
+            A DEM under 2 x 2 cells or without any valid cell (or unreadable).
+        GeoreferenceError
+            An unknown working CRS or no transformation to the DEM's CRS.
+        """
         raster = read_raster(path, band, engine=engine)
         return cls.from_dem(raster, working_crs, name=os.path.basename(os.fspath(path)))
 
     @classmethod
-    def from_dem(cls, raster: Raster, working_crs=None, *, name: str = "DEM") -> GroundModel:
-        """Ground model from a :class:`.geotiff.Raster` already in memory."""
+    def from_dem(
+        cls, raster: Raster, working_crs: Optional[Union[str, int, pyproj.CRS]] = None, *, name: str = "DEM"
+    ) -> GroundModel:
+        """Build the ground model from a DEM already in memory.
+
+        Parameters
+        ----------
+        raster : core.formats.geotiff.Raster
+            The DEM (heights in m; NaN for nodata).
+        working_crs : str, int or pyproj.CRS, optional
+            The survey's working CRS, as in :meth:`from_raster`.
+        name : str
+            The DEM's name in messages and the description.
+
+        Returns
+        -------
+        GroundModel
+
+        Raises
+        ------
+        InputFileError
+            A DEM under 2 x 2 cells or without any valid cell.
+        GeoreferenceError
+            An unknown working CRS or no transformation to the DEM's CRS.
+        """
         from scipy.interpolate import RegularGridInterpolator
 
         values = np.asarray(raster.values, dtype=float)
@@ -154,7 +219,7 @@ class GroundModel:
             return np.where(inside, z, np.nan)
 
         model = cls(sample, "dem", "", extent)
-        dem_crs = raster.crs
+        dem_crs = cast(Optional[pyproj.CRS], raster.crs)
         work = None if working_crs is None else parse_crs(working_crs)
         crs_note = dem_crs.name if dem_crs is not None else "no CRS"
         if work is not None and dem_crs is None:
@@ -163,9 +228,7 @@ class GroundModel:
                 RockheadWarning,
                 stacklevel=2,
             )
-        elif work is not None and not dem_crs.equals(work, ignore_axis_order=True):
-            import pyproj
-
+        elif work is not None and dem_crs is not None and not dem_crs.equals(work, ignore_axis_order=True):
             try:
                 model._to_dem = pyproj.Transformer.from_crs(work, dem_crs, always_xy=True)
             except pyproj.exceptions.ProjError as exc:
@@ -180,8 +243,26 @@ class GroundModel:
 
     # ----------------------------------------------------------- stations
     @classmethod
-    def from_stations(cls, x_m, y_m, z_m) -> GroundModel:
-        """Ground model interpolated from surveyed stations (see the module notes)."""
+    def from_stations(cls, x_m: ArrayLike, y_m: ArrayLike, z_m: ArrayLike) -> GroundModel:
+        """Build the ground model from surveyed stations (see the module notes).
+
+        Parameters
+        ----------
+        x_m, y_m : array_like
+            Station easting and northing in the working CRS (m).
+        z_m : array_like
+            Ground elevation at the stations (m).
+
+        Returns
+        -------
+        GroundModel
+            Linear on the stations' triangulation, flat beyond it.
+
+        Raises
+        ------
+        GeoreferenceError
+            Arrays of different lengths, or no station with finite x, y and z.
+        """
         from scipy.spatial import QhullError, cKDTree
 
         x = np.asarray(x_m, dtype=float).ravel()
@@ -233,8 +314,19 @@ class GroundModel:
         return cls(sample, "stations", note)
 
     # ------------------------------------------------------------ queries
-    def ground(self, x_m, y_m) -> np.ndarray:
-        """Ground elevation (m) at the points (x_m, y_m) of the working CRS (NaN off a DEM)."""
+    def ground(self, x_m: ArrayLike, y_m: ArrayLike) -> np.ndarray:
+        """Return the ground elevation at points of the working CRS.
+
+        Parameters
+        ----------
+        x_m, y_m : float or array_like
+            Easting and northing (m), broadcast together.
+
+        Returns
+        -------
+        ndarray
+            Ground elevation (m); NaN off a DEM or next to its nodata cells.
+        """
         px, py = np.broadcast_arrays(np.asarray(x_m, dtype=float), np.asarray(y_m, dtype=float))
         if self._to_dem is not None:
             px, py = self._to_dem.transform(px, py)
@@ -243,8 +335,21 @@ class GroundModel:
 
     __call__ = ground
 
-    def check_covers(self, x_m, y_m, what: str = "points") -> None:
-        """Raise :class:`GeoreferenceError` when some points have no ground elevation."""
+    def check_covers(self, x_m: ArrayLike, y_m: ArrayLike, what: str = "points") -> None:
+        """Check that every point has a ground elevation.
+
+        Parameters
+        ----------
+        x_m, y_m : float or array_like
+            Easting and northing (m).
+        what : str
+            What the points are, for the message.
+
+        Raises
+        ------
+        GeoreferenceError
+            Naming how many points have none and the first of them.
+        """
         z = self.ground(x_m, y_m)
         bad = ~np.isfinite(z)
         if np.any(bad):
@@ -257,4 +362,5 @@ class GroundModel:
             )
 
     def __repr__(self) -> str:
+        """Return the source and description."""
         return f"GroundModel({self.source_}: {self.description_})"

@@ -24,7 +24,19 @@ __all__ = ["Alignment", "Boreholes", "GatherSet", "Handoff", "Picks", "Settings"
 
 @dataclass(frozen=True)
 class Stations:
-    """Surveyed points (geophone stations and shot points), one row each."""
+    """Surveyed points (geophone stations and shot points), one row each.
+
+    Attributes
+    ----------
+    line, station : (n,) object ndarray of str
+        Line and station labels.
+    x_m, y_m : (n,) ndarray
+        Easting and northing in the working CRS (m).
+    z_m : (n,) ndarray
+        Ground elevation (m).
+    file_line : (n,) int ndarray
+        1-based line of each row in stations.csv.
+    """
 
     line: np.ndarray  # str
     station: np.ndarray  # str
@@ -34,6 +46,7 @@ class Stations:
     file_line: np.ndarray  # int, 1-based line in stations.csv
 
     def __len__(self) -> int:
+        """Return the number of stations."""
         return len(self.x_m)
 
     @property
@@ -44,7 +57,21 @@ class Stations:
 
 @dataclass(frozen=True)
 class Picks:
-    """Picked reflection arrivals, one row per (line, shot, receiver, reflector)."""
+    """Picked reflection arrivals, one row per (line, shot, receiver, reflector).
+
+    Attributes
+    ----------
+    line, shot, receiver : (n,) object ndarray of str
+        Line, and the station labels of the shot and the receiver on it.
+    time_s : (n,) ndarray
+        Two-way time (s).
+    sigma_s : (n,) ndarray
+        Pick standard error (s).
+    reflector : (n,) object ndarray of str
+        Reflector label (``"1"`` when the file has none).
+    file_line : (n,) int ndarray
+        1-based line of each row in picks.csv.
+    """
 
     line: np.ndarray  # str
     shot: np.ndarray  # str, station label of the shot on that line
@@ -55,12 +82,29 @@ class Picks:
     file_line: np.ndarray  # int, 1-based line in picks.csv
 
     def __len__(self) -> int:
+        """Return the number of picks."""
         return len(self.time_s)
 
 
 @dataclass(frozen=True)
 class Boreholes:
-    """Boreholes that reached the reflector."""
+    """Boreholes that reached the reflector.
+
+    Attributes
+    ----------
+    name : (n,) object ndarray of str
+        Borehole names.
+    x_m, y_m : (n,) ndarray
+        Collar easting and northing in the working CRS (m).
+    z_m : (n,) ndarray
+        Collar elevation (m).
+    depth_m : (n,) ndarray
+        Depth of the reflector below the collar (m).
+    sigma_m : (n,) ndarray
+        Standard error of that depth (m).
+    file_line : (n,) int ndarray
+        1-based line of each row in boreholes.csv.
+    """
 
     name: np.ndarray  # str
     x_m: np.ndarray
@@ -71,6 +115,7 @@ class Boreholes:
     file_line: np.ndarray
 
     def __len__(self) -> int:
+        """Return the number of boreholes."""
         return len(self.x_m)
 
     @property
@@ -172,6 +217,7 @@ class GatherSet:
     axis of the spread, oriented toward increasing station order),
     ``cross_unit`` (g, 2) = u rotated 90 degrees clockwise (u x z),
     ``source_xyz_g`` (g, 3) and ``spread_length_m``.
+    Positions are in the working CRS (m), times and errors in seconds.
     """
 
     gather: np.ndarray
@@ -190,4 +236,5 @@ class GatherSet:
 
     @property
     def n_gathers(self) -> int:
+        """Number of gathers g."""
         return len(self.line)

@@ -286,7 +286,7 @@ def locate_lonlat(table: CsvTable, x: np.ndarray, y: np.ndarray, crs_in: pyproj.
 
 
 def _swapped_fits(x: np.ndarray, y: np.ndarray, crs_in: pyproj.CRS, bounds: Optional[tuple]) -> bool:
-    """True when (y, x) would lie inside the area of use of the projected ``crs_in``."""
+    """Tell whether (y, x) would lie inside the area of use of the projected ``crs_in``."""
     if bounds is None:
         return False
     h = crsmod.horizontal_crs(crs_in)
@@ -342,8 +342,6 @@ def _resolve_crs(
     return crs_in, crs_work
 
 
-
-
 def parse_stations(path: Union[str, Path]) -> StationRows:
     """Read stations.csv: labels, coordinates as in the file, elevations.
 
@@ -367,7 +365,7 @@ def parse_stations(path: Union[str, Path]) -> StationRows:
     n = len(table.rows)
     line = np.empty(n, dtype=object)
     station = np.empty(n, dtype=object)
-    seen = {}
+    seen: dict[Any, int] = {}
     for i, r in enumerate(table.rows):
         line[i] = table.label(i, "line", r[0])
         station[i] = table.label(i, "station", r[1])
@@ -423,8 +421,6 @@ def _parse_crs_or_raise(value: CrsLike, path: Union[str, Path]) -> pyproj.CRS:
         raise InputFileError(path, None, None, str(exc)) from exc
 
 
-
-
 def read_picks(
     path: Union[str, Path],
     default_sigma_ms: float = 0.5,
@@ -477,12 +473,12 @@ def read_picks(
     reflector = np.empty(n, dtype=object)
     time_ms = np.empty(n)
     sigma_ms = np.empty(n)
-    known = None
+    known: Optional[dict[str, set[str]]] = None
     if stations is not None:
         known = {}
         for ln, st in zip(stations.line, stations.station):
             known.setdefault(ln, set()).add(st)
-    seen = {}
+    seen: dict[Any, int] = {}
     path = table.path
     for i, r in enumerate(table.rows):
         lineno = table.lines[i]
@@ -517,7 +513,7 @@ def read_picks(
             sigma_ms[i] = default_sigma_ms
         reflector[i] = r[j_ref] if (j_ref is not None and r[j_ref] != "") else DEFAULT_REFLECTOR
         if known is not None:
-            _check_pick_stations(table, i, line[i], shot[i], receiver[i], known, stations)
+            _check_pick_stations(table, i, line[i], shot[i], receiver[i], known)
         key = (line[i], shot[i], receiver[i], reflector[i])
         if key in seen:
             raise InputFileError(
@@ -561,9 +557,7 @@ def _near(label: str, choices: Any) -> str:
     return f" (close: {', '.join(repr(c) for c in close)})" if close else ""
 
 
-def _check_pick_stations(
-    table: CsvTable, i: int, ln: str, sh: str, rc: str, known: dict[str, set[str]], stations: Stations
-) -> None:
+def _check_pick_stations(table: CsvTable, i: int, ln: str, sh: str, rc: str, known: dict[str, set[str]]) -> None:
     lineno = table.lines[i]
     if ln not in known:
         lines = sorted(known)
@@ -579,8 +573,6 @@ def _check_pick_stations(
                 name,
                 f"{name} {lab!r} is not a station of line {ln!r} in the stations file{_near(lab, known[ln])}",
             )
-
-
 
 
 def read_boreholes(
@@ -625,7 +617,7 @@ def read_boreholes(
     depth = np.empty(n)
     sigma = np.empty(n)
     j_sig = table.columns.index("sigma_m") if "sigma_m" in table.columns else None
-    seen = {}
+    seen: dict[Any, int] = {}
     for i, r in enumerate(table.rows):
         lineno = table.lines[i]
         name[i] = table.label(i, "borehole", r[0])
