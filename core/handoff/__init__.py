@@ -1,0 +1,1 @@
+"""Hand-off products: sections along alignments, design-level probabilities and rock volumes."""

@@ -1,0 +1,164 @@
+"""Parts shared by the printed hand-off sheets (map sheet, sections): page, title block, cautions.
+
+Sheets are ISO A3 landscape (420 x 297 mm), drawn with matplotlib at a
+stated scale. Files are deterministic (no creation date, fixed SVG ids), so
+two runs on the same inputs give the same bytes.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass, field
+from typing import Optional
+
+from ..errors import MissingDependencyError
+
+__all__ = [
+    "A3_LANDSCAPE_MM",
+    "CAUTION_LINES",
+    "SheetInfo",
+    "draw_cautions",
+    "draw_title_block",
+    "mm_axes",
+    "new_sheet",
+    "nice_scale",
+    "save_figure",
+]
+
+A3_LANDSCAPE_MM = (420.0, 297.0)
+MM_PER_INCH = 25.4
+
+CAUTION_LINES = (
+    "CAUTION: a seismic depth map is an interpretation with stated uncertainty (sigma shown).",
+    "It does not replace borings: check it against borings before relying on it.",
+    "Designs that rely on it must be signed off under local codes by licensed professionals.",
+)
+
+#: Denominators of the printed scale, 1-1.25-2-2.5-5 x 10^k (common practice for site plans).
+_SCALE_STEPS = (1.0, 1.25, 2.0, 2.5, 5.0)
+
+
+@dataclass(frozen=True)
+class SheetInfo:
+    """What the title block states."""
+
+    survey: str
+    issued: str  # ISO date of issue
+    software: str  # "Rockhead 0.1.0"
+    crs: str  # "EPSG:32633 (WGS 84 / UTM zone 33N)"
+    vertical_datum: Optional[str] = None  # None: "vertical datum not stated"
+    survey_date: Optional[str] = None
+    method: str = ""
+    cell_size_m: Optional[float] = None
+    extra: tuple = field(default_factory=tuple)  # (label, value) pairs
+
+
+def _plt():
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg", force=False)
+        import matplotlib.pyplot as plt
+    except ImportError as exc:  # pragma: no cover - depends on the machine
+        raise MissingDependencyError("matplotlib", "the map sheet and sections") from exc
+    return plt
+
+
+def nice_scale(denominator: float) -> int:
+    """Smallest round scale denominator (1, 1.25, 2, 2.5, 5 x 10^k) not below ``denominator``.
+
+    >>> [nice_scale(v) for v in (180, 900, 1001, 2400, 4000)]
+    [200, 1000, 1250, 2500, 5000]
+    """
+    if not denominator > 0:
+        return 1
+    e = math.floor(math.log10(denominator))
+    for k in (e, e + 1):
+        for m in _SCALE_STEPS:
+            v = m * 10.0**k
+            if v >= denominator * (1 - 1e-9):
+                return int(round(v))
+    return int(round(10.0 ** (e + 1)))  # pragma: no cover
+
+
+def new_sheet(size_mm=A3_LANDSCAPE_MM):
+    """A blank sheet with a thin border 8 mm inside the paper edge."""
+    plt = _plt()
+    w, h = size_mm
+    fig = plt.figure(figsize=(w / MM_PER_INCH, h / MM_PER_INCH), dpi=100)
+    frame = mm_axes(fig, (8, 8, w - 16, h - 16), size_mm)
+    frame.set_xticks([])
+    frame.set_yticks([])
+    for s in frame.spines.values():
+        s.set_linewidth(0.8)
+    frame.patch.set_alpha(0)
+    return fig
+
+
+def mm_axes(fig, box_mm, size_mm=A3_LANDSCAPE_MM, **kwargs):
+    """Axes at (left, bottom, width, height) in millimetres from the sheet's lower-left corner."""
+    w, h = size_mm
+    left, bottom, width, height = box_mm
+    return fig.add_axes((left / w, bottom / h, width / w, height / h), **kwargs)
+
+
+def _box(ax):
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1)
+    ax.set_xticks([])
+    ax.set_yticks([])
+
+
+def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "") -> None:
+    """Fill ``ax`` with the title block: title, survey, dates, software, CRS, datum, method, cell."""
+    _box(ax)
+    rows = [
+        ("survey", info.survey),
+        ("surveyed", info.survey_date or "date not stated"),
+        ("issued", info.issued),
+        ("horizontal CRS", info.crs),
+        ("vertical datum", info.vertical_datum or "vertical datum not stated"),
+    ]
+    if info.method:
+        rows.append(("surface method", info.method))
+    if info.cell_size_m is not None:
+        rows.append(("grid cell", f"{info.cell_size_m:g} m"))
+    if scale_text:
+        rows.append(("scale", scale_text))
+    rows += list(info.extra)
+    rows.append(("software", info.software))
+    ax.text(0.03, 0.95, title, fontsize=11, fontweight="bold", va="top", ha="left", wrap=True)
+    ax.axhline(0.84, color="k", lw=0.6)
+    n = len(rows)
+    top, bottom = 0.80, 0.03
+    dy = (top - bottom) / max(n, 1)
+    for i, (k, v) in enumerate(rows):
+        y = top - (i + 0.5) * dy
+        ax.text(0.03, y, k, fontsize=7, va="center", ha="left", color="0.3")
+        ax.text(0.34, y, str(v), fontsize=7.5, va="center", ha="left")
+
+
+def draw_cautions(ax, extra=()) -> None:
+    """The cautions every sheet carries, in a framed box."""
+    _box(ax)
+    ax.set_facecolor("#fff4d6")
+    lines = list(CAUTION_LINES) + list(extra)
+    dy = 0.9 / max(len(lines), 1)
+    for i, text in enumerate(lines):
+        ax.text(0.02, 0.95 - (i + 0.5) * dy, text, fontsize=7.2, va="center", ha="left",
+                fontweight="bold" if i == 0 else "normal")
+
+
+def save_figure(fig, fmt: str = "pdf") -> bytes:
+    """The sheet as PDF or SVG bytes, without a creation date (reproducible)."""
+    plt = _plt()
+    import matplotlib
+
+    buf = io.BytesIO()
+    meta = {"CreationDate": None} if fmt == "pdf" else {"Date": None}
+    # Type 3 fonts (matplotlib's default): text stays searchable and the file is written fast
+    with matplotlib.rc_context({"svg.hashsalt": "rockhead", "svg.fonttype": "none", "pdf.fonttype": 3}):
+        fig.savefig(buf, format=fmt, metadata=meta)
+    plt.close(fig)
+    return buf.getvalue()
