@@ -63,7 +63,7 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
     """
     s = section
     fig = new_sheet()
-    left, bottom, width, height = _SECTION_BOX_MM
+    _left, _bottom, width, height = _SECTION_BOX_MM
     ax = mm_axes(fig, _SECTION_BOX_MM)
     length = s.length_m
     itf_z = [np.concatenate([z - 2 * np.nan_to_num(sg), z + 2 * np.nan_to_num(sg)]) for _, _, z, sg in s.interfaces]
@@ -122,7 +122,7 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
     ax.grid(True, color="0.85", lw=0.5)
     ax.tick_params(labelsize=7, right=True, labelright=True)
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(0.0, -0.09), ncol=4, frameon=False)
-    ax.set_title(f"{s.title} — horizontal 1:{h_scale:,}, vertical 1:{int(round(h_scale / ve)):,}, "
+    ax.set_title(f"{s.title} — horizontal 1:{h_scale:,}, vertical 1:{round(h_scale / ve):,}, "
                  f"vertical exaggeration ×{ve:g}", fontsize=10, loc="left")
     if s.notes:
         ax.text(0.5, 0.5, "; ".join(s.notes), transform=ax.transAxes, ha="center", va="center", fontsize=12,
@@ -132,13 +132,13 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
                   extra=(f"Boreholes, shots and reflector points within {s.corridor_m / 2:g} m of the alignment",
                          "are projected onto it; offsets right (R) or left (L) looking up-chainage."))
     draw_title_block(mm_axes(fig, (280.0, 14.0, 120.0, 72.0)), info, f"Section {s.title}",
-                     f"H 1:{h_scale:,}, V 1:{int(round(h_scale / ve)):,} (A3)")
+                     f"H 1:{h_scale:,}, V 1:{round(h_scale / ve):,} (A3)")
     return save_figure(fig, fmt)
 
 
 def _key_plan(ax, s, plan):
     v = s.vertices_xy
-    for i, (name, xy) in enumerate(sorted((plan.get("lines") or {}).items())):
+    for i, (_name, xy) in enumerate(sorted((plan.get("lines") or {}).items())):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=figures.LINE_COLOURS[i % len(figures.LINE_COLOURS)], lw=1.0)
     bh = plan.get("boreholes")
     if bh is not None and len(bh):

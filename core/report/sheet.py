@@ -78,8 +78,8 @@ def nice_scale(denominator: float) -> int:
         for m in _SCALE_STEPS:
             v = m * 10.0**k
             if v >= denominator * (1 - 1e-9):
-                return int(round(v))
-    return int(round(10.0 ** (e + 1)))  # pragma: no cover
+                return round(v)
+    return round(10.0 ** (e + 1))  # pragma: no cover
 
 
 def new_sheet(size_mm=A3_LANDSCAPE_MM):
