@@ -6,21 +6,30 @@ from pathlib import Path
 from typing import Optional
 
 from .formats.atomic import check_output_dir
+from .handoff.steps import design_step
 from .products import outputs
+from .products.handoff import HANDOFF_NAMES
 from .progress import NullProgress, SubProgress
 from .results import RunResult
 from .survey.config import load_survey
 from .workflow import compute
 
 OUTPUT_NAMES = ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
-                "report.html", "contours_elevation.dxf", "contours_depth.dxf")
+                "report.html", "contours_elevation.dxf", "contours_depth.dxf", *HANDOFF_NAMES)
 
 __all__ = ["OUTPUT_NAMES", "run", "write_outputs"]
 
 
 def write_outputs(result: RunResult, out_dir, progress=None) -> list:
-    """Write every output of ``result`` into ``out_dir`` (atomically, as one set)."""
-    return outputs.write_all(result, out_dir, progress or NullProgress())
+    """Write every output of ``result`` into ``out_dir`` (atomically, as one set).
+
+    With ``[design] elevation_m`` the design-level answers (probabilities,
+    simulated rock volumes) are computed first, once, into ``result.design``.
+    """
+    progress = progress or NullProgress()
+    if result.design is None and result.survey.handoff.design_elevation_m is not None:
+        result.design = design_step(result, progress)
+    return outputs.write_all(result, out_dir, progress)
 
 
 def run(survey_path, out_dir, method: Optional[str] = None, progress=None) -> RunResult:

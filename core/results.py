@@ -53,6 +53,7 @@ class RunResult:
     depth_ratio: dict = None
     dix: dict = None
     cmp: dict = None
+    design: object = None  # handoff.steps.DesignResult with [design] elevation_m (filled by job.write_outputs)
     relocation_history_m: list = field(default_factory=list)
     notes: list = field(default_factory=list)
     outputs: list = field(default_factory=list)

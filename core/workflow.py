@@ -229,6 +229,7 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
         "curvature_reason": reason,
         "difference_m": z - start.z,
         "kriging_diag": diag,
+        "data": (x, y, zz, ss),  # what was kriged (for conditional simulation of this surface)
         "used": use,
     }
 

@@ -171,7 +171,8 @@ def write_landxml_surface(
         "angularUnit": "decimal degrees",
         "directionUnit": "decimal degrees",
     })
-    cs = {"name": crs.name or "custom CRS", "ogcWktCode": crs.to_wkt(),
+    wkt = crs.to_wkt("WKT1_GDAL") or crs.to_wkt()  # OGC WKT 1 (what civil software reads), else WKT 2
+    cs = {"name": crs.name or "custom CRS", "ogcWktCode": wkt,
           "verticalDatum": vertical_datum or "not stated"}
     epsg = crs.to_epsg()
     if epsg is not None:

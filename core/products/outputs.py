@@ -20,11 +20,12 @@ from ..formats.tables import write_layer_csv
 from ..progress import check_cancel
 from ..workflow import surface_data
 from . import layers as lay
+from .handoff import handoff_layers, handoff_run_info, write_handoff
 
 GPKG_NAME = "survey.gpkg"
 
 
-def result_layers(result) -> dict:
+def result_layers(result, sections=None) -> dict:
     """The GeoPackage layers of a run, in the order a GIS should list them."""
     fit = result.fit
     out = {
@@ -52,6 +53,7 @@ def result_layers(result) -> dict:
     if cv is not None:
         x, y, _, _ = surface_data(result.fit.points, result.survey.settings.reflector)
         out["cross_validation"] = lay.cross_validation_layer(x, y, cv)
+    out.update(handoff_layers(result, sections))
     out["run_info"] = lay.run_info_layer(run_info(result))
     return out
 
@@ -91,6 +93,7 @@ def run_info(result) -> list:
         d = result.depth_ratio
         items.append(("borehole_depth_ratio", f"{d['factor']:.4f} +- {d['sigma_factor']:.4f}"))
     items.append(("calibrate_velocity", s.calibrate_velocity))
+    items += handoff_run_info(result)
     items.append(("caution", "An interpretation with stated uncertainty; it does not replace borings. Check "
                              "against borings; designs need sign-off by licensed professionals under local codes."))
     return items
@@ -158,11 +161,13 @@ def write_all(result, out_dir, progress) -> list:
 
 
 def _write_all(result, out_dir, progress) -> list:
+    from ..handoff.steps import sections_step
     from ..report.content import build_report
 
     out_dir.mkdir(parents=True, exist_ok=True)
     crs = result.survey.crs
-    layers = result_layers(result)
+    sections = sections_step(result) if result.surface is not None else []
+    layers = result_layers(result, sections)
     spec = result.spec
     with OutputSet() as outputs:
         write_geopackage(outputs.stage(out_dir / GPKG_NAME), layers, crs)
@@ -176,6 +181,7 @@ def _write_all(result, out_dir, progress) -> list:
             for kind in ("elevation", "depth"):
                 write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)
         check_cancel(progress)
+        write_handoff(outputs, out_dir, result, progress, sections)
         progress.set_progress(25)
         (out_dir / "qc").mkdir(exist_ok=True)
         qc_pngs = {}

@@ -18,6 +18,11 @@ USED = "#1f4e79"
 REJECTED = "#c0392b"
 FIT = "#e08e0b"
 LINE_COLOURS = ["#1b9e77", "#d95f02", "#7570b3", "#e7298a", "#66a61e", "#e6ab02", "#a6761d", "#666666"]
+DEPTH_CMAP = "viridis_r"  # depth to the reflector (the report's map and the map sheet)
+SIGMA_CMAP = "magma_r"  # its standard deviation
+PROBABILITY_CMAP = "RdYlBu_r"  # probability of rock above a design level
+MEASURED_DIP = "#b30000"  # strike-and-dip symbols measured at line crossings
+SURFACE_DIP = "0.35"  # and read off the mapped surface
 
 
 def _plt():
@@ -122,7 +127,7 @@ def map_figure(
     z = np.asarray(depth_grid_m, float)
     if gy[0] < gy[-1]:  # rows south to north: flip for imshow's top-down rows
         z = z[::-1]
-    im = ax.imshow(z, extent=extent, cmap="viridis_r", interpolation="nearest")
+    im = ax.imshow(z, extent=extent, cmap=DEPTH_CMAP, interpolation="nearest")
     cb = fig.colorbar(im, ax=ax, shrink=0.75)
     cb.set_label("depth to reflector (m)")
     for _level, xy, is_index in contour_lines:
@@ -134,13 +139,13 @@ def map_figure(
     if points_xy is not None and len(points_xy):
         ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color="white", ms=3, mec="k", mew=0.3)
     span = max(extent[1] - extent[0], extent[3] - extent[2])
-    for sym, colour in ((surface_dips, "0.35"), (dips, "#b30000")):
+    for sym, colour in ((surface_dips, SURFACE_DIP), (dips, MEASURED_DIP)):
         if sym is None:
             continue
         for x, y, strike, dip in zip(*sym):
             if not np.isfinite(strike):
                 continue
-            _strike_dip_symbol(ax, x, y, strike, dip, span * 0.03, colour)
+            strike_dip_symbol(ax, x, y, strike, dip, span * 0.03, colour)
     if boreholes is not None:
         bx, by, names = boreholes
         ax.plot(bx, by, "s", color="k", mfc="yellow", ms=6)
@@ -158,7 +163,11 @@ def map_figure(
     return _png(fig)
 
 
-def _strike_dip_symbol(ax, x, y, strike_deg, dip_deg, size, colour):
+def strike_dip_symbol(ax, x, y, strike_deg, dip_deg, size, colour, fontsize=7):
+    """The geologic map symbol (FGDC-STD-013-2006): bar along strike, tick toward dip, dip value.
+
+    ``size`` is the half-length of the strike bar in data units (m).
+    """
     s = np.radians(strike_deg)
     d = np.radians(strike_deg + 90.0)
     ux, uy = np.sin(s), np.cos(s)
@@ -167,7 +176,7 @@ def _strike_dip_symbol(ax, x, y, strike_deg, dip_deg, size, colour):
     ax.annotate(
         f"{dip_deg:.0f}",
         (x + 0.75 * size * np.sin(d), y + 0.75 * size * np.cos(d)),
-        fontsize=7,
+        fontsize=fontsize,
         color=colour,
         ha="center",
         va="center",

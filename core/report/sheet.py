@@ -110,9 +110,12 @@ def _box(ax):
     ax.set_yticks([])
 
 
-def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "") -> None:
+def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "", title_chars: int = 44) -> None:
     """Fill ``ax`` with the title block: title, survey, dates, software, CRS, datum, method, cell."""
+    import textwrap
+
     _box(ax)
+    title = "\n".join(textwrap.wrap(title, title_chars)[:2])
     rows = [
         ("survey", info.survey),
         ("surveyed", info.survey_date or "date not stated"),
@@ -128,7 +131,7 @@ def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "") -> N
         rows.append(("scale", scale_text))
     rows += list(info.extra)
     rows.append(("software", info.software))
-    ax.text(0.03, 0.95, title, fontsize=11, fontweight="bold", va="top", ha="left", wrap=True)
+    ax.text(0.03, 0.95, title, fontsize=10, fontweight="bold", va="top", ha="left")
     ax.axhline(0.84, color="k", lw=0.6)
     n = len(rows)
     top, bottom = 0.80, 0.03
@@ -136,14 +139,18 @@ def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "") -> N
     for i, (k, v) in enumerate(rows):
         y = top - (i + 0.5) * dy
         ax.text(0.03, y, k, fontsize=7, va="center", ha="left", color="0.3")
-        ax.text(0.34, y, str(v), fontsize=7.5, va="center", ha="left")
+        ax.text(0.34, y, textwrap.shorten(str(v), 52, placeholder="..."), fontsize=7, va="center", ha="left")
 
 
-def draw_cautions(ax, extra=()) -> None:
-    """The cautions every sheet carries, in a framed box."""
+def draw_cautions(ax, extra=(), width_chars=None) -> None:
+    """The cautions every sheet carries, in a framed box (lines wrapped at ``width_chars``)."""
+    import textwrap
+
     _box(ax)
     ax.set_facecolor("#fff4d6")
     lines = list(CAUTION_LINES) + list(extra)
+    if width_chars:
+        lines = [part for line in lines for part in textwrap.wrap(line, width_chars)]
     dy = 0.9 / max(len(lines), 1)
     for i, text in enumerate(lines):
         ax.text(0.02, 0.95 - (i + 0.5) * dy, text, fontsize=7.2, va="center", ha="left",
