@@ -190,7 +190,7 @@ def _write_all(result, out_dir, progress) -> list:
             qc_pngs[k] = (name, png)
             check_cancel(progress)
             progress.set_progress(25 + 50 * (k + 1) / max(result.fit.gathers.n_gathers, 1))
-        html = build_report(result, layers, qc_pngs)
+        html = build_report(result, layers, qc_pngs, sections)
         outputs.stage(out_dir / "report.html").write_text(html, encoding="utf-8")
         written = outputs.targets
     progress.set_progress(100)

@@ -12,6 +12,7 @@ import numpy as np
 
 from .. import __version__
 from . import figures
+from .handoff_content import handoff_section
 from .html import Report
 
 
@@ -21,7 +22,7 @@ def _rms(values):
     return float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
 
 
-def build_report(result, layers, qc_pngs) -> str:
+def build_report(result, layers, qc_pngs, sections=None) -> str:
     """Render the report; ``qc_pngs`` maps gather index -> (file name, PNG bytes)."""
     survey, fit = result.survey, result.fit
     rep = Report(f"Reflector map — {survey.name}")
@@ -35,6 +36,7 @@ def build_report(result, layers, qc_pngs) -> str:
     _misties(rep, result)
     _flagged(rep, fit)
     _lines(rep, result, layers, qc_pngs)
+    handoff_section(rep, result, sections)
     _method(rep)
     rep.caution()
     return rep.render()
