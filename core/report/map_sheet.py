@@ -98,9 +98,9 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
             k = len(xy) // 2
             ax.text(xy[k, 0], xy[k, 1], f"{level:g}", fontsize=6, ha="center", va="center", zorder=3,
                     bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8})
-    if page.contour_levels and np.any(np.isfinite(v)):
-        cs = ax.contour(spec.x_centres, spec.y_centres, v, levels=list(page.contour_levels), colors="0.1",
-                        linewidths=0.8, zorder=2)
+    levels = [lv for lv in page.contour_levels if np.any(v < lv) and np.any(v > lv)] if np.any(np.isfinite(v)) else []
+    if levels:
+        cs = ax.contour(spec.x_centres, spec.y_centres, v, levels=levels, colors="0.1", linewidths=0.8, zorder=2)
         ax.clabel(cs, fmt="%g", fontsize=6)
     if ov.area is not None:
         for poly in getattr(ov.area, "geoms", [ov.area]):

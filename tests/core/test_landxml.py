@@ -1,0 +1,75 @@
+"""LandXML 1.2 TIN writer: structure as the LandXML-1.2 schema defines it (elements LandXML, Units/Metric,
+CoordinateSystem, Surfaces/Surface/Definition, Pnts/P "northing easting elevation", Faces/F), checked
+by parsing with the standard library (the schema file itself is not available from a package registry,
+so these are structural checks, not schema validation)."""
+
+import xml.etree.ElementTree as ET
+
+import numpy as np
+import pytest
+from rockhead.core.crs import parse_crs
+from rockhead.core.formats.landxml import grid_tin, issue_date, write_landxml_surface
+
+NS = "{http://www.landxml.org/schema/LandXML-1.2}"
+
+
+@pytest.mark.parametrize("north_first", [True, False], ids=["row0-north", "row0-south"])
+def test_tin_faces_count_and_orientation(rng, north_first):
+    x = np.arange(7) * 2.0 + 100.0
+    y = np.arange(5) * 2.0 + 50.0
+    if north_first:
+        y = y[::-1]
+    z = rng.normal(10, 1, (5, 7))
+    z[rng.random((5, 7)) < 0.25] = np.nan
+    t = grid_tin(x, y, z)
+    ok = np.isfinite(z)
+    quads = sum(ok[i, j] & ok[i, j + 1] & ok[i + 1, j] & ok[i + 1, j + 1] for i in range(4) for j in range(6))
+    assert len(t.faces) == 2 * quads
+    p = t.points[t.faces]
+    area2 = (p[:, 1, 0] - p[:, 0, 0]) * (p[:, 2, 1] - p[:, 0, 1]) - (p[:, 2, 0] - p[:, 0, 0]) * (p[:, 1, 1] - p[:, 0, 1])
+    np.testing.assert_allclose(area2, 4.0)  # counter-clockwise from above, half a 2 m cell each
+    assert np.isfinite(t.points).all() and len(np.unique(t.faces)) == len(t.points)  # no unused point
+
+
+def test_plane_is_reproduced_exactly_inside_each_triangle():
+    """A TIN of a plane is the plane: linear interpolation in any face gives a + b x + c y."""
+    x = np.arange(4) * 5.0
+    y = np.arange(3)[::-1] * 5.0
+    gx, gy = np.meshgrid(x, y)
+    t = grid_tin(x, y, 3.0 + 0.2 * gx - 0.1 * gy)
+    p = t.points[t.faces]  # (m, 3, 3)
+    w = np.array([0.2, 0.3, 0.5])
+    q = np.einsum("k,mkj->mj", w, p)
+    np.testing.assert_allclose(q[:, 2], 3.0 + 0.2 * q[:, 0] - 0.1 * q[:, 1], atol=1e-12)
+
+
+def test_file_structure(tmp_path):
+    x = np.array([0.0, 1.0, 2.0]) + 512000.0
+    y = np.array([1.0, 0.0]) + 5455000.0
+    t = grid_tin(x, y, np.array([[1.0, 2.0, 3.0], [4.0, 5.0, 6.0]]))
+    path = tmp_path / "s.xml"
+    write_landxml_surface(path, t, parse_crs("EPSG:32633"), surface_name="rock", project_name="site",
+                          vertical_datum="NAVD88 height", version="0.1.0", timestamp=1764633600)
+    text = path.read_text(encoding="utf-8")
+    assert text.startswith("<?xml version='1.0' encoding='utf-8'?>")
+    root = ET.fromstring(text.encode())
+    assert root.tag == NS + "LandXML" and root.get("version") == "1.2"
+    assert root.get("date") == "2025-12-02" and root.get("time") == "00:00:00"
+    cs = root.find(NS + "CoordinateSystem")
+    assert cs.get("epsgCode") == "32633" and cs.get("verticalDatum") == "NAVD88 height"
+    assert cs.get("horizontalDatum")
+    d = root.find(f"{NS}Surfaces/{NS}Surface/{NS}Definition")
+    assert d.get("surfType") == "TIN" and d.get("elevMin") == "1.000" and d.get("elevMax") == "6.000"
+    pts = [p.text.split() for p in d.find(NS + "Pnts")]
+    assert pts[0] == ["5455001.000", "512000.000", "1.000"]  # northing easting elevation
+    assert [f.text for f in d.find(NS + "Faces")] == ["1 4 5", "1 5 2", "2 5 6", "2 6 3"]
+    # the same inputs give the same bytes
+    path2 = tmp_path / "s2.xml"
+    write_landxml_surface(path2, t, parse_crs("EPSG:32633"), surface_name="rock", project_name="site",
+                          vertical_datum="NAVD88 height", version="0.1.0", timestamp=1764633600)
+    assert path.read_bytes() == path2.read_bytes()
+
+
+def test_issue_date_follows_source_date_epoch(monkeypatch):
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", "1764633600")  # 2025-12-02T00:00:00Z
+    assert issue_date().isoformat() == "2025-12-02"
