@@ -30,7 +30,7 @@ from typing import Optional
 
 import numpy as np
 
-from ..errors import InversionError
+from ..errors import SurfaceError
 from ..surface.simulation import MAX_SIMULATION_POINTS, simulate_conditional
 
 __all__ = ["DesignVolume", "cells_inside", "probability_above", "rock_volume"]
@@ -190,7 +190,7 @@ def rock_volume(
 
     Raises
     ------
-    InversionError
+    SurfaceError
         No mapped cell inside the area.
     """
     z = np.asarray(elevation_m, float)
@@ -201,7 +201,7 @@ def rock_volume(
     area_m2 = float(area.area) if area is not None else float(mapped.sum() * cell_area)
     mapped_area = float(mapped.sum() * cell_area)
     if not mapped.any():
-        raise InversionError(
+        raise SurfaceError(
             "no mapped cell lies inside the design area: the area is outside the mapped part of the site"
         )
     map_volume = float(np.sum(np.maximum(z[mapped] - zd, 0.0)) * cell_area)

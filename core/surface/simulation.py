@@ -39,7 +39,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..errors import InversionError
+from ..errors import SurfaceError
 from ..progress import NullProgress, check_cancel
 
 __all__ = ["MAX_SIMULATION_POINTS", "ConditionalSimulation", "kriging_weights", "simulate_conditional"]
@@ -68,7 +68,7 @@ class ConditionalSimulation:
 def kriging_weights(variogram, x, y, error_variance, tx, ty, neighbours=32):
     """Ordinary kriging weights with measurement error, one row per target.
 
-    The system is that of :class:`~.interpolation.OrdinaryKriging` (variogram
+    The system is that of :class:`~.kriging.OrdinaryKriging` (variogram
     form, :math:`-e_i` on the diagonal, a Lagrange row), solved for the
     ``neighbours`` nearest data of each target; the weights are returned so
     that many data vectors can be kriged at once.
@@ -114,7 +114,7 @@ def kriging_weights(variogram, x, y, error_variance, tx, ty, neighbours=32):
         try:
             sol = np.linalg.solve(m, b[:, :, None])[:, :, 0]
         except np.linalg.LinAlgError as exc:
-            raise InversionError(f"a kriging system of the simulation is singular ({exc}): data at one place "
+            raise SurfaceError(f"a kriging system of the simulation is singular ({exc}): data at one place "
                                  "without error variance") from exc
         weights[sl] = sol[:, :k]
         variance[sl] = (np.einsum("ij,ij->i", sol[:, :k], b[:, :k]) + sol[:, k]) * s
@@ -137,7 +137,7 @@ def _cholesky(cov, sill):
             return cholesky(a, lower=True, check_finite=False), jitter
         except LinAlgError:
             continue
-    raise InversionError("the covariance matrix of the simulation is not positive definite even with a jitter of "
+    raise SurfaceError("the covariance matrix of the simulation is not positive definite even with a jitter of "
                          f"{1e-4 * sill:.3g} m2 on its diagonal")
 
 
@@ -191,7 +191,7 @@ def simulate_conditional(
     idx, lam, _ = kriging_weights(variogram, dx, dy, e, tx, ty, neighbours)
     used = np.unique(idx)  # only data that enter some target's neighbourhood need a value
     if m + used.size > MAX_SIMULATION_POINTS:
-        raise InversionError(
+        raise SurfaceError(
             f"a joint simulation of {m} nodes and {used.size} data exceeds {MAX_SIMULATION_POINTS} points: "
             "simulate on a coarser set of nodes or a smaller area"
         )

@@ -7,12 +7,13 @@ Deutsch & Journel 1998 (GSLIB s. V.2.4).
 
 import numpy as np
 import pytest
-from rockhead.core.errors import InversionError
+from rockhead.core.errors import SurfaceError
 from rockhead.core.grid import GridSpec
 from rockhead.core.handoff.design import cells_inside, probability_above, rock_volume
-from rockhead.core.surface.interpolation import OrdinaryKriging, VariogramModel
+from rockhead.core.surface.kriging import OrdinaryKriging
 from rockhead.core.surface.simulation import kriging_weights
 from rockhead.core.surface.trend import PlaneTrend
+from rockhead.core.surface.variogram import VariogramModel
 from scipy.stats import norm
 from shapely.geometry import box
 
@@ -112,7 +113,7 @@ def test_volume_spread_is_that_of_the_spatial_covariance(plane_map):
 
 def test_area_outside_the_map_is_an_error(plane_map):
     spec, zmap, _, vario, xy, e = plane_map
-    with pytest.raises(InversionError, match="no mapped cell lies inside the design area"):
+    with pytest.raises(SurfaceError, match="no mapped cell lies inside the design area"):
         rock_volume(spec, zmap, 110.0, vario, xy, e, area=box(0, 0, 10, 10), n_simulations=200)
 
 

@@ -5,8 +5,9 @@ checked against PyKrige in test_surface.py."""
 
 import numpy as np
 import pytest
-from rockhead.core.surface.interpolation import OrdinaryKriging, VariogramModel
+from rockhead.core.surface.kriging import OrdinaryKriging
 from rockhead.core.surface.simulation import kriging_weights, simulate_conditional
+from rockhead.core.surface.variogram import VariogramModel
 
 
 @pytest.fixture(scope="module")
