@@ -252,7 +252,7 @@ def write_contours_dxf(
     ----------
     path : str or path-like
         Output file.
-    layer : rockhead.core.gpkg.Layer
+    layer : rockhead.core.formats.layer.Layer
         A layer from :func:`.contours.contours_layer` (fields ``kind``,
         ``elevation_m``, ``depth_m``, ``index``).
     kind : {"elevation", "depth"}

@@ -133,13 +133,13 @@ def write_csv(
 def write_layer_csv(
     path, layer, *, geometry: str | None = "xy", digits: int | None = None, bom: bool = False
 ) -> Path:
-    """Write a :class:`.gpkg.Layer`'s attribute table to CSV.
+    """Write a :class:`.layer.Layer`'s attribute table to CSV.
 
     Parameters
     ----------
     path : str or path-like
         Output file.
-    layer : rockhead.core.gpkg.Layer
+    layer : rockhead.core.formats.layer.Layer
         The layer.
     geometry : {"xy", "wkt", None}
         ``"xy"``: ``x`` and ``y`` columns first (point layers; a point-less

@@ -13,8 +13,8 @@ from __future__ import annotations
 import numpy as np
 from shapely.geometry import LineString
 
-from ..formats.geotiff import write_geotiff_grid
-from ..formats.gpkg import Layer
+from ..formats.gdalio import write_raster
+from ..formats.layer import Layer
 from ..formats.landxml import write_landxml_surface
 from ..formats.tables import write_csv
 from ..handoff.steps import sections_step, sheet_info, surface_tin
@@ -199,8 +199,12 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
     )
     d = result.design
     if d is not None and d.probability is not None:
-        write_geotiff_grid(outputs.stage(out_dir / PROBABILITY_NAME), spec.x_centres, spec.y_centres,
-                           d.probability, crs)
+        from .provenance import provenance
+
+        prov = provenance(result)
+        write_raster(outputs.stage(out_dir / PROBABILITY_NAME), d.probability, spec, crs, unit="",
+                     metadata=prov.items(), timestamp=prov.timestamp, software=prov.software,
+                     description="probability (0 to 1) that the reflector lies above the design level")
     sections = sections if sections is not None else sections_step(result)
     plan = {"lines": overlays.lines,
             "boreholes": None if overlays.boreholes is None else np.column_stack(overlays.boreholes[:2])}

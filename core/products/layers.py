@@ -1,6 +1,6 @@
 """Results as GIS layers: geometries plus typed attribute columns.
 
-Each function turns one result object into a :class:`~.gpkg.Layer` whose
+Each function turns one result object into a :class:`~rockhead.core.formats.layer.Layer` whose
 field names are the project's fixed output names (DESIGN section 6). The same
 layers feed the GeoPackage, the CSV tables, the QGIS sinks and the report, so
 the names are defined once, here.
@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from shapely.geometry import LineString, Point
 
-from ..formats.gpkg import Layer
+from ..formats.layer import Layer
 from ..seismic.geometry import vector_azimuth_deg
 
 __all__ = [

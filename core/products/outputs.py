@@ -14,13 +14,13 @@ import numpy as np
 from ..errors import OutputError
 from ..formats.atomic import OutputSet
 from ..formats.dxf import write_contours_dxf
-from ..formats.geotiff import write_geotiff_grid
-from ..formats.gpkg import write_geopackage
+from ..formats.gdalio import write_layers, write_raster
 from ..formats.tables import write_layer_csv
 from ..progress import check_cancel
 from ..workflow import surface_data
 from . import layers as lay
 from .handoff import handoff_layers, handoff_run_info, write_handoff
+from .provenance import provenance
 
 GPKG_NAME = "survey.gpkg"
 
@@ -99,8 +99,16 @@ def run_info(result) -> list:
     return items
 
 
+#: File name -> band description of the raster outputs
+RASTER_DESCRIPTIONS = {
+    "reflector_elevation.tif": "reflector elevation (m, up positive)",
+    "reflector_depth.tif": "reflector depth below ground (m, positive down)",
+    "depth_sigma.tif": "standard deviation of the reflector surface (m)",
+}
+
+
 def result_rasters(result) -> dict:
-    """File name -> (grid, description) of the GeoTIFF outputs (row 0 north)."""
+    """File name -> grid of the GeoTIFF outputs (on ``result.spec``, row 0 north)."""
     if result.surface is None:
         return {}
     s = result.surface
@@ -169,14 +177,20 @@ def _write_all(result, out_dir, progress) -> list:
     sections = sections_step(result) if result.surface is not None else []
     layers = result_layers(result, sections)
     spec = result.spec
+    prov = provenance(result)
     with OutputSet() as outputs:
-        write_geopackage(outputs.stage(out_dir / GPKG_NAME), layers, crs)
+        write_layers(
+            outputs.stage(out_dir / GPKG_NAME), layers, crs, dataset_metadata=prov.items(), timestamp=prov.timestamp
+        )
         (out_dir / "csv").mkdir(exist_ok=True)
         for name, layer in layers.items():
             write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
         progress.set_progress(15)
         for name, grid in result_rasters(result).items():
-            write_geotiff_grid(outputs.stage(out_dir / name), spec.x_centres, spec.y_centres, grid, crs)
+            write_raster(
+                outputs.stage(out_dir / name), grid, spec, crs, metadata=prov.items(),
+                description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp, software=prov.software,
+            )
         if result.contours is not None and len(result.contours):
             for kind in ("elevation", "depth"):
                 write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)

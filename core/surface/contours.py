@@ -25,7 +25,7 @@ from ..errors import MissingDependencyError, OutputError
 from ..grid import next_nice_step, nice_step
 
 if TYPE_CHECKING:
-    from ..formats.gpkg import Layer
+    from ..formats.layer import Layer
 
 __all__ = ["contour_levels", "contour_lines", "contours_layer", "nice_interval"]
 
@@ -214,12 +214,12 @@ def contours_layer(
 
     Returns
     -------
-    rockhead.core.formats.gpkg.Layer
+    rockhead.core.formats.layer.Layer
         LINESTRING features with fields ``kind`` (``"elevation"`` or
         ``"depth"``), ``elevation_m`` (NaN on depth contours), ``depth_m``
         (NaN on elevation contours) and ``index`` (bool).
     """
-    from ..formats.gpkg import Layer
+    from ..formats.layer import Layer
 
     if index_every < 1:
         raise OutputError(f"index_every={index_every!r}; expected a positive integer")

@@ -35,7 +35,7 @@ from numpy.typing import ArrayLike
 
 from ..crs import parse_crs
 from ..errors import GeoreferenceError, InputFileError, RockheadWarning
-from ..formats.geotiff import Raster, read_raster
+from ..formats.gdalio import Raster, read_raster
 
 __all__ = ["GroundModel"]
 
@@ -147,8 +147,8 @@ class GroundModel:
             a transformation.
         band : int
             1-based band of the heights.
-        engine : {None, "gdal", "rasterio", "builtin"}
-            Reader, as in :func:`core.formats.geotiff.read_raster`.
+        engine : {None, "osgeo", "pypi"}
+            The way to GDAL, as in :func:`core.formats.gdalio.read_raster`.
 
         Returns
         -------
@@ -162,7 +162,7 @@ class GroundModel:
         GeoreferenceError
             An unknown working CRS or no transformation to the DEM's CRS.
         """
-        raster = read_raster(path, band, engine=engine)
+        raster = read_raster(path, band, engine_name=engine)
         return cls.from_dem(raster, working_crs, name=os.path.basename(os.fspath(path)))
 
     @classmethod
@@ -173,7 +173,7 @@ class GroundModel:
 
         Parameters
         ----------
-        raster : core.formats.geotiff.Raster
+        raster : core.formats.gdalio.Raster
             The DEM (heights in m; NaN for nodata).
         working_crs : str, int or pyproj.CRS, optional
             The survey's working CRS, as in :meth:`from_raster`.

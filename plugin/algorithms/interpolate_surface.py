@@ -63,6 +63,20 @@ def pyproj_crs(crs):
     return CRS.from_user_input(crs.authid()) if crs.authid() else CRS.from_wkt(crs.toWkt())
 
 
+def raster_provenance(crs, method: str, source_name: str):
+    """Caution and origin written into the rasters of this algorithm."""
+    from ...core import __version__
+    from ...core.crs import crs_label, horizontal_crs
+    from ...core.products.provenance import Provenance, product_timestamp, vertical_label
+
+    vertical = crs.sub_crs_list[1] if crs.is_compound and len(crs.sub_crs_list) > 1 else None
+    return Provenance(
+        software=f"Rockhead {__version__}", survey=f"points of the layer '{source_name}'", method=method,
+        date="not stated", timestamp=product_timestamp(None), crs=crs_label(horizontal_crs(crs)),
+        vertical_datum=vertical_label(vertical),
+    )
+
+
 class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
     """Grid reflector elevations (ordinary kriging with measurement error, or a smoothing spline)."""
 
@@ -94,8 +108,10 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         "<p><b>Input</b>: a point layer in a projected CRS (metres), such as the reflector points of "
         "Fit shot gathers, with an elevation field and an optional standard-error field "
         "(boreholes: a small error).</p>"
-        "<p><b>Outputs</b>: the surface and its kriging standard deviation (GeoTIFF; empty for the "
-        "spline) and contour lines of the surface (fields kind = 'elevation', elevation_m, index; "
+        "<p><b>Outputs</b>: the surface and its kriging standard deviation (empty for the spline), in "
+        "the format of the file name's extension (.tif: a cloud-optimised GeoTIFF; .asc, .img and the "
+        "other GDAL raster formats), each with the caution and its provenance in its metadata, and "
+        "contour lines of the surface (fields kind = 'elevation', elevation_m, index; "
         "every fifth level an index contour). Empty cell size, masking distance or contour interval: "
         "chosen from the data.</p>"
     )
@@ -217,15 +233,18 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         if call.cancelled or surf is None:
             return {}
         interval = self.optional_number(parameters, self.CONTOUR_INTERVAL, context)
-        from ...core.formats.geotiff import write_geotiff_grid
+        from ...core.formats.gdalio import write_raster
         from ...core.surface.contours import contours_layer
 
         spec = surf.spec
         with CoreCall(feedback):
             target = pyproj_crs(crs)
-            write_geotiff_grid(out, spec.x_centres, spec.y_centres, surf.z, target)
-            if std_out:
-                write_geotiff_grid(std_out, spec.x_centres, spec.y_centres, surf.std, target)
+            prov = raster_provenance(target, method, source.sourceName())
+            for path, grid, what in ((out, surf.z, "reflector elevation (m, up positive)"),
+                                     (std_out, surf.std, "standard deviation of the reflector surface (m)")):
+                if path:  # the GDAL driver follows the file's extension (.tif: cloud-optimised GeoTIFF)
+                    write_raster(path, grid, spec, target, metadata=prov.items(), description=what,
+                                 timestamp=prov.timestamp, software=prov.software)
             lines = contours_layer(spec.x_centres, spec.y_centres, elevation_m=surf.z, elevation_interval_m=interval)
         results = {self.OUTPUT: out}
         if std_out:

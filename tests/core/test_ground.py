@@ -4,7 +4,8 @@ import numpy as np
 import pyproj
 import pytest
 from rockhead.core.errors import GeoreferenceError, InputFileError, RockheadWarning
-from rockhead.core.formats.geotiff import Raster, write_geotiff
+from rockhead.core.formats.gdalio import Raster, write_raster
+from rockhead.core.formats.gdalio import engine as gdalio_engine
 from rockhead.core.survey.ground import GroundModel
 from scipy.spatial import cKDTree
 
@@ -49,8 +50,8 @@ def test_bilinear_not_nearest(rng):
 
 def test_planar_dem_from_geotiff_file(tmp_path, rng):
     dem = _dem(_plane)
-    path = write_geotiff(tmp_path / "dem.tif", dem.values, X0, Y0, CELL, "EPSG:32633")
-    for engine in ("builtin", None):
+    path = write_raster(tmp_path / "dem.tif", dem.values, dem.spec, "EPSG:32633")
+    for engine in (None, gdalio_engine()):
         model = GroundModel.from_raster(path, "EPSG:32633", engine=engine)
         x, y = _inside(rng)
         # float32 storage of ~230 m: spacing 1.5e-5 m, so 1e-4 m

@@ -91,12 +91,13 @@ def test_area_from_a_geopackage_through_ogr(base):
     if not _has_pyogrio():  # the PyPI stack has pyogrio, the QGIS stack GDAL's own bindings
         pytest.importorskip("osgeo.ogr")
     from rockhead.core.crs import parse_crs
-    from rockhead.core.formats.gpkg import Layer, write_geopackage
+    from rockhead.core.formats.gdalio import write_layers
+    from rockhead.core.formats.layer import Layer
     from shapely.geometry import Polygon
 
     poly = Polygon([(499980, 5499980), (500030, 5499980), (500030, 5500010), (499980, 5500010)])
     layer = Layer([poly], {"name": np.array(["cut"], dtype=object)}, "POLYGON", "design area")
-    write_geopackage(base / "area.gpkg", {"area": layer}, parse_crs("EPSG:32633"))
+    write_layers(base / "area.gpkg", {"area": layer}, parse_crs("EPSG:32633"))
     _append(base, '[design]\nelevation_m = 292.5\narea = "area.gpkg"\n')
     area = load_survey(base / "survey.toml").handoff.design_area
     assert area.area == pytest.approx(50.0 * 30.0)

@@ -18,7 +18,7 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 from rockhead.core import job
-from rockhead.core.formats.geotiff import read_raster
+from rockhead.core.formats.gdalio import read_raster
 from scipy.interpolate import RegularGridInterpolator
 from scipy.stats import norm
 from test_pipeline_layers import _write_survey

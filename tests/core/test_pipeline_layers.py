@@ -131,12 +131,13 @@ def test_cmp_velocity_analysis(tmp_path):
 
 def test_dem_gives_the_ground(tmp_path):
     """A DEM named in [files] is the ground of the depth grid (not the station elevations)."""
-    from rockhead.core.formats.geotiff import write_geotiff
+    from rockhead.core.formats.gdalio import write_raster
+    from rockhead.core.grid import GridSpec
 
     path = _write_survey(tmp_path, "top")
     # DEM 1.5 m above the stations' 100 m everywhere, covering the survey with a margin
     dem = np.full((60, 60), GROUND_M + 1.5)
-    write_geotiff(tmp_path / "dem.tif", dem, 499_850.0, 5_000_150.0, 5.0, "EPSG:32633")
+    write_raster(tmp_path / "dem.tif", dem, GridSpec(499_852.5, 5_000_147.5, 5.0, 60, 60), "EPSG:32633")
     path.write_text(path.read_text().replace('picks = "picks.csv"\n', 'picks = "picks.csv"\ndem = "dem.tif"\n'))
     r = compute(load_survey(path), method="kriging")
     ok = ~r.surface.mask

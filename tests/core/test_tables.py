@@ -5,7 +5,7 @@ import csv
 import numpy as np
 import pytest
 from rockhead.core.errors import OutputError
-from rockhead.core.formats.gpkg import Layer
+from rockhead.core.formats.layer import Layer
 from rockhead.core.formats.tables import guard_text, write_csv
 from rockhead.core.formats.tables import write_layer_csv as layer_to_csv
 from shapely.geometry import LineString, Point
