@@ -6,6 +6,7 @@ from pathlib import Path
 from typing import Optional
 
 from .formats.atomic import check_output_dir
+from .formats.gdalio import engine
 from .handoff.steps import design_step
 from .products import outputs
 from .products.handoff import HANDOFF_NAMES
@@ -38,6 +39,7 @@ def run(survey_path, out_dir, method: Optional[str] = None, progress=None) -> Ru
     survey = load_survey(survey_path)
     inputs = [Path(p) for p in survey.files.values() if p is not None] + [Path(survey_path)]
     check_output_dir(out_dir, inputs, OUTPUT_NAMES)
+    engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
     result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
     result.outputs = write_outputs(result, Path(out_dir), SubProgress(progress, 85, 100))
     return result

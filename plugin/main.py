@@ -35,11 +35,16 @@ class RockheadPlugin:
         self._importer = importer  # tests may simulate a missing package
 
     # -- life cycle ---------------------------------------------------------------------------
-    def initGui(self):
+    def _check_dependencies(self) -> bool:
+        """True when every required package imports; else say which are missing and how to install."""
         kwargs = {} if self._importer is None else {"importer": self._importer}
         self.missing = deps.find_missing(**kwargs)
         if self.missing:
             self._report_missing()
+        return not self.missing
+
+    def initGui(self):
+        if not self._check_dependencies():
             return
         self.initProcessing()
         icon = QIcon(ICON_PATH)
@@ -57,11 +62,13 @@ class RockheadPlugin:
         self.qc_action = qc_action
 
     def initProcessing(self):
+        """Register the Processing provider (qgis_process calls this alone, without initGui)."""
+        if self.provider is not None or not self._check_dependencies():
+            return
         from .provider import RockheadProvider
 
-        if self.provider is None:
-            self.provider = RockheadProvider()
-            QgsApplication.processingRegistry().addProvider(self.provider)
+        self.provider = RockheadProvider()
+        QgsApplication.processingRegistry().addProvider(self.provider)
 
     def unload(self):
         for action in self.actions:
@@ -80,13 +87,18 @@ class RockheadPlugin:
 
     # -- actions ------------------------------------------------------------------------------
     def _report_missing(self):
+        import sys
+
         message = deps.missing_message(self.missing)
         QgsMessageLog.logMessage(message, LOG_TAG, Qgis.Critical)
-        names = ", ".join(m.name for m in self.missing)
+        names = ", ".join(m.pip or m.name for m in self.missing)
         short = tr(
             "missing Python package(s): {names}. See the log panel (Rockhead) for how to install them."
         ).format(names=names)
-        self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
+        if self.iface is not None:
+            self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
+        else:  # qgis_process: no window, the message goes to the terminal
+            print(message, file=sys.stderr)
 
     def open_run_dialog(self):
         """Open the Processing dialog of the whole-survey algorithm."""

@@ -7,6 +7,6 @@ cd "$REPO_ROOT"
 OUT=${1:-sample_project/results}
 
 apt_install python3-venv python3-pip
-setup_pypi_venv plots
+setup_pypi_venv
 .venv/bin/rockhead run sample_project/survey.toml --out "$OUT"
 echo "Open $OUT/report.html in a browser, and sample_project/tarnwick.qgz (or $OUT/survey.gpkg) in QGIS."

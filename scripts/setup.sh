@@ -30,15 +30,15 @@ quiet() {  # quiet CMD...: run CMD, show its output only if it fails
 }
 
 # Current PyPI releases, in .venv: the command line and the core tests.
-setup_pypi_venv() {  # setup_pypi_venv EXTRAS
-    local extras=${1:-plots}
+setup_pypi_venv() {  # setup_pypi_venv [EXTRAS]: the package and what it requires (+ extras, e.g. test)
+    local extras=${1:-}
     local py=${PYTHON:-python3}
     if [ ! -x "$REPO_ROOT/.venv/bin/python" ]; then
         echo "== creating .venv (current PyPI releases)"
         "$py" -m venv "$REPO_ROOT/.venv"
     fi
     quiet "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check --upgrade pip
-    quiet "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check -e "$REPO_ROOT[$extras]"
+    quiet "$REPO_ROOT/.venv/bin/python" -m pip install -q --disable-pip-version-check -e "$REPO_ROOT${extras:+[$extras]}"
 }
 
 # Debian's QGIS Python (numpy 1.24, scipy 1.10, shapely 1.8, pyproj 3.4) in .venv-qgis,
@@ -62,8 +62,11 @@ PY
         pytest 'pytest-qgis==5.0.2' hypothesis pykrige gstools
 }
 
-QGIS_DEBS=(qgis python3-qgis qgis-providers gdal-bin python3-venv python3-pip python3-scipy
-           python3-pyproj python3-shapely python3-geopandas python3-matplotlib python3-ezdxf)
+# QGIS's Python needs numpy, scipy, pyproj, shapely, contourpy, matplotlib and GDAL's bindings
+# (python3-gdal, also GDAL's validators used by the tests); ezdxf and pandas are test references.
+QGIS_DEBS=(qgis python3-qgis qgis-providers gdal-bin python3-gdal python3-venv python3-pip python3-numpy
+           python3-scipy python3-pyproj python3-shapely python3-contourpy python3-matplotlib python3-geopandas
+           python3-ezdxf)
 
 qgis_env() {  # environment for headless QGIS (shared QGIS_TESTING.md)
     export QT_QPA_PLATFORM=offscreen PROJ_DATA=/usr/share/proj

@@ -8,9 +8,8 @@ source "$(dirname "$0")/setup.sh"
 cd "$REPO_ROOT"
 
 apt_install "${QGIS_DEBS[@]}"
-setup_pypi_venv test,plots
+setup_pypi_venv test
 setup_qgis_venv
-quiet .venv/bin/python -m pip install -q --disable-pip-version-check gstools rasterio pyogrio geopandas
 
 echo "== lint (ruff)"
 .venv/bin/ruff check .

@@ -14,8 +14,8 @@ import numpy as np
 from shapely.geometry import LineString
 
 from ..formats.gdalio import write_raster
-from ..formats.layer import Layer
 from ..formats.landxml import write_landxml_surface
+from ..formats.layer import Layer
 from ..formats.tables import write_csv
 from ..handoff.steps import sections_step, sheet_info, surface_tin
 from ..progress import check_cancel

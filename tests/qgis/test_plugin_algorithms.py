@@ -275,6 +275,46 @@ def test_interpolate_surface_chains_after_fit_and_equals_core(provider, sample_s
     assert [f["elevation_m"] for f in lines.getFeatures()] == [float(v) for v in ref.fields["elevation_m"]]
 
 
+def _plane_points(n=40, crs="EPSG:32633"):
+    """A memory layer of points on a dipping plane (elevation and a small standard error)."""
+    layer = QgsVectorLayer(f"Point?crs={crs}&field=elevation_m:double&field=sigma_m:double", "p", "memory")
+    rng = np.random.default_rng(5)
+    feats = []
+    for x, y in rng.uniform(0.0, 200.0, (n, 2)):
+        f = QgsFeature(layer.fields())
+        f.setGeometry(QgsGeometry.fromPointXY(QgsPointXY(512000.0 + float(x), 5001000.0 + float(y))))
+        f.setAttributes([float(230.0 - 0.05 * x + 0.02 * y), 0.1])
+        feats.append(f)
+    layer.dataProvider().addFeatures(feats)
+    return layer
+
+
+@pytest.mark.parametrize(
+    ("name", "driver"),
+    [("surface.tif", "GTiff"), ("surface.asc", "AAIGrid"), ("surface.img", "HFA")],
+    ids=["cog", "arc-ascii-grid", "erdas-imagine"],
+)
+def test_interpolate_surface_writes_the_format_of_the_extension(provider, tmp_path, gdal_validate, name, driver):
+    from osgeo import gdal
+
+    out = tmp_path / name
+    run("interpolatesurface", {"INPUT": _plane_points(), "VALUE_FIELD": "elevation_m", "ERROR_FIELD": "sigma_m",
+                               "CELL_SIZE": 10.0, "OUTPUT": str(out), "STD_OUTPUT": str(tmp_path / f"std{out.suffix}"),
+                               "CONTOURS": "TEMPORARY_OUTPUT"})
+    ds = gdal.Open(str(out))
+    assert ds.GetDriver().ShortName == driver  # a .asc is an ASCII grid, not TIFF bytes
+    md = ds.GetMetadata()
+    assert "does not replace borings" in md["CAUTION"] and md["SOFTWARE"].startswith("Rockhead ")
+    arr = ds.GetRasterBand(1).ReadAsArray().astype(float)
+    nodata = ds.GetRasterBand(1).GetNoDataValue()
+    ds = None
+    vals = arr[arr != nodata]
+    # a plane kriged with a linear trend removed is the plane (within 1 cm; the ASCII grid prints float32)
+    assert vals.size > 100 and 219.0 < vals.min() and vals.max() < 235.0
+    if driver == "GTiff":
+        gdal_validate(out, tmp_path / "std.tif")
+
+
 def test_interpolate_surface_refuses_geographic_points(provider):
     layer = QgsVectorLayer("Point?crs=EPSG:4326&field=elevation_m:double", "p", "memory")
     feats = []

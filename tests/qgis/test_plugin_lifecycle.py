@@ -61,8 +61,18 @@ def test_every_algorithm_has_help_with_the_caution(provider):
         assert alg.id().startswith("rockhead:")
 
 
-@pytest.mark.parametrize("missing", ["scipy", "shapely"], ids=["no-scipy", "no-shapely"])
-def test_missing_package_is_named_and_no_provider(iface, qgis_processing, missing):
+@pytest.mark.parametrize(
+    ("missing", "pip", "debian"),
+    [
+        ("scipy", "scipy", "python3-scipy"),
+        ("shapely", "shapely", "python3-shapely"),
+        ("contourpy", "contourpy", "python3-contourpy"),
+        ("matplotlib", "matplotlib", "python3-matplotlib"),
+        ("osgeo.gdal", "GDAL", "python3-gdal"),
+    ],
+    ids=["no-scipy", "no-shapely", "no-contourpy", "no-matplotlib", "no-gdal-bindings"],
+)
+def test_missing_package_is_named_and_no_provider(iface, qgis_processing, missing, pip, debian):
     import importlib
 
     def importer(name):
@@ -79,11 +89,11 @@ def test_missing_package_is_named_and_no_provider(iface, qgis_processing, missin
     try:
         assert _registry().providerById("rockhead") is None
         messages = bar.get_messages(Qgis.Critical)
-        assert messages and missing in messages[-1]
+        assert messages and pip in messages[-1]
         from rockhead.plugin import deps
 
         full = deps.missing_message(plugin.missing)
-        assert f"pip install {missing}" in full and f"apt install python3-{missing}" in full
+        assert f"pip install {pip}" in full and f"apt install {debian}" in full
         assert "OSGeo4W" in full
     finally:
         plugin.unload()
