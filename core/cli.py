@@ -52,6 +52,13 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+def _edits_line(survey) -> str:
+    e = survey.edits
+    path = survey.files.get("pick_edits")
+    return (f"pick edits: {len(e.edits)} read from {path.name if path else 'the edits file'}: "
+            f"{e.n_excluded} picks excluded, {e.n_retimed} retimed")
+
+
 def _one_line(message: str) -> str:
     return " ".join(str(message).split())
 
@@ -73,11 +80,16 @@ def main(argv=None) -> int:
                     f"{survey.name}: {len(survey.stations)} stations, {len(survey.picks)} picks, "
                     f"{n_bh} boreholes; CRS {survey.crs.name}"
                 )
+                if survey.edits is not None:
+                    print(_edits_line(survey))
             else:
                 from .job import run
 
                 result = run(args.survey, args.out, method=args.method, progress=progress)
                 print(result.summary())
+                if result.survey.edits is not None:
+                    print(_edits_line(result.survey))
+                print(f"Caution: {CAUTION}")
     except CancelledError:
         print("rockhead: cancelled", file=sys.stderr)
         return 130

@@ -42,11 +42,18 @@ __all__ = ["SURFACE_METHODS", "compute", "fit_step"]
 
 
 def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=None) -> FitStep:
-    """Fit every gather of the survey and place its reflector points in 3D."""
+    """Fit every gather of the survey and place its reflector points in 3D.
+
+    Picks excluded by the survey's pick edits are left out (and reported as
+    excluded), besides those of ``exclude`` (per gather-set pick).
+    """
     progress = progress or NullProgress()
     frames = line_frames(survey.stations, path=survey.files.get("stations"))
     gathers = build_gathers(survey, frames=frames)
     check_cancel(progress)
+    edited = survey.excluded_picks[gathers.pick_index]
+    if np.any(edited):
+        exclude = edited if exclude is None else (np.asarray(exclude, bool) | edited)
     fits = fit_shot_gathers(
         gathers, survey.settings, cross_component=cross_component, exclude=exclude, progress=progress
     )

@@ -35,6 +35,7 @@ def build_report(result, layers, qc_pngs, sections=None) -> str:
     _dips(rep, result)
     _misties(rep, result)
     _flagged(rep, fit)
+    _pick_edits(rep, survey, fit)
     _lines(rep, result, layers, qc_pngs)
     handoff_section(rep, result, sections)
     _method(rep)
@@ -285,6 +286,34 @@ def _flagged(rep, fit):
         "line": [str(g.line[k]) for k in bad], "shot": [str(g.shot[k]) for k in bad],
         "status": [str(f.status[k]) for k in bad], "reason": [str(f.reason[k]) for k in bad],
     }, caption="Gathers not used for the surface, with the reason")
+
+
+def _pick_edits(rep, survey, fit):
+    """The interpreter's pick edits (pick_edits.csv), each as read, and what they changed."""
+    applied = getattr(survey, "edits", None)
+    if applied is None:
+        return
+    edits = list(applied.edits)
+    rep.heading("Pick edits")
+    path = applied.edits.path
+    rep.paragraph(
+        f"{len(edits)} edit{'s' if len(edits) != 1 else ''} read from {path.name if path else 'the pick edits'} "
+        f"(applied in order; picks.csv itself is unchanged): {applied.n_excluded} picks excluded, "
+        f"{applied.n_retimed} retimed. Excluded picks are left out of every fit and counted in picks_excluded "
+        f"({int(np.sum(fit.fits.picks_excluded))} in the gathers fitted)."
+    )
+    if edits:
+        rep.table({
+            "file line": [e.file_line for e in edits],
+            "action": [e.action for e in edits],
+            "line": [e.line for e in edits],
+            "shot": [e.shot for e in edits],
+            "receiver": [e.receiver for e in edits],
+            "reflector": [e.reflector for e in edits],
+            "new_time_ms": [np.nan if e.new_time_ms is None else e.new_time_ms for e in edits],
+            "reason": [e.reason for e in edits],
+            "time_stamp": [e.time_stamp for e in edits],
+        }, caption="Pick edits, in the order made")
 
 
 def _lines(rep, r, layers, qc_pngs):

@@ -6,8 +6,9 @@
     ``32633``), ``work_crs`` (optional projected CRS in metres to compute in;
     without it a projected ``crs`` is kept and a geographic one goes to the
     WGS 84 / UTM zone of the data). ``[files]``: ``stations``, ``picks``
-    (required), ``boreholes``, ``dem`` (optional); paths relative to the TOML
-    file. ``[processing]``: the fields of :class:`core.survey.model.Settings`
+    (required), ``boreholes``, ``dem``, ``pick_edits`` (optional; without it
+    ``pick_edits.csv`` beside the TOML file is read when it exists, see
+    :mod:`.edits`); paths relative to the TOML file. ``[processing]``: the fields of :class:`core.survey.model.Settings`
     except ``dem`` and ``work_crs``, type- and range-checked. ``[design]``,
     ``[sections]`` and the title-block keys of ``[survey]`` are those of
     :mod:`.handoff`. Unknown keys in any table are errors naming the nearest
@@ -32,6 +33,7 @@ from typing import Any, Optional, Union
 from .. import crs as crsmod
 from ..errors import GeoreferenceError, SurveyConfigError
 from .csvfile import read_csv_table, split_lines
+from .edits import EDITS_FILE_NAME, apply_pick_edits, read_pick_edits
 from .handoff import DESIGN_KEYS, SECTION_KEYS, SURVEY_EXTRA_KEYS, read_handoff
 from .model import Settings, Survey
 from .readers import (
@@ -53,7 +55,7 @@ __all__ = ["load_survey", "read_settings", "toml_keys"]
 
 _SURVEY_KEYS = ("name", "crs", "work_crs")
 _SURVEY_KEYS = ("name", "crs", "work_crs")
-_FILE_KEYS = ("stations", "picks", "boreholes", "dem")
+_FILE_KEYS = ("stations", "picks", "boreholes", "dem", "pick_edits")
 _NOT_PROCESSING = {"dem": "files", "work_crs": "survey"}
 _CHOICES = {
     "gather": ("shot", "cmp"),
@@ -94,7 +96,7 @@ def toml_keys() -> dict[str, tuple[str, ...]]:
     Examples
     --------
     >>> toml_keys()["files"]
-    ('stations', 'picks', 'boreholes', 'dem')
+    ('stations', 'picks', 'boreholes', 'dem', 'pick_edits')
     """
     return {"survey": _SURVEY_KEYS + SURVEY_EXTRA_KEYS, "files": _FILE_KEYS, "processing": tuple(_processing_fields()),
             "design": DESIGN_KEYS, "sections": SECTION_KEYS}
@@ -468,6 +470,12 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         raise toml.error("survey", "crs", f"{exc}") from exc
     stations = rows.stations(*to_working_crs(rows.table, rows.x, rows.y, crs_in, crs_work))
     picks = read_picks(paths["picks"], settings.default_sigma_ms, stations)
+    if "pick_edits" not in paths and (toml.path.parent / EDITS_FILE_NAME).is_file():
+        paths["pick_edits"] = (toml.path.parent / EDITS_FILE_NAME).resolve()
+    edits = None
+    if "pick_edits" in paths:
+        edits = apply_pick_edits(picks, read_pick_edits(paths["pick_edits"], picks))
+        picks = edits.picks
     boreholes = None
     if "boreholes" in paths:
         boreholes = read_boreholes(paths["boreholes"], crs_in, crs_work, settings.borehole_sigma_m, stations=stations)
@@ -490,5 +498,6 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         settings=settings,
         files=dict(paths),
         handoff=handoff,
+        edits=edits,
     )
 

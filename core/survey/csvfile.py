@@ -264,7 +264,11 @@ def _role_hint(found: Sequence[str]) -> str:
 
 
 def read_csv_table(
-    path: Union[str, Path], required: Sequence[str], optional: Sequence[str] = (), role: str = "CSV"
+    path: Union[str, Path],
+    required: Sequence[str],
+    optional: Sequence[str] = (),
+    role: str = "CSV",
+    allow_empty: bool = False,
 ) -> CsvTable:
     """Read and check the structure of one CSV file.
 
@@ -282,6 +286,9 @@ def read_csv_table(
         Lower-case column names.
     role : str
         Name of the file's role for messages ("stations", "picks", ...).
+    allow_empty : bool
+        Accept a header without data rows (a log such as the pick edits may
+        hold none).
 
     Returns
     -------
@@ -383,7 +390,7 @@ def read_csv_table(
             ),
             stacklevel=3,
         )
-    if not rows:
+    if not rows and not allow_empty:
         raise InputFileError(path, header_line, None, f"the {role} file has a header but no data rows")
     index = [columns.index(c) for c in known]
     ncol = len(columns)

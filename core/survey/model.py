@@ -203,6 +203,14 @@ class Survey:
     settings: Settings = field(default_factory=Settings)
     files: dict = field(default_factory=dict)  # role -> Path of each input file
     handoff: Handoff = field(default_factory=Handoff)
+    edits: Optional[object] = None  # edits.AppliedEdits of the pick edits file; picks above are after them
+
+    @property
+    def excluded_picks(self) -> np.ndarray:
+        """(n,) bool: picks excluded by the pick edits (per row of ``picks``)."""
+        if self.edits is None:
+            return np.zeros(len(self.picks), dtype=bool)
+        return np.asarray(self.edits.excluded, dtype=bool)
 
 
 @dataclass(frozen=True)

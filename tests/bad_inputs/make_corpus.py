@@ -873,6 +873,57 @@ def sections_unknown_key(s):
     return r"^survey\.toml, line 14, field 'sections\.corridor': unknown key 'corridor' in \[sections\]: did you mean 'corridor_m'"
 
 
+# ----------------------------------------------------------------- pick edits (pick_edits.csv beside survey.toml)
+EDITS_HEADER = "line,shot,receiver,reflector,action,new_time_ms,reason,time_stamp\n"
+
+
+@case
+def good_pick_edits(s):
+    s["raw"]["pick_edits.csv"] = (
+        EDITS_HEADER
+        + "L1,101,105,,exclude,,noisy trace,2026-12-02T07:30:12Z\n"
+        + "L1,101,106,1,retime,26.9,cycle skip,2026-12-02T07:31:00+01:00\n"
+        + "L1,101,105,,restore,,,\n"
+    ).encode()
+    return None
+
+
+@case
+def edits_unknown_action(s):
+    s["raw"]["pick_edits.csv"] = (EDITS_HEADER + "L1,101,105,,exlcude,,,\n").encode()
+    return r"^pick_edits\.csv, line 2, field 'action': action 'exlcude' is not one of exclude, restore, retime \(did you mean 'exclude'\?\)"
+
+
+@case
+def edits_retime_without_time(s):
+    s["raw"]["pick_edits.csv"] = (EDITS_HEADER + "L1,101,105,,exclude,,,\nL1,101,106,,retime,,,\n").encode()
+    return r"^pick_edits\.csv, line 3, field 'new_time_ms': a retime needs the new two-way time"
+
+
+@case
+def edits_time_decimal_comma(s):
+    s["raw"]["pick_edits.csv"] = (EDITS_HEADER + 'L1,101,106,,retime,"26,9",,\n').encode()
+    return r"^pick_edits\.csv, line 2, field 'new_time_ms': value '26,9' uses a decimal comma"
+
+
+@case
+def edits_unknown_receiver(s):
+    s["raw"]["pick_edits.csv"] = (EDITS_HEADER + "L1,101,1055,,exclude,,,\n").encode()
+    return r"^pick_edits\.csv, line 2, field 'receiver': receiver '1055' has no pick in shot '101' of line 'L1'"
+
+
+@case
+def edits_time_stamp_malformed(s):
+    s["raw"]["pick_edits.csv"] = (EDITS_HEADER + "L1,101,105,,exclude,,,02/12/2026 07:30\n").encode()
+    return r"^pick_edits\.csv, line 2, field 'time_stamp': time stamp '02/12/2026 07:30' is not an ISO 8601"
+
+
+@case
+def edits_named_file_missing(s):
+    set_toml(s, "files", "pick_edits", '"edits.csv"')
+    return r"^survey\.toml, line 9, field 'files\.pick_edits': file not found: 'edits\.csv'"
+
+
 def main(out=HERE):
     """Write every case into ``out`` (default: this folder)."""
     out = Path(out)
