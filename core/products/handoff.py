@@ -32,6 +32,7 @@ __all__ = [
     "handoff_run_info",
     "map_content",
     "section_file_stem",
+    "section_files",
     "write_handoff",
 ]
 
@@ -111,6 +112,9 @@ def handoff_run_info(result) -> list:
     items = []
     if result.surface is None:
         return items
+    h = result.survey.handoff
+    items.append(("vertical_datum", h.vertical_datum or "vertical datum not stated"))
+    items.append(("survey_date", h.survey_date or "not stated"))
     items.append((MAP_SHEET_NAME, "A3 map sheet: depth, standard deviation"
                   + (", probability above the design level" if result.design is not None else "")))
     items.append((LANDXML_NAME, "LandXML 1.2 TIN of reflector_elevation.tif (two triangles per fully mapped quad "
@@ -178,6 +182,19 @@ def map_content(result):
     return pages, overlays
 
 
+def _plan(overlays) -> dict:
+    return {"lines": overlays.lines,
+            "boreholes": None if overlays.boreholes is None else np.column_stack(overlays.boreholes[:2])}
+
+
+def section_files(result, section, fmt="pdf", info=None, plan=None):
+    """The sheet (PDF or SVG bytes) and the CSV columns of one section of a run."""
+    info = info or sheet_info(result)
+    if plan is None:
+        plan = _plan(map_content(result)[1])
+    return section_sheet(section, info, plan=plan, fmt=fmt), section.table()
+
+
 def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
     """Stage every hand-off file of ``result`` in ``outputs`` (an :class:`~..formats.atomic.OutputSet`)."""
     if result.surface is None:
@@ -206,11 +223,10 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
                      metadata=prov.items(), timestamp=prov.timestamp, software=prov.software,
                      description="probability (0 to 1) that the reflector lies above the design level")
     sections = sections if sections is not None else sections_step(result)
-    plan = {"lines": overlays.lines,
-            "boreholes": None if overlays.boreholes is None else np.column_stack(overlays.boreholes[:2])}
+    plan = _plan(overlays)
     for sec in sections:
         check_cancel(progress)
         stem = section_file_stem(sec.name)
-        outputs.stage(out_dir / f"{stem}.{h.section_format}").write_bytes(
-            section_sheet(sec, info, plan=plan, fmt=h.section_format))
-        write_csv(outputs.stage(out_dir / f"{stem}.csv"), sec.table())
+        sheet, table = section_files(result, sec, h.section_format, info, plan)
+        outputs.stage(out_dir / f"{stem}.{h.section_format}").write_bytes(sheet)
+        write_csv(outputs.stage(out_dir / f"{stem}.csv"), table)

@@ -4,8 +4,12 @@
 def all_algorithms():
     """One new instance of each algorithm."""
     from .combine_lines import CombineLinesAlgorithm
+    from .design_level import DesignLevelAlgorithm
     from .fit_gathers import FitGathersAlgorithm
     from .interpolate_surface import InterpolateSurfaceAlgorithm
+    from .map_sheet import MapSheetAlgorithm
     from .run_survey import RunSurveyAlgorithm
+    from .section_alignment import SectionAlongAlignmentAlgorithm
 
-    return [FitGathersAlgorithm(), CombineLinesAlgorithm(), InterpolateSurfaceAlgorithm(), RunSurveyAlgorithm()]
+    return [FitGathersAlgorithm(), CombineLinesAlgorithm(), InterpolateSurfaceAlgorithm(), RunSurveyAlgorithm(),
+            MapSheetAlgorithm(), SectionAlongAlignmentAlgorithm(), DesignLevelAlgorithm()]

@@ -8,7 +8,8 @@ import rockhead
 from qgis.core import Qgis, QgsApplication
 from qgis.PyQt.QtWidgets import QAction
 
-ALGORITHM_IDS = {"fitgathers", "combinelines", "interpolatesurface", "runsurvey"}
+ALGORITHM_IDS = {"fitgathers", "combinelines", "interpolatesurface", "runsurvey", "mapsheet", "sectionalongalignment",
+                 "designlevel"}
 
 
 def _registry():
