@@ -78,7 +78,7 @@ class DesignLevelAlgorithm(ReflectorAlgorithm):
             self.OUTPUT, tr("Rock volume above the design level"), QgsProcessing.TypeVectorPolygon))
 
     def processAlgorithm(self, parameters, context, feedback):
-        from ...core.formats.geotiff import write_geotiff_grid
+        from ...core.formats.gdalio import write_raster
         from ...core.handoff.steps import design_answers
         from ...core.products.handoff import design_volumes_layer
         from ...core.workflow import compute
@@ -107,7 +107,8 @@ class DesignLevelAlgorithm(ReflectorAlgorithm):
         if design.probability is None:
             raise QgsProcessingException(design.note)
         spec = result.spec
-        write_geotiff_grid(prob_path, spec.x_centres, spec.y_centres, design.probability, survey.crs)
+        write_raster(prob_path, design.probability, spec, survey.crs, unit="",
+                     description=f"P(reflector elevation > {z_design:g} m)")
         out = {self.PROBABILITY: prob_path}
         if design.volume is None:
             feedback.reportError(design.note, fatalError=False)

@@ -12,7 +12,7 @@ import pytest
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsFeature, QgsGeometry, QgsPointXY, QgsVectorLayer
-from rockhead.core.formats.geotiff import read_raster
+from rockhead.core.formats.gdalio import read_raster
 from rockhead.core.handoff.steps import design_answers, section_along
 from rockhead.core.survey.config import load_survey
 from rockhead.core.workflow import compute
