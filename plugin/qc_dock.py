@@ -136,7 +136,7 @@ class GatherQc:
         return self.fits
 
     def shot_attributes(self, g: int) -> dict:
-        """Values of the shots layer's fields for gather ``g`` (DESIGN.md section 6)."""
+        """Values of the shots layer's fields for gather ``g`` (the fixed output fields)."""
         f = self.fits
 
         def num(v):

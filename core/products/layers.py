@@ -1,7 +1,7 @@
 """Results as GIS layers: geometries plus typed attribute columns.
 
 Each function turns one result object into a :class:`~rockhead.core.formats.layer.Layer` whose
-field names are the project's fixed output names (DESIGN section 6). The same
+field names are the project's fixed output names (README, outputs). The same
 layers feed the GeoPackage, the CSV tables, the QGIS sinks and the report, so
 the names are defined once, here.
 """

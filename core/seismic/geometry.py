@@ -7,7 +7,7 @@ clockwise (seen from above), i.e. ``u x e_z``.
 
 The fitted plane of one gather is described, as in :mod:`.forward`, by its
 downward unit normal ``n`` and the normal distance ``h`` from the source S
-(DESIGN.md s.4):
+[Sheriff & Geldart 1995, ch. 4]:
 
 .. math::
 

@@ -34,12 +34,14 @@ import json
 import math
 import re
 from pathlib import Path
-from typing import Callable, Optional
+from typing import Any, Callable, Optional, Union
 
 import numpy as np
+import pyproj
 
 from .. import crs as crsmod
 from ..errors import GeoreferenceError, InputFileError, MissingDependencyError
+from .csvfile import read_csv_table
 from .model import Alignment, Handoff
 
 __all__ = [
@@ -146,11 +148,11 @@ def read_handoff(
     design_table: dict,
     sections_table: dict,
     *,
-    toml_dir,
+    toml_dir: Union[str, Path],
     error: Callable[[str, str, str], Exception],
-    crs_in,
-    crs_work,
-    read_table: Callable,
+    crs_in: pyproj.CRS,
+    crs_work: pyproj.CRS,
+    read_table: Callable = read_csv_table,
 ) -> Handoff:
     """Check the hand-off keys of survey.toml and read the files they name.
 
@@ -167,14 +169,17 @@ def read_handoff(
         CRS of x/y in the vertex files (the survey CRS) and the working CRS.
     read_table : callable
         The survey's CSV reader, ``read_table(path, required, optional, role)``
-        returning a table with ``rows``, ``lines``, ``columns`` and ``path``.
+        returning a table with ``rows``, ``lines``, ``columns`` and ``path``
+        (default :func:`.csvfile.read_csv_table`).
 
     Returns
     -------
     Handoff
+        The design level (m), area, simulations, alignments, corridor width (m),
+        section format and title-block facts.
     """
     toml_dir = Path(toml_dir)
-    values = {
+    values: dict[str, Any] = {
         "survey_date": _survey_date(survey_table, error),
         "vertical_datum": _vertical_datum(survey_table, error, crs_in),
     }
@@ -227,7 +232,7 @@ def read_handoff(
 # --------------------------------------------------------------------------- vertex files
 
 
-def _cell_number(table, i: int, name: str, text: str) -> float:
+def _cell_number(table: Any, i: int, name: str, text: str) -> float:
     if text == "":
         raise InputFileError(table.path, table.lines[i], name, f"empty value: '{name}' needs a number")
     if _NUMBER.match(text):
@@ -240,7 +245,9 @@ def _cell_number(table, i: int, name: str, text: str) -> float:
     raise InputFileError(table.path, table.lines[i], name, f"value {text!r} is not a finite number")
 
 
-def _vertices(path, crs_in, crs_work, read_table, role):
+def _vertices(
+    path: Path, crs_in: pyproj.CRS, crs_work: pyproj.CRS, read_table: Callable, role: str
+) -> tuple[Any, np.ndarray, np.ndarray]:
     table = read_table(path, ("x", "y"), (), role)
     x = np.array([_cell_number(table, i, "x", r[0]) for i, r in enumerate(table.rows)])
     y = np.array([_cell_number(table, i, "y", r[1]) for i, r in enumerate(table.rows)])
@@ -251,11 +258,39 @@ def _vertices(path, crs_in, crs_work, read_table, role):
     return table, xw, yw
 
 
-def read_alignment_csv(path, crs_in, crs_work, *, name=None, read_table) -> Alignment:
+def read_alignment_csv(
+    path: Union[str, Path],
+    crs_in: pyproj.CRS,
+    crs_work: pyproj.CRS,
+    *,
+    name: Optional[str] = None,
+    read_table: Callable = read_csv_table,
+) -> Alignment:
     """Read an alignment: a CSV of vertices ``x, y`` in order (survey CRS) -> working CRS.
 
     At least two vertices; consecutive repeats are dropped; the polyline must
     have a length. Errors name the file, line and field.
+
+    Parameters
+    ----------
+    path : str or Path
+        The vertex file.
+    crs_in, crs_work : pyproj.CRS
+        CRS of its x/y (the survey CRS) and the working CRS.
+    name : str, optional
+        The alignment's name (default the file's stem).
+    read_table : callable
+        The CSV reader (default :func:`.csvfile.read_csv_table`).
+
+    Returns
+    -------
+    Alignment
+        Vertices in the working CRS (m).
+
+    Raises
+    ------
+    InputFileError
+        Naming the file, line and field.
     """
     path = Path(path)
     table, x, y = _vertices(path, crs_in, crs_work, read_table, "alignment")
@@ -268,7 +303,9 @@ def read_alignment_csv(path, crs_in, crs_work, *, name=None, read_table) -> Alig
     return Alignment(name=name or path.stem, x_m=x, y_m=y, path=path)
 
 
-def read_area(path, crs_in, crs_work, *, read_table=None):
+def read_area(
+    path: Union[str, Path], crs_in: pyproj.CRS, crs_work: pyproj.CRS, *, read_table: Optional[Callable] = None
+) -> Any:
     """Read the design area polygon in the working CRS (shapely Polygon or MultiPolygon).
 
     ``.csv``: vertices ``x, y`` in order (survey CRS), closed or not.
@@ -276,6 +313,27 @@ def read_area(path, crs_in, crs_work, *, read_table=None):
     longitude/latitude, RFC 7946). Any other file: through GDAL/OGR (osgeo or
     pyogrio), in the layer's own CRS (the survey CRS when it has none).
     Every polygon of the file is merged into one area.
+
+    Parameters
+    ----------
+    path : str or Path
+        The area file.
+    crs_in, crs_work : pyproj.CRS
+        The survey CRS (of a CSV, or of a layer without one) and the working CRS.
+    read_table : callable, optional
+        The CSV reader (default :func:`.csvfile.read_csv_table`).
+
+    Returns
+    -------
+    shapely Polygon or MultiPolygon
+        The area in the working CRS (m).
+
+    Raises
+    ------
+    InputFileError
+        A bad file, naming it (and the line and field of a CSV).
+    MissingDependencyError
+        A file only GDAL/OGR reads, without GDAL's bindings or pyogrio.
     """
     from shapely.geometry import Polygon
     from shapely.ops import unary_union
@@ -283,9 +341,7 @@ def read_area(path, crs_in, crs_work, *, read_table=None):
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix == ".csv":
-        if read_table is None:
-            raise ValueError("read_area of a CSV file needs the survey's read_table")
-        table, x, y = _vertices(path, crs_in, crs_work, read_table, "area")
+        table, x, y = _vertices(path, crs_in, crs_work, read_table or read_csv_table, "area")
         if len(x) >= 2 and math.hypot(x[-1] - x[0], y[-1] - y[0]) < 1e-9:
             x, y = x[:-1], y[:-1]
         if len(x) < 3:
@@ -393,7 +449,7 @@ def _ogr_polygons(path: Path):
 
 
 def _transform_geom(geom, src, dst, path):
-    """A (Multi)Polygon with every ring transformed from ``src`` to ``dst`` (shapely 1.8 and 2)."""
+    """Transform every ring of a (Multi)Polygon from ``src`` to ``dst`` (shapely 1.8 and 2)."""
     from shapely.geometry import MultiPolygon, Polygon
 
     def ring(coords):

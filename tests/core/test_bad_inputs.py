@@ -7,7 +7,7 @@
   start, so it pins file, line and field) and, for file errors, names the
   file's basename, the line and the field it carries.
 
-The command-line contract (DESIGN.md section 6: exit code 2 and a one-line
+The command-line contract (exit code 2 and a one-line
 message on stderr for bad input) is checked on the same cases once core/cli.py
 exists.
 """
@@ -142,7 +142,7 @@ def _cli_main():
 
 @pytest.mark.parametrize("case", BAD, ids=BAD)
 def test_cli_run_returns_2_with_one_line(case, tmp_path, capsys):
-    """DESIGN.md section 6: exit code 2 on bad input with a one-line message on stderr."""
+    """The command line's contract: exit code 2 on bad input with a one-line message on stderr."""
     main = _cli_main()
     code = main(["run", str(CORPUS / case / "survey.toml"), "--out", str(tmp_path / "out")])
     err = capsys.readouterr().err

@@ -140,7 +140,7 @@ def test_line_frame_axis_points_toward_increasing_station_order(azimuth):
     order = np.random.default_rng(5).permutation(len(labels))  # file order scrambled
     st = make_stations({"L": ([labels[i] for i in order], x[order], y[order], z[order])})
     f = geometry.line_frames(st)["L"]
-    # convention (DESIGN.md s.3): azimuth clockwise from north; w = u turned 90 deg clockwise
+    # convention (DEVELOPERS.md): azimuth clockwise from north; w = u turned 90 deg clockwise
     assert f.azimuth_deg == pytest.approx(azimuth, abs=1e-9)
     w_azimuth = np.degrees(np.arctan2(f.cross_unit[0], f.cross_unit[1])) % 360.0
     assert (w_azimuth - azimuth - 90.0 + 180.0) % 360.0 - 180.0 == pytest.approx(0.0, abs=1e-9)
@@ -326,7 +326,7 @@ def test_zero_offset_point_is_the_foot_of_the_perpendicular():
     for k in range(0, g.n_gathers, 7):
         others = p0[k] + rng.uniform(-30, 30, (200, 1)) * e1 + rng.uniform(-30, 30, (200, 1)) * e2
         assert np.all(np.linalg.norm(others - s[k], axis=1) >= np.linalg.norm(p0[k] - s[k]) - 1e-9)
-    # displaced up-dip: horizontal shift toward dip direction + 180 (DESIGN.md s.4)
+    # displaced up-dip: horizontal shift toward dip direction + 180 (Sheriff & Geldart 1995, ch. 4)
     shift_az = np.degrees(np.arctan2(p0[:, 0] - s[:, 0], p0[:, 1] - s[:, 1])) % 360
     np.testing.assert_allclose(shift_az, 290.0, atol=1e-6)
     # vertical depth h / cos(dip): the point straight below the source is on the plane

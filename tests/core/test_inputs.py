@@ -412,3 +412,17 @@ def test_csv_lines_and_fields_are_located(tmp_path):
         table.number(0, "station", "12,5")
     with pytest.raises(InputFileError, match=r"line 4, field 'line': empty label"):
         table.label(0, "line", "")
+
+
+def test_area_and_alignment_csv_read_without_a_reader_argument(tmp_path):
+    # the vertex files go through the project's own CSV reader by default (no bare ValueError);
+    # a 40 m x 25 m rectangle in the working CRS itself has area 1000 m^2 exactly (shapely)
+    from rockhead.core.survey import handoff
+
+    utm = parse_crs("EPSG:32633")
+    area = write(tmp_path / "area.csv", "x,y\n500000,5500000\n500040,5500000\n500040,5500025\n500000,5500025\n")
+    assert handoff.read_area(area, utm, utm).area == pytest.approx(1000.0, abs=1e-6)
+    line = handoff.read_alignment_csv(write(tmp_path / "axis.csv", "x,y\n500000,5500000\n500030,5500040\n"), utm, utm)
+    assert line.name == "axis" and np.hypot(np.diff(line.x_m), np.diff(line.y_m))[0] == pytest.approx(50.0)
+    with pytest.raises(InputFileError, match=r"area.csv, line 2, field 'y': value '5500,5' uses a decimal comma"):
+        handoff.read_area(write(tmp_path / "area.csv", 'x,y\n500000,"5500,5"\n1,2\n3,4\n'), utm, utm)

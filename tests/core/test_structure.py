@@ -123,7 +123,7 @@ def angle_diff_deg(a, b):
 # ---------------------------------------------------------------------------
 
 
-# right-hand rule: dip direction = strike + 90 (DESIGN.md s.3; common practice in
+# right-hand rule: dip direction = strike + 90 (DEVELOPERS.md; common practice in
 # structural geology, e.g. Ragan 2009 -- from memory)
 @pytest.mark.parametrize(
     "dip_direction, strike",
@@ -172,11 +172,11 @@ def test_apparent_dip_is_the_slope_of_the_section(dip, dip_dir, beta):
 
 
 def test_traveltime_dip_is_not_the_apparent_dip():
-    # DESIGN.md s.4: 30 deg true dip, line 60 deg off dip -> 14.5 (traveltime) vs 16.1 (section)
+    # 30 deg true dip, line 60 deg off dip -> 14.5 (traveltime, Sheriff & Geldart 1995) vs 16.1 (section, Ragan 2009)
     assert float(structure.traveltime_dip_deg(30.0, 60.0)) == pytest.approx(14.4775, abs=1e-4)
     assert float(structure.apparent_dip_deg(30.0, 60.0)) == pytest.approx(16.1021, abs=1e-4)
     # independent route: exact image-source times along the line, the t^2 quadratic of
-    # DESIGN.md s.4 (np.polyfit), s = b / (2 sqrt(a c)) -> asin(s) is the traveltime dip
+    # a line over a dipping plane (np.polyfit), s = b / (2 sqrt(a c)) -> asin(s) is the traveltime dip
     n, d = forward.plane_through_point([0.0, 0.0, -50.0], 30.0, 0.0)
     u = np.array([np.sin(np.radians(60.0)), np.cos(np.radians(60.0)), 0.0])  # 60 deg off dip
     x = np.linspace(-60.0, 60.0, 25)

@@ -209,7 +209,7 @@ def test_combine_lines_equals_core(provider, sample_survey, core_fit):
     layer = res["DIP_MEASUREMENTS"]
     assert layer.featureCount() == len(dips.dip_deg) > 0
     assert_same_as_core(layer, layers.dips_layer(dips))
-    # strike by the right-hand rule: dip direction = strike + 90 (DESIGN.md s.3)
+    # strike by the right-hand rule: dip direction = strike + 90 (common practice)
     for f in layer.getFeatures():
         if not is_null(f["dip_deg"]):
             assert math.isclose((f["strike_deg"] + 90.0) % 360.0, f["dip_direction_deg"], abs_tol=1e-9)
