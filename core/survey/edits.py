@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import difflib
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Optional, Union
@@ -111,7 +111,13 @@ class PickEdit:
         return (self.line, self.shot, self.receiver, self.reflector)
 
     def describe(self) -> str:
-        """One line for people, e.g. ``exclude line A, shot 101, receiver 124 (reflector 1)``."""
+        """Describe the edit in one line for people.
+
+        Returns
+        -------
+        str
+            E.g. ``exclude: line A, shot 101, receiver 124 (reflector 1)``, with the reason.
+        """
         what = self.action
         if self.action == "retime" and self.new_time_ms is not None:
             what = f"retime to {self.new_time_ms:g} ms"
@@ -135,17 +141,34 @@ class PickEdits:
     path: Optional[Path] = None
 
     def __len__(self) -> int:
+        """Return the number of edits."""
         return len(self.edits)
 
-    def __iter__(self):
+    def __iter__(self) -> Iterator[PickEdit]:
+        """Iterate over the edits in order."""
         return iter(self.edits)
 
     def appended(self, edit: PickEdit) -> PickEdits:
-        """A copy with ``edit`` added at the end."""
+        """Return a copy with ``edit`` added at the end.
+
+        Parameters
+        ----------
+        edit : PickEdit
+            The new edit.
+
+        Returns
+        -------
+        PickEdits
+        """
         return replace(self, edits=(*self.edits, edit))
 
     def without_last(self) -> PickEdits:
-        """A copy without the last edit (undo)."""
+        """Return a copy without the last edit (undo).
+
+        Returns
+        -------
+        PickEdits
+        """
         return replace(self, edits=self.edits[:-1])
 
 
@@ -185,7 +208,13 @@ class AppliedEdits:
 
 
 def now_time_stamp() -> str:
-    """The current UTC time in ISO 8601 to the second, e.g. ``2026-12-02T07:30:12Z``."""
+    """Return the current UTC time in ISO 8601 to the second.
+
+    Returns
+    -------
+    str
+        E.g. ``2026-12-02T07:30:12Z``.
+    """
     return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
@@ -396,6 +425,9 @@ def apply_pick_edits(picks: Picks, edits: PickEdits) -> AppliedEdits:
                 excluded[row] = False
                 time_s[row] = picks.time_s[row]
             elif e.action == "retime":
+                if e.new_time_ms is None:
+                    raise InputFileError(edits.path, e.file_line, "new_time_ms", "a retime needs its new two-way "
+                                         "time in new_time_ms (milliseconds)")
                 time_s[row] = float(e.new_time_ms) / 1e3
             else:
                 raise InputFileError(edits.path, e.file_line, "action", f"action {e.action!r} is not one of "

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Optional
+from typing import Any, Optional
 
 import numpy as np
 
@@ -203,7 +203,7 @@ class Survey:
     settings: Settings = field(default_factory=Settings)
     files: dict = field(default_factory=dict)  # role -> Path of each input file
     handoff: Handoff = field(default_factory=Handoff)
-    edits: Optional[object] = None  # edits.AppliedEdits of the pick edits file; picks above are after them
+    edits: Optional[Any] = None  # edits.AppliedEdits of the pick edits file; picks above are after them
 
     @property
     def excluded_picks(self) -> np.ndarray:

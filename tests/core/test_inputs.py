@@ -426,3 +426,15 @@ def test_area_and_alignment_csv_read_without_a_reader_argument(tmp_path):
     assert line.name == "axis" and np.hypot(np.diff(line.x_m), np.diff(line.y_m))[0] == pytest.approx(50.0)
     with pytest.raises(InputFileError, match=r"area.csv, line 2, field 'y': value '5500,5' uses a decimal comma"):
         handoff.read_area(write(tmp_path / "area.csv", 'x,y\n500000,"5500,5"\n1,2\n3,4\n'), utm, utm)
+
+
+def test_retime_made_in_memory_without_a_time_is_a_project_error(tmp_path):
+    # an edit built in code (e.g. by the QC panel) is checked like one read from a file
+    from rockhead.core.survey import edits
+
+    picks = readers.read_picks(write(tmp_path / "p.csv", PICKS), 0.5)
+    bad = edits.PickEdits((edits.PickEdit("L1", "1", "2", "1", "retime"),), tmp_path / "pick_edits.csv")
+    with pytest.raises(InputFileError, match=r"pick_edits.csv, field 'new_time_ms': a retime needs its new two-way"):
+        edits.apply_pick_edits(picks, bad)
+    good = edits.PickEdits((edits.PickEdit("L1", "1", "2", "1", "retime", new_time_ms=30.0),))
+    assert edits.apply_pick_edits(picks, good).picks.time_s[0] == pytest.approx(0.030)  # ms to s
