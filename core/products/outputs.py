@@ -121,9 +121,9 @@ def result_rasters(result) -> dict:
     }
 
 
-def gather_qc_pngs(result):
-    """Yield (gather index, file name, PNG bytes) of the QC figure of every gather."""
-    from ..report.figures import gather_figure
+def gather_qc_figures(result):
+    """Yield (gather index, file name, SVG bytes) of the QC figure of every gather."""
+    from ..report.qc_svg import gather_svg
 
     g, f = result.fit.gathers, result.fit.fits
     d = g.receiver_xyz - g.source_xyz
@@ -143,9 +143,9 @@ def gather_qc_pngs(result):
             f"traveltime dip = {f.traveltime_dip_deg[k]:.1f} ± {f.se_traveltime_dip_deg[k]:.1f}°\n"
             f"rms {f.rms_residual_s[k] * 1e3:.2f} ms; used {f.picks_used[k]}, rejected {f.picks_rejected[k]}"
         )
-        flagged = f.rejected[sel] | f.excluded[sel]
-        png = gather_figure(x_along[sel], g.time_s[sel], model[sel], flagged, title, params)
-        yield k, f"gather_{_safe(g.line[k])}_{_safe(g.shot[k])}_{_safe(g.reflector[k])}.png", png
+        svg = gather_svg(x_along[sel], g.time_s[sel], model[sel], f.rejected[sel], f.excluded[sel], title, params,
+                         ident=f"g{k}")
+        yield k, f"gather_{_safe(g.line[k])}_{_safe(g.shot[k])}_{_safe(g.reflector[k])}.svg", svg
 
 
 def _safe(text) -> str:
@@ -198,13 +198,13 @@ def _write_all(result, out_dir, progress) -> list:
         write_handoff(outputs, out_dir, result, progress, sections)
         progress.set_progress(25)
         (out_dir / "qc").mkdir(exist_ok=True)
-        qc_pngs = {}
-        for k, name, png in gather_qc_pngs(result):
-            outputs.stage(out_dir / "qc" / name).write_bytes(png)
-            qc_pngs[k] = (name, png)
+        qc_figures = {}
+        for k, name, svg in gather_qc_figures(result):
+            outputs.stage(out_dir / "qc" / name).write_bytes(svg)
+            qc_figures[k] = (name, svg)
             check_cancel(progress)
             progress.set_progress(25 + 50 * (k + 1) / max(result.fit.gathers.n_gathers, 1))
-        html = build_report(result, layers, qc_pngs, sections)
+        html = build_report(result, layers, qc_figures, sections)
         outputs.stage(out_dir / "report.html").write_text(html, encoding="utf-8")
         written = outputs.targets
     progress.set_progress(100)

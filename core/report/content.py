@@ -22,8 +22,8 @@ def _rms(values):
     return float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
 
 
-def build_report(result, layers, qc_pngs, sections=None) -> str:
-    """Render the report; ``qc_pngs`` maps gather index -> (file name, PNG bytes)."""
+def build_report(result, layers, qc_figures, sections=None) -> str:
+    """Render the report; ``qc_figures`` maps gather index -> (file name, SVG or PNG bytes)."""
     survey, fit = result.survey, result.fit
     rep = Report(f"Reflector map — {survey.name}")
     rep.caution()
@@ -36,7 +36,7 @@ def build_report(result, layers, qc_pngs, sections=None) -> str:
     _misties(rep, result)
     _flagged(rep, fit)
     _pick_edits(rep, survey, fit)
-    _lines(rep, result, layers, qc_pngs)
+    _lines(rep, result, layers, qc_figures)
     handoff_section(rep, result, sections)
     _method(rep)
     rep.caution()
@@ -132,7 +132,7 @@ def _map(rep, r):
         spec.x_centres, spec.y_centres, r.depth_m, contours, lines,
         points_xy=np.column_stack([pts.x_m, pts.y_m]), dips=dips, surface_dips=sdips, boreholes=bhs,
         title=f"Depth to reflector below ground ({r.method_used}), depth contours, reflector points\n"
-              "strike and dip: red = measured at line crossings, grey = from the mapped surface",
+              "strike and dip: black = at line crossings, blue = from the surface; yellow = boreholes",
     )
     rep.heading("Map")
     rep.figure(png, "map of depth to the reflector")
@@ -316,7 +316,7 @@ def _pick_edits(rep, survey, fit):
         }, caption="Pick edits, in the order made")
 
 
-def _lines(rep, r, layers, qc_pngs):
+def _lines(rep, r, layers, qc_figures):
     fit = r.fit
     f, g = fit.fits, fit.gathers
     shots = layers["shots"]
@@ -332,8 +332,8 @@ def _lines(rep, r, layers, qc_pngs):
         rep.table({n: [shots.fields[n][i] for i in sel] for n in names},
                   caption=f"Gather fits of line {line}", flag=[f.status[i] != "ok" for i in sel])
         for i in sel:
-            if i in qc_pngs:
-                name, png = qc_pngs[i]
+            if i in qc_figures:
+                name, png = qc_figures[i]
                 rep.figure(png, f"QC of line {line} shot {g.shot[i]}",
                            collapsed_summary=f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})")
 

@@ -1,8 +1,10 @@
 """Quality-control and map figures (matplotlib, imported lazily, Agg backend).
 
-Every function returns PNG bytes, so the caller decides where they go (a file
-in ``qc/``, an image embedded in ``report.html``). matplotlib is optional for
-the core: without it :class:`~.errors.MissingDependencyError` names it.
+Every function returns PNG bytes, so the caller decides where they go (an
+image embedded in ``report.html``, a page of a sheet); the per-gather QC
+figures are SVG drawn by :mod:`.qc_svg` without matplotlib. matplotlib is
+optional for the core: without it :class:`~.errors.MissingDependencyError`
+names it.
 """
 
 from __future__ import annotations
@@ -11,18 +13,29 @@ import io
 
 import numpy as np
 
+from .. import colours
 from ..errors import MissingDependencyError
 
-# colours of our own choosing (colour-blind-safe pairs)
-USED = "#1f4e79"
-REJECTED = "#c0392b"
-FIT = "#e08e0b"
-LINE_COLOURS = ["#1b9e77", "#d95f02", "#7570b3", "#e7298a", "#66a61e", "#e6ab02", "#a6761d", "#666666"]
-DEPTH_CMAP = "viridis_r"  # depth to the reflector (the report's map and the map sheet)
-SIGMA_CMAP = "magma_r"  # its standard deviation
-PROBABILITY_CMAP = "RdYlBu_r"  # probability of rock above a design level
-MEASURED_DIP = "#b30000"  # strike-and-dip symbols measured at line crossings
-SURFACE_DIP = "0.35"  # and read off the mapped surface
+# The colour code is shared with QGIS (core/colours.py); these names are the figures' own view of it.
+USED = colours.PICK_USED
+REJECTED = colours.PICK_REJECTED
+EXCLUDED = colours.PICK_EXCLUDED
+FIT = colours.FIT_CURVE
+LINE_COLOURS = list(colours.LINE_COLOURS)
+MEASURED_DIP = colours.MEASURED_DIP  # strike-and-dip symbols measured at line crossings
+SURFACE_DIP = colours.SURFACE_DIP  # and read off the mapped surface
+#: matplotlib names of the shared ramps (registered by :func:`_plt`)
+DEPTH_CMAP = "rockhead_depth"  # depth to the reflector (the report's map and the map sheet)
+SIGMA_CMAP = "rockhead_sigma"  # its standard deviation
+PROBABILITY_CMAP = "rockhead_probability"  # probability of rock above a design level
+DIFFERENCE_CMAP = "rockhead_difference"  # a signed difference between two surfaces
+_RAMPS = {
+    DEPTH_CMAP: colours.DEPTH_RAMP,
+    SIGMA_CMAP: colours.SIGMA_RAMP,
+    PROBABILITY_CMAP: colours.PROBABILITY_RAMP,
+    DIFFERENCE_CMAP: colours.DIFFERENCE_RAMP,
+    "rockhead_elevation": colours.ELEVATION_RAMP,
+}
 
 
 def _plt():
@@ -33,7 +46,23 @@ def _plt():
         import matplotlib.pyplot as plt
     except ImportError as exc:  # pragma: no cover - depends on the machine
         raise MissingDependencyError("matplotlib", "QC figures and the report") from exc
+    register_colour_maps()
     return plt
+
+
+def register_colour_maps() -> None:
+    """Register the shared ramps of :mod:`core.colours` as matplotlib colour maps (once).
+
+    After this, ``DEPTH_CMAP``, ``SIGMA_CMAP``, ``PROBABILITY_CMAP`` and
+    ``DIFFERENCE_CMAP`` name colour maps that run through the same stops as
+    the QGIS styles.
+    """
+    import matplotlib
+    from matplotlib.colors import LinearSegmentedColormap
+
+    for name, ramp in _RAMPS.items():
+        if name not in matplotlib.colormaps:
+            matplotlib.colormaps.register(LinearSegmentedColormap.from_list(name, [(p, c) for p, c in ramp]))
 
 
 def _png(fig) -> bytes:
@@ -41,60 +70,6 @@ def _png(fig) -> bytes:
     fig.savefig(buf, format="png", dpi=fig.dpi, metadata={"Software": None})
     _plt().close(fig)
     return buf.getvalue()
-
-
-def gather_figure(offset_m, time_s, model_time_s, rejected, title, params_text, dpi=90) -> bytes:
-    """QC figure of one gather: t^2 against x^2, t against x, residuals.
-
-    ``offset_m`` is the signed offset along the line (receiver minus shot),
-    ``model_time_s`` the fitted time at each receiver (real 3D geometry), so
-    the fitted curve honours topography and crooked lines. In the t^2-x^2
-    panel a horizontal reflector plots as a straight line of slope 1/V^2 and
-    intercept t0^2 (Green 1938); the two sides of a split spread over a
-    dipping reflector plot as two branches.
-    """
-    plt = _plt()
-    x = np.asarray(offset_m, float)
-    t = np.asarray(time_s, float) * 1e3
-    tm = np.asarray(model_time_s, float) * 1e3
-    rej = np.asarray(rejected, bool)
-    order = np.argsort(x)
-    fig, axes = plt.subplots(1, 3, figsize=(11.5, 4.3), dpi=dpi, gridspec_kw={"width_ratios": [1, 1, 0.8]})
-    ax = axes[0]
-    for side, marker in ((x < 0, "v"), (x >= 0, "^")):
-        ok = side & ~rej
-        ax.plot(x[ok] ** 2, t[ok] ** 2, marker, ms=3.5, color=USED, ls="none")
-        ax.plot(x[side & rej] ** 2, t[side & rej] ** 2, "x", ms=5, color=REJECTED, ls="none")
-        o = np.argsort(x[side] ** 2)
-        ax.plot((x[side] ** 2)[o], (tm[side] ** 2)[o], "-", color=FIT, lw=1.2)
-    ax.set_xlabel("x² (m²)")
-    ax.set_ylabel("t² (ms²)")
-    ax.set_title("t²–x² (▲ forward, ▼ reverse)", fontsize=9)
-    ax = axes[1]
-    ax.plot(x[~rej], t[~rej], "o", ms=3, color=USED, ls="none", label="picks used")
-    ax.plot(x[rej], t[rej], "x", ms=5, color=REJECTED, ls="none", label="rejected")
-    ax.plot(x[order], tm[order], "-", color=FIT, lw=1.2, label="fit")
-    ax.invert_yaxis()
-    ax.set_xlabel("offset along line x (m)")
-    ax.set_ylabel("two-way time t (ms)")
-    ax.set_title("t–x", fontsize=9)
-    ax.legend(fontsize=7, loc="lower center")
-    ax = axes[2]
-    r = t - tm
-    ax.axhline(0, color="0.6", lw=0.8)
-    ax.plot(x[~rej], r[~rej], "o", ms=3, color=USED, ls="none")
-    ax.plot(x[rej], r[rej], "x", ms=5, color=REJECTED, ls="none")
-    finite = np.isfinite(r) & ~rej
-    lim = max(1.0, 1.2 * float(np.max(np.abs(r[finite])))) if np.any(finite) else 1.0
-    ax.set_ylim(-lim, lim)
-    ax.set_xlabel("x (m)")
-    ax.set_ylabel("residual (ms)")
-    ax.set_title("residuals (rejected may lie off scale)", fontsize=9)
-    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
-    fig.text(0.99, 0.97, params_text, fontsize=8, ha="right", va="top", family="monospace")
-    # fixed margins: tight_layout would triple the time of the dozens of QC figures of a survey
-    fig.subplots_adjust(left=0.06, right=0.99, bottom=0.12, top=0.76, wspace=0.32)
-    return _png(fig)
 
 
 def map_figure(
@@ -131,13 +106,12 @@ def map_figure(
     cb = fig.colorbar(im, ax=ax, shrink=0.75)
     cb.set_label("depth to reflector (m)")
     for _level, xy, is_index in contour_lines:
-        ax.plot(xy[:, 0], xy[:, 1], color="0.15", lw=1.0 if is_index else 0.4)
-    for i, (line, xy) in enumerate(sorted(station_lines.items())):
-        c = LINE_COLOURS[i % len(LINE_COLOURS)]
-        ax.plot(xy[:, 0], xy[:, 1], "-", color=c, lw=2.0)
-        ax.annotate(f"line {line}", xy[0], fontsize=8, color=c, ha="right", va="bottom")
+        ax.plot(xy[:, 0], xy[:, 1], color=colours.CONTOUR_DEPTH, lw=1.0 if is_index else 0.4)
+    for line, xy in sorted(station_lines.items()):
+        ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0)
+        ax.annotate(f"line {line}", xy[0], fontsize=8, color=colours.LINE, ha="right", va="bottom")
     if points_xy is not None and len(points_xy):
-        ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color="white", ms=3, mec="k", mew=0.3)
+        ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color=colours.REFLECTOR_POINT, ms=3, mec="white", mew=0.3)
     span = max(extent[1] - extent[0], extent[3] - extent[2])
     for sym, colour in ((surface_dips, SURFACE_DIP), (dips, MEASURED_DIP)):
         if sym is None:
@@ -148,7 +122,7 @@ def map_figure(
             strike_dip_symbol(ax, x, y, strike, dip, span * 0.03, colour)
     if boreholes is not None:
         bx, by, names = boreholes
-        ax.plot(bx, by, "s", color="k", mfc="yellow", ms=6)
+        ax.plot(bx, by, "o", color="k", mfc=colours.BOREHOLE, ms=6)
         for x, y, n in zip(bx, by, names):
             ax.annotate(n, (x, y), xytext=(4, 4), textcoords="offset points", fontsize=8)
     ax.set_xlim(extent[0], extent[1])
@@ -192,7 +166,7 @@ def section_figure(distance_m, ground_m, points, surface=None, title="", dpi=90)
     """
     plt = _plt()
     fig, ax = plt.subplots(figsize=(10, 3.4), dpi=dpi)
-    ax.plot(distance_m, ground_m, "-", color="#7f6000", lw=1.5, label="ground")
+    ax.plot(distance_m, ground_m, "-", color=colours.GROUND, lw=1.5, label="ground")
     d, z, s, ok = points
     ax.errorbar(
         d[ok], z[ok], yerr=2 * s[ok], fmt="o", ms=3, color=USED, lw=0.8, label="reflector points (±2σ)"
@@ -228,7 +202,7 @@ def scatter_figure(x, y, xlabel, ylabel, title="", one_to_one=True, dpi=90) -> b
 
 
 def raster_figure(
-    grid_x_m, grid_y_m, values, label, title="", cmap="RdBu_r", symmetric=True, dpi=90
+    grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_CMAP, symmetric=True, dpi=90
 ) -> bytes:
     """A single grid as an image (e.g. the difference between two surfaces)."""
     plt = _plt()

@@ -1,7 +1,7 @@
-"""A small, self-contained HTML report (images embedded as base64 PNG).
+"""A small, self-contained HTML report (images embedded as base64 data, PNG or SVG).
 
 The report is built from plain pieces — headings, paragraphs, key/value
-summaries, tables of named columns and PNG figures — so the pipeline decides
+summaries, tables of named columns and figures (PNG or SVG) — so the pipeline decides
 the content and this module only renders it. Text is HTML-escaped; nothing is
 fetched from the network when the page is opened.
 """
@@ -101,9 +101,12 @@ class Report:
             f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>{more}"
         )
 
-    def figure(self, png: bytes, alt: str, collapsed_summary: str | None = None) -> None:
-        data = base64.b64encode(png).decode("ascii")
-        img = f'<img alt="{html.escape(alt)}" src="data:image/png;base64,{data}">'
+    def figure(self, image: bytes, alt: str, collapsed_summary: str | None = None) -> None:
+        """An image: PNG bytes, or an SVG document (bytes starting with ``<svg`` or ``<?xml``)."""
+        head = image[:64].lstrip()
+        mime = "image/svg+xml" if head.startswith((b"<svg", b"<?xml")) else "image/png"
+        data = base64.b64encode(image).decode("ascii")
+        img = f'<img alt="{html.escape(alt)}" src="data:{mime};base64,{data}">'
         if collapsed_summary:
             img = f"<details><summary>{html.escape(collapsed_summary)}</summary>{img}</details>"
         self._parts.append(img)

@@ -20,6 +20,7 @@ from typing import Optional
 
 import numpy as np
 
+from .. import colours
 from ..grid import nice_step
 from . import figures
 from .sheet import A3_LANDSCAPE_MM, SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale
@@ -106,12 +107,12 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         for poly in getattr(ov.area, "geoms", [ov.area]):
             xs, ys = poly.exterior.xy
             ax.plot(xs, ys, "-", color="k", lw=1.4, ls="--", zorder=3)
-    for i, (name, xy) in enumerate(sorted(ov.lines.items())):
-        c = figures.LINE_COLOURS[i % len(figures.LINE_COLOURS)]
-        ax.plot(xy[:, 0], xy[:, 1], "-", color=c, lw=2.0, zorder=4)
-        ax.annotate(f"line {name}", xy[0], fontsize=7, color=c, ha="right", va="bottom", zorder=4)
+    for name, xy in sorted(ov.lines.items()):
+        ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0, zorder=4)
+        ax.annotate(f"line {name}", xy[0], fontsize=7, color=colours.LINE, ha="right", va="bottom", zorder=4)
     if ov.points_xy is not None and len(ov.points_xy):
-        ax.plot(ov.points_xy[:, 0], ov.points_xy[:, 1], ".", color="white", ms=3, mec="k", mew=0.3, zorder=5)
+        ax.plot(ov.points_xy[:, 0], ov.points_xy[:, 1], ".", color=colours.REFLECTOR_POINT, ms=3, mec="white",
+                mew=0.3, zorder=5)
     if page.show_dips:
         for sym, colour in ((ov.surface_dips, figures.SURFACE_DIP), (ov.dips, figures.MEASURED_DIP)):
             if sym is None:
@@ -121,7 +122,7 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
                     figures.strike_dip_symbol(ax, x, y, strike, dip, symbol_m, colour, fontsize=6)
     if ov.boreholes is not None:
         bx, by, names = ov.boreholes
-        ax.plot(bx, by, "s", color="k", mfc="yellow", ms=5, zorder=6)
+        ax.plot(bx, by, "o", color="k", mfc=colours.BOREHOLE, ms=5, zorder=6)
         for x, y, nm in zip(bx, by, names):
             ax.annotate(str(nm), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7, zorder=6)
     return im
@@ -144,13 +145,13 @@ def _legend(fig, im, page: MapPage, ov: MapOverlays):
                     Line2D([], [], color="0.15", lw=0.35, label="intermediate contour")]
     if page.contour_levels:
         handles.append(Line2D([], [], color="0.1", lw=0.8, label="probability contours"))
-    for i, name in enumerate(sorted(ov.lines)):
-        handles.append(Line2D([], [], color=figures.LINE_COLOURS[i % len(figures.LINE_COLOURS)], lw=2,
-                              label=f"seismic line {name}"))
+    if ov.lines:
+        handles.append(Line2D([], [], color=colours.LINE, lw=2, label="seismic line (labelled)"))
     if ov.points_xy is not None and len(ov.points_xy):
-        handles.append(Line2D([], [], marker=".", color="white", mec="k", ls="none", label="reflector point"))
+        handles.append(Line2D([], [], marker=".", color=colours.REFLECTOR_POINT, mec="white", ls="none",
+                              label="reflector point"))
     if ov.boreholes is not None:
-        handles.append(Line2D([], [], marker="s", color="k", mfc="yellow", ls="none", label="borehole"))
+        handles.append(Line2D([], [], marker="o", color="k", mfc=colours.BOREHOLE, ls="none", label="borehole"))
     if page.show_dips:
         handles += [Line2D([], [], color=figures.MEASURED_DIP, lw=1.8,
                            label="strike and dip (°), measured at line crossings"),

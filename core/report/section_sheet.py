@@ -12,12 +12,13 @@ from __future__ import annotations
 
 import numpy as np
 
+from .. import colours
 from . import figures
 from .sheet import SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale, save_figure
 
 __all__ = ["GROUND", "OVERBURDEN", "ROCK", "WATER", "section_sheet", "vertical_exaggeration"]
 
-GROUND = "#7f6000"  # as the report's line sections
+GROUND = colours.GROUND  # as the report's line sections
 OVERBURDEN = "#f3e9d2"
 ROCK = "#d9d9d9"
 WATER = "#2b7bba"

@@ -62,6 +62,9 @@ def _plt():
         import matplotlib.pyplot as plt
     except ImportError as exc:  # pragma: no cover - depends on the machine
         raise MissingDependencyError("matplotlib", "the map sheet and sections") from exc
+    from .figures import register_colour_maps
+
+    register_colour_maps()
     return plt
 
 

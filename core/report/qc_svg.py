@@ -1,0 +1,259 @@
+"""The QC figure of one gather as a small SVG drawing (no plotting library).
+
+A survey has one QC figure per gather, dozens to thousands of them; drawn
+with a general plotting library they were most of a run's time. This module
+writes the three panels directly as SVG text (vector, a few kilobytes each,
+drawn by any browser, by QGIS and by office programs), in milliseconds:
+
+* t² against x²: a horizontal reflector plots as a straight line of slope
+  1/V² and intercept t0² (Green 1938); the two sides of a split spread over a
+  dipping reflector plot as two branches (▲ forward, ▼ reverse offsets);
+* t against x with the fitted curve (time increasing downward, as on a record);
+* the residuals, picked minus fitted time.
+
+Picks used by the fit, rejected by it (mispicks, ×) and excluded by the
+interpreter (pick edits, ○) are told apart, in the colours of
+:mod:`core.colours`.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+
+import numpy as np
+
+from .. import colours
+
+__all__ = ["gather_svg", "nice_ticks"]
+
+_W, _H = 1000.0, 350.0  # drawing size (px of the SVG's own coordinates)
+_TOP = 92.0  # panels start below the title and the parameters
+_BOTTOM = 48.0
+_PANELS = ((62.0, 262.0), (395.0, 262.0), (728.0, 252.0))  # (left, width) of each panel
+_FONT = "font-family:system-ui,'Segoe UI',Helvetica,Arial,sans-serif"
+
+
+def nice_ticks(lo: float, hi: float, target: int = 5) -> np.ndarray:
+    """Round tick values (steps of 1, 2 or 5 x 10^k) covering [lo, hi], about ``target`` of them.
+
+    Parameters
+    ----------
+    lo, hi : float
+        The axis range (any order; equal values give one tick).
+    target : int
+        About how many intervals.
+
+    Returns
+    -------
+    ndarray
+        Ticks within [lo, hi] (inclusive, to a rounding tolerance).
+
+    Examples
+    --------
+    >>> nice_ticks(0.0, 47.0).tolist()
+    [0.0, 10.0, 20.0, 30.0, 40.0]
+    >>> nice_ticks(-1.3, 1.3).tolist()
+    [-1.0, -0.5, 0.0, 0.5, 1.0]
+    """
+    lo, hi = (float(lo), float(hi)) if lo <= hi else (float(hi), float(lo))
+    span = hi - lo
+    if not math.isfinite(span) or span <= 0:
+        return np.array([lo])
+    raw = span / max(int(target), 1)
+    mag = 10.0 ** math.floor(math.log10(raw))
+    step = min((m * mag for m in (1.0, 2.0, 5.0, 10.0)), key=lambda c: abs(math.log(c / raw)))
+    first = math.ceil(lo / step - 1e-9)
+    last = math.floor(hi / step + 1e-9)
+    return np.arange(first, last + 1) * step + 0.0  # + 0.0 turns -0.0 into 0.0
+
+
+def _fmt_tick(v: float, step: float) -> str:
+    digits = max(0, -math.floor(math.log10(step)) if step > 0 else 0)
+    text = f"{v:.{digits}f}"
+    if abs(v) >= 1e5:  # squared offsets and times: thousands separators keep them readable
+        text = f"{v:,.0f}".replace(",", "\u2009")
+    return text
+
+
+def _range(values, pad=0.06, include_zero=False):
+    v = np.asarray(values, float)
+    v = v[np.isfinite(v)]
+    if not v.size:
+        return 0.0, 1.0
+    lo, hi = float(v.min()), float(v.max())
+    if include_zero:
+        lo, hi = min(lo, 0.0), max(hi, 0.0)
+    span = hi - lo if hi > lo else max(abs(hi), 1.0)
+    return lo - pad * span, hi + pad * span
+
+
+class _Panel:
+    """One plot panel: data limits mapped onto a box of the drawing."""
+
+    def __init__(self, out, left, width, xlim, ylim, down=False):
+        self.out, self.left, self.width = out, left, width
+        self.top, self.height = _TOP, _H - _TOP - _BOTTOM
+        self.xlim, self.ylim, self.down = xlim, ylim, down
+
+    def px(self, x):
+        x0, x1 = self.xlim
+        return self.left + (np.asarray(x, float) - x0) / (x1 - x0) * self.width
+
+    def py(self, y):
+        y0, y1 = self.ylim
+        f = (np.asarray(y, float) - y0) / (y1 - y0)
+        return self.top + (f if self.down else 1.0 - f) * self.height
+
+    def frame(self, xlabel, ylabel, title):
+        o, l, t, w, h = self.out, self.left, self.top, self.width, self.height
+        xt = nice_ticks(*self.xlim)
+        yt = nice_ticks(*self.ylim)
+        xs = float(xt[1] - xt[0]) if len(xt) > 1 else 1.0
+        ys = float(yt[1] - yt[0]) if len(yt) > 1 else 1.0
+        grid = "".join(f"M{float(self.px(v)):.1f} {t:.1f}V{t + h:.1f}" for v in xt)
+        grid += "".join(f"M{l:.1f} {float(self.py(v)):.1f}H{l + w:.1f}" for v in yt)
+        o.append(f'<path d="{grid}" stroke="#e3e3e3" stroke-width="0.8"/>')
+        for v in xt:
+            p = float(self.px(v))
+            o.append(f'<text x="{p:.1f}" y="{t + h + 14:.1f}" text-anchor="middle">{_fmt_tick(v, xs)}</text>')
+        for v in yt:
+            p = float(self.py(v))
+            o.append(f'<text x="{l - 5:.1f}" y="{p + 4:.1f}" text-anchor="end">{_fmt_tick(v, ys)}</text>')
+        o.append(f'<rect x="{l:.1f}" y="{t:.1f}" width="{w:.1f}" height="{h:.1f}" fill="none" stroke="#777"/>')
+        o.append(f'<text x="{l + w / 2:.1f}" y="{t + h + 34:.1f}" text-anchor="middle">{html.escape(xlabel)}</text>')
+        o.append(
+            f'<text transform="translate({l - 46:.1f} {t + h / 2:.1f}) rotate(-90)" text-anchor="middle">'
+            f"{html.escape(ylabel)}</text>"
+        )
+        o.append(f'<text x="{l:.1f}" y="{t - 7:.1f}" font-weight="600">{html.escape(title)}</text>')
+
+    def clip_start(self, ident):
+        self.out.append(
+            f'<clipPath id="{ident}"><rect x="{self.left:.1f}" y="{self.top:.1f}" width="{self.width:.1f}" '
+            f'height="{self.height:.1f}"/></clipPath><g clip-path="url(#{ident})">'
+        )
+
+    def line(self, x, y, colour, width=1.6, dash=None):
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        ok = np.isfinite(x) & np.isfinite(y)
+        if ok.sum() < 2:
+            return
+        px, py = self.px(x[ok]), self.py(y[ok])
+        d = "M" + "L".join(f"{a:.1f} {b:.1f}" for a, b in zip(px, py))
+        extra = f' stroke-dasharray="{dash}"' if dash else ""
+        self.out.append(f'<path d="{d}" fill="none" stroke="{colour}" stroke-width="{width}"{extra}/>')
+
+    def marks(self, x, y, symbol):
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        ok = np.isfinite(x) & np.isfinite(y)
+        for a, b in zip(self.px(x[ok]), self.py(y[ok])):
+            self.out.append(f'<use xlink:href="#{symbol}" x="{a:.1f}" y="{b:.1f}"/>')
+
+
+def _symbols(prefix):
+    u, r, e = colours.PICK_USED, colours.PICK_REJECTED, colours.PICK_EXCLUDED
+    return (
+        "<defs>"
+        f'<circle id="{prefix}o" r="2.6" fill="{u}"/>'
+        f'<path id="{prefix}up" d="M0 -3.6L3.2 2.2H-3.2Z" fill="{u}"/>'
+        f'<path id="{prefix}dn" d="M0 3.6L3.2 -2.2H-3.2Z" fill="{u}"/>'
+        f'<path id="{prefix}x" d="M-3.4 -3.4L3.4 3.4M-3.4 3.4L3.4 -3.4" stroke="{r}" stroke-width="1.6"/>'
+        f'<circle id="{prefix}ex" r="3.2" fill="none" stroke="{e}" stroke-width="1.4"/>'
+        "</defs>"
+    )
+
+
+def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, params_text: str,
+               ident: str = "g") -> bytes:
+    """The QC figure of one gather as SVG: t²–x², t–x with the fit, residuals.
+
+    Parameters
+    ----------
+    offset_m : (n,) array_like
+        Signed offset along the line, receiver minus shot (m).
+    time_s : (n,) array_like
+        Picked two-way times (s), after any pick edits.
+    model_time_s : (n,) array_like
+        Fitted times at the same receivers (s), from the real 3D geometry,
+        so the curve honours topography and crooked lines.
+    rejected, excluded : (n,) array_like of bool
+        Picks the fit rejected as mispicks; picks the interpreter excluded.
+    title : str
+        Heading (line, shot, reflector, status).
+    params_text : str
+        The fitted parameters, one per line.
+    ident : str
+        Prefix of the element ids, unique per figure when several are inlined
+        in one page.
+
+    Returns
+    -------
+    bytes
+        A standalone UTF-8 SVG document.
+    """
+    x = np.asarray(offset_m, float)
+    t = np.asarray(time_s, float) * 1e3
+    tm = np.asarray(model_time_s, float) * 1e3
+    rej = np.asarray(rejected, bool)
+    exc = np.asarray(excluded, bool) & ~rej
+    used = ~(rej | exc)
+    order = np.argsort(x, kind="stable")
+    out = [
+        '<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" '
+        f'viewBox="0 0 {_W:.0f} {_H:.0f}" width="{_W:.0f}" '
+        f'height="{_H:.0f}" font-size="11" style="{_FONT}" fill="#222">',
+        '<rect width="100%" height="100%" fill="white"/>',
+        _symbols(ident),
+        f'<text x="10" y="20" font-size="14" font-weight="600">{html.escape(title)}</text>',
+    ]
+    for k, row in enumerate(params_text.splitlines()):
+        out.append(
+            f'<text x="{_W - 10:.0f}" y="{18 + 13 * k}" text-anchor="end" font-family="monospace" '
+            f'font-size="11" xml:space="preserve">{html.escape(row)}</text>'
+        )
+    keyx = 10.0
+    for sym, label in (("o", "pick used"), ("x", "rejected by the fit"), ("ex", "excluded (pick edit)")):
+        out.append(f'<use xlink:href="#{ident}{sym}" x="{keyx + 4:.0f}" y="41"/>')
+        out.append(f'<text x="{keyx + 12:.0f}" y="45">{label}</text>')
+        keyx += 36 + 6.2 * len(label)
+    out.append(f'<path d="M{keyx:.0f} 41h18" stroke="{colours.FIT_CURVE}" stroke-width="2"/>')
+    out.append(f'<text x="{keyx + 23:.0f}" y="45">fit</text>')
+
+    # t^2 - x^2
+    x2, t2, m2 = x**2, t**2, tm**2
+    p = _Panel(out, *_PANELS[0], _range(np.r_[x2, 0.0]), _range(np.r_[t2[np.isfinite(t2)], m2[np.isfinite(m2)]]))
+    p.frame("x² (m²)", "t² (ms²)", "t²–x² (▲ forward, ▼ reverse)")
+    p.clip_start(f"{ident}c0")
+    for side in (x < 0, x >= 0):
+        o = np.argsort(x2[side], kind="stable")
+        p.line(x2[side][o], m2[side][o], colours.FIT_CURVE)
+    p.marks(x2[used & (x >= 0)], t2[used & (x >= 0)], f"{ident}up")
+    p.marks(x2[used & (x < 0)], t2[used & (x < 0)], f"{ident}dn")
+    p.marks(x2[exc], t2[exc], f"{ident}ex")
+    p.marks(x2[rej], t2[rej], f"{ident}x")
+    out.append("</g>")
+
+    # t - x, time down
+    p = _Panel(out, *_PANELS[1], _range(x), _range(np.r_[t[np.isfinite(t)], tm[np.isfinite(tm)]]), down=True)
+    p.frame("offset along line x (m)", "two-way time t (ms)", "t–x")
+    p.clip_start(f"{ident}c1")
+    p.line(x[order], tm[order], colours.FIT_CURVE)
+    p.marks(x[used], t[used], f"{ident}o")
+    p.marks(x[exc], t[exc], f"{ident}ex")
+    p.marks(x[rej], t[rej], f"{ident}x")
+    out.append("</g>")
+
+    # residuals
+    r = t - tm
+    shown = np.isfinite(r) & ~rej
+    lim = max(1.0, 1.2 * float(np.max(np.abs(r[shown])))) if np.any(shown) else 1.0
+    p = _Panel(out, *_PANELS[2], _range(x), (-lim, lim))
+    p.frame("x (m)", "residual (ms)", "residuals (rejected may lie off scale)")
+    p.clip_start(f"{ident}c2")
+    p.line(p.xlim, (0.0, 0.0), "#888", width=1.0)
+    p.marks(x[used], r[used], f"{ident}o")
+    p.marks(x[exc], r[exc], f"{ident}ex")
+    p.marks(x[rej], np.clip(r[rej], -0.97 * lim, 0.97 * lim), f"{ident}x")
+    out.append("</g></svg>\n")
+    return "\n".join(out).encode("utf-8")
