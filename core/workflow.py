@@ -23,7 +23,7 @@ from .errors import InversionError
 from .grid import GridSpec, bilinear, fill_nearest, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import FitStep, RunResult
-from .seismic.cmp import cmp_bins, fit_cmp_gathers
+from .seismic.cmp import cmp_bins, fit_cmp_gathers, midpoint_spacing
 from .seismic.dix import dix_intervals
 from .seismic.geometry import build_gathers, line_frames, reflector_points
 from .seismic.misties import line_misties
@@ -389,25 +389,33 @@ def cmp_step(survey, fit):
 
     Picks are sorted into midpoint bins along each line (per reflector) and
     each bin is fitted with t^2 = t0^2 + x^2 / Vnmo^2 (Levin 1971; along dip
-    Vnmo = V / cos(dip)). The bin length defaults to the median shot spacing.
-    ``depth_m`` = Vnmo t0 / 2 below the bin centre is a vertical, small-dip
-    estimate; the map itself always comes from the exact 3D shot-gather fits.
-    Returns a dict of columns (with ``x_m``, ``y_m`` of the bin centres).
+    Vnmo = V / cos(dip)). The bin length defaults to one midpoint spacing of
+    the line (the median over its shot gathers, :func:`midpoint_spacing`:
+    half the receiver spacing), bins centred on the midpoints, so that a bin
+    holds one midpoint: a longer bin mixes midpoints whose t0 differ on a
+    dipping reflector and biases Vnmo. ``depth_m`` = Vnmo t0 / 2 below the
+    bin centre is a vertical, small-dip estimate; the map itself always comes
+    from the exact 3D shot-gather fits. Returns a dict of columns (with
+    ``x_m``, ``y_m`` of the bin centres).
     """
     g = fit.gathers
+    pick_line = np.asarray(g.line)[g.gather].astype(str)
     bin_m = survey.settings.cmp_bin_m
     if bin_m is None:
-        spacing = []
-        for line in sorted(set(np.asarray(g.line).tolist())):
-            src = np.unique(g.source_xyz_g[np.asarray(g.line) == line][:, :2], axis=0)
-            if len(src) > 1:
-                d = np.hypot(*np.diff(src[np.argsort(src @ g.line_unit[np.asarray(g.line) == line][0])], axis=0).T)
-                spacing.extend(d[d > 0].tolist())
-        bin_m = float(np.median(spacing)) if spacing else float(np.median(g.spread_length_m)) / 4
-    pick_line = np.asarray(g.line)[g.gather].astype(str)
+        per_gather = midpoint_spacing(g.source_xyz, g.receiver_xyz, g.gather, g.line_unit)
+        lines = np.asarray(g.line).astype(str)
+        per_line = {}
+        for line in sorted(set(lines.tolist())):
+            vals = per_gather[(lines == line) & np.isfinite(per_gather)]
+            per_line[line] = float(np.median(vals)) if len(vals) else float(np.median(g.spread_length_m)) / 4
+        bins = np.array([per_line[line] for line in pick_line], dtype=float)
+        centred = True
+    else:
+        bins, centred = float(bin_m), False
     pick_refl = np.asarray(g.reflector)[g.gather].astype(str)
     group = np.char.add(np.char.add(pick_line, "\x1f"), pick_refl)
-    gid, centres, offset = cmp_bins(g.source_xyz[:, :2], g.receiver_xyz[:, :2], bin_m, group=group)
+    gid, centres, offset = cmp_bins(g.source_xyz[:, :2], g.receiver_xyz[:, :2], bins, group=group,
+                                    centred=centred)
     fits = fit_cmp_gathers(gid, offset, g.time_s, g.sigma_s, survey.settings)
     first = np.zeros(len(centres), dtype=int)
     first[gid[::-1]] = np.arange(len(gid))[::-1]
@@ -426,7 +434,7 @@ def cmp_step(survey, fit):
         "picks_rejected": fits.picks_rejected.astype(np.int64),
         "status": fits.status.astype(object),
         "reason": fits.reason.astype(object),
-        "bin_m": np.full(len(centres), bin_m),
+        "bin_m": np.broadcast_to(bins, gid.shape)[first].astype(float),
     }
 
 

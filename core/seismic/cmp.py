@@ -25,7 +25,7 @@ from .batch import pad, pad_layout, safe_solve, unpad
 from .gather_fit import check_pick_times, exclude_mask, fit_padded_gathers
 from .lm import Rows
 
-__all__ = ["CmpFits", "cmp_bins", "fit_cmp_gathers"]
+__all__ = ["CmpFits", "cmp_bins", "fit_cmp_gathers", "midpoint_spacing"]
 
 _DEFAULT_SETTINGS = Settings()  # frozen, safe to share as a default
 
@@ -293,31 +293,90 @@ def fit_cmp_gathers(
     )
 
 
+def midpoint_spacing(
+    source_xy: np.ndarray, receiver_xy: np.ndarray, gather_id: np.ndarray, line_unit: np.ndarray
+) -> np.ndarray:
+    r"""Spacing of the midpoints of each gather along its line (m).
+
+    The midpoints :math:`M = (S + R)/2` of one shot gather are projected on
+    the line direction u; the spacing is the median of the positive gaps
+    between consecutive projections (gaps under 1 mm count as one midpoint).
+    With receivers every :math:`\Delta` it is :math:`\Delta/2`, the natural
+    common-midpoint spacing (common practice).
+
+    Parameters
+    ----------
+    source_xy, receiver_xy : (n, 2) or (n, 3) array_like
+        Source and receiver positions of each pick (m; a third column is ignored).
+    gather_id : (n,) int array_like
+        Gather of each pick, 0 .. g-1.
+    line_unit : (g, 2) array_like
+        Unit vector along the line of each gather.
+
+    Returns
+    -------
+    (g,) ndarray
+        Midpoint spacing of each gather (m); NaN for a gather with fewer than
+        two distinct midpoints.
+
+    Examples
+    --------
+    >>> s = np.zeros((4, 2)); r = np.column_stack([[2.0, 4.0, 6.0, 8.0], np.zeros(4)])
+    >>> midpoint_spacing(s, r, np.zeros(4, int), np.array([[1.0, 0.0]])).tolist()
+    [1.0]
+    """
+    S = np.asarray(source_xy, dtype=float)[:, :2]
+    R = np.asarray(receiver_xy, dtype=float)[:, :2]
+    gid = np.asarray(gather_id, dtype=np.intp)
+    U = np.asarray(line_unit, dtype=float).reshape(-1, 2)
+    g = len(U)
+    out = np.full(g, np.nan)
+    if len(gid) == 0:
+        return out
+    p = np.sum(0.5 * (S + R) * U[gid], axis=1)
+    order = np.lexsort((p, gid))
+    gs, ps = gid[order], p[order]
+    gap = np.diff(ps)
+    same = gs[1:] == gs[:-1]
+    keep = same & (gap > 1e-3)
+    for k in np.unique(gs[1:][keep]):  # one median per gather; gathers are few (tens to hundreds)
+        out[k] = float(np.median(gap[keep & (gs[1:] == k)]))
+    return out
+
+
 def cmp_bins(
     source_xy: np.ndarray,
     receiver_xy: np.ndarray,
-    bin_size_m: float,
+    bin_size_m: Any,
     line_unit: Optional[np.ndarray] = None,
     group: Optional[np.ndarray] = None,
+    centred: bool = False,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     r"""Sort source-receiver pairs into common-midpoint bins along a line.
 
     Midpoints :math:`M = (S + R)/2` are projected on the line direction u
     (``line_unit``, (2,) or (n, 2); the principal axis of the midpoints of
     each group when None). Bin k of a group covers projections
-    :math:`[p_{min} + k\,b,\ p_{min} + (k+1)\,b)`. Picks of different
-    ``group`` labels (e.g. line and reflector) never share a bin.
+    :math:`[p_{min} + k\,b,\ p_{min} + (k+1)\,b)`; with ``centred`` it
+    covers :math:`[p_{min} + (k - \tfrac12)\,b,\ p_{min} + (k + \tfrac12)\,b)`,
+    so that midpoints on a lattice of spacing b starting at the first one
+    each fall in the middle of their own bin (a few centimetres of survey
+    scatter then never split or merge them). Picks of different ``group``
+    labels (e.g. line and reflector) never share a bin.
 
     Parameters
     ----------
     source_xy, receiver_xy : (n, 2) or (n, 3) array_like
         Source and receiver positions (m; a third column is ignored).
-    bin_size_m : float
-        Bin length along the line (m, > 0).
+    bin_size_m : float or (n,) array_like
+        Bin length along the line (m, > 0); per pick, it must be the same
+        within a group.
     line_unit : (2,) or (n, 2) array_like, optional
         Line direction (need not be a unit vector).
     group : (n,) array_like, optional
         Labels of picks that may share bins.
+    centred : bool
+        Centre the bins on the lattice of the first midpoint (see above).
 
     Returns
     -------
@@ -347,11 +406,20 @@ def cmp_bins(
     if S.ndim != 2 or R.ndim != 2 or S.shape[1] < 2 or S.shape[:1] != R.shape[:1] or R.shape[1] < 2:
         raise InversionError(f"source_xy {S.shape} and receiver_xy {R.shape} must have the same shape (n, 2)")
     S, R = S[:, :2], R[:, :2]
-    if isinstance(bin_size_m, bool) or not isinstance(bin_size_m, (int, float, np.number)) or not (
+    n = len(S)
+    if isinstance(bin_size_m, np.ndarray) and bin_size_m.ndim == 1:
+        b = bin_size_m.astype(float)
+        if b.shape != (n,) or not np.all(np.isfinite(b) & (b > 0)):
+            raise InversionError(
+                f"bin_size_m has shape {b.shape} or values that are not positive distances; expected one "
+                f"positive bin length (m) per pick, shape ({n},), or one number"
+            )
+    elif isinstance(bin_size_m, bool) or not isinstance(bin_size_m, (int, float, np.number)) or not (
         np.isfinite(bin_size_m) and bin_size_m > 0
     ):
         raise InversionError(f"bin_size_m = {bin_size_m!r} must be a positive distance in metres")
-    n = len(S)
+    else:
+        b = np.full(n, float(bin_size_m))
     if group is not None and np.shape(group) != (n,):
         raise InversionError(f"group has shape {np.shape(group)}; expected one label per pick, shape ({n},)")
     if line_unit is not None and np.shape(line_unit) not in ((2,), (n, 2)):
@@ -376,7 +444,7 @@ def cmp_bins(
     proj = np.sum(M * U, axis=1)
     pmin = np.full(ng, np.inf)
     np.minimum.at(pmin, labels, proj)
-    k = np.floor((proj - pmin[labels]) / bin_size_m + 1e-9).astype(np.int64)
+    k = np.floor((proj - pmin[labels]) / b + (0.5 if centred else 1e-9)).astype(np.int64)
     key = labels.astype(np.int64) * (int(k.max()) + 1 if n else 1) + k
     _, gather_id = np.unique(key, return_inverse=True)
     gather_id = gather_id.ravel()

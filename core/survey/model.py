@@ -134,7 +134,7 @@ class Settings:
 
     default_sigma_ms: float = 0.5  # pick error when picks.csv has no sigma_ms
     gather: str = "shot"  # "shot"; "cmp" adds common-midpoint velocity analysis (layer cmp_fits)
-    cmp_bin_m: Optional[float] = None  # CMP bin length along the line; None: the median shot spacing
+    cmp_bin_m: Optional[float] = None  # CMP bin length along the line; None: one midpoint spacing
     min_picks: int = 6  # fewer usable picks: gather flagged, not fitted
     velocity_min_m_s: float = 150.0  # plausible overburden velocity range
     velocity_max_m_s: float = 6500.0
