@@ -228,11 +228,21 @@ def _features(lyr, columns, wkb, n: int) -> None:
     lyr.CommitTransaction()
 
 
-def list_layers(path) -> list:
+def _open_vector(path):
     from osgeo import ogr
 
-    with exceptions():
+    try:
         ds = ogr.Open(str(path))
+    except RuntimeError as exc:
+        raise InputFileError(path, None, None, f"GDAL cannot open the file: {exc}") from exc
+    if ds is None:  # pragma: no cover - exceptions are on
+        raise InputFileError(path, None, None, "GDAL cannot open the file")
+    return ds
+
+
+def list_layers(path) -> list:
+    with exceptions():
+        ds = _open_vector(path)
         names = [ds.GetLayer(i).GetName() for i in range(ds.GetLayerCount())]
         ds = None
     return names
@@ -255,10 +265,9 @@ def _kind(fd) -> str:
 
 def read_layer(path, name: str):
     """(WKB list or None, {field: (kind, values)}, WKT 2, description) of one table."""
-    from osgeo import ogr
 
     with exceptions():
-        ds = ogr.Open(str(path))
+        ds = _open_vector(path)
         lyr = ds.GetLayerByName(name)
         if lyr is None:
             raise InputFileError(path, None, None, f"no layer '{name}'")
@@ -289,10 +298,8 @@ def read_layer(path, name: str):
 
 
 def vector_metadata(path, layer=None) -> dict:
-    from osgeo import ogr
-
     with exceptions():
-        ds = ogr.Open(str(path))
+        ds = _open_vector(path)
         obj = ds if layer is None else ds.GetLayerByName(layer)
         md = dict(obj.GetMetadata() or {})
         obj = None

@@ -141,17 +141,30 @@ def write_layers(tmp, prepared, wkt, dmd, lmd, dataset_options, layer_options) -
             raise OutputError(f"GDAL cannot write the GeoPackage '{tmp.name}': {exc}") from exc
 
 
+@contextlib.contextmanager
+def _reading(path):
+    """pyogrio's errors for an unreadable file as the project's input error."""
+    from pyogrio.errors import DataLayerError, DataSourceError
+
+    try:
+        yield
+    except (DataSourceError, DataLayerError) as exc:
+        raise InputFileError(path, None, None, f"GDAL cannot read the file: {exc}") from exc
+
+
 def list_layers(path) -> list:
     import pyogrio
 
-    return [str(n) for n in pyogrio.list_layers(str(path))[:, 0]]
+    with _reading(path):
+        return [str(n) for n in pyogrio.list_layers(str(path))[:, 0]]
 
 
 def read_layer(path, name: str):
     """(WKB list or None, {field: (kind, values)}, WKT 2, description) of one table."""
     import pyogrio
 
-    meta, _fids, geoms, data = pyogrio.raw.read(str(path), layer=name)
+    with _reading(path):
+        meta, _fids, geoms, data = pyogrio.raw.read(str(path), layer=name)
     fields = {}
     for fname, arr, ogr_type, sub in zip(meta["fields"], data, meta["ogr_types"], meta["ogr_subtypes"]):
         kind = {"OFTReal": "f", "OFTInteger64": "i", "OFTDateTime": "M"}.get(ogr_type, "S")
@@ -164,7 +177,8 @@ def read_layer(path, name: str):
     wkb = None
     if meta.get("geometry_type") is not None:
         wkb = [] if geoms is None else [None if g is None else bytes(g) for g in geoms]
-    info = pyogrio.read_info(str(path), layer=name)
+    with _reading(path):
+        info = pyogrio.read_info(str(path), layer=name)
     desc = (info.get("layer_metadata") or {}).get("DESCRIPTION", "")
     return wkb, fields, meta["crs"] or "", desc
 
@@ -172,5 +186,6 @@ def read_layer(path, name: str):
 def vector_metadata(path, layer=None) -> dict:
     import pyogrio
 
-    info = pyogrio.read_info(str(path), layer=0 if layer is None else layer)
+    with _reading(path):
+        info = pyogrio.read_info(str(path), layer=0 if layer is None else layer)
     return dict(info.get("dataset_metadata" if layer is None else "layer_metadata") or {})

@@ -19,8 +19,9 @@ from ..formats.tables import write_layer_csv
 from ..progress import check_cancel
 from ..workflow import surface_data
 from . import layers as lay
+from .geopackage import layers_3d
 from .handoff import handoff_layers, handoff_run_info, write_handoff
-from .provenance import provenance
+from .provenance import elevation_crs, provenance
 
 GPKG_NAME = "survey.gpkg"
 
@@ -67,6 +68,7 @@ def run_info(result) -> list:
         ("software", f"Rockhead {__version__}"),
         ("survey", result.survey.name),
         ("crs", result.survey.crs.to_string()),
+        ("vertical_datum", provenance(result).vertical_datum),
         ("reflector", s.reflector),
         ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
     ]
@@ -99,9 +101,10 @@ def run_info(result) -> list:
     return items
 
 
+ELEVATION_NAME = "reflector_elevation.tif"
 #: File name -> band description of the raster outputs
 RASTER_DESCRIPTIONS = {
-    "reflector_elevation.tif": "reflector elevation (m, up positive)",
+    ELEVATION_NAME: "reflector elevation (m, up positive)",
     "reflector_depth.tif": "reflector depth below ground (m, positive down)",
     "depth_sigma.tif": "standard deviation of the reflector surface (m)",
 }
@@ -178,18 +181,21 @@ def _write_all(result, out_dir, progress) -> list:
     layers = result_layers(result, sections)
     spec = result.spec
     prov = provenance(result)
+    z_crs = elevation_crs(result.survey)  # compound (working + vertical) when the survey states its datum
     with OutputSet() as outputs:
-        write_layers(
-            outputs.stage(out_dir / GPKG_NAME), layers, crs, dataset_metadata=prov.items(), timestamp=prov.timestamp
-        )
+        gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
+        write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
+                     layer_metadata=layer_md, timestamp=prov.timestamp)
         (out_dir / "csv").mkdir(exist_ok=True)
         for name, layer in layers.items():
             write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
         progress.set_progress(15)
         for name, grid in result_rasters(result).items():
+            # elevations carry the vertical datum; depth below ground and sigma are lengths, not heights
             write_raster(
-                outputs.stage(out_dir / name), grid, spec, crs, metadata=prov.items(),
-                description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp, software=prov.software,
+                outputs.stage(out_dir / name), grid, spec, z_crs if name == ELEVATION_NAME else crs,
+                metadata=prov.items(), description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp,
+                software=prov.software,
             )
         if result.contours is not None and len(result.contours):
             for kind in ("elevation", "depth"):

@@ -23,7 +23,15 @@ from typing import Dict, List, Optional
 
 from ..errors import OutputError
 
-__all__ = ["CAUTION", "VERTICAL_NOT_STATED", "Provenance", "product_timestamp", "provenance", "vertical_label"]
+__all__ = [
+    "CAUTION",
+    "VERTICAL_NOT_STATED",
+    "Provenance",
+    "elevation_crs",
+    "product_timestamp",
+    "provenance",
+    "vertical_label",
+]
 
 CAUTION = (
     "A seismic depth map is an interpretation with stated uncertainty. It does not replace borings: "
@@ -96,14 +104,22 @@ def vertical_label(vertical_crs) -> str:
     return crs_label(vertical_crs)
 
 
-def product_timestamp(survey_date: Optional[_dt.date] = None) -> _dt.datetime:
-    """The time stamp of the product files (see the module notes), UTC."""
+def product_timestamp(survey_date: Optional[_dt.date | str] = None) -> _dt.datetime:
+    """The time stamp of the product files (see the module notes), UTC.
+
+    Parameters
+    ----------
+    survey_date : datetime.date or ISO text (``"2025-06-14"``), optional
+        The survey's date.
+    """
     env = os.environ.get("SOURCE_DATE_EPOCH")
     if env:
         try:
             return _dt.datetime.fromtimestamp(int(env), tz=_dt.timezone.utc)
         except (ValueError, OverflowError, OSError) as exc:
             raise OutputError(f"SOURCE_DATE_EPOCH={env!r} is not a whole number of seconds since 1970") from exc
+    if isinstance(survey_date, str):
+        survey_date = _dt.date.fromisoformat(survey_date)
     if survey_date is not None:
         return _dt.datetime(survey_date.year, survey_date.month, survey_date.day, tzinfo=_dt.timezone.utc)
     return _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
@@ -115,13 +131,30 @@ def provenance(result) -> Provenance:
     from ..crs import crs_label
 
     survey = result.survey
-    date = getattr(survey, "date", None)
+    handoff = survey.handoff
     return Provenance(
         software=f"Rockhead {__version__}",
         survey=str(survey.name),
         method=result.method_used or "no surface",
-        date=date.isoformat() if date is not None else "not stated",
-        timestamp=product_timestamp(date),
+        date=handoff.survey_date or "not stated",
+        timestamp=product_timestamp(handoff.survey_date),
         crs=crs_label(survey.crs),
-        vertical_datum=vertical_label(getattr(survey, "vertical_crs", None)),
+        vertical_datum=vertical_label(handoff.vertical_crs),
     )
+
+
+def elevation_crs(survey):
+    """The CRS of elevations: the working CRS compounded with the survey's vertical CRS, when stated.
+
+    Without a vertical datum it is the working (horizontal) CRS, and elevations
+    are labelled :data:`VERTICAL_NOT_STATED`.
+    """
+    import pyproj
+
+    vertical = survey.handoff.vertical_crs
+    if vertical is None:
+        return survey.crs
+    return pyproj.CRS.from_json_dict({
+        "type": "CompoundCRS", "name": f"{survey.crs.name} + {vertical.name}",
+        "components": [survey.crs.to_json_dict(), vertical.to_json_dict()],
+    })

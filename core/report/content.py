@@ -43,6 +43,12 @@ def build_report(result, layers, qc_figures, sections=None) -> str:
     return rep.render()
 
 
+def _vertical(survey) -> str:
+    from ..products.provenance import vertical_label
+
+    return vertical_label(survey.handoff.vertical_crs)
+
+
 def _summary(rep, r):
     survey, f = r.survey, r.fit.fits
     n_ok = int(np.sum(f.status == "ok"))
@@ -51,6 +57,7 @@ def _summary(rep, r):
         ("survey file", str(survey.path)),
         ("working CRS", f"{survey.crs.name} ({survey.crs.to_string()})"),
         ("input CRS", survey.input_crs.name),
+        ("vertical datum of elevations", _vertical(survey)),
         ("lines", ", ".join(sorted(r.fit.frames))),
         ("stations / picks", f"{len(survey.stations)} / {n_picks}"),
         ("gathers", f"{len(f)} ({n_ok} ok, {len(f) - n_ok} flagged)"),

@@ -22,8 +22,8 @@ Vertex files (``alignment``, and ``area`` as CSV) are CSV files with columns
 in order; a polygon's last vertex may repeat its first. ``area`` may also be a
 GeoJSON file (read here; its ``crs`` member is honoured, without one the
 coordinates are longitude/latitude as RFC 7946 says) or any polygon file GDAL/OGR
-reads (shapefile, GeoPackage, KML, ...) when GDAL's Python bindings or pyogrio
-is installed. Every problem is a located error: the survey.toml key, or
+reads (shapefile, GeoPackage, KML, ...), through :mod:`rockhead.core.formats.gdalio`.
+Every problem is a located error: the survey.toml key, or
 the vertex file's line and field.
 """
 
@@ -40,7 +40,7 @@ import numpy as np
 import pyproj
 
 from .. import crs as crsmod
-from ..errors import GeoreferenceError, InputFileError, MissingDependencyError
+from ..errors import GeoreferenceError, InputFileError
 from .csvfile import read_csv_table
 from .model import Alignment, Handoff
 
@@ -104,27 +104,34 @@ def _number(error, table, key, value, *, minimum=None, integer=False):
     return value
 
 
-def _vertical_datum(survey_table, error, crs_in) -> Optional[str]:
-    stated = None
+def _vertical_crs(survey_table, error, crs_in) -> Optional[pyproj.CRS]:
+    """The vertical CRS of the heights (pyproj.CRS), from a compound crs or vertical_crs; None if not stated."""
+    stated, key = None, "crs"
     if crs_in is not None and crs_in.is_compound and len(crs_in.sub_crs_list) > 1:
-        stated = crs_in.sub_crs_list[1].name
-    if "vertical_crs" not in survey_table:
-        return stated
-    value = survey_table["vertical_crs"]
-    if isinstance(value, bool) or not isinstance(value, (str, int)):
-        raise error("survey", "vertical_crs", f'value {value!r} is {_type_name(value)}; expected text such as '
-                                              '"EPSG:5703"')
-    try:
-        vcrs = crsmod.parse_crs(value)
-    except GeoreferenceError as exc:
-        raise error("survey", "vertical_crs", str(exc)) from exc
-    if not vcrs.is_vertical:
-        raise error("survey", "vertical_crs", f"{crsmod.crs_label(vcrs)} is not a vertical CRS: give one such as "
-                                              '"EPSG:5703" (NAVD88 height)')
-    if stated is not None and stated != vcrs.name:
-        raise error("survey", "vertical_crs", f"the compound crs already names the vertical datum {stated!r}; "
-                                              "state it once")
-    return vcrs.name
+        stated = crs_in.sub_crs_list[1]
+    if "vertical_crs" in survey_table:
+        value = survey_table["vertical_crs"]
+        if isinstance(value, bool) or not isinstance(value, (str, int)):
+            raise error("survey", "vertical_crs", f'value {value!r} is {_type_name(value)}; expected text such as '
+                                                  '"EPSG:5703"')
+        try:
+            vcrs = crsmod.parse_crs(value)
+        except GeoreferenceError as exc:
+            raise error("survey", "vertical_crs", str(exc)) from exc
+        if not vcrs.is_vertical:
+            raise error("survey", "vertical_crs", f"{crsmod.crs_label(vcrs)} is not a vertical CRS: give one such as "
+                                                  '"EPSG:5703" (NAVD88 height)')
+        if stated is not None and stated.name != vcrs.name:
+            raise error("survey", "vertical_crs", f"the compound crs already names the vertical datum "
+                                                  f"{stated.name!r}; state it once")
+        stated, key = vcrs, "vertical_crs"
+    if stated is not None:
+        units = sorted({a.unit_name or "" for a in stated.axis_info})
+        if not {u.lower() for u in units} <= {"metre", "meter", "m"}:
+            raise error("survey", key, f"{crsmod.crs_label(stated)} measures heights in {', '.join(units)}, "
+                                       "but z in stations.csv and boreholes.csv is in metres: give the metre-based "
+                                       "vertical CRS of that datum (e.g. \"EPSG:5703\", NAVD88 height)")
+    return stated
 
 
 def _survey_date(survey_table, error) -> Optional[str]:
@@ -179,9 +186,11 @@ def read_handoff(
         section format and title-block facts.
     """
     toml_dir = Path(toml_dir)
+    vertical = _vertical_crs(survey_table, error, crs_in)
     values: dict[str, Any] = {
         "survey_date": _survey_date(survey_table, error),
-        "vertical_datum": _vertical_datum(survey_table, error, crs_in),
+        "vertical_datum": vertical.name if vertical is not None else None,
+        "vertical_crs": vertical,
     }
     if "elevation_m" in design_table:
         z = float(_number(error, "design", "elevation_m", design_table["elevation_m"]))
@@ -333,7 +342,7 @@ def read_area(
     InputFileError
         A bad file, naming it (and the line and field of a CSV).
     MissingDependencyError
-        A file only GDAL/OGR reads, without GDAL's bindings or pyogrio.
+        A file only GDAL/OGR reads, without GDAL's bindings or rasterio and pyogrio.
     """
     from shapely.geometry import Polygon
     from shapely.ops import unary_union
@@ -407,45 +416,15 @@ def _geojson_polygons(path: Path):
 
 
 def _ogr_polygons(path: Path):
-    """Polygons of a GDAL-readable file and their CRS (None when the file has none)."""
-    from shapely import wkb
+    """Polygons of a GDAL-readable file (its first layer) and their CRS (None when the file has none)."""
+    from ..formats.gdalio import list_layers, read_layer
 
-    try:
-        from osgeo import ogr, osr  # noqa: F401
-
-        ogr.UseExceptions()
-        try:
-            ds = ogr.Open(str(path))
-        except RuntimeError as exc:
-            raise InputFileError(path, None, None, f"GDAL cannot open the area file: {exc}") from exc
-        if ds is None:
-            raise InputFileError(path, None, None, "GDAL cannot open the area file")
-        lyr = ds.GetLayer(0)
-        ref = lyr.GetSpatialRef()
-        crs = crsmod.parse_crs(ref.ExportToWkt()) if ref is not None else None
-        geoms = []
-        for feat in lyr:
-            g = feat.GetGeometryRef()
-            if g is not None:
-                geoms.append(wkb.loads(bytes(g.ExportToWkb())))
-        return [g for g in geoms if g.geom_type in ("Polygon", "MultiPolygon")], crs
-    except ImportError:
-        pass
-    try:
-        import pyogrio
-
-        try:
-            meta, _, geometry, _ = pyogrio.raw.read(str(path))
-        except Exception as exc:  # pyogrio raises its own error types for unreadable files
-            raise InputFileError(path, None, None, f"cannot read the area file: {exc}") from exc
-        crs = crsmod.parse_crs(meta["crs"]) if meta.get("crs") else None
-        geoms = [wkb.loads(bytes(b)) for b in geometry if b is not None]
-        return [g for g in geoms if g.geom_type in ("Polygon", "MultiPolygon")], crs
-    except ImportError:
-        pass
-    raise MissingDependencyError("GDAL", f"reading the area file {path.name}",
-                                 "install GDAL's Python bindings (or pyogrio), or give the area as GeoJSON or as a "
-                                 "CSV of vertices x, y")
+    names = list_layers(path)
+    if not names:
+        raise InputFileError(path, None, None, "the area file holds no layer: give a polygon file")
+    layer, crs = read_layer(path, names[0])
+    geoms = [g for g in (layer.geometries or []) if g is not None and g.geom_type in ("Polygon", "MultiPolygon")]
+    return geoms, crs
 
 
 def _transform_geom(geom, src, dst, path):

@@ -187,6 +187,7 @@ class Handoff:
     section_format: str = "pdf"  # "pdf" or "svg"
     survey_date: Optional[str] = None  # ISO date of the field survey, when stated
     vertical_datum: Optional[str] = None  # name of the vertical datum of the heights, when stated
+    vertical_crs: Optional[object] = None  # pyproj.CRS of the heights (metres), when stated
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,139 @@
+"""``survey.gpkg``: the run's layers in 3D, in the elevation CRS, with their metadata.
+
+Every point layer that has a height gets it as the z of its geometry, and the
+contours too, so that the GeoPackage can be draped and viewed in 3D (QGIS's 3D
+map view, CAD). Each z is an elevation in metres in the survey's vertical
+datum (the CRS of the file is then the compound working + vertical CRS), or
+an elevation whose datum is not stated:
+
+==================== ====================================================
+layer                z of the geometry
+==================== ====================================================
+stations             ground elevation at the station (``z_m``)
+shots                ground elevation at the shot (``source_z_m``)
+reflector_points     reflector elevation (``elevation_m``)
+reflection_points    reflector elevation at the pick's reflection point
+boreholes            reflector elevation in the borehole (``elevation_m``)
+misties              mean of the two lines' reflector elevations
+cross_validation     the datum's reflector elevation (estimate + residual)
+dip_measurements,    the mapped reflector surface at the point (bilinear;
+surface_dips         NaN where the map is empty)
+contours             elevation contours: their level; depth contours: the
+                     reflector elevation along them, ground minus depth
+==================== ====================================================
+
+Other layers (lines, sections, tables) stay 2D. The CSV tables and the report
+use the layers as computed (2D, every value a column).
+"""
+
+from __future__ import annotations
+
+from typing import Dict, Tuple
+
+import numpy as np
+
+from ..formats.layer import Layer
+from ..grid import bilinear
+from .provenance import VERTICAL_NOT_STATED
+
+__all__ = ["Z_MEANING", "layers_3d"]
+
+#: layer -> what the z of its geometries is
+Z_MEANING = {
+    "stations": "ground elevation at the station",
+    "shots": "ground elevation at the shot",
+    "reflector_points": "reflector elevation",
+    "reflection_points": "reflector elevation at the reflection point",
+    "boreholes": "reflector elevation in the borehole",
+    "misties": "mean reflector elevation of the two lines",
+    "cross_validation": "reflector elevation of the datum",
+    "dip_measurements": "mapped reflector elevation at the point",
+    "surface_dips": "mapped reflector elevation at the point",
+    "contours": "reflector elevation (the level of an elevation contour; ground minus depth along a depth contour)",
+}
+_FIELD_Z = {"stations": "z_m", "shots": "source_z_m", "reflector_points": "elevation_m",
+            "reflection_points": "elevation_m", "boreholes": "elevation_m"}
+
+
+def _float(values) -> np.ndarray:
+    return np.asarray(values, dtype=float)
+
+
+def _surface_at(result, x, y) -> np.ndarray:
+    if result.surface is None:
+        return np.full(len(x), np.nan)
+    z = np.where(result.surface.mask, np.nan, result.surface.z)
+    return bilinear(result.spec, z, x, y)
+
+
+def _point_z(name: str, layer: Layer, result):
+    f = layer.fields
+    if name in _FIELD_Z:
+        return _float(f[_FIELD_Z[name]])
+    if name == "misties":
+        return 0.5 * (_float(f["elevation_a_m"]) + _float(f["elevation_b_m"]))
+    if name == "cross_validation":
+        return _float(f["estimate_m"]) + _float(f["residual_m"])
+    if name in ("dip_measurements", "surface_dips"):
+        xy = np.array([(g.x, g.y) if g is not None else (np.nan, np.nan) for g in layer.geometries], float)
+        return _surface_at(result, xy[:, 0], xy[:, 1]).ravel() if len(xy) else np.zeros(0)
+    return None
+
+
+def _points_3d(layer: Layer, z) -> Layer:
+    from shapely.geometry import Point
+
+    geoms = [None if g is None or g.is_empty else Point(g.x, g.y, float(zz)) for g, zz in zip(layer.geometries, z)]
+    return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
+
+
+def _line_3d(geom, z_of_xy):
+    from shapely.geometry import LineString, MultiLineString
+
+    parts = list(geom.geoms) if hasattr(geom, "geoms") else [geom]
+    out = []
+    for part in parts:
+        xy = np.asarray(part.coords, float)[:, :2]
+        out.append(LineString(np.column_stack([xy, z_of_xy(xy)])))
+    return out[0] if len(out) == 1 and not hasattr(geom, "geoms") else MultiLineString(out)
+
+
+def _contours_3d(layer: Layer, result) -> Layer:
+    kinds = np.asarray(layer.fields["kind"]).astype(str)
+    elev = _float(layer.fields["elevation_m"])
+    depth = _float(layer.fields["depth_m"])
+    geoms = []
+    for g, kind, e, d in zip(layer.geometries, kinds, elev, depth):
+        if g is None or g.is_empty:
+            geoms.append(None)
+        elif kind == "elevation":
+            geoms.append(_line_3d(g, lambda xy, e=e: np.full(len(xy), e)))
+        else:  # depth = ground - reflector, so the reflector lies at ground - depth along the line
+            geoms.append(_line_3d(g, lambda xy, d=d: result.ground(xy[:, 0], xy[:, 1]) - d))
+    return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
+
+
+def layers_3d(layers: Dict[str, Layer], result, vertical_label: str = VERTICAL_NOT_STATED
+              ) -> Tuple[Dict[str, Layer], Dict[str, Dict[str, str]]]:
+    """The layers with z in their geometries (see the module notes) and each layer's metadata.
+
+    Returns
+    -------
+    layers : dict of str to Layer
+        The same tables in the same order; the layers of the table above 3D.
+    metadata : dict of str to dict
+        Per 3D layer ``{"Z": "<meaning> (m, <vertical datum>)"}``.
+    """
+    out, meta = {}, {}
+    for name, layer in layers.items():
+        new = layer
+        if layer.geometries is not None and name == "contours" and result.ground is not None:
+            new = _contours_3d(layer, result)
+        elif layer.geometries is not None and name in Z_MEANING and name != "contours":
+            z = _point_z(name, layer, result)
+            if z is not None:
+                new = _points_3d(layer, z)
+        out[name] = new
+        if new is not layer:
+            meta[name] = {"Z": f"{Z_MEANING[name]} (m, {vertical_label})"}
+    return out, meta
