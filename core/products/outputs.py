@@ -68,7 +68,6 @@ def run_info(result) -> list:
         ("software", f"Rockhead {__version__}"),
         ("survey", result.survey.name),
         ("crs", result.survey.crs.to_string()),
-        ("vertical_datum", provenance(result).vertical_datum),
         ("reflector", s.reflector),
         ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
     ]

@@ -127,7 +127,7 @@ def test_report_and_run_info_name_the_datum_and_date(stated_run, unstated_run):
     assert "EVRF2007 height" in html
     info, _ = gdalio.read_layer(out / "survey.gpkg", "run_info")
     table = dict(zip(info.fields["key"], info.fields["value"]))
-    assert table["vertical_datum"] == "EPSG:5621 (EVRF2007 height)"
+    assert table["vertical_datum"] == "EVRF2007 height"
     md = gdalio.vector_metadata(out / "survey.gpkg")
     assert md["SURVEY_DATE"] == "2025-06-14" and md["VERTICAL_DATUM"] == "EPSG:5621 (EVRF2007 height)"
     _r, out = unstated_run
