@@ -26,9 +26,9 @@ from .results import FitStep, RunResult
 from .seismic.cmp import cmp_bins, fit_cmp_gathers, midpoint_spacing
 from .seismic.dix import dix_intervals
 from .seismic.geometry import build_gathers, line_frames, reflector_points
-from .seismic.misties import line_misties
+from .seismic.misties import line_crossings, line_misties
 from .seismic.shot_fits import fit_shot_gathers
-from .seismic.structure import combine_lines, surface_dips
+from .seismic.structure import resolve_cross_dips, surface_dips
 from .surface.base import SurfaceGrid
 from .surface.contours import contours_layer
 from .surface.trend import grid_with_trend, predict_with_trend
@@ -61,6 +61,44 @@ def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=N
     zero = pts.select(pts.kind == "zero_offset")
     recv = pts.select(pts.kind == "receiver")
     return FitStep(frames, gathers, fits, zero, recv)
+
+
+def dips_step(survey, fit: FitStep, progress=None):
+    """True dip and strike where lines cross, from the gathers near each crossing.
+
+    Per crossing of two lines (:func:`~.seismic.misties.line_crossings`,
+    near misses within the radius included) the ok gathers whose zero-offset
+    points lie within ``combine_radius_m`` of it (default half the median
+    spread length) give the horizontal normal by weighted least squares
+    (:func:`~.seismic.structure.combine_lines`). A gather fitted with the
+    cross-line dip assumed zero has a biased along-line component where the
+    receivers are not level with the shot (sloping ground), so the members
+    are refitted with the cross-line component the crossing resolves and the
+    crossing is measured again, until it settles
+    (:func:`~.seismic.structure.resolve_cross_dips`).
+
+    Returns ``(dips, fits)``: the measurements and the fits made with the
+    resolved cross-line components (q = 0 for gathers near no crossing).
+    """
+    st = survey.settings
+    g = fit.gathers
+    radius = st.combine_radius_m
+    if radius is None:
+        ok = fit.fits.status == "ok"
+        spread = np.asarray(g.spread_length_m, float)[ok]
+        radius = 0.5 * float(np.median(spread)) if len(spread) else 0.0
+    crossings = line_crossings(fit.frames, max_gap_m=radius)
+    exclude = fit.fits.excluded
+
+    def refit(q):
+        check_cancel(progress or NullProgress())
+        return fit_shot_gathers(g, st, cross_component=q, exclude=exclude)
+
+    fits, dips, _, _ = resolve_cross_dips(
+        g, refit, fit.fits, radius_m=radius, min_angle_deg=st.min_line_angle_deg, crossings=crossings,
+        tol=1e-6,
+    )
+    return dips, fits
 
 
 def surface_cross_components(spec, z_grid, gathers, x_m, y_m):
@@ -272,9 +310,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
             "gives interval velocities and layered depths under each shot"
         )
     progress.info("combining crossing lines into true dip and strike")
-    r.dips = combine_lines(
-        fit.gathers, fit.fits, radius_m=settings.combine_radius_m, min_angle_deg=settings.min_line_angle_deg
-    )
+    r.dips, _ = dips_step(survey, fit)
     check_cancel(progress)
     r.spec = grid_spec(survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector))
     interp = "spline" if method == "spline" else "kriging"

@@ -255,6 +255,13 @@ def _dips(rep, r):
     if not len(d):
         rep.paragraph("No place where gathers of two well-separated line directions meet: no true dip measured.")
         return
+    if np.isfinite(d.radius_m):
+        rep.paragraph(
+            f"At each crossing of two lines, the gathers whose zero-offset points lie within {d.radius_m:.1f} m of "
+            "it give the dip there, refitted with the cross-line dip the crossing resolves until it settles; "
+            "each row is placed at the weighted centre of its gathers. A line that meets no other line cannot "
+            "give its cross-line dip (flagged)."
+        )
     rep.table({
         "lines": [str(x) for x in d.lines],
         "dip_deg": list(d.dip_deg),

@@ -16,7 +16,7 @@ import numpy as np
 
 from .geometry import LineFrame, ReflectorPoints, unique_in_order
 
-__all__ = ["Misties", "line_misties"]
+__all__ = ["Crossings", "Misties", "line_crossings", "line_misties"]
 
 
 @dataclass(frozen=True)
@@ -60,6 +60,83 @@ def _intersection_points(geom: Any) -> list[tuple[float, float]]:
             out.extend(_intersection_points(part))
         return out
     return []  # overlapping (collinear) stretches have no single crossing point
+
+
+@dataclass(frozen=True)
+class Crossings:
+    """Places where two survey lines meet, one row each.
+
+    ``x_m``, ``y_m``: the crossing (m, working CRS); ``line_a``, ``line_b``:
+    the two lines; ``angle_deg``: the angle between their directions (axial,
+    0 to 90 degrees); ``gap_m``: 0 where the polylines intersect, else the
+    closest distance between them (lines that end short of one another).
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    line_a: np.ndarray
+    line_b: np.ndarray
+    angle_deg: np.ndarray
+    gap_m: np.ndarray
+
+    def __len__(self) -> int:
+        """Return the number of crossings."""
+        return len(self.x_m)
+
+
+def line_crossings(frames: dict[str, LineFrame], max_gap_m: float = 0.0) -> Crossings:
+    """Every crossing of two line polylines, and near misses up to ``max_gap_m``.
+
+    Crossings are the point intersections of the polylines (shapely). Two
+    lines that do not intersect but come within ``max_gap_m`` of each other
+    (a line ending just short of another) meet at the midpoint of their
+    closest points.
+
+    Parameters
+    ----------
+    frames : dict
+        ``line -> LineFrame`` (:func:`~.geometry.line_frames`).
+    max_gap_m : float
+        Largest distance between two lines that still counts as a meeting (m).
+
+    Returns
+    -------
+    Crossings
+        In the order of the line pairs, then along the first line.
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as NS
+    >>> from .geometry import line_frames
+    >>> st = NS(line=np.array(["A"] * 3 + ["B"] * 3, dtype=object),
+    ...         station=np.array(["1", "2", "3"] * 2, dtype=object),
+    ...         x_m=np.array([0.0, 10, 20, 10, 10, 10]), y_m=np.array([0.0, 0, 0, -10, 0, 10]),
+    ...         z_m=np.zeros(6), file_line=np.arange(2, 8))
+    >>> c = line_crossings(line_frames(st))
+    >>> c.x_m.tolist(), c.y_m.tolist(), c.angle_deg.round(6).tolist()
+    ([10.0], [0.0], [90.0])
+    """
+    from shapely.ops import nearest_points
+
+    rows = []
+    for a, b in combinations(list(frames), 2):
+        fa, fb = frames[a], frames[b]
+        cos = abs(float(np.dot(fa.unit, fb.unit)))
+        angle = float(np.degrees(np.arccos(min(1.0, cos))))
+        points = _intersection_points(fa.polyline.intersection(fb.polyline))
+        if points:
+            rows += [(x, y, a, b, angle, 0.0) for x, y in points]
+            continue
+        gap = float(fa.polyline.distance(fb.polyline))
+        if gap <= max_gap_m:
+            pa, pb = nearest_points(fa.polyline, fb.polyline)
+            rows.append((0.5 * (pa.x + pb.x), 0.5 * (pa.y + pb.y), a, b, angle, gap))
+    cols: list[Any] = list(zip(*rows)) if rows else [[] for _ in range(6)]
+    return Crossings(
+        x_m=np.asarray(cols[0], float), y_m=np.asarray(cols[1], float),
+        line_a=np.asarray(cols[2], dtype=object), line_b=np.asarray(cols[3], dtype=object),
+        angle_deg=np.asarray(cols[4], float), gap_m=np.asarray(cols[5], float),
+    )
 
 
 def _line_profile(

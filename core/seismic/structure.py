@@ -203,6 +203,8 @@ class DipMeasurements:
 
     Per gather (length g): ``gather_measurement``, the row of the measurement
     the gather belongs to (-1: in none, e.g. a failed fit).
+
+    ``radius_m``: the search radius used (m).
     """
 
     x_m: np.ndarray
@@ -224,6 +226,7 @@ class DipMeasurements:
     status: np.ndarray
     reason: np.ndarray
     gather_measurement: np.ndarray
+    radius_m: float = float("nan")
 
     def __len__(self) -> int:
         """Return the number of measurements."""
@@ -271,6 +274,7 @@ def combine_lines(
     radius_m: Optional[float] = None,
     min_angle_deg: float = 30.0,
     max_condition: Optional[float] = None,
+    crossings: Any = None,
 ) -> DipMeasurements:
     r"""Find the true dip and dip direction where gathers of different line directions meet.
 
@@ -296,7 +300,19 @@ def combine_lines(
     first-order propagation through :math:`\delta = \arcsin|\mathbf n_h|`
     and the azimuth. Gathers of different fits are treated as independent.
 
-    Clustering (per reflector): around every gather's zero-offset point the
+    At line crossings (``crossings`` given, :func:`~.misties.line_crossings`;
+    the way a run measures dips): per reflector and crossing, the gathers
+    whose zero-offset points lie within ``radius_m`` of the crossing, of any
+    line, give one measurement, so that it is the dip there and not an
+    average over whole lines (a curved reflector's dip changes along them);
+    it is placed, as every measurement, at the weighted centre of its
+    gathers (where an average of local dips applies; within ``radius_m`` of
+    the crossing). A gather within reach of several crossings counts in
+    each (``gather_measurement`` names the nearest). A line of a reflector
+    that meets no other line gets one flagged row (``single_direction``) at
+    the centre of its gathers, which belong to it.
+
+    Clustering without ``crossings`` (per reflector): around every gather's zero-offset point the
     gathers within ``radius_m`` (KD-tree) form a candidate; candidates are
     taken greedily in order of the smallest eigenvalue of their weighted
     normal matrix (best-constrained first: the crossings), each claiming its
@@ -325,6 +341,8 @@ def combine_lines(
         of the weighted design matrix; default
         :math:`2\cot(\theta_{min}/2)`, twice that of two equally weighted
         lines at the least angle (7.46 for 30 degrees).
+    crossings : Crossings, optional
+        Where lines meet (``x_m``, ``y_m``, ``line_a``, ``line_b``); see above.
 
     Returns
     -------
@@ -366,7 +384,9 @@ def combine_lines(
     refl = np.asarray(gathers.reflector).astype(str)
     membership = np.full(g, -1, dtype=np.int64)
     clusters: list[tuple[str, np.ndarray]] = []  # (reflector, member indices)
-    for name in sorted(set(refl[usable])):
+    if crossings is not None:
+        clusters, membership = _crossing_clusters(crossings, xy, usable, refl, line, radius_m)
+    for name in sorted(set(refl[usable])) if crossings is None else ():
         idx = np.flatnonzero(usable & (refl == name))
         tree = cKDTree(xy[idx])
         nbrs = tree.query_ball_point(xy[idx], r=radius_m)
@@ -492,8 +512,40 @@ def combine_lines(
         lines=lines_txt, n_lines=n_lines, n_gathers=n_members, max_angle_deg=out["max_angle_deg"],
         condition_number=out["condition_number"], variance_factor=out["variance_factor"],
         normal_h=out["normal_h"], covariance=out["covariance"], status=stat, reason=reason,
-        gather_measurement=membership,
+        gather_measurement=membership, radius_m=float(radius_m),
     )
+
+
+def _crossing_clusters(crossings, xy, usable, refl, line, radius_m):
+    """Clusters of :func:`combine_lines` at line crossings (see there) and the gathers' membership."""
+    from scipy.spatial import cKDTree
+
+    g = len(refl)
+    cx = np.asarray(crossings.x_m, float)
+    cy = np.asarray(crossings.y_m, float)
+    pairs = {frozenset((str(a), str(b))) for a, b in zip(crossings.line_a, crossings.line_b)}
+    meets = {name for pair in pairs for name in pair}
+    clusters: list[tuple[str, np.ndarray]] = []
+    membership = np.full(g, -1, dtype=np.int64)
+    best = np.full(g, np.inf)
+    for name in sorted(set(refl[usable])):
+        idx = np.flatnonzero(usable & (refl == name))
+        if len(cx):
+            tree = cKDTree(xy[idx])
+            for c, nb in enumerate(tree.query_ball_point(np.column_stack([cx, cy]), r=radius_m)):
+                if not nb:
+                    continue
+                mem = idx[np.sort(np.asarray(nb, dtype=np.int64))]
+                d = np.hypot(xy[mem, 0] - cx[c], xy[mem, 1] - cy[c])
+                closer = d < best[mem]
+                membership[mem[closer]] = len(clusters)
+                best[mem[closer]] = d[closer]
+                clusters.append((name, mem))
+        for ln in sorted(set(line[idx]) - meets):  # lines that meet no other line
+            mem = idx[line[idx] == ln]
+            membership[mem] = len(clusters)
+            clusters.append((name, mem))
+    return clusters, membership
 
 
 def cross_components(
@@ -562,6 +614,7 @@ def resolve_cross_dips(
     max_distance_m: Optional[float] = None,
     max_iter: int = 8,
     tol: float = 1e-9,
+    crossings: Any = None,
 ) -> tuple[Any, DipMeasurements, np.ndarray, int]:
     r"""Alternate :func:`combine_lines` and a refit with the resolved cross-line components.
 
@@ -590,6 +643,8 @@ def resolve_cross_dips(
         Most refits.
     tol : float
         Largest change of any q (dimensionless) that counts as converged.
+    crossings : Crossings, optional
+        Passed to :func:`combine_lines` (measure at line crossings).
 
     Returns
     -------
@@ -604,7 +659,7 @@ def resolve_cross_dips(
     rounds = 0
     for rounds in range(1, max_iter + 1):
         dips = combine_lines(gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg,
-                             max_condition=max_condition)
+                             max_condition=max_condition, crossings=crossings)
         q = cross_components(gathers, dips, max_distance_m=max_distance_m)
         q_new = np.where(np.isfinite(q), q, 0.0)
         change = float(np.max(np.abs(q_new - q_used))) if g else 0.0
@@ -613,7 +668,8 @@ def resolve_cross_dips(
         fits = refit(q_new)
         q_used = q_new
     dips = combine_lines(
-        gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg, max_condition=max_condition
+        gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg, max_condition=max_condition,
+        crossings=crossings,
     )
     return fits, dips, cross_components(gathers, dips, max_distance_m=max_distance_m), rounds
 

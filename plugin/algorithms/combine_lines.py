@@ -16,13 +16,16 @@ from .base import (
 
 
 def combine_survey(survey, radius_m, min_angle_deg, progress):
-    """Fit the gathers, then combine crossing lines (core.pipeline.fit_step + core.structure)."""
+    """Fit the gathers, then measure the dip at every line crossing (core.workflow fit_step + dips_step)."""
+    from dataclasses import replace
+
     from ...core import workflow
     from ...core.progress import SubProgress
-    from ...core.seismic import structure
 
-    step = workflow.fit_step(survey, SubProgress(progress, 0, 80))
-    dips = structure.combine_lines(step.gathers, step.fits, radius_m=radius_m, min_angle_deg=min_angle_deg)
+    settings = replace(survey.settings, combine_radius_m=radius_m, min_line_angle_deg=min_angle_deg)
+    survey = replace(survey, settings=settings)
+    step = workflow.fit_step(survey, SubProgress(progress, 0, 60))
+    dips, _ = workflow.dips_step(survey, step, SubProgress(progress, 60, 100))
     progress.set_progress(100)
     return step, dips
 
@@ -41,7 +44,10 @@ class CombineLinesAlgorithm(ReflectorAlgorithm):
         "s = sin(dip)·cos(angle between line and dip direction)). Where gathers of at least two "
         "well-separated line directions lie close together, a weighted least-squares solution for the "
         "horizontal part of the reflector normal gives the true dip, dip direction and strike "
-        "(right-hand rule: dip direction = strike + 90°) with their standard errors. Clusters whose "
+        "(right-hand rule: dip direction = strike + 90°) with their standard errors. At every crossing of "
+        "two lines, the gathers within the search radius of the crossing are used (so the dip is that of the "
+        "crossing, not of whole lines), refitted with the cross-line dip the crossing resolves until it "
+        "settles (on sloping ground the first fits, made with no cross-line dip, are biased). Crossings whose "
         "line directions are nearly parallel are flagged (no dip) rather than guessed.</p>"
         "<p><b>Input</b>: a survey.toml, or a picks table with a stations point layer.</p>"
         "<p><b>Output</b>: <i>dip measurements</i> (dip_deg, dip_direction_deg, strike_deg, "
@@ -51,7 +57,7 @@ class CombineLinesAlgorithm(ReflectorAlgorithm):
 
     def initAlgorithm(self, config=None):
         self.add_survey_parameters()
-        self.addParameter(optional_number_parameter(self.RADIUS, "Search radius around each gather (m)", 0.1, 1.0e6))
+        self.addParameter(optional_number_parameter(self.RADIUS, "Search radius around each crossing (m)", 0.1, 1.0e6))
         self.addParameter(
             QgsProcessingParameterNumber(
                 self.MIN_ANGLE,

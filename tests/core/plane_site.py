@@ -44,6 +44,8 @@ class PlaneSite:
     noise_ms: float = 0.0
     jitter_m: float = 0.0
     seed: int = 1
+    bowl_radius_m: float = 0.0  # > 0: the plane bends down into a bowl of this radius of curvature
+    bowl_centre: tuple = (0.0, 0.0)
     lines: list = field(default_factory=lambda: [("A", (0.0, 0.0), 90.0, 97)])
 
     def ground(self, x, y):
@@ -59,7 +61,43 @@ class PlaneSite:
     def reflector(self, x, y):
         """Reflector elevation (m) at local x, y."""
         n, d = self.plane
-        return forward.plane_elevation(x, y, n, d)
+        z = forward.plane_elevation(x, y, n, d)
+        if self.bowl_radius_m > 0:
+            r2 = (np.asarray(x) - self.bowl_centre[0]) ** 2 + (np.asarray(y) - self.bowl_centre[1]) ** 2
+            z = z - r2 / (2.0 * self.bowl_radius_m)
+        return z
+
+    def gradient(self, x, y):
+        """(dz/dx, dz/dy) of the reflector at local x, y."""
+        n, _ = self.plane
+        gx, gy = -n[0] / n[2], -n[1] / n[2]
+        if self.bowl_radius_m > 0:
+            gx = gx - (np.asarray(x) - self.bowl_centre[0]) / self.bowl_radius_m
+            gy = gy - (np.asarray(y) - self.bowl_centre[1]) / self.bowl_radius_m
+        return gx, gy
+
+    def _nodes(self):
+        """Node grid (2 m) over the lines for the Fermat times of a bowl (row 0 south)."""
+        from rockhead.core.tomography import joint as tm
+
+        xy = np.concatenate([xyz[:, :2] for _, xyz in self.stations().values()])
+        lo, hi = xy.min(axis=0) - 20.0, xy.max(axis=0) + 20.0
+        n = np.ceil((hi - lo) / 2.0).astype(int) + 1
+        grid = tm.NodeGrid(float(lo[0]), float(lo[1]), 2.0, int(n[0]), int(n[1]))
+        X, Y = np.meshgrid(grid.x_m, grid.y_m)
+        return grid, self.reflector(X, Y)
+
+    def times(self, S, R):
+        """Two-way times (s): image source on the plane, Fermat's principle on a bowl."""
+        if self.bowl_radius_m <= 0:
+            n, d = self.plane
+            return forward.image_source_traveltime(S, R, n, d, self.velocity_m_s)
+        from rockhead.core.tomography import joint as tm
+
+        grid, nodes = self._nodes()
+        paths = tm.fermat_traveltime(S, R, nodes, grid, self.velocity_m_s)
+        assert paths.converged.all() and paths.inside.all()
+        return paths.time_s
 
     def stations(self):
         """{line: (labels, xyz)} of every line (local coordinates)."""
@@ -77,18 +115,18 @@ class PlaneSite:
     def picks(self):
         """Rows (line, shot, receiver, time_ms) of exact times (+ noise when ``noise_ms``)."""
         rng = np.random.default_rng(self.seed + 1)
-        n, d = self.plane
-        rows = []
+        keys, S, R = [], [], []
         for name, (labels, xyz) in self.stations().items():
             m = len(labels)
             for i in range(0, m, self.shot_every):
                 rec = [j for j in range(max(0, i - self.half_spread), min(m, i + self.half_spread + 1)) if j != i]
-                t = forward.image_source_traveltime(np.repeat(xyz[i][None], len(rec), 0), xyz[rec], n, d,
-                                                    self.velocity_m_s)
-                if self.noise_ms:
-                    t = t + rng.normal(0.0, self.noise_ms * 1e-3, len(t))
-                rows += [(name, labels[i], labels[j], tt * 1e3) for j, tt in zip(rec, t)]
-        return rows
+                keys += [(name, labels[i], labels[j]) for j in rec]
+                S.append(np.repeat(xyz[i][None], len(rec), 0))
+                R.append(xyz[rec])
+        t = self.times(np.concatenate(S), np.concatenate(R))
+        if self.noise_ms:
+            t = t + rng.normal(0.0, self.noise_ms * 1e-3, len(t))
+        return [(a, b, c, tt * 1e3) for (a, b, c), tt in zip(keys, t)]
 
 
 def write_site(folder: Path, site: PlaneSite, processing: str = "", boreholes=None, files: str = "") -> Path:

@@ -26,7 +26,6 @@ from qgis.core import (
 from qgis.PyQt.QtCore import QVariant
 from rockhead.core import workflow
 from rockhead.core.products import layers
-from rockhead.core.seismic import structure
 from rockhead.core.survey import config
 from rockhead.plugin.algorithms.run_survey import METHODS
 from rockhead.plugin.feedback import FeedbackProgress
@@ -203,8 +202,8 @@ def test_cancel_stops_cleanly(provider, sample_survey):
 
 
 def test_combine_lines_equals_core(provider, sample_survey, core_fit):
-    _survey, step = core_fit
-    dips = structure.combine_lines(step.gathers, step.fits, radius_m=None, min_angle_deg=30.0)
+    survey, step = core_fit
+    dips, _ = workflow.dips_step(survey, step)
     res = run("combinelines", {"SURVEY": str(sample_survey), "MIN_ANGLE": 30.0, "DIP_MEASUREMENTS": "TEMPORARY_OUTPUT"})
     layer = res["DIP_MEASUREMENTS"]
     assert layer.featureCount() == len(dips.dip_deg) > 0
