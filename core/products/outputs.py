@@ -20,8 +20,9 @@ from ..progress import check_cancel
 from ..workflow import surface_data
 from . import layers as lay
 from .geopackage import layers_3d
-from .handoff import handoff_layers, handoff_run_info, write_handoff
+from .handoff import PROBABILITY_NAME, handoff_layers, handoff_run_info, write_handoff
 from .provenance import elevation_crs, provenance
+from .styles import layer_styles, raster_styles, styles_table
 
 GPKG_NAME = "survey.gpkg"
 
@@ -181,21 +182,28 @@ def _write_all(result, out_dir, progress) -> list:
     spec = result.spec
     prov = provenance(result)
     z_crs = elevation_crs(result.survey)  # compound (working + vertical) when the survey states its datum
+    stamp = prov.timestamp.strftime("%Y-%m-%dT%H:%M:%SZ")
     with OutputSet() as outputs:
         gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
+        gpkg_layers["layer_styles"] = styles_table(layer_styles(layers), layers, stamp)
         write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
                      layer_metadata=layer_md, timestamp=prov.timestamp)
         (out_dir / "csv").mkdir(exist_ok=True)
         for name, layer in layers.items():
             write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
         progress.set_progress(15)
-        for name, grid in result_rasters(result).items():
+        rasters = result_rasters(result)
+        for name, grid in rasters.items():
             # elevations carry the vertical datum; depth below ground and sigma are lengths, not heights
             write_raster(
                 outputs.stage(out_dir / name), grid, spec, z_crs if name == ELEVATION_NAME else crs,
                 metadata=prov.items(), description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp,
                 software=prov.software,
             )
+        if result.design is not None and result.design.probability is not None:
+            rasters[PROBABILITY_NAME] = result.design.probability
+        for name, qml in raster_styles(rasters).items():  # QGIS reads a raster's default style beside it
+            outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
         if result.contours is not None and len(result.contours):
             for kind in ("elevation", "depth"):
                 write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)

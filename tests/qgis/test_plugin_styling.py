@@ -272,7 +272,8 @@ def test_styled_group_renders(qgis_app, core_results, tmp_path):
     )
 
     # labelled contours: labels add pixels; index contours are drawn heavier
-    contours = next(lyr for lyr in layers if lyr.name() == "Reflector elevation contours")
+    all_layers = styling.group_layers(group, visible_only=False)
+    contours = next(lyr for lyr in all_layers if lyr.name() == "Reflector elevation contours")
     contours.setLabelsEnabled(False)
     plain = render_png([contours], None, crs, extent, size=(800, 640))
     contours.setLabelsEnabled(True)
