@@ -43,6 +43,7 @@ def test_corridor_projection_on_a_bent_alignment():
     px = np.array([30.0, 30.0, 70.0, 50.0, 90.0])
     py = np.array([14.0, 30.0, 40.0, 40.0, 40.0])
     ch, off, dist = locate_on_polyline(v[:, 0], v[:, 1], px, py)
+    np.testing.assert_allclose(dist, np.abs(off))  # inside the legs the distance is the offset
     # first leg runs east: a point 4 m north is 4 m LEFT (negative); second leg runs north: east is right
     np.testing.assert_allclose(ch[:1], [20.0])
     np.testing.assert_allclose(off[:1], [-4.0])
