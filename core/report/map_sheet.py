@@ -23,7 +23,16 @@ import numpy as np
 from .. import colours
 from ..grid import nice_step
 from . import figures
-from .sheet import A3_LANDSCAPE_MM, SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale
+from .sheet import (
+    A3_LANDSCAPE_MM,
+    CAUTION_LINES,
+    SheetInfo,
+    draw_cautions,
+    draw_title_block,
+    mm_axes,
+    new_sheet,
+    nice_scale,
+)
 
 __all__ = ["MapOverlays", "MapPage", "map_sheet"]
 
@@ -204,7 +213,9 @@ def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
     scale = nice_scale(max((e - w) / _MAP_BOX_MM[2], (n - s) / _MAP_BOX_MM[3]) * 1000.0 * 1.02)
     symbol_m = 3.0 * scale / 1000.0  # strike bar half-length: 3 mm on paper
     buf = io.BytesIO()
-    with matplotlib.rc_context({"pdf.fonttype": 3}), PdfPages(buf, metadata={"CreationDate": None}) as pdf:
+    meta = {"CreationDate": None, "Title": f"Reflector map sheet: {info.survey}", "Subject": " ".join(CAUTION_LINES),
+            "Creator": info.software}
+    with matplotlib.rc_context({"pdf.fonttype": 3}), PdfPages(buf, metadata=meta) as pdf:
         for k, page in enumerate(pages, start=1):
             fig = new_sheet(A3_LANDSCAPE_MM)
             ax, _ = _map_axes(fig, spec, scale)
