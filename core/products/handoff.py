@@ -206,12 +206,14 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
     outputs.stage(out_dir / MAP_SHEET_NAME).write_bytes(map_sheet(spec, pages, overlays, info))
     check_cancel(progress)
     s = result.surface
+    sd = np.where(s.mask, np.nan, s.std)
+    spread = (f"median sigma {np.nanmedian(sd):.2f} m" if np.any(np.isfinite(sd))
+              else f"the {result.method_used} gives no sigma")
     write_landxml_surface(
         outputs.stage(out_dir / LANDXML_NAME), surface_tin(result), crs,
         surface_name=f"reflector {result.survey.settings.reflector}",
         description=f"{result.method_used} surface of the seismic reflector (elevation, m); an interpretation with "
-                    f"stated uncertainty (median sigma {np.nanmedian(np.where(s.mask, np.nan, s.std)):.2f} m): check "
-                    "against borings",
+                    f"stated uncertainty ({spread}): check against borings",
         project_name=result.survey.name, vertical_datum=h.vertical_datum, version=info.software.split()[-1],
     )
     d = result.design
