@@ -54,6 +54,7 @@ class RunResult:
     dix: dict = None
     cmp: dict = None
     design: object = None  # handoff.steps.DesignResult with [design] elevation_m (filled by job.write_outputs)
+    corridor: object = None  # surface.corridor.LineCorridor when the survey is a single line
     relocation_history_m: list = field(default_factory=list)
     notes: list = field(default_factory=list)
     outputs: list = field(default_factory=list)

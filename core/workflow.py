@@ -14,12 +14,13 @@ functions are public so that the QGIS algorithms can call one step at a time.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import replace
 from typing import Optional
 
 import numpy as np
 
-from .errors import InversionError
+from .errors import InversionError, RockheadWarning
 from .grid import GridSpec, bilinear, fill_nearest, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import FitStep, RunResult
@@ -31,6 +32,7 @@ from .seismic.shot_fits import fit_shot_gathers
 from .seismic.structure import resolve_cross_dips, surface_dips
 from .surface.base import SurfaceGrid
 from .surface.contours import contours_layer
+from .surface.corridor import line_corridor
 from .surface.trend import grid_with_trend, predict_with_trend
 from .survey.ground import GroundModel
 from .tomography.joint import curvature_flags, invert_reflector, robust_site_velocity, surface_values
@@ -129,27 +131,46 @@ def surface_data(points, reflector, boreholes=None):
     return x, y, z, s
 
 
-def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None):
-    """Grid the reflector points (and boreholes, as near-exact data)."""
+def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None, corridor=None):
+    """Grid the reflector points (and boreholes, as near-exact data); a single line's within its corridor."""
     x, y, z, s = surface_data(points, settings.reflector, boreholes)
-    return grid_with_trend(x, y, z, s, spec, settings, method, progress)
+    return grid_with_trend(x, y, z, s, spec, settings, method, progress, corridor=corridor)
 
 
-def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=0.05, max_iterations=6):
+def single_line_corridor(fit: FitStep, settings):
+    """The corridor of the mapped reflector's points when they lie along one straight line, else None.
+
+    See :func:`~.surface.corridor.line_corridor`: a single line cannot tell
+    its cross-line dip, so it maps a corridor of ``line_corridor_m`` (full
+    width; default the median depth of its points) along the line.
+    """
+    pts = fit.points
+    ok = (pts.status == "ok") & pts.finite & (np.asarray(pts.reflector).astype(str) == str(settings.reflector))
+    return line_corridor(pts.x_m[ok], pts.y_m[ok], settings.line_corridor_m, pts.depth_m[ok],
+                         settings.line_cross_dip_deg)
+
+
+def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=0.05, max_iterations=6,
+                  corridor=None):
     """Move reflector points to their 3D positions with the surface's cross-line dip.
 
     A line sees only the along-line component of the reflector normal. The
     cross-line component q is read off the gridded surface at each gather,
     the gathers are refitted with it (the exact 3D model then moves their
     points off the line's vertical plane, up-dip), the surface is regridded,
-    and so on until no cell changes by more than ``tolerance_m``.
+    and so on until no cell changes by more than ``tolerance_m``. A single
+    line (``corridor`` given) has no cross-line dip to read: its points stay
+    in the line's vertical plane and the surface is gridded once.
 
     Returns ``(fit, surface, diagnostics, history)``; ``history`` lists the
     largest cell change of each iteration.
     """
     progress = progress or NullProgress()
-    surf, diag = interpolate_step(fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30))
+    surf, diag = interpolate_step(fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30),
+                                  corridor=corridor)
     history = []
+    if corridor is not None:
+        return fit, surf, diag, history
     for it in range(max_iterations):
         check_cancel(progress)
         q = surface_cross_components(spec, surf.z, fit.gathers, fit.points.x_m, fit.points.y_m)
@@ -205,7 +226,7 @@ def ground_model(survey):
     return GroundModel.from_stations(st.x_m, st.y_m, st.z_m)
 
 
-def tomography_step(survey, fit, start, spec, forced=False, progress=None):
+def tomography_step(survey, fit, start, spec, forced=False, progress=None, corridor=None):
     """Joint inversion of every pick for the surface and the velocity (Bishop et al. 1985).
 
     Starts from the gridded surface ``start`` and the robust site velocity of
@@ -260,7 +281,7 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None):
     if boreholes is not None:
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
-    surface, diag = grid_with_trend(x, y, zz, ss, spec, survey.settings)
+    surface, diag = grid_with_trend(x, y, zz, ss, spec, survey.settings, corridor=corridor)
     mask = surface.mask | start.mask
     z = np.where(mask, np.nan, surface.z)
     surface = SurfaceGrid(spec, z, np.where(mask, np.nan, surface.std), mask, "tomography",
@@ -313,10 +334,23 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     r.dips, _ = dips_step(survey, fit)
     check_cancel(progress)
     r.spec = grid_spec(survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector))
+    r.corridor = single_line_corridor(fit, settings)
+    if r.corridor is not None:
+        text = (
+            f"the points of reflector '{settings.reflector}' lie along one straight line: its cross-line dip is "
+            f"unknown. The map covers a corridor {r.corridor.width_m:.1f} m wide along the line ([processing] "
+            "line_corridor_m), level across the line, its sigma allowing for a cross-line dip of up to "
+            f"{r.corridor.cross_dip_deg:g} degrees ([processing] line_cross_dip_deg, an assumption: check it "
+            "against the geology and borings); the reflector points are placed in the line's vertical plane, "
+            "where the true reflection points may lie to one side by up to the depth times the sine of the "
+            "cross-line dip"
+        )
+        warnings.warn(text, RockheadWarning, stacklevel=2)
+        r.notes.append(text)
     interp = "spline" if method == "spline" else "kriging"
     progress.info(f"gridding the reflector ({interp}) with 3D relocation")
     r.fit, r.seismic_surface, r.seismic_diag, r.relocation_history_m = relocate_step(
-        survey, fit, ground, r.spec, interp, SubProgress(progress, 10, 50)
+        survey, fit, ground, r.spec, interp, SubProgress(progress, 10, 50), corridor=r.corridor
     )
     r.misties = line_misties(r.fit.frames, r.fit.points)
     bh = survey.boreholes
@@ -332,7 +366,8 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
                 "is from the uncalibrated seismic surface"
             )
         r.kriged_surface, r.kriged_diag = interpolate_step(
-            r.fit.points, r.spec, settings, interp, boreholes=bh, progress=SubProgress(progress, 50, 60)
+            r.fit.points, r.spec, settings, interp, boreholes=bh, progress=SubProgress(progress, 50, 60),
+            corridor=r.corridor,
         )
     else:
         r.kriged_surface, r.kriged_diag = r.seismic_surface, r.seismic_diag
@@ -340,7 +375,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     if method in ("auto", "tomography"):
         progress.info("joint inversion of all picks (reflection traveltime tomography)")
         r.tomography = tomography_step(survey, r.fit, r.kriged_surface, r.spec, method == "tomography",
-                                       SubProgress(progress, 60, 95))
+                                       SubProgress(progress, 60, 95), corridor=r.corridor)
         t = r.tomography
         if "surface" not in t:
             r.notes.append(f"joint inversion skipped: {t['skipped']}; surface by {interp}")

@@ -68,6 +68,25 @@ class PlaneTrend:
         coef = np.linalg.lstsq(a, z * w, rcond=None)[0]
         return cls(x0, y0, tuple(float(c) for c in coef))
 
+    @classmethod
+    def fit_along(cls, x: np.ndarray, y: np.ndarray, z: np.ndarray, sigma: ArrayLike, unit: ArrayLike) -> PlaneTrend:
+        """Fit a plane that slopes only along ``unit`` (data along one line; weights as :meth:`fit`).
+
+        z = a + g t with t the distance along ``unit`` from the data mean:
+        the plane's slopes are (g u_x, g u_y), level across the line.
+
+        >>> t = PlaneTrend.fit_along(np.array([0.0, 10, 20]), np.array([0.0, 1, 0]),
+        ...                          np.array([5.0, 6, 7]), np.ones(3), [1.0, 0.0])
+        >>> [round(c, 9) for c in t.coef]
+        [6.0, 0.1, 0.0]
+        """
+        u = np.asarray(unit, float) / np.linalg.norm(unit)
+        x0, y0 = float(np.mean(x)), float(np.mean(y))
+        w = 1.0 / np.maximum(np.asarray(sigma, float), 1e-3)
+        t = (x - x0) * u[0] + (y - y0) * u[1]
+        a, g = np.linalg.lstsq(np.column_stack([np.ones_like(t), t]) * w[:, None], z * w, rcond=None)[0]
+        return cls(x0, y0, (float(a), float(g * u[0]) + 0.0, float(g * u[1]) + 0.0))
+
     def __call__(self, x: ArrayLike, y: ArrayLike) -> np.ndarray:
         """Elevation of the plane (m) at easting ``x`` and northing ``y`` (m)."""
         a, b, c = self.coef
@@ -85,9 +104,9 @@ class NoTrend:
 
 
 def fit_trend(
-    settings: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, s: ArrayLike
+    settings: Any, x: np.ndarray, y: np.ndarray, z: np.ndarray, s: ArrayLike, along_unit: Optional[ArrayLike] = None
 ) -> Union[PlaneTrend, NoTrend]:
-    """Fit the trend the settings ask for.
+    """Fit the trend the settings ask for (sloping only along ``along_unit`` when given).
 
     Parameters
     ----------
@@ -99,13 +118,17 @@ def fit_trend(
         Elevations (m).
     s : array_like (n,)
         Standard error of each elevation (m).
+    along_unit : array_like (2,), optional
+        Direction of a single line the data lie along (:meth:`PlaneTrend.fit_along`).
 
     Returns
     -------
     PlaneTrend or NoTrend
         The plane with ``trend = "linear"`` and at least 3 points, else no trend.
     """
-    return PlaneTrend.fit(x, y, z, s) if settings.trend == "linear" and len(x) >= 3 else NoTrend()
+    if settings.trend != "linear" or len(x) < 3:
+        return NoTrend()
+    return PlaneTrend.fit(x, y, z, s) if along_unit is None else PlaneTrend.fit_along(x, y, z, s, along_unit)
 
 
 def grid_with_trend(
@@ -117,6 +140,7 @@ def grid_with_trend(
     settings: Any,
     method: str = "kriging",
     progress: Optional[Progress] = None,
+    corridor: Any = None,
 ) -> tuple[SurfaceGrid, dict[str, Any]]:
     """Interpolate (x, y, z) with sigma s onto ``spec``: trend removed, residuals gridded, trend added back.
 
@@ -141,6 +165,10 @@ def grid_with_trend(
         "kriging" or "spline".
     progress : Progress, optional
         Progress sink; cancellation is checked between chunks.
+    corridor : LineCorridor, optional
+        The data are one line's (:func:`~.corridor.line_corridor`): the trend
+        slopes only along it, cells outside the corridor are masked and the
+        std includes the unknown cross-line dip (distance x its assumed tangent).
 
     Returns
     -------
@@ -150,11 +178,16 @@ def grid_with_trend(
         Those of :func:`~.gridding.interpolate_surface`, plus ``trend``; the
         ``cross_validation`` estimates are elevations (trend added back).
     """
-    trend = fit_trend(settings, x, y, z, s)
+    trend = fit_trend(settings, x, y, z, s, None if corridor is None else corridor.unit)
     surf, diag = interpolate_surface(
         x, y, z - trend(x, y), s, spec, method=method, neighbours=settings.neighbours,
         variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m, progress=progress,
     )
+    if corridor is not None:
+        mask = surf.mask | corridor.outside(spec)
+        std = np.hypot(surf.std, corridor.cross_sigma_m(spec))
+        surf = SurfaceGrid(spec, np.where(mask, np.nan, surf.z), np.where(mask, np.nan, std), mask,
+                           surf.method, surf.n_data)
     cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
     z_grid = np.where(surf.mask, np.nan, surf.z + trend(cx, cy))
     diag["trend"] = trend

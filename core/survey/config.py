@@ -71,7 +71,7 @@ _MINIMUM = {
     "default_sigma_ms": MIN_SIGMA_MS,
     "borehole_sigma_m": MIN_SIGMA_M,
 }
-_RANGES = {"min_line_angle_deg": (0.0, 90.0)}
+_RANGES = {"min_line_angle_deg": (0.0, 90.0), "line_cross_dip_deg": (0.0, 60.0)}
 _TOML_INT_MAX = 2**63 - 1  # (exclusive low, inclusive high)
 
 

@@ -142,6 +142,8 @@ class Settings:
     robust_scale: float = 1.5  # loss threshold in units of the pick sigma
     reject_sigma: float = 4.0  # |residual| / sigma above this: pick rejected (flagged)
     combine_radius_m: Optional[float] = None  # None: half the median spread length
+    line_corridor_m: Optional[float] = None  # full width mapped along a single line; None: the reflector depth
+    line_cross_dip_deg: float = 10.0  # cross-line dip a single line's sigma allows for (assumed, degrees)
     reflector: Optional[str] = None  # reflector to map; None: the only one, or the deepest picked
     min_line_angle_deg: float = 30.0  # least angle between line directions to combine
     cell_size_m: Optional[float] = None  # None: chosen from the data spacing
