@@ -60,10 +60,21 @@ def _float(values) -> np.ndarray:
 
 
 def _surface_at(result, x, y) -> np.ndarray:
+    """The mapped elevation at points: bilinear, else (next to an empty cell) the value of the point's own cell."""
     if result.surface is None:
         return np.full(len(x), np.nan)
+    spec = result.spec
     z = np.where(result.surface.mask, np.nan, result.surface.z)
-    return bilinear(result.spec, z, x, y)
+    x, y = np.asarray(x, float), np.asarray(y, float)
+    at = bilinear(spec, z, x, y)
+    with np.errstate(invalid="ignore"):
+        col = np.floor((x - spec.x0) / spec.cell_size_m + 0.5)
+        row = np.floor((spec.y0 - y) / spec.cell_size_m + 0.5)
+    inside = np.isfinite(col) & np.isfinite(row) & (col >= 0) & (col < spec.nx) & (row >= 0) & (row < spec.ny)
+    own = np.full(x.shape, np.nan)
+    own[inside] = z[row[inside].astype(int), col[inside].astype(int)]
+    # a point near the edge of the map would otherwise get no z (and shapely 1.8 drops a NaN z)
+    return np.where(np.isfinite(at), at, own)
 
 
 def _point_z(name: str, layer: Layer, result):
