@@ -2,7 +2,8 @@
 
 Two A3 landscape pages: the depth to the reflector (contours, lines, reflector
 points, boreholes, strike-and-dip symbols) and the standard deviation of the
-mapped surface. Each page has a map at a round scale with a coordinate grid, a
+mapped surface; a third, the probability of rock above the design level, when
+the run had one. Each page has a map at a round scale with a coordinate grid, a
 legend with units, a scale bar, a north arrow (grid north), the cautions and a
 title block (survey, dates, software version, CRS, vertical datum, method,
 cell size) read from the run's ``run_info`` table.
@@ -51,6 +52,7 @@ PANEL_W_MM = 96.0
 DEPTH_PAGE = ("reflector_depth.tif", "contours", "shots", "reflector_points", "boreholes", "dip_measurements",
               "surface_dips")
 SIGMA_PAGE = ("depth_sigma.tif", "shots", "reflector_points", "boreholes")
+PROBABILITY_PAGE = ("probability_above_design.tif", "shots", "reflector_points", "boreholes")
 
 
 def run_info(out_dir) -> dict:
@@ -118,6 +120,9 @@ def build_layout(project, out_dir, layers_by_name, crs, info, title=None):
     keep = []  # legend layer trees must outlive the export
     pages = [(tr("Depth to the reflector below ground"), DEPTH_PAGE),
              (tr("Standard deviation of the mapped surface"), SIGMA_PAGE)]
+    if "probability_above_design.tif" in layers_by_name:  # a run with a [design] level
+        level = info.get("design_elevation_m", "")
+        pages.append((tr("Probability that the reflector is above {level} m").format(level=level), PROBABILITY_PAGE))
     subject = layers_by_name.get("reflector_depth.tif")
     extent = QgsRectangle(subject.extent()) if subject is not None else None
     x0, y0, mw, mh = MAP_FRAME_MM
@@ -212,7 +217,8 @@ class MapSheetAlgorithm(ReflectorAlgorithm):
     _help = (
         "<p>Builds a QGIS print layout from the folder written by <i>Run whole survey</i> and exports it as a "
         "PDF: page 1 the depth to the reflector with contours, the seismic lines, reflector points, boreholes "
-        "and strike-and-dip symbols; page 2 the standard deviation of the mapped surface. Each page carries a "
+        "and strike-and-dip symbols; page 2 the standard deviation of the mapped surface; page 3, when the run "
+        "had a design level, the probability of rock above it. Each page carries a "
         "coordinate grid, a legend with units, a scale bar, a north arrow (grid north), the cautions and a "
         "title block (survey, dates, software version, CRS, vertical datum, method, cell size).</p>"
     )

@@ -63,6 +63,25 @@ def test_map_sheet_print_layout(provider, core_results, tmp_path):
     assert coloured.mean() > 0.2  # the sample site fills most of the frame at the chosen scale
 
 
+@pytest.mark.skipif(not POPPLER, reason="poppler-utils not installed")
+def test_map_sheet_has_the_probability_page_with_a_design_level(provider, core_auto, tmp_path):
+    from rockhead.core import job
+
+    toml, _ = core_auto
+    folder = tmp_path / "design"
+    shutil.copytree(toml.parent, folder)
+    (folder / "survey.toml").write_text((folder / "survey.toml").read_text()
+                                        + "\n[design]\nelevation_m = 222.0\nsimulations = 200\n")
+    job.run(folder / "survey.toml", folder / "results")
+    pdf = tmp_path / "sheet.pdf"
+    run("mapsheet", {"RESULTS": str(folder / "results"), "OUTPUT": str(pdf)})
+    info = subprocess.run(["pdfinfo", str(pdf)], capture_output=True, text=True, check=True).stdout
+    assert re.search(r"^Pages:\s+3$", info, re.M)
+    text = " ".join(subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True).stdout.split())
+    text = text.replace("\ufb02", "fl").replace("\ufb01", "fi")  # Qt's text shaping writes the fl/fi ligatures
+    assert "Probability that the reflector is above 222.0 m" in text
+
+
 def _alignment_layer():
     layer = QgsVectorLayer("LineString?crs=EPSG:32633&field=name:string", "axis", "memory")
     f = QgsFeature(layer.fields())
