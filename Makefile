@@ -1,13 +1,26 @@
 # Rockhead: developer shortcuts.
+#   make check            quick tier: lint, then tests/core without the slow tests (PyPI stack, < 60 s)
+#   make style            ruff format --check, ruff's docstring rules (numpy convention) on core/, mypy on core/
 #   make install-plugin   link this checkout into the QGIS user profile (QGIS loads it from there)
 #   make package          build dist/rockhead-<version>.zip for the plugin repository
+# The full tier (every test, both stacks, what CI runs) is `bash scripts/test.sh`.
 
 PLUGIN_NAME := rockhead
 PYTHON ?= python3
+VENV ?= .venv
 QGIS_PROFILE_DIR ?= $(HOME)/.local/share/QGIS/QGIS3/profiles/default
 PLUGINS_DIR := $(QGIS_PROFILE_DIR)/python/plugins
 
-.PHONY: install-plugin uninstall-plugin package
+.PHONY: check style install-plugin uninstall-plugin package
+
+check:
+	$(VENV)/bin/ruff check .
+	$(VENV)/bin/python -m pytest -q -m "not slow" tests/core
+
+style:
+	$(VENV)/bin/ruff format --check .
+	$(VENV)/bin/ruff check --extend-select D core
+	PYTHON=$(VENV)/bin/python bash scripts/typecheck.sh
 
 install-plugin:
 	@mkdir -p "$(PLUGINS_DIR)"

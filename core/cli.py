@@ -1,8 +1,11 @@
 """Command line: ``rockhead run SURVEY.toml --out DIR``.
 
-Exit codes: 0 success; 2 bad input or an output that cannot be written (one
-line on stderr, no traceback); 1 an internal error (one line, ``--debug`` shows
-the traceback); 130 cancelled (Ctrl-C).
+Exit codes: 0 success; 2 bad input or an output that cannot be written: any
+:class:`~.errors.RockheadError` (an input file, a survey.toml setting, a grid or
+surface that the data or settings cannot give, an output folder, a missing
+package), one line on stderr, no traceback; 1 only for an internal error, a bug
+(any other exception: one line, ``--debug`` shows the traceback); 130 cancelled
+(Ctrl-C).
 """
 
 from __future__ import annotations
@@ -11,6 +14,7 @@ import argparse
 import os
 import sys
 import warnings
+from typing import Optional, Sequence
 
 # The fits solve many tiny systems at once; a multi-threaded BLAS only adds
 # overhead there (and oversubscribes a small machine), so unless the user
@@ -59,11 +63,18 @@ def _edits_line(survey) -> str:
             f"{e.n_excluded} picks excluded, {e.n_retimed} retimed")
 
 
-def _one_line(message: str) -> str:
+def _one_line(message: object) -> str:
+    """The text of ``message`` (an error, a warning or a string) on one line."""
     return " ".join(str(message).split())
 
 
-def main(argv=None) -> int:
+def main(argv: Optional[Sequence[str]] = None) -> int:
+    """Run the command line with ``argv`` (default ``sys.argv[1:]``); return the exit code.
+
+    0 success; 2 bad input or an output that cannot be written (any
+    :class:`~.errors.RockheadError`), one line on stderr; 1 an internal error
+    (a bug), one line, the traceback with ``--debug``; 130 cancelled.
+    """
     args = _parser().parse_args(argv)
     show_progress = getattr(args, "progress", False) or sys.stderr.isatty()
     progress = StderrProgress() if show_progress else NullProgress()

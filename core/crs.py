@@ -21,8 +21,8 @@ point scale factor *k* of the projection (EPSG Guidance Note 7-2; for UTM
 *k* = 0.9996 on the central meridian, rising to about 1.0010 at the zone
 edge at the equator). Ground distances at an elevation *h* above the ellipsoid
 are larger again by the elevation factor (R + h)/R, i.e. about h/R
-(1.6e-4 at h = 1000 m, 1.6e-5 at 100 m, with R about 6.37e6 m). Reflector
-Mapper ignores the elevation factor: over a 200 m spread at 300 m elevation
+(1.6e-4 at h = 1000 m, 1.6e-5 at 100 m, with R about 6.37e6 m). Rockhead
+ignores the elevation factor: over a 200 m spread at 300 m elevation
 it is under 1 cm, well below pick and positioning errors.
 """
 

@@ -269,7 +269,8 @@ class GridSpec:
             Margin added on every side of the data bounds (m), >= 0.
         max_cells : int
             If the default cell size gives more cells, the next larger 1-2-5
-            step is taken (with a warning). Ignored when ``cell_size_m`` is given.
+            step is taken (with a warning); a given ``cell_size_m`` that needs
+            more is refused.
 
         Returns
         -------
@@ -280,7 +281,8 @@ class GridSpec:
         ------
         GridError
             No data, unequal lengths, NaN coordinates, a bad cell size or margin,
-            or no cell size to be had from the data.
+            no cell size to be had from the data, or a given cell size needing
+            more than ``max_cells`` cells.
 
         Warns
         -----
@@ -343,8 +345,17 @@ class GridSpec:
             north = math.ceil((ymax + pad_m) / cell) * cell
             nx = max(1, round((east - west) / cell))
             ny = max(1, round((north - south) / cell))
-            if not auto or nx * ny <= max_cells:
+            if nx * ny <= max_cells:
                 break
+            if not auto:
+                least = math.sqrt((east - west) * (north - south) / max_cells)
+                step = nice_step(least)
+                step = step if step >= least else next_nice_step(step)
+                raise GridError(
+                    f"a {cell:g} m cell over the {east - west:g} m x {north - south:g} m extent of the data "
+                    f"needs {nx * ny:,} cells, more than {max_cells:,}; give a larger cell size "
+                    f"({step:g} m or more)"
+                )
             new = next_nice_step(cell)
             warnings.warn(
                 f"a {cell:g} m cell would need {nx * ny} cells (> {max_cells}); using {new:g} m cells. "

@@ -14,16 +14,28 @@ functions are public so that the QGIS algorithms can call one step at a time.
 
 from __future__ import annotations
 
+import re
 import warnings
 from dataclasses import replace
-from typing import Optional
+from pathlib import Path
+from typing import Dict, Optional, Union
 
 import numpy as np
 
-from .errors import InversionError, RockheadWarning
+from .errors import GridError, InversionError, RockheadWarning, SurveyConfigError
 from .grid import GridSpec, bilinear, fill_nearest, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
-from .results import FitStep, RunResult
+from .results import (
+    BoreholeCheck,
+    CmpTable,
+    DepthRatio,
+    DixTable,
+    FitStep,
+    RunResult,
+    SiteVelocity,
+    SurfaceDiagnostics,
+    TomographyOutcome,
+)
 from .seismic.cmp import cmp_bins, fit_cmp_gathers, midpoint_spacing
 from .seismic.dix import dix_intervals
 from .seismic.geometry import build_gathers, line_frames, reflector_points
@@ -62,7 +74,7 @@ def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=N
     pts = reflector_points(gathers, fits, ground=ground)
     zero = pts.select(pts.kind == "zero_offset")
     recv = pts.select(pts.kind == "receiver")
-    return FitStep(frames, gathers, fits, zero, recv)
+    return FitStep(frames=frames, gathers=gathers, fits=fits, points=zero, receiver_points=recv)
 
 
 def dips_step(survey, fit: FitStep, progress=None):
@@ -132,9 +144,13 @@ def surface_data(points, reflector, boreholes=None):
 
 
 def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None, corridor=None):
-    """Grid the reflector points (and boreholes, as near-exact data); a single line's within its corridor."""
+    """Grid the reflector points (and boreholes, as near-exact data); a single line's within its corridor.
+
+    Returns ``(SurfaceGrid, SurfaceDiagnostics)``.
+    """
     x, y, z, s = surface_data(points, settings.reflector, boreholes)
-    return grid_with_trend(x, y, z, s, spec, settings, method, progress, corridor=corridor)
+    surface, diagnostics = grid_with_trend(x, y, z, s, spec, settings, method, progress, corridor=corridor)
+    return surface, SurfaceDiagnostics.from_surface(diagnostics)
 
 
 def single_line_corridor(fit: FitStep, settings):
@@ -162,15 +178,15 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
     line (``corridor`` given) has no cross-line dip to read: its points stay
     in the line's vertical plane and the surface is gridded once.
 
-    Returns ``(fit, surface, diagnostics, history)``; ``history`` lists the
-    largest cell change of each iteration.
+    Returns ``(fit, surface, diagnostics, history)``; ``history`` is a tuple of
+    the largest cell change of each iteration (m).
     """
     progress = progress or NullProgress()
     surf, diag = interpolate_step(fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30),
                                   corridor=corridor)
     history = []
     if corridor is not None:
-        return fit, surf, diag, history
+        return fit, surf, diag, ()
     for it in range(max_iterations):
         check_cancel(progress)
         q = surface_cross_components(spec, surf.z, fit.gathers, fit.points.x_m, fit.points.y_m)
@@ -184,21 +200,21 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
         surf = new
         if change < tolerance_m:
             break
-    return fit, surf, diag, history
+    return fit, surf, diag, tuple(history)
 
 
-def borehole_check(points, boreholes, settings, diag):
-    """Seismic-only surface at each borehole: estimate, sigma, residual (borehole - seismic)."""
+def borehole_check(points, boreholes, settings, diagnostics: SurfaceDiagnostics) -> BoreholeCheck:
+    """Seismic-only surface at each borehole: estimate, sigma, residual (borehole - seismic).
+
+    The surface is re-estimated at the boreholes with the trend and variogram
+    of ``diagnostics`` (those of the seismic-only surface).
+    """
     x, y, z, s = surface_data(points, settings.reflector)
-    est, std = predict_with_trend(x, y, z, s, diag, settings, boreholes.x_m, boreholes.y_m)
+    model = {"trend": diagnostics.trend, "variogram": diagnostics.variogram}  # what predict_with_trend reads
+    est, std = predict_with_trend(x, y, z, s, model, settings, boreholes.x_m, boreholes.y_m)
     resid = boreholes.elevation_m - est
     total = np.sqrt(std**2 + boreholes.sigma_m**2)
-    return {
-        "seismic_elevation_m": est,
-        "seismic_sigma_m": std,
-        "residual_m": resid,
-        "standardised": resid / total,
-    }
+    return BoreholeCheck(seismic_elevation_m=est, seismic_sigma_m=std, residual_m=resid, standardised=resid / total)
 
 
 def grid_spec(survey, points):
@@ -208,14 +224,45 @@ def grid_spec(survey, points):
     reflector points rounded down to a 1-2-5 step (:meth:`GridSpec.from_data`),
     not of the geophone stations, which are far denser than the reflector
     sampling of one point per gather.
+
+    Raises
+    ------
+    SurveyConfigError
+        A ``[processing] cell_size_m`` that needs too many cells (naming the
+        survey file, the line and the key).
+    GridError
+        No cell size can be had from the reflector points.
     """
     ok = np.isfinite(points.x_m) & np.isfinite(points.y_m)
+    xs = np.concatenate([survey.stations.x_m, points.x_m[ok]])
+    ys = np.concatenate([survey.stations.y_m, points.y_m[ok]])
     cell = survey.settings.cell_size_m
     if cell is None:
         cell = GridSpec.from_data(points.x_m[ok], points.y_m[ok]).cell_size_m
-    xs = np.concatenate([survey.stations.x_m, points.x_m[ok]])
-    ys = np.concatenate([survey.stations.y_m, points.y_m[ok]])
-    return GridSpec.from_data(xs, ys, cell_size_m=cell)
+        # the automatic cell was bounded by the points' extent; the stations only widen the margin
+        return GridSpec.from_data(xs, ys, cell_size_m=cell, max_cells=2**62)
+    try:
+        return GridSpec.from_data(xs, ys, cell_size_m=cell)
+    except GridError as err:
+        path = survey.path
+        raise SurveyConfigError(path, _key_line(path, "processing", "cell_size_m"), "processing.cell_size_m",
+                                str(err)) from err
+
+
+def _key_line(path, table: str, key: str) -> Optional[int]:
+    """1-based line of ``key = ...`` inside ``[table]`` of a TOML file (None when not found)."""
+    try:
+        text = Path(path).read_text(encoding="utf-8-sig")
+    except (OSError, UnicodeDecodeError):
+        return None
+    current = None
+    for number, raw in enumerate(text.splitlines(), start=1):
+        line = raw.strip()
+        if line.startswith("[") and "]" in line:
+            current = line[1 : line.index("]")].strip().strip("\"'")
+        elif current == table and re.match(rf"([\"']?){re.escape(key)}\1\s*=", line):
+            return number
+    return None
 
 
 def ground_model(survey):
@@ -226,17 +273,34 @@ def ground_model(survey):
     return GroundModel.from_stations(st.x_m, st.y_m, st.z_m)
 
 
-def tomography_step(survey, fit, start, spec, forced=False, progress=None, corridor=None):
+def site_velocity(fit: FitStep, reflector: str) -> SiteVelocity:
+    """Robust overburden velocity of the site from the ok gather fits of ``reflector``.
+
+    Median and 1.4826 MAD of the gather velocities (Huber 1964), only of the
+    mapped reflector: a deeper or shallower reflector's fit velocity is the
+    rms velocity down to it (Dix 1955), another quantity.
+    """
+    f = fit.fits
+    mapped = np.asarray(fit.gathers.reflector).astype(str) == str(reflector)
+    v, spread, n = robust_site_velocity(f.velocity_m_s, f.se_velocity_m_s, (f.status == "ok") & mapped)
+    return SiteVelocity(velocity_m_s=float(v), spread_m_s=float(spread), n_gathers=int(n), reflector=str(reflector))
+
+
+def tomography_step(survey, fit, start, spec, forced=False, progress=None, corridor=None,
+                    site=None) -> TomographyOutcome:
     """Joint inversion of every pick for the surface and the velocity (Bishop et al. 1985).
 
-    Starts from the gridded surface ``start`` and the robust site velocity of
-    the gather fits; nodes every ``NODE_CELLS`` output cells. Returns
-    ``{"skipped": reason}`` (auto mode) when the picks do not support it;
+    Starts from the gridded surface ``start`` and the robust site velocity
+    ``site`` of the gather fits (:func:`site_velocity` of ``fit`` when not
+    given); nodes every ``NODE_CELLS`` output cells. Returns an outcome with
+    its ``skipped_reason`` (auto mode) when the picks do not support it;
     raises InversionError when the method was asked for explicitly.
     """
     f, g = fit.fits, fit.gathers
     mapped = np.asarray(g.reflector).astype(str) == str(survey.settings.reflector)
-    v_site, v_spread, n_v = robust_site_velocity(f.velocity_m_s, f.se_velocity_m_s, (f.status == "ok") & mapped)
+    if site is None:
+        site = site_velocity(fit, survey.settings.reflector)
+    v_site, v_spread, n_v = site.velocity_m_s, site.spread_m_s, site.n_gathers
     use = ~f.excluded & mapped[g.gather]
     why = None
     if use.sum() < 200:
@@ -246,7 +310,7 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None, corri
     if why:
         if forced:
             raise InversionError(f"the joint inversion is not supported by this survey: {why}")
-        return {"skipped": why}
+        return TomographyOutcome.skipped(why)
     bh = survey.boreholes
     boreholes = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, bh.elevation_m, bh.sigma_m)
     # nodes every NODE_CELLS output cells (row 0 south, as the tomography wants), covering the grid
@@ -287,21 +351,44 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None, corri
     surface = SurfaceGrid(spec, z, np.where(mask, np.nan, surface.std), mask, "tomography",
                           int(np.sum(res.used & ~res.rejected)))
     flag, reason = curvature_flags(f.velocity_m_s, f.se_velocity_m_s, v_site, v_spread)
-    return {
-        "surface": surface,
-        "result": res,
-        "site_velocity_m_s": (v_site, v_spread, n_v),
-        "curvature_flag": flag & (f.status == "ok") & mapped,
-        "curvature_reason": reason,
-        "difference_m": z - start.z,
-        "kriging_diag": diag,
-        "data": (x, y, zz, ss),  # what was kriged (for conditional simulation of this surface)
-        "used": use,
-    }
+    return TomographyOutcome(
+        surface=surface,
+        inversion=res,
+        curvature_flag=flag & (f.status == "ok") & mapped,
+        curvature_reason=reason,
+        difference_m=z - start.z,
+        diagnostics=SurfaceDiagnostics.from_surface(diag),
+        kriged_data=(x, y, zz, ss),  # what was kriged (for conditional simulation of this surface)
+        used=use,
+    )
 
 
 def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
-    """Run the science of the whole job (no files written)."""
+    """Run the science of the whole job (no files written).
+
+    Parameters
+    ----------
+    survey : Survey
+        As read by :func:`~.survey.config.load_survey`.
+    method : str, optional
+        Surface method, one of :data:`SURFACE_METHODS`; default the survey's
+        ``surface_method``.
+    progress : object, optional
+        Progress sink (``set_progress``, ``is_canceled``, ``info``).
+
+    Returns
+    -------
+    RunResult
+        Built once, at the end, from the steps' results.
+
+    Raises
+    ------
+    InversionError
+        Unknown method, fewer than 3 usable gathers, an unknown reflector, or a
+        joint inversion asked for that the survey cannot support.
+    CancelledError
+        When ``progress`` asks to cancel.
+    """
     progress = progress or NullProgress()
     settings = survey.settings
     method = method or settings.surface_method
@@ -318,83 +405,111 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
         )
     survey = replace(survey, settings=replace(settings, reflector=mapped_reflector(fit, settings)))
     settings = survey.settings
-    r = RunResult(survey, fit, ground=ground)
-    r.dix = dix_table(fit)
+    notes = []
+    dix = dix_table(fit)
+    cmp = None
     if settings.gather == "cmp":
         progress.info("common-midpoint velocity analysis")
-        r.cmp = cmp_step(survey, fit)
+        cmp = cmp_step(survey, fit)
     if len(set(np.asarray(fit.gathers.reflector).tolist())) > 1:
-        r.notes.append(
+        notes.append(
             f"several reflectors picked: mapping reflector '{settings.reflector}' (set [processing] reflector "
             "to choose); its depth comes from its own fit, whose velocity is the rms velocity of the layers "
             "above (Dix 1955), so it overstates the depth by about V_rms/V_average; the dix_intervals layer "
             "gives interval velocities and layered depths under each shot"
         )
     progress.info("combining crossing lines into true dip and strike")
-    r.dips, _ = dips_step(survey, fit)
+    dips, _ = dips_step(survey, fit)
     check_cancel(progress)
-    r.spec = grid_spec(survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector))
-    r.corridor = single_line_corridor(fit, settings)
-    if r.corridor is not None:
+    spec = grid_spec(survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector))
+    corridor = single_line_corridor(fit, settings)
+    if corridor is not None:
         text = (
             f"the points of reflector '{settings.reflector}' lie along one straight line: its cross-line dip is "
-            f"unknown. The map covers a corridor {r.corridor.width_m:.1f} m wide along the line ([processing] "
+            f"unknown. The map covers a corridor {corridor.width_m:.1f} m wide along the line ([processing] "
             "line_corridor_m), level across the line, its sigma allowing for a cross-line dip of up to "
-            f"{r.corridor.cross_dip_deg:g} degrees ([processing] line_cross_dip_deg, an assumption: check it "
+            f"{corridor.cross_dip_deg:g} degrees ([processing] line_cross_dip_deg, an assumption: check it "
             "against the geology and borings); the reflector points are placed in the line's vertical plane, "
             "where the true reflection points may lie to one side by up to the depth times the sine of the "
             "cross-line dip"
         )
         warnings.warn(text, RockheadWarning, stacklevel=2)
-        r.notes.append(text)
+        notes.append(text)
     interp = "spline" if method == "spline" else "kriging"
     progress.info(f"gridding the reflector ({interp}) with 3D relocation")
-    r.fit, r.seismic_surface, r.seismic_diag, r.relocation_history_m = relocate_step(
-        survey, fit, ground, r.spec, interp, SubProgress(progress, 10, 50), corridor=r.corridor
+    fit, seismic_surface, seismic_diag, history = relocate_step(
+        survey, fit, ground, spec, interp, SubProgress(progress, 10, 50), corridor=corridor
     )
-    r.misties = line_misties(r.fit.frames, r.fit.points)
+    misties = line_misties(fit.frames, fit.points)
     bh = survey.boreholes
+    check = ratio = None
     if bh is not None and len(bh):
-        r.borehole_check = borehole_check(r.fit.points, bh, settings, r.seismic_diag)
-        r.depth_ratio = borehole_depth_ratio(r, bh)
+        check = borehole_check(fit.points, bh, settings, seismic_diag)
+        ratio = borehole_depth_ratio(check, bh)
         if settings.calibrate_velocity:
-            k = r.depth_ratio["factor"]
-            r.fit = calibrate_fit(r.fit, k, ground)
-            r.notes.append(
-                f"velocities scaled by the borehole calibration factor {k:.4f} ± "
-                f"{r.depth_ratio['sigma_factor']:.4f} (calibrate_velocity = true); the borehole check above "
+            fit = calibrate_fit(fit, ratio.factor, ground)
+            notes.append(
+                f"velocities scaled by the borehole calibration factor {ratio.factor:.4f} ± "
+                f"{ratio.sigma_factor:.4f} (calibrate_velocity = true); the borehole check above "
                 "is from the uncalibrated seismic surface"
             )
-        r.kriged_surface, r.kriged_diag = interpolate_step(
-            r.fit.points, r.spec, settings, interp, boreholes=bh, progress=SubProgress(progress, 50, 60),
-            corridor=r.corridor,
+        kriged_surface, kriged_diag = interpolate_step(
+            fit.points, spec, settings, interp, boreholes=bh, progress=SubProgress(progress, 50, 60),
+            corridor=corridor,
         )
     else:
-        r.kriged_surface, r.kriged_diag = r.seismic_surface, r.seismic_diag
-    r.surface, r.method_used = r.kriged_surface, interp
+        kriged_surface, kriged_diag = seismic_surface, seismic_diag
+    site = site_velocity(fit, settings.reflector)  # once: the joint inversion's start and the report's value
+    surface, method_used = kriged_surface, interp
+    tomography = None
     if method in ("auto", "tomography"):
         progress.info("joint inversion of all picks (reflection traveltime tomography)")
-        r.tomography = tomography_step(survey, r.fit, r.kriged_surface, r.spec, method == "tomography",
-                                       SubProgress(progress, 60, 95), corridor=r.corridor)
-        t = r.tomography
-        if "surface" not in t:
-            r.notes.append(f"joint inversion skipped: {t['skipped']}; surface by {interp}")
-        elif method == "tomography" or np.any(t["curvature_flag"]):
-            r.surface, r.method_used = t["surface"], "tomography"
+        tomography = tomography_step(survey, fit, kriged_surface, spec, method == "tomography",
+                                     SubProgress(progress, 60, 95), corridor=corridor, site=site)
+        if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
+            notes.append(f"joint inversion skipped: {tomography.skipped_reason}; surface by {interp}")
+        elif method == "tomography" or np.any(tomography.curvature_flag):
+            surface, method_used = tomography.surface, "tomography"
             if method == "auto":
-                r.notes.append(
-                    f"{int(np.sum(t['curvature_flag']))} gathers depart from the site velocity beyond their "
+                notes.append(
+                    f"{int(np.sum(tomography.curvature_flag))} gathers depart from the site velocity beyond their "
                     "error (reflector curvature): the surface comes from the joint inversion of all picks"
                 )
         else:
-            r.notes.append(
+            notes.append(
                 "no gather departs from the site velocity beyond its error (the reflector is planar at the "
                 f"scale of a spread): the surface is the {interp} of the gather fits; the joint inversion is "
                 "reported as a cross-check"
             )
-    products_step(r)
+    ground_grid_m, depth_m, contours, sdips = products_step(spec, surface, ground, settings)
     progress.set_progress(100)
-    return r
+    return RunResult(
+        survey=survey,
+        fit=fit,
+        ground=ground,
+        spec=spec,
+        site_velocity=site,
+        dips=dips,
+        misties=misties,
+        seismic_surface=seismic_surface,
+        seismic_diagnostics=seismic_diag,
+        kriged_surface=kriged_surface,
+        kriged_diagnostics=kriged_diag,
+        surface=surface,
+        method_used=method_used,
+        ground_grid_m=ground_grid_m,
+        depth_m=depth_m,
+        contours=contours,
+        surface_dips=sdips,
+        dix=dix,
+        relocation_history_m=history,
+        borehole_check=check,
+        depth_ratio=ratio,
+        tomography=tomography,
+        cmp=cmp,
+        corridor=corridor,
+        notes=tuple(notes),
+    )
 
 
 def mapped_reflector(fit, settings) -> str:
@@ -414,19 +529,20 @@ def mapped_reflector(fit, settings) -> str:
     return max(names, key=lambda n: (np.nan_to_num(t0[n], nan=-1.0), n))
 
 
-def dix_table(fit):
+def dix_table(fit) -> DixTable:
     """Dix (1955) interval velocities and thicknesses under every shot with several reflectors.
 
     Per (line, shot), the ok gathers of its reflectors give (t0, V) pairs; with
     V taken as the rms velocity (near-horizontal layers), :func:`dix_intervals`
-    gives the layers between them. Returns a dict of columns (empty when no
-    shot has two reflectors).
+    gives the layers between them. The table is empty when no shot has two
+    reflectors.
     """
     g, f = fit.gathers, fit.fits
     ok = f.status == "ok"
-    cols = {k: [] for k in ("line", "shot", "reflector_top", "reflector_base", "x_m", "y_m", "t0_top_ms",
-                            "t0_base_ms", "interval_velocity_m_s", "se_interval_velocity_m_s", "thickness_m",
-                            "se_thickness_m", "depth_base_m", "status", "reason")}
+    columns = ("line", "shot", "reflector_top", "reflector_base", "x_m", "y_m", "t0_top_ms", "t0_base_ms",
+               "interval_velocity_m_s", "se_interval_velocity_m_s", "thickness_m", "se_thickness_m", "depth_base_m",
+               "status", "reason")
+    cols: Dict[str, list] = {k: [] for k in columns}
     keys = np.array([f"{a}\x1f{b}" for a, b in zip(g.line, g.shot)], dtype=object)
     for key in sorted(set(keys[ok].tolist())):
         idx = np.flatnonzero((keys == key) & ok)
@@ -451,11 +567,11 @@ def dix_table(fit):
             cols["depth_base_m"].append(d.depth_base_m[row])
             cols["status"].append(str(d.status[row]))
             cols["reason"].append(str(d.reason[row]))
-    return {k: np.array(v, dtype=object if k in ("line", "shot", "reflector_top", "reflector_base", "status",
-                                                 "reason") else float) for k, v in cols.items()}
+    text = ("line", "shot", "reflector_top", "reflector_base", "status", "reason")
+    return DixTable(**{k: np.array(v, dtype=object if k in text else float) for k, v in cols.items()})
 
 
-def cmp_step(survey, fit):
+def cmp_step(survey, fit) -> CmpTable:
     """Common-midpoint velocity analysis of all picks (``gather = "cmp"``).
 
     Picks are sorted into midpoint bins along each line (per reflector) and
@@ -466,12 +582,13 @@ def cmp_step(survey, fit):
     holds one midpoint: a longer bin mixes midpoints whose t0 differ on a
     dipping reflector and biases Vnmo. ``depth_m`` = Vnmo t0 / 2 below the
     bin centre is a vertical, small-dip estimate; the map itself always comes
-    from the exact 3D shot-gather fits. Returns a dict of columns (with
-    ``x_m``, ``y_m`` of the bin centres).
+    from the exact 3D shot-gather fits. Returns one row per bin (``x_m``,
+    ``y_m`` are the bin centres).
     """
     g = fit.gathers
     pick_line = np.asarray(g.line)[g.gather].astype(str)
     bin_m = survey.settings.cmp_bin_m
+    bins: Union[float, np.ndarray]  # one length per pick (the line's), or the setting's one length
     if bin_m is None:
         per_gather = midpoint_spacing(g.source_xyz, g.receiver_xyz, g.gather, g.line_unit)
         lines = np.asarray(g.line).astype(str)
@@ -490,47 +607,47 @@ def cmp_step(survey, fit):
     fits = fit_cmp_gathers(gid, offset, g.time_s, g.sigma_s, survey.settings)
     first = np.zeros(len(centres), dtype=int)
     first[gid[::-1]] = np.arange(len(gid))[::-1]
-    return {
-        "x_m": centres[:, 0],
-        "y_m": centres[:, 1],
-        "line": pick_line[first].astype(object),
-        "reflector": pick_refl[first].astype(object),
-        "t0_ms": fits.t0_s * 1e3,
-        "nmo_velocity_m_s": fits.nmo_velocity_m_s,
-        "se_t0_ms": fits.se_t0_s * 1e3,
-        "se_nmo_velocity_m_s": fits.se_nmo_velocity_m_s,
-        "depth_m": fits.nmo_velocity_m_s * fits.t0_s / 2,
-        "rms_residual_ms": fits.rms_residual_s * 1e3,
-        "picks_used": fits.picks_used.astype(np.int64),
-        "picks_rejected": fits.picks_rejected.astype(np.int64),
-        "status": fits.status.astype(object),
-        "reason": fits.reason.astype(object),
-        "bin_m": np.broadcast_to(bins, gid.shape)[first].astype(float),
-    }
+    return CmpTable(
+        x_m=centres[:, 0],
+        y_m=centres[:, 1],
+        line=pick_line[first].astype(object),
+        reflector=pick_refl[first].astype(object),
+        t0_ms=fits.t0_s * 1e3,
+        nmo_velocity_m_s=fits.nmo_velocity_m_s,
+        se_t0_ms=fits.se_t0_s * 1e3,
+        se_nmo_velocity_m_s=fits.se_nmo_velocity_m_s,
+        depth_m=fits.nmo_velocity_m_s * fits.t0_s / 2,
+        rms_residual_ms=fits.rms_residual_s * 1e3,
+        picks_used=fits.picks_used.astype(np.int64),
+        picks_rejected=fits.picks_rejected.astype(np.int64),
+        status=fits.status.astype(object),
+        reason=fits.reason.astype(object),
+        bin_m=np.broadcast_to(bins, gid.shape)[first].astype(float),
+    )
 
 
-def borehole_depth_ratio(result, boreholes):
+def borehole_depth_ratio(check: BoreholeCheck, boreholes) -> DepthRatio:
     """Borehole depth / seismic depth at the boreholes: a velocity calibration factor.
 
     Seismic depths scale with the overburden velocity (h = V t0 / 2), so the
     ratio of borehole to seismic-only depth estimates the factor by which
     the velocities would have to change to honour the boreholes. Reported
     always; applied only when ``calibrate_velocity`` is set (then the
-    surface is tied to the boreholes through the scaled depths). Returns the
-    inverse-variance weighted mean factor and its standard error.
+    surface is tied to the boreholes through the scaled depths). ``check`` is
+    the seismic-only surface at the boreholes (:func:`borehole_check`).
+    Returns the inverse-variance weighted mean factor and its standard error.
     """
-    chk = result.borehole_check
     ground_bh = boreholes.z_m
-    seismic_depth = ground_bh - chk["seismic_elevation_m"]
+    seismic_depth = ground_bh - check.seismic_elevation_m
     ratio = boreholes.depth_m / seismic_depth
-    sig = ratio * np.hypot(chk["seismic_sigma_m"] / seismic_depth, boreholes.sigma_m / boreholes.depth_m)
+    sig = ratio * np.hypot(check.seismic_sigma_m / seismic_depth, boreholes.sigma_m / boreholes.depth_m)
     w = 1.0 / sig**2
     factor = float(np.sum(w * ratio) / np.sum(w))
     se = float(np.sqrt(1.0 / np.sum(w)))
     if len(ratio) > 1:
         chi2 = float(np.sum(w * (ratio - factor) ** 2) / (len(ratio) - 1))
         se *= max(1.0, np.sqrt(chi2))
-    return {"ratio": ratio, "sigma": sig, "factor": factor, "sigma_factor": se, "n": len(ratio)}
+    return DepthRatio(ratio=ratio, sigma=sig, factor=factor, sigma_factor=se, n=len(ratio))
 
 
 def calibrate_fit(fit: FitStep, factor: float, ground) -> FitStep:
@@ -552,22 +669,27 @@ def calibrate_fit(fit: FitStep, factor: float, ground) -> FitStep:
         covariance=f.covariance * scale[None, :, None] * scale[None, None, :],
     )
     pts = reflector_points(fit.gathers, scaled, ground=ground)
-    return FitStep(fit.frames, fit.gathers, scaled, pts.select(pts.kind == "zero_offset"),
-                   pts.select(pts.kind == "receiver"))
+    return replace(fit, fits=scaled, points=pts.select(pts.kind == "zero_offset"),
+                   receiver_points=pts.select(pts.kind == "receiver"))
 
 
-def products_step(r: RunResult) -> None:
-    """Depth below ground, contours and surface dip symbols of the final surface."""
-    spec, st = r.spec, r.survey.settings
+def products_step(spec: GridSpec, surface: SurfaceGrid, ground, settings):
+    """Depth below ground, contours and surface dip symbols of the final surface.
+
+    Returns ``(ground_grid_m, depth_m, contours, surface_dips)``: the ground
+    elevation and the depth below it on ``spec`` (m), the elevation and
+    depth contours (a Layer) and the dip symbols read off the surface.
+    """
     cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
-    r.ground_grid_m = np.asarray(r.ground(cx, cy), float)
-    z = np.where(r.surface.mask, np.nan, r.surface.z)
-    r.depth_m = r.ground_grid_m - z
-    r.contours = contours_layer(
-        spec.x_centres, spec.y_centres, elevation_m=z, depth_m=r.depth_m,
-        elevation_interval_m=st.contour_interval_m, depth_interval_m=st.contour_interval_m,
-        index_every=st.index_contour_every,
+    ground_grid_m = np.asarray(ground(cx, cy), float)
+    z = np.where(surface.mask, np.nan, surface.z)
+    depth_m = ground_grid_m - z
+    contours = contours_layer(
+        spec.x_centres, spec.y_centres, elevation_m=z, depth_m=depth_m,
+        elevation_interval_m=settings.contour_interval_m, depth_interval_m=settings.contour_interval_m,
+        index_every=settings.index_contour_every,
     )
     extent = max(spec.nx, spec.ny) * spec.cell_size_m
     spacing = max(spec.cell_size_m * 2, nice_step(extent / 5.0))
-    r.surface_dips = surface_dips(spec.x_centres, spec.y_centres, z, spacing, mask=~r.surface.mask)
+    sdips = surface_dips(spec.x_centres, spec.y_centres, z, spacing, mask=~surface.mask)
+    return ground_grid_m, depth_m, contours, sdips

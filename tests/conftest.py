@@ -10,6 +10,7 @@ import importlib
 import os
 import sys
 import tempfile
+from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
@@ -38,6 +39,33 @@ _ensure_package()
 SAMPLE = REPO / "sample_project"
 
 
+def pytest_collection_modifyitems(config, items):
+    """Two tiers: a test that needs the whole sample-project run is slow, whatever its file."""
+    for item in items:
+        if "sample_run" in getattr(item, "fixturenames", ()):
+            item.add_marker(pytest.mark.slow)
+
+
+def cli_env() -> dict:
+    """Environment in which a child Python imports the same ``rockhead`` as the tests."""
+    import rockhead
+
+    env = dict(os.environ)
+    parent = str(Path(rockhead.__path__[0]).parent)  # the link folder made above, or the install
+    env["PYTHONPATH"] = os.pathsep.join([parent, env.get("PYTHONPATH", "")])
+    return env
+
+
+def run_cli_process(*args, timeout_s: float = 600.0):
+    """``python -m rockhead.core.cli ARGS`` in a child process (the installed command's code)."""
+    import subprocess
+
+    return subprocess.run(
+        [sys.executable, "-m", "rockhead.core.cli", *map(str, args)],
+        capture_output=True, text=True, env=cli_env(), timeout=timeout_s,
+    )
+
+
 @pytest.fixture(scope="session")
 def repo_root():
     return REPO
@@ -46,6 +74,61 @@ def repo_root():
 @pytest.fixture(scope="session")
 def sample_dir():
     return SAMPLE
+
+
+@pytest.fixture(scope="session")
+def run_cli():
+    """The command line in a child process: ``run_cli("run", survey, "--out", folder)``."""
+    return run_cli_process
+
+
+@dataclass(frozen=True)
+class SampleRun:
+    """The sample project run once: where, what the command printed, and the result it wrote."""
+
+    survey_toml: Path  # a private copy of the sample survey's inputs
+    out: Path  # the output folder written by ``rockhead run``
+    exit_code: int
+    stdout: str
+    stderr: str
+    result: object  # the RunResult the command computed and wrote
+
+
+@pytest.fixture(scope="session")
+def sample_run(tmp_path_factory):
+    """``rockhead run`` once per session on a copy of the sample survey (a :class:`SampleRun`).
+
+    The command line's own ``main`` runs in this process, so the :class:`RunResult` it wrote
+    is kept (a spy around ``job.run``) besides its output folder and messages. Shared by every
+    test that needs the sample project's outputs or result (the core's end-to-end checks and
+    the QGIS comparisons); the surface method is the survey's own (``auto``). Tests using it
+    are marked slow. The command in a child process is tested on its own (test_bad_inputs,
+    test_pipeline).
+    """
+    import contextlib
+    import io
+    import shutil
+
+    from rockhead.core import cli, job
+
+    folder = tmp_path_factory.mktemp("sample_run")
+    for path in SAMPLE.iterdir():  # the inputs (no results folder), so the run reads what survey.toml names
+        if path.is_file():
+            shutil.copy2(path, folder / path.name)
+    out = folder / "results"
+    seen = []
+    real_run = job.run
+
+    def spy(*args, **kwargs):
+        seen.append(real_run(*args, **kwargs))
+        return seen[-1]
+
+    stdout, stderr = io.StringIO(), io.StringIO()
+    with pytest.MonkeyPatch.context() as mp, contextlib.redirect_stdout(stdout), contextlib.redirect_stderr(stderr):
+        mp.setattr(job, "run", spy)
+        code = cli.main(["run", str(folder / "survey.toml"), "--out", str(out)])
+    assert code == 0 and len(seen) == 1, stderr.getvalue()
+    return SampleRun(folder / "survey.toml", out, code, stdout.getvalue(), stderr.getvalue(), seen[0])
 
 
 @pytest.fixture

@@ -6,7 +6,6 @@ and returns plain results; :mod:`..products.handoff` writes them to files.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Optional
 
 import numpy as np
@@ -16,8 +15,9 @@ from ..crs import crs_label
 from ..formats.landxml import grid_tin, issue_date
 from ..progress import NullProgress
 from ..report.sheet import SheetInfo
+from ..results import DesignResult
 from ..workflow import surface_data
-from .design import DesignVolume, probability_above, rock_volume
+from .design import probability_above, rock_volume
 from .sections import Interface, Section, build_section
 
 __all__ = [
@@ -31,17 +31,6 @@ __all__ = [
     "surface_interfaces",
     "surface_tin",
 ]
-
-
-@dataclass(frozen=True)
-class DesignResult:
-    """Answers at one design level: the probability grid and the rock volume (or why not)."""
-
-    design_elevation_m: float
-    probability: Optional[np.ndarray]  # (ny, nx) P(reflector above the level); None without a sigma
-    volume: Optional[DesignVolume]
-    area: Optional[object]  # shapely polygon, None = the whole mapped area
-    note: str = ""  # why a part is missing, or what to know
 
 
 def surface_interfaces(result) -> list:
@@ -59,18 +48,18 @@ def surface_conditioning(result):
     thin-plate spline gives no variance to simulate from).
     """
     st = result.survey.settings
-    if result.method_used == "tomography":
-        tomo = result.tomography or {}
-        diag = tomo.get("kriging_diag") or {}
-        data = tomo.get("data")
-        if data is None:
+    tomo = result.tomography
+    if result.method_used == "tomography" and tomo is not None:
+        diag = tomo.diagnostics
+        data = tomo.kriged_data
+        if diag is None or data is None:
             return None, "the joint inversion's kriged data are not available"
         x, y, _, s = data
     else:
-        diag = result.kriged_diag or {}
+        diag = result.kriged_diagnostics
         bh = result.survey.boreholes
         x, y, _, s = surface_data(result.fit.points, st.reflector, bh if bh is not None and len(bh) else None)
-    vario = diag.get("variogram")
+    vario = diag.variogram
     if vario is None:
         return None, f"the {result.method_used} surface has no variogram (choose surface_method = \"kriging\")"
     return (np.asarray(x, float), np.asarray(y, float), np.asarray(s, float) ** 2, vario, st.neighbours), ""

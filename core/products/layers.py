@@ -8,10 +8,13 @@ the names are defined once, here.
 
 from __future__ import annotations
 
+from typing import Optional
+
 import numpy as np
 from shapely.geometry import LineString, Point
 
 from ..formats.layer import Layer
+from ..results import BoreholeCheck, CmpTable, DixTable, PointTable, TomographyOutcome
 from ..seismic.geometry import vector_azimuth_deg
 
 __all__ = [
@@ -72,7 +75,7 @@ def lines_layer(frames) -> Layer:
     )
 
 
-def shots_layer(gathers, fits, tomography=None) -> Layer:
+def shots_layer(gathers, fits, tomography: Optional[TomographyOutcome] = None) -> Layer:
     """Per-gather fit results at the shot positions (fixed fields first).
 
     With a joint inversion, ``site_velocity_flag`` marks gathers whose
@@ -81,9 +84,9 @@ def shots_layer(gathers, fits, tomography=None) -> Layer:
     """
     src = gathers.source_xyz_g
     g = len(fits)
-    if tomography and "curvature_flag" in tomography:
-        flag = np.asarray(tomography["curvature_flag"], bool)
-        note = np.where(flag, np.asarray(tomography["curvature_reason"], dtype=object), "")
+    if tomography is not None and tomography.curvature_flag is not None:
+        flag = np.asarray(tomography.curvature_flag, bool)
+        note = np.where(flag, np.asarray(tomography.curvature_reason, dtype=object), "")
     else:
         flag, note = np.zeros(g, bool), np.full(g, "", dtype=object)
     return Layer(
@@ -214,7 +217,7 @@ def misties_layer(misties) -> Layer:
     )
 
 
-def boreholes_layer(boreholes, check) -> Layer:
+def boreholes_layer(boreholes, check: BoreholeCheck) -> Layer:
     """Boreholes with the seismic-only surface's prediction and residual."""
     return Layer(
         _points(boreholes.x_m, boreholes.y_m),
@@ -223,33 +226,33 @@ def boreholes_layer(boreholes, check) -> Layer:
             "collar_z_m": boreholes.z_m,
             "depth_m": boreholes.depth_m,
             "elevation_m": boreholes.elevation_m,
-            "seismic_elevation_m": check["seismic_elevation_m"],
-            "seismic_sigma_m": check["seismic_sigma_m"],
-            "residual_m": check["residual_m"],
-            "standardised": check["standardised"],
+            "seismic_elevation_m": check.seismic_elevation_m,
+            "seismic_sigma_m": check.seismic_sigma_m,
+            "residual_m": check.residual_m,
+            "standardised": check.standardised,
         },
         "POINT",
         "Borehole check: borehole reflector elevation minus the seismic-only surface there",
     )
 
 
-def _point_columns_layer(columns, description) -> Layer:
-    """A point layer from a dict of columns holding ``x_m`` and ``y_m``."""
-    cols = dict(columns)
+def _point_table_layer(table: PointTable, description) -> Layer:
+    """A point layer from a table located by ``x_m``, ``y_m`` (its other columns are the fields)."""
+    cols = table.columns()
     return Layer(_points(cols.pop("x_m"), cols.pop("y_m")), cols, "POINT", description)
 
 
-def dix_layer(columns) -> Layer:
+def dix_layer(table: DixTable) -> Layer:
     """Dix (1955) interval velocities and thicknesses under shots with several reflectors."""
-    return _point_columns_layer(
-        columns, "Interval velocity and thickness between successive reflectors (Dix 1955) under each shot"
+    return _point_table_layer(
+        table, "Interval velocity and thickness between successive reflectors (Dix 1955) under each shot"
     )
 
 
-def cmp_layer(columns) -> Layer:
+def cmp_layer(table: CmpTable) -> Layer:
     """Common-midpoint fits (t0, NMO velocity) at the bin centres."""
-    return _point_columns_layer(
-        columns, "Common-midpoint fits t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971); depth_m = Vnmo t0 / 2 (small dip)"
+    return _point_table_layer(
+        table, "Common-midpoint fits t^2 = t0^2 + x^2/Vnmo^2 (Levin 1971); depth_m = Vnmo t0 / 2 (small dip)"
     )
 
 

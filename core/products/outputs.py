@@ -1,4 +1,4 @@
-"""Write a :class:`~.pipeline.RunResult` to its output folder.
+"""Write a :class:`~rockhead.core.results.RunResult` to its output folder.
 
 Every file is staged beside its target and renamed only when the whole set is
 written (:class:`~.atomic.OutputSet`): a run that fails or is cancelled half
@@ -17,6 +17,7 @@ from ..formats.dxf import write_contours_dxf
 from ..formats.gdalio import write_layers, write_raster
 from ..formats.tables import write_layer_csv
 from ..progress import check_cancel
+from ..results import RunResult
 from ..workflow import surface_data
 from . import layers as lay
 from .geopackage import layers_3d
@@ -27,7 +28,7 @@ from .styles import layer_styles, raster_styles, styles_table
 GPKG_NAME = "survey.gpkg"
 
 
-def result_layers(result, sections=None) -> dict:
+def result_layers(result: RunResult, sections=None) -> dict:
     """The GeoPackage layers of a run, in the order a GIS should list them."""
     fit = result.fit
     out = {
@@ -37,21 +38,17 @@ def result_layers(result, sections=None) -> dict:
         "reflector_points": lay.reflector_points_layer(fit.points),
         "reflection_points": lay.reflection_points_layer(fit.receiver_points, fit.fits),
     }
-    if result.dips is not None:
-        out["dip_measurements"] = lay.dips_layer(result.dips)
-    if result.surface_dips is not None:
-        out["surface_dips"] = lay.surface_dips_layer(result.surface_dips)
-    if result.misties is not None:
-        out["misties"] = lay.misties_layer(result.misties)
+    out["dip_measurements"] = lay.dips_layer(result.dips)
+    out["surface_dips"] = lay.surface_dips_layer(result.surface_dips)
+    out["misties"] = lay.misties_layer(result.misties)
     if result.borehole_check is not None:
         out["boreholes"] = lay.boreholes_layer(result.survey.boreholes, result.borehole_check)
     if result.cmp is not None:
         out["cmp_fits"] = lay.cmp_layer(result.cmp)
-    if result.dix is not None and len(result.dix["line"]):
+    if len(result.dix):
         out["dix_intervals"] = lay.dix_layer(result.dix)
-    if result.contours is not None:
-        out["contours"] = result.contours
-    cv = (result.seismic_diag or {}).get("cross_validation")
+    out["contours"] = result.contours
+    cv = result.seismic_diagnostics.cross_validation
     if cv is not None:
         x, y, _, _ = surface_data(result.fit.points, result.survey.settings.reflector)
         out["cross_validation"] = lay.cross_validation_layer(x, y, cv)
@@ -60,7 +57,7 @@ def result_layers(result, sections=None) -> dict:
     return out
 
 
-def run_info(result) -> list:
+def run_info(result: RunResult) -> list:
     """(key, value) pairs saying which method made which output, with the main numbers."""
     from .. import __version__
 
@@ -72,28 +69,27 @@ def run_info(result) -> list:
         ("reflector", s.reflector),
         ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
     ]
-    if result.surface is not None:
-        items += [
-            ("surface_method", result.method_used),
-            ("reflector_elevation.tif", f"{result.method_used} surface of the reflector (m)"),
-            ("reflector_depth.tif", f"ground ({result.ground.description_}) minus reflector_elevation.tif (m)"),
-            ("depth_sigma.tif", "kriging standard deviation of the surface (m), ground taken as exact"),
-            ("cell_size_m", result.spec.cell_size_m),
-            ("trend", s.trend),
-        ]
-        vm = (result.seismic_diag or {}).get("variogram")
-        if vm is not None:
-            items.append(("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m2, sill {vm.sill:.4g} m2, "
-                                       f"range {vm.range_m:.1f} m"))
-    tomo = result.tomography or {}
-    if "result" in tomo:
-        t = tomo["result"]
+    items += [
+        ("surface_method", result.method_used),
+        ("reflector_elevation.tif", f"{result.method_used} surface of the reflector (m)"),
+        ("reflector_depth.tif", f"ground ({result.ground.description_}) minus reflector_elevation.tif (m)"),
+        ("depth_sigma.tif", "kriging standard deviation of the surface (m), ground taken as exact"),
+        ("cell_size_m", result.spec.cell_size_m),
+        ("trend", s.trend),
+    ]
+    vm = result.seismic_diagnostics.variogram
+    if vm is not None:
+        items.append(("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m2, sill {vm.sill:.4g} m2, "
+                                   f"range {vm.range_m:.1f} m"))
+    tomo = result.tomography
+    if tomo is not None and tomo.inversion is not None:
+        t = tomo.inversion
         items.append(("joint_inversion_velocity_m_s", f"{t.velocity_m_s:.2f} +- {t.sigma_velocity_m_s:.2f}"))
-    elif "skipped" in tomo:
-        items.append(("joint_inversion", f"not run: {tomo['skipped']}"))
+    elif tomo is not None:
+        items.append(("joint_inversion", f"not run: {tomo.skipped_reason}"))
     if result.depth_ratio is not None:
         d = result.depth_ratio
-        items.append(("borehole_depth_ratio", f"{d['factor']:.4f} +- {d['sigma_factor']:.4f}"))
+        items.append(("borehole_depth_ratio", f"{d.factor:.4f} +- {d.sigma_factor:.4f}"))
     items.append(("calibrate_velocity", s.calibrate_velocity))
     items += handoff_run_info(result)
     items.append(("caution", "An interpretation with stated uncertainty; it does not replace borings. Check "
@@ -110,10 +106,8 @@ RASTER_DESCRIPTIONS = {
 }
 
 
-def result_rasters(result) -> dict:
+def result_rasters(result: RunResult) -> dict:
     """File name -> grid of the GeoTIFF outputs (on ``result.spec``, row 0 north)."""
-    if result.surface is None:
-        return {}
     s = result.surface
     z = np.where(s.mask, np.nan, s.z)
     std = np.where(s.mask, np.nan, s.std)
@@ -124,7 +118,7 @@ def result_rasters(result) -> dict:
     }
 
 
-def gather_qc_figures(result):
+def gather_qc_figures(result: RunResult):
     """Yield (gather index, file name, SVG bytes) of the QC figure of every gather."""
     from ..report.qc_svg import gather_svg
 
@@ -155,7 +149,7 @@ def _safe(text) -> str:
     return "".join(c if c.isalnum() or c in "-_" else "_" for c in str(text))
 
 
-def write_all(result, out_dir, progress) -> list:
+def write_all(result: RunResult, out_dir, progress) -> list:
     """Write every output; returns the list of files written.
 
     A system error while writing (disk full, permissions, a vanished folder)
@@ -177,7 +171,7 @@ def _write_all(result, out_dir, progress) -> list:
 
     out_dir.mkdir(parents=True, exist_ok=True)
     crs = result.survey.crs
-    sections = sections_step(result) if result.surface is not None else []
+    sections = sections_step(result)
     layers = result_layers(result, sections)
     spec = result.spec
     prov = provenance(result)
@@ -204,7 +198,7 @@ def _write_all(result, out_dir, progress) -> list:
             rasters[PROBABILITY_NAME] = result.design.probability
         for name, qml in raster_styles(rasters).items():  # QGIS reads a raster's default style beside it
             outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
-        if result.contours is not None and len(result.contours):
+        if len(result.contours):
             for kind in ("elevation", "depth"):
                 write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)
         check_cancel(progress)

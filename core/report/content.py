@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import __version__
+from ..results import RunResult
 from . import figures
 from .handoff_content import handoff_section
 from .html import Report
@@ -22,15 +23,14 @@ def _rms(values):
     return float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
 
 
-def build_report(result, layers, qc_figures, sections=None) -> str:
+def build_report(result: RunResult, layers, qc_figures, sections=None) -> str:
     """Render the report; ``qc_figures`` maps gather index -> (file name, SVG or PNG bytes)."""
     survey, fit = result.survey, result.fit
     rep = Report(f"Reflector map — {survey.name}")
     rep.caution()
     _summary(rep, result)
-    if result.surface is not None:
-        _map(rep, result)
-        _surface(rep, result)
+    _map(rep, result)
+    _surface(rep, result)
     _boreholes(rep, result)
     _dips(rep, result)
     _misties(rep, result)
@@ -64,32 +64,29 @@ def _summary(rep, r):
         ("picks rejected as mispicks",
          f"{int(f.picks_rejected.sum())} ({100 * f.picks_rejected.sum() / max(n_picks, 1):.1f} %)"),
     ]
-    ok = f.status == "ok"
-    if np.any(ok):
-        v = f.velocity_m_s[ok]
-        med = float(np.median(v))
-        items.append(("overburden velocity, gather fits (median ± 1.4826 MAD)",
-                      f"{med:.0f} ± {1.4826 * np.median(np.abs(v - med)):.0f} m/s"))
-    tomo = r.tomography or {}
-    if "result" in tomo:
-        res = tomo["result"]
+    site = r.site_velocity
+    if site.n_gathers:
+        items.append((f"overburden velocity, gather fits of reflector '{site.reflector}' (median ± 1.4826 MAD)",
+                      f"{site.velocity_m_s:.0f} ± {site.spread_m_s:.0f} m/s from {site.n_gathers} gathers"))
+    tomo = r.tomography
+    if tomo is not None and tomo.inversion is not None:
+        res = tomo.inversion
         items.append(("overburden velocity, joint inversion",
                       f"{res.velocity_m_s:.1f} ± {res.sigma_velocity_m_s:.1f} m/s"))
-    if r.surface is not None:
-        items += [
-            ("surface method", r.method_used),
-            ("grid", f"{r.spec.nx} × {r.spec.ny} cells of {r.spec.cell_size_m:g} m; "
-                     f"{int(np.sum(~r.surface.mask))} estimated, the rest farther than the masking distance from data"),
-            ("3D relocation", f"{len(r.relocation_history_m)} iterations, largest cell change per iteration (m): "
-                              + ", ".join(f"{c:.3f}" for c in r.relocation_history_m)),
-        ]
-        depth = r.depth_m[np.isfinite(r.depth_m)]
-        if depth.size:
-            items.append(("depth to reflector (mapped cells)", f"{depth.min():.1f} to {depth.max():.1f} m"))
+    items += [
+        ("surface method", r.method_used),
+        ("grid", f"{r.spec.nx} × {r.spec.ny} cells of {r.spec.cell_size_m:g} m; "
+                 f"{int(np.sum(~r.surface.mask))} estimated, the rest farther than the masking distance from data"),
+        ("3D relocation", f"{len(r.relocation_history_m)} iterations, largest cell change per iteration (m): "
+                          + ", ".join(f"{c:.3f}" for c in r.relocation_history_m)),
+    ]
+    depth = r.depth_m[np.isfinite(r.depth_m)]
+    if depth.size:
+        items.append(("depth to reflector (mapped cells)", f"{depth.min():.1f} to {depth.max():.1f} m"))
     if r.depth_ratio is not None:
         d = r.depth_ratio
         items.append(("borehole / seismic depth ratio (velocity check)",
-                      f"{d['factor']:.3f} ± {d['sigma_factor']:.3f} from {d['n']} boreholes"))
+                      f"{d.factor:.3f} ± {d.sigma_factor:.3f} from {d.n} boreholes"))
     scale = _scale_note(r)
     if scale:
         items.append(("grid scale factor", scale))
@@ -117,7 +114,7 @@ def _map(rep, r):
     spec, s = r.spec, r.surface
     contours = []
     c = r.contours
-    if c is not None and len(c):
+    if len(c):
         kinds = np.asarray(c.fields["kind"])
         for geom, kind, idx, level in zip(c.geometries, kinds, c.fields["index"], c.fields["depth_m"]):
             if kind != "depth" or geom is None:
@@ -128,11 +125,11 @@ def _map(rep, r):
     lines = {name: np.column_stack([fr.x_m, fr.y_m]) for name, fr in r.fit.frames.items()}
     pts = r.fit.points
     dips = None
-    if r.dips is not None and len(r.dips):
+    if len(r.dips):
         ok = np.isfinite(r.dips.dip_deg)
         dips = (r.dips.x_m[ok], r.dips.y_m[ok], r.dips.strike_deg[ok], r.dips.dip_deg[ok])
     sd = r.surface_dips
-    sdips = None if sd is None else (sd.x_m, sd.y_m, sd.strike_deg, sd.dip_deg)
+    sdips = (sd.x_m, sd.y_m, sd.strike_deg, sd.dip_deg)
     bh = r.survey.boreholes
     bhs = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, list(bh.name))
     png = figures.map_figure(
@@ -148,41 +145,41 @@ def _map(rep, r):
 
 def _surface(rep, r):
     rep.heading("Surface")
-    diag = r.seismic_diag or {}
-    if diag.get("variogram") is not None:
-        vm = diag["variogram"]
+    diag = r.seismic_diagnostics
+    vm = diag.variogram
+    if vm is not None:
         rep.paragraph(
             f"Ordinary kriging with a {vm.model} variogram: nugget {vm.nugget:.3g} m², partial sill "
             f"{vm.sill:.3g} m², range {vm.range_m:.1f} m (fitted by weighted least squares to the experimental "
             "variogram, the mean measurement-error variance removed from the nugget), each point's "
             "measurement-error variance on the kriging diagonal, "
             f"{r.survey.settings.neighbours} nearest neighbours; cells farther than "
-            f"{diag.get('max_distance_m', float('nan')):.0f} m from any datum are left empty."
+            f"{diag.max_distance_m:.0f} m from any datum are left empty."
         )
-        trend = diag.get("trend")
-        if trend is not None and any(trend.coef[1:]):
+        trend = diag.trend
+        if any(trend.coef[1:]):
             b, c = trend.coef[1], trend.coef[2]
             rep.paragraph(
                 f"A regional plane was removed first and added back after kriging the residuals (linear drift): "
                 f"dip {np.degrees(np.arctan(np.hypot(b, c))):.2f}° toward "
                 f"{np.degrees(np.arctan2(-b, -c)) % 360:.0f}°. The variogram below is that of the residuals."
             )
-        scores = diag.get("variogram_scores") or {}
+        scores = diag.variogram_scores
         if len(scores) > 1:
             rep.paragraph(
                 "Variogram model chosen by leave-one-out mean log score (lower is better; Gneiting & Raftery "
-                "2007): " + ", ".join(f"{m} {v:.3f}" for m, v in scores.items()) + "."
+                "2007): " + ", ".join(f"{m} {v:.3f}" for m, v in scores) + "."
             )
-        ev = diag.get("experimental_variogram")
+        ev = diag.experimental_variogram
         if ev is not None:
             png = figures.variogram_figure(ev.lag_m, ev.semivariance, ev.n_pairs, vm,
                                            title="semivariogram of reflector elevations (after the trend)")
             rep.figure(png, "variogram")
-    elif diag.get("smoothing") is not None:
-        rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag['smoothing']:.3g}; no standard deviation.")
-    cv = diag.get("cross_validation")
+    elif diag.smoothing is not None:
+        rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag.smoothing:.3g}; no standard deviation.")
+    cv = diag.cross_validation
     if cv is not None:
-        kind = "5-fold" if diag.get("method") == "spline" else "Leave-one-out"
+        kind = "5-fold" if diag.method == "spline" else "Leave-one-out"
         rep.heading(f"{kind} cross-validation (seismic points only)", level=3)
         rep.items([
             ("mean error", f"{cv.mean_error:+.3f} m"),
@@ -193,9 +190,9 @@ def _surface(rep, r):
         ])
         rep.figure(figures.scatter_figure(cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)",
                                           "datum (m)", "cross-validation"), "cross-validation scatter")
-    tomo = r.tomography or {}
-    if "result" in tomo:
-        res = tomo["result"]
+    tomo = r.tomography
+    if tomo is not None and tomo.inversion is not None:
+        res = tomo.inversion
         rep.heading("Joint inversion of all picks and comparison with the gather-fit surface", level=3)
         f = r.fit.fits
         used = f.weight > 0
@@ -212,9 +209,9 @@ def _surface(rep, r):
             ("pick residual rms, per-gather plane fits", f"{_rms(f.residual_s[used]) * 1e3:.3f} ms"),
             ("pick residual rms, joint inversion", f"{_rms(res.residual_s[res.used & ~res.rejected]) * 1e3:.3f} ms"),
             ("picks rejected by the joint inversion", int(np.sum(res.rejected))),
-            ("gathers flagged by the site velocity check", int(np.sum(tomo["curvature_flag"]))),
+            ("gathers flagged by the site velocity check", int(np.sum(tomo.curvature_flag))),
         ])
-        diff = tomo["difference_m"]
+        diff = tomo.difference_m
         if np.any(np.isfinite(diff)):
             rep.paragraph(
                 f"Difference joint inversion − kriged gather fits: mean {np.nanmean(diff):+.2f} m, rms "
@@ -223,8 +220,8 @@ def _surface(rep, r):
             )
             rep.figure(figures.raster_figure(r.spec.x_centres, r.spec.y_centres, diff, "difference (m)",
                                              "joint inversion minus kriged gather fits"), "difference map")
-    elif "skipped" in tomo:
-        rep.paragraph(f"Joint inversion not run: {tomo['skipped']}.")
+    elif tomo is not None:
+        rep.paragraph(f"Joint inversion not run: {tomo.skipped_reason}.")
 
 
 def _boreholes(rep, r):
@@ -240,17 +237,15 @@ def _boreholes(rep, r):
         "borehole": [str(n) for n in bh.name],
         "depth_m": list(bh.depth_m),
         "elevation_m": list(bh.elevation_m),
-        "seismic_elevation_m": list(chk["seismic_elevation_m"]),
-        "seismic_sigma_m": list(chk["seismic_sigma_m"]),
-        "residual_m": list(chk["residual_m"]),
-        "residual/sigma": list(chk["standardised"]),
-    }, flag=list(np.abs(chk["standardised"]) > 2))
+        "seismic_elevation_m": list(chk.seismic_elevation_m),
+        "seismic_sigma_m": list(chk.seismic_sigma_m),
+        "residual_m": list(chk.residual_m),
+        "residual/sigma": list(chk.standardised),
+    }, flag=list(np.abs(chk.standardised) > 2))
 
 
 def _dips(rep, r):
     d = r.dips
-    if d is None:
-        return
     rep.heading("True dip and strike at line crossings")
     if not len(d):
         rep.paragraph("No place where gathers of two well-separated line directions meet: no true dip measured.")
@@ -276,8 +271,6 @@ def _dips(rep, r):
 
 def _misties(rep, r):
     m = r.misties
-    if m is None:
-        return
     rep.heading("Line misties")
     if not len(m):
         rep.paragraph("No line crossings with reflector points on both lines.")
@@ -340,8 +333,7 @@ def _lines(rep, r, layers, qc_figures):
     for line in sorted(fit.frames):
         frame = fit.frames[line]
         rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
-        if r.surface is not None:
-            rep.figure(_section_png(r, line), f"section of line {line}")
+        rep.figure(_section_png(r, line), f"section of line {line}")
         sel = np.flatnonzero(np.asarray(g.line) == line)
         rep.table({n: [shots.fields[n][i] for i in sel] for n in names},
                   caption=f"Gather fits of line {line}", flag=[f.status[i] != "ok" for i in sel])

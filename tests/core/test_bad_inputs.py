@@ -7,15 +7,14 @@
   start, so it pins file, line and field) and, for file errors, names the
   file's basename, the line and the field it carries.
 
-The command-line contract (exit code 2 and a one-line
-message on stderr for bad input) is checked on the same cases once core/cli.py
-exists.
+The command-line contract (README, Using it; DEVELOPERS.md, Errors and exit
+codes: exit code 2 and a one-line message on stderr for bad input) is checked
+on the same cases, in process and, for one case per kind of fault, in a child
+process (slow tier).
 """
 
 import os
 import re
-import subprocess
-import sys
 import warnings
 from pathlib import Path
 
@@ -142,7 +141,7 @@ def _cli_main():
 
 @pytest.mark.parametrize("case", BAD, ids=BAD)
 def test_cli_run_returns_2_with_one_line(case, tmp_path, capsys):
-    """The command line's contract: exit code 2 on bad input with a one-line message on stderr."""
+    """Exit code 2 on bad input with a one-line message on stderr (README, Using it)."""
     main = _cli_main()
     code = main(["run", str(CORPUS / case / "survey.toml"), "--out", str(tmp_path / "out")])
     err = capsys.readouterr().err
@@ -161,16 +160,6 @@ def test_cli_check_accepts_good_cases(case, capsys):
     assert "24 stations" in captured.out
 
 
-def _cli_env():
-    import rockhead
-
-    env = dict(os.environ)
-    # the folder that holds the package under its own name (conftest's link or site-packages)
-    parent = str(Path(rockhead.__file__).parent.parent)
-    env["PYTHONPATH"] = parent + os.pathsep + env.get("PYTHONPATH", "")
-    return env
-
-
 # one case per file and kind of fault: the process-level contract (exit status, no traceback)
 SUBPROCESS_CASES = [
     "toml_syntax_error",
@@ -182,24 +171,11 @@ SUBPROCESS_CASES = [
 ]
 
 
+@pytest.mark.slow  # a child process per case (interpreter and library start-up)
 @pytest.mark.parametrize("case", SUBPROCESS_CASES, ids=SUBPROCESS_CASES)
-def test_cli_process_exit_code_2(case, tmp_path):
+def test_cli_process_exit_code_2(case, tmp_path, run_cli):
     _cli_main()
-    proc = subprocess.run(
-        [
-            sys.executable,
-            "-m",
-            "rockhead.core.cli",
-            "run",
-            str(CORPUS / case / "survey.toml"),
-            "--out",
-            str(tmp_path / "out"),
-        ],
-        capture_output=True,
-        text=True,
-        env=_cli_env(),
-        timeout=120,
-    )
+    proc = run_cli("run", CORPUS / case / "survey.toml", "--out", tmp_path / "out", timeout_s=120)
     assert proc.returncode == 2, proc.stderr
     lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1, proc.stderr

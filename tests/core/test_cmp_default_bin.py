@@ -45,19 +45,19 @@ def test_default_bin_is_one_midpoint_spacing(cmp_run):
     # interval); 1e-4 m: the coordinates are written to 0.1 mm
     np.testing.assert_allclose(spacing, 1.0, atol=1e-4)
     c = cmp_step(survey, fit)
-    np.testing.assert_allclose(c["bin_m"].astype(float), 1.0, atol=1e-4)
+    np.testing.assert_allclose(c.bin_m.astype(float), 1.0, atol=1e-4)
 
 
 @pytest.mark.parametrize("line, beta_deg", [("D", 0.0), ("E", 50.0)], ids=["along-dip", "50-deg-off-dip"])
 def test_default_bins_give_levins_nmo_velocity(cmp_run, line, beta_deg):
     survey, fit = cmp_run
     c = cmp_step(survey, fit)
-    ok = (c["status"] == "ok") & (c["line"] == line)
+    ok = (c.status == "ok") & (c.line == line)
     assert ok.sum() > 100
     # Levin (1971): exact for a CMP gather over a plane. 1e-5 covers the station coordinates written
     # to 0.1 mm (midpoints of one bin up to 0.1 mm apart, offsets off by as much: ~1e-6 relative),
     # times to 1 ns and the fit's stopping rule; it is 200 times below the 0.2 % bias of long bins
-    np.testing.assert_allclose(c["nmo_velocity_m_s"][ok].astype(float), _levin_vnmo(beta_deg), rtol=1e-5)
+    np.testing.assert_allclose(c.nmo_velocity_m_s[ok].astype(float), _levin_vnmo(beta_deg), rtol=1e-5)
 
 
 def test_shot_spacing_bins_are_biased(cmp_run):

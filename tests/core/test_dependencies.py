@@ -15,6 +15,7 @@ import sys
 import textwrap
 from pathlib import Path
 
+import pytest
 import rockhead
 
 try:
@@ -94,6 +95,7 @@ def _run_cli(tmp_path, shim, *args):
                           text=True, env=env, timeout=600)
 
 
+@pytest.mark.slow  # the command line in a child process
 def test_without_gdal_the_command_line_says_what_to_install(tmp_path):
     shim = _hide(tmp_path, "osgeo", "rasterio", "pyogrio")
     out = tmp_path / "out"
@@ -105,6 +107,7 @@ def test_without_gdal_the_command_line_says_what_to_install(tmp_path):
     assert not out.exists() or not any(out.iterdir())  # said before any work, nothing written
 
 
+@pytest.mark.slow  # a whole computation in a child process
 def test_without_contourpy_the_command_line_names_it(tmp_path):
     shim = _hide(tmp_path, "contourpy")
     out = tmp_path / "out"
@@ -116,6 +119,7 @@ def test_without_contourpy_the_command_line_names_it(tmp_path):
     assert not [p for p in out.rglob("*") if p.is_file()]  # outputs are written as one set, or not at all
 
 
+@pytest.mark.slow  # a child process (the check behind the two above)
 def test_shim_really_hides(tmp_path):
     # the check above is only meaningful if the shim wins over the installed package
     shim = _hide(tmp_path, "contourpy")

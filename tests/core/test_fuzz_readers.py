@@ -17,6 +17,8 @@ from hypothesis import strategies as st
 from rockhead.core.errors import InputFileError, RockheadError
 from rockhead.core.survey import config, readers
 
+pytestmark = pytest.mark.slow  # slow tier: fuzzing: thousands of generated inputs per run
+
 # Together with the inversion's property test these generate over 10,000 cases per run
 # (6 reader tests x 1500 + the survey test x 800 + the fit's 600), in well under a minute.
 FUZZ = settings(

@@ -23,6 +23,8 @@ from scipy.interpolate import RegularGridInterpolator
 from scipy.stats import norm
 from test_pipeline_layers import _write_survey
 
+pytestmark = pytest.mark.slow  # slow tier: a whole job with the hand-off products (end to end)
+
 DESIGN_M = 69.0  # the mapped reflector lies near 69.2 m: the level cuts through its uncertainty
 AXIS = np.array([[499_960.0, 4_999_960.0], [500_040.0, 5_000_040.0]])  # a straight diagonal alignment
 NS = "{http://www.landxml.org/schema/LandXML-1.2}"

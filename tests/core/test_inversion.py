@@ -320,6 +320,7 @@ def test_dix_1955_from_fitted_short_spread_vrms():
     np.testing.assert_allclose(r.thickness_m, z, rtol=0.03)
 
 
+@pytest.mark.slow  # Monte Carlo of the Dix errors
 def test_dix_errors_match_monte_carlo(rng):
     # delta-method standard errors against a Monte Carlo of the same Dix relation (small errors,
     # 4000 draws: the sample SD is within ~2.2 % of the truth at 1 sigma, so 8 % is > 3 sigma)
@@ -618,6 +619,7 @@ def test_progress_reaches_100(rng):
     assert seen[-1] == 100 and seen == sorted(seen)
 
 
+@pytest.mark.slow  # fuzzing: 600 generated gathers
 @settings(max_examples=600, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     npick=st.integers(0, 40),

@@ -9,14 +9,12 @@ PyPI), not with the project's own writers.
 
 import importlib.util
 import json
-import os
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
-import rockhead
+
+pytestmark = pytest.mark.slow  # slow tier: the command line end to end on the sample project (child processes)
 
 REPO = Path(__file__).resolve().parents[2]
 SAMPLE = REPO / "sample_project"
@@ -27,29 +25,6 @@ def _truth_module():
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod
-
-
-def _env():
-    """Environment in which a child Python imports the same rockhead as the tests."""
-    env = dict(os.environ)
-    parent = str(Path(rockhead.__path__[0]).parent)  # the link folder made by conftest
-    env["PYTHONPATH"] = os.pathsep.join([parent, env.get("PYTHONPATH", "")])
-    return env
-
-
-def run_cli(*args):
-    return subprocess.run(
-        [sys.executable, "-m", "rockhead.core.cli", *map(str, args)],
-        capture_output=True, text=True, env=_env(), timeout=600,
-    )
-
-
-@pytest.fixture(scope="module")
-def sample_run(tmp_path_factory):
-    out = tmp_path_factory.mktemp("sample_out")
-    proc = run_cli("run", SAMPLE / "survey.toml", "--out", out)
-    assert proc.returncode == 0, proc.stderr
-    return out, proc
 
 
 def read_layer(path, name):
@@ -105,11 +80,11 @@ def read_raster(path):
 
 
 def test_cli_writes_every_fixed_output(sample_run):
-    out, proc = sample_run
+    out = sample_run.out
     for name in ["survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif", "report.html"]:
         assert (out / name).is_file() and (out / name).stat().st_size > 0, name
     assert not [p for p in out.rglob(".*") if p.is_file()], "temporary files left behind"
-    assert "gathers fitted" in proc.stdout
+    assert sample_run.exit_code == 0 and "gathers fitted" in sample_run.stdout
 
 
 FIXED_FIELDS = {
@@ -126,14 +101,14 @@ FIXED_FIELDS = {
 
 @pytest.mark.parametrize("layer", sorted(FIXED_FIELDS), ids=sorted(FIXED_FIELDS))
 def test_geopackage_layers_have_the_fixed_fields(sample_run, layer):
-    cols, _ = read_layer(sample_run[0] / "survey.gpkg", layer)
+    cols, _ = read_layer(sample_run.out / "survey.gpkg", layer)
     missing = [f for f in FIXED_FIELDS[layer] if f not in cols]
     assert not missing
 
 
 def test_shot_velocities_match_truth_within_stated_errors(sample_run):
     truth = json.loads((SAMPLE / "truth.json").read_text())
-    cols, _ = read_layer(sample_run[0] / "survey.gpkg", "shots")
+    cols, _ = read_layer(sample_run.out / "survey.gpkg", "shots")
     assert set(cols["status"]) == {"ok"}
     v = cols["velocity_m_s"].astype(float)
     se = cols["se_velocity_m_s"].astype(float)
@@ -147,7 +122,7 @@ def test_shot_velocities_match_truth_within_stated_errors(sample_run):
 
 def test_reflector_points_match_truth_within_stated_errors(sample_run):
     ms = _truth_module()
-    cols, xy = read_layer(sample_run[0] / "survey.gpkg", "reflector_points")
+    cols, xy = read_layer(sample_run.out / "survey.gpkg", "reflector_points")
     z_true = ms.reflector_elevation(xy[:, 0], xy[:, 1])
     k = (cols["elevation_m"].astype(float) - z_true) / cols["sigma_m"].astype(float)
     assert np.all(np.abs(k) < 3.5)  # same reasoning as the velocities (curvature under a few spreads)
@@ -162,8 +137,8 @@ def test_reflector_points_match_truth_within_stated_errors(sample_run):
 def test_surface_against_truth(sample_run):
     """Elevation raster RMS and 2-sigma coverage against the true bedrock."""
     ms = _truth_module()
-    z, x, y, wkt = read_raster(sample_run[0] / "reflector_elevation.tif")
-    s, xs, ys, _ = read_raster(sample_run[0] / "depth_sigma.tif")
+    z, x, y, wkt = read_raster(sample_run.out / "reflector_elevation.tif")
+    s, xs, ys, _ = read_raster(sample_run.out / "depth_sigma.tif")
     assert np.allclose(x, xs) and np.allclose(y, ys)
     import pyproj
 
@@ -188,7 +163,7 @@ def test_cross_validation_is_honest(sample_run):
     With ~50 data its sampling spread is about +-0.3 (chi-square with ~50 dof), so
     0.5 to 2 separates an honest sigma from one off by a factor of 1.4 or more.
     """
-    cols, _ = read_layer(sample_run[0] / "survey.gpkg", "cross_validation")
+    cols, _ = read_layer(sample_run.out / "survey.gpkg", "cross_validation")
     k = cols["standardised"].astype(float)
     assert 0.5 < np.mean(k**2) < 2.0
     assert abs(np.mean(cols["residual_m"].astype(float))) < 0.2  # unbiased within noise (0.3 m / sqrt(50))
@@ -196,8 +171,8 @@ def test_cross_validation_is_honest(sample_run):
 
 def test_depth_raster_is_ground_minus_elevation(sample_run):
     ms = _truth_module()
-    z, x, y, _ = read_raster(sample_run[0] / "reflector_elevation.tif")
-    d, *_ = read_raster(sample_run[0] / "reflector_depth.tif")
+    z, x, y, _ = read_raster(sample_run.out / "reflector_elevation.tif")
+    d, *_ = read_raster(sample_run.out / "reflector_depth.tif")
     X, Y = np.meshgrid(x, y)
     ok = np.isfinite(z) & np.isfinite(d)
     # the ground model interpolates stations; away from lines it departs from the true
@@ -212,14 +187,14 @@ def test_depth_raster_is_ground_minus_elevation(sample_run):
 
 
 def test_boreholes_agree_with_seismic_only_surface(sample_run):
-    cols, _ = read_layer(sample_run[0] / "survey.gpkg", "boreholes")
+    cols, _ = read_layer(sample_run.out / "survey.gpkg", "boreholes")
     assert len(cols["borehole"]) == 3
     assert np.all(np.abs(cols["standardised"].astype(float)) < 2.0)
 
 
 def test_true_dips_near_the_sample_dip(sample_run):
     ms = _truth_module()
-    cols, xy = read_layer(sample_run[0] / "survey.gpkg", "dip_measurements")
+    cols, xy = read_layer(sample_run.out / "survey.gpkg", "dip_measurements")
     ok = cols["status"] == "ok"
     assert ok.sum() >= 3  # the sample has five line crossings
     gx, gy = ms.reflector_gradient(xy[ok, 0], xy[ok, 1])
@@ -235,17 +210,17 @@ def test_true_dips_near_the_sample_dip(sample_run):
 
 
 def test_report_is_self_contained_with_cautions(sample_run):
-    html = (sample_run[0] / "report.html").read_text(encoding="utf-8")
+    html = (sample_run.out / "report.html").read_text(encoding="utf-8")
     assert "does not replace borings" in html
     assert "licensed professionals" in html
     assert "src=\"http" not in html and "src='http" not in html
     assert html.count("data:image/png;base64,") >= 4  # map, variogram, cross-validation, sections
     # one QC figure per gather, embedded and in qc/ (SVG)
-    n_qc = len(list((sample_run[0] / "qc").glob("gather_*.svg")))
+    n_qc = len(list((sample_run.out / "qc").glob("gather_*.svg")))
     assert n_qc == 56 and html.count("data:image/svg+xml;base64,") == n_qc
 
 
-def test_cli_bad_input_exits_2_with_one_line(tmp_path):
+def test_cli_bad_input_exits_2_with_one_line(tmp_path, run_cli):
     bad = tmp_path / "survey.toml"
     bad.write_text('[survey]\nname = "x"\ncrs = "EPSG:32633"\n[files]\nstations = "nope.csv"\npicks = "p.csv"\n')
     proc = run_cli("run", bad, "--out", tmp_path / "out")
@@ -255,7 +230,7 @@ def test_cli_bad_input_exits_2_with_one_line(tmp_path):
     assert "survey.toml" in lines[0] and "stations" in lines[0]
 
 
-def test_cli_check_reads_the_sample():
+def test_cli_check_reads_the_sample(run_cli):
     proc = run_cli("check", SAMPLE / "survey.toml")
     assert proc.returncode == 0, proc.stderr
     assert "2688 picks" in proc.stdout

@@ -12,6 +12,8 @@ from rockhead.core.seismic import forward
 from rockhead.core.survey.config import load_survey
 from rockhead.core.workflow import compute
 
+pytestmark = pytest.mark.slow  # slow tier: whole computations of synthetic surveys (end to end)
+
 THICKNESS_M = np.array([12.0, 18.0])
 VINT_M_S = np.array([1500.0, 2400.0])
 GROUND_M = 100.0
@@ -77,17 +79,51 @@ def test_deepest_reflector_is_mapped_by_default(two_layer_result):
 def test_dix_intervals_under_every_shot(two_layer_result):
     d = two_layer_result.dix
     n_shots = 2 * 7
-    assert len(d["line"]) == 2 * n_shots  # two layers under each shot
-    top = d["reflector_base"] == "top"
-    base = d["reflector_base"] == "rock"
+    assert len(d) == len(d.line) == 2 * n_shots  # two layers under each shot
+    top = d.reflector_base == "top"
+    base = d.reflector_base == "rock"
     # Dix 1955: interval velocity and thickness of a flat two-layer stack; the rms velocity
     # from a finite-spread hyperbola fit is biased high by non-hyperbolic moveout (x/z up to
     # 1.6 here), which Dix's differencing amplifies for the lower layer: 1 % and 5 %, 0.8 m
-    assert np.allclose(d["interval_velocity_m_s"][top].astype(float), VINT_M_S[0], rtol=0.01)
-    assert np.allclose(d["interval_velocity_m_s"][base].astype(float), VINT_M_S[1], rtol=0.05)
-    assert np.allclose(d["thickness_m"][top].astype(float), THICKNESS_M[0], atol=0.8)
-    assert np.allclose(d["depth_base_m"][base].astype(float), THICKNESS_M.sum(), atol=0.8)
-    assert set(d["status"]) == {"ok"}
+    assert np.allclose(d.interval_velocity_m_s[top].astype(float), VINT_M_S[0], rtol=0.01)
+    assert np.allclose(d.interval_velocity_m_s[base].astype(float), VINT_M_S[1], rtol=0.05)
+    assert np.allclose(d.thickness_m[top].astype(float), THICKNESS_M[0], atol=0.8)
+    assert np.allclose(d.depth_base_m[base].astype(float), THICKNESS_M.sum(), atol=0.8)
+    assert set(d.status) == {"ok"}
+
+
+def test_site_velocity_is_the_mapped_reflectors_in_the_report(two_layer_result):
+    """One overburden velocity, of the mapped reflector only, starts the joint inversion and is reported.
+
+    The other reflector's gather fits measure another rms velocity (Dix 1955): mixing them in
+    would put the report's value between the two layers' velocities.
+    """
+    import html
+
+    from rockhead.core.products.outputs import result_layers
+    from rockhead.core.report.content import build_report
+    from scipy.stats import median_abs_deviation
+
+    r = two_layer_result
+    f, g = r.fit.fits, r.fit.gathers
+    rock = (np.asarray(g.reflector) == "rock") & (f.status == "ok")
+    v = f.velocity_m_s[rock]
+    site = r.site_velocity
+    assert site.reflector == "rock" and site.n_gathers == int(rock.sum()) == 14
+    # reference: the median and scipy's normal-consistent MAD (1.4826 = 1/Phi^-1(3/4), Huber 1964);
+    # the project uses the 4-digit constant: relative difference 1.5e-6
+    assert site.velocity_m_s == pytest.approx(float(np.median(v)), rel=1e-12)
+    assert site.spread_m_s == pytest.approx(float(median_abs_deviation(v, scale="normal")), rel=1e-5, abs=1e-9)
+    # the deeper reflector's fit gives its rms velocity (Dix 1955), 1987 m/s here; the hyperbola
+    # fit over spreads up to 1.6 times the depth reads 1.3 % high (non-hyperbolic moveout): 3 %
+    _, vrms = forward.layered_t0_vrms(THICKNESS_M, VINT_M_S)
+    assert site.velocity_m_s == pytest.approx(vrms[-1], rel=0.03)
+    both = f.velocity_m_s[f.status == "ok"]
+    assert abs(float(np.median(both)) - site.velocity_m_s) > 100  # the old all-reflector value differs
+    text = build_report(r, result_layers(r), {})
+    label = html.escape("overburden velocity, gather fits of reflector 'rock' (median ± 1.4826 MAD)")
+    value = f"{site.velocity_m_s:.0f} ± {site.spread_m_s:.0f} m/s from 14 gathers"
+    assert label in text and value in text
 
 
 def test_named_reflector_is_mapped(tmp_path):
@@ -108,8 +144,9 @@ def test_velocity_calibration_to_boreholes(tmp_path):
     r = compute(load_survey(_write_survey(tmp_path, boreholes=True, calibrate=True)), method="kriging")
     t0, vrms = forward.layered_t0_vrms(THICKNESS_M, VINT_M_S)
     seismic_depth = vrms[-1] * t0[-1] / 2  # what the uncalibrated fits see (Dix 1955), +fit bias
-    assert r.depth_ratio["factor"] == pytest.approx(THICKNESS_M.sum() / seismic_depth, rel=0.02)
-    assert r.depth_ratio["sigma_factor"] < 0.01
+    assert r.depth_ratio is not None and r.depth_ratio.n == 3
+    assert r.depth_ratio.factor == pytest.approx(THICKNESS_M.sum() / seismic_depth, rel=0.02)
+    assert r.depth_ratio.sigma_factor < 0.01
     elev = r.surface.z[~r.surface.mask]
     assert np.allclose(elev, GROUND_M - THICKNESS_M.sum(), atol=0.15)
     assert any("calibration factor" in n for n in r.notes)
@@ -124,12 +161,13 @@ def test_cmp_velocity_analysis(tmp_path):
     path.write_text(path.read_text() + 'gather = "cmp"\ncmp_bin_m = 20.0\n')
     r = compute(load_survey(path), method="kriging")
     c = r.cmp
-    ok = (c["status"] == "ok") & (c["reflector"] == "top")
+    assert c is not None
+    ok = (c.status == "ok") & (c.reflector == "top")
     assert ok.sum() >= 10
     # flat first interface: Vnmo = V1 = 1500 m/s, t0 = 2 z1 / V1 = 16 ms (exact hyperbola)
-    assert np.allclose(c["nmo_velocity_m_s"][ok].astype(float), VINT_M_S[0], rtol=1e-3)
-    assert np.allclose(c["t0_ms"][ok].astype(float), 2e3 * THICKNESS_M[0] / VINT_M_S[0], rtol=1e-3)
-    assert np.allclose(c["depth_m"][ok].astype(float), THICKNESS_M[0], rtol=1e-3)
+    assert np.allclose(c.nmo_velocity_m_s[ok].astype(float), VINT_M_S[0], rtol=1e-3)
+    assert np.allclose(c.t0_ms[ok].astype(float), 2e3 * THICKNESS_M[0] / VINT_M_S[0], rtol=1e-3)
+    assert np.allclose(c.depth_m[ok].astype(float), THICKNESS_M[0], rtol=1e-3)
 
 
 def test_dem_gives_the_ground(tmp_path):

@@ -15,6 +15,8 @@ from rockhead.core.tomography import joint as tm
 from rockhead.core.workflow import compute
 from test_tomography import GRID, SIGMA_S, V_TRUE, ground, true_nodes, valley_lines
 
+pytestmark = pytest.mark.slow  # slow tier: a whole computation with the joint inversion (end to end)
+
 E0, N0 = 500_000.0, 5_000_000.0  # local site coordinates placed in UTM zone 33N
 
 
@@ -55,8 +57,9 @@ def _rms_against_truth(surface):
 def test_auto_chooses_the_joint_inversion_over_the_valley(valley_run):
     r = valley_run
     assert r.method_used == "tomography"
-    assert np.sum(r.tomography["curvature_flag"]) >= 3  # the gathers over the axis
-    res = r.tomography["result"]
+    assert r.tomography.ran and r.tomography.skipped_reason is None
+    assert np.sum(r.tomography.curvature_flag) >= 3  # the gathers over the axis
+    res = r.tomography.inversion
     # velocity: 0.5 % (issue requirement; Bishop et al. 1985 recover V jointly with the surface)
     assert res.velocity_m_s == pytest.approx(V_TRUE, rel=0.005)
 

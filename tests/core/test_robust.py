@@ -65,6 +65,7 @@ def test_huber_variance_inflation_closed_form(k):
     assert robust.variance_inflation("huber", k) == pytest.approx(e_psi2 / inside**2, rel=1e-3)
 
 
+@pytest.mark.slow  # Monte Carlo of the variance inflation
 @pytest.mark.parametrize("loss", NONLINEAR, ids=NONLINEAR)
 def test_variance_inflation_monte_carlo(loss):
     # the asymptotic variance of the M-estimate of a location: simulate it (common practice).

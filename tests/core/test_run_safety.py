@@ -14,6 +14,8 @@ import pytest
 from rockhead.core import errors, job
 from test_pipeline_layers import _write_survey  # a small two-layer survey made by the forward models
 
+pytestmark = pytest.mark.slow  # slow tier: whole runs with every output written (end to end)
+
 
 def _digest(folder: Path) -> dict:
     return {

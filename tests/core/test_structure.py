@@ -247,6 +247,7 @@ def test_cross_components_can_borrow_the_nearest_measurement():
     assert np.isnan(q_near).sum() == (~np.isin(dips.gather_measurement, np.flatnonzero(dips.ok))).sum() > 0
 
 
+@pytest.mark.slow  # Monte Carlo coverage of the stated errors
 def test_combine_errors_cover_the_truth_at_the_nominal_rate(rng):
     # 300 independent crossings (sites 3 km apart) with 0.25 ms Gaussian pick noise.
     # For a calibrated Gaussian estimator P(|err| <= 2 sigma) = 0.9545 and P(<= 1 sigma)

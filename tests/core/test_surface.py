@@ -174,6 +174,7 @@ def _gaussian_field(seed, n=400, vario=None, error_var=0.05):
     return x, y, z, e, vario
 
 
+@pytest.mark.slow  # statistics over simulated Gaussian fields
 @pytest.mark.parametrize("neighbours", [None, 32], ids=["global-dubrule", "local-32"])
 def test_cross_validation_statistics_on_a_gaussian_field(neighbours):
     # With the true model, leave-one-out standardised residuals have mean square 1 and

@@ -173,6 +173,7 @@ def test_planar_reflector_matches_image_source(given_start):
     assert np.allclose(p.point_xyz, forward.reflection_point(S, R, n_, d_), atol=1e-5)
 
 
+@pytest.mark.slow  # brute-force minimum over a fine grid of points
 def test_curved_reflector_matches_brute_force_minimum():
     # Fermat: the reflection time is the least value of (|S-P| + |P-R|)/V over
     # the surface. Brute force over a 0.25 m sampling of the same surface: the
@@ -239,6 +240,7 @@ def test_sensitivities_match_finite_differences():
 # --------------------------------------------------------------------------- inversion
 
 
+@pytest.mark.slow  # a whole joint inversion of the valley survey
 def test_valley_joint_inversion_recovers_truth(valley):
     data, res = valley
     z_true = true_nodes()
@@ -295,6 +297,7 @@ def _gather_set(data):
     )
 
 
+@pytest.mark.slow  # a whole joint inversion of the valley survey
 def test_per_gather_fits_are_biased_over_the_valley(valley):
     # The same picks fitted gather by gather with a plane under each spread
     # (core.inversion.fit_shot_gathers, exact image-source model): over the
@@ -328,6 +331,7 @@ def test_per_gather_fits_are_biased_over_the_valley(valley):
     assert flag[on_flank_line].mean() < 0.2
 
 
+@pytest.mark.slow  # two whole joint inversions
 def test_boreholes_pull_the_surface(valley):
     # Two boreholes in a gap between the lines and one on a line; near-exact
     # data (sigma 0.1 m): the surface must pass within that error of each
@@ -510,6 +514,7 @@ def test_gridspec_is_read_north_up():
     assert np.allclose(g.y_m[::-1], spec.y_centres)
 
 
+@pytest.mark.slow  # a whole joint inversion with a lateral velocity field
 def test_lateral_velocity_field():
     # A velocity rising 8 % from west to east (1800 (1 + 0.04 tanh((x-150)/60)) m/s)
     # over a dipping plane 30 m deep under 8 crossing lines. Times: straight legs

@@ -63,19 +63,13 @@ def sample_survey(tmp_path):
 
 
 @pytest.fixture(scope="session")
-def core_results(tmp_path_factory):
-    """The core pipeline run once on the sample survey (reference for the plugin's outputs)."""
-    from rockhead.core import job
+def core_results(sample_run):
+    """``(output folder, RunResult)`` of the core on the sample survey (reference for the plugin's outputs).
 
-    src = REPO / "sample_project"
-    dst = tmp_path_factory.mktemp("core-run")
-    for name in SAMPLE_INPUTS:
-        if (src / name).exists():
-            shutil.copy2(src / name, dst / name)
-    out = dst / "results"
-    # kriging: the surface method the plugin tests compare (tomography is the core's own test)
-    result = job.run(str(dst / "survey.toml"), str(out), method="kriging")
-    return out, result
+    The session's one command-line run of the sample project (``sample_run`` in
+    tests/conftest.py), with the survey's own surface method.
+    """
+    return sample_run.out, sample_run.result
 
 
 @pytest.fixture

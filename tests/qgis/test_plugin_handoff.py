@@ -14,8 +14,6 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 from qgis.core import QgsFeature, QgsGeometry, QgsPointXY, QgsVectorLayer
 from rockhead.core.formats.gdalio import read_raster
 from rockhead.core.handoff.steps import design_answers, section_along
-from rockhead.core.survey.config import load_survey
-from rockhead.core.workflow import compute
 
 POPPLER = shutil.which("pdftoppm") and shutil.which("pdftotext")
 AXIS = [(512300.0, 5455600.0), (512420.0, 5455620.0), (512480.0, 5455700.0)]  # crosses the sample site
@@ -28,14 +26,12 @@ def run(alg, params):
 
 
 @pytest.fixture(scope="module")
-def core_auto(tmp_path_factory):
-    """The core's compute on the sample survey with the survey's own settings (what the algorithms run)."""
-    from conftest import REPO, SAMPLE_INPUTS
+def core_auto(sample_run):
+    """The core on the sample survey with the survey's own settings (what the algorithms run).
 
-    dst = tmp_path_factory.mktemp("core-auto")
-    for name in SAMPLE_INPUTS:
-        shutil.copy2(REPO / "sample_project" / name, dst / name)
-    return dst / "survey.toml", compute(load_survey(dst / "survey.toml"))
+    ``(survey.toml, RunResult)`` of the session's one sample run (tests/conftest.py).
+    """
+    return sample_run.survey_toml, sample_run.result
 
 
 @pytest.mark.skipif(not POPPLER, reason="poppler-utils not installed")
