@@ -15,6 +15,8 @@ from rockhead.core.errors import RockheadWarning
 from rockhead.core.survey.config import load_survey
 from rockhead.core.workflow import compute
 
+pytestmark = pytest.mark.slow  # slow tier: whole computations of single-line surveys (end to end)
+
 SITE = PlaneSite(jitter_m=0.5, noise_ms=0.5, sigma_ms=0.5, seed=5, lines=[("A", (0.0, 0.0), 0.0, 97)])
 
 
@@ -47,7 +49,7 @@ def test_no_cross_line_dip_is_invented(one_line):
     assert len(r.relocation_history_m) == 0  # no relocation with a cross-line dip read off the surface
     assert np.all(r.fit.fits.cross_component[r.fit.fits.status == "ok"] == 0.0)
     # the trend slopes along the line only: its gradient is parallel to the line's axis
-    _, gx, gy = r.seismic_diag["trend"].coef
+    _, gx, gy = r.seismic_diagnostics.trend.coef
     ux, uy = r.corridor.unit
     assert abs(gx * uy - gy * ux) < 1e-12 and np.hypot(gx, gy) > 0.01
     assert abs(uy) > 0.999  # the line runs north
