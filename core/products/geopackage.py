@@ -24,6 +24,9 @@ contours             elevation contours: their level; depth contours: the
 
 Other layers (lines, sections, tables) stay 2D. The CSV tables and the report
 use the layers as computed (2D, every value a column).
+
+Every table also gets a QGIS layer-metadata record (:func:`qgis_layer_metadata`):
+title, abstract with the caution and the meaning of z, history.
 """
 
 from __future__ import annotations
@@ -33,10 +36,11 @@ from typing import Dict, Tuple
 import numpy as np
 
 from ..formats.layer import Layer
+from ..formats.qgis_gpkg import layer_metadata_xml
 from ..grid import bilinear
-from .provenance import VERTICAL_NOT_STATED
+from .provenance import CAUTION, VERTICAL_NOT_STATED, Provenance
 
-__all__ = ["Z_MEANING", "layers_3d"]
+__all__ = ["Z_MEANING", "layers_3d", "qgis_layer_metadata"]
 
 #: layer -> what the z of its geometries is
 Z_MEANING = {
@@ -148,3 +152,28 @@ def layers_3d(layers: Dict[str, Layer], result, vertical_label: str = VERTICAL_N
         if new is not layer:
             meta[name] = {"Z": f"{Z_MEANING[name]} (m, {vertical_label})"}
     return out, meta
+
+
+def qgis_layer_metadata(layers: Dict[str, Layer], prov: Provenance, z_metadata: Dict[str, Dict[str, str]]
+                        ) -> Dict[str, str]:
+    """QGIS layer metadata of every table (``{table: XML}``): title, abstract with the caution, history.
+
+    The abstract is the layer's description, what the z of its geometries is
+    (``z_metadata`` of :func:`layers_3d`) and the caution; the history says
+    which software made it from which survey, by which surface method, and on
+    which CRS and vertical datum. QGIS shows it in the layer's properties.
+    """
+    history = [f"Made by {prov.software} from the survey '{prov.survey}' (surface: {prov.method}; survey date: "
+               f"{prov.date}); coordinates {prov.crs}, elevations {prov.vertical_datum}."]
+    out = {}
+    for name, layer in layers.items():
+        abstract = layer.description or name.replace("_", " ")
+        if name in z_metadata:
+            abstract += f"\n\nGeometry z: {z_metadata[name]['Z']}."
+        out[name] = layer_metadata_xml(
+            identifier=f"{prov.survey}: {name}", parent=prov.survey,
+            title=f"{name.replace('_', ' ').capitalize()} - {prov.survey}",
+            abstract=f"{abstract}\n\nCAUTION: {CAUTION}", history=history, caution=CAUTION,
+            keywords=["geoscientificInformation"],
+        )
+    return out

@@ -14,13 +14,14 @@ import numpy as np
 from ..errors import OutputError
 from ..formats.atomic import OutputSet
 from ..formats.dxf import write_contours_dxf
-from ..formats.gdalio import write_layers, write_raster
+from ..formats.gdalio import gdal_timestamp, write_layers, write_raster
+from ..formats.qgis_gpkg import add_layer_metadata
 from ..formats.tables import write_layer_csv
 from ..progress import check_cancel
 from ..results import RunResult
 from ..workflow import surface_data
 from . import layers as lay
-from .geopackage import layers_3d
+from .geopackage import layers_3d, qgis_layer_metadata
 from .handoff import PROBABILITY_NAME, handoff_layers, handoff_run_info, write_handoff
 from .provenance import elevation_crs, provenance
 from .styles import layer_styles, raster_styles, styles_table
@@ -180,8 +181,11 @@ def _write_all(result, out_dir, progress) -> list:
     with OutputSet() as outputs:
         gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
         gpkg_layers["layer_styles"] = styles_table(layer_styles(layers), layers, stamp)
-        write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
-                     layer_metadata=layer_md, timestamp=prov.timestamp)
+        gpkg = write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
+                            layer_metadata=layer_md, timestamp=prov.timestamp)
+        # QGIS's own layer metadata (title, abstract with the caution, history), shown in each layer's properties
+        records = qgis_layer_metadata({k: v for k, v in gpkg_layers.items() if k != "layer_styles"}, prov, layer_md)
+        add_layer_metadata(gpkg, records, gdal_timestamp(prov.timestamp))
         (out_dir / "csv").mkdir(exist_ok=True)
         for name, layer in layers.items():
             write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
