@@ -39,6 +39,7 @@ __all__ = [
     "DesignResult",
     "DixTable",
     "FitStep",
+    "MapProducts",
     "PointTable",
     "RunResult",
     "SiteVelocity",
@@ -359,6 +360,33 @@ class CmpTable(PointTable):
 
 
 @dataclass(frozen=True)
+class MapProducts:
+    """What the final surface gives on the grid besides its elevation (see :func:`~.workflow.products_step`).
+
+    Attributes
+    ----------
+    ground_grid_m, ground_sigma_m : ndarray (ny, nx)
+        Ground elevation and its standard deviation (m; NaN where unknown).
+    ground_buffer_m : float
+        How far beyond the stations' outline depth is given (m).
+    depth_m, depth_sigma_m : ndarray (ny, nx)
+        Depth below ground and its standard deviation (m; NaN where not given).
+    contours : Layer
+        Elevation and depth contours.
+    surface_dips : SurfaceDips
+        Dip and strike read off the surface.
+    """
+
+    ground_grid_m: np.ndarray
+    ground_sigma_m: np.ndarray
+    ground_buffer_m: float
+    depth_m: np.ndarray
+    depth_sigma_m: np.ndarray
+    contours: Layer
+    surface_dips: SurfaceDips
+
+
+@dataclass(frozen=True)
 class RunResult:
     """Everything :func:`~.workflow.compute` found; :func:`~.job.write_outputs` turns it into files.
 
@@ -412,6 +440,12 @@ class RunResult:
     corridor : LineCorridor or None
         The corridor mapped along a single straight line (its cross-line dip
         unknown); None when lines cross.
+    ground_sigma_m, depth_sigma_m : ndarray (ny, nx) or None
+        Standard deviation of the ground (0 on a DEM or inside the stations'
+        outline, growing beyond it, NaN where the ground is unknown) and of
+        the depth (surface and ground combined; NaN where no depth is given) (m).
+    ground_buffer_m : float or None
+        How far beyond the stations' outline depth is given (m).
     notes : tuple of str
         What the run decided and why (one sentence each).
     outputs : tuple of Path
@@ -443,6 +477,9 @@ class RunResult:
     cmp: Optional[CmpTable] = None
     design: Optional[DesignResult] = None
     corridor: Optional[LineCorridor] = None
+    ground_sigma_m: Optional[np.ndarray] = None
+    depth_sigma_m: Optional[np.ndarray] = None
+    ground_buffer_m: Optional[float] = None
     notes: Tuple[str, ...] = ()
     outputs: Tuple[Path, ...] = ()
 

@@ -31,6 +31,7 @@ from .results import (
     DepthRatio,
     DixTable,
     FitStep,
+    MapProducts,
     RunResult,
     SiteVelocity,
     SurfaceDiagnostics,
@@ -481,7 +482,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
                 f"scale of a spread): the surface is the {interp} of the gather fits; the joint inversion is "
                 "reported as a cross-check"
             )
-    ground_grid_m, depth_m, contours, sdips = products_step(spec, surface, ground, settings)
+    maps = products_step(spec, surface, ground, settings, fit.points)
     progress.set_progress(100)
     return RunResult(
         survey=survey,
@@ -497,10 +498,13 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
         kriged_diagnostics=kriged_diag,
         surface=surface,
         method_used=method_used,
-        ground_grid_m=ground_grid_m,
-        depth_m=depth_m,
-        contours=contours,
-        surface_dips=sdips,
+        ground_grid_m=maps.ground_grid_m,
+        depth_m=maps.depth_m,
+        contours=maps.contours,
+        surface_dips=maps.surface_dips,
+        ground_sigma_m=maps.ground_sigma_m,
+        depth_sigma_m=maps.depth_sigma_m,
+        ground_buffer_m=maps.ground_buffer_m,
         dix=dix,
         relocation_history_m=history,
         borehole_check=check,
@@ -673,17 +677,35 @@ def calibrate_fit(fit: FitStep, factor: float, ground) -> FitStep:
                    receiver_points=pts.select(pts.kind == "receiver"))
 
 
-def products_step(spec: GridSpec, surface: SurfaceGrid, ground, settings):
-    """Depth below ground, contours and surface dip symbols of the final surface.
+def ground_buffer(settings, points) -> float:
+    """How far beyond the stations depth is given (m): ``ground_buffer_m``, default half the median depth.
 
-    Returns ``(ground_grid_m, depth_m, contours, surface_dips)``: the ground
-    elevation and the depth below it on ``spec`` (m), the elevation and
-    depth contours (a Layer) and the dip symbols read off the surface.
+    The median is over the ok points of the mapped reflector; 0 when none has a depth.
+    """
+    if settings.ground_buffer_m is not None:
+        return float(settings.ground_buffer_m)
+    ok = (points.status == "ok") & (np.asarray(points.reflector).astype(str) == str(settings.reflector))
+    d = points.depth_m[ok]
+    d = d[np.isfinite(d) & (d > 0)]
+    return 0.5 * float(np.median(d)) if len(d) else 0.0
+
+
+def products_step(spec: GridSpec, surface: SurfaceGrid, ground, settings, points=None) -> MapProducts:
+    """Depth below ground, its sigma, contours and surface dip symbols of the final surface.
+
+    Depth is given only where the ground is known (:meth:`GroundModel.sigma_m`):
+    on a DEM, or within the stations' outline plus a buffer (:func:`ground_buffer`
+    of the reflector ``points``; none without them), where the flat extension
+    of the stations' ground carries a standard deviation growing with the
+    distance; the depth sigma combines it with the surface's.
     """
     cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
     ground_grid_m = np.asarray(ground(cx, cy), float)
+    buffer_m = ground_buffer(settings, points) if points is not None else float(settings.ground_buffer_m or 0.0)
+    ground_sigma_m = np.asarray(ground.sigma_m(cx, cy, buffer_m), float)
     z = np.where(surface.mask, np.nan, surface.z)
-    depth_m = ground_grid_m - z
+    depth_m = np.where(np.isfinite(ground_sigma_m), ground_grid_m - z, np.nan)
+    depth_sigma_m = np.where(np.isfinite(depth_m), np.hypot(surface.std, ground_sigma_m), np.nan)
     contours = contours_layer(
         spec.x_centres, spec.y_centres, elevation_m=z, depth_m=depth_m,
         elevation_interval_m=settings.contour_interval_m, depth_interval_m=settings.contour_interval_m,
@@ -692,4 +714,5 @@ def products_step(spec: GridSpec, surface: SurfaceGrid, ground, settings):
     extent = max(spec.nx, spec.ny) * spec.cell_size_m
     spacing = max(spec.cell_size_m * 2, nice_step(extent / 5.0))
     sdips = surface_dips(spec.x_centres, spec.y_centres, z, spacing, mask=~surface.mask)
-    return ground_grid_m, depth_m, contours, sdips
+    return MapProducts(ground_grid_m=ground_grid_m, ground_sigma_m=ground_sigma_m, ground_buffer_m=buffer_m,
+                       depth_m=depth_m, depth_sigma_m=depth_sigma_m, contours=contours, surface_dips=sdips)

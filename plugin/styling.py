@@ -177,6 +177,7 @@ RASTER_LAYERS = (
     ("reflector_depth.tif", "Reflector depth below ground", "Depth", True),
     ("reflector_elevation.tif", "Reflector elevation", "Elevation", True),
     ("depth_sigma.tif", "Depth standard deviation", "Uncertainty", True),
+    ("elevation_sigma.tif", "Elevation standard deviation", "Uncertainty", False),
     ("probability_above_design.tif", "Probability of rock above the design level", "Uncertainty", True),
 )
 #: subgroup -> visible (only the depth map shows at first)

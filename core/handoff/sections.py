@@ -11,7 +11,8 @@ alignment looking toward increasing chainage (common practice in road and
 rail design).
 
 Depth = ground - reflector elevation (positive down); sigma is the surface's
-standard deviation, the ground taken as exact (as in ``depth_sigma.tif``).
+standard deviation, the ground taken as exact (``depth_sigma.tif`` adds the
+ground's standard deviation beyond the stations).
 """
 
 from __future__ import annotations

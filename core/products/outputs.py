@@ -70,11 +70,17 @@ def run_info(result: RunResult) -> list:
         ("reflector", s.reflector),
         ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
     ]
+    buffer = result.ground_buffer_m
+    extent = ("depth given where the DEM has values" if result.ground.source_ != "stations" else
+              f"depth given up to {buffer:.1f} m beyond the stations' outline" if buffer is not None else "")
     items += [
         ("surface_method", result.method_used),
         ("reflector_elevation.tif", f"{result.method_used} surface of the reflector (m)"),
         ("reflector_depth.tif", f"ground ({result.ground.description_}) minus reflector_elevation.tif (m)"),
-        ("depth_sigma.tif", "kriging standard deviation of the surface (m), ground taken as exact"),
+        ("depth_sigma.tif", "standard deviation of the depth (m): the surface's, and beyond the stations the "
+                            "ground's (distance x steepest station slope)"),
+        ("elevation_sigma.tif", f"standard deviation of the {result.method_used} surface (m)"),
+        ("ground_buffer_m", extent),
         ("cell_size_m", result.spec.cell_size_m),
         ("trend", s.trend),
     ]
@@ -103,7 +109,8 @@ ELEVATION_NAME = "reflector_elevation.tif"
 RASTER_DESCRIPTIONS = {
     ELEVATION_NAME: "reflector elevation (m, up positive)",
     "reflector_depth.tif": "reflector depth below ground (m, positive down)",
-    "depth_sigma.tif": "standard deviation of the reflector surface (m)",
+    "depth_sigma.tif": "standard deviation of the reflector depth (m)",
+    "elevation_sigma.tif": "standard deviation of the reflector elevation (m)",
 }
 
 
@@ -115,7 +122,8 @@ def result_rasters(result: RunResult) -> dict:
     return {
         "reflector_elevation.tif": z,
         "reflector_depth.tif": result.depth_m,
-        "depth_sigma.tif": std,
+        "depth_sigma.tif": result.depth_sigma_m if result.depth_sigma_m is not None else std,
+        "elevation_sigma.tif": std,
     }
 
 

@@ -533,6 +533,7 @@ RASTER_STYLES = {
     "reflector_depth.tif": (colours.DEPTH_RAMP, " m", "", 1, None),
     "reflector_elevation.tif": (colours.ELEVATION_RAMP, " m", "", 1, None),
     "depth_sigma.tif": (colours.SIGMA_RAMP, " m", "±", 2, None),
+    "elevation_sigma.tif": (colours.SIGMA_RAMP, " m", "±", 2, None),
     "probability_above_design.tif": (colours.PROBABILITY_RAMP, "", "P = ", 1, (0.0, 1.0)),
 }
 

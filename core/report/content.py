@@ -83,6 +83,13 @@ def _summary(rep, r):
     depth = r.depth_m[np.isfinite(r.depth_m)]
     if depth.size:
         items.append(("depth to reflector (mapped cells)", f"{depth.min():.1f} to {depth.max():.1f} m"))
+    if r.ground.source_ == "stations" and r.ground_buffer_m is not None:
+        items.append((
+            "where depth is given",
+            f"inside the stations' outline and up to {r.ground_buffer_m:.1f} m beyond it, where the ground "
+            f"(extended flat) carries a sigma of the distance × {100 * r.ground.slope_bound_:.1f} % (the steepest "
+            "slope between the stations); farther out the ground, and so the depth, is unknown",
+        ))
     if r.depth_ratio is not None:
         d = r.depth_ratio
         items.append(("borehole / seismic depth ratio (velocity check)",

@@ -15,11 +15,21 @@ From a DEM
 From stations
     Linear interpolation on the Delaunay triangulation of the stations inside
     their convex hull (scipy's ``LinearNDInterpolator``; exact at the stations
-    and for a planar ground) and the elevation of the nearest station outside
-    it (``NearestNDInterpolator``): a flat extension, never an extrapolated
-    slope. Stations on one straight line (a single seismic line) are
-    interpolated along the line and extended flat across and beyond it.
-    Stations at the same position are averaged.
+    and for a planar ground) and, outside it, the elevation of the nearest
+    point of the hull's outline (linear between the outline's two stations):
+    a flat extension, never an extrapolated slope, continuous at the outline.
+    Stations on one straight line (a single seismic line) are interpolated
+    along the line and extended flat across and beyond it. Stations at the
+    same position are averaged.
+
+Where the ground is known (:meth:`GroundModel.sigma_m`)
+    A DEM is taken as exact where it has a value. Stations give the ground
+    inside their convex hull (their line, for one straight line); outside it
+    the flat extension is off by up to the distance times the ground's slope,
+    so the ground there carries a standard deviation of the distance beyond
+    the hull times the steepest slope measured between the stations (a
+    stated assumption: the ground beyond is no steeper), and beyond a buffer
+    the ground, and so the depth, is unknown (NaN).
 """
 
 from __future__ import annotations
@@ -125,6 +135,8 @@ class GroundModel:
         self.description_ = description
         self._extent = extent  # (xmin, xmax, ymin, ymax) in the sampler's CRS, DEM only
         self._to_dem: Optional[pyproj.Transformer] = None
+        self._outside: Optional[Callable[[np.ndarray, np.ndarray], np.ndarray]] = None  # stations only
+        self.slope_bound_ = 0.0
 
     # ---------------------------------------------------------------- DEM
     @classmethod
@@ -282,7 +294,9 @@ class GroundModel:
         note = f"{n} station positions"
         if n == 1:
             z0 = float(zs[0])
-            return cls(lambda px, py: np.full(px.shape, z0), "stations", note + " (flat)")
+            model = cls(lambda px, py: np.full(px.shape, z0), "stations", note + " (flat)")
+            model._outside = lambda px, py: np.hypot(px - xy[0, 0], py - xy[0, 1])
+            return model
         centre = xy.mean(axis=0)
         _, s, vt = np.linalg.svd(xy - centre, full_matrices=False)
         # one straight line of stations: interpolate along it, flat across and beyond it
@@ -295,23 +309,43 @@ class GroundModel:
             tq = (px - centre[0]) * u[0] + (py - centre[1]) * u[1]
             return np.interp(tq, t, zline)
 
+        def on_line():
+            model = cls(along, "stations", note + " on one straight line")
+            ends = centre + np.outer([t[0], t[-1]], u)
+            model._outside = lambda px, py: _segment_distance(px, py, ends[0], ends[1])
+            dt = np.diff(t)
+            keep = dt > 1e-6
+            model.slope_bound_ = float(np.max(np.abs(np.diff(zline))[keep] / dt[keep])) if keep.any() else 0.0
+            return model
+
         if n == 2 or s[1] <= 1e-9 * s[0]:
-            return cls(along, "stations", note + " on one straight line")
+            return on_line()
         try:
             linear = _LinearTin(xy - centre, zs)
         except QhullError:  # nearly collinear stations that pass the test above
-            return cls(along, "stations", note + " on one straight line")
+            return on_line()
         nearest = cKDTree(xy - centre)
+        hull = _Hull(xy)
 
         def sample(px, py):
             q = np.column_stack([px.ravel() - centre[0], py.ravel() - centre[1]])
             z = linear(q)
             out = ~np.isfinite(z)
             if np.any(out):
-                z[out] = zs[nearest.query(q[out])[1]]
+                _, bx, by = hull.nearest(px.ravel()[out], py.ravel()[out])
+                # the triangulation's value at the outline's nearest point (on an edge: the walk's
+                # tolerance takes it in; should rounding leave it out, the nearest station's value)
+                zb = linear(np.column_stack([bx - centre[0], by - centre[1]]))
+                miss = ~np.isfinite(zb)
+                if np.any(miss):
+                    zb[miss] = zs[nearest.query(q[out][miss])[1]]
+                z[out] = zb
             return z.reshape(px.shape)
 
-        return cls(sample, "stations", note)
+        model = cls(sample, "stations", note)
+        model._outside = hull.distance
+        model.slope_bound_ = _steepest_slope(xy, zs, nearest)
+        return model
 
     # ------------------------------------------------------------ queries
     def ground(self, x_m: ArrayLike, y_m: ArrayLike) -> np.ndarray:
@@ -334,6 +368,55 @@ class GroundModel:
         return np.asarray(self._sampler(px, py), dtype=float)
 
     __call__ = ground
+
+    def outside_distance_m(self, x_m: ArrayLike, y_m: ArrayLike) -> np.ndarray:
+        """Distance (m) of points beyond the ground's data: 0 on a DEM's cells or inside the stations' hull.
+
+        Parameters
+        ----------
+        x_m, y_m : float or array_like
+            Easting and northing (m), broadcast together.
+
+        Returns
+        -------
+        ndarray
+            0 where the ground is data; for stations, the distance to their
+            convex hull (to their line, for one straight line); inf off a DEM.
+        """
+        px, py = np.broadcast_arrays(np.asarray(x_m, dtype=float), np.asarray(y_m, dtype=float))
+        if self._outside is None:
+            return np.where(np.isfinite(self.ground(px, py)), 0.0, np.inf)
+        return np.asarray(self._outside(px, py), dtype=float)
+
+    def sigma_m(self, x_m: ArrayLike, y_m: ArrayLike, buffer_m: float) -> np.ndarray:
+        """Standard deviation (m) of the ground elevation, NaN where the ground is unknown.
+
+        0 on a DEM's cells and inside the stations' hull; within ``buffer_m``
+        beyond the hull the distance times :attr:`slope_bound_` (the flat
+        extension's largest error if the ground beyond is no steeper than
+        the steepest slope between the stations); NaN farther out and off a
+        DEM.
+
+        Parameters
+        ----------
+        x_m, y_m : float or array_like
+            Easting and northing (m), broadcast together.
+        buffer_m : float
+            How far beyond the stations the ground is extended (m, >= 0).
+
+        Returns
+        -------
+        ndarray
+            Ground standard deviation (m), NaN where unknown.
+
+        Examples
+        --------
+        >>> g = GroundModel.from_stations([0, 10, 0, 10], [0, 0, 10, 10], [0, 1, 0, 1])
+        >>> g.sigma_m([5.0, 14.0, 30.0], [5.0, 5.0, 5.0], 10.0).tolist()
+        [0.0, 0.4, nan]
+        """
+        d = self.outside_distance_m(x_m, y_m)
+        return np.where(d <= buffer_m, d * self.slope_bound_, np.nan)
 
     def check_covers(self, x_m: ArrayLike, y_m: ArrayLike, what: str = "points") -> None:
         """Check that every point has a ground elevation.
@@ -364,3 +447,76 @@ class GroundModel:
     def __repr__(self) -> str:
         """Return the source and description."""
         return f"GroundModel({self.source_}: {self.description_})"
+
+
+def _segment_distance(px: np.ndarray, py: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Distance (m) of points from the segment a-b."""
+    ab = b - a
+    length2 = float(ab @ ab)
+    t = ((px - a[0]) * ab[0] + (py - a[1]) * ab[1]) / length2 if length2 > 0 else np.zeros(np.shape(px))
+    t = np.clip(t, 0.0, 1.0)
+    return np.hypot(px - a[0] - t * ab[0], py - a[1] - t * ab[1])
+
+
+class _Hull:
+    """The stations' convex hull: distance to it and the nearest point of its outline."""
+
+    def __init__(self, xy: np.ndarray):
+        from scipy.spatial import ConvexHull
+
+        hull = ConvexHull(xy)
+        self.eq = hull.equations  # outward normals: n . p + offset <= 0 inside
+        self.a = xy[hull.vertices]
+        self.b = np.roll(self.a, -1, axis=0)
+
+    def nearest(self, px: np.ndarray, py: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Distance (m) to the outline and the nearest point of it (x, y in m), per point."""
+        x = np.asarray(px, float).ravel()
+        y = np.asarray(py, float).ravel()
+        ab = self.b - self.a  # (k, 2)
+        length2 = np.maximum(np.sum(ab * ab, axis=1), 1e-300)
+        t = ((x[:, None] - self.a[None, :, 0]) * ab[None, :, 0] + (y[:, None] - self.a[None, :, 1]) * ab[None, :, 1])
+        t = np.clip(t / length2[None, :], 0.0, 1.0)
+        d = np.hypot(x[:, None] - self.a[None, :, 0] - t * ab[None, :, 0],
+                     y[:, None] - self.a[None, :, 1] - t * ab[None, :, 1])
+        k = np.argmin(d, axis=1)
+        rows = np.arange(len(x))
+        tk = t[rows, k]
+        return d[rows, k], self.a[k, 0] + tk * ab[k, 0], self.a[k, 1] + tk * ab[k, 1]
+
+    def distance(self, px: np.ndarray, py: np.ndarray) -> np.ndarray:
+        """Distance (m) to the hull, 0 inside (shape of the inputs)."""
+        x = np.asarray(px, float)
+        y = np.asarray(py, float)
+        fx, fy = x.ravel(), y.ravel()
+        out = np.max(fx[:, None] * self.eq[None, :, 0] + fy[:, None] * self.eq[None, :, 1] + self.eq[None, :, 2],
+                     axis=1)
+        d = np.zeros(fx.shape)
+        far = out > 0
+        if far.any():
+            d[far] = self.nearest(fx[far], fy[far])[0]
+        return d.reshape(x.shape)
+
+
+def _steepest_slope(xy: np.ndarray, z: np.ndarray, tree, k: int = 12) -> float:
+    """Steepest ground slope (m/m) of planes fitted to each station's k nearest stations.
+
+    Neighbourhoods spread along one direction only (a line's stations: second
+    singular value under a quarter of the first) give their slope along it.
+    """
+    k = min(k, len(xy))
+    _, idx = tree.query(xy - xy.mean(axis=0), k=k)
+    P = xy[idx] - xy[idx].mean(axis=1, keepdims=True)  # (n, k, 2)
+    dz = z[idx] - z[idx].mean(axis=1, keepdims=True)
+    _, sv, vt = np.linalg.svd(P, full_matrices=False)
+    planar = sv[:, 1] > 0.25 * sv[:, 0]
+    slope = np.zeros(len(xy))
+    if planar.any():
+        A = P[planar]
+        g = np.linalg.solve(np.einsum("nki,nkj->nij", A, A), np.einsum("nki,nk->ni", A, dz[planar])[..., None])[..., 0]
+        slope[planar] = np.hypot(g[:, 0], g[:, 1])
+    lin = ~planar
+    if lin.any():
+        t = np.einsum("nki,ni->nk", P[lin], vt[lin, 0])
+        slope[lin] = np.abs(np.sum(t * dz[lin], axis=1) / np.maximum(np.sum(t * t, axis=1), 1e-12))
+    return float(np.max(slope))

@@ -156,6 +156,7 @@ class Settings:
     index_contour_every: int = 5
     borehole_sigma_m: float = 0.1  # depth error of a borehole when boreholes.csv has none
     calibrate_velocity: bool = False  # scale velocities to fit the boreholes
+    ground_buffer_m: Optional[float] = None  # depth given this far beyond the stations; None: half the depth
     dem: Optional[Path] = None  # ground model raster; None: interpolate stations
     work_crs: Optional[str] = None  # projected CRS to work in when the input is geographic
 

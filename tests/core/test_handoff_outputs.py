@@ -93,7 +93,7 @@ def test_map_sheet_has_its_parts(run, tmp_path):
 def test_section_values_equal_the_rasters(run):
     _, out = run
     elev_r, elev = _grid(out, "reflector_elevation.tif")
-    _, sigma = _grid(out, "depth_sigma.tif")
+    _, sigma = _grid(out, "elevation_sigma.tif")  # sections give the elevation's sigma
     _, depth = _grid(out, "reflector_depth.tif")
     table = np.genfromtxt(out / "section_axis.csv", delimiter=",", names=True)
     pts = np.column_stack([table["y_m"], table["x_m"]])
@@ -165,7 +165,7 @@ def test_landxml_surface_is_the_grid(run):
 def test_probability_raster_is_the_gaussian_formula(run):
     _, out = run
     _, z = _grid(out, "reflector_elevation.tif")
-    _, s = _grid(out, "depth_sigma.tif")
+    _, s = _grid(out, "elevation_sigma.tif")  # the elevation's sigma (depth_sigma.tif adds the ground's)
     _, p = _grid(out, "probability_above_design.tif")
     ok = np.isfinite(z)
     assert np.array_equal(ok, np.isfinite(p))

@@ -81,7 +81,8 @@ def read_raster(path):
 
 def test_cli_writes_every_fixed_output(sample_run):
     out = sample_run.out
-    for name in ["survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif", "report.html"]:
+    for name in ["survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
+                 "elevation_sigma.tif", "report.html"]:
         assert (out / name).is_file() and (out / name).stat().st_size > 0, name
     assert not [p for p in out.rglob(".*") if p.is_file()], "temporary files left behind"
     assert sample_run.exit_code == 0 and "gathers fitted" in sample_run.stdout
@@ -138,7 +139,7 @@ def test_surface_against_truth(sample_run):
     """Elevation raster RMS and 2-sigma coverage against the true bedrock."""
     ms = _truth_module()
     z, x, y, wkt = read_raster(sample_run.out / "reflector_elevation.tif")
-    s, xs, ys, _ = read_raster(sample_run.out / "depth_sigma.tif")
+    s, xs, ys, _ = read_raster(sample_run.out / "elevation_sigma.tif")
     assert np.allclose(x, xs) and np.allclose(y, ys)
     import pyproj
 
