@@ -99,8 +99,8 @@ def parse_crs(value) -> pyproj.CRS:
     if isinstance(value, str) and not value.strip():
         raise GeoreferenceError("CRS is empty: expected e.g. 'EPSG:32633'")
     if isinstance(value, int) and not 0 < value < 2**31:
-        shown = str(value) if len(str(value)) <= 20 else str(value)[:17] + "..."
-        raise GeoreferenceError(f"CRS {shown} is not an EPSG code: expected e.g. 32633")
+        digits = str(value) if len(str(value)) <= 20 else str(value)[:17] + "..."
+        raise GeoreferenceError(f"CRS {digits} is not an EPSG code: expected e.g. 32633")
     try:
         return pyproj.CRS.from_user_input(value.strip() if isinstance(value, str) else value)
     except (CRSError, ProjError, ValueError, TypeError) as exc:

@@ -1,1 +1,1 @@
-"""formats"""
+"""File formats: every reader and writer of the project."""

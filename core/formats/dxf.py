@@ -128,8 +128,8 @@ def write_dxf(
     polylines = list(polylines)
     texts = list(texts)
     colours = dict(layer_colours or {})
-    for item in [*polylines, *texts]:
-        colours.setdefault(item.layer, 7)
+    for layer_name in [p.layer for p in polylines] + [t.layer for t in texts]:
+        colours.setdefault(layer_name, 7)
     for name, colour in colours.items():
         if not isinstance(name, str) or not _LAYER_RE.match(name):
             raise OutputError(

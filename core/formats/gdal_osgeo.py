@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import contextlib
 import math
-from typing import Dict, Mapping
+from typing import Dict, List, Mapping, Optional
 
 import numpy as np
 
@@ -72,7 +72,7 @@ def _srs(wkt: str):
 
 
 def raster_extensions() -> Dict[str, str]:
-    """extension -> short name of the raster drivers that can write (the first claiming it)."""
+    """Map each file extension to the short name of the raster driver that writes it (the first claiming it)."""
     from osgeo import gdal
 
     out: Dict[str, str] = {}
@@ -241,6 +241,7 @@ def _open_vector(path):
 
 
 def list_layers(path) -> list:
+    """Names of the layers of a vector file, in the file's order."""
     with exceptions():
         ds = _open_vector(path)
         names = [ds.GetLayer(i).GetName() for i in range(ds.GetLayerCount())]
@@ -265,7 +266,6 @@ def _kind(fd) -> str:
 
 def read_layer(path, name: str):
     """(WKB list or None, {field: (kind, values)}, WKT 2, description) of one table."""
-
     with exceptions():
         ds = _open_vector(path)
         lyr = ds.GetLayerByName(name)
@@ -274,8 +274,8 @@ def read_layer(path, name: str):
         defn = lyr.GetLayerDefn()
         fdefs = [defn.GetFieldDefn(i) for i in range(defn.GetFieldCount())]
         kinds = [_kind(fd) for fd in fdefs]
-        cols = [[] for _ in fdefs]
-        geoms = [] if defn.GetGeomFieldCount() > 0 else None
+        cols: List[list] = [[] for _ in fdefs]
+        geoms: Optional[list] = [] if defn.GetGeomFieldCount() > 0 else None
         for feat in lyr:
             for i, kind in enumerate(kinds):
                 if not feat.IsFieldSetAndNotNull(i):
@@ -298,6 +298,7 @@ def read_layer(path, name: str):
 
 
 def vector_metadata(path, layer=None) -> dict:
+    """Metadata (default domain) of a vector file, or of one of its layers."""
     with exceptions():
         ds = _open_vector(path)
         obj = ds if layer is None else ds.GetLayerByName(layer)

@@ -47,7 +47,7 @@ def config(options: Mapping[str, str | None]):
 
 
 def raster_extensions() -> Dict[str, str]:
-    """extension -> short name of the raster drivers that can write."""
+    """Map each file extension to the short name of the raster driver that writes it."""
     from rasterio.drivers import raster_driver_extensions
 
     return {ext.lower(): name for ext, name in raster_driver_extensions().items()}
@@ -143,7 +143,7 @@ def write_layers(tmp, prepared, wkt, dmd, lmd, dataset_options, layer_options) -
 
 @contextlib.contextmanager
 def _reading(path):
-    """pyogrio's errors for an unreadable file as the project's input error."""
+    """Turn pyogrio's errors for an unreadable file into the project's input error."""
     from pyogrio.errors import DataLayerError, DataSourceError
 
     try:
@@ -153,6 +153,7 @@ def _reading(path):
 
 
 def list_layers(path) -> list:
+    """Names of the layers of a vector file, in the file's order."""
     import pyogrio
 
     with _reading(path):
@@ -184,6 +185,7 @@ def read_layer(path, name: str):
 
 
 def vector_metadata(path, layer=None) -> dict:
+    """Metadata (default domain) of a vector file, or of one of its layers."""
     import pyogrio
 
     with _reading(path):

@@ -272,18 +272,22 @@ class Raster:
 
     @property
     def shape(self) -> Tuple[int, int]:
+        """(ny, nx) of the band."""
         return self.values.shape
 
     @property
     def geotransform(self) -> Tuple[float, float, float, float, float, float]:
+        """GDAL's affine ``(x0_edge, dx, 0, y0_edge, 0, dy)``."""
         return (self.x0_edge, self.dx, 0.0, self.y0_edge, 0.0, self.dy)
 
     @property
     def x_centres(self) -> np.ndarray:
+        """Eastings (m) of the column centres."""
         return self.x0_edge + (np.arange(self.values.shape[1]) + 0.5) * self.dx
 
     @property
     def y_centres(self) -> np.ndarray:
+        """Northings (m) of the row centres."""
         return self.y0_edge + (np.arange(self.values.shape[0]) + 0.5) * self.dy
 
     @property
@@ -314,7 +318,7 @@ def raster_driver(path) -> str:
 
 
 def _raster_extensions() -> Dict[str, str]:
-    """extension -> driver of GDAL's raster drivers that can write (first driver claiming it wins)."""
+    """Map each file extension to the GDAL raster driver that writes it (the first driver claiming it wins)."""
     out = dict(_adapter(None, "choosing a raster format").raster_extensions())
     out.pop("vrt", None)  # a VRT only points at other files
     return out
@@ -417,8 +421,9 @@ def read_raster(path, band: int = 1, *, engine_name: str | None = None) -> Raste
         raise GeoreferenceError(f"'{path.name}' is a rotated raster; resample it north-up first")
     if nodata is not None and not math.isnan(nodata):
         values[values == nodata] = np.nan
-    return Raster(values, *map(float, (gt[0], gt[3], gt[1], gt[5])), _crs_from_wkt(wkt), nodata,
-                  dict(md), dict(bmd), desc or "", unit or "")
+    x0_edge, y0_edge, dx, dy = (float(v) for v in (gt[0], gt[3], gt[1], gt[5]))
+    return Raster(values, x0_edge, y0_edge, dx, dy, _crs_from_wkt(wkt), nodata, dict(md), dict(bmd), desc or "",
+                  unit or "")
 
 
 # ------------------------------------------------------------------------------ vectors

@@ -99,8 +99,11 @@ def grid_tin(x_centres, y_centres, z) -> Tin:
 
 
 def issue_date(timestamp=None) -> _dt.date:
-    """The date written on hand-off files: ``timestamp`` (datetime or epoch seconds), else
-    ``SOURCE_DATE_EPOCH`` (the reproducible-builds convention), else today (UTC)."""
+    """Return the date written on hand-off files.
+
+    ``timestamp`` (datetime or epoch seconds), else ``SOURCE_DATE_EPOCH`` (the
+    reproducible-builds convention), else today (UTC).
+    """
     if timestamp is None:
         env = os.environ.get("SOURCE_DATE_EPOCH")
         timestamp = int(env) if env and env.strip().lstrip("-").isdigit() else None

@@ -109,6 +109,7 @@ class DesignVolume:
 
     @property
     def n_simulations(self) -> int:
+        """Number of simulated surfaces."""
         return len(self.volumes_m3)
 
     def percentile_m3(self, q: float) -> float:
@@ -117,22 +118,27 @@ class DesignVolume:
 
     @property
     def p10_m3(self) -> float:
+        """10th percentile of the simulated volumes (m^3)."""
         return self.percentile_m3(10)
 
     @property
     def p50_m3(self) -> float:
+        """Median of the simulated volumes (m^3)."""
         return self.percentile_m3(50)
 
     @property
     def p90_m3(self) -> float:
+        """90th percentile of the simulated volumes (m^3): 90 % of them stay below it."""
         return self.percentile_m3(90)
 
     @property
     def mean_m3(self) -> float:
+        """Mean of the simulated volumes (m^3)."""
         return float(np.mean(self.volumes_m3))
 
     @property
     def sd_m3(self) -> float:
+        """Standard deviation of the simulated volumes (m^3)."""
         return float(np.std(self.volumes_m3, ddof=1))
 
     @property
@@ -142,6 +148,7 @@ class DesignVolume:
 
     @property
     def mapped_fraction(self) -> float:
+        """Mapped part of the design area, 0 to 1 (NaN for an empty area)."""
         return self.mapped_area_m2 / self.area_m2 if self.area_m2 > 0 else float("nan")
 
 

@@ -67,6 +67,7 @@ class Projected:
 
     @classmethod
     def empty(cls) -> Projected:
+        """No projected items."""
         z = np.zeros(0)
         return cls(np.zeros(0, dtype=object), z, z, z, z, z, z, z)
 
@@ -103,6 +104,7 @@ class Section:
 
     @property
     def length_m(self) -> float:
+        """Length of the alignment (m)."""
         return float(polyline_chainage(self.vertices_xy[:, 0], self.vertices_xy[:, 1])[-1])
 
     def table(self) -> dict:

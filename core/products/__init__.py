@@ -1,1 +1,1 @@
-"""products"""
+"""Products of a run: its layers, files and hand-off documents."""

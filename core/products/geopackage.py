@@ -90,7 +90,8 @@ def _point_z(name: str, layer: Layer, result):
     if name == "cross_validation":
         return _float(f["estimate_m"]) + _float(f["residual_m"])
     if name in ("dip_measurements", "surface_dips"):
-        xy = np.array([(g.x, g.y) if g is not None else (np.nan, np.nan) for g in layer.geometries], float)
+        xy = np.array([(g.x, g.y) if g is not None else (np.nan, np.nan) for g in layer.geometries or ()],
+                      dtype=float)
         return _surface_at(result, xy[:, 0], xy[:, 1]).ravel() if len(xy) else np.zeros(0)
     return None
 
@@ -98,7 +99,8 @@ def _point_z(name: str, layer: Layer, result):
 def _points_3d(layer: Layer, z) -> Layer:
     from shapely.geometry import Point
 
-    geoms = [None if g is None or g.is_empty else Point(g.x, g.y, float(zz)) for g, zz in zip(layer.geometries, z)]
+    geoms = [None if g is None or g.is_empty else Point(g.x, g.y, float(zz))
+             for g, zz in zip(layer.geometries or (), z)]
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 
@@ -117,8 +119,8 @@ def _contours_3d(layer: Layer, result) -> Layer:
     kinds = np.asarray(layer.fields["kind"]).astype(str)
     elev = _float(layer.fields["elevation_m"])
     depth = _float(layer.fields["depth_m"])
-    geoms = []
-    for g, kind, e, d in zip(layer.geometries, kinds, elev, depth):
+    geoms: list = []
+    for g, kind, e, d in zip(layer.geometries or (), kinds, elev, depth):
         if g is None or g.is_empty:
             geoms.append(None)
         elif kind == "elevation":

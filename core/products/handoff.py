@@ -95,7 +95,7 @@ def sections_layer(sections, fmt) -> Layer:
 
 def handoff_layers(result, sections=None) -> dict:
     """GeoPackage layers of the hand-off products (``sections``, ``design_volumes``)."""
-    out = {}
+    out: dict = {}
     if result.surface is None:
         return out
     sections = sections if sections is not None else sections_step(result)
@@ -109,7 +109,7 @@ def handoff_layers(result, sections=None) -> dict:
 
 def handoff_run_info(result) -> list:
     """(key, value) lines for the run_info table."""
-    items = []
+    items: list = []
     if result.surface is None:
         return items
     h = result.survey.handoff
@@ -136,7 +136,7 @@ def handoff_run_info(result) -> list:
 
 def _contours(result, kind):
     c = result.contours
-    out = []
+    out: list = []
     if c is None or not len(c):
         return tuple(out)
     kinds = np.asarray(c.fields["kind"])

@@ -8,6 +8,7 @@ way leaves the previous outputs byte-identical and no partial file.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import List, Tuple
 
 import numpy as np
 
@@ -63,7 +64,7 @@ def run_info(result: RunResult) -> list:
     from .. import __version__
 
     s = result.survey.settings
-    items = [
+    items: List[Tuple[str, object]] = [
         ("software", f"Rockhead {__version__}"),
         ("survey", result.survey.name),
         ("crs", result.survey.crs.to_string()),

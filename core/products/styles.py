@@ -30,7 +30,7 @@ What the styles show (colours from :mod:`core.colours`):
 from __future__ import annotations
 
 import math
-from typing import Optional
+from typing import Dict, Optional
 from xml.sax.saxutils import quoteattr
 
 import numpy as np
@@ -510,7 +510,7 @@ def layer_styles(layers: dict) -> dict:
         Layer name -> list of (style name, QML); the first style is the
         layer's default.
     """
-    out = {}
+    out: Dict[str, list] = {}
     for name, layer in layers.items():
         fields = _field_kinds(layer)
         geometry = layer.geometry_type

@@ -1,1 +1,1 @@
-"""report"""
+"""The report and the printed sheets of a run."""

@@ -60,13 +60,16 @@ class Report:
         self._parts: list[str] = []
 
     def heading(self, text: str, level: int = 2) -> None:
+        """A heading of ``level`` (2 for a section)."""
         self._parts.append(f"<h{level}>{html.escape(text)}</h{level}>")
 
     def paragraph(self, text: str, cls: str | None = None) -> None:
+        """A paragraph of text, with an optional CSS class."""
         c = f' class="{cls}"' if cls else ""
         self._parts.append(f"<p{c}>{html.escape(text)}</p>")
 
     def caution(self) -> None:
+        """The caution box: an interpretation with stated uncertainty, to be checked and signed off."""
         self._parts.append(f'<div class="caution">{CAUTION_HTML}</div>')
 
     def items(self, pairs) -> None:
@@ -112,6 +115,7 @@ class Report:
         self._parts.append(img)
 
     def render(self) -> str:
+        """The whole page as one self-contained HTML string."""
         body = "\n".join(self._parts)
         return (
             "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from itertools import combinations
-from typing import Any, Optional
+from typing import Any, Mapping, Optional
 
 import numpy as np
 
@@ -84,7 +84,7 @@ class Crossings:
         return len(self.x_m)
 
 
-def line_crossings(frames: dict[str, LineFrame], max_gap_m: float = 0.0) -> Crossings:
+def line_crossings(frames: Mapping[str, LineFrame], max_gap_m: float = 0.0) -> Crossings:
     """Every crossing of two line polylines, and near misses up to ``max_gap_m``.
 
     Crossings are the point intersections of the polylines (shapely). Two
@@ -189,7 +189,7 @@ def _value_at(
 
 
 def line_misties(
-    frames: dict[str, LineFrame], points: ReflectorPoints, max_gap_m: Optional[float] = None
+    frames: Mapping[str, LineFrame], points: ReflectorPoints, max_gap_m: Optional[float] = None
 ) -> Misties:
     r"""Misties of the reflector elevation at every crossing of two lines.
 

@@ -15,9 +15,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Optional
+from typing import TYPE_CHECKING, Any, Optional
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from pyproj import CRS
 
 __all__ = ["Alignment", "Boreholes", "GatherSet", "Handoff", "Picks", "Settings", "Stations", "Survey"]
 
@@ -199,8 +202,8 @@ class Survey:
 
     name: str
     path: Path  # the survey.toml
-    input_crs: object  # pyproj.CRS of x/y in the CSV files
-    crs: object  # pyproj.CRS, projected working CRS (equal to input_crs when that is projected)
+    input_crs: CRS  # of x/y in the CSV files
+    crs: CRS  # projected working CRS (equal to input_crs when that is projected)
     stations: Stations
     picks: Picks
     boreholes: Optional[Boreholes]

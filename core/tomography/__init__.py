@@ -1,1 +1,1 @@
-"""tomography"""
+"""Reflection traveltime tomography: the joint inversion and the layered forward model."""

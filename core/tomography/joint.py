@@ -170,6 +170,7 @@ class NodeGrid:
 
     @property
     def shape(self) -> tuple:
+        """(ny, nx) of the node arrays."""
         return (self.ny, self.nx)
 
     @property

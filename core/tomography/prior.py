@@ -82,6 +82,7 @@ class MaternPrior:
 
     @property
     def kappa_per_m(self) -> float:
+        """The Matern scale parameter kappa = sqrt(8) / range (1/m)."""
         return math.sqrt(8.0) / self.range_m
 
 

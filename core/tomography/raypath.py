@@ -121,6 +121,7 @@ class LayeredModel:
 
     @property
     def n_interfaces(self) -> int:
+        """Number of interfaces (layers below the ground)."""
         return self.elevation_m.shape[0]
 
     def velocity(self, layer: int, complexity: str = "full") -> LayerVelocity:
@@ -160,6 +161,7 @@ class LayeredPaths:
 
     @property
     def valid(self) -> np.ndarray:
+        """True for the picks that were modelled (status 0)."""
         return self.status == 0
 
     @property
