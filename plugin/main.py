@@ -55,7 +55,10 @@ class RockheadPlugin:
         qc_action.setObjectName("rockheadQcPanel")
         qc_action.setCheckable(True)
         qc_action.toggled.connect(self.show_qc_panel)
-        for action in (run_action, qc_action):
+        open_action = QAction(icon, tr("Open results folder…"), self.iface.mainWindow())
+        open_action.setObjectName("rockheadOpenResults")
+        open_action.triggered.connect(self.choose_results_folder)
+        for action in (run_action, open_action, qc_action):
             self.iface.addPluginToMenu(MENU, action)
             self.actions.append(action)
         self.iface.addToolBarIcon(qc_action)
@@ -105,6 +108,33 @@ class RockheadPlugin:
         import processing
 
         processing.execAlgorithmDialog("rockhead:runsurvey", {})
+
+    def choose_results_folder(self):
+        """Ask for a results folder (a run's --out) and open it styled."""
+        from qgis.PyQt.QtWidgets import QFileDialog
+
+        folder = QFileDialog.getExistingDirectory(self.iface.mainWindow(), tr("Results folder of a run"))
+        if folder:
+            self.open_results(folder)
+
+    def open_results(self, folder):
+        """Load a results folder as the styled layer group (the styles stored with the results) and
+        remember its survey for the quality-control panel. Returns the layer group."""
+        from qgis.core import QgsProject
+
+        from .qc_dock import remember_run
+        from .styling import load_results, results_survey
+
+        project = QgsProject.instance()
+        group = load_results(str(folder), project)
+        if not group.findLayers():
+            self.iface.messageBar().pushMessage(
+                LOG_TAG, tr("no Rockhead results in {folder}").format(folder=folder), level=Qgis.Warning, duration=8)
+            return group
+        survey = results_survey(str(folder))
+        if survey:
+            remember_run(project, survey, folder)
+        return group
 
     def show_qc_panel(self, visible=True):
         """Create (once) and show or hide the quality-control dock."""

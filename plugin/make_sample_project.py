@@ -27,7 +27,7 @@ from qgis.core import (
 from qgis.PyQt.QtCore import QSize
 from qgis.PyQt.QtGui import QColor
 
-from .qc_dock import PROJECT_KEY_SURVEY, PROJECT_SCOPE
+from .qc_dock import PROJECT_KEY_RESULTS, PROJECT_KEY_SURVEY, PROJECT_SCOPE
 from .styling import group_layers, load_results
 
 TITLE = "Tarnwick Creek bridge (demo): bedrock reflector"
@@ -50,6 +50,7 @@ def build_project(results_dir, project_path, survey_path=None, title=TITLE, proj
     project.viewSettings().setDefaultViewExtent(QgsReferencedRectangle(extent, crs))
     if survey_path:
         project.writeEntry(PROJECT_SCOPE, PROJECT_KEY_SURVEY, project.writePath(os.path.abspath(survey_path)))
+    project.writeEntry(PROJECT_SCOPE, PROJECT_KEY_RESULTS, project.writePath(os.path.abspath(results_dir)))
     if not project.write():
         raise RuntimeError(f"could not write {project_path}: {project.error()}")
     return project, group

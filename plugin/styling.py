@@ -294,3 +294,48 @@ def results_layers(project: QgsProject = None, group_name: str = GROUP_NAME) -> 
     project = project or QgsProject.instance()
     group = project.layerTreeRoot().findGroup(group_name)
     return [] if group is None else group_layers(group, visible_only=False)
+
+
+def refresh_results_layers(out_dir: str, project: QgsProject = None) -> int:
+    """Reload every layer of the project read from ``out_dir`` (after a run rewrote its files).
+
+    Vector layers reopen their GeoPackage (the run replaced the file); rasters
+    reopen theirs and take the new default style (the ``.qml`` the run wrote
+    beside it, with the new data range). Returns how many layers were reloaded.
+    """
+    project = project or QgsProject.instance()
+    folder = os.path.realpath(out_dir)
+    n = 0
+    for layer in project.mapLayers().values():
+        path = layer.source().split("|")[0]
+        if not path or os.path.dirname(os.path.realpath(path)) != folder:
+            continue
+        provider = layer.dataProvider()
+        if provider is None:
+            continue
+        provider.reloadData()
+        if isinstance(layer, QgsRasterLayer):
+            qml = os.path.splitext(path)[0] + ".qml"
+            if os.path.isfile(qml):
+                metadata = layer.metadata()
+                with open(qml, encoding="utf-8") as fh:
+                    apply_qml(layer, fh.read())
+                layer.setMetadata(metadata)
+        elif isinstance(layer, QgsVectorLayer):
+            layer.updateExtents()
+        layer.triggerRepaint()
+        n += 1
+    return n
+
+
+def results_survey(out_dir: str):
+    """The survey.toml a results folder was made from (its run_info), or None when it is gone."""
+    from ..core.formats.gdalio import read_layer
+
+    gpkg = os.path.join(out_dir, "survey.gpkg")
+    if not os.path.isfile(gpkg) or "run_info" not in gpkg_layer_names(gpkg):
+        return None
+    table, _ = read_layer(gpkg, "run_info")
+    items = dict(zip(table.fields["key"], table.fields["value"]))
+    path = items.get("survey_file")
+    return path if path and os.path.isfile(path) else None

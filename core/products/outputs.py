@@ -67,6 +67,7 @@ def run_info(result: RunResult) -> list:
     items: List[Tuple[str, object]] = [
         ("software", f"Rockhead {__version__}"),
         ("survey", result.survey.name),
+        ("survey_file", str(result.survey.path)),
         ("crs", result.survey.crs.to_string()),
         ("reflector", s.reflector),
         ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
@@ -175,46 +176,78 @@ def write_all(result: RunResult, out_dir, progress) -> list:
         ) from exc
 
 
+def _stage_map(outputs, result, out_dir, layers, progress) -> None:
+    """Stage the map products: the GeoPackage (with its styles), CSV tables, GeoTIFFs (with .qml), DXF."""
+    crs = result.survey.crs
+    spec = result.spec
+    prov = provenance(result)
+    z_crs = elevation_crs(result.survey)  # compound (working + vertical) when the survey states its datum
+    stamp = prov.timestamp.strftime("%Y-%m-%dT%H:%M:%SZ")
+    gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
+    gpkg_layers["layer_styles"] = styles_table(layer_styles(layers), layers, stamp)
+    gpkg = write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
+                        layer_metadata=layer_md, timestamp=prov.timestamp)
+    # QGIS's own layer metadata (title, abstract with the caution, history), shown in each layer's properties
+    records = qgis_layer_metadata({k: v for k, v in gpkg_layers.items() if k != "layer_styles"}, prov, layer_md)
+    add_layer_metadata(gpkg, records, gdal_timestamp(prov.timestamp))
+    (out_dir / "csv").mkdir(exist_ok=True)
+    for name, layer in layers.items():
+        write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
+    progress.set_progress(15)
+    rasters = result_rasters(result)
+    for name, grid in rasters.items():
+        # elevations carry the vertical datum; depth below ground and sigma are lengths, not heights
+        write_raster(
+            outputs.stage(out_dir / name), grid, spec, z_crs if name == ELEVATION_NAME else crs,
+            metadata=prov.items(), description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp,
+            software=prov.software,
+        )
+    if result.design is not None and result.design.probability is not None:
+        rasters[PROBABILITY_NAME] = result.design.probability
+    for name, qml in raster_styles(rasters).items():  # QGIS reads a raster's default style beside it
+        outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
+    if len(result.contours):
+        for kind in ("elevation", "depth"):
+            write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)
+    check_cancel(progress)
+
+
+def write_map(result, out_dir, progress) -> list:
+    """Write only the map products of ``result`` (GeoPackage, GeoTIFFs and their styles, CSV, DXF).
+
+    The interpretation loop's quick update after a pick edit: the map layers
+    follow within a second, the documents (report, sheets, sections) come
+    with the whole run that follows. Written as one set, like
+    :func:`write_all`; returns the files written.
+    """
+    from ..handoff.steps import sections_step
+
+    out_dir = Path(out_dir)
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+        sections = sections_step(result)
+        layers = result_layers(result, sections)
+        with OutputSet() as outputs:
+            _stage_map(outputs, result, out_dir, layers, progress)
+            written = outputs.targets
+    except OSError as exc:
+        raise OutputError(
+            f"could not write the map in {out_dir}: {exc.strerror or exc}"
+            f"{f' ({exc.filename})' if exc.filename else ''}; earlier outputs there are unchanged"
+        ) from exc
+    progress.set_progress(100)
+    return written
+
+
 def _write_all(result, out_dir, progress) -> list:
     from ..handoff.steps import sections_step
     from ..report.content import build_report
 
     out_dir.mkdir(parents=True, exist_ok=True)
-    crs = result.survey.crs
     sections = sections_step(result)
     layers = result_layers(result, sections)
-    spec = result.spec
-    prov = provenance(result)
-    z_crs = elevation_crs(result.survey)  # compound (working + vertical) when the survey states its datum
-    stamp = prov.timestamp.strftime("%Y-%m-%dT%H:%M:%SZ")
     with OutputSet() as outputs:
-        gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
-        gpkg_layers["layer_styles"] = styles_table(layer_styles(layers), layers, stamp)
-        gpkg = write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
-                            layer_metadata=layer_md, timestamp=prov.timestamp)
-        # QGIS's own layer metadata (title, abstract with the caution, history), shown in each layer's properties
-        records = qgis_layer_metadata({k: v for k, v in gpkg_layers.items() if k != "layer_styles"}, prov, layer_md)
-        add_layer_metadata(gpkg, records, gdal_timestamp(prov.timestamp))
-        (out_dir / "csv").mkdir(exist_ok=True)
-        for name, layer in layers.items():
-            write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
-        progress.set_progress(15)
-        rasters = result_rasters(result)
-        for name, grid in rasters.items():
-            # elevations carry the vertical datum; depth below ground and sigma are lengths, not heights
-            write_raster(
-                outputs.stage(out_dir / name), grid, spec, z_crs if name == ELEVATION_NAME else crs,
-                metadata=prov.items(), description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp,
-                software=prov.software,
-            )
-        if result.design is not None and result.design.probability is not None:
-            rasters[PROBABILITY_NAME] = result.design.probability
-        for name, qml in raster_styles(rasters).items():  # QGIS reads a raster's default style beside it
-            outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
-        if len(result.contours):
-            for kind in ("elevation", "depth"):
-                write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)
-        check_cancel(progress)
+        _stage_map(outputs, result, out_dir, layers, progress)
         write_handoff(outputs, out_dir, result, progress, sections)
         progress.set_progress(25)
         (out_dir / "qc").mkdir(exist_ok=True)

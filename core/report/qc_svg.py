@@ -27,10 +27,12 @@ from .. import colours
 
 __all__ = ["gather_svg", "nice_ticks"]
 
-_W, _H = 1000.0, 350.0  # drawing size (px of the SVG's own coordinates)
-_TOP = 92.0  # panels start below the title and the parameters
-_BOTTOM = 48.0
-_PANELS = ((62.0, 262.0), (395.0, 262.0), (728.0, 252.0))  # (left, width) of each panel
+#: Layouts: drawing size (px of the SVG's own coordinates) and the (left, top, width, height) of the
+#: three panels; "row" for reports (side by side), "column" for a narrow panel (stacked).
+_LAYOUTS = {
+    "row": ((1000.0, 350.0), ((62.0, 92.0, 262.0, 210.0), (395.0, 92.0, 262.0, 210.0), (728.0, 92.0, 252.0, 210.0))),
+    "column": ((520.0, 900.0), ((66.0, 150.0, 430.0, 200.0), (66.0, 405.0, 430.0, 225.0), (66.0, 700.0, 430.0, 145.0))),
+}
 _FONT = "font-family:system-ui,'Segoe UI',Helvetica,Arial,sans-serif"
 
 
@@ -91,9 +93,9 @@ def _range(values, pad=0.06, include_zero=False):
 class _Panel:
     """One plot panel: data limits mapped onto a box of the drawing."""
 
-    def __init__(self, out, left, width, xlim, ylim, down=False):
-        self.out, self.left, self.width = out, left, width
-        self.top, self.height = _TOP, _H - _TOP - _BOTTOM
+    def __init__(self, out, box, xlim, ylim, down=False):
+        self.out = out
+        self.left, self.top, self.width, self.height = box
         self.xlim, self.ylim, self.down = xlim, ylim, down
 
     def px(self, x):
@@ -165,7 +167,7 @@ def _symbols(prefix):
 
 
 def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, params_text: str,
-               ident: str = "g") -> bytes:
+               ident: str = "g", layout: str = "row") -> bytes:
     """The QC figure of one gather as SVG: t²–x², t–x with the fit, residuals.
 
     Parameters
@@ -186,6 +188,9 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     ident : str
         Prefix of the element ids, unique per figure when several are inlined
         in one page.
+    layout : str
+        "row" (the three panels side by side, for pages) or "column" (stacked,
+        for a narrow panel such as QGIS's QC dock).
 
     Returns
     -------
@@ -199,6 +204,8 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     exc = np.asarray(excluded, bool) & ~rej
     used = ~(rej | exc)
     order = np.argsort(x, kind="stable")
+    (_W, _H), boxes = _LAYOUTS[layout]
+    stacked = layout == "column"
     out = [
         '<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" '
         f'viewBox="0 0 {_W:.0f} {_H:.0f}" width="{_W:.0f}" '
@@ -208,21 +215,22 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
         f'<text x="10" y="20" font-size="14" font-weight="600">{html.escape(title)}</text>',
     ]
     for k, row in enumerate(params_text.splitlines()):
+        x_text, y_text, anchor = (10, 40 + 13 * k, "start") if stacked else (_W - 10, 18 + 13 * k, "end")
         out.append(
-            f'<text x="{_W - 10:.0f}" y="{18 + 13 * k}" text-anchor="end" font-family="monospace" '
+            f'<text x="{x_text:.0f}" y="{y_text}" text-anchor="{anchor}" font-family="monospace" '
             f'font-size="11" xml:space="preserve">{html.escape(row)}</text>'
         )
-    keyx = 10.0
+    keyx, keyy = 10.0, (40.0 + 13 * len(params_text.splitlines()) + 8 if stacked else 41.0)
     for sym, label in (("o", "pick used"), ("x", "rejected by the fit"), ("ex", "excluded (pick edit)")):
-        out.append(f'<use xlink:href="#{ident}{sym}" x="{keyx + 4:.0f}" y="41"/>')
-        out.append(f'<text x="{keyx + 12:.0f}" y="45">{label}</text>')
-        keyx += 36 + 6.2 * len(label)
-    out.append(f'<path d="M{keyx:.0f} 41h18" stroke="{colours.FIT_CURVE}" stroke-width="2"/>')
-    out.append(f'<text x="{keyx + 23:.0f}" y="45">fit</text>')
+        out.append(f'<use xlink:href="#{ident}{sym}" x="{keyx + 4:.0f}" y="{keyy:.0f}"/>')
+        out.append(f'<text x="{keyx + 12:.0f}" y="{keyy + 4:.0f}">{label}</text>')
+        keyx += 30 + 6.0 * len(label)
+    out.append(f'<path d="M{keyx:.0f} {keyy:.0f}h18" stroke="{colours.FIT_CURVE}" stroke-width="2"/>')
+    out.append(f'<text x="{keyx + 23:.0f}" y="{keyy + 4:.0f}">fit</text>')
 
     # t^2 - x^2
     x2, t2, m2 = x**2, t**2, tm**2
-    p = _Panel(out, *_PANELS[0], _range(np.r_[x2, 0.0]), _range(np.r_[t2[np.isfinite(t2)], m2[np.isfinite(m2)]]))
+    p = _Panel(out, boxes[0], _range(np.r_[x2, 0.0]), _range(np.r_[t2[np.isfinite(t2)], m2[np.isfinite(m2)]]))
     p.frame("x² (m²)", "t² (ms²)", "t²–x² (▲ forward, ▼ reverse)")
     p.clip_start(f"{ident}c0")
     for side in (x < 0, x >= 0):
@@ -235,7 +243,7 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     out.append("</g>")
 
     # t - x, time down
-    p = _Panel(out, *_PANELS[1], _range(x), _range(np.r_[t[np.isfinite(t)], tm[np.isfinite(tm)]]), down=True)
+    p = _Panel(out, boxes[1], _range(x), _range(np.r_[t[np.isfinite(t)], tm[np.isfinite(tm)]]), down=True)
     p.frame("offset along line x (m)", "two-way time t (ms)", "t–x")
     p.clip_start(f"{ident}c1")
     p.line(x[order], tm[order], colours.FIT_CURVE)
@@ -248,7 +256,7 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     r = t - tm
     shown = np.isfinite(r) & ~rej
     lim = max(1.0, 1.2 * float(np.max(np.abs(r[shown])))) if np.any(shown) else 1.0
-    p = _Panel(out, *_PANELS[2], _range(x), (-lim, lim))
+    p = _Panel(out, boxes[2], _range(x), (-lim, lim))
     p.frame("x (m)", "residual (ms)", "residuals (rejected may lie off scale)")
     p.clip_start(f"{ident}c2")
     p.line(p.xlim, (0.0, 0.0), "#888", width=1.0)

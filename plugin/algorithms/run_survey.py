@@ -103,11 +103,11 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
         out_dir = getattr(self, "_out_dir", None)
         project = context.project()
         if out_dir and getattr(self, "_load", False) and project is not None:
-            from ..qc_dock import PROJECT_KEY_SURVEY, PROJECT_SCOPE
+            from ..qc_dock import remember_run
             from ..styling import load_results
 
             load_results(out_dir, project)
-            project.writeEntry(PROJECT_SCOPE, PROJECT_KEY_SURVEY, os.path.abspath(self._survey_path))
+            remember_run(project, self._survey_path, out_dir)
         return {}
 
 

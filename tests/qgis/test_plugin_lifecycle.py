@@ -30,7 +30,7 @@ def test_load_and_unload_through_class_factory(iface, qgis_processing, monkeypat
         assert {a.name() for a in prov.algorithms()} == ALGORITHM_IDS
         actions = list(plugin.actions)
         plugin_qc_action = plugin.qc_action
-        assert len(actions) == 2 and all(isinstance(a, QAction) for a in actions)
+        assert len(actions) == 3 and all(isinstance(a, QAction) for a in actions)
         plugin.show_qc_panel(True)
         assert plugin.dock is not None and not plugin.dock.isHidden()
     finally:
