@@ -87,7 +87,7 @@ def pinned_choices(result: RunResult) -> Pinned:
     -------
     Pinned
     """
-    vm = (result.seismic_diag or {}).get("variogram")
+    vm = result.seismic_diagnostics.variogram
     return Pinned(variogram_model=None if vm is None else str(vm.model), method=result.method_used or "kriging")
 
 
@@ -129,7 +129,7 @@ def remap(survey_path, pinned: Pinned, out_dir=None, progress=None) -> RemapOutc
     note = (f"quick remap after pick edits: the {pinned.method} surface"
             + (f" with the {pinned.variogram_model} variogram" if pinned.variogram_model else "")
             + " the last whole run chose; the whole run that follows redoes every product")
-    result.notes.append(note)
+    result = replace(result, notes=(*result.notes, note))
     written = []
     if out_dir is not None:
         written = write_map(result, Path(out_dir), SubProgress(progress, 80, 100))

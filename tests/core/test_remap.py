@@ -26,7 +26,7 @@ def test_pinned_choices_are_the_runs(site):
     _, first = site
     p = pinned_choices(first)
     assert p.method == first.method_used == "kriging"  # the sample's reflector is planar: kriging makes the map
-    assert p.variogram_model == first.seismic_diag["variogram"].model
+    assert p.variogram_model == first.seismic_diagnostics.variogram.model
 
 
 def test_remap_writes_the_map_the_whole_run_writes(site, tmp_path):
@@ -72,4 +72,4 @@ def test_remap_without_a_folder_only_computes(site):
     d, _ = site
     outcome = remap(d / "survey.toml", Pinned(variogram_model="exponential", method="kriging"))
     assert outcome.written == []
-    assert outcome.result.seismic_diag["variogram"].model == "exponential"
+    assert outcome.result.seismic_diagnostics.variogram.model == "exponential"
