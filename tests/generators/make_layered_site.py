@@ -71,9 +71,11 @@ Accuracy (checked by ``tests/core/test_layered_generator.py`` and by
 ``--validate`` at the full grid spacing against closed-form answers) is a few
 hundredths of a millisecond; noise and mispicks are added afterwards.
 
-Run time: about 13 minutes with two processes on a 2-core machine for the full
-site (``--jobs 1`` doubles it); ``--quick`` (one line, 0.5 m grid) runs in
-about a minute and writes to another folder.
+Run time: the full site takes about 16 CPU-minutes (920 s user time, 440 MB
+per process), i.e. about 8-9 minutes with the default two processes on an
+otherwise idle 2-core machine (measured: 48 minutes of wall time on a heavily
+shared one). ``--quick`` (line A only, 0.5 m grid) takes about a minute of CPU
+and writes to a temporary folder unless ``--out`` is given.
 
 Usage::
 
