@@ -30,7 +30,7 @@ if TYPE_CHECKING:  # annotations only: the result types of the steps
     from .surface.variogram import ExperimentalVariogram, VariogramModel
     from .survey.ground import GroundModel
     from .survey.model import GatherSet, Survey
-    from .tomography.joint import TomographyResult
+    from .tomography.layered import LayeredEstimate
 
 __all__ = [
     "BoreholeCheck",
@@ -179,10 +179,10 @@ class TomographyOutcome:
     skipped_reason : str or None
         Why the inversion was not run; None when it was.
     surface : SurfaceGrid or None
-        The inverted surface read at the gathers' reflector points, kriged with
-        the boreholes onto the output grid.
-    inversion : TomographyResult or None
-        The joint inversion itself (velocity, residuals, node grid).
+        The joint estimate of the mapped reflector: its posterior mean and
+        standard deviation at every output cell, masked where not mapped.
+    inversion : LayeredEstimate or None
+        The joint estimate itself (all interfaces, layer velocities, residuals).
     curvature_flag : ndarray of bool (g,) or None
         Gathers of the mapped reflector whose velocity departs from the site
         velocity beyond their error (reflector curvature).
@@ -191,17 +191,18 @@ class TomographyOutcome:
     difference_m : ndarray (ny, nx) or None
         Inverted surface minus the kriged gather-fit surface (m).
     diagnostics : SurfaceDiagnostics or None
-        The kriging of the inverted points.
+        A kriging of ``kriged_data`` (its variogram, for conditional simulations).
     kriged_data : tuple of 4 ndarray or None
-        What was kriged: ``(x_m, y_m, elevation_m, sigma_m)`` of the inverted
-        points and the boreholes (for a conditional simulation of the surface).
+        ``(x_m, y_m, elevation_m, sigma_m)``: the joint estimate read at the
+        gathers' reflector points, and the boreholes (for a conditional
+        simulation of the surface).
     used : ndarray of bool (n,) or None
-        Picks given to the inversion (mapped reflector, not excluded).
+        Picks given to the estimate (reflectors of the layer order, not excluded).
     """
 
     skipped_reason: Optional[str] = None
     surface: Optional[SurfaceGrid] = None
-    inversion: Optional[TomographyResult] = None
+    inversion: Optional[LayeredEstimate] = None
     curvature_flag: Optional[np.ndarray] = None
     curvature_reason: Optional[np.ndarray] = None
     difference_m: Optional[np.ndarray] = None

@@ -23,7 +23,7 @@ from typing import Dict, Optional, Union
 import numpy as np
 
 from .errors import GridError, InversionError, RockheadWarning, SurveyConfigError
-from .grid import GridSpec, bilinear, fill_nearest, nice_step
+from .grid import GridSpec, bilinear, nice_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import (
     BoreholeCheck,
@@ -48,9 +48,9 @@ from .surface.contours import contours_layer
 from .surface.corridor import line_corridor
 from .surface.trend import grid_with_trend, predict_with_trend
 from .survey.ground import GroundModel
-from .tomography.joint import curvature_flags, invert_reflector, robust_site_velocity, surface_values
+from .tomography.layered import BoreholeTies, LayeredSettings, estimate_layered, reflector_order
+from .tomography.start import GatherPoints, curvature_flags, robust_site_velocity, start_from_gathers
 
-NODE_CELLS = 2  # tomography node spacing in output cells
 SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
 
 __all__ = ["SURFACE_METHODS", "compute", "fit_step"]
@@ -288,78 +288,74 @@ def site_velocity(fit: FitStep, reflector: str) -> SiteVelocity:
 
 
 def tomography_step(survey, fit, start, spec, forced=False, progress=None, corridor=None,
-                    site=None) -> TomographyOutcome:
-    """Joint inversion of every pick for the surface and the velocity (Bishop et al. 1985).
+                    site=None, ground=None) -> TomographyOutcome:
+    """Joint estimate from every pick of every reflector: layered overburden, interfaces, velocities.
 
-    Starts from the gridded surface ``start`` and the robust site velocity
-    ``site`` of the gather fits (:func:`site_velocity` of ``fit`` when not
-    given); nodes every ``NODE_CELLS`` output cells. Returns an outcome with
-    its ``skipped_reason`` (auto mode) when the picks do not support it;
-    raises InversionError when the method was asked for explicitly.
+    The reflectors are layered top down (``[processing] layers``, else by
+    median pick time); the gather fits start the model through Dix interval
+    velocities (:mod:`.tomography.start`) and :func:`~.tomography.layered.estimate_layered`
+    does the rest. The surface of the mapped reflector is the posterior mean
+    at every output cell, its std the posterior standard deviation (not
+    re-kriged). ``start`` (the kriged gather fits) is only compared with it;
+    ``site`` (:func:`site_velocity`) flags curved-reflector gathers. Returns an
+    outcome with its ``skipped_reason`` (auto mode) when the picks do not
+    support it; raises InversionError when the method was asked for explicitly.
     """
     f, g = fit.fits, fit.gathers
-    mapped = np.asarray(g.reflector).astype(str) == str(survey.settings.reflector)
+    st = survey.settings
+    labels = np.asarray(g.reflector).astype(str)
+    mapped = labels == str(st.reflector)
     if site is None:
-        site = site_velocity(fit, survey.settings.reflector)
+        site = site_velocity(fit, st.reflector)
     v_site, v_spread, n_v = site.velocity_m_s, site.spread_m_s, site.n_gathers
-    use = ~f.excluded & mapped[g.gather]
+    use = ~f.excluded
     why = None
-    if use.sum() < 200:
-        why = f"only {int(use.sum())} picks of the mapped reflector (at least 200 needed)"
+    if np.sum(use & mapped[g.gather]) < 200:
+        why = f"only {int(np.sum(use & mapped[g.gather]))} picks of the mapped reflector (at least 200 needed)"
     elif n_v < 5:
         why = f"only {n_v} usable gathers for a starting velocity (at least 5 needed)"
     if why:
         if forced:
             raise InversionError(f"the joint inversion is not supported by this survey: {why}")
         return TomographyOutcome.skipped(why)
+    pick_labels = labels[g.gather]
+    order = reflector_order(pick_labels[use], g.time_s[use], getattr(st, "layers", None))
+    use &= np.isin(pick_labels, order)
+    start_model = start_from_gathers(GatherPoints.from_fit(g, f, fit.points), order)
     bh = survey.boreholes
-    boreholes = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, bh.elevation_m, bh.sigma_m)
-    # nodes every NODE_CELLS output cells (row 0 south, as the tomography wants), covering the grid
-    step = spec.cell_size_m * NODE_CELLS
-    x_w, x_e, y_s, y_n = spec.bounds
-    nx = int(np.ceil((x_e - x_w) / step)) + 1
-    ny = int(np.ceil((y_n - y_s) / step)) + 1
-    grid = (x_w, y_s, step, nx, ny)
-    gx, gy = np.meshgrid(x_w + step * np.arange(nx), y_s + step * np.arange(ny))
-    start_nodes = bilinear(spec, fill_nearest(start.z), gx, gy)
-    start_nodes = fill_nearest(np.where(np.isfinite(start_nodes), start_nodes, np.nan))
-    res = invert_reflector(
-        g.source_xyz[use], g.receiver_xyz[use], g.time_s[use], g.sigma_s[use], grid,
-        start_nodes, v_site, boreholes=boreholes,
-        robust_scale=survey.settings.robust_scale, reject_sigma=survey.settings.reject_sigma, progress=progress,
+    ties = None if bh is None or not len(bh) else BoreholeTies.from_boreholes(bh, st.reflector)
+    res = estimate_layered(
+        g.source_xyz[use], g.receiver_xyz[use], g.time_s[use], g.sigma_s[use], pick_labels[use], start_model, spec,
+        order=order, boreholes=ties, settings=LayeredSettings.from_settings(st), ground=ground, progress=progress,
     )
-    # Between the lines no pick constrains the surface; there the inversion's
-    # penalty-interpolated values carry no usable sigma. So the inverted surface
-    # is read at the gathers' reflector points (elevation and the nodes' posterior
-    # sigma, bilinear) and those points are kriged with the boreholes onto the
-    # output grid: the joint inversion corrects the curvature bias of each
-    # gather's point, kriging interpolates between the lines with a standard
-    # deviation, on the same data layout as the gather-fit surface.
+    k = res.index(st.reflector)
+    z, std, mask = res.elevation_m[k], res.sigma_m[k], res.mask[k]
+    if corridor is not None:  # a single line: only its corridor (its cross-line dip is unknown)
+        mask = mask | corridor.outside(spec)
+        z, std = np.where(mask, np.nan, z), np.where(mask, np.nan, std)
+    surface = SurfaceGrid(spec, z, std, mask, "tomography", int(np.sum(res.used)))
+    # the hand-off's conditional simulations krige points: the joint estimate read at the gathers'
+    # reflector points with its posterior sigma, and the boreholes (the map itself is not re-kriged)
     pts = fit.points
-    sel = mapped & (f.status == "ok") & pts.finite & np.asarray(res.grid.contains(pts.x_m, pts.y_m))
+    sel = mapped & (f.status == "ok") & pts.finite
     x, y = pts.x_m[sel], pts.y_m[sel]
-    zz = surface_values(np.asarray(res.elevation_unmasked_m), x, y, grid)
-    node_spec = GridSpec(x_w, y_s + (ny - 1) * step, step, nx, ny)
-    ss = bilinear(node_spec, np.asarray(res.sigma_m)[::-1], x, y)
+    zz = bilinear(spec, res.elevation_unmasked_m[k], x, y)
+    ss = bilinear(spec, res.sigma_unmasked_m[k], x, y)
     keep = np.isfinite(zz) & np.isfinite(ss)
     x, y, zz, ss = x[keep], y[keep], zz[keep], ss[keep]
-    if boreholes is not None:
+    if ties is not None:
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
-    surface, diag = grid_with_trend(x, y, zz, ss, spec, survey.settings, corridor=corridor)
-    mask = surface.mask | start.mask
-    z = np.where(mask, np.nan, surface.z)
-    surface = SurfaceGrid(spec, z, np.where(mask, np.nan, surface.std), mask, "tomography",
-                          int(np.sum(res.used & ~res.rejected)))
+    _, diag = grid_with_trend(x, y, zz, ss, spec, st, corridor=corridor)
     flag, reason = curvature_flags(f.velocity_m_s, f.se_velocity_m_s, v_site, v_spread)
     return TomographyOutcome(
         surface=surface,
         inversion=res,
         curvature_flag=flag & (f.status == "ok") & mapped,
         curvature_reason=reason,
-        difference_m=z - start.z,
+        difference_m=surface.z - start.z,
         diagnostics=SurfaceDiagnostics.from_surface(diag),
-        kriged_data=(x, y, zz, ss),  # what was kriged (for conditional simulation of this surface)
+        kriged_data=(x, y, zz, ss),  # the joint estimate at the points (for conditional simulation)
         used=use,
     )
 
@@ -466,12 +462,19 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     if method in ("auto", "tomography"):
         progress.info("joint inversion of all picks (reflection traveltime tomography)")
         tomography = tomography_step(survey, fit, kriged_surface, spec, method == "tomography",
-                                     SubProgress(progress, 60, 95), corridor=corridor, site=site)
+                                     SubProgress(progress, 60, 95), corridor=corridor, site=site, ground=ground)
+        layers = tomography.inversion.names if tomography.ran else ()
         if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
             notes.append(f"joint inversion skipped: {tomography.skipped_reason}; surface by {interp}")
-        elif method == "tomography" or np.any(tomography.curvature_flag):
+        elif method == "tomography" or np.any(tomography.curvature_flag) or len(layers) > 1:
             surface, method_used = tomography.surface, "tomography"
-            if method == "auto":
+            if method == "auto" and len(layers) > 1:
+                notes.append(
+                    f"{len(layers)} reflectors picked ({', '.join(layers)}): the gather fits' velocities are rms "
+                    "velocities of the layers above, so the surface comes from the joint estimate of the layered "
+                    "overburden from all picks"
+                )
+            elif method == "auto":
                 notes.append(
                     f"{int(np.sum(tomography.curvature_flag))} gathers depart from the site velocity beyond their "
                     "error (reflector curvature): the surface comes from the joint inversion of all picks"

@@ -93,7 +93,7 @@ def run_info(result: RunResult) -> list:
     tomo = result.tomography
     if tomo is not None and tomo.inversion is not None:
         t = tomo.inversion
-        items.append(("joint_inversion_velocity_m_s", f"{t.velocity_m_s:.2f} +- {t.sigma_velocity_m_s:.2f}"))
+        items.append(("joint_estimate_layers", " | ".join(t.layer_text())))
     elif tomo is not None:
         items.append(("joint_inversion", f"not run: {tomo.skipped_reason}"))
     if result.depth_ratio is not None:

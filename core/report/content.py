@@ -71,8 +71,12 @@ def _summary(rep, r):
     tomo = r.tomography
     if tomo is not None and tomo.inversion is not None:
         res = tomo.inversion
-        items.append(("overburden velocity, joint inversion",
-                      f"{res.velocity_m_s:.1f} ± {res.sigma_velocity_m_s:.1f} m/s"))
+        for j, text in enumerate(res.layer_text()):
+            items.append((f"layer {j + 1} velocity, joint estimate", text))
+        avg = res.median_average_velocity_m_s(res.names[-1])
+        if np.isfinite(avg):
+            items.append((f"vertical-average velocity to {res.names[-1]} (median of the mapped cells)",
+                          f"{avg:.0f} m/s"))
     items += [
         ("surface method", r.method_used),
         ("grid", f"{r.spec.nx} × {r.spec.ny} cells of {r.spec.cell_size_m:g} m; "
@@ -200,22 +204,28 @@ def _surface(rep, r):
     tomo = r.tomography
     if tomo is not None and tomo.inversion is not None:
         res = tomo.inversion
-        rep.heading("Joint inversion of all picks and comparison with the gather-fit surface", level=3)
+        rep.heading("Joint estimate from all picks and comparison with the gather-fit surface", level=3)
         f = r.fit.fits
         used = f.weight > 0
         rep.paragraph(
-            "Reflection traveltime tomography (Bishop et al. 1985): every pick is modelled through its "
-            "Fermat reflection point on a smooth surface through grid nodes, with one overburden velocity; "
-            f"Gauss-Newton with a curvature penalty and robust weights, {res.iterations} iterations "
-            f"({'converged' if res.converged else 'NOT converged'}). Velocity {res.velocity_m_s:.1f} ± "
-            f"{res.sigma_velocity_m_s:.1f} m/s; velocity and mean depth correlate at "
-            f"{res.velocity_depth_correlation:+.2f} (velocity and depth trade off: a velocity error of 1 % "
-            "moves depths by about 1 %)."
+            f"Every pick of the reflectors {', '.join(res.names)} (top down) is modelled at once through a "
+            "layered overburden: each interface a smooth surface through grid nodes with a geostatistical prior "
+            "about a plane, each layer a velocity that may change laterally and with depth; the ray of each pick "
+            "refracts at the interfaces above its reflector and reflects at it (Fermat's principle). Robust "
+            f"Gauss-Newton, {res.iterations} iterations ({'converged' if res.converged else 'NOT converged'}). "
+            "The map is the posterior mean and its sigma the posterior standard deviation, including the "
+            "uncertainty of the velocities (velocity and depth trade off: 1 % of velocity is about 1 % of depth)."
         )
+        rep.items([(f"layer {j + 1}", text) for j, text in enumerate(res.layer_text())])
+        if res.choice is not None:
+            rep.paragraph("Velocity model of each layer chosen by the Bayesian information criterion: "
+                          + res.choice.summary(res.names) + ".")
+        for note in res.notes:
+            rep.paragraph(note, cls="small")
         rep.items([
             ("pick residual rms, per-gather plane fits", f"{_rms(f.residual_s[used]) * 1e3:.3f} ms"),
-            ("pick residual rms, joint inversion", f"{_rms(res.residual_s[res.used & ~res.rejected]) * 1e3:.3f} ms"),
-            ("picks rejected by the joint inversion", int(np.sum(res.rejected))),
+            ("pick residual rms, joint estimate", f"{_rms(res.residual_s[res.used]) * 1e3:.3f} ms"),
+            ("picks rejected by the joint estimate", int(np.sum(res.rejected))),
             ("gathers flagged by the site velocity check", int(np.sum(tomo.curvature_flag))),
         ])
         diff = tomo.difference_m

@@ -191,12 +191,15 @@ def interface_values(z_nodes, spec: GridSpec, x_m, y_m, derivatives: int = 0, su
         k = np.broadcast_to(np.asarray(surface, np.int64), shape).ravel()
         patch = z[k[:, None, None], ir[:, :, None], ic[:, None, :]]
 
-    def comb(a, b):
-        return np.einsum("mi,mij,mj->m", a, patch, b).reshape(shape)
-
     if derivatives == 0:
-        return comb(wr[0], wc[0])
-    out = [comb(wr[0], wc[0]), comb(wr[0], wc[1]), comb(wr[1], wc[0])]
+        return np.einsum("mi,mij,mj->m", wr[0], patch, wc[0]).reshape(shape)
+    # contract the columns with the value, slope and curvature weights at once, then the rows
+    cols = np.matmul(patch, np.stack(wc[: derivatives + 1], axis=-1))  # (m, 4 rows, 1 + derivatives)
+
+    def row(a, j):
+        return np.einsum("mi,mi->m", a, cols[:, :, j]).reshape(shape)
+
+    out = [row(wr[0], 0), row(wr[0], 1), row(wr[1], 0)]
     if derivatives >= 2:
-        out += [comb(wr[0], wc[2]), comb(wr[1], wc[1]), comb(wr[2], wc[0])]
+        out += [row(wr[0], 2), row(wr[1], 1), row(wr[2], 0)]
     return tuple(out)

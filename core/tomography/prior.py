@@ -1,36 +1,40 @@
-"""Geostatistical prior of an interface: a Matern (nu = 1) Gaussian Markov random field on the node grid.
+"""Geostatistical prior of an interface: a Matern Gaussian Markov random field on the node grid.
 
 An interface is its regional plane plus a stationary random relief. The
-relief's covariance is the Matern covariance with smoothness nu = 1,
+relief's covariance is a Matern covariance of smoothness nu = 1 or 2,
 
 .. math::
 
-    C(r) = \\sigma^2\\, \\kappa r\\, K_1(\\kappa r), \\qquad \\rho = \\sqrt 8 / \\kappa,
+    C(r) = \\sigma^2\\, \\frac{2^{1-\\nu}}{\\Gamma(\\nu)} (\\kappa r)^\\nu K_\\nu(\\kappa r),
+    \\qquad \\rho = \\sqrt{8\\nu} / \\kappa,
 
-(:math:`K_1` the modified Bessel function of the second kind, :math:`\\rho`
-the distance at which the correlation has dropped to 0.1397). It is the
+(:math:`K_\\nu` the modified Bessel function of the second kind, :math:`\\rho`
+the distance at which the correlation has dropped to about 0.14). It is the
 stationary solution of the stochastic partial differential equation
-:math:`(\\kappa^2 - \\Delta) u = \\mathcal W / \\tau` in two dimensions, so on a
-regular lattice of spacing h with the five-point Laplacian
-:math:`\\Delta_h` its precision matrix is sparse [Lindgren, Rue & Lindstrom 2011]:
+:math:`(\\kappa^2 - \\Delta)^{\\alpha/2} u = \\mathcal W / \\tau`, :math:`\\alpha = \\nu + 1`,
+in two dimensions, so on a regular lattice of spacing h with the five-point
+Laplacian :math:`\\Delta_h` its precision matrix is sparse [Lindgren, Rue &
+Lindstrom 2011]:
 
 .. math::
 
-    Q = \\tau^2 h^2 \\left(\\kappa^2 I - \\Delta_h\\right)^2
-      = \\tau^2 \\left(\\kappa^4 C + 2\\kappa^2 G + G C^{-1} G\\right),
-    \\qquad C = h^2 I,\\ G = -h^2 \\Delta_h,
+    Q = \\tau^2 h^2 \\left(\\kappa^2 I - \\Delta_h\\right)^{\\alpha},
+    \\qquad \\text{e.g. for } \\alpha = 2:\\
+    Q = \\tau^2 \\left(\\kappa^4 C + 2\\kappa^2 G + G C^{-1} G\\right),\\ C = h^2 I,\\ G = -h^2 \\Delta_h,
 
-(zero-flux edges). The continuum marginal variance is
-:math:`\\sigma^2 = 1/(4\\pi\\kappa^2\\tau^2)`; on the lattice :math:`\\tau` is set
-so that the variance of the infinite lattice equals :math:`\\sigma^2` exactly
-(its spectral integral, :func:`lattice_variance`), so a coarse node spacing
-does not change the stated uncertainty. Near the edges the zero-flux
-condition raises the variance (up to about twice at an edge): conservative.
+(zero-flux edges). On the lattice :math:`\\tau` is set so that the variance of
+the infinite lattice equals :math:`\\sigma^2` exactly (its spectral integral,
+:func:`lattice_variance`), so a coarse node spacing does not change the
+stated uncertainty. Near the edges the zero-flux condition raises the
+variance (up to about twice at an edge): conservative.
 
 The parameters come from the reflector's own data (:func:`fit_matern`): the
 experimental variogram of the gather-fit points after a plane is removed,
 fitted with the Matern variogram plus a nugget (the points' own scatter,
-which is not relief and is left out of the prior).
+which is not relief and is left out of the prior). Both smoothnesses are
+fitted and the better fit is kept: a smooth reflector (a rounded knoll, a
+gentle channel) has a variogram with a parabolic start, which nu = 2 follows
+and nu = 1 does not (it would overstate the uncertainty between the lines).
 
 References
 ----------
@@ -40,6 +44,8 @@ References
     Royal Statistical Society B 73(4), 423-498.
 [Cressie 1985] Cressie, N. (1985). Fitting variogram models by weighted least
     squares. Mathematical Geology 17(5), 563-586.
+[Huber 1964] Huber, P. J. (1964). Robust estimation of a location parameter.
+    Annals of Mathematical Statistics 35(1), 73-101.
 """
 
 from __future__ import annotations
@@ -51,84 +57,107 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.integrate import quad
 from scipy.optimize import least_squares
-from scipy.special import i0e, k1
+from scipy.special import gamma, i0e, kv
 
 from ..grid import GridSpec
 from ..surface.variogram import experimental_variogram
 
-__all__ = ["MaternPrior", "fit_matern", "lattice_variance", "matern_correlation", "matern_precision", "plane_fit"]
+__all__ = [
+    "MaternPrior",
+    "fit_matern",
+    "lattice_variance",
+    "matern_correlation",
+    "matern_precision",
+    "plane_fit",
+    "robust_plane_fit",
+]
 
 
 @dataclass(frozen=True)
 class MaternPrior:
-    """Matern (nu = 1) prior of an interface's relief about its plane.
+    """Matern prior of an interface's relief about its plane.
 
     Attributes
     ----------
     sigma_m : float
         Marginal standard deviation of the relief (m).
     range_m : float
-        :math:`\\rho = \\sqrt 8/\\kappa` (m).
+        :math:`\\rho = \\sqrt{8\\nu}/\\kappa` (m).
     nugget_m2 : float
         Nugget of the variogram fit (m^2): the data points' own scatter, not in the prior.
     source : str
         How the values were found (the fit, or why a fallback was used).
+    nu : int
+        Smoothness, 1 or 2.
     """
 
     sigma_m: float
     range_m: float
     nugget_m2: float = 0.0
     source: str = ""
+    nu: int = 1
+
+    def __post_init__(self):
+        if self.nu not in (1, 2):
+            raise ValueError(f"Matern smoothness nu = {self.nu!r} is not supported; use 1 or 2")
 
     @property
     def kappa_per_m(self) -> float:
-        """The Matern scale parameter kappa = sqrt(8) / range (1/m)."""
-        return math.sqrt(8.0) / self.range_m
+        """The Matern scale parameter kappa = sqrt(8 nu) / range (1/m)."""
+        return math.sqrt(8.0 * self.nu) / self.range_m
 
 
-def matern_correlation(r_m, range_m):
-    """Matern (nu = 1) correlation :math:`\\kappa r K_1(\\kappa r)`, :math:`\\kappa = \\sqrt 8/\\rho`.
+def matern_correlation(r_m, range_m, nu: int = 1):
+    """Matern correlation :math:`\\frac{2^{1-\\nu}}{\\Gamma(\\nu)}(\\kappa r)^\\nu K_\\nu(\\kappa r)`.
 
-    >>> round(float(matern_correlation(10.0, 10.0)), 4)
-    0.1397
+    :math:`\\kappa = \\sqrt{8\\nu}/\\rho` with the range :math:`\\rho`.
+
+    At the range the correlation is 0.14 (0.1397 for nu = 1, 0.1392 for nu = 2):
+
+    >>> round(float(matern_correlation(10.0, 10.0)), 4), round(float(matern_correlation(10.0, 10.0, 2)), 4)
+    (0.1397, 0.1392)
     """
-    kr = math.sqrt(8.0) / float(range_m) * np.asarray(r_m, float)
+    kr = math.sqrt(8.0 * nu) / float(range_m) * np.asarray(r_m, float)
     with np.errstate(invalid="ignore", over="ignore"):
-        out = np.where(kr > 1e-12, kr * k1(np.maximum(kr, 1e-300)), 1.0)
+        safe = np.maximum(kr, 1e-300)
+        out = np.where(kr > 1e-12, 2.0 ** (1 - nu) / gamma(nu) * safe**nu * kv(nu, safe), 1.0)
     return out
 
 
-def lattice_variance(kappa_per_m: float, spacing_m: float) -> float:
-    """Marginal variance of :math:`Q = h^2 (\\kappa^2 - \\Delta_h)^2` (tau = 1) on the infinite lattice.
+def lattice_variance(kappa_per_m: float, spacing_m: float, alpha: int = 2) -> float:
+    """Marginal variance of :math:`Q = h^2 (\\kappa^2 - \\Delta_h)^\\alpha` (tau = 1) on the infinite lattice.
 
     In the wavenumber domain
 
     .. math::
 
         \\sigma^2 = \\frac{1}{(2\\pi)^2}\\int_{[-\\pi,\\pi]^2}
-        \\frac{d\\omega}{h^2 (\\kappa^2 + \\lambda(\\omega))^2},\\qquad
+        \\frac{d\\omega}{h^2 (\\kappa^2 + \\lambda(\\omega))^\\alpha},\\qquad
         \\lambda(\\omega) = \\frac{4}{h^2}\\left(\\sin^2\\frac{\\omega_1}{2} + \\sin^2\\frac{\\omega_2}{2}\\right);
 
-    with :math:`1/a^2 = \\int_0^\\infty t e^{-a t} dt` the two wavenumbers
-    separate and :math:`\\frac{1}{2\\pi}\\int e^{-4 u \\sin^2(\\omega/2)} d\\omega = e^{-2u} I_0(2u)`, so
+    with :math:`a^{-\\alpha} = \\Gamma(\\alpha)^{-1}\\int_0^\\infty t^{\\alpha-1} e^{-a t} dt` the two
+    wavenumbers separate and :math:`\\frac{1}{2\\pi}\\int e^{-4 u \\sin^2(\\omega/2)} d\\omega = e^{-2u} I_0(2u)`, so
 
     .. math::
 
-        \\sigma^2 = h^2 \\int_0^\\infty u\\, e^{-\\kappa^2 h^2 u} \\left(e^{-2u} I_0(2u)\\right)^2 du,
+        \\sigma^2 = \\frac{h^{2\\alpha - 2}}{\\Gamma(\\alpha)}
+        \\int_0^\\infty u^{\\alpha-1} e^{-\\kappa^2 h^2 u} \\left(e^{-2u} I_0(2u)\\right)^2 du,
 
     a one-dimensional integral evaluated by adaptive quadrature. For
-    :math:`\\kappa h \\to 0` it tends to the continuum :math:`1/(4\\pi\\kappa^2)`
-    [Lindgren, Rue & Lindstrom 2011].
+    :math:`\\kappa h \\to 0` it tends to the continuum value
+    :math:`1/(4\\pi(\\alpha - 1)\\kappa^{2\\alpha-2})` [Lindgren, Rue & Lindstrom 2011]:
 
     >>> k = 0.001
-    >>> round(lattice_variance(k, 1.0) * 4 * math.pi * k**2, 4)
-    1.0
+    >>> v2, v3 = lattice_variance(k, 1.0), lattice_variance(k, 1.0, 3)
+    >>> round(v2 * 4 * math.pi * k**2, 4), round(v3 * 8 * math.pi * k**4, 4)
+    (1.0, 1.0)
     """
     h = float(spacing_m)
     e = (float(kappa_per_m) * h) ** 2
+    a1 = int(alpha) - 1
 
     def f(u):
-        return u * math.exp(-e * u) * i0e(2.0 * u) ** 2
+        return u**a1 * math.exp(-e * u) * i0e(2.0 * u) ** 2
 
     scale = 1.0 / e  # the integrand decays on this scale
     total = 0.0
@@ -137,7 +166,7 @@ def lattice_variance(kappa_per_m: float, spacing_m: float) -> float:
     for lo, hi in zip(edges[:-1], edges[1:]):
         total += quad(f, lo, hi, limit=200, epsabs=0.0, epsrel=1e-10)[0]
     total += quad(f, edges[-1], np.inf, limit=200)[0]
-    return h * h * total
+    return h ** (2 * alpha - 2) * total / math.gamma(alpha)
 
 
 def _laplacian(spec: GridSpec):
@@ -155,24 +184,19 @@ def _laplacian(spec: GridSpec):
 def matern_precision(spec: GridSpec, prior: MaternPrior):
     """Sparse precision matrix Q of the prior on the node grid (node order ``row * nx + col``), in 1/m^2.
 
-    See the module notes; scaled so that an interior node of an unbounded grid
-    has variance ``prior.sigma_m ** 2``.
+    :math:`Q = \\tau^2 h^2 (\\kappa^2 I - \\Delta_h)^{\\nu + 1}` (see the module notes), scaled so
+    that an interior node of an unbounded grid has variance ``prior.sigma_m ** 2``.
     """
     h = spec.cell_size_m
     kappa = prior.kappa_per_m
+    alpha = prior.nu + 1
     G = _laplacian(spec) / h**2  # -Delta_h (1/m^2)
     K = (kappa**2 * sp.identity(G.shape[0]) + G).tocsr()
-    tau2 = lattice_variance(kappa, h) / prior.sigma_m**2
-    return (tau2 * h**2 * (K @ K)).tocsr()
-
-
-def matern_precision_root(spec: GridSpec, prior: MaternPrior):
-    """A square root R of :func:`matern_precision` (Q = R^T R): :math:`\\tau h (\\kappa^2 I - \\Delta_h)`."""
-    h = spec.cell_size_m
-    kappa = prior.kappa_per_m
-    G = _laplacian(spec) / h**2
-    tau2 = lattice_variance(kappa, h) / prior.sigma_m**2
-    return (math.sqrt(tau2) * h * (kappa**2 * sp.identity(G.shape[0]) + G)).tocsr()
+    tau2 = lattice_variance(kappa, h, alpha) / prior.sigma_m**2
+    Q = K
+    for _ in range(alpha - 1):
+        Q = Q @ K
+    return (tau2 * h**2 * Q).tocsr()
 
 
 def plane_fit(x_m, y_m, z_m, weight=None):
@@ -195,14 +219,57 @@ def plane_fit(x_m, y_m, z_m, weight=None):
     return coef, centre, z - T @ coef
 
 
-def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8) -> MaternPrior:
-    """Matern (nu = 1) prior of a surface from scattered elevation points.
+def robust_plane_fit(x_m, y_m, z_m, sigma_m, k: float = 1.5, iterations: int = 30):
+    """Plane fitted with Huber weights [Huber 1964], and the standard errors of its coefficients.
+
+    A local feature (a buried valley, a knoll) is a minority of the points and
+    departs from the regional plane; Huber's iteratively reweighted least
+    squares (threshold ``k`` robust standard deviations, scale 1.4826 MAD of
+    the weighted residuals) keeps it from tilting or shifting the plane.
+
+    Returns ``(coef (3,), centre (2,), standard_error (3,))`` with the plane
+    :math:`z = a + b (x - \\bar x) + c (y - \\bar y)`.
+
+    >>> x = np.array([0.0, 10, 20, 0, 10, 20, 0, 10, 20]); y = np.repeat([0.0, 10, 20], 3)
+    >>> z = 5 + 0.1 * x - 0.2 * y; z[4] -= 8.0  # one point in a valley
+    >>> coef, c, se = robust_plane_fit(x, y, z, np.full(9, 0.1))
+    >>> [round(float(v), 3) for v in coef]
+    [4.0, 0.1, -0.2]
+    """
+    x = np.asarray(x_m, float)
+    y = np.asarray(y_m, float)
+    z = np.asarray(z_m, float)
+    s = np.maximum(np.broadcast_to(np.asarray(sigma_m, float), z.shape), 1e-3)
+    centre = np.array([x.mean(), y.mean()])
+    T = np.column_stack([np.ones_like(x), x - centre[0], y - centre[1]])
+    w = np.ones_like(z)
+    coef = np.zeros(3)
+    scale = 1.0
+    for _ in range(iterations):
+        sw = np.sqrt(w) / s
+        coef_new = np.linalg.lstsq(T * sw[:, None], z * sw, rcond=None)[0]
+        u = (z - T @ coef_new) / s
+        scale = max(1.4826 * float(np.median(np.abs(u))), 1e-12)
+        a = np.abs(u) / scale
+        w = np.where(a <= k, 1.0, k / np.maximum(a, 1e-300))
+        done = np.allclose(coef_new, coef, rtol=0, atol=1e-9)
+        coef = coef_new
+        if done:
+            break
+    sw = np.sqrt(w) / s
+    cov = np.linalg.pinv((T * sw[:, None]).T @ (T * sw[:, None])) * scale**2
+    return coef, centre, np.sqrt(np.maximum(np.diag(cov), 0.0))
+
+
+def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8, nu=None) -> MaternPrior:
+    """Matern prior of a surface from scattered elevation points.
 
     A plane is removed (weighted by 1/sigma^2), the experimental variogram of
     the residuals is computed (:func:`~rockhead.core.surface.variogram.experimental_variogram`)
-    and :math:`\\gamma(h) = c_0 + \\sigma^2 (1 - \\kappa h K_1(\\kappa h))` is fitted by
+    and :math:`\\gamma(h) = c_0 + \\sigma^2 (1 - \\mathrm{corr}_\\nu(h))` is fitted by
     weighted least squares with Cressie's weights :math:`N(h)/\\gamma(h)^2`
-    [Cressie 1985]. With too few points or no usable fit, the residuals'
+    [Cressie 1985], for nu = 1 and nu = 2 (or the given ``nu``); the smaller
+    weighted misfit wins. With too few points or no usable fit, the residuals'
     variance and a third of the data extent are used instead (``source`` says so).
 
     Returns
@@ -235,33 +302,32 @@ def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8) -> MaternPrior:
     h, g, npair = ev.lag_m[m], ev.semivariance[m], ev.n_pairs[m]
     lag_min = max(float(h.min()), 1e-3)
     lag_max = float(ev.bin_edges_m[-1])
-
-    def model(p):
-        c0, s2, rng = np.exp(p)
-        return c0 + s2 * (1.0 - matern_correlation(h, rng))
-
-    def resid(p):
-        gm = model(p)
-        return np.sqrt(npair) * (g / gm - 1.0)  # Cressie (1985): sqrt(N) (gamma_hat - gamma) / gamma
-
     g_top = max(float(np.max(g)), 1e-6)
-    starts = [np.log([max(g[0] * 0.5, 1e-6), g_top, r]) for r in (lag_max / 4, lag_max / 2, lag_max)]
-    best = None
     lo = np.log([1e-8, 1e-8, lag_min])
     hi = np.log([10 * g_top, 100 * g_top, 5 * lag_max])
-    for p0 in starts:
-        p0 = np.clip(p0, lo + 1e-9, hi - 1e-9)
-        try:
-            r = least_squares(resid, p0, bounds=(lo, hi))
-        except (ValueError, np.linalg.LinAlgError):
-            continue
-        if best is None or r.cost < best.cost:
-            best = r
-    if best is None or not np.all(np.isfinite(best.x)):
+    fits = {}
+    for smooth in ((1, 2) if nu is None else (int(nu),)):
+        def resid(p, smooth=smooth):
+            c0, s2, rng = np.exp(p)
+            gm = c0 + s2 * (1.0 - matern_correlation(h, rng, smooth))
+            return np.sqrt(npair) * (g / gm - 1.0)  # Cressie (1985): sqrt(N) (gamma_hat - gamma) / gamma
+
+        for r0 in (lag_max / 4, lag_max / 2, lag_max):
+            p0 = np.clip(np.log([max(g[0] * 0.5, 1e-6), g_top, r0]), lo + 1e-9, hi - 1e-9)
+            try:
+                r = least_squares(resid, p0, bounds=(lo, hi))
+            except (ValueError, np.linalg.LinAlgError):
+                continue
+            if np.all(np.isfinite(r.x)) and (smooth not in fits or r.cost < fits[smooth].cost):
+                fits[smooth] = r
+    if not fits:
         return fallback
-    c0, s2, rng = np.exp(best.x)
+    best = min(fits, key=lambda k: fits[k].cost)
+    c0, s2, rng = np.exp(fits[best].x)
+    costs = ", ".join(f"nu = {k}: {2 * fits[k].cost:.3g}" for k in sorted(fits))
     return MaternPrior(
         math.sqrt(s2), float(rng), float(c0),
-        f"Matern (nu = 1) fit to the variogram of {x.size} points after removing a plane "
-        f"(sill {s2:.3g} m2, range {rng:.1f} m, nugget {c0:.3g} m2)",
+        f"Matern (nu = {best}) fit to the variogram of {x.size} points after removing a plane "
+        f"(sill {s2:.3g} m2, range {rng:.1f} m, nugget {c0:.3g} m2; weighted misfit {costs})",
+        best,
     )

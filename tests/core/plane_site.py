@@ -77,14 +77,14 @@ class PlaneSite:
         return gx, gy
 
     def _nodes(self):
-        """Node grid (2 m) over the lines for the Fermat times of a bowl (row 0 south)."""
-        from rockhead.core.tomography import joint as tm
+        """North-up node grid (2 m) over the lines for the Fermat times of a bowl."""
+        from rockhead.core.grid import GridSpec
 
         xy = np.concatenate([xyz[:, :2] for _, xyz in self.stations().values()])
         lo, hi = xy.min(axis=0) - 20.0, xy.max(axis=0) + 20.0
         n = np.ceil((hi - lo) / 2.0).astype(int) + 1
-        grid = tm.NodeGrid(float(lo[0]), float(lo[1]), 2.0, int(n[0]), int(n[1]))
-        X, Y = np.meshgrid(grid.x_m, grid.y_m)
+        grid = GridSpec(float(lo[0]), float(lo[1]) + 2.0 * (int(n[1]) - 1), 2.0, int(n[0]), int(n[1]))
+        X, Y = grid.coords()
         return grid, self.reflector(X, Y)
 
     def times(self, S, R):
@@ -92,11 +92,12 @@ class PlaneSite:
         if self.bowl_radius_m <= 0:
             n, d = self.plane
             return forward.image_source_traveltime(S, R, n, d, self.velocity_m_s)
-        from rockhead.core.tomography import joint as tm
+        from rockhead.core.tomography.raypath import LayeredModel, trace_reflections
 
         grid, nodes = self._nodes()
-        paths = tm.fermat_traveltime(S, R, nodes, grid, self.velocity_m_s)
-        assert paths.converged.all() and paths.inside.all()
+        model = LayeredModel(grid, nodes[None], [[self.velocity_m_s, 0.0, 0.0, 0.0]], [[0.0, 0.0, 0.0]])
+        paths = trace_reflections(model, S, R, np.zeros(len(S), int))
+        assert paths.valid.all()
         return paths.time_s
 
     def stations(self):

@@ -5,7 +5,7 @@ Truths (outside the code under test):
   1995, ch. 4): the dip at every crossing must be the plane's, to the fits'
   precision;
 - a bowl (radius of curvature 1,000 m, 40 times the depth), exact
-  reflection times by Fermat's principle (``tomography.joint.fermat_traveltime``,
+  reflection times by Fermat's principle (``tomography.raypath.trace_reflections``,
   an independent forward solver): the dip at each crossing must be the
   bowl's dip there, where combining whole lines averages dips that change
   along them.
