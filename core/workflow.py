@@ -463,7 +463,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
         progress.info("joint inversion of all picks (reflection traveltime tomography)")
         tomography = tomography_step(survey, fit, kriged_surface, spec, method == "tomography",
                                      SubProgress(progress, 60, 95), corridor=corridor, site=site, ground=ground)
-        layers = tomography.inversion.names if tomography.ran else ()
+        layers = tomography.inversion.names if tomography.inversion is not None else ()
         if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
             notes.append(f"joint inversion skipped: {tomography.skipped_reason}; surface by {interp}")
         elif method == "tomography" or np.any(tomography.curvature_flag) or len(layers) > 1:

@@ -51,7 +51,7 @@ __all__ = ["log_det_matern", "tune_priors"]
 
 
 def log_det_matern(spec, prior: MaternPrior) -> float:
-    """log det of :func:`~.prior.matern_precision` on ``spec`` (exact, from the Laplacian's eigenvalues)."""
+    """Log-determinant of :func:`~.prior.matern_precision` on ``spec`` (exact, from the Laplacian's eigenvalues)."""
     from .prior import lattice_variance
 
     h = spec.cell_size_m

@@ -517,7 +517,8 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
     if cfg.complexity == "auto":
         fixed = None
     else:
-        fixed = (cfg.complexity,) * K if isinstance(cfg.complexity, str) else tuple(cfg.complexity)
+        given = cfg.complexity
+        fixed = (given,) * K if isinstance(given, str) else tuple(given)  # type: ignore[arg-type]
         if len(fixed) != K:
             raise InversionError(f"{len(fixed)} velocity models given for {K} layers")
         for c in fixed:
@@ -763,7 +764,10 @@ def _choose(layout, state, post, data) -> ModelChoice:
     sgrad = np.stack([sd[free_idx[k, 1:]] for k in range(K)])
     n = post.n_used
     names = list(COMPLEXITIES)
-    cands, wald, npar, bic = [], [], [], []
+    cands: list = []
+    wald: list = []
+    npar_list: list = []
+    bic_list: list = []
     for combo in itertools.product(names, repeat=K):
         zero = [free_idx[k, j] for k in range(K) for j in range(1, 4) if not COMPLEXITIES[combo[k]][j]]
         if zero:
@@ -775,14 +779,14 @@ def _choose(layout, state, post, data) -> ModelChoice:
         k = sum(sum(COMPLEXITIES[c]) for c in combo)
         cands.append(tuple(combo))
         wald.append(w)
-        npar.append(k)
-        bic.append(w + k * math.log(max(n, 2)))
-    bic = np.array(bic)
-    npar = np.array(npar)
+        npar_list.append(k)
+        bic_list.append(w + k * math.log(max(n, 2)))
+    bic = np.array(bic_list)
+    npar = np.array(npar_list)
     # Occam's window: a more complex model needs strong evidence, a BIC lower by more than 6
     # [Kass & Raftery 1995]; of the models within 6 of the best, the one with the fewest free
     # parameters (then the lowest BIC) is kept
     window = np.flatnonzero(bic <= bic.min() + BIC_STRONG)
     fewest = window[npar[window] == npar[window].min()]
     best = int(fewest[np.argmin(bic[fewest])])
-    return ModelChoice(tuple(cands), np.array(wald), np.array(npar), bic, best, n, grads, sgrad)
+    return ModelChoice(tuple(cands), np.array(wald), npar, bic, best, n, grads, sgrad)

@@ -305,7 +305,7 @@ def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8, nu=None) -> Mat
     g_top = max(float(np.max(g)), 1e-6)
     lo = np.log([1e-8, 1e-8, lag_min])
     hi = np.log([10 * g_top, 100 * g_top, 5 * lag_max])
-    fits = {}
+    fits: dict = {}
     for smooth in ((1, 2) if nu is None else (int(nu),)):
         def resid(p, smooth=smooth):
             c0, s2, rng = np.exp(p)

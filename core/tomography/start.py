@@ -157,7 +157,7 @@ def start_from_gathers(points: GatherPoints, order) -> StartModel:
     ok = np.asarray(points.ok, bool) & np.isfinite(points.t0_s) & np.isfinite(points.velocity_m_s)
     ok &= np.isfinite(points.depth_m) & np.isfinite(points.x_m) & np.isfinite(points.y_m)
     rank = {n: i for i, n in enumerate(names)}
-    layer_v = [[] for _ in range(K)]
+    layer_v: list[list[float]] = [[] for _ in range(K)]
     for k in sorted(set(key[ok].tolist())):
         idx = np.flatnonzero(ok & (key == k) & np.isin(refl, names))
         if idx.size == 0:
@@ -197,15 +197,15 @@ def start_from_gathers(points: GatherPoints, order) -> StartModel:
             )
     # depths by the layer cake of the site's interval velocities and each shot's own t0
     # (a gather's own moveout velocity is biased where the reflector curves; its t0 is not)
-    t0 = {}
+    t0: dict[tuple[str, int], float] = {}
     for i in np.flatnonzero(ok & np.isin(refl, names)):
         t0[(key[i], rank[refl[i]])] = float(points.t0_s[i])
     dt_site = np.zeros(K)
     for j in range(K):
-        d = [t0[(kk, j)] - (t0[(kk, j - 1)] if j else 0.0)
-             for (kk, jj) in t0 if jj == j and (j == 0 or (kk, j - 1) in t0)]
-        d = [v for v in d if v > 0]
-        dt_site[j] = float(np.median(d)) if d else np.nan
+        diffs = [t0[(kk, j)] - (t0[(kk, j - 1)] if j else 0.0)
+                 for (kk, jj) in t0 if jj == j and (j == 0 or (kk, j - 1) in t0)]
+        positive = [v for v in diffs if v > 0]
+        dt_site[j] = float(np.median(positive)) if positive else np.nan
     for j in range(K):
         if not np.isfinite(dt_site[j]):
             dt_site[j] = float(np.nanmedian(dt_site)) if np.any(np.isfinite(dt_site)) else 0.0

@@ -61,6 +61,7 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Optional
 
 import numpy as np
 import scipy.sparse as sp
@@ -71,7 +72,7 @@ from ..grid import GridSpec
 from ..progress import check_cancel
 from .covariance import BandedCholesky
 from .nodes import node_weights
-from .raypath import LayeredModel, trace_reflections
+from .raypath import LayeredModel, LayeredPaths, trace_reflections
 
 __all__ = [
     "JointData",
@@ -113,18 +114,22 @@ class Layout:
 
     @property
     def nn(self) -> int:
+        """Nodes per interface."""
         return self.spec.nx * self.spec.ny
 
     @property
     def n_nodes(self) -> int:
+        """Node unknowns of all interfaces."""
         return self.n_interfaces * self.nn
 
     @property
     def n_small(self) -> int:
+        """Trend and free velocity unknowns."""
         return 3 * self.n_interfaces + int(self.free.sum())
 
     @property
     def n_params(self) -> int:
+        """All unknowns."""
         return self.n_nodes + self.n_small
 
     def band_order(self) -> np.ndarray:
@@ -163,12 +168,13 @@ class JointState:
     u: np.ndarray  # (K, nn)
     beta: np.ndarray  # (K, 3)
     theta: np.ndarray  # (K, 4)
-    paths: object = None
-    residual_s: np.ndarray = None
-    weight: np.ndarray = None
-    rejected: np.ndarray = None
+    paths: Optional[LayeredPaths] = None
+    residual_s: Optional[np.ndarray] = None
+    weight: Optional[np.ndarray] = None
+    rejected: Optional[np.ndarray] = None
 
     def copy(self):
+        """A copy whose arrays can be changed without touching this state."""
         return JointState(self.u.copy(), self.beta.copy(), self.theta.copy(), self.paths, self.residual_s,
                           self.weight, self.rejected)
 
@@ -391,9 +397,9 @@ def gauss_newton(layout, data, state, robust_scale=1.5, reject_sigma=4.0, max_it
         touched[np.unique(J.indices)] = True
         if B is not None:
             touched[np.unique(B.indices)] = True
-        dzn = (delta[:nn_all].reshape(K, layout.nn)
-               + (delta[nn_all : nn_all + 3 * K].reshape(K, 3) @ trend_basis(*layout.spec.coords(),
-                                                                               layout.centre_xy).T))
+        gx, gy = layout.spec.coords()
+        dzn = delta[:nn_all].reshape(K, layout.nn) + delta[nn_all : nn_all + 3 * K].reshape(K, 3) @ trend_basis(
+            gx, gy, layout.centre_xy).T
         dz_max = float(np.max(np.abs(dzn.ravel()[touched[:nn_all]]))) if touched[:nn_all].any() else 0.0
         rel_v = float(np.max(np.abs(dv) / v0_now)) if dv.size else 0.0
         state = reweight(data, trial, robust_scale, reject_sigma, sigma_scale)
@@ -416,21 +422,24 @@ class Posterior:
     """Laplace approximation at the optimum (see the module notes)."""
 
     layout: Layout
-    factor: BandedCholesky
+    factor: Optional[BandedCholesky]  # None when only the trend and velocity covariance was asked for
     U: np.ndarray  # A_uu^-1 A_us (n_nodes, n_small)
     S_inv: np.ndarray  # (n_small, n_small) covariance of (beta, theta_free)
     chi2_reduced: float
     n_used: int
-    _table: np.ndarray = None
+    _table: Optional[np.ndarray] = None
 
     def small_covariance(self) -> np.ndarray:
+        """Posterior covariance of the trends and free velocity parameters."""
         return self.S_inv
 
     def theta_covariance(self) -> np.ndarray:
+        """Posterior covariance of the free velocity parameters."""
         k = 3 * self.layout.n_interfaces
         return self.S_inv[k:, k:]
 
     def beta_covariance(self, s: int) -> np.ndarray:
+        """Posterior covariance of interface ``s``'s trend coefficients."""
         return self.S_inv[3 * s : 3 * s + 3, 3 * s : 3 * s + 3]
 
     def node_covariance_table(self) -> np.ndarray:
@@ -440,8 +449,10 @@ class Posterior:
         :math:`(A_{uu}^{-1})` between node (r, c) and node (r + dr, c + dc) of
         interface s (NaN beyond the grid); one Takahashi pass gives them all.
         """
-        if getattr(self, "_table", None) is not None:
+        if self._table is not None:
             return self._table
+        if self.factor is None:
+            raise InversionError("internal error: the node covariances need the posterior computed with cell_sigma")
         lay = self.layout
         ny, nx = lay.spec.shape
         K = lay.n_interfaces
