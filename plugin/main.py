@@ -90,18 +90,14 @@ class RockheadPlugin:
 
     # -- actions ------------------------------------------------------------------------------
     def _report_missing(self):
-        import sys
-
         message = deps.missing_message(self.missing)
         QgsMessageLog.logMessage(message, LOG_TAG, Qgis.Critical)
         names = ", ".join(m.pip or m.name for m in self.missing)
         short = tr(
             "missing Python package(s): {names}. See the log panel (Rockhead) for how to install them."
         ).format(names=names)
-        if self.iface is not None:
+        if self.iface is not None:  # qgis_process has no window: it prints the log message on stderr
             self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
-        else:  # qgis_process: no window, the message goes to the terminal
-            print(message, file=sys.stderr)
 
     def open_run_dialog(self):
         """Open the Processing dialog of the whole-survey algorithm."""

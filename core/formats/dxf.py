@@ -13,7 +13,21 @@ or object sections. A file holds
 
 Coordinates are written with six decimals (micrometres in a metric CRS), so
 the same drawing gives a byte-identical file. A DXF has no CRS: the
-coordinates are those of the survey's working CRS, which the report names.
+coordinates are those of the survey's working CRS, which the report names and
+the header comment states.
+
+Header comment. The file opens with comment lines (group code 999, which
+every DXF reader skips) carrying what the drawing cannot say otherwise: the
+caution, the software and survey it came from, the CRS and the vertical datum
+(:func:`write_dxf`'s ``comments``); each line is kept to 250 characters, in
+ASCII.
+
+Why this writer and not GDAL's DXF driver or ezdxf: the drawing is a handful
+of 3D polylines, labels and layers in the simplest DXF every CAD program reads
+(R12); GDAL's driver writes from a template header and turns 3D lines into its
+own entity choices, and ezdxf is not part of QGIS's Python on Windows or macOS
+(it would become a dependency for one small file). The output is checked
+against both (ezdxf and GDAL's DXF reader) in the tests.
 """
 
 from __future__ import annotations
@@ -21,6 +35,7 @@ from __future__ import annotations
 import math
 import os
 import re
+import textwrap
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
@@ -99,11 +114,20 @@ class _Writer:
         return "".join(self.parts).encode("ascii")
 
 
+def _comment_lines(comments: Iterable[str]) -> list:
+    """Comments as DXF lines: ASCII (other characters escaped), at most 250 characters each."""
+    out = []
+    for c in comments:
+        out += textwrap.wrap(_text(str(c)), 250, break_long_words=True) or [""]
+    return out
+
+
 def write_dxf(
     path,
     polylines: Sequence[DxfPolyline],
     texts: Iterable[DxfText] = (),
     layer_colours: Mapping[str, int] | None = None,
+    comments: Iterable[str] = (),
 ) -> Path:
     """Write 3D polylines and texts to an ASCII DXF (R12), atomically.
 
@@ -119,6 +143,8 @@ def write_dxf(
         ACI colour (1-255) of each layer; layers used but not listed get 7
         (white on dark, black on light backgrounds). Layer names: up to 31 of
         ``A-Z 0-9 _ $ -``.
+    comments : iterable of str
+        Header comment lines (group code 999): caution and provenance.
 
     Returns
     -------
@@ -153,6 +179,8 @@ def write_dxf(
         lo = hi = np.zeros(3)
 
     w = _Writer()
+    for line in _comment_lines(comments):
+        w.pair(999, line)
     w.pair(0, "SECTION")
     w.pair(2, "HEADER")
     w.pair(9, "$ACADVER")
@@ -245,6 +273,7 @@ def write_contours_dxf(
     kind: str = "elevation",
     labels: str = "index",
     label_height_m: float | None = None,
+    comments: Iterable[str] = (),
 ) -> Path:
     """Write one kind of contour of a contour layer to a DXF, z = the contour value.
 
@@ -264,6 +293,8 @@ def write_contours_dxf(
         the line and kept upright.
     label_height_m : float, optional
         Text height; default 1/150 of the larger side of the drawing's extent.
+    comments : iterable of str
+        Header comment lines (caution and provenance), see :func:`write_dxf`.
 
     Returns
     -------
@@ -316,4 +347,4 @@ def write_contours_dxf(
                 DxfText(mid.x, mid.y, value, _label_value(value), label_height_m, names["label"][0], angle)
             )
     colours = {name: colour for name, colour in names.values()}
-    return write_dxf(path, polylines, texts, colours)
+    return write_dxf(path, polylines, texts, colours, comments)

@@ -69,6 +69,7 @@ __all__ = [
     "gdal_timestamp",
     "list_layers",
     "raster_driver",
+    "read_grid",
     "read_layer",
     "read_raster",
     "vector_metadata",
@@ -424,6 +425,17 @@ def read_raster(path, band: int = 1, *, engine_name: str | None = None) -> Raste
     x0_edge, y0_edge, dx, dy = (float(v) for v in (gt[0], gt[3], gt[1], gt[5]))
     return Raster(values, x0_edge, y0_edge, dx, dy, _crs_from_wkt(wkt), nodata, dict(md), dict(bmd), desc or "",
                   unit or "")
+
+
+def read_grid(path, band: int = 1, *, engine_name: str | None = None):
+    """``(GridSpec, values, crs)`` of a north-up raster of square cells (the project's grid convention).
+
+    Values are float64 with NaN for nodata, row 0 north; raises
+    :class:`GeoreferenceError` for a raster that is not north-up with square
+    cells (read it with :func:`read_raster`).
+    """
+    r = read_raster(path, band, engine_name=engine_name)
+    return r.spec, r.values, r.crs
 
 
 # ------------------------------------------------------------------------------ vectors

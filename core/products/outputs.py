@@ -208,7 +208,10 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
         outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
     if len(result.contours):
         for kind in ("elevation", "depth"):
-            write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind)
+            what = ("z = reflector elevation (m)" if kind == "elevation" else
+                    "z = depth of the reflector below ground (m, positive down)")
+            write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind,
+                               comments=[f"Reflector {kind} contours; {what}.", *prov.lines()])
     check_cancel(progress)
 
 

@@ -96,6 +96,7 @@ def _run_cli(tmp_path, shim, *args):
 
 
 @pytest.mark.slow  # the command line in a child process
+@pytest.mark.slow
 def test_without_gdal_the_command_line_says_what_to_install(tmp_path):
     shim = _hide(tmp_path, "osgeo", "rasterio", "pyogrio")
     out = tmp_path / "out"
@@ -108,6 +109,7 @@ def test_without_gdal_the_command_line_says_what_to_install(tmp_path):
 
 
 @pytest.mark.slow  # a whole computation in a child process
+@pytest.mark.slow
 def test_without_contourpy_the_command_line_names_it(tmp_path):
     shim = _hide(tmp_path, "contourpy")
     out = tmp_path / "out"

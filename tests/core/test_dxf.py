@@ -166,3 +166,28 @@ def test_bad_options(tmp_path, contour_layer):
         write_contours_dxf(tmp_path / "x.dxf", contour_layer, kind="slope")
     with pytest.raises(OutputError, match="labels='some'"):
         write_contours_dxf(tmp_path / "x.dxf", contour_layer, labels="some")
+
+
+def test_header_comment_carries_caution_and_provenance(tmp_path, contour_layer):
+    """Comments (group 999) at the head of the file: ezdxf reads them back, GDAL's DXF reader skips them."""
+    from rockhead.core.products.provenance import CAUTION
+
+    comments = ["Made by Rockhead 0.1.0 from the survey 'Süd site' (surface: kriging).", "CAUTION: " + CAUTION * 3]
+    path = write_contours_dxf(tmp_path / "c.dxf", contour_layer, comments=comments)
+    raw = path.read_bytes()
+    assert raw.isascii() and raw.startswith(b"999\r\nMade by Rockhead 0.1.0 from the survey 'S\\U+00FCd site'")
+    lines = raw.decode("ascii").split("\r\n")
+    values = [lines[i + 1] for i in range(0, len(lines) - 1, 2) if lines[i].strip() == "999"]
+    assert all(len(v) <= 250 for v in values)  # R12 strings stay short: the long caution is wrapped
+    assert " ".join(values[1:]).replace("  ", " ").startswith("CAUTION: A seismic depth map is an interpretation")
+    pytest.importorskip("ezdxf")
+    from ezdxf import comments as dxf_comments
+    from ezdxf import recover
+
+    first = next(iter(dxf_comments.from_file(str(path))))
+    assert str(getattr(first, "value", first)).startswith("Made by Rockhead")  # a DXFTag (ezdxf 1.x) or text
+    _doc, auditor = recover.readfile(str(path))
+    assert not auditor.has_errors
+    # GDAL's DXF driver reads the same features as without comments
+    plain = write_contours_dxf(tmp_path / "p.dxf", contour_layer)
+    assert [(la, g.wkt) for la, g, _ in _ogr_features(path)] == [(la, g.wkt) for la, g, _ in _ogr_features(plain)]

@@ -327,6 +327,7 @@ print(json.dumps(out))
 """
 
 
+@pytest.mark.slow
 def test_written_on_the_other_stack_read_here(tmp_path, run_on_other_stack, gdal_validate):
     path = tmp_path / "other.gpkg"
     assert run_on_other_stack(_WRITE_ON_OTHER, path, "EPSG:32618+5703").strip() == run_on_other_stack.engine
@@ -344,6 +345,7 @@ def test_written_on_the_other_stack_read_here(tmp_path, run_on_other_stack, gdal
     assert info.geometries is None and list(info.fields["value"]) == ["an interpretation"]
 
 
+@pytest.mark.slow
 def test_written_here_read_on_the_other_stack(gpkg, run_on_other_stack):
     seen = json.loads(run_on_other_stack(_READ_ON_OTHER, gpkg))
     assert seen["engine"] == run_on_other_stack.engine != gdalio.engine()

@@ -210,6 +210,30 @@ def test_reader_gives_the_grid_spec_of_a_north_up_raster(tmp_path):
     back = gdalio.read_raster(path)
     assert back.spec == spec and back.crs is None
     np.testing.assert_array_equal(back.values, np.arange(35.0).reshape(5, 7))
+    got_spec, values, crs = gdalio.read_grid(path)
+    assert got_spec == spec and crs is None and values[0, 0] == 0.0  # row 0 is the north row
+
+
+def test_grid_reader_refuses_non_square_cells(tmp_path):
+    from rockhead.core.errors import GeoreferenceError
+
+    path = tmp_path / "rect.tif"
+    if gdalio.engine() == "pypi":
+        import rasterio
+        from rasterio.transform import Affine
+
+        with rasterio.open(path, "w", driver="GTiff", width=4, height=3, count=1, dtype="float32",
+                           transform=Affine(2.0, 0, 0, 0, -1.0, 3.0)) as ds:
+            ds.write(np.zeros((3, 4), "float32"), 1)
+    else:
+        from osgeo import gdal
+
+        ds = gdal.GetDriverByName("GTiff").Create(str(path), 4, 3, 1, gdal.GDT_Float32)
+        ds.SetGeoTransform((0.0, 2.0, 0.0, 3.0, 0.0, -1.0))
+        ds = None
+    assert gdalio.read_raster(path).dx == 2.0  # read as it is ...
+    with pytest.raises(GeoreferenceError, match="north-up square cells"):
+        gdalio.read_grid(path)  # ... but not taken for a GridSpec
 
 
 _WRITE_ON_OTHER = """
@@ -236,6 +260,7 @@ print(json.dumps({"engine": gdalio.engine(), "spec": [r.spec.x0, r.spec.y0, r.sp
 
 
 @pytest.mark.parametrize("crs_text", ["EPSG:32618+5703", CUSTOM_TM_TOWGS84], ids=["compound", "towgs84"])
+@pytest.mark.slow
 def test_written_on_the_other_stack_read_here(tmp_path, run_on_other_stack, gdal_validate, crs_text):
     path = tmp_path / "other.tif"
     assert run_on_other_stack(_WRITE_ON_OTHER, path, crs_text).strip() == run_on_other_stack.engine
@@ -250,6 +275,7 @@ def test_written_on_the_other_stack_read_here(tmp_path, run_on_other_stack, gdal
 
 
 @pytest.mark.parametrize("crs_text", ["EPSG:32618+5703", CUSTOM_TM_TOWGS84], ids=["compound", "towgs84"])
+@pytest.mark.slow
 def test_written_here_read_on_the_other_stack(tmp_path, run_on_other_stack, crs_text):
     z = _grid()
     spec = GridSpec(512_005.0, 5_001_365.0, 10.0, 53, 37)

@@ -72,6 +72,7 @@ def unstated_run(sample_dir, tmp_path_factory):
     return job.run(toml, out, method="kriging"), out
 
 
+@pytest.mark.slow
 def test_elevation_raster_carries_the_vertical_datum(stated_run, gdal_validate):
     _result, out = stated_run
     elevation = gdalio.read_raster(out / "reflector_elevation.tif")
@@ -85,6 +86,7 @@ def test_elevation_raster_carries_the_vertical_datum(stated_run, gdal_validate):
                                       "survey.gpkg")))
 
 
+@pytest.mark.slow
 def test_geopackage_is_3d_in_the_compound_crs(stated_run):
     _result, out = stated_run
     pts, crs = gdalio.read_layer(out / "survey.gpkg", "reflector_points")
@@ -104,6 +106,7 @@ def test_geopackage_is_3d_in_the_compound_crs(stated_run):
     assert "EVRF2007 height" in gdalio.vector_metadata(out / "survey.gpkg", "reflector_points")["Z"]
 
 
+@pytest.mark.slow
 def test_contours_carry_elevations(stated_run):
     result, out = stated_run
     lines, _ = gdalio.read_layer(out / "survey.gpkg", "contours")
@@ -121,6 +124,7 @@ def test_contours_carry_elevations(stated_run):
     assert checked["elevation"] > 50 and checked["depth"] > 50
 
 
+@pytest.mark.slow
 def test_report_and_run_info_name_the_datum_and_date(stated_run, unstated_run):
     _r, out = stated_run
     html = (out / "report.html").read_text(encoding="utf-8")
@@ -136,6 +140,7 @@ def test_report_and_run_info_name_the_datum_and_date(stated_run, unstated_run):
     assert gdalio.vector_metadata(out / "survey.gpkg")["SURVEY_DATE"] == "not stated"
 
 
+@pytest.mark.slow
 def test_file_dates_come_from_the_survey_date(stated_run, unstated_run):
     _r, out = stated_run
     # the TIFF DateTime tag and the GeoPackage's last_change are the survey's day, never the clock
@@ -159,3 +164,13 @@ def test_source_date_epoch_wins(monkeypatch):
     monkeypatch.delenv("SOURCE_DATE_EPOCH")
     assert product_timestamp("2025-06-14").isoformat() == "2025-06-14T00:00:00+00:00"
     assert product_timestamp(None).isoformat() == "1970-01-01T00:00:00+00:00"
+
+
+@pytest.mark.slow
+def test_dxf_header_names_the_datum_and_the_caution(stated_run):
+    _r, out = stated_run
+    head = (out / "contours_depth.dxf").read_bytes().decode("ascii").split("\r\n")[:40]
+    comments = " ".join(head[i + 1] for i in range(0, len(head) - 1, 2) if head[i].strip() == "999")
+    assert "z = depth of the reflector below ground" in comments
+    assert "EPSG:5621 (EVRF2007 height)" in comments and "survey date: 2025-06-14" in comments
+    assert "does not replace borings" in comments and "licensed professionals" in comments

@@ -20,6 +20,8 @@ from rockhead.core.formats import gdalio
 from rockhead.core.products import styles as core_styles
 from test_plugin_styling import axial_difference, dip_layer, render, symbol_geometry
 
+pytestmark = pytest.mark.slow  # the command line in a child process, and whole runs
+
 _CLI = """
 import sys
 from rockhead.core.cli import main

@@ -73,3 +73,20 @@ def test_run_whole_survey(qp_env, sample_survey, tmp_path):
     assert out.returncode == 0, out.stdout + out.stderr
     for name in ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif", "report.html"):
         assert (out_dir / name).is_file(), name
+
+
+def test_stripped_environment_names_what_is_missing(plugin_dir, tmp_path):
+    """A QGIS whose Python lacks contourpy (a module of that name raising ImportError, first on the
+    path): the plugin says which package and how to install it, registers no provider, no traceback."""
+    shim = tmp_path / "shim" / "contourpy"
+    shim.mkdir(parents=True)
+    (shim / "__init__.py").write_text('raise ImportError("No module named contourpy (hidden by the test)")\n')
+    env = enabled_env(tmp_path / "home", plugin_dir)
+    env["PYTHONPATH"] = str(tmp_path / "shim")
+    out = qgis_process(env, "list")
+    assert out.returncode == 0, out.stderr
+    assert "rockhead:" not in out.stdout  # no provider without its packages
+    text = out.stdout + out.stderr
+    assert "Rockhead cannot start: the Python package(s) contourpy could not be imported" in text
+    assert "pip install contourpy" in text and "apt install python3-contourpy" in text
+    assert "Traceback" not in text
