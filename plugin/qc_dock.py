@@ -203,8 +203,8 @@ class GatherQc:
             "reason": (str(f.reason[g]), None),
         }
 
-    def figure_svg(self, g: int) -> bytes:
-        """The gather's QC figure (stacked panels), as the report draws it."""
+    def figure_svg(self, g: int, size=None, with_parameters: bool = False) -> bytes:
+        """The gather's QC figure as the report draws it, laid out for a panel of ``size`` (px)."""
         from ..core.report.qc_svg import gather_svg
 
         rows = self.pick_rows(g)
@@ -223,8 +223,11 @@ class GatherQc:
                   f"{p['picks_rejected'][0]}, excluded {p['picks_excluded'][0]}")
         model = self.model_times_s(rows)
         # picks as they stand now (edits made since the fit show at their new times and states)
+        w, h = size or (520, 560)
+        layout = "grid" if h < 1.4 * w else "column"
         return gather_svg(self.offsets_m(rows), st["time_ms"] / 1e3, model, st["rejected"] & ~st["excluded"],
-                          st["excluded"], title, params, ident=f"q{g}", layout="column")
+                          st["excluded"], title, params if with_parameters else "", ident=f"q{g}", layout=layout,
+                          size=(w, h))
 
 
 # --------------------------------------------------------------------------------------------- tasks
@@ -282,24 +285,36 @@ class _EditCommand(QUndoCommand):
 
 # --------------------------------------------------------------------------------------------- plots
 class _SvgView(QWidget):
-    """Draws an SVG document scaled to the widget, keeping its aspect ratio."""
+    """Draws an SVG document made for the widget's size (redrawn when the widget is resized)."""
 
     def __init__(self, parent=None):
         super().__init__(parent)
         from qgis.PyQt.QtSvg import QSvgRenderer
 
         self.renderer = QSvgRenderer(self)
+        self.source = None  # (width, height) -> SVG bytes
         self.setSizePolicy(QSizePolicy.Expanding, QSizePolicy.Expanding)
-        self.setMinimumSize(QSize(260, 300))
+        self.setMinimumSize(QSize(300, 300))
 
-    def set_svg(self, data: bytes) -> None:
+    def set_source(self, source) -> None:
+        """Draw ``source(width, height)``, now and after every resize."""
+        self.source = source
+        self._render()
+
+    def _render(self) -> None:
         from qgis.PyQt.QtCore import QByteArray
 
-        self.renderer.load(QByteArray(data))
+        if self.source is None:
+            return
+        self.renderer.load(QByteArray(self.source(max(self.width(), 300), max(self.height(), 300))))
         self.update()
 
+    def resizeEvent(self, event):
+        super().resizeEvent(event)
+        self._render()
+
     def sizeHint(self):
-        return QSize(520, 900)
+        return QSize(520, 560)
 
     def paintEvent(self, _event):
         if not self.renderer.isValid():
@@ -374,7 +389,7 @@ class QcDock(QDockWidget):
             [tr("use"), tr("receiver"), tr("offset (m)"), tr("time (ms)"), tr("residual (ms)"), tr("flag")]
         )
         self.table.verticalHeader().setVisible(False)
-        self.table.verticalHeader().setDefaultSectionSize(20)
+        self.table.verticalHeader().setDefaultSectionSize(19)
         self.table.horizontalHeader().setStretchLastSection(True)
         self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
         self.table.setEditTriggers(QAbstractItemView.DoubleClicked | QAbstractItemView.EditKeyPressed)
@@ -403,8 +418,9 @@ class QcDock(QDockWidget):
         edit_row.addWidget(self.restore_button)
         lower_lay.addLayout(edit_row)
         splitter.addWidget(lower)
-        splitter.setStretchFactor(0, 3)
-        splitter.setStretchFactor(1, 2)
+        splitter.setStretchFactor(0, 1)
+        splitter.setStretchFactor(1, 1)
+        splitter.setSizes([420, 480])  # about half for the picks table: some 18 picks in view
         lay.addWidget(splitter, 1)
         self.caution_label = QLabel(tr("Caution: ") + CAUTION, body)
         self.caution_label.setWordWrap(True)
@@ -625,7 +641,8 @@ class QcDock(QDockWidget):
                 self.table.setItem(r, c, item)
         self.table.resizeColumnsToContents()
         self._filling = False
-        self.plot.set_svg(qc.figure_svg(self.current))
+        g = self.current
+        self.plot.set_source(lambda w, h, qc=qc, g=g: qc.figure_svg(g, (w, h)))
         self.params_label.setText(self._parameters_html(qc.parameters(self.current)))
 
     @staticmethod

@@ -56,6 +56,7 @@ QGIS_VERSION = "3.22.0"  # the oldest QGIS the plugin supports; later versions r
 # -- fields: alias and decimals shown ---------------------------------------------------------------
 #: Field name -> (alias, decimals shown for real values). Per-layer overrides in _LAYER_FIELDS.
 FIELDS = {
+    "fid": ("Feature id", None),  # the GeoPackage's primary key, shown by QGIS as a field
     "line": ("Line", None),
     "station": ("Station", None),
     "shot": ("Shot", None),
@@ -474,7 +475,7 @@ CONTOUR_STYLES = (("depth contours", "depth"), ("elevation contours", "elevation
 
 
 def _field_kinds(layer) -> dict:
-    out = {}
+    out = {"fid": "integer"}  # written by the GeoPackage writer as the primary key
     for name, values in layer.fields.items():
         k = np.asarray(values).dtype.kind
         out[name] = "real" if k == "f" else "integer" if k in "iub" else "text"

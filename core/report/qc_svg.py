@@ -27,12 +27,39 @@ from .. import colours
 
 __all__ = ["gather_svg", "nice_ticks"]
 
-#: Layouts: drawing size (px of the SVG's own coordinates) and the (left, top, width, height) of the
-#: three panels; "row" for reports (side by side), "column" for a narrow panel (stacked).
-_LAYOUTS = {
-    "row": ((1000.0, 350.0), ((62.0, 92.0, 262.0, 210.0), (395.0, 92.0, 262.0, 210.0), (728.0, 92.0, 252.0, 210.0))),
-    "column": ((520.0, 900.0), ((66.0, 150.0, 430.0, 200.0), (66.0, 405.0, 430.0, 225.0), (66.0, 700.0, 430.0, 145.0))),
-}
+#: The report's layout: drawing size (px of the SVG's own coordinates) and the (left, top, width,
+#: height) of the three panels (t^2-x^2, t-x, residuals) side by side.
+_ROW = ((1000.0, 350.0), ((62.0, 92.0, 262.0, 210.0), (395.0, 92.0, 262.0, 210.0), (728.0, 92.0, 252.0, 210.0)))
+_PANEL_MARGINS = (64.0, 16.0, 20.0, 44.0)  # left (tick labels, y label), right, above (title), below (x label)
+
+
+def _layout(layout: str, size, n_params: int) -> tuple:
+    """(width, height, header height, panel boxes) of a layout; see :func:`gather_svg`."""
+    if layout == "row":
+        (w, h), boxes = _ROW
+        return w, h, 0.0, boxes
+    w, h = (520.0, 900.0) if layout == "column" else (560.0, 560.0)
+    if size is not None:
+        w, h = max(float(size[0]), 300.0), max(float(size[1]), 300.0)
+    header = 28.0 + (13.0 * n_params + 6.0 if n_params else 0.0) + 22.0
+    ml, mr, mt, mb = _PANEL_MARGINS
+    avail = h - header
+    if layout == "column":
+        shares = (0.33, 0.40, 0.27)  # t^2-x^2, t-x, residuals
+        boxes, top = [], header
+        for f in shares:
+            boxes.append((ml, top + mt, w - ml - mr, avail * f - mt - mb))
+            top += avail * f
+        return w, h, header, tuple(boxes)
+    if layout != "grid":
+        raise ValueError(f"layout {layout!r}: expected 'row', 'column' or 'grid'")
+    top_h = avail * 0.55  # t-x across the whole width; t^2-x^2 and residuals side by side below
+    half = (w - 2 * ml - 2 * mr) / 2
+    tx = (ml, header + mt, w - ml - mr, top_h - mt - mb)
+    below = header + top_h
+    t2 = (ml, below + mt, half, avail - top_h - mt - mb)
+    res = (2 * ml + mr + half, below + mt, half, avail - top_h - mt - mb)
+    return w, h, header, (t2, tx, res)
 _FONT = "font-family:system-ui,'Segoe UI',Helvetica,Arial,sans-serif"
 
 
@@ -109,8 +136,8 @@ class _Panel:
 
     def frame(self, xlabel, ylabel, title):
         o, l, t, w, h = self.out, self.left, self.top, self.width, self.height
-        xt = nice_ticks(*self.xlim)
-        yt = nice_ticks(*self.ylim)
+        xt = nice_ticks(*self.xlim, target=max(3, min(5, int(w // 55))))  # tick labels need ~55 px each
+        yt = nice_ticks(*self.ylim, target=max(3, min(5, int(h // 40))))
         xs = float(xt[1] - xt[0]) if len(xt) > 1 else 1.0
         ys = float(yt[1] - yt[0]) if len(yt) > 1 else 1.0
         grid = "".join(f"M{float(self.px(v)):.1f} {t:.1f}V{t + h:.1f}" for v in xt)
@@ -129,12 +156,6 @@ class _Panel:
             f"{html.escape(ylabel)}</text>"
         )
         o.append(f'<text x="{l:.1f}" y="{t - 7:.1f}" font-weight="600">{html.escape(title)}</text>')
-
-    def clip_start(self, ident):
-        self.out.append(
-            f'<clipPath id="{ident}"><rect x="{self.left:.1f}" y="{self.top:.1f}" width="{self.width:.1f}" '
-            f'height="{self.height:.1f}"/></clipPath><g clip-path="url(#{ident})">'
-        )
 
     def line(self, x, y, colour, width=1.6, dash=None):
         x, y = np.asarray(x, float), np.asarray(y, float)
@@ -167,7 +188,7 @@ def _symbols(prefix):
 
 
 def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, params_text: str,
-               ident: str = "g", layout: str = "row") -> bytes:
+               ident: str = "g", layout: str = "row", size=None) -> bytes:
     """The QC figure of one gather as SVG: t²–x², t–x with the fit, residuals.
 
     Parameters
@@ -189,8 +210,12 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
         Prefix of the element ids, unique per figure when several are inlined
         in one page.
     layout : str
-        "row" (the three panels side by side, for pages) or "column" (stacked,
-        for a narrow panel such as QGIS's QC dock).
+        "row" (the three panels side by side, 1000 x 350, for pages),
+        "column" (stacked, for a tall panel) or "grid" (t-x across the top,
+        t²-x² and the residuals below, for a squarish panel).
+    size : (float, float), optional
+        Width and height (px) of a "column" or "grid" drawing, e.g. the
+        widget it is drawn into, so that its text is drawn at its own size.
 
     Returns
     -------
@@ -204,13 +229,14 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     exc = np.asarray(excluded, bool) & ~rej
     used = ~(rej | exc)
     order = np.argsort(x, kind="stable")
-    (_W, _H), boxes = _LAYOUTS[layout]
-    stacked = layout == "column"
+    n_params = len(params_text.splitlines())
+    _W, _H, header, boxes = _layout(layout, size, n_params)
+    stacked = layout != "row"
     out = [
         '<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" '
         f'viewBox="0 0 {_W:.0f} {_H:.0f}" width="{_W:.0f}" '
         f'height="{_H:.0f}" font-size="11" style="{_FONT}" fill="#222">',
-        '<rect width="100%" height="100%" fill="white"/>',
+        f'<rect x="0" y="0" width="{_W:.0f}" height="{_H:.0f}" fill="white"/>',
         _symbols(ident),
         f'<text x="10" y="20" font-size="14" font-weight="600">{html.escape(title)}</text>',
     ]
@@ -220,7 +246,7 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
             f'<text x="{x_text:.0f}" y="{y_text}" text-anchor="{anchor}" font-family="monospace" '
             f'font-size="11" xml:space="preserve">{html.escape(row)}</text>'
         )
-    keyx, keyy = 10.0, (40.0 + 13 * len(params_text.splitlines()) + 8 if stacked else 41.0)
+    keyx, keyy = 10.0, (header - 14.0 if stacked else 41.0)
     for sym, label in (("o", "pick used"), ("x", "rejected by the fit"), ("ex", "excluded (pick edit)")):
         out.append(f'<use xlink:href="#{ident}{sym}" x="{keyx + 4:.0f}" y="{keyy:.0f}"/>')
         out.append(f'<text x="{keyx + 12:.0f}" y="{keyy + 4:.0f}">{label}</text>')
@@ -232,7 +258,7 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     x2, t2, m2 = x**2, t**2, tm**2
     p = _Panel(out, boxes[0], _range(np.r_[x2, 0.0]), _range(np.r_[t2[np.isfinite(t2)], m2[np.isfinite(m2)]]))
     p.frame("x² (m²)", "t² (ms²)", "t²–x² (▲ forward, ▼ reverse)")
-    p.clip_start(f"{ident}c0")
+    out.append(f'<g id="{ident}p0">')  # the data of each panel (its range covers them: no clipping needed)
     for side in (x < 0, x >= 0):
         o = np.argsort(x2[side], kind="stable")
         p.line(x2[side][o], m2[side][o], colours.FIT_CURVE)
@@ -245,7 +271,7 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     # t - x, time down
     p = _Panel(out, boxes[1], _range(x), _range(np.r_[t[np.isfinite(t)], tm[np.isfinite(tm)]]), down=True)
     p.frame("offset along line x (m)", "two-way time t (ms)", "t–x")
-    p.clip_start(f"{ident}c1")
+    out.append(f'<g id="{ident}p1">')
     p.line(x[order], tm[order], colours.FIT_CURVE)
     p.marks(x[used], t[used], f"{ident}o")
     p.marks(x[exc], t[exc], f"{ident}ex")
@@ -257,8 +283,8 @@ def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, p
     shown = np.isfinite(r) & ~rej
     lim = max(1.0, 1.2 * float(np.max(np.abs(r[shown])))) if np.any(shown) else 1.0
     p = _Panel(out, boxes[2], _range(x), (-lim, lim))
-    p.frame("x (m)", "residual (ms)", "residuals (rejected may lie off scale)")
-    p.clip_start(f"{ident}c2")
+    p.frame("x (m)", "residual (ms)", "residuals" + ("" if stacked else " (rejected may lie off scale)"))
+    out.append(f'<g id="{ident}p2">')
     p.line(p.xlim, (0.0, 0.0), "#888", width=1.0)
     p.marks(x[used], r[used], f"{ident}o")
     p.marks(x[exc], r[exc], f"{ident}ex")

@@ -46,7 +46,7 @@ def _fit_path(svg: bytes, panel: int):
     from rockhead.core import colours
 
     root = ET.fromstring(svg)
-    groups = [g for g in root.iter(SVG + "g") if g.get("clip-path")]
+    groups = [g for g in root.iter(SVG + "g") if (g.get("id") or "").endswith(("p0", "p1", "p2"))]
     out = []
     for p in groups[panel].iter(SVG + "path"):
         if p.get("stroke") == colours.FIT_CURVE:
@@ -101,3 +101,23 @@ def test_many_figures_inline_without_id_clashes():
     ids_a = set(re.findall(rb'id="([^"]+)"', a))
     ids_b = set(re.findall(rb'id="([^"]+)"', b))
     assert ids_a and not ids_a & ids_b
+
+
+@pytest.mark.parametrize("layout, size", [("row", None), ("column", (480, 900)), ("grid", (480, 480)),
+                                          ("grid", (900, 700))], ids=["row", "column", "grid-small", "grid-large"])
+def test_layouts_keep_panels_inside_the_drawing(layout, size):
+    x, t = _flat_gather()
+    svg = gather_svg(x, t, t, np.zeros(len(x), bool), np.zeros(len(x), bool), "flat", "a\nb", layout=layout,
+                     size=size)
+    root = ET.fromstring(svg)
+    w, h = (float(v) for v in root.get("viewBox").split()[2:])
+    if size is not None:
+        assert (w, h) == size  # drawn at the widget's own size: text at its own size
+    rects = [r for r in root.iter(SVG + "rect") if r.get("fill") == "none"]  # the three panel frames
+    assert len(rects) == 3
+    boxes = [tuple(float(r.get(k)) for k in ("x", "y", "width", "height")) for r in rects]
+    for x0, y0, bw, bh in boxes:
+        assert x0 >= 40 and y0 >= 40 and x0 + bw <= w and y0 + bh + 30 <= h and bw > 100 and bh > 60
+    for i, a in enumerate(boxes):  # no two panels overlap
+        for b in boxes[i + 1:]:
+            assert a[0] + a[2] <= b[0] or b[0] + b[2] <= a[0] or a[1] + a[3] <= b[1] or b[1] + b[3] <= a[1]

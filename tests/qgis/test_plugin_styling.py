@@ -8,7 +8,9 @@ the symbol on the dip side.
 """
 
 import math
+import os
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -31,6 +33,7 @@ from qgis.PyQt.QtCore import QSize
 from qgis.PyQt.QtGui import QColor
 from rockhead.plugin import styling
 
+REPO = Path(__file__).resolve().parents[2]
 LAYER_CRS = "EPSG:32633"
 POINT = (560000.0, 5320000.0)  # UTM 33N, about 15.8 E 48.0 N
 DPI = 300  # bar 7 mm = 83 px: orientation good to a fraction of a degree
@@ -310,4 +313,53 @@ def test_sample_project_builder(qgis_app, core_results, tmp_path):
     dips = next(n.layer() for n in group.findLayers() if n.layer().name().startswith("Dip and strike (crossing"))
     sym = dips.renderer().rootRule().children()[0].symbol()
     assert "strike_deg" in sym.dataDefinedAngle().expressionString()
+    project.clear()
+
+
+# --------------------------------------------------------------------------------- the shipped project
+def test_shipped_project_legends_are_the_data_ranges(qgis_app, core_results, tmp_path):
+    """sample_project/tarnwick.qgz (rebuilt by scripts/demo.sh) over the sample's results: every raster's
+    legend runs over that raster's own data range, in units; every vector layer has aliases, the
+    contours, boreholes and lines their labels."""
+    from osgeo import gdal
+    from qgis.core import QgsProject, QgsRasterLayer, QgsVectorLayer
+    from rockhead.core.products.styles import RASTER_STYLES
+
+    out_dir, _ = core_results
+    shutil.copy(REPO / "sample_project" / "tarnwick.qgz", tmp_path / "tarnwick.qgz")
+    shutil.copytree(out_dir, tmp_path / "results")  # the project refers to ./results/
+    project = QgsProject.instance()
+    project.clear()
+    assert project.read(str(tmp_path / "tarnwick.qgz"))
+    layers = list(project.mapLayers().values())
+    assert layers and all(lyr.isValid() for lyr in layers)
+    rasters = [lyr for lyr in layers if isinstance(lyr, QgsRasterLayer)]
+    assert {os.path.basename(r.source()) for r in rasters} >= {"reflector_depth.tif", "depth_sigma.tif"}
+    for r in rasters:
+        name = os.path.basename(r.source())
+        ds = gdal.Open(r.source())
+        band = ds.GetRasterBand(1)
+        arr = band.ReadAsArray().astype(float)
+        nodata = band.GetNoDataValue()
+        if nodata is not None:
+            arr[arr == nodata] = np.nan
+        ds = None
+        lo, hi = np.nanmin(arr), np.nanmax(arr)
+        renderer = r.renderer()
+        _ramp, suffix, prefix, decimals, _fixed = RASTER_STYLES[name]
+        # the legend shows the range to `decimals` decimals: it must be the data's to that rounding
+        half = 0.5 * 10.0**-decimals
+        assert abs(renderer.classificationMin() - lo) <= half, (name, renderer.classificationMin(), lo)
+        assert abs(renderer.classificationMax() - hi) <= half, (name, renderer.classificationMax(), hi)
+        labels = [text for text, _colour in renderer.legendSymbologyItems()]
+        assert labels[0] == f"{prefix}{lo:.{decimals}f}{suffix}" and labels[-1] == f"{prefix}{hi:.{decimals}f}{suffix}"
+    vectors = {lyr.name(): lyr for lyr in layers if isinstance(lyr, QgsVectorLayer)}
+    for lyr in vectors.values():
+        for i, field in enumerate(lyr.fields()):
+            assert lyr.attributeAlias(i), (lyr.name(), field.name())
+    for name in ("Reflector depth contours", "Reflector elevation contours", "Boreholes", "Seismic lines"):
+        lyr = vectors[name]
+        assert lyr.labelsEnabled(), name
+    assert "' m'" in vectors["Reflector depth contours"].labeling().settings().fieldName
+    assert "residual" in vectors["Boreholes"].labeling().settings().fieldName
     project.clear()
