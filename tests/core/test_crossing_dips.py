@@ -104,6 +104,7 @@ def test_crossing_dip_is_the_local_dip_of_a_curved_reflector(bowl):
     assert np.max(np.abs(_azimuth_error(old.dip_direction_deg[k], old_dd))) > np.max(np.abs(err_dd))
 
 
+@pytest.mark.slow  # a whole computation (end to end)
 def test_run_reports_the_crossing_dips(tmp_path):
     site = PlaneSite(dip_deg=8.0, dip_direction_deg=120.0, ground_slope=(0.12, 0.08),
                      lines=[("A", (0.0, 0.0), 20.0, 97), ("B", (10.0, 5.0), 90.0, 97)])

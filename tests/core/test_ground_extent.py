@@ -66,6 +66,7 @@ def sloping(tmp_path_factory):
     return site, r
 
 
+@pytest.mark.slow  # a whole computation (end to end)
 def test_depth_is_given_only_where_the_ground_is_known(sloping):
     _, r = sloping
     X, Y = np.meshgrid(r.spec.x_centres, r.spec.y_centres)
@@ -78,6 +79,7 @@ def test_depth_is_given_only_where_the_ground_is_known(sloping):
     assert np.all(np.isfinite(r.depth_m[mapped & (d <= r.ground_buffer_m)]))
 
 
+@pytest.mark.slow  # a whole computation (end to end)
 def test_depth_error_within_its_sigma_on_sloping_ground(sloping):
     site, r = sloping
     X, Y = np.meshgrid(r.spec.x_centres, r.spec.y_centres)

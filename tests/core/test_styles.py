@@ -7,7 +7,6 @@ in tests/qgis, where QGIS itself loads them); the numbers against the data.
 
 from __future__ import annotations
 
-import shutil
 import xml.etree.ElementTree as ET
 
 import numpy as np
@@ -18,14 +17,9 @@ from rockhead.core.products import styles
 
 
 @pytest.fixture(scope="module")
-def run_dir(tmp_path_factory, sample_dir):
-    from rockhead.core import job
-
-    d = tmp_path_factory.mktemp("styled")
-    for name in ("survey.toml", "stations.csv", "picks.csv", "boreholes.csv"):
-        shutil.copy(sample_dir / name, d / name)
-    job.run(d / "survey.toml", d / "out", method="kriging")
-    return d / "out"
+def run_dir(sample_run):
+    """The output folder of the session's one run of the sample project (tests/conftest.py)."""
+    return sample_run.out
 
 
 def _qml(text):

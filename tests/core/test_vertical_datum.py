@@ -58,6 +58,7 @@ def test_vertical_crs_in_feet_is_refused(sample_dir, tmp_path, new, field):
 
 @pytest.fixture(scope="module")
 def stated_run(sample_dir, tmp_path_factory):
+    """The sample project with a vertical datum and a survey date (a whole run: slow tier)."""
     base = tmp_path_factory.mktemp("vertical")
     toml = _copy_sample(sample_dir, base / "in", new='crs = "EPSG:32633+5621"\ndate = 2025-06-14')
     out = base / "out"
@@ -65,14 +66,12 @@ def stated_run(sample_dir, tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def unstated_run(sample_dir, tmp_path_factory):
-    base = tmp_path_factory.mktemp("no-vertical")
-    toml = _copy_sample(sample_dir, base / "in")
-    out = base / "out"
-    return job.run(toml, out, method="kriging"), out
+def unstated_run(sample_run):
+    """The sample project as it is (no vertical datum, no date): the session's one run (tests/conftest.py)."""
+    return sample_run.result, sample_run.out
 
 
-@pytest.mark.slow
+@pytest.mark.slow  # a whole run of the sample project with a vertical datum
 def test_elevation_raster_carries_the_vertical_datum(stated_run, gdal_validate):
     _result, out = stated_run
     elevation = gdalio.read_raster(out / "reflector_elevation.tif")
@@ -86,7 +85,7 @@ def test_elevation_raster_carries_the_vertical_datum(stated_run, gdal_validate):
                                       "survey.gpkg")))
 
 
-@pytest.mark.slow
+@pytest.mark.slow  # a whole run of the sample project with a vertical datum
 def test_geopackage_is_3d_in_the_compound_crs(stated_run):
     _result, out = stated_run
     pts, crs = gdalio.read_layer(out / "survey.gpkg", "reflector_points")
@@ -106,7 +105,7 @@ def test_geopackage_is_3d_in_the_compound_crs(stated_run):
     assert "EVRF2007 height" in gdalio.vector_metadata(out / "survey.gpkg", "reflector_points")["Z"]
 
 
-@pytest.mark.slow
+@pytest.mark.slow  # a whole run of the sample project with a vertical datum
 def test_contours_carry_elevations(stated_run):
     result, out = stated_run
     lines, _ = gdalio.read_layer(out / "survey.gpkg", "contours")
@@ -124,7 +123,7 @@ def test_contours_carry_elevations(stated_run):
     assert checked["elevation"] > 50 and checked["depth"] > 50
 
 
-@pytest.mark.slow
+@pytest.mark.slow  # a whole run of the sample project with a vertical datum
 def test_report_and_run_info_name_the_datum_and_date(stated_run, unstated_run):
     _r, out = stated_run
     html = (out / "report.html").read_text(encoding="utf-8")
@@ -140,7 +139,7 @@ def test_report_and_run_info_name_the_datum_and_date(stated_run, unstated_run):
     assert gdalio.vector_metadata(out / "survey.gpkg")["SURVEY_DATE"] == "not stated"
 
 
-@pytest.mark.slow
+@pytest.mark.slow  # a whole run of the sample project with a vertical datum
 def test_file_dates_come_from_the_survey_date(stated_run, unstated_run):
     _r, out = stated_run
     # the TIFF DateTime tag and the GeoPackage's last_change are the survey's day, never the clock
