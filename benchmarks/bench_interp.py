@@ -36,8 +36,10 @@ from _common import ROOT, import_package, load_average, machine
 HERE = Path(__file__).resolve().parent
 SAMPLE = ROOT / "sample_project"
 INPUTS = ("survey.toml", "stations.csv", "picks.csv", "boreholes.csv")
-EDIT = ("line,shot,receiver,reflector,action,new_time_ms,reason,time_stamp\n"
-        "B,1105,1102,,exclude,,benchmark,2026-12-02T08:00:00Z\n")
+EDIT = (
+    "line,shot,receiver,reflector,action,new_time_ms,reason,time_stamp\n"
+    "B,1105,1102,,exclude,,benchmark,2026-12-02T08:00:00Z\n"
+)
 QGIS_PYTHON = ROOT / ".venv-qgis" / "bin" / "python"
 
 
@@ -63,8 +65,12 @@ def cli_run(tmp: Path, repeat: int) -> list:
     for k in range(repeat):
         before = resource.getrusage(resource.RUSAGE_CHILDREN)
         t = time.perf_counter()
-        proc = subprocess.run([sys.executable, "-m", "rockhead.core.cli", "run", str(survey), "--out",
-                               str(tmp / f"cli_out{k}")], capture_output=True, text=True, env=env)
+        proc = subprocess.run(
+            [sys.executable, "-m", "rockhead.core.cli", "run", str(survey), "--out", str(tmp / f"cli_out{k}")],
+            capture_output=True,
+            text=True,
+            env=env,
+        )
         wall = time.perf_counter() - t
         after = resource.getrusage(resource.RUSAGE_CHILDREN)
         if proc.returncode != 0:
@@ -154,8 +160,12 @@ def qgis_runs(tmp: Path, repeat: int):
     out = []
     for k in range(repeat):
         survey = _site(tmp / f"qgis{k}")
-        proc = subprocess.run([str(python), str(script), str(survey), str(survey.parent / "results")],
-                              capture_output=True, text=True, env=env)
+        proc = subprocess.run(
+            [str(python), str(script), str(survey), str(survey.parent / "results")],
+            capture_output=True,
+            text=True,
+            env=env,
+        )
         lines = [ln for ln in proc.stdout.splitlines() if ln.startswith("{")]
         if proc.returncode != 0 or not lines:
             raise SystemExit(f"QGIS benchmark failed:\n{proc.stdout}\n{proc.stderr}")
@@ -187,27 +197,41 @@ def main(argv=None):
     rows.append(("command line, whole run with report (target <= 3 s)", wall_best, wall_med, cpu_best, cpu_med))
     wall_best, wall_med = _best_median([w for w, _ in quick])
     cpu_best, cpu_med = _best_median([c for _, c in quick])
-    rows.append(("quick remap after one pick edit, map products written (target <= 1 s)",
-                 wall_best, wall_med, cpu_best, cpu_med))
+    rows.append(
+        (
+            "quick remap after one pick edit, map products written (target <= 1 s)",
+            wall_best,
+            wall_med,
+            cpu_best,
+            cpu_med,
+        )
+    )
     if inside:
-        for key, label in (("run_s", "QGIS: whole-survey algorithm, styled layers loaded (target <= 5 s)"),
-                           ("panel_constructor_s", "QGIS: QC panel constructor (work goes to a task)"),
-                           ("panel_ready_s", "QGIS: QC panel filled (survey read and fitted in a task)"),
-                           ("edit_to_map_s", "QGIS: one edit in the panel until the map layers are reloaded")):
+        for key, label in (
+            ("run_s", "QGIS: whole-survey algorithm, styled layers loaded (target <= 5 s)"),
+            ("panel_constructor_s", "QGIS: QC panel constructor (work goes to a task)"),
+            ("panel_ready_s", "QGIS: QC panel filled (survey read and fitted in a task)"),
+            ("edit_to_map_s", "QGIS: one edit in the panel until the map layers are reloaded"),
+        ):
             best, med = _best_median([d[key] for d in inside])
             rows.append((label, best, med, None, None))
-    table = ("| step | wall best (s) | wall median (s) | CPU best (s) | CPU median (s) |\n|---|---:|---:|---:|---:|\n"
-             + "\n".join(f"| {a} | {b:.2f} | {c:.2f} | {'' if d is None else f'{d:.2f}'} | "
-                         f"{'' if e is None else f'{e:.2f}'} |" for a, b, c, d, e in rows))
-    info = (f"{machine()}; load average {start_load} at the start and {end_load} at the end; "
-            f"{args.repeat} runs of each")
+    table = (
+        "| step | wall best (s) | wall median (s) | CPU best (s) | CPU median (s) |\n|---|---:|---:|---:|---:|\n"
+        + "\n".join(
+            f"| {a} | {b:.2f} | {c:.2f} | {'' if d is None else f'{d:.2f}'} | {'' if e is None else f'{e:.2f}'} |"
+            for a, b, c, d, e in rows
+        )
+    )
+    info = f"{machine()}; load average {start_load} at the start and {end_load} at the end; {args.repeat} runs of each"
     print(info)
     print(table)
     if not args.no_append:
         stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
         with open(HERE / "RESULTS.md", "a", encoding="utf-8") as fh:
-            fh.write(f"\n## Interpretation loop and end to end ({stamp})\n\n`python benchmarks/bench_interp.py` on "
-                     f"{info}.\n\n{table}\n")
+            fh.write(
+                f"\n## Interpretation loop and end to end ({stamp})\n\n`python benchmarks/bench_interp.py` on "
+                f"{info}.\n\n{table}\n"
+            )
 
 
 if __name__ == "__main__":

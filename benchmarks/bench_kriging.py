@@ -105,15 +105,23 @@ def run(quick=False, append=True):
         pick = rng.choice(spec.size, min(subset, spec.size), replace=False)
         pk = PyKrigeOK(x, y, z, variogram_model="spherical", variogram_parameters=pk_params)
         t0 = time.perf_counter()
-        pe, pv = pk.execute("points", gx.ravel()[pick], gy.ravel()[pick], backend="loop",
-                            n_closest_points=k)
+        pe, pv = pk.execute("points", gx.ravel()[pick], gy.ravel()[pick], backend="loop", n_closest_points=k)
         t_sub = time.perf_counter() - t0
         t_pk = t_sub * spec.size / pick.size
         de = np.max(np.abs(grid.z.ravel()[pick] - np.asarray(pe)))
         dv = np.max(np.abs(grid.std.ravel()[pick] ** 2 - np.asarray(pv)))
-        rows.append((n, spec.size, f"PyKrige loop, n_closest_points={k}",
-                     f"{t_ours:.2f}", f"{t_pk:.1f} (scaled from {pick.size} cells)",
-                     t_pk / t_ours, de, dv))
+        rows.append(
+            (
+                n,
+                spec.size,
+                f"PyKrige loop, n_closest_points={k}",
+                f"{t_ours:.2f}",
+                f"{t_pk:.1f} (scaled from {pick.size} cells)",
+                t_pk / t_ours,
+                de,
+                dv,
+            )
+        )
         print(rows[-1], flush=True)
     for n, side in global_cases:
         x, y, z = _data(n)
@@ -127,12 +135,23 @@ def run(quick=False, append=True):
 
         t_ours, grid = _best(our_run, 2)
         pk = PyKrigeOK(x, y, z, variogram_model="spherical", variogram_parameters=pk_params)
-        t_pk, (pe, pv) = _best(lambda pk=pk, spec=spec: pk.execute(
-            "grid", spec.x_centres, spec.y_centres[::-1], backend="vectorized"), 1)
+        t_pk, (pe, pv) = _best(
+            lambda pk=pk, spec=spec: pk.execute("grid", spec.x_centres, spec.y_centres[::-1], backend="vectorized"), 1
+        )
         pe = np.asarray(pe)[::-1]  # PyKrige's grid rows go south to north
         pv = np.asarray(pv)[::-1]
-        rows.append((n, spec.size, "PyKrige vectorized (global)", f"{t_ours:.2f}", f"{t_pk:.2f}",
-                     t_pk / t_ours, np.max(np.abs(grid.z - pe)), np.max(np.abs(grid.std**2 - pv))))
+        rows.append(
+            (
+                n,
+                spec.size,
+                "PyKrige vectorized (global)",
+                f"{t_ours:.2f}",
+                f"{t_pk:.2f}",
+                t_pk / t_ours,
+                np.max(np.abs(grid.z - pe)),
+                np.max(np.abs(grid.std**2 - pv)),
+            )
+        )
         print(rows[-1], flush=True)
         if gs is not None:
             model = gs.Spherical(dim=2, var=vario.sill, len_scale=vario.range_m, nugget=vario.nugget)
@@ -142,21 +161,34 @@ def run(quick=False, append=True):
                 return kr((gx.ravel(), gy.ravel()), return_var=True)
 
             t_gs, (ge, gv) = _best(gs_run, 1)
-            rows.append((n, spec.size, "GSTools krige.Ordinary (global)", f"{t_ours:.2f}", f"{t_gs:.2f}",
-                         t_gs / t_ours, np.max(np.abs(grid.z.ravel() - ge)),
-                         np.max(np.abs(grid.std.ravel() ** 2 - gv))))
+            rows.append(
+                (
+                    n,
+                    spec.size,
+                    "GSTools krige.Ordinary (global)",
+                    f"{t_ours:.2f}",
+                    f"{t_gs:.2f}",
+                    t_gs / t_ours,
+                    np.max(np.abs(grid.z.ravel() - ge)),
+                    np.max(np.abs(grid.std.ravel() ** 2 - gv)),
+                )
+            )
             print(rows[-1], flush=True)
     end_load = _load()
-    header = ("| N points | cells | peer | ours (s) | peer (s) | speed-up | max abs diff estimate (m) "
-              "| max abs diff variance (m^2) |\n|---:|---:|---|---:|---:|---:|---:|---:|")
+    header = (
+        "| N points | cells | peer | ours (s) | peer (s) | speed-up | max abs diff estimate (m) "
+        "| max abs diff variance (m^2) |\n|---:|---:|---|---:|---:|---:|---:|---:|"
+    )
     lines = [header]
     for n, cells, peer, t1, t2, ratio, de, dv in rows:
         lines.append(f"| {n} | {cells} | {peer} | {t1} | {t2} | {ratio:.0f}x | {de:.1e} | {dv:.1e} |")
     table = "\n".join(lines)
     import scipy
 
-    versions = (f"Python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
-                f"pykrige {pykrige.__version__}" + (f", gstools {gs.__version__}" if gs else ""))
+    versions = (
+        f"Python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
+        f"pykrige {pykrige.__version__}" + (f", gstools {gs.__version__}" if gs else "")
+    )
     now = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     text = (
         f"\n## Ordinary kriging vs PyKrige / GSTools ({now})\n\n"

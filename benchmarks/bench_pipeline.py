@@ -37,8 +37,12 @@ def cli_run(out: Path):
 
     env = dict(os.environ, PYTHONPATH=str(Path(rockhead.__path__[0]).parent))
     t = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-m", "rockhead.core.cli", "run", str(SURVEY), "--out", str(out)],
-                          capture_output=True, text=True, env=env)
+    proc = subprocess.run(
+        [sys.executable, "-m", "rockhead.core.cli", "run", str(SURVEY), "--out", str(out)],
+        capture_output=True,
+        text=True,
+        env=env,
+    )
     wall = time.perf_counter() - t
     if proc.returncode != 0:
         raise SystemExit(proc.stderr)
@@ -82,10 +86,14 @@ def main(argv=None):
         ("  peak memory of that process (MiB)", f"{peak:.0f}"),
         ("in-process: read inputs", f"{steps['read inputs']:.2f}"),
         (f"in-process: fit all {steps['gathers']} gathers ({steps['picks']} picks)", f"{steps['fit all gathers']:.2f}"),
-        ("in-process: whole computation (fits, relocation, kriging, joint inversion, products)",
-         f"{steps['whole computation']:.1f}"),
-        ("in-process: write outputs (GeoPackage, GeoTIFF, DXF, CSV, QC figures, report)",
-         f"{steps['write outputs']:.1f}"),
+        (
+            "in-process: whole computation (fits, relocation, kriging, joint inversion, products)",
+            f"{steps['whole computation']:.1f}",
+        ),
+        (
+            "in-process: write outputs (GeoPackage, GeoTIFF, DXF, CSV, QC figures, report)",
+            f"{steps['write outputs']:.1f}",
+        ),
     ]
     table = "| step | seconds |\n|---|---:|\n" + "\n".join(f"| {a} | {b} |" for a, b in rows)
     print(info)
@@ -93,8 +101,10 @@ def main(argv=None):
     if not args.no_append:
         stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
         with open(HERE / "RESULTS.md", "a", encoding="utf-8") as fh:
-            fh.write(f"\n## Sample project end to end ({stamp})\n\n`python benchmarks/bench_pipeline.py` on {info}.\n\n"
-                     f"{table}\n")
+            fh.write(
+                f"\n## Sample project end to end ({stamp})\n\n`python benchmarks/bench_pipeline.py` on {info}.\n\n"
+                f"{table}\n"
+            )
 
 
 if __name__ == "__main__":

@@ -61,8 +61,12 @@ def child(n_points, n_cells):
     side_m = 10.0 * np.sqrt(n_points)
     x = rng.uniform(0.0, side_m, n_points)
     y = rng.uniform(0.0, side_m, n_points)
-    z = (100.0 + 8.0 * np.sin(x / (0.21 * side_m)) + 5.0 * np.cos(y / (0.17 * side_m))
-         + 0.3 * rng.standard_normal(n_points))
+    z = (
+        100.0
+        + 8.0 * np.sin(x / (0.21 * side_m))
+        + 5.0 * np.cos(y / (0.17 * side_m))
+        + 0.3 * rng.standard_normal(n_points)
+    )
     e = np.full(n_points, 0.09)
     nside = round(float(np.sqrt(n_cells)))
     cell = side_m / nside
@@ -101,21 +105,27 @@ def run(quick=False, append=True):
     load0 = load_average()
     results = []
     for n, m in cases:
-        proc = subprocess.run([sys.executable, __file__, "--child", str(n), str(m)],
-                              capture_output=True, text=True, check=False)
+        proc = subprocess.run(
+            [sys.executable, __file__, "--child", str(n), str(m)], capture_output=True, text=True, check=False
+        )
         if proc.returncode != 0:
             print(proc.stderr, file=sys.stderr)
             raise SystemExit(f"case N={n} cells={m} failed")
         r = json.loads(proc.stdout.strip().splitlines()[-1])
         r["t_total"] = r["t_variogram"] + r["t_fit"] + r["t_cv"] + r["t_grid"]
         results.append(r)
-        print(f"N={n:>8} cells={r['n_cells']:>8}  variogram {r['t_variogram']:.1f}s fit {r['t_fit']:.1f}s "
-              f"cv {r['t_cv']:.1f}s grid {r['t_grid']:.1f}s  peak {r['peak_rss_mib']:.0f} MiB "
-              f"({r['model']}, MSSE {r['msse']:.2f})", flush=True)
+        print(
+            f"N={n:>8} cells={r['n_cells']:>8}  variogram {r['t_variogram']:.1f}s fit {r['t_fit']:.1f}s "
+            f"cv {r['t_cv']:.1f}s grid {r['t_grid']:.1f}s  peak {r['peak_rss_mib']:.0f} MiB "
+            f"({r['model']}, MSSE {r['msse']:.2f})",
+            flush=True,
+        )
     load1 = load_average()
-    lines = ["| N points | cells | model chosen | variogram (s) | fit (s) | cross-val. (s) | grid (s) "
-             "| grid us/cell | total (s) | RSS before (MiB) | peak RSS (MiB) | LOO MSSE |",
-             "|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    lines = [
+        "| N points | cells | model chosen | variogram (s) | fit (s) | cross-val. (s) | grid (s) "
+        "| grid us/cell | total (s) | RSS before (MiB) | peak RSS (MiB) | LOO MSSE |",
+        "|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+    ]
     for r in results:
         lines.append(
             f"| {r['n_points']} | {r['n_cells']} | {r['model']} | {r['t_variogram']:.2f} | {r['t_fit']:.2f} | "
@@ -141,8 +151,10 @@ def run(quick=False, append=True):
     if big:
         b = big[0]
         ok = b["peak_rss_mib"] < 4096
-        verdict = (f"Target (1e6 points onto 1e6 cells under 4 GiB peak): peak {b['peak_rss_mib']:.0f} MiB, "
-                   f"{'met' if ok else 'MISSED'}; total {b['t_total']:.0f} s.\n")
+        verdict = (
+            f"Target (1e6 points onto 1e6 cells under 4 GiB peak): peak {b['peak_rss_mib']:.0f} MiB, "
+            f"{'met' if ok else 'MISSED'}; total {b['t_total']:.0f} s.\n"
+        )
     now = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     text = (
         f"\n## Kriging scale, 10^4..10^6 points and cells ({now})\n\n"
@@ -155,7 +167,9 @@ def run(quick=False, append=True):
         "on one thread; variogram = experimental (5000-point subsample) + three fits + choice by "
         "leave-one-out log score on 2000 points; cross-validation on at most 20 000 points.\n\n"
         + "\n".join(lines)
-        + "\n\nGrowth exponents (log-log slopes; 1 = linear): " + "; ".join(slopes) + ".\n"
+        + "\n\nGrowth exponents (log-log slopes; 1 = linear): "
+        + "; ".join(slopes)
+        + ".\n"
         + verdict
     )
     print(text)

@@ -59,8 +59,10 @@ def _parser() -> argparse.ArgumentParser:
 def _edits_line(survey) -> str:
     e = survey.edits
     path = survey.files.get("pick_edits")
-    return (f"pick edits: {len(e.edits)} read from {path.name if path else 'the edits file'}: "
-            f"{e.n_excluded} picks excluded, {e.n_retimed} retimed")
+    return (
+        f"pick edits: {len(e.edits)} read from {path.name if path else 'the edits file'}: "
+        f"{e.n_excluded} picks excluded, {e.n_retimed} retimed"
+    )
 
 
 def _one_line(message: object) -> str:

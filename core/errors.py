@@ -30,9 +30,7 @@ class InputFileError(RockheadError, ValueError):
         What is wrong and what was expected.
     """
 
-    def __init__(
-        self, path: str | os.PathLike[str] | None, line: int | None, field: str | None, message: str
-    ) -> None:
+    def __init__(self, path: str | os.PathLike[str] | None, line: int | None, field: str | None, message: str) -> None:
         self.path = os.fspath(path) if path is not None else None
         self.line = line
         self.field = field

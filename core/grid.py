@@ -182,8 +182,7 @@ class GridSpec:
             v = getattr(self, name)
             if int(v) != v or int(v) < 1:
                 raise GridError(
-                    f"GridSpec {name} must be a positive integer, got {v!r}; a grid has at least one "
-                    "column and one row"
+                    f"GridSpec {name} must be a positive integer, got {v!r}; a grid has at least one column and one row"
                 )
             object.__setattr__(self, name, int(v))
         for name in ("x0", "y0"):

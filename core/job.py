@@ -16,8 +16,17 @@ from .results import RunResult
 from .survey.config import load_survey
 from .workflow import compute
 
-OUTPUT_NAMES = ("survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
-                "elevation_sigma.tif", "report.html", "contours_elevation.dxf", "contours_depth.dxf", *HANDOFF_NAMES)
+OUTPUT_NAMES = (
+    "survey.gpkg",
+    "reflector_elevation.tif",
+    "reflector_depth.tif",
+    "depth_sigma.tif",
+    "elevation_sigma.tif",
+    "report.html",
+    "contours_elevation.dxf",
+    "contours_depth.dxf",
+    *HANDOFF_NAMES,
+)
 
 __all__ = ["OUTPUT_NAMES", "run", "with_design", "write_outputs"]
 

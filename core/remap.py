@@ -126,9 +126,11 @@ def remap(survey_path, pinned: Pinned, out_dir=None, progress=None) -> RemapOutc
         settings = replace(settings, variogram_model=pinned.variogram_model)
     survey = replace(survey, settings=settings)
     result = compute(survey, method=pinned.method, progress=SubProgress(progress, 0, 80))
-    note = (f"quick remap after pick edits: the {pinned.method} surface"
-            + (f" with the {pinned.variogram_model} variogram" if pinned.variogram_model else "")
-            + " the last whole run chose; the whole run that follows redoes every product")
+    note = (
+        f"quick remap after pick edits: the {pinned.method} surface"
+        + (f" with the {pinned.variogram_model} variogram" if pinned.variogram_model else "")
+        + " the last whole run chose; the whole run that follows redoes every product"
+    )
     result = replace(result, notes=(*result.notes, note))
     written = []
     if out_dir is not None:

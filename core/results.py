@@ -211,8 +211,16 @@ class TomographyOutcome:
     used: Optional[np.ndarray] = None
 
     def __post_init__(self) -> None:
-        parts = (self.surface, self.inversion, self.curvature_flag, self.curvature_reason,
-                 self.difference_m, self.diagnostics, self.kriged_data, self.used)
+        parts = (
+            self.surface,
+            self.inversion,
+            self.curvature_flag,
+            self.curvature_reason,
+            self.difference_m,
+            self.diagnostics,
+            self.kriged_data,
+            self.used,
+        )
         if self.skipped_reason is None and any(p is None for p in parts):
             raise ValueError("a joint inversion that ran must carry all its parts")
         if self.skipped_reason is not None and any(p is not None for p in parts):
@@ -493,8 +501,10 @@ class RunResult:
             f"{int(f.picks_rejected.sum())} of {len(f.residual_s)} picks rejected",
         ]
         est = int(np.sum(~self.surface.mask))
-        lines.append(f"surface by {self.method_used}: {est} of {self.surface.mask.size} cells of "
-                     f"{self.spec.cell_size_m:g} m estimated")
+        lines.append(
+            f"surface by {self.method_used}: {est} of {self.surface.mask.size} cells of "
+            f"{self.spec.cell_size_m:g} m estimated"
+        )
         if self.outputs:
             lines.append(f"wrote {len(self.outputs)} files to {Path(self.outputs[0]).parent}")
         return "\n".join(lines + list(self.notes))

@@ -110,7 +110,12 @@ def dips_step(survey, fit: FitStep, progress=None):
         return fit_shot_gathers(g, st, cross_component=q, exclude=exclude)
 
     fits, dips, _, _ = resolve_cross_dips(
-        g, refit, fit.fits, radius_m=radius, min_angle_deg=st.min_line_angle_deg, crossings=crossings,
+        g,
+        refit,
+        fit.fits,
+        radius_m=radius,
+        min_angle_deg=st.min_line_angle_deg,
+        crossings=crossings,
         tol=1e-6,
     )
     return dips, fits
@@ -163,12 +168,12 @@ def single_line_corridor(fit: FitStep, settings):
     """
     pts = fit.points
     ok = (pts.status == "ok") & pts.finite & (np.asarray(pts.reflector).astype(str) == str(settings.reflector))
-    return line_corridor(pts.x_m[ok], pts.y_m[ok], settings.line_corridor_m, pts.depth_m[ok],
-                         settings.line_cross_dip_deg)
+    return line_corridor(
+        pts.x_m[ok], pts.y_m[ok], settings.line_corridor_m, pts.depth_m[ok], settings.line_cross_dip_deg
+    )
 
 
-def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=0.05, max_iterations=6,
-                  corridor=None):
+def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=0.05, max_iterations=6, corridor=None):
     """Move reflector points to their 3D positions with the surface's cross-line dip.
 
     A line sees only the along-line component of the reflector normal. The
@@ -183,8 +188,9 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
     the largest cell change of each iteration (m).
     """
     progress = progress or NullProgress()
-    surf, diag = interpolate_step(fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30),
-                                  corridor=corridor)
+    surf, diag = interpolate_step(
+        fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30), corridor=corridor
+    )
     history = []
     if corridor is not None:
         return fit, surf, diag, ()
@@ -194,8 +200,9 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
         mapped = np.asarray(fit.gathers.reflector).astype(str) == str(survey.settings.reflector)
         q = np.where(np.isfinite(q) & mapped, q, 0.0)
         fit = fit_step(survey, cross_component=q, ground=ground, exclude=fit.fits.excluded)
-        new, diag = interpolate_step(fit.points, spec, survey.settings, method,
-                                     progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it))
+        new, diag = interpolate_step(
+            fit.points, spec, survey.settings, method, progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it)
+        )
         change = np.nanmax(np.abs(new.z - surf.z)) if np.any(np.isfinite(new.z - surf.z)) else 0.0
         history.append(float(change))
         surf = new
@@ -246,8 +253,9 @@ def grid_spec(survey, points):
         return GridSpec.from_data(xs, ys, cell_size_m=cell)
     except GridError as err:
         path = survey.path
-        raise SurveyConfigError(path, _key_line(path, "processing", "cell_size_m"), "processing.cell_size_m",
-                                str(err)) from err
+        raise SurveyConfigError(
+            path, _key_line(path, "processing", "cell_size_m"), "processing.cell_size_m", str(err)
+        ) from err
 
 
 def _key_line(path, table: str, key: str) -> Optional[int]:
@@ -287,8 +295,9 @@ def site_velocity(fit: FitStep, reflector: str) -> SiteVelocity:
     return SiteVelocity(velocity_m_s=float(v), spread_m_s=float(spread), n_gathers=int(n), reflector=str(reflector))
 
 
-def tomography_step(survey, fit, start, spec, forced=False, progress=None, corridor=None,
-                    site=None, ground=None) -> TomographyOutcome:
+def tomography_step(
+    survey, fit, start, spec, forced=False, progress=None, corridor=None, site=None, ground=None
+) -> TomographyOutcome:
     """Joint estimate from every pick of every reflector: layered overburden, interfaces, velocities.
 
     The reflectors are layered top down (``[processing] layers``, else by
@@ -325,8 +334,18 @@ def tomography_step(survey, fit, start, spec, forced=False, progress=None, corri
     bh = survey.boreholes
     ties = None if bh is None or not len(bh) else BoreholeTies.from_boreholes(bh, st.reflector)
     res = estimate_layered(
-        g.source_xyz[use], g.receiver_xyz[use], g.time_s[use], g.sigma_s[use], pick_labels[use], start_model, spec,
-        order=order, boreholes=ties, settings=LayeredSettings.from_settings(st), ground=ground, progress=progress,
+        g.source_xyz[use],
+        g.receiver_xyz[use],
+        g.time_s[use],
+        g.sigma_s[use],
+        pick_labels[use],
+        start_model,
+        spec,
+        order=order,
+        boreholes=ties,
+        settings=LayeredSettings.from_settings(st),
+        ground=ground,
+        progress=progress,
     )
     k = res.index(st.reflector)
     z, std, mask = res.elevation_m[k], res.sigma_m[k], res.mask[k]
@@ -451,7 +470,12 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
                 "is from the uncalibrated seismic surface"
             )
         kriged_surface, kriged_diag = interpolate_step(
-            fit.points, spec, settings, interp, boreholes=bh, progress=SubProgress(progress, 50, 60),
+            fit.points,
+            spec,
+            settings,
+            interp,
+            boreholes=bh,
+            progress=SubProgress(progress, 50, 60),
             corridor=corridor,
         )
     else:
@@ -461,8 +485,17 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     tomography = None
     if method in ("auto", "tomography"):
         progress.info("joint inversion of all picks (reflection traveltime tomography)")
-        tomography = tomography_step(survey, fit, kriged_surface, spec, method == "tomography",
-                                     SubProgress(progress, 60, 95), corridor=corridor, site=site, ground=ground)
+        tomography = tomography_step(
+            survey,
+            fit,
+            kriged_surface,
+            spec,
+            method == "tomography",
+            SubProgress(progress, 60, 95),
+            corridor=corridor,
+            site=site,
+            ground=ground,
+        )
         layers = tomography.inversion.names if tomography.inversion is not None else ()
         if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
             notes.append(f"joint inversion skipped: {tomography.skipped_reason}; surface by {interp}")
@@ -546,9 +579,23 @@ def dix_table(fit) -> DixTable:
     """
     g, f = fit.gathers, fit.fits
     ok = f.status == "ok"
-    columns = ("line", "shot", "reflector_top", "reflector_base", "x_m", "y_m", "t0_top_ms", "t0_base_ms",
-               "interval_velocity_m_s", "se_interval_velocity_m_s", "thickness_m", "se_thickness_m", "depth_base_m",
-               "status", "reason")
+    columns = (
+        "line",
+        "shot",
+        "reflector_top",
+        "reflector_base",
+        "x_m",
+        "y_m",
+        "t0_top_ms",
+        "t0_base_ms",
+        "interval_velocity_m_s",
+        "se_interval_velocity_m_s",
+        "thickness_m",
+        "se_thickness_m",
+        "depth_base_m",
+        "status",
+        "reason",
+    )
     cols: Dict[str, list] = {k: [] for k in columns}
     keys = np.array([f"{a}\x1f{b}" for a, b in zip(g.line, g.shot)], dtype=object)
     for key in sorted(set(keys[ok].tolist())):
@@ -609,8 +656,7 @@ def cmp_step(survey, fit) -> CmpTable:
         bins, centred = float(bin_m), False
     pick_refl = np.asarray(g.reflector)[g.gather].astype(str)
     group = np.char.add(np.char.add(pick_line, "\x1f"), pick_refl)
-    gid, centres, offset = cmp_bins(g.source_xyz[:, :2], g.receiver_xyz[:, :2], bins, group=group,
-                                    centred=centred)
+    gid, centres, offset = cmp_bins(g.source_xyz[:, :2], g.receiver_xyz[:, :2], bins, group=group, centred=centred)
     fits = fit_cmp_gathers(gid, offset, g.time_s, g.sigma_s, survey.settings)
     first = np.zeros(len(centres), dtype=int)
     first[gid[::-1]] = np.arange(len(gid))[::-1]
@@ -676,8 +722,12 @@ def calibrate_fit(fit: FitStep, factor: float, ground) -> FitStep:
         covariance=f.covariance * scale[None, :, None] * scale[None, None, :],
     )
     pts = reflector_points(fit.gathers, scaled, ground=ground)
-    return replace(fit, fits=scaled, points=pts.select(pts.kind == "zero_offset"),
-                   receiver_points=pts.select(pts.kind == "receiver"))
+    return replace(
+        fit,
+        fits=scaled,
+        points=pts.select(pts.kind == "zero_offset"),
+        receiver_points=pts.select(pts.kind == "receiver"),
+    )
 
 
 def ground_buffer(settings, points) -> float:
@@ -710,12 +760,23 @@ def products_step(spec: GridSpec, surface: SurfaceGrid, ground, settings, points
     depth_m = np.where(np.isfinite(ground_sigma_m), ground_grid_m - z, np.nan)
     depth_sigma_m = np.where(np.isfinite(depth_m), np.hypot(surface.std, ground_sigma_m), np.nan)
     contours = contours_layer(
-        spec.x_centres, spec.y_centres, elevation_m=z, depth_m=depth_m,
-        elevation_interval_m=settings.contour_interval_m, depth_interval_m=settings.contour_interval_m,
+        spec.x_centres,
+        spec.y_centres,
+        elevation_m=z,
+        depth_m=depth_m,
+        elevation_interval_m=settings.contour_interval_m,
+        depth_interval_m=settings.contour_interval_m,
         index_every=settings.index_contour_every,
     )
     extent = max(spec.nx, spec.ny) * spec.cell_size_m
     spacing = max(spec.cell_size_m * 2, nice_step(extent / 5.0))
     sdips = surface_dips(spec.x_centres, spec.y_centres, z, spacing, mask=~surface.mask)
-    return MapProducts(ground_grid_m=ground_grid_m, ground_sigma_m=ground_sigma_m, ground_buffer_m=buffer_m,
-                       depth_m=depth_m, depth_sigma_m=depth_sigma_m, contours=contours, surface_dips=sdips)
+    return MapProducts(
+        ground_grid_m=ground_grid_m,
+        ground_sigma_m=ground_sigma_m,
+        ground_buffer_m=buffer_m,
+        depth_m=depth_m,
+        depth_sigma_m=depth_sigma_m,
+        contours=contours,
+        surface_dips=sdips,
+    )

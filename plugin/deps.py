@@ -30,8 +30,14 @@ REQUIRED = (
 )
 
 #: Optional: the feature is simply absent without it.
-OPTIONAL = (("matplotlib.backends.backend_qt5agg", "matplotlib", "python3-matplotlib",
-             "interactive plots in the quality-control panel"),)
+OPTIONAL = (
+    (
+        "matplotlib.backends.backend_qt5agg",
+        "matplotlib",
+        "python3-matplotlib",
+        "interactive plots in the quality-control panel",
+    ),
+)
 
 
 @dataclass(frozen=True)

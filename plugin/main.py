@@ -93,9 +93,9 @@ class RockheadPlugin:
         message = deps.missing_message(self.missing)
         QgsMessageLog.logMessage(message, LOG_TAG, Qgis.Critical)
         names = ", ".join(m.pip or m.name for m in self.missing)
-        short = tr(
-            "missing Python package(s): {names}. See the log panel (Rockhead) for how to install them."
-        ).format(names=names)
+        short = tr("missing Python package(s): {names}. See the log panel (Rockhead) for how to install them.").format(
+            names=names
+        )
         if self.iface is not None:  # qgis_process has no window: it prints the log message on stderr
             self.iface.messageBar().pushMessage(LOG_TAG, short, level=Qgis.Critical, duration=0)
 
@@ -125,7 +125,8 @@ class RockheadPlugin:
         group = load_results(str(folder), project)
         if not group.findLayers():
             self.iface.messageBar().pushMessage(
-                LOG_TAG, tr("no Rockhead results in {folder}").format(folder=folder), level=Qgis.Warning, duration=8)
+                LOG_TAG, tr("no Rockhead results in {folder}").format(folder=folder), level=Qgis.Warning, duration=8
+            )
             return group
         survey = results_survey(str(folder))
         if survey:

@@ -217,17 +217,28 @@ class GatherQc:
             v, se = p[key]
             return "–" if v != v else fmt.format(v) + ("" if se is None or se != se else " ± " + fmt.format(se))
 
-        params = (f"V  = {pm('velocity_m_s', '{:.0f}')} m/s\nh  = {pm('normal_distance_m', '{:.2f}')} m\n"
-                  f"t0 = {pm('t0_ms', '{:.2f}')} ms\ntraveltime dip = {pm('traveltime_dip_deg', '{:.1f}')}°\n"
-                  f"rms {pm('rms_residual_ms', '{:.2f}')} ms; used {p['picks_used'][0]}, rejected "
-                  f"{p['picks_rejected'][0]}, excluded {p['picks_excluded'][0]}")
+        params = (
+            f"V  = {pm('velocity_m_s', '{:.0f}')} m/s\nh  = {pm('normal_distance_m', '{:.2f}')} m\n"
+            f"t0 = {pm('t0_ms', '{:.2f}')} ms\ntraveltime dip = {pm('traveltime_dip_deg', '{:.1f}')}°\n"
+            f"rms {pm('rms_residual_ms', '{:.2f}')} ms; used {p['picks_used'][0]}, rejected "
+            f"{p['picks_rejected'][0]}, excluded {p['picks_excluded'][0]}"
+        )
         model = self.model_times_s(rows)
         # picks as they stand now (edits made since the fit show at their new times and states)
         w, h = size or (520, 560)
         layout = "grid" if h < 1.4 * w else "column"
-        return gather_svg(self.offsets_m(rows), st["time_ms"] / 1e3, model, st["rejected"] & ~st["excluded"],
-                          st["excluded"], title, params if with_parameters else "", ident=f"q{g}", layout=layout,
-                          size=(w, h))
+        return gather_svg(
+            self.offsets_m(rows),
+            st["time_ms"] / 1e3,
+            model,
+            st["rejected"] & ~st["excluded"],
+            st["excluded"],
+            title,
+            params if with_parameters else "",
+            ident=f"q{g}",
+            layout=layout,
+            size=(w, h),
+        )
 
 
 # --------------------------------------------------------------------------------------------- tasks
@@ -276,7 +287,7 @@ class _EditCommand(QUndoCommand):
     def undo(self):
         qc = self.dock.qc
         current = qc.edits
-        if current.edits[-len(self.new):] != self.new:  # the file was changed behind our back
+        if current.edits[-len(self.new) :] != self.new:  # the file was changed behind our back
             raise RuntimeError("the pick edits file no longer ends with this edit; reopen the survey")
         for _ in self.new:
             current = current.without_last()
@@ -424,8 +435,9 @@ class QcDock(QDockWidget):
         lay.addWidget(splitter, 1)
         self.caution_label = QLabel(tr("Caution: ") + CAUTION, body)
         self.caution_label.setWordWrap(True)
-        self.caution_label.setStyleSheet("QLabel { background: #fff4d6; border-left: 4px solid #e0a800; "
-                                         "padding: 4px; font-size: 90%; }")
+        self.caution_label.setStyleSheet(
+            "QLabel { background: #fff4d6; border-left: 4px solid #e0a800; padding: 4px; font-size: 90%; }"
+        )
         lay.addWidget(self.caution_label)
         self.setWidget(body)
         QgsProject.instance().layersAdded.connect(self._layers_added)
@@ -463,8 +475,9 @@ class QcDock(QDockWidget):
         self.undo_stack.clear()
         path = str(survey_path)
         self._jobs = [j for j in self._jobs if j.kind != "load"]
-        self._queue(_Job("load", tr("Rockhead: read and fit the survey"),
-                         lambda progress: GatherQc(path), self._loaded))
+        self._queue(
+            _Job("load", tr("Rockhead: read and fit the survey"), lambda progress: GatherQc(path), self._loaded)
+        )
 
     def _loaded(self, qc) -> None:
         self.qc = qc
@@ -476,7 +489,8 @@ class QcDock(QDockWidget):
         n_edits = len(qc.edits)
         self.status_label.setText(
             tr("{n} gathers; {e} pick edits in {file}.").format(
-                n=qc.gathers.n_gathers, e=n_edits, file=os.path.basename(str(qc.edits_path)))
+                n=qc.gathers.n_gathers, e=n_edits, file=os.path.basename(str(qc.edits_path))
+            )
         )
         if not self.show_selected_shot() and qc.gathers.n_gathers:
             self.show_gather(0)
@@ -630,8 +644,13 @@ class QcDock(QDockWidget):
                 flags.append(tr("retimed from {t:.2f} ms").format(t=st["original_ms"][r]))
             if st["rejected"][r] and not st["excluded"][r]:
                 flags.append(tr("rejected by fit"))
-            texts = (str(receivers[r]), f"{x[r]:.1f}", f"{st['time_ms'][r]:.2f}",
-                     f"{st['time_ms'][r] - model_ms[r]:+.2f}", ", ".join(flags))
+            texts = (
+                str(receivers[r]),
+                f"{x[r]:.1f}",
+                f"{st['time_ms'][r]:.2f}",
+                f"{st['time_ms'][r] - model_ms[r]:+.2f}",
+                ", ".join(flags),
+            )
             for c, text in enumerate(texts, start=1):
                 item = QTableWidgetItem(text)
                 editable = Qt.ItemIsEditable if c == 3 else Qt.NoItemFlags
@@ -714,8 +733,11 @@ class QcDock(QDockWidget):
         edits = []
         for pick_row, action, new_ms in changes:
             line, shot, receiver, reflector = self.qc.pick_key(pick_row)
-            edits.append(PickEdit(line, shot, receiver, reflector, action,
-                                  None if new_ms is None else float(new_ms), reason, stamp))
+            edits.append(
+                PickEdit(
+                    line, shot, receiver, reflector, action, None if new_ms is None else float(new_ms), reason, stamp
+                )
+            )
         if not edits:
             return
         text = edits[0].describe() if len(edits) == 1 else tr("{n} pick edits").format(n=len(edits))
@@ -790,8 +812,9 @@ class QcDock(QDockWidget):
         styling.refresh_results_layers(self.results_dir)
         if self.current is not None:
             self.show_gather(self.current)
-        self.status_label.setText(tr("Every product updated (report, sheets, map) with {n} pick edits.").format(
-            n=len(self.qc.edits)))
+        self.status_label.setText(
+            tr("Every product updated (report, sheets, map) with {n} pick edits.").format(n=len(self.qc.edits))
+        )
 
     def close_panel(self) -> None:
         """Release the survey and stop following layers (called by the plugin's unload)."""

@@ -78,15 +78,23 @@ def _field_kinds(layer: QgsVectorLayer) -> dict:
     out = {}
     for f in layer.fields():
         t = f.type()
-        out[f.name()] = "real" if t == QVariant.Double else "integer" if t in (
-            QVariant.Int, QVariant.LongLong, QVariant.UInt, QVariant.ULongLong, QVariant.Bool) else "text"
+        out[f.name()] = (
+            "real"
+            if t == QVariant.Double
+            else "integer"
+            if t in (QVariant.Int, QVariant.LongLong, QVariant.UInt, QVariant.ULongLong, QVariant.Bool)
+            else "text"
+        )
     return out
 
 
 def _geometry_name(layer: QgsVectorLayer) -> str:
     kind = layer.geometryType()
-    return {QgsWkbTypes.PointGeometry: "POINT", QgsWkbTypes.LineGeometry: "LINESTRING",
-            QgsWkbTypes.PolygonGeometry: "POLYGON"}.get(kind, "")
+    return {
+        QgsWkbTypes.PointGeometry: "POINT",
+        QgsWkbTypes.LineGeometry: "LINESTRING",
+        QgsWkbTypes.PolygonGeometry: "POLYGON",
+    }.get(kind, "")
 
 
 def _contour_levels(layer: QgsVectorLayer, value_field: str, kind: str) -> tuple:
@@ -113,13 +121,15 @@ def style_layer(layer: QgsVectorLayer, table: str, contour_kind: str = "depth") 
     if table == "contours":
         value = "depth_m" if contour_kind == "depth" else "elevation_m"
         interval, n_index = _contour_levels(layer, value, contour_kind)
-    qml = core_styles.layer_qml(table, _field_kinds(layer), _geometry_name(layer), interval, contour_kind,
-                                label_all_contours=n_index < 3)
+    qml = core_styles.layer_qml(
+        table, _field_kinds(layer), _geometry_name(layer), interval, contour_kind, label_all_contours=n_index < 3
+    )
     apply_qml(layer, qml)
 
 
-def style_raster(layer: QgsRasterLayer, ramp=DEPTH_RAMP, unit_label: str = "m", prefix: str = "",
-                 decimals: int = 1) -> None:
+def style_raster(
+    layer: QgsRasterLayer, ramp=DEPTH_RAMP, unit_label: str = "m", prefix: str = "", decimals: int = 1
+) -> None:
     """A continuous ramp over the band's own min..max, the legend in ``unit_label``."""
     stats = layer.dataProvider().bandStatistics(1, QgsRasterBandStats.Min | QgsRasterBandStats.Max)
     suffix = f" {unit_label}" if unit_label else ""

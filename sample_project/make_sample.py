@@ -201,14 +201,26 @@ def make(out_dir: Path = HERE) -> dict:
         boreholes.append((name, bx, by, round(bz, 2), round(depth, 2), 0.1))
 
     out_dir.mkdir(parents=True, exist_ok=True)
-    _write_csv(out_dir / "stations.csv", ["line", "station", "x", "y", "z"], stations,
-               "# Tarnwick Creek bridge (invented demo site): surveyed geophone stations and shot points, EPSG:32633")
-    _write_csv(out_dir / "picks.csv", ["line", "shot", "receiver", "time_ms", "sigma_ms"], picks,
-               "# bedrock reflection picks, two-way time in milliseconds")
-    _write_csv(out_dir / "boreholes.csv", ["borehole", "x", "y", "z", "depth_m", "sigma_m"], boreholes,
-               "# boreholes to bedrock (collar elevation z, depth to rock)")
+    _write_csv(
+        out_dir / "stations.csv",
+        ["line", "station", "x", "y", "z"],
+        stations,
+        "# Tarnwick Creek bridge (invented demo site): surveyed geophone stations and shot points, EPSG:32633",
+    )
+    _write_csv(
+        out_dir / "picks.csv",
+        ["line", "shot", "receiver", "time_ms", "sigma_ms"],
+        picks,
+        "# bedrock reflection picks, two-way time in milliseconds",
+    )
+    _write_csv(
+        out_dir / "boreholes.csv",
+        ["borehole", "x", "y", "z", "depth_m", "sigma_m"],
+        boreholes,
+        "# boreholes to bedrock (collar elevation z, depth to rock)",
+    )
     (out_dir / "survey.toml").write_text(
-        '# Demo survey of an invented site. Paths are relative to this file.\n'
+        "# Demo survey of an invented site. Paths are relative to this file.\n"
         "[survey]\n"
         'name = "Tarnwick Creek bridge (demo)"\n'
         f'crs = "{CRS}"\n\n'

@@ -62,7 +62,10 @@ def run_cli_process(*args, timeout_s: float = 600.0):
 
     return subprocess.run(
         [sys.executable, "-m", "rockhead.core.cli", *map(str, args)],
-        capture_output=True, text=True, env=cli_env(), timeout=timeout_s,
+        capture_output=True,
+        text=True,
+        env=cli_env(),
+        timeout=timeout_s,
     )
 
 
@@ -169,8 +172,9 @@ def run_gdal_validators(paths) -> dict:
         return {}
     env = _clean_env(debian=True)
     try:
-        proc = subprocess.run([SYSTEM_PYTHON, str(VALIDATE_SCRIPT), *paths], capture_output=True, text=True,
-                              env=env, timeout=600)
+        proc = subprocess.run(
+            [SYSTEM_PYTHON, str(VALIDATE_SCRIPT), *paths], capture_output=True, text=True, env=env, timeout=600
+        )
     except FileNotFoundError:
         proc = None
     if proc is None or "No module named 'osgeo" in proc.stderr:
@@ -219,8 +223,15 @@ def _every_product_passes_gdal_validators(tmp_path_factory):
     Rockhead; reference files and deliberately broken inputs are not)."""
     yield
     base = tmp_path_factory.getbasetemp()
-    found = [p for p in sorted(base.rglob("*")) if p.suffix.lower() in (".tif", ".tiff", ".gpkg")
-             and p.is_file() and not p.name.startswith(".") and not p.is_symlink() and _is_product(p)]
+    found = [
+        p
+        for p in sorted(base.rglob("*"))
+        if p.suffix.lower() in (".tif", ".tiff", ".gpkg")
+        and p.is_file()
+        and not p.name.startswith(".")
+        and not p.is_symlink()
+        and _is_product(p)
+    ]
     if not found:
         return
     try:
@@ -269,8 +280,9 @@ def run_on_other_stack():
     def run(code: str, *args) -> str:
         env = _clean_env(debian=name == "osgeo")
         env["PYTHONPATH"] = link_parent
-        proc = subprocess.run([python, "-c", code, *map(str, args)], capture_output=True, text=True, env=env,
-                              timeout=600)
+        proc = subprocess.run(
+            [python, "-c", code, *map(str, args)], capture_output=True, text=True, env=env, timeout=600
+        )
         if name == "osgeo" and "No module named 'osgeo" in proc.stderr:
             pytest.skip(f"{python} has no GDAL bindings")
         assert proc.returncode == 0, proc.stderr

@@ -30,8 +30,9 @@ def problems(path: str) -> list:
     from osgeo_utils.samples import validate_gpkg
 
     try:
-        errors = validate_gpkg.check(path, abort_at_first_error=False, extra_checks=True, warning_msg=False,
-                                     warning_as_error=True)
+        errors = validate_gpkg.check(
+            path, abort_at_first_error=False, extra_checks=True, warning_msg=False, warning_as_error=True
+        )
     except validate_gpkg.GPKGCheckException as exc:
         return [str(exc)]
     return [f"Req {req}: {msg}" if req else str(msg) for req, msg in errors]

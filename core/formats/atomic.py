@@ -263,9 +263,7 @@ def check_not_input(output_path: PathLike, input_paths: Iterable[PathLike | None
             continue
         inp = Path(os.fspath(inp))
         if _same_file(out, inp):
-            raise OutputError(
-                f"output '{out}' would overwrite the input file '{inp}'; choose another output folder"
-            )
+            raise OutputError(f"output '{out}' would overwrite the input file '{inp}'; choose another output folder")
 
 
 def check_output_dir(
@@ -308,8 +306,7 @@ def check_output_dir(
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise OutputError(
-            f"cannot create the output folder '{folder}': {exc.strerror or exc}; "
-            "choose a folder you can write to"
+            f"cannot create the output folder '{folder}': {exc.strerror or exc}; choose a folder you can write to"
         ) from exc
     try:
         fd, probe = tempfile.mkstemp(prefix=".write-test.", dir=folder)
@@ -317,8 +314,7 @@ def check_output_dir(
         os.unlink(probe)
     except OSError as exc:
         raise OutputError(
-            f"cannot write in the output folder '{folder}': {exc.strerror or exc}; "
-            "choose a folder you can write to"
+            f"cannot write in the output folder '{folder}': {exc.strerror or exc}; choose a folder you can write to"
         ) from exc
     for name in output_names:
         check_not_input(folder / name, inputs)

@@ -158,9 +158,7 @@ def write_dxf(
         colours.setdefault(layer_name, 7)
     for name, colour in colours.items():
         if not isinstance(name, str) or not _LAYER_RE.match(name):
-            raise OutputError(
-                f"DXF layer name {name!r} is not valid for Release 12; use up to 31 of A-Z 0-9 _ $ -"
-            )
+            raise OutputError(f"DXF layer name {name!r} is not valid for Release 12; use up to 31 of A-Z 0-9 _ $ -")
         if not (isinstance(colour, (int, np.integer)) and 1 <= int(colour) <= 255):
             raise OutputError(f"colour {colour!r} of DXF layer '{name}' is not an ACI number from 1 to 255")
     arrays = []
@@ -343,8 +341,6 @@ def write_contours_dxf(
                 angle -= 180.0
             elif angle <= -90.0:
                 angle += 180.0
-            texts.append(
-                DxfText(mid.x, mid.y, value, _label_value(value), label_height_m, names["label"][0], angle)
-            )
+            texts.append(DxfText(mid.x, mid.y, value, _label_value(value), label_height_m, names["label"][0], angle))
     colours = {name: colour for name, colour in names.values()}
     return write_dxf(path, polylines, texts, colours, comments)

@@ -135,15 +135,28 @@ def read_raster(path, band: int):
         values = np.frombuffer(raw, dtype=np.float64).reshape(ny, nx).copy()
         srs = ds.GetSpatialRef()
         wkt = srs.ExportToWkt(["FORMAT=WKT2_2019"]) if srs is not None else ""
-        out = (ds.GetGeoTransform(), values, b.GetNoDataValue(), wkt, ds.GetMetadata() or {},
-               b.GetMetadata() or {}, b.GetDescription(), b.GetUnitType())
+        out = (
+            ds.GetGeoTransform(),
+            values,
+            b.GetNoDataValue(),
+            wkt,
+            ds.GetMetadata() or {},
+            b.GetMetadata() or {},
+            b.GetDescription(),
+            b.GetUnitType(),
+        )
         b = None
         ds = None
     return out
 
 
 _OGR_BASE = {
-    "POINT": 1, "LINESTRING": 2, "POLYGON": 3, "MULTIPOINT": 4, "MULTILINESTRING": 5, "MULTIPOLYGON": 6,
+    "POINT": 1,
+    "LINESTRING": 2,
+    "POLYGON": 3,
+    "MULTIPOINT": 4,
+    "MULTILINESTRING": 5,
+    "MULTIPOLYGON": 6,
     "GEOMETRY": 0,
 }
 
@@ -198,8 +211,12 @@ def _python_values(kind, arr) -> list:
     if kind == "f":
         return [None if math.isnan(v) else v for v in arr.astype(float).tolist()]
     if kind == "S":
-        return [None if v is None or (isinstance(v, float) and math.isnan(v))
-                else (v.decode("utf-8") if isinstance(v, bytes) else str(v)) for v in arr.tolist()]
+        return [
+            None
+            if v is None or (isinstance(v, float) and math.isnan(v))
+            else (v.decode("utf-8") if isinstance(v, bytes) else str(v))
+            for v in arr.tolist()
+        ]
     return [int(v) for v in arr.tolist()]
 
 

@@ -28,8 +28,13 @@ __all__ = [
 ]
 
 _GEOMETRY_NAMES = {
-    "POINT": "Point", "LINESTRING": "LineString", "POLYGON": "Polygon", "MULTIPOINT": "MultiPoint",
-    "MULTILINESTRING": "MultiLineString", "MULTIPOLYGON": "MultiPolygon", "GEOMETRY": "Unknown",
+    "POINT": "Point",
+    "LINESTRING": "LineString",
+    "POLYGON": "Polygon",
+    "MULTIPOINT": "MultiPoint",
+    "MULTILINESTRING": "MultiLineString",
+    "MULTIPOLYGON": "MultiPolygon",
+    "GEOMETRY": "Unknown",
 }
 
 
@@ -64,8 +69,14 @@ def write_raster(tmp, data, geotransform, wkt, nodata, md, bmd, description, uni
     ny, nx = data.shape
     gt = geotransform
     profile = dict(
-        driver="GTiff", width=nx, height=ny, count=1, dtype="float32", nodata=nodata,
-        crs=CRS.from_wkt(wkt) if wkt else None, transform=Affine(gt[1], gt[2], gt[0], gt[4], gt[5], gt[3]),
+        driver="GTiff",
+        width=nx,
+        height=ny,
+        count=1,
+        dtype="float32",
+        nodata=nodata,
+        crs=CRS.from_wkt(wkt) if wkt else None,
+        transform=Affine(gt[1], gt[2], gt[0], gt[4], gt[5], gt[3]),
     )
     try:
         with MemoryFile() as mf:
@@ -94,16 +105,28 @@ def read_raster(path, band: int):
             t = ds.transform
             values = ds.read(band).astype(np.float64)
             wkt = ds.crs.to_wkt(version="WKT2_2019") if ds.crs is not None else ""
-            return ((t.c, t.a, t.b, t.f, t.d, t.e), values, ds.nodatavals[band - 1], wkt, ds.tags(),
-                    ds.tags(band), ds.descriptions[band - 1], ds.units[band - 1])
+            return (
+                (t.c, t.a, t.b, t.f, t.d, t.e),
+                values,
+                ds.nodatavals[band - 1],
+                wkt,
+                ds.tags(),
+                ds.tags(band),
+                ds.descriptions[band - 1],
+                ds.units[band - 1],
+            )
     except (RasterioError, IndexError) as exc:
         raise InputFileError(path, None, None, f"GDAL cannot read the raster: {exc}") from exc
 
 
 def _text(arr) -> np.ndarray:
     out = np.empty(len(arr), dtype=object)
-    out[:] = [None if v is None or (isinstance(v, float) and math.isnan(v))
-              else (v.decode("utf-8") if isinstance(v, bytes) else str(v)) for v in arr.tolist()]
+    out[:] = [
+        None
+        if v is None or (isinstance(v, float) and math.isnan(v))
+        else (v.decode("utf-8") if isinstance(v, bytes) else str(v))
+        for v in arr.tolist()
+    ]
     return out
 
 
@@ -118,8 +141,15 @@ def write_layers(tmp, prepared, wkt, dmd, lmd, dataset_options, layer_options) -
             names.append(fname)
             if kind == "M":
                 tz[fname] = np.full(len(arr), 100, dtype=np.int64)  # GDAL's code for UTC ('Z')
-            data.append({"S": _text, "i": lambda a: a.astype(np.int64), "f": lambda a: a.astype(np.float64),
-                         "M": lambda a: a.astype("datetime64[ms]"), "b": lambda a: a.astype(bool)}[kind](arr))
+            data.append(
+                {
+                    "S": _text,
+                    "i": lambda a: a.astype(np.int64),
+                    "f": lambda a: a.astype(np.float64),
+                    "M": lambda a: a.astype("datetime64[ms]"),
+                    "b": lambda a: a.astype(bool),
+                }[kind](arr)
+            )
         geometry = None
         gname = None
         if gtype is not None:
@@ -131,11 +161,21 @@ def write_layers(tmp, prepared, wkt, dmd, lmd, dataset_options, layer_options) -
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)  # "'crs' was not provided" for attribute tables
                 pyogrio.raw.write(
-                    str(tmp), geometry, data, names, layer=lname, driver="GPKG", geometry_type=gname,
-                    crs=wkt if (wkt and gtype) else None, append=k > 0, promote_to_multi=False,
-                    dataset_metadata=(dmd or None) if k == 0 else None, layer_metadata=lmd.get(lname) or None,
+                    str(tmp),
+                    geometry,
+                    data,
+                    names,
+                    layer=lname,
+                    driver="GPKG",
+                    geometry_type=gname,
+                    crs=wkt if (wkt and gtype) else None,
+                    append=k > 0,
+                    promote_to_multi=False,
+                    dataset_metadata=(dmd or None) if k == 0 else None,
+                    layer_metadata=lmd.get(lname) or None,
                     dataset_options=dict(dataset_options) if k == 0 else None,
-                    layer_options=layer_options(lname, layer), gdal_tz_offsets=tz or None,
+                    layer_options=layer_options(lname, layer),
+                    gdal_tz_offsets=tz or None,
                 )
         except (DataSourceError, DataLayerError, FieldError, GeometryError) as exc:
             raise OutputError(f"GDAL cannot write the GeoPackage '{tmp.name}': {exc}") from exc

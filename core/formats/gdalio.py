@@ -423,8 +423,9 @@ def read_raster(path, band: int = 1, *, engine_name: str | None = None) -> Raste
     if nodata is not None and not math.isnan(nodata):
         values[values == nodata] = np.nan
     x0_edge, y0_edge, dx, dy = (float(v) for v in (gt[0], gt[3], gt[1], gt[5]))
-    return Raster(values, x0_edge, y0_edge, dx, dy, _crs_from_wkt(wkt), nodata, dict(md), dict(bmd), desc or "",
-                  unit or "")
+    return Raster(
+        values, x0_edge, y0_edge, dx, dy, _crs_from_wkt(wkt), nodata, dict(md), dict(bmd), desc or "", unit or ""
+    )
 
 
 def read_grid(path, band: int = 1, *, engine_name: str | None = None):
@@ -439,6 +440,7 @@ def read_grid(path, band: int = 1, *, engine_name: str | None = None):
 
 
 # ------------------------------------------------------------------------------ vectors
+
 
 def write_layers(
     path,
@@ -494,8 +496,13 @@ def write_layers(
 
 
 def _layer_options(lname, layer) -> dict:
-    return {"FID": "fid", "GEOMETRY_NAME": "geom", "SPATIAL_INDEX": "YES", "IDENTIFIER": lname,
-            "DESCRIPTION": layer.description or ""}
+    return {
+        "FID": "fid",
+        "GEOMETRY_NAME": "geom",
+        "SPATIAL_INDEX": "YES",
+        "IDENTIFIER": lname,
+        "DESCRIPTION": layer.description or "",
+    }
 
 
 def list_layers(path, *, engine_name: str | None = None) -> list:

@@ -158,25 +158,31 @@ def write_landxml_surface(
     ET.register_namespace("xsi", XSI)
     ns = "{" + LANDXML_NAMESPACE + "}"
     day = issue_date(timestamp)
-    root = ET.Element(ns + "LandXML", {
-        "version": "1.2",
-        "date": day.isoformat(),
-        "time": "00:00:00",
-        "{" + XSI + "}schemaLocation": f"{LANDXML_NAMESPACE} {SCHEMA_LOCATION}",
-    })
+    root = ET.Element(
+        ns + "LandXML",
+        {
+            "version": "1.2",
+            "date": day.isoformat(),
+            "time": "00:00:00",
+            "{" + XSI + "}schemaLocation": f"{LANDXML_NAMESPACE} {SCHEMA_LOCATION}",
+        },
+    )
     units = ET.SubElement(root, ns + "Units")
-    ET.SubElement(units, ns + "Metric", {
-        "areaUnit": "squareMeter",
-        "linearUnit": "meter",
-        "volumeUnit": "cubicMeter",
-        "temperatureUnit": "celsius",
-        "pressureUnit": "milliBars",
-        "angularUnit": "decimal degrees",
-        "directionUnit": "decimal degrees",
-    })
+    ET.SubElement(
+        units,
+        ns + "Metric",
+        {
+            "areaUnit": "squareMeter",
+            "linearUnit": "meter",
+            "volumeUnit": "cubicMeter",
+            "temperatureUnit": "celsius",
+            "pressureUnit": "milliBars",
+            "angularUnit": "decimal degrees",
+            "directionUnit": "decimal degrees",
+        },
+    )
     wkt = crs.to_wkt("WKT1_GDAL") or crs.to_wkt()  # OGC WKT 1 (what civil software reads), else WKT 2
-    cs = {"name": crs.name or "custom CRS", "ogcWktCode": wkt,
-          "verticalDatum": vertical_datum or "not stated"}
+    cs = {"name": crs.name or "custom CRS", "ogcWktCode": wkt, "verticalDatum": vertical_datum or "not stated"}
     epsg = crs.to_epsg()
     if epsg is not None:
         cs["epsgCode"] = str(epsg)

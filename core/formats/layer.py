@@ -36,8 +36,14 @@ GEOMETRY_TYPES = ("POINT", "LINESTRING", "POLYGON", "MULTIPOINT", "MULTILINESTRI
 _NAME_RE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _RESERVED = ("fid", "geom")
 _TYPE_NAMES = {
-    0: "Point", 1: "LineString", 2: "LinearRing", 3: "Polygon", 4: "MultiPoint", 5: "MultiLineString",
-    6: "MultiPolygon", 7: "GeometryCollection",
+    0: "Point",
+    1: "LineString",
+    2: "LinearRing",
+    3: "Polygon",
+    4: "MultiPoint",
+    5: "MultiLineString",
+    6: "MultiPolygon",
+    7: "GeometryCollection",
 }
 
 

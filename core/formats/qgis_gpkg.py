@@ -30,12 +30,25 @@ __all__ = ["QGIS_METADATA_URI", "add_layer_metadata", "layer_metadata_xml"]
 QGIS_METADATA_URI = "http://mrcc.com/qgis.dtd"
 
 
-def layer_metadata_xml(identifier: str, title: str, abstract: str, history: Iterable[str] = (),
-                       caution: str = "", parent: str = "", keywords: Iterable[str] = ()) -> str:
+def layer_metadata_xml(
+    identifier: str,
+    title: str,
+    abstract: str,
+    history: Iterable[str] = (),
+    caution: str = "",
+    parent: str = "",
+    keywords: Iterable[str] = (),
+) -> str:
     """A layer's metadata in QGIS's XML (the elements QGIS's layer metadata reads)."""
     root = ET.Element("qgis", {"version": "3.22.0"})
-    for tag, text in (("identifier", identifier), ("parentidentifier", parent), ("language", "en"),
-                      ("type", "dataset"), ("title", title), ("abstract", abstract)):
+    for tag, text in (
+        ("identifier", identifier),
+        ("parentidentifier", parent),
+        ("language", "en"),
+        ("type", "dataset"),
+        ("title", title),
+        ("abstract", abstract),
+    ):
         ET.SubElement(root, tag).text = text
     words = list(keywords)
     if words:
@@ -65,11 +78,16 @@ def add_layer_metadata(path, records: Mapping[str, str], timestamp: str) -> None
             raise OutputError(f"'{path.name}' has no GeoPackage metadata tables; write it with metadata first")
         con.execute("BEGIN")
         for table, xml in records.items():
-            cur = con.execute("INSERT INTO gpkg_metadata (md_scope, md_standard_uri, mime_type, metadata) "
-                              "VALUES ('dataset', ?, 'text/xml', ?)", (QGIS_METADATA_URI, xml))
-            con.execute("INSERT INTO gpkg_metadata_reference (reference_scope, table_name, column_name, row_id_value, "
-                        "timestamp, md_file_id, md_parent_id) VALUES ('table', ?, NULL, NULL, ?, ?, NULL)",
-                        (table, timestamp, cur.lastrowid))
+            cur = con.execute(
+                "INSERT INTO gpkg_metadata (md_scope, md_standard_uri, mime_type, metadata) "
+                "VALUES ('dataset', ?, 'text/xml', ?)",
+                (QGIS_METADATA_URI, xml),
+            )
+            con.execute(
+                "INSERT INTO gpkg_metadata_reference (reference_scope, table_name, column_name, row_id_value, "
+                "timestamp, md_file_id, md_parent_id) VALUES ('table', ?, NULL, NULL, ?, ?, NULL)",
+                (table, timestamp, cur.lastrowid),
+            )
         con.execute("COMMIT")
     except sqlite3.Error as exc:
         raise OutputError(f"cannot add layer metadata to '{path.name}': {exc}") from exc

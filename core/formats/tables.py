@@ -130,9 +130,7 @@ def write_csv(
     return path
 
 
-def write_layer_csv(
-    path, layer, *, geometry: str | None = "xy", digits: int | None = None, bom: bool = False
-) -> Path:
+def write_layer_csv(path, layer, *, geometry: str | None = "xy", digits: int | None = None, bom: bool = False) -> Path:
     """Write a :class:`.layer.Layer`'s attribute table to CSV.
 
     Parameters

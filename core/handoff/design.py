@@ -226,9 +226,11 @@ def rock_volume(
         r, c = np.argwhere(mapped)[len(np.argwhere(mapped)) // 2]
         sub[r, c] = True
     gx, gy = spec.coords()
-    sim = simulate_conditional(variogram, x, y, error_variance, gx[sub], gy[sub], z[sub], n_simulations, seed,
-                               neighbours, progress)
+    sim = simulate_conditional(
+        variogram, x, y, error_variance, gx[sub], gy[sub], z[sub], n_simulations, seed, neighbours, progress
+    )
     weight = mapped_area / sub.sum()  # each node stands for an equal share of the mapped area
     volumes = np.sum(np.maximum(sim.values - zd, 0.0), axis=0) * weight
-    return DesignVolume(zd, area_m2, mapped_area, volumes, map_volume, spec.cell_size_m * stride, int(sub.sum()),
-                        sim.jitter, int(seed))
+    return DesignVolume(
+        zd, area_m2, mapped_area, volumes, map_volume, spec.cell_size_m * stride, int(sub.sum()), sim.jitter, int(seed)
+    )

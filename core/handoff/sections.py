@@ -191,8 +191,16 @@ def _project(vx, vy, half_width, label, x, y, top, elev, sigma) -> Projected:
     def pick(a):
         return np.asarray(a)[sel]
 
-    return Projected(pick(np.asarray(label).astype(str).astype(object)), pick(x), pick(y), ch[sel], off[sel],
-                     pick(top).astype(float), pick(elev).astype(float), pick(sigma).astype(float))
+    return Projected(
+        pick(np.asarray(label).astype(str).astype(object)),
+        pick(x),
+        pick(y),
+        ch[sel],
+        off[sel],
+        pick(top).astype(float),
+        pick(elev).astype(float),
+        pick(sigma).astype(float),
+    )
 
 
 def build_section(
@@ -274,5 +282,6 @@ def build_section(
     notes = []
     if np.all(~np.isfinite(elev)):
         notes.append("the alignment does not cross the mapped area")
-    return Section(name, title or name, v, ch, x, y, g, elev, sig, tuple(samples), bh, sh, pts, float(corridor_m),
-                   tuple(notes))
+    return Section(
+        name, title or name, v, ch, x, y, g, elev, sig, tuple(samples), bh, sh, pts, float(corridor_m), tuple(notes)
+    )

@@ -61,7 +61,7 @@ def surface_conditioning(result):
         x, y, _, s = surface_data(result.fit.points, st.reflector, bh if bh is not None and len(bh) else None)
     vario = diag.variogram
     if vario is None:
-        return None, f"the {result.method_used} surface has no variogram (choose surface_method = \"kriging\")"
+        return None, f'the {result.method_used} surface has no variogram (choose surface_method = "kriging")'
     return (np.asarray(x, float), np.asarray(y, float), np.asarray(s, float) ** 2, vario, st.neighbours), ""
 
 
@@ -70,8 +70,9 @@ def design_step(result, progress=None) -> Optional[DesignResult]:
     h = result.survey.handoff
     if h.design_elevation_m is None or result.surface is None:
         return None
-    return design_answers(result, h.design_elevation_m, area=h.design_area, n_simulations=h.simulations,
-                          seed=h.seed, progress=progress)
+    return design_answers(
+        result, h.design_elevation_m, area=h.design_area, n_simulations=h.simulations, seed=h.seed, progress=progress
+    )
 
 
 def design_answers(result, design_elevation_m, area=None, n_simulations=500, seed=1, progress=None) -> DesignResult:
@@ -88,19 +89,32 @@ def design_answers(result, design_elevation_m, area=None, n_simulations=500, see
     if cond is None:
         return DesignResult(float(design_elevation_m), prob, None, area, f"no volume: {why}")
     x, y, e, vario, k = cond
-    vol = rock_volume(result.spec, z, design_elevation_m, vario, (x, y), e, area=area, neighbours=k,
-                      n_simulations=n_simulations, seed=seed, progress=progress)
+    vol = rock_volume(
+        result.spec,
+        z,
+        design_elevation_m,
+        vario,
+        (x, y),
+        e,
+        area=area,
+        neighbours=k,
+        n_simulations=n_simulations,
+        seed=seed,
+        progress=progress,
+    )
     note = ""
     if vol.mapped_fraction < 0.999:
-        note = (f"only {100 * vol.mapped_fraction:.0f} % of the design area is mapped: the volume covers that part "
-                "only")
+        note = f"only {100 * vol.mapped_fraction:.0f} % of the design area is mapped: the volume covers that part only"
     return DesignResult(float(design_elevation_m), prob, vol, area, note)
 
 
 def line_alignments(result) -> list:
     """(name, (n, 2) vertices) of every seismic line, stations in order."""
-    return [(f"line_{name}", np.column_stack([f.x_m, f.y_m])) for name, f in sorted(result.fit.frames.items())
-            if len(f.x_m) > 1]
+    return [
+        (f"line_{name}", np.column_stack([f.x_m, f.y_m]))
+        for name, f in sorted(result.fit.frames.items())
+        if len(f.x_m) > 1
+    ]
 
 
 def section_along(result, name, vertices_xy, corridor_m, title="") -> Section:
@@ -115,11 +129,24 @@ def section_along(result, name, vertices_xy, corridor_m, title="") -> Section:
     src = g.source_xyz_g[first]
     shots = (np.asarray(g.shot)[first], src[:, 0], src[:, 1], src[:, 2])
     p = result.fit.points
-    ok = (np.asarray(p.status) == "ok") & np.asarray(p.finite) & (np.asarray(p.reflector).astype(str)
-                                                                  == str(result.survey.settings.reflector))
+    ok = (
+        (np.asarray(p.status) == "ok")
+        & np.asarray(p.finite)
+        & (np.asarray(p.reflector).astype(str) == str(result.survey.settings.reflector))
+    )
     points = (np.asarray(p.shot)[ok], p.x_m[ok], p.y_m[ok], p.elevation_m[ok], p.sigma_m[ok])
-    return build_section(name, vertices_xy, result.spec, surface_interfaces(result), result.ground,
-                         corridor_m=corridor_m, boreholes=boreholes, shots=shots, points=points, title=title or name)
+    return build_section(
+        name,
+        vertices_xy,
+        result.spec,
+        surface_interfaces(result),
+        result.ground,
+        corridor_m=corridor_m,
+        boreholes=boreholes,
+        shots=shots,
+        points=points,
+        title=title or name,
+    )
 
 
 def sections_step(result) -> list:
@@ -129,8 +156,9 @@ def sections_step(result) -> list:
     for name, v in line_alignments(result):
         out.append(section_along(result, name, v, h.corridor_m, title=name.replace("_", " ", 1)))
     for a in h.alignments:
-        out.append(section_along(result, a.name, np.column_stack([a.x_m, a.y_m]), h.corridor_m,
-                                 title=f"alignment {a.name}"))
+        out.append(
+            section_along(result, a.name, np.column_stack([a.x_m, a.y_m]), h.corridor_m, title=f"alignment {a.name}")
+        )
     return out
 
 

@@ -55,8 +55,13 @@ Z_MEANING = {
     "surface_dips": "mapped reflector elevation at the point",
     "contours": "reflector elevation (the level of an elevation contour; ground minus depth along a depth contour)",
 }
-_FIELD_Z = {"stations": "z_m", "shots": "source_z_m", "reflector_points": "elevation_m",
-            "reflection_points": "elevation_m", "boreholes": "elevation_m"}
+_FIELD_Z = {
+    "stations": "z_m",
+    "shots": "source_z_m",
+    "reflector_points": "elevation_m",
+    "reflection_points": "elevation_m",
+    "boreholes": "elevation_m",
+}
 
 
 def _float(values) -> np.ndarray:
@@ -90,8 +95,7 @@ def _point_z(name: str, layer: Layer, result):
     if name == "cross_validation":
         return _float(f["estimate_m"]) + _float(f["residual_m"])
     if name in ("dip_measurements", "surface_dips"):
-        xy = np.array([(g.x, g.y) if g is not None else (np.nan, np.nan) for g in layer.geometries or ()],
-                      dtype=float)
+        xy = np.array([(g.x, g.y) if g is not None else (np.nan, np.nan) for g in layer.geometries or ()], dtype=float)
         return _surface_at(result, xy[:, 0], xy[:, 1]).ravel() if len(xy) else np.zeros(0)
     return None
 
@@ -99,8 +103,9 @@ def _point_z(name: str, layer: Layer, result):
 def _points_3d(layer: Layer, z) -> Layer:
     from shapely.geometry import Point
 
-    geoms = [None if g is None or g.is_empty else Point(g.x, g.y, float(zz))
-             for g, zz in zip(layer.geometries or (), z)]
+    geoms = [
+        None if g is None or g.is_empty else Point(g.x, g.y, float(zz)) for g, zz in zip(layer.geometries or (), z)
+    ]
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 
@@ -130,8 +135,9 @@ def _contours_3d(layer: Layer, result) -> Layer:
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 
-def layers_3d(layers: Dict[str, Layer], result, vertical_label: str = VERTICAL_NOT_STATED
-              ) -> Tuple[Dict[str, Layer], Dict[str, Dict[str, str]]]:
+def layers_3d(
+    layers: Dict[str, Layer], result, vertical_label: str = VERTICAL_NOT_STATED
+) -> Tuple[Dict[str, Layer], Dict[str, Dict[str, str]]]:
     """The layers with z in their geometries (see the module notes) and each layer's metadata.
 
     Returns
@@ -156,8 +162,9 @@ def layers_3d(layers: Dict[str, Layer], result, vertical_label: str = VERTICAL_N
     return out, meta
 
 
-def qgis_layer_metadata(layers: Dict[str, Layer], prov: Provenance, z_metadata: Dict[str, Dict[str, str]]
-                        ) -> Dict[str, str]:
+def qgis_layer_metadata(
+    layers: Dict[str, Layer], prov: Provenance, z_metadata: Dict[str, Dict[str, str]]
+) -> Dict[str, str]:
     """QGIS layer metadata of every table (``{table: XML}``): title, abstract with the caution, history.
 
     The abstract is the layer's description, what the z of its geometries is
@@ -165,17 +172,22 @@ def qgis_layer_metadata(layers: Dict[str, Layer], prov: Provenance, z_metadata: 
     which software made it from which survey, by which surface method, and on
     which CRS and vertical datum. QGIS shows it in the layer's properties.
     """
-    history = [f"Made by {prov.software} from the survey '{prov.survey}' (surface: {prov.method}; survey date: "
-               f"{prov.date}); coordinates {prov.crs}, elevations {prov.vertical_datum}."]
+    history = [
+        f"Made by {prov.software} from the survey '{prov.survey}' (surface: {prov.method}; survey date: "
+        f"{prov.date}); coordinates {prov.crs}, elevations {prov.vertical_datum}."
+    ]
     out = {}
     for name, layer in layers.items():
         abstract = layer.description or name.replace("_", " ")
         if name in z_metadata:
             abstract += f"\n\nGeometry z: {z_metadata[name]['Z']}."
         out[name] = layer_metadata_xml(
-            identifier=f"{prov.survey}: {name}", parent=prov.survey,
+            identifier=f"{prov.survey}: {name}",
+            parent=prov.survey,
             title=f"{name.replace('_', ' ').capitalize()} - {prov.survey}",
-            abstract=f"{abstract}\n\nCAUTION: {CAUTION}", history=history, caution=CAUTION,
+            abstract=f"{abstract}\n\nCAUTION: {CAUTION}",
+            history=history,
+            caution=CAUTION,
             keywords=["geoscientificInformation"],
         )
     return out

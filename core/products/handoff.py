@@ -115,10 +115,20 @@ def handoff_run_info(result) -> list:
     h = result.survey.handoff
     items.append(("vertical_datum", h.vertical_datum or "vertical datum not stated"))
     items.append(("survey_date", h.survey_date or "not stated"))
-    items.append((MAP_SHEET_NAME, "A3 map sheet: depth, standard deviation"
-                  + (", probability above the design level" if result.design is not None else "")))
-    items.append((LANDXML_NAME, "LandXML 1.2 TIN of reflector_elevation.tif (two triangles per fully mapped quad "
-                                "of cell centres; points northing easting elevation)"))
+    items.append(
+        (
+            MAP_SHEET_NAME,
+            "A3 map sheet: depth, standard deviation"
+            + (", probability above the design level" if result.design is not None else ""),
+        )
+    )
+    items.append(
+        (
+            LANDXML_NAME,
+            "LandXML 1.2 TIN of reflector_elevation.tif (two triangles per fully mapped quad "
+            "of cell centres; points northing easting elevation)",
+        )
+    )
     d = result.design
     if d is not None:
         items.append(("design_elevation_m", d.design_elevation_m))
@@ -126,9 +136,14 @@ def handoff_run_info(result) -> list:
             items.append((PROBABILITY_NAME, "P(reflector elevation > design elevation) = Phi((z - z_design)/sigma)"))
         if d.volume is not None:
             v = d.volume
-            items.append(("rock_volume_above_design_m3", f"P10 {v.p10_m3:.0f}, P50 {v.p50_m3:.0f}, P90 "
-                                                         f"{v.p90_m3:.0f} ({v.n_simulations} conditional "
-                                                         "simulations)"))
+            items.append(
+                (
+                    "rock_volume_above_design_m3",
+                    f"P10 {v.p10_m3:.0f}, P50 {v.p50_m3:.0f}, P90 "
+                    f"{v.p90_m3:.0f} ({v.n_simulations} conditional "
+                    "simulations)",
+                )
+            )
         if d.note:
             items.append(("design_note", d.note))
     return items
@@ -153,16 +168,40 @@ def map_content(result):
     """The pages and overlays of the map sheet of a run."""
     s = result.surface
     sd = np.where(s.mask, np.nan, s.std)
-    pages = [MapPage("Depth to the reflector below ground", result.depth_m, "depth below ground (m)",
-                     figures.DEPTH_CMAP, contours=_contours(result, "depth"))]
+    pages = [
+        MapPage(
+            "Depth to the reflector below ground",
+            result.depth_m,
+            "depth below ground (m)",
+            figures.DEPTH_CMAP,
+            contours=_contours(result, "depth"),
+        )
+    ]
     if np.any(np.isfinite(sd)):
-        pages.append(MapPage("Standard deviation of the mapped surface", sd, "standard deviation, 1σ (m)",
-                             figures.SIGMA_CMAP, vmin=0.0, show_dips=False))
+        pages.append(
+            MapPage(
+                "Standard deviation of the mapped surface",
+                sd,
+                "standard deviation, 1σ (m)",
+                figures.SIGMA_CMAP,
+                vmin=0.0,
+                show_dips=False,
+            )
+        )
     d = result.design
     if d is not None and d.probability is not None:
-        pages.append(MapPage(f"Probability that the reflector is above {d.design_elevation_m:g} m",
-                             d.probability, "probability of rock above the design level", figures.PROBABILITY_CMAP,
-                             vmin=0.0, vmax=1.0, contour_levels=(0.1, 0.5, 0.9), show_dips=False))
+        pages.append(
+            MapPage(
+                f"Probability that the reflector is above {d.design_elevation_m:g} m",
+                d.probability,
+                "probability of rock above the design level",
+                figures.PROBABILITY_CMAP,
+                vmin=0.0,
+                vmax=1.0,
+                contour_levels=(0.1, 0.5, 0.9),
+                show_dips=False,
+            )
+        )
     pts = result.fit.points
     ok = np.isfinite(pts.x_m) & np.isfinite(pts.y_m)
     dips = None
@@ -183,8 +222,10 @@ def map_content(result):
 
 
 def _plan(overlays) -> dict:
-    return {"lines": overlays.lines,
-            "boreholes": None if overlays.boreholes is None else np.column_stack(overlays.boreholes[:2])}
+    return {
+        "lines": overlays.lines,
+        "boreholes": None if overlays.boreholes is None else np.column_stack(overlays.boreholes[:2]),
+    }
 
 
 def section_files(result, section, fmt="pdf", info=None, plan=None):
@@ -207,23 +248,38 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
     check_cancel(progress)
     s = result.surface
     sd = np.where(s.mask, np.nan, s.std)
-    spread = (f"median sigma {np.nanmedian(sd):.2f} m" if np.any(np.isfinite(sd))
-              else f"the {result.method_used} gives no sigma")
+    spread = (
+        f"median sigma {np.nanmedian(sd):.2f} m"
+        if np.any(np.isfinite(sd))
+        else f"the {result.method_used} gives no sigma"
+    )
     write_landxml_surface(
-        outputs.stage(out_dir / LANDXML_NAME), surface_tin(result), crs,
+        outputs.stage(out_dir / LANDXML_NAME),
+        surface_tin(result),
+        crs,
         surface_name=f"reflector {result.survey.settings.reflector}",
         description=f"{result.method_used} surface of the seismic reflector (elevation, m); an interpretation with "
-                    f"stated uncertainty ({spread}): check against borings",
-        project_name=result.survey.name, vertical_datum=h.vertical_datum, version=info.software.split()[-1],
+        f"stated uncertainty ({spread}): check against borings",
+        project_name=result.survey.name,
+        vertical_datum=h.vertical_datum,
+        version=info.software.split()[-1],
     )
     d = result.design
     if d is not None and d.probability is not None:
         from .provenance import provenance
 
         prov = provenance(result)
-        write_raster(outputs.stage(out_dir / PROBABILITY_NAME), d.probability, spec, crs, unit="",
-                     metadata=prov.items(), timestamp=prov.timestamp, software=prov.software,
-                     description="probability (0 to 1) that the reflector lies above the design level")
+        write_raster(
+            outputs.stage(out_dir / PROBABILITY_NAME),
+            d.probability,
+            spec,
+            crs,
+            unit="",
+            metadata=prov.items(),
+            timestamp=prov.timestamp,
+            software=prov.software,
+            description="probability (0 to 1) that the reflector lies above the design level",
+        )
     sections = sections if sections is not None else sections_step(result)
     plan = _plan(overlays)
     for sec in sections:

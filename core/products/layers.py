@@ -260,8 +260,11 @@ def run_info_layer(items) -> Layer:
     """A non-spatial key/value table saying how the outputs were made (method, velocity, grid...)."""
     keys = [str(k) for k, _ in items]
     values = [str(v) for _, v in items]
-    return Layer(None, {"key": np.array(keys, dtype=object), "value": np.array(values, dtype=object)},
-                 description="How this run made its outputs: surface method, velocities, grid, settings")
+    return Layer(
+        None,
+        {"key": np.array(keys, dtype=object), "value": np.array(values, dtype=object)},
+        description="How this run made its outputs: surface method, velocities, grid, settings",
+    )
 
 
 def cross_validation_layer(x_m, y_m, cv) -> Layer:

@@ -73,14 +73,22 @@ def run_info(result: RunResult) -> list:
         ("gathers", "exact image-source fit of every shot gather (robust, with standard errors)"),
     ]
     buffer = result.ground_buffer_m
-    extent = ("depth given where the DEM has values" if result.ground.source_ != "stations" else
-              f"depth given up to {buffer:.1f} m beyond the stations' outline" if buffer is not None else "")
+    extent = (
+        "depth given where the DEM has values"
+        if result.ground.source_ != "stations"
+        else f"depth given up to {buffer:.1f} m beyond the stations' outline"
+        if buffer is not None
+        else ""
+    )
     items += [
         ("surface_method", result.method_used),
         ("reflector_elevation.tif", f"{result.method_used} surface of the reflector (m)"),
         ("reflector_depth.tif", f"ground ({result.ground.description_}) minus reflector_elevation.tif (m)"),
-        ("depth_sigma.tif", "standard deviation of the depth (m): the surface's, and beyond the stations the "
-                            "ground's (distance x steepest station slope)"),
+        (
+            "depth_sigma.tif",
+            "standard deviation of the depth (m): the surface's, and beyond the stations the "
+            "ground's (distance x steepest station slope)",
+        ),
         ("elevation_sigma.tif", f"standard deviation of the {result.method_used} surface (m)"),
         ("ground_buffer_m", extent),
         ("cell_size_m", result.spec.cell_size_m),
@@ -88,8 +96,9 @@ def run_info(result: RunResult) -> list:
     ]
     vm = result.seismic_diagnostics.variogram
     if vm is not None:
-        items.append(("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m2, sill {vm.sill:.4g} m2, "
-                                   f"range {vm.range_m:.1f} m"))
+        items.append(
+            ("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m2, sill {vm.sill:.4g} m2, range {vm.range_m:.1f} m")
+        )
     tomo = result.tomography
     if tomo is not None and tomo.inversion is not None:
         t = tomo.inversion
@@ -101,8 +110,13 @@ def run_info(result: RunResult) -> list:
         items.append(("borehole_depth_ratio", f"{d.factor:.4f} +- {d.sigma_factor:.4f}"))
     items.append(("calibrate_velocity", s.calibrate_velocity))
     items += handoff_run_info(result)
-    items.append(("caution", "An interpretation with stated uncertainty; it does not replace borings. Check "
-                             "against borings; designs need sign-off by licensed professionals under local codes."))
+    items.append(
+        (
+            "caution",
+            "An interpretation with stated uncertainty; it does not replace borings. Check "
+            "against borings; designs need sign-off by licensed professionals under local codes.",
+        )
+    )
     return items
 
 
@@ -151,8 +165,9 @@ def gather_qc_figures(result: RunResult):
             f"traveltime dip = {f.traveltime_dip_deg[k]:.1f} ± {f.se_traveltime_dip_deg[k]:.1f}°\n"
             f"rms {f.rms_residual_s[k] * 1e3:.2f} ms; used {f.picks_used[k]}, rejected {f.picks_rejected[k]}"
         )
-        svg = gather_svg(x_along[sel], g.time_s[sel], model[sel], f.rejected[sel], f.excluded[sel], title, params,
-                         ident=f"g{k}")
+        svg = gather_svg(
+            x_along[sel], g.time_s[sel], model[sel], f.rejected[sel], f.excluded[sel], title, params, ident=f"g{k}"
+        )
         yield k, f"gather_{_safe(g.line[k])}_{_safe(g.shot[k])}_{_safe(g.reflector[k])}.svg", svg
 
 
@@ -185,8 +200,14 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
     stamp = prov.timestamp.strftime("%Y-%m-%dT%H:%M:%SZ")
     gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
     gpkg_layers["layer_styles"] = styles_table(layer_styles(layers), layers, stamp)
-    gpkg = write_layers(outputs.stage(out_dir / GPKG_NAME), gpkg_layers, z_crs, dataset_metadata=prov.items(),
-                        layer_metadata=layer_md, timestamp=prov.timestamp)
+    gpkg = write_layers(
+        outputs.stage(out_dir / GPKG_NAME),
+        gpkg_layers,
+        z_crs,
+        dataset_metadata=prov.items(),
+        layer_metadata=layer_md,
+        timestamp=prov.timestamp,
+    )
     # QGIS's own layer metadata (title, abstract with the caution, history), shown in each layer's properties
     records = qgis_layer_metadata({k: v for k, v in gpkg_layers.items() if k != "layer_styles"}, prov, layer_md)
     add_layer_metadata(gpkg, records, gdal_timestamp(prov.timestamp))
@@ -198,8 +219,13 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
     for name, grid in rasters.items():
         # elevations carry the vertical datum; depth below ground and sigma are lengths, not heights
         write_raster(
-            outputs.stage(out_dir / name), grid, spec, z_crs if name == ELEVATION_NAME else crs,
-            metadata=prov.items(), description=RASTER_DESCRIPTIONS[name], timestamp=prov.timestamp,
+            outputs.stage(out_dir / name),
+            grid,
+            spec,
+            z_crs if name == ELEVATION_NAME else crs,
+            metadata=prov.items(),
+            description=RASTER_DESCRIPTIONS[name],
+            timestamp=prov.timestamp,
             software=prov.software,
         )
     if result.design is not None and result.design.probability is not None:
@@ -208,10 +234,17 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
         outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
     if len(result.contours):
         for kind in ("elevation", "depth"):
-            what = ("z = reflector elevation (m)" if kind == "elevation" else
-                    "z = depth of the reflector below ground (m, positive down)")
-            write_contours_dxf(outputs.stage(out_dir / f"contours_{kind}.dxf"), result.contours, kind=kind,
-                               comments=[f"Reflector {kind} contours; {what}.", *prov.lines()])
+            what = (
+                "z = reflector elevation (m)"
+                if kind == "elevation"
+                else "z = depth of the reflector below ground (m, positive down)"
+            )
+            write_contours_dxf(
+                outputs.stage(out_dir / f"contours_{kind}.dxf"),
+                result.contours,
+                kind=kind,
+                comments=[f"Reflector {kind} contours; {what}.", *prov.lines()],
+            )
     check_cancel(progress)
 
 

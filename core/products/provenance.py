@@ -154,7 +154,10 @@ def elevation_crs(survey):
     vertical = survey.handoff.vertical_crs
     if vertical is None:
         return survey.crs
-    return pyproj.CRS.from_json_dict({
-        "type": "CompoundCRS", "name": f"{survey.crs.name} + {vertical.name}",
-        "components": [survey.crs.to_json_dict(), vertical.to_json_dict()],
-    })
+    return pyproj.CRS.from_json_dict(
+        {
+            "type": "CompoundCRS",
+            "name": f"{survey.crs.name} + {vertical.name}",
+            "components": [survey.crs.to_json_dict(), vertical.to_json_dict()],
+        }
+    )

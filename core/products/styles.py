@@ -127,9 +127,11 @@ FIELDS = {
     "value": ("Value", None),
 }
 _LAYER_FIELDS = {
-    "boreholes": {"depth_m": ("Borehole depth to reflector (m)", 2),
-                  "elevation_m": ("Borehole reflector elevation (m)", 2),
-                  "residual_m": ("Residual, borehole − seismic (m)", 2)},
+    "boreholes": {
+        "depth_m": ("Borehole depth to reflector (m)", 2),
+        "elevation_m": ("Borehole reflector elevation (m)", 2),
+        "residual_m": ("Residual, borehole − seismic (m)", 2),
+    },
     "contours": {"elevation_m": ("Contour elevation (m)", 2), "depth_m": ("Contour depth (m)", 2)},
     "cross_validation": {"residual_m": ("Residual, datum − estimate (m)", 2)},
     "misties": {"sigma_m": ("± mistie (1σ, m)", 2)},
@@ -190,36 +192,68 @@ def _dd(properties: dict) -> str:
         for name, expr in properties.items()
     )
     inner = f'<Option name="properties" type="Map">{items}</Option>' if properties else '<Option name="properties"/>'
-    return (f'<Option type="Map"><Option name="name" value="" type="QString"/>{inner}'
-            '<Option name="type" value="collection" type="QString"/></Option>')
+    return (
+        f'<Option type="Map"><Option name="name" value="" type="QString"/>{inner}'
+        '<Option name="type" value="collection" type="QString"/></Option>'
+    )
 
 
-def _marker_layer(shape: str, fill: str, size_mm: float, outline: str = "#202020", outline_mm: float = 0.2,
-                  angle: float = 0.0, offset=(0.0, 0.0), dd: Optional[dict] = None) -> str:
+def _marker_layer(
+    shape: str,
+    fill: str,
+    size_mm: float,
+    outline: str = "#202020",
+    outline_mm: float = 0.2,
+    angle: float = 0.0,
+    offset=(0.0, 0.0),
+    dd: Optional[dict] = None,
+) -> str:
     props = {
-        "angle": f"{angle:g}", "color": _rgba(fill), "name": shape, "offset": f"{offset[0]:g},{offset[1]:g}",
-        "offset_unit": "MM", "outline_color": _rgba(outline), "outline_style": "solid",
-        "outline_width": f"{outline_mm:g}", "outline_width_unit": "MM", "scale_method": "diameter",
-        "size": f"{size_mm:g}", "size_unit": "MM", "joinstyle": "bevel", "cap_style": "square",
-        "horizontal_anchor_point": "1", "vertical_anchor_point": "1",
+        "angle": f"{angle:g}",
+        "color": _rgba(fill),
+        "name": shape,
+        "offset": f"{offset[0]:g},{offset[1]:g}",
+        "offset_unit": "MM",
+        "outline_color": _rgba(outline),
+        "outline_style": "solid",
+        "outline_width": f"{outline_mm:g}",
+        "outline_width_unit": "MM",
+        "scale_method": "diameter",
+        "size": f"{size_mm:g}",
+        "size_unit": "MM",
+        "joinstyle": "bevel",
+        "cap_style": "square",
+        "horizontal_anchor_point": "1",
+        "vertical_anchor_point": "1",
     }
-    return (f'<layer pass="0" class="SimpleMarker" locked="0" enabled="1">{_options(props)}'
-            f"<data_defined_properties>{_dd(dd or {})}</data_defined_properties></layer>")
+    return (
+        f'<layer pass="0" class="SimpleMarker" locked="0" enabled="1">{_options(props)}'
+        f"<data_defined_properties>{_dd(dd or {})}</data_defined_properties></layer>"
+    )
 
 
 def _line_layer(colour: str, width_mm: float, dash: bool = False) -> str:
     props = {
-        "line_color": _rgba(colour), "line_width": f"{width_mm:g}", "line_width_unit": "MM",
-        "line_style": "dash" if dash else "solid", "capstyle": "round", "joinstyle": "round",
-        "offset": "0", "offset_unit": "MM",
+        "line_color": _rgba(colour),
+        "line_width": f"{width_mm:g}",
+        "line_width_unit": "MM",
+        "line_style": "dash" if dash else "solid",
+        "capstyle": "round",
+        "joinstyle": "round",
+        "offset": "0",
+        "offset_unit": "MM",
     }
-    return (f'<layer pass="0" class="SimpleLine" locked="0" enabled="1">{_options(props)}'
-            f"<data_defined_properties>{_dd({})}</data_defined_properties></layer>")
+    return (
+        f'<layer pass="0" class="SimpleLine" locked="0" enabled="1">{_options(props)}'
+        f"<data_defined_properties>{_dd({})}</data_defined_properties></layer>"
+    )
 
 
 def _symbol(name: str, kind: str, layers: str) -> str:
-    return (f'<symbol name="{name}" type="{kind}" alpha="1" clip_to_extent="1" force_rhr="0">'
-            f"<data_defined_properties>{_dd({})}</data_defined_properties>{layers}</symbol>")
+    return (
+        f'<symbol name="{name}" type="{kind}" alpha="1" clip_to_extent="1" force_rhr="0">'
+        f"<data_defined_properties>{_dd({})}</data_defined_properties>{layers}</symbol>"
+    )
 
 
 def _point(shape: str, fill: str, size_mm: float, outline: str = "#202020", outline_mm: float = 0.2) -> str:
@@ -233,18 +267,34 @@ def _rule_renderer(rules: list, kind: str) -> str:
         for i, (label, expr, _layers) in enumerate(rules)
     )
     symbols = "".join(_symbol(str(i), kind, layers) for i, (_l, _e, layers) in enumerate(rules))
-    return (f'<renderer-v2 type="RuleRenderer" forceraster="0" symbollevels="0" enableorderby="0">'
-            f'<rules key="{{root}}">{rule_xml}</rules><symbols>{symbols}</symbols></renderer-v2>')
+    return (
+        f'<renderer-v2 type="RuleRenderer" forceraster="0" symbollevels="0" enableorderby="0">'
+        f'<rules key="{{root}}">{rule_xml}</rules><symbols>{symbols}</symbols></renderer-v2>'
+    )
 
 
 def _single_renderer(kind: str, layers: str) -> str:
-    return (f'<renderer-v2 type="singleSymbol" forceraster="0" symbollevels="0" enableorderby="0">'
-            f"<symbols>{_symbol('0', kind, layers)}</symbols></renderer-v2>")
+    return (
+        f'<renderer-v2 type="singleSymbol" forceraster="0" symbollevels="0" enableorderby="0">'
+        f"<symbols>{_symbol('0', kind, layers)}</symbols></renderer-v2>"
+    )
 
 
-def _labels(expression: str, colour: str, size_pt: float = 8.0, placement: int = 0, flags: int = 10,
-            dist_mm: float = 0.0, buffer_mm: float = 0.8, repeat_mm: float = 0.0, dd: Optional[dict] = None,
-            bold: bool = False, priority: int = 5, display_all: bool = False, obstacle: bool = True) -> str:
+def _labels(
+    expression: str,
+    colour: str,
+    size_pt: float = 8.0,
+    placement: int = 0,
+    flags: int = 10,
+    dist_mm: float = 0.0,
+    buffer_mm: float = 0.8,
+    repeat_mm: float = 0.0,
+    dd: Optional[dict] = None,
+    bold: bool = False,
+    priority: int = 5,
+    display_all: bool = False,
+    obstacle: bool = True,
+) -> str:
     """Simple labelling. ``placement``: 0 around point, 1 over point, 2 parallel to line, 3 curved."""
     style = (
         f'<text-style fieldName={quoteattr(expression)} isExpression="1" fontFamily="Sans Serif" '
@@ -257,8 +307,10 @@ def _labels(expression: str, colour: str, size_pt: float = 8.0, placement: int =
         'bufferColor="255,255,255,255" bufferOpacity="1" bufferNoFill="1" bufferJoinStyle="128" bufferBlendMode="0"/>'
         "</text-style>"
     )
-    fmt = ('<text-format wrapChar="" multilineAlign="3" formatNumbers="0" decimals="3" plussign="0" '
-           'addDirectionSymbol="0" autoWrapLength="0" useMaxLineLengthForAutoWrap="1"/>')
+    fmt = (
+        '<text-format wrapChar="" multilineAlign="3" formatNumbers="0" decimals="3" plussign="0" '
+        'addDirectionSymbol="0" autoWrapLength="0" useMaxLineLengthForAutoWrap="1"/>'
+    )
     place = (
         f'<placement placement="{placement}" placementFlags="{flags}" dist="{dist_mm:g}" distUnits="MM" '
         f'repeatDistance="{repeat_mm:g}" repeatDistanceUnits="MM" priority="{priority}" offsetType="0" '
@@ -275,8 +327,10 @@ def _labels(expression: str, colour: str, size_pt: float = 8.0, placement: int =
         'maxNumLabels="2000" scaleVisibility="0" scaleMin="0" scaleMax="0" fontLimitPixelSize="0" '
         'fontMinPixelSize="0" fontMaxPixelSize="10000" upsidedownLabels="0" zIndex="0" unplacedVisibility="0"/>'
     )
-    return (f'<labeling type="simple"><settings calloutType="simple">{style}{fmt}{place}{render}'
-            f"<dd_properties>{_dd(dd or {})}</dd_properties></settings></labeling>")
+    return (
+        f'<labeling type="simple"><settings calloutType="simple">{style}{fmt}{place}{render}'
+        f"<dd_properties>{_dd(dd or {})}</dd_properties></settings></labeling>"
+    )
 
 
 def _fields_xml(layer_name: str, fields: dict) -> str:
@@ -285,9 +339,9 @@ def _fields_xml(layer_name: str, fields: dict) -> str:
     aliases = []
     for i, (name, kind) in enumerate(fields.items()):
         alias, decimals = field_display(layer_name, name)
-        aliases.append(f"<alias field={quoteattr(name)} index=\"{i}\" name={quoteattr(alias)}/>")
+        aliases.append(f'<alias field={quoteattr(name)} index="{i}" name={quoteattr(alias)}/>')
         if kind == "real" and decimals is not None:
-            step = 10.0 ** -decimals
+            step = 10.0**-decimals
             widget = (
                 '<editWidget type="Range"><config><Option type="Map">'
                 '<Option name="AllowNull" value="true" type="bool"/>'
@@ -305,8 +359,7 @@ def _fields_xml(layer_name: str, fields: dict) -> str:
 
 def _qml(body: str, geometry: Optional[int] = None) -> str:
     geom = f"<layerGeometryType>{geometry}</layerGeometryType>" if geometry is not None else ""
-    return (f'{QML_HEAD}<qgis version="{QGIS_VERSION}" styleCategories="AllStyleCategories">'
-            f"{body}{geom}</qgis>\n")
+    return f'{QML_HEAD}<qgis version="{QGIS_VERSION}" styleCategories="AllStyleCategories">{body}{geom}</qgis>\n'
 
 
 # -- strike and dip ---------------------------------------------------------------------------------
@@ -337,8 +390,16 @@ def _strike_dip_layers(colour: str, bar_mm: float, tick_mm: float, width_mm: flo
     """
     angle = strike_dip_angle_expression()
     bar = _marker_layer("line", colour, bar_mm, outline=colour, outline_mm=width_mm, dd={"angle": angle})
-    tick = _marker_layer("line", colour, tick_mm, outline=colour, outline_mm=width_mm, angle=90.0,
-                         offset=(0.0, -tick_mm / 2.0), dd={"angle": f"90 + ({angle})"})
+    tick = _marker_layer(
+        "line",
+        colour,
+        tick_mm,
+        outline=colour,
+        outline_mm=width_mm,
+        angle=90.0,
+        offset=(0.0, -tick_mm / 2.0),
+        dd={"angle": f"90 + ({angle})"},
+    )
     return bar + tick
 
 
@@ -352,8 +413,15 @@ def _dip_qml(fields: dict, measured: bool, layer_name: str) -> str:
     )
     angle = strike_dip_angle_expression() + " + 90"
     offset = f"array_to_string(array(4 * sin(radians({angle})), -4 * cos(radians({angle}))))"
-    labels = _labels('format_number("dip_deg", 0)', colour, 8.0 if measured else 7.0, placement=1,
-                     buffer_mm=0.7, dd={"OffsetXY": offset}, priority=8 if measured else 3)
+    labels = _labels(
+        'format_number("dip_deg", 0)',
+        colour,
+        8.0 if measured else 7.0,
+        placement=1,
+        buffer_mm=0.7,
+        dd={"OffsetXY": offset},
+        priority=8 if measured else 3,
+    )
     return _qml(renderer + labels + _fields_xml(layer_name, fields), geometry=0)
 
 
@@ -369,33 +437,53 @@ def _contours_qml(fields: dict, kind: str, interval_m: Optional[float], label_al
     colour = colours.CONTOUR_DEPTH if kind == "depth" else colours.CONTOUR_ELEVATION
     only = f"\"kind\" = '{kind}'"
     words = "depth" if kind == "depth" else "elevation"
-    renderer = _rule_renderer([
-        (f"index contour ({words}, labelled, m)", f'{only} AND "index"', _line_layer(colour, 0.6)),
-        (f"contour ({words})", f'{only} AND NOT "index"', _line_layer(colour, 0.25)),
-    ], "line")
+    renderer = _rule_renderer(
+        [
+            (f"index contour ({words}, labelled, m)", f'{only} AND "index"', _line_layer(colour, 0.6)),
+            (f"contour ({words})", f'{only} AND NOT "index"', _line_layer(colour, 0.25)),
+        ],
+        "line",
+    )
     d = _decimals_of(interval_m)
     # index contours are labelled; where the map holds fewer than three index levels every contour is
     # (common practice: a reader must find a labelled contour near any point of the map)
     show = only if label_all else f'{only} AND "index"'
-    labels = _labels(f"format_number(\"{value}\", {d}) || ' m'", colour, 8.0, placement=3, flags=1,
-                     repeat_mm=80.0, dd={"Show": show}, display_all=True, obstacle=False, priority=7)
+    labels = _labels(
+        f"format_number(\"{value}\", {d}) || ' m'",
+        colour,
+        8.0,
+        placement=3,
+        flags=1,
+        repeat_mm=80.0,
+        dd={"Show": show},
+        display_all=True,
+        obstacle=False,
+        priority=7,
+    )
     return _qml(renderer + labels + _fields_xml("contours", fields), geometry=1)
 
 
 def _shots_qml(fields: dict) -> str:
-    renderer = _rule_renderer([
-        ("fit ok", "\"status\" = 'ok'", _point("circle", colours.STATUS_OK, 2.6)),
-        ("not fitted", '"velocity_m_s" IS NULL OR "status" = \'too_few_picks\'',
-         _point("cross2", colours.STATUS_FAILED, 3.2, outline=colours.STATUS_FAILED, outline_mm=0.5)),
-        ("fitted, flagged (see status and reason)", "ELSE", _point("triangle", colours.STATUS_FLAGGED, 3.0)),
-    ], "marker")
+    renderer = _rule_renderer(
+        [
+            ("fit ok", "\"status\" = 'ok'", _point("circle", colours.STATUS_OK, 2.6)),
+            (
+                "not fitted",
+                '"velocity_m_s" IS NULL OR "status" = \'too_few_picks\'',
+                _point("cross2", colours.STATUS_FAILED, 3.2, outline=colours.STATUS_FAILED, outline_mm=0.5),
+            ),
+            ("fitted, flagged (see status and reason)", "ELSE", _point("triangle", colours.STATUS_FLAGGED, 3.0)),
+        ],
+        "marker",
+    )
     return _qml(renderer + _fields_xml("shots", fields), geometry=0)
 
 
 def _lines_qml(fields: dict) -> str:
     renderer = _single_renderer("line", _line_layer(colours.LINE, 0.7))
-    labels = _labels("'line ' || \"line\"", colours.LINE, 9.0, placement=2, flags=10, dist_mm=1.0, bold=True,
-                     priority=9)
+    labels = _labels(
+        "'line ' || \"line\"", colours.LINE, 9.0, placement=2, flags=10, dist_mm=1.0, bold=True, priority=9
+    )
     return _qml(renderer + labels + _fields_xml("lines", fields), geometry=1)
 
 
@@ -406,8 +494,10 @@ def _boreholes_qml(fields: dict) -> str:
     if "depth_m" in has:
         parts.append("format_number(\"depth_m\", 1) || ' m deep'")
     if "residual_m" in has:
-        parts.append("if(\"residual_m\" IS NULL, '', 'residual ' || if(\"residual_m\" >= 0, '+', '') || "
-                     "format_number(\"residual_m\", 2) || ' m')")
+        parts.append(
+            "if(\"residual_m\" IS NULL, '', 'residual ' || if(\"residual_m\" >= 0, '+', '') || "
+            "format_number(\"residual_m\", 2) || ' m')"
+        )
     expr = " || '\\n' || ".join(parts)
     labels = _labels(expr, "#000000", 8.0, placement=0, dist_mm=1.5, priority=10)
     return _qml(renderer + labels + _fields_xml("boreholes", fields), geometry=0)
@@ -424,9 +514,14 @@ _POINT_STYLES = {  # layer -> (shape, colour, size mm)
 }
 
 
-def layer_qml(layer_name: str, fields: dict, geometry: Optional[str] = None,
-              contour_interval_m: Optional[float] = None, contour_kind: str = "depth",
-              label_all_contours: bool = False) -> str:
+def layer_qml(
+    layer_name: str,
+    fields: dict,
+    geometry: Optional[str] = None,
+    contour_interval_m: Optional[float] = None,
+    contour_kind: str = "depth",
+    label_all_contours: bool = False,
+) -> str:
     """The QML style document of one result layer.
 
     Parameters
@@ -567,10 +662,10 @@ def raster_qml(ramp, lo: float, hi: float, suffix: str = " m", prefix: str = "",
     if not (math.isfinite(lo) and math.isfinite(hi)):
         lo, hi = 0.0, 1.0
     if not hi > lo:
-        hi = lo + 10.0 ** -decimals
+        hi = lo + 10.0**-decimals
     items = "".join(
         f'<item value="{lo + p * (hi - lo)!r}" color="{c}" alpha="255" '
-        f'label={quoteattr(_round_label(lo + p * (hi - lo), decimals, prefix, suffix))}/>'
+        f"label={quoteattr(_round_label(lo + p * (hi - lo), decimals, prefix, suffix))}/>"
         for p, c in ramp
     )
     legend = (

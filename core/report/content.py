@@ -61,13 +61,19 @@ def _summary(rep, r):
         ("lines", ", ".join(sorted(r.fit.frames))),
         ("stations / picks", f"{len(survey.stations)} / {n_picks}"),
         ("gathers", f"{len(f)} ({n_ok} ok, {len(f) - n_ok} flagged)"),
-        ("picks rejected as mispicks",
-         f"{int(f.picks_rejected.sum())} ({100 * f.picks_rejected.sum() / max(n_picks, 1):.1f} %)"),
+        (
+            "picks rejected as mispicks",
+            f"{int(f.picks_rejected.sum())} ({100 * f.picks_rejected.sum() / max(n_picks, 1):.1f} %)",
+        ),
     ]
     site = r.site_velocity
     if site.n_gathers:
-        items.append((f"overburden velocity, gather fits of reflector '{site.reflector}' (median ± 1.4826 MAD)",
-                      f"{site.velocity_m_s:.0f} ± {site.spread_m_s:.0f} m/s from {site.n_gathers} gathers"))
+        items.append(
+            (
+                f"overburden velocity, gather fits of reflector '{site.reflector}' (median ± 1.4826 MAD)",
+                f"{site.velocity_m_s:.0f} ± {site.spread_m_s:.0f} m/s from {site.n_gathers} gathers",
+            )
+        )
     tomo = r.tomography
     if tomo is not None and tomo.inversion is not None:
         res = tomo.inversion
@@ -75,29 +81,42 @@ def _summary(rep, r):
             items.append((f"layer {j + 1} velocity, joint estimate", text))
         avg = res.median_average_velocity_m_s(res.names[-1])
         if np.isfinite(avg):
-            items.append((f"vertical-average velocity to {res.names[-1]} (median of the mapped cells)",
-                          f"{avg:.0f} m/s"))
+            items.append(
+                (f"vertical-average velocity to {res.names[-1]} (median of the mapped cells)", f"{avg:.0f} m/s")
+            )
     items += [
         ("surface method", r.method_used),
-        ("grid", f"{r.spec.nx} × {r.spec.ny} cells of {r.spec.cell_size_m:g} m; "
-                 f"{int(np.sum(~r.surface.mask))} estimated, the rest farther than the masking distance from data"),
-        ("3D relocation", f"{len(r.relocation_history_m)} iterations, largest cell change per iteration (m): "
-                          + ", ".join(f"{c:.3f}" for c in r.relocation_history_m)),
+        (
+            "grid",
+            f"{r.spec.nx} × {r.spec.ny} cells of {r.spec.cell_size_m:g} m; "
+            f"{int(np.sum(~r.surface.mask))} estimated, the rest farther than the masking distance from data",
+        ),
+        (
+            "3D relocation",
+            f"{len(r.relocation_history_m)} iterations, largest cell change per iteration (m): "
+            + ", ".join(f"{c:.3f}" for c in r.relocation_history_m),
+        ),
     ]
     depth = r.depth_m[np.isfinite(r.depth_m)]
     if depth.size:
         items.append(("depth to reflector (mapped cells)", f"{depth.min():.1f} to {depth.max():.1f} m"))
     if r.ground.source_ == "stations" and r.ground_buffer_m is not None:
-        items.append((
-            "where depth is given",
-            f"inside the stations' outline and up to {r.ground_buffer_m:.1f} m beyond it, where the ground "
-            f"(extended flat) carries a sigma of the distance × {100 * r.ground.slope_bound_:.1f} % (the steepest "
-            "slope between the stations); farther out the ground, and so the depth, is unknown",
-        ))
+        items.append(
+            (
+                "where depth is given",
+                f"inside the stations' outline and up to {r.ground_buffer_m:.1f} m beyond it, where the ground "
+                f"(extended flat) carries a sigma of the distance × {100 * r.ground.slope_bound_:.1f} % (the steepest "
+                "slope between the stations); farther out the ground, and so the depth, is unknown",
+            )
+        )
     if r.depth_ratio is not None:
         d = r.depth_ratio
-        items.append(("borehole / seismic depth ratio (velocity check)",
-                      f"{d.factor:.3f} ± {d.sigma_factor:.3f} from {d.n} boreholes"))
+        items.append(
+            (
+                "borehole / seismic depth ratio (velocity check)",
+                f"{d.factor:.3f} ± {d.sigma_factor:.3f} from {d.n} boreholes",
+            )
+        )
     scale = _scale_note(r)
     if scale:
         items.append(("grid scale factor", scale))
@@ -117,8 +136,10 @@ def _scale_note(r):
     k = float(np.mean(grid_scale_factor(r.survey.crs, np.mean(st.x_m), np.mean(st.y_m))))
     if not np.isfinite(k):
         return ""
-    return (f"k = {k:.6f} at the site centre: ground distance = grid distance / k "
-            f"({(1 / k - 1) * 1e3:+.2f} m per km); offsets and depths are computed in grid metres")
+    return (
+        f"k = {k:.6f} at the site centre: ground distance = grid distance / k "
+        f"({(1 / k - 1) * 1e3:+.2f} m per km); offsets and depths are computed in grid metres"
+    )
 
 
 def _map(rep, r):
@@ -144,10 +165,17 @@ def _map(rep, r):
     bh = r.survey.boreholes
     bhs = None if bh is None or not len(bh) else (bh.x_m, bh.y_m, list(bh.name))
     png = figures.map_figure(
-        spec.x_centres, spec.y_centres, r.depth_m, contours, lines,
-        points_xy=np.column_stack([pts.x_m, pts.y_m]), dips=dips, surface_dips=sdips, boreholes=bhs,
+        spec.x_centres,
+        spec.y_centres,
+        r.depth_m,
+        contours,
+        lines,
+        points_xy=np.column_stack([pts.x_m, pts.y_m]),
+        dips=dips,
+        surface_dips=sdips,
+        boreholes=bhs,
         title=f"Depth to reflector below ground ({r.method_used}), depth contours, reflector points\n"
-              "strike and dip: black = at line crossings, blue = from the surface; yellow = boreholes",
+        "strike and dip: black = at line crossings, blue = from the surface; yellow = boreholes",
     )
     rep.heading("Map")
     rep.figure(png, "map of depth to the reflector")
@@ -183,8 +211,13 @@ def _surface(rep, r):
             )
         ev = diag.experimental_variogram
         if ev is not None:
-            png = figures.variogram_figure(ev.lag_m, ev.semivariance, ev.n_pairs, vm,
-                                           title="semivariogram of reflector elevations (after the trend)")
+            png = figures.variogram_figure(
+                ev.lag_m,
+                ev.semivariance,
+                ev.n_pairs,
+                vm,
+                title="semivariogram of reflector elevations (after the trend)",
+            )
             rep.figure(png, "variogram")
     elif diag.smoothing is not None:
         rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag.smoothing:.3g}; no standard deviation.")
@@ -192,15 +225,23 @@ def _surface(rep, r):
     if cv is not None:
         kind = "5-fold" if diag.method == "spline" else "Leave-one-out"
         rep.heading(f"{kind} cross-validation (seismic points only)", level=3)
-        rep.items([
-            ("mean error", f"{cv.mean_error:+.3f} m"),
-            ("RMSE", f"{cv.rmse:.3f} m"),
-            ("mean standardised squared error (≈ 1 when the stated sigma is honest)",
-             f"{cv.mean_standardised_squared_error:.2f}"),
-            ("fraction within 2 sigma (≈ 0.95)", f"{cv.fraction_within_2sigma:.2f}"),
-        ])
-        rep.figure(figures.scatter_figure(cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)",
-                                          "datum (m)", "cross-validation"), "cross-validation scatter")
+        rep.items(
+            [
+                ("mean error", f"{cv.mean_error:+.3f} m"),
+                ("RMSE", f"{cv.rmse:.3f} m"),
+                (
+                    "mean standardised squared error (≈ 1 when the stated sigma is honest)",
+                    f"{cv.mean_standardised_squared_error:.2f}",
+                ),
+                ("fraction within 2 sigma (≈ 0.95)", f"{cv.fraction_within_2sigma:.2f}"),
+            ]
+        )
+        rep.figure(
+            figures.scatter_figure(
+                cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)", "datum (m)", "cross-validation"
+            ),
+            "cross-validation scatter",
+        )
     tomo = r.tomography
     if tomo is not None and tomo.inversion is not None:
         res = tomo.inversion
@@ -218,16 +259,21 @@ def _surface(rep, r):
         )
         rep.items([(f"layer {j + 1}", text) for j, text in enumerate(res.layer_text())])
         if res.choice is not None:
-            rep.paragraph("Velocity model of each layer chosen by the Bayesian information criterion: "
-                          + res.choice.summary(res.names) + ".")
+            rep.paragraph(
+                "Velocity model of each layer chosen by the Bayesian information criterion: "
+                + res.choice.summary(res.names)
+                + "."
+            )
         for note in res.notes:
             rep.paragraph(note, cls="small")
-        rep.items([
-            ("pick residual rms, per-gather plane fits", f"{_rms(f.residual_s[used]) * 1e3:.3f} ms"),
-            ("pick residual rms, joint estimate", f"{_rms(res.residual_s[res.used]) * 1e3:.3f} ms"),
-            ("picks rejected by the joint estimate", int(np.sum(res.rejected))),
-            ("gathers flagged by the site velocity check", int(np.sum(tomo.curvature_flag))),
-        ])
+        rep.items(
+            [
+                ("pick residual rms, per-gather plane fits", f"{_rms(f.residual_s[used]) * 1e3:.3f} ms"),
+                ("pick residual rms, joint estimate", f"{_rms(res.residual_s[res.used]) * 1e3:.3f} ms"),
+                ("picks rejected by the joint estimate", int(np.sum(res.rejected))),
+                ("gathers flagged by the site velocity check", int(np.sum(tomo.curvature_flag))),
+            ]
+        )
         diff = tomo.difference_m
         if np.any(np.isfinite(diff)):
             rep.paragraph(
@@ -235,8 +281,16 @@ def _surface(rep, r):
                 f"{_rms(diff):.2f} m, largest {np.nanmax(np.abs(diff)):.2f} m. Large differences mark where the "
                 "planar assumption of the gather fits fails (curved reflector)."
             )
-            rep.figure(figures.raster_figure(r.spec.x_centres, r.spec.y_centres, diff, "difference (m)",
-                                             "joint inversion minus kriged gather fits"), "difference map")
+            rep.figure(
+                figures.raster_figure(
+                    r.spec.x_centres,
+                    r.spec.y_centres,
+                    diff,
+                    "difference (m)",
+                    "joint inversion minus kriged gather fits",
+                ),
+                "difference map",
+            )
     elif tomo is not None:
         rep.paragraph(f"Joint inversion not run: {tomo.skipped_reason}.")
 
@@ -250,15 +304,18 @@ def _boreholes(rep, r):
         "Each borehole against the seismic-only surface (boreholes not used), so the check is independent; "
         "the final surface then honours the boreholes within their stated error."
     )
-    rep.table({
-        "borehole": [str(n) for n in bh.name],
-        "depth_m": list(bh.depth_m),
-        "elevation_m": list(bh.elevation_m),
-        "seismic_elevation_m": list(chk.seismic_elevation_m),
-        "seismic_sigma_m": list(chk.seismic_sigma_m),
-        "residual_m": list(chk.residual_m),
-        "residual/sigma": list(chk.standardised),
-    }, flag=list(np.abs(chk.standardised) > 2))
+    rep.table(
+        {
+            "borehole": [str(n) for n in bh.name],
+            "depth_m": list(bh.depth_m),
+            "elevation_m": list(bh.elevation_m),
+            "seismic_elevation_m": list(chk.seismic_elevation_m),
+            "seismic_sigma_m": list(chk.seismic_sigma_m),
+            "residual_m": list(chk.residual_m),
+            "residual/sigma": list(chk.standardised),
+        },
+        flag=list(np.abs(chk.standardised) > 2),
+    )
 
 
 def _dips(rep, r):
@@ -274,16 +331,19 @@ def _dips(rep, r):
             "each row is placed at the weighted centre of its gathers. A line that meets no other line cannot "
             "give its cross-line dip (flagged)."
         )
-    rep.table({
-        "lines": [str(x) for x in d.lines],
-        "dip_deg": list(d.dip_deg),
-        "sigma_dip_deg": list(d.sigma_dip_deg),
-        "dip_direction_deg": list(d.dip_direction_deg),
-        "strike_deg": list(d.strike_deg),
-        "gathers": list(d.n_gathers),
-        "status": [str(x) for x in d.status],
-        "reason": [str(x) for x in d.reason],
-    }, flag=list(d.status != "ok"))
+    rep.table(
+        {
+            "lines": [str(x) for x in d.lines],
+            "dip_deg": list(d.dip_deg),
+            "sigma_dip_deg": list(d.sigma_dip_deg),
+            "dip_direction_deg": list(d.dip_direction_deg),
+            "strike_deg": list(d.strike_deg),
+            "gathers": list(d.n_gathers),
+            "status": [str(x) for x in d.status],
+            "reason": [str(x) for x in d.reason],
+        },
+        flag=list(d.status != "ok"),
+    )
 
 
 def _misties(rep, r):
@@ -292,11 +352,17 @@ def _misties(rep, r):
     if not len(m):
         rep.paragraph("No line crossings with reflector points on both lines.")
         return
-    rep.table({
-        "line_a": [str(x) for x in m.line_a], "line_b": [str(x) for x in m.line_b],
-        "elevation_a_m": list(m.elevation_a_m), "elevation_b_m": list(m.elevation_b_m),
-        "mistie_m": list(m.mistie_m), "sigma_m": list(m.sigma_m),
-    }, flag=list(np.abs(m.mistie_m) > 2 * m.sigma_m))
+    rep.table(
+        {
+            "line_a": [str(x) for x in m.line_a],
+            "line_b": [str(x) for x in m.line_b],
+            "elevation_a_m": list(m.elevation_a_m),
+            "elevation_b_m": list(m.elevation_b_m),
+            "mistie_m": list(m.mistie_m),
+            "sigma_m": list(m.sigma_m),
+        },
+        flag=list(np.abs(m.mistie_m) > 2 * m.sigma_m),
+    )
 
 
 def _flagged(rep, fit):
@@ -306,10 +372,15 @@ def _flagged(rep, fit):
     if not len(bad):
         rep.paragraph("Every gather gave a physical, well-conditioned fit.")
         return
-    rep.table({
-        "line": [str(g.line[k]) for k in bad], "shot": [str(g.shot[k]) for k in bad],
-        "status": [str(f.status[k]) for k in bad], "reason": [str(f.reason[k]) for k in bad],
-    }, caption="Gathers not used for the surface, with the reason")
+    rep.table(
+        {
+            "line": [str(g.line[k]) for k in bad],
+            "shot": [str(g.shot[k]) for k in bad],
+            "status": [str(f.status[k]) for k in bad],
+            "reason": [str(f.reason[k]) for k in bad],
+        },
+        caption="Gathers not used for the surface, with the reason",
+    )
 
 
 def _pick_edits(rep, survey, fit):
@@ -327,17 +398,20 @@ def _pick_edits(rep, survey, fit):
         f"({int(np.sum(fit.fits.picks_excluded))} in the gathers fitted)."
     )
     if edits:
-        rep.table({
-            "file line": [e.file_line for e in edits],
-            "action": [e.action for e in edits],
-            "line": [e.line for e in edits],
-            "shot": [e.shot for e in edits],
-            "receiver": [e.receiver for e in edits],
-            "reflector": [e.reflector for e in edits],
-            "new_time_ms": [np.nan if e.new_time_ms is None else e.new_time_ms for e in edits],
-            "reason": [e.reason for e in edits],
-            "time_stamp": [e.time_stamp for e in edits],
-        }, caption="Pick edits, in the order made")
+        rep.table(
+            {
+                "file line": [e.file_line for e in edits],
+                "action": [e.action for e in edits],
+                "line": [e.line for e in edits],
+                "shot": [e.shot for e in edits],
+                "receiver": [e.receiver for e in edits],
+                "reflector": [e.reflector for e in edits],
+                "new_time_ms": [np.nan if e.new_time_ms is None else e.new_time_ms for e in edits],
+                "reason": [e.reason for e in edits],
+                "time_stamp": [e.time_stamp for e in edits],
+            },
+            caption="Pick edits, in the order made",
+        )
 
 
 def _lines(rep, r, layers, qc_figures):
@@ -345,20 +419,38 @@ def _lines(rep, r, layers, qc_figures):
     f, g = fit.fits, fit.gathers
     shots = layers["shots"]
     rep.heading("Lines")
-    names = ["shot", "velocity_m_s", "se_velocity_m_s", "t0_ms", "se_t0_ms", "normal_distance_m",
-             "se_normal_distance_m", "traveltime_dip_deg", "rms_residual_ms", "picks_used", "picks_rejected", "status"]
+    names = [
+        "shot",
+        "velocity_m_s",
+        "se_velocity_m_s",
+        "t0_ms",
+        "se_t0_ms",
+        "normal_distance_m",
+        "se_normal_distance_m",
+        "traveltime_dip_deg",
+        "rms_residual_ms",
+        "picks_used",
+        "picks_rejected",
+        "status",
+    ]
     for line in sorted(fit.frames):
         frame = fit.frames[line]
         rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
         rep.figure(_section_png(r, line), f"section of line {line}")
         sel = np.flatnonzero(np.asarray(g.line) == line)
-        rep.table({n: [shots.fields[n][i] for i in sel] for n in names},
-                  caption=f"Gather fits of line {line}", flag=[f.status[i] != "ok" for i in sel])
+        rep.table(
+            {n: [shots.fields[n][i] for i in sel] for n in names},
+            caption=f"Gather fits of line {line}",
+            flag=[f.status[i] != "ok" for i in sel],
+        )
         for i in sel:
             if i in qc_figures:
                 name, png = qc_figures[i]
-                rep.figure(png, f"QC of line {line} shot {g.shot[i]}",
-                           collapsed_summary=f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})")
+                rep.figure(
+                    png,
+                    f"QC of line {line} shot {g.shot[i]}",
+                    collapsed_summary=f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})",
+                )
 
 
 def _section_png(r, line):
@@ -373,8 +465,11 @@ def _section_png(r, line):
     z = _bilinear(r.spec, np.where(s.mask, np.nan, s.z), frame.x_m, frame.y_m)
     sd = _bilinear(r.spec, np.where(s.mask, np.nan, s.std), frame.x_m, frame.y_m)
     return figures.section_figure(
-        frame.chainage_m, frame.z_m, (ch, pts.elevation_m[sel], pts.sigma_m[sel], ok),
-        surface=(frame.chainage_m, z, sd), title=f"line {line}: ground, reflector points, mapped surface (±2σ)",
+        frame.chainage_m,
+        frame.z_m,
+        (ch, pts.elevation_m[sel], pts.sigma_m[sel], ok),
+        surface=(frame.chainage_m, z, sd),
+        title=f"line {line}: ground, reflector points, mapped surface (±2σ)",
     )
 
 

@@ -168,9 +168,7 @@ def section_figure(distance_m, ground_m, points, surface=None, title="", dpi=90)
     fig, ax = plt.subplots(figsize=(10, 3.4), dpi=dpi)
     ax.plot(distance_m, ground_m, "-", color=colours.GROUND, lw=1.5, label="ground")
     d, z, s, ok = points
-    ax.errorbar(
-        d[ok], z[ok], yerr=2 * s[ok], fmt="o", ms=3, color=USED, lw=0.8, label="reflector points (±2σ)"
-    )
+    ax.errorbar(d[ok], z[ok], yerr=2 * s[ok], fmt="o", ms=3, color=USED, lw=0.8, label="reflector points (±2σ)")
     if np.any(~ok):
         ax.plot(d[~ok], z[~ok], "x", color=REJECTED, label="flagged gathers")
     if surface is not None:
@@ -201,9 +199,7 @@ def scatter_figure(x, y, xlabel, ylabel, title="", one_to_one=True, dpi=90) -> b
     return _png(fig)
 
 
-def raster_figure(
-    grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_CMAP, symmetric=True, dpi=90
-) -> bytes:
+def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_CMAP, symmetric=True, dpi=90) -> bytes:
     """A single grid as an image (e.g. the difference between two surfaces)."""
     plt = _plt()
     fig, ax = plt.subplots(figsize=(6.0, 5.0), dpi=dpi)

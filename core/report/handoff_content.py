@@ -25,10 +25,18 @@ def handoff_section(rep, result, sections=None) -> None:
                 f"a probability above 0.9 and {100 * np.mean(p < 0.1):.0f} % below 0.1."
             )
             spec = result.spec
-            rep.figure(figures.raster_figure(spec.x_centres, spec.y_centres, d.probability, "probability",
-                                             f"P(reflector above {d.design_elevation_m:g} m)",
-                                             cmap=figures.PROBABILITY_CMAP, symmetric=False),
-                       "probability of rock above the design level")
+            rep.figure(
+                figures.raster_figure(
+                    spec.x_centres,
+                    spec.y_centres,
+                    d.probability,
+                    "probability",
+                    f"P(reflector above {d.design_elevation_m:g} m)",
+                    cmap=figures.PROBABILITY_CMAP,
+                    symmetric=False,
+                ),
+                "probability of rock above the design level",
+            )
         v = d.volume
         if v is not None:
             where = "the design area" if d.area is not None else "the mapped area"
@@ -38,26 +46,36 @@ def handoff_section(rep, result, sections=None) -> None:
                 "the simulated values at the data; Deutsch & Journel 1998): P10, P50 and P90 are the 10th, 50th and "
                 "90th percentiles (90 % of the realisations give less than P90)."
             )
-            rep.items([
-                ("volume P10 (m³)", f"{v.p10_m3:,.0f}"),
-                ("volume P50 (m³)", f"{v.p50_m3:,.0f}"),
-                ("volume P90 (m³)", f"{v.p90_m3:,.0f}"),
-                ("mean ± sd (m³)", f"{v.mean_m3:,.0f} ± {v.sd_m3:,.0f}"),
-                ("volume under the kriged map itself (m³)", f"{v.map_volume_m3:,.0f}"),
-                ("probability of any rock above the level", f"{v.probability_any_rock:.2f}"),
-                ("area asked / mapped (m²)", f"{v.area_m2:,.0f} / {v.mapped_area_m2:,.0f}"),
-                ("simulated nodes", f"{v.n_nodes} at {v.node_spacing_m:g} m spacing (seed {v.seed})"),
-            ])
+            rep.items(
+                [
+                    ("volume P10 (m³)", f"{v.p10_m3:,.0f}"),
+                    ("volume P50 (m³)", f"{v.p50_m3:,.0f}"),
+                    ("volume P90 (m³)", f"{v.p90_m3:,.0f}"),
+                    ("mean ± sd (m³)", f"{v.mean_m3:,.0f} ± {v.sd_m3:,.0f}"),
+                    ("volume under the kriged map itself (m³)", f"{v.map_volume_m3:,.0f}"),
+                    ("probability of any rock above the level", f"{v.probability_any_rock:.2f}"),
+                    ("area asked / mapped (m²)", f"{v.area_m2:,.0f} / {v.mapped_area_m2:,.0f}"),
+                    ("simulated nodes", f"{v.n_nodes} at {v.node_spacing_m:g} m spacing (seed {v.seed})"),
+                ]
+            )
         if d.note:
             rep.paragraph(d.note, cls="small")
     rep.heading("Hand-off files")
-    items = [("map_sheet.pdf", "A3 map sheet at a stated scale: depth, standard deviation"
-                               + (", probability above the design level" if d is not None else "")),
-             ("reflector_surface.xml", "LandXML 1.2 surface (TIN of the mapped cells) for civil design software")]
+    items = [
+        (
+            "map_sheet.pdf",
+            "A3 map sheet at a stated scale: depth, standard deviation"
+            + (", probability above the design level" if d is not None else ""),
+        ),
+        ("reflector_surface.xml", "LandXML 1.2 surface (TIN of the mapped cells) for civil design software"),
+    ]
     for s in sections or ():
         fmt = result.survey.handoff.section_format
         stem = "section_" + "".join(c if c.isalnum() or c in "-_" else "_" for c in s.name)
-        items.append((f"{stem}.{fmt}, {stem}.csv",
-                      f"section {s.title}: {s.length_m:.0f} m, {len(s.boreholes)} boreholes within "
-                      f"{s.corridor_m / 2:g} m"))
+        items.append(
+            (
+                f"{stem}.{fmt}, {stem}.csv",
+                f"section {s.title}: {s.length_m:.0f} m, {len(s.boreholes)} boreholes within {s.corridor_m / 2:g} m",
+            )
+        )
     rep.items(items)

@@ -48,7 +48,7 @@ def _fmt(value, digits=4) -> str:
         v = float(value)
         if math.isnan(v):
             return "–"
-        return f"{v:.1f}" if abs(v) >= 10 ** digits else f"{v:.{digits}g}"
+        return f"{v:.1f}" if abs(v) >= 10**digits else f"{v:.{digits}g}"
     return str(value)
 
 
@@ -100,9 +100,7 @@ class Report:
             body.append(f"<tr{cls}>{''.join(cells)}</tr>")
         cap = f"<caption>{html.escape(caption)}</caption>" if caption else ""
         more = f'<p class="small">{n - shown} more rows in the CSV files.</p>' if shown < n else ""
-        self._parts.append(
-            f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>{more}"
-        )
+        self._parts.append(f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>{more}")
 
     def figure(self, image: bytes, alt: str, collapsed_summary: str | None = None) -> None:
         """An image: PNG bytes, or an SVG document (bytes starting with ``<svg`` or ``<?xml``)."""
@@ -118,7 +116,7 @@ class Report:
         """The whole page as one self-contained HTML string."""
         body = "\n".join(self._parts)
         return (
-            "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
             f"<title>{html.escape(self.title)}</title><style>{_STYLE}</style></head>"
             f"<body><h1>{html.escape(self.title)}</h1>\n{body}\n</body></html>\n"
         )

@@ -100,14 +100,30 @@ def _map_axes(fig, spec, page_scale):
 def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
     w, e, s, n = spec.bounds
     v = np.asarray(page.values, float)
-    im = ax.imshow(v, extent=(w, e, s, n), origin="upper", cmap=page.cmap, vmin=page.vmin, vmax=page.vmax,
-                   interpolation="nearest", zorder=1)
+    im = ax.imshow(
+        v,
+        extent=(w, e, s, n),
+        origin="upper",
+        cmap=page.cmap,
+        vmin=page.vmin,
+        vmax=page.vmax,
+        interpolation="nearest",
+        zorder=1,
+    )
     for level, xy, is_index in page.contours:
         ax.plot(xy[:, 0], xy[:, 1], color="0.15", lw=0.9 if is_index else 0.35, zorder=2)
         if is_index and len(xy) > 1:
             k = len(xy) // 2
-            ax.text(xy[k, 0], xy[k, 1], f"{level:g}", fontsize=6, ha="center", va="center", zorder=3,
-                    bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8})
+            ax.text(
+                xy[k, 0],
+                xy[k, 1],
+                f"{level:g}",
+                fontsize=6,
+                ha="center",
+                va="center",
+                zorder=3,
+                bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8},
+            )
     levels = [lv for lv in page.contour_levels if np.any(v < lv) and np.any(v > lv)] if np.any(np.isfinite(v)) else []
     if levels:
         cs = ax.contour(spec.x_centres, spec.y_centres, v, levels=levels, colors="0.1", linewidths=0.8, zorder=2)
@@ -120,8 +136,16 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0, zorder=4)
         ax.annotate(f"line {name}", xy[0], fontsize=7, color=colours.LINE, ha="right", va="bottom", zorder=4)
     if ov.points_xy is not None and len(ov.points_xy):
-        ax.plot(ov.points_xy[:, 0], ov.points_xy[:, 1], ".", color=colours.REFLECTOR_POINT, ms=3, mec="white",
-                mew=0.3, zorder=5)
+        ax.plot(
+            ov.points_xy[:, 0],
+            ov.points_xy[:, 1],
+            ".",
+            color=colours.REFLECTOR_POINT,
+            ms=3,
+            mec="white",
+            mew=0.3,
+            zorder=5,
+        )
     if page.show_dips:
         for sym, colour in ((ov.surface_dips, figures.SURFACE_DIP), (ov.dips, figures.MEASURED_DIP)):
             if sym is None:
@@ -150,21 +174,25 @@ def _legend(fig, im, page: MapPage, ov: MapOverlays):
     cb.ax.tick_params(labelsize=6)
     handles = []
     if page.contours:
-        handles += [Line2D([], [], color="0.15", lw=0.9, label="index contour (labelled, m)"),
-                    Line2D([], [], color="0.15", lw=0.35, label="intermediate contour")]
+        handles += [
+            Line2D([], [], color="0.15", lw=0.9, label="index contour (labelled, m)"),
+            Line2D([], [], color="0.15", lw=0.35, label="intermediate contour"),
+        ]
     if page.contour_levels:
         handles.append(Line2D([], [], color="0.1", lw=0.8, label="probability contours"))
     if ov.lines:
         handles.append(Line2D([], [], color=colours.LINE, lw=2, label="seismic line (labelled)"))
     if ov.points_xy is not None and len(ov.points_xy):
-        handles.append(Line2D([], [], marker=".", color=colours.REFLECTOR_POINT, mec="white", ls="none",
-                              label="reflector point"))
+        handles.append(
+            Line2D([], [], marker=".", color=colours.REFLECTOR_POINT, mec="white", ls="none", label="reflector point")
+        )
     if ov.boreholes is not None:
         handles.append(Line2D([], [], marker="o", color="k", mfc=colours.BOREHOLE, ls="none", label="borehole"))
     if page.show_dips:
-        handles += [Line2D([], [], color=figures.MEASURED_DIP, lw=1.8,
-                           label="strike and dip (°), measured at line crossings"),
-                    Line2D([], [], color=figures.SURFACE_DIP, lw=1.8, label="strike and dip (°), from the surface")]
+        handles += [
+            Line2D([], [], color=figures.MEASURED_DIP, lw=1.8, label="strike and dip (°), measured at line crossings"),
+            Line2D([], [], color=figures.SURFACE_DIP, lw=1.8, label="strike and dip (°), from the surface"),
+        ]
     if ov.area is not None:
         handles.append(Line2D([], [], color="k", ls="--", lw=1.4, label="design area"))
     lax = mm_axes(fig, (_PANEL_X_MM, 150.0, _PANEL_W_MM, top - 36 - 150.0))
@@ -213,8 +241,12 @@ def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
     scale = nice_scale(max((e - w) / _MAP_BOX_MM[2], (n - s) / _MAP_BOX_MM[3]) * 1000.0 * 1.02)
     symbol_m = 3.0 * scale / 1000.0  # strike bar half-length: 3 mm on paper
     buf = io.BytesIO()
-    meta = {"CreationDate": None, "Title": f"Reflector map sheet: {info.survey}", "Subject": " ".join(CAUTION_LINES),
-            "Creator": info.software}
+    meta = {
+        "CreationDate": None,
+        "Title": f"Reflector map sheet: {info.survey}",
+        "Subject": " ".join(CAUTION_LINES),
+        "Creator": info.software,
+    }
     with matplotlib.rc_context({"pdf.fonttype": 3}), PdfPages(buf, metadata=meta) as pdf:
         for k, page in enumerate(pages, start=1):
             fig = new_sheet(A3_LANDSCAPE_MM)
@@ -224,8 +256,12 @@ def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
             _legend(fig, im, page, overlays)
             _scale_and_north(fig, scale)
             draw_cautions(mm_axes(fig, (_PANEL_X_MM, 92.0, _PANEL_W_MM, 30.0)), width_chars=62)
-            draw_title_block(mm_axes(fig, (_PANEL_X_MM, 14.0, _PANEL_W_MM, 76.0)), info,
-                             f"{page.title} (sheet {k} of {len(pages)})", f"1:{scale:,} (A3)")
+            draw_title_block(
+                mm_axes(fig, (_PANEL_X_MM, 14.0, _PANEL_W_MM, 76.0)),
+                info,
+                f"{page.title} (sheet {k} of {len(pages)})",
+                f"1:{scale:,} (A3)",
+            )
             pdf.savefig(fig)
             _close(fig)
     return buf.getvalue()

@@ -60,6 +60,8 @@ def _layout(layout: str, size, n_params: int) -> tuple:
     t2 = (ml, below + mt, half, avail - top_h - mt - mb)
     res = (2 * ml + mr + half, below + mt, half, avail - top_h - mt - mb)
     return w, h, header, (t2, tx, res)
+
+
 _FONT = "font-family:system-ui,'Segoe UI',Helvetica,Arial,sans-serif"
 
 
@@ -187,8 +189,18 @@ def _symbols(prefix):
     )
 
 
-def gather_svg(offset_m, time_s, model_time_s, rejected, excluded, title: str, params_text: str,
-               ident: str = "g", layout: str = "row", size=None) -> bytes:
+def gather_svg(
+    offset_m,
+    time_s,
+    model_time_s,
+    rejected,
+    excluded,
+    title: str,
+    params_text: str,
+    ident: str = "g",
+    layout: str = "row",
+    size=None,
+) -> bytes:
     """The QC figure of one gather as SVG: t²–x², t–x with the fit, residuals.
 
     Parameters

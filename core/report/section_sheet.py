@@ -68,8 +68,7 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
     ax = mm_axes(fig, _SECTION_BOX_MM)
     length = s.length_m
     itf_z = [np.concatenate([z - 2 * np.nan_to_num(sg), z + 2 * np.nan_to_num(sg)]) for _, _, z, sg in s.interfaces]
-    zs = _finite(s.ground_m, *itf_z, s.boreholes.top_m, s.boreholes.elevation_m, s.shots.top_m,
-                 s.points.elevation_m)
+    zs = _finite(s.ground_m, *itf_z, s.boreholes.top_m, s.boreholes.elevation_m, s.shots.top_m, s.points.elevation_m)
     if not zs.size:
         zs = np.array([0.0, 1.0])
     zmin, zmax = float(zs.min()), float(zs.max())
@@ -102,38 +101,74 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
         ax.fill_between(ch, z - 2 * sg, z + 2 * sg, color=colour, alpha=0.25, lw=0, label="±2σ of the surface")
     p = s.points
     if len(p):
-        ax.errorbar(p.chainage_m, p.elevation_m, yerr=2 * p.sigma_m, fmt="o", ms=2.5, color=figures.USED, lw=0.6,
-                    label="reflector points in the corridor (±2σ)", zorder=5)
+        ax.errorbar(
+            p.chainage_m,
+            p.elevation_m,
+            yerr=2 * p.sigma_m,
+            fmt="o",
+            ms=2.5,
+            color=figures.USED,
+            lw=0.6,
+            label="reflector points in the corridor (±2σ)",
+            zorder=5,
+        )
     sh = s.shots
     if len(sh):
-        ax.plot(sh.chainage_m, sh.top_m, "v", color=figures.USED, mfc="white", ms=4, label="shots in the corridor",
-                zorder=6)
+        ax.plot(
+            sh.chainage_m, sh.top_m, "v", color=figures.USED, mfc="white", ms=4, label="shots in the corridor", zorder=6
+        )
     b = s.boreholes
     for i in range(len(b)):
         c, top, z, sg, off = b.chainage_m[i], b.top_m[i], b.elevation_m[i], b.sigma_m[i], b.offset_m[i]
-        ax.plot([c, c], [top, z], "-", color="k", lw=2.2, zorder=7, label="boreholes (collar to reflector)"
-                if i == 0 else None)
+        ax.plot(
+            [c, c],
+            [top, z],
+            "-",
+            color="k",
+            lw=2.2,
+            zorder=7,
+            label="boreholes (collar to reflector)" if i == 0 else None,
+        )
         ax.errorbar([c], [z], yerr=[2 * sg], fmt="s", ms=5, color="k", mfc="yellow", zorder=8)
         side = "R" if off >= 0 else "L"
-        ax.annotate(f"{b.label[i]}\noffset {abs(off):.1f} m {side}", (c, top), xytext=(0, 6),
-                    textcoords="offset points", ha="center", va="bottom", fontsize=7)
+        ax.annotate(
+            f"{b.label[i]}\noffset {abs(off):.1f} m {side}",
+            (c, top),
+            xytext=(0, 6),
+            textcoords="offset points",
+            ha="center",
+            va="bottom",
+            fontsize=7,
+        )
     ax.set_xlabel("chainage along the alignment (m)")
     datum = info.vertical_datum or "vertical datum not stated"
     ax.set_ylabel(f"elevation (m, {datum})")
     ax.grid(True, color="0.85", lw=0.5)
     ax.tick_params(labelsize=7, right=True, labelright=True)
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(0.0, -0.09), ncol=4, frameon=False)
-    ax.set_title(f"{s.title} — horizontal 1:{h_scale:,}, vertical 1:{round(h_scale / ve):,}, "
-                 f"vertical exaggeration ×{ve:g}", fontsize=10, loc="left")
+    ax.set_title(
+        f"{s.title} — horizontal 1:{h_scale:,}, vertical 1:{round(h_scale / ve):,}, vertical exaggeration ×{ve:g}",
+        fontsize=10,
+        loc="left",
+    )
     if s.notes:
-        ax.text(0.5, 0.5, "; ".join(s.notes), transform=ax.transAxes, ha="center", va="center", fontsize=12,
-                color="0.3")
+        ax.text(
+            0.5, 0.5, "; ".join(s.notes), transform=ax.transAxes, ha="center", va="center", fontsize=12, color="0.3"
+        )
     _key_plan(mm_axes(fig, (20.0, 14.0, 95.0, 64.0)), s, plan or {})
-    draw_cautions(mm_axes(fig, (125.0, 54.0, 148.0, 30.0)),
-                  extra=(f"Boreholes, shots and reflector points within {s.corridor_m / 2:g} m of the alignment",
-                         "are projected onto it; offsets right (R) or left (L) looking up-chainage."))
-    draw_title_block(mm_axes(fig, (280.0, 14.0, 120.0, 72.0)), info, f"Section {s.title}",
-                     f"H 1:{h_scale:,}, V 1:{round(h_scale / ve):,} (A3)")
+    draw_cautions(
+        mm_axes(fig, (125.0, 54.0, 148.0, 30.0)),
+        extra=(
+            f"Boreholes, shots and reflector points within {s.corridor_m / 2:g} m of the alignment",
+            "are projected onto it; offsets right (R) or left (L) looking up-chainage.",
+        ),
+    )
+    draw_title_block(
+        mm_axes(fig, (280.0, 14.0, 120.0, 72.0)),
+        info,
+        f"Section {s.title}",
+        f"H 1:{h_scale:,}, V 1:{round(h_scale / ve):,} (A3)",
+    )
     return save_figure(fig, fmt)
 
 

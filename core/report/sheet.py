@@ -156,8 +156,15 @@ def draw_cautions(ax, extra=(), width_chars=None) -> None:
         lines = [part for line in lines for part in textwrap.wrap(line, width_chars)]
     dy = 0.9 / max(len(lines), 1)
     for i, text in enumerate(lines):
-        ax.text(0.02, 0.95 - (i + 0.5) * dy, text, fontsize=7.2, va="center", ha="left",
-                fontweight="bold" if i == 0 else "normal")
+        ax.text(
+            0.02,
+            0.95 - (i + 0.5) * dy,
+            text,
+            fontsize=7.2,
+            va="center",
+            ha="left",
+            fontweight="bold" if i == 0 else "normal",
+        )
 
 
 def save_figure(fig, fmt: str = "pdf") -> bytes:

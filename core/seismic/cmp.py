@@ -71,7 +71,6 @@ class CmpFits:
         return self.status == "ok"
 
 
-
 class _CmpModel:
     """NMO hyperbola :math:`t^2 = t_0^2 + x^2/V_{nmo}^2` [Levin 1971]."""
 
@@ -177,7 +176,6 @@ class _CmpModel:
             else:
                 reasons[int(k)] = f"fitted zero-offset time {t0[k] * 1e3:.3g} ms is not positive; check the picks"
         return bad, reasons
-
 
 
 def fit_cmp_gathers(
@@ -414,8 +412,10 @@ def cmp_bins(
                 f"bin_size_m has shape {b.shape} or values that are not positive distances; expected one "
                 f"positive bin length (m) per pick, shape ({n},), or one number"
             )
-    elif isinstance(bin_size_m, bool) or not isinstance(bin_size_m, (int, float, np.number)) or not (
-        np.isfinite(bin_size_m) and bin_size_m > 0
+    elif (
+        isinstance(bin_size_m, bool)
+        or not isinstance(bin_size_m, (int, float, np.number))
+        or not (np.isfinite(bin_size_m) and bin_size_m > 0)
     ):
         raise InversionError(f"bin_size_m = {bin_size_m!r} must be a positive distance in metres")
     else:

@@ -74,9 +74,7 @@ def plane_normal(dip_deg: ArrayLike, dip_direction_deg: ArrayLike) -> np.ndarray
     """
     dip = np.radians(np.asarray(dip_deg, dtype=float))
     az = np.radians(np.asarray(dip_direction_deg, dtype=float))
-    return np.stack(
-        [-np.sin(dip) * np.sin(az), -np.sin(dip) * np.cos(az), -np.cos(dip)], axis=-1
-    )
+    return np.stack([-np.sin(dip) * np.sin(az), -np.sin(dip) * np.cos(az), -np.cos(dip)], axis=-1)
 
 
 def dip_from_normal(normal: ArrayLike) -> tuple[np.ndarray, np.ndarray]:

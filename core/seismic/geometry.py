@@ -267,7 +267,9 @@ def line_frames(stations: Stations, path: Optional[Union[str, Path]] = None) -> 
             dup = uniq[counts > 1][0]
             rows = file_line[idx[labels == dup]]
             raise InputFileError(
-                path, int(rows[1]), "station",
+                path,
+                int(rows[1]),
+                "station",
                 f"station '{dup}' appears more than once on line '{name}' (also at line {int(rows[0])}); "
                 "each (line, station) pair must be unique: rename or remove the duplicate",
             )
@@ -278,7 +280,9 @@ def line_frames(stations: Stations, path: Optional[Union[str, Path]] = None) -> 
         evals, evecs = np.linalg.eigh(cov)
         if len(idx) < 2 or evals[-1] <= 1e-12:
             raise InputFileError(
-                path, int(file_line[idx[0]]), "x",
+                path,
+                int(file_line[idx[0]]),
+                "x",
                 f"line '{name}' has {len(idx)} station(s) at a single position "
                 f"({x[idx[0]]:.3f}, {y[idx[0]]:.3f}); a line needs at least two distinct stations "
                 "to define its direction: check the coordinates or the line names",
@@ -354,8 +358,8 @@ def project_onto_polyline(
     chain = np.empty(len(px))
     off = np.empty(len(px))
     for start in range(0, len(px), chunk):
-        sx = px[start:start + chunk, None] - a[None, :, 0]
-        sy = py[start:start + chunk, None] - a[None, :, 1]
+        sx = px[start : start + chunk, None] - a[None, :, 0]
+        sy = py[start : start + chunk, None] - a[None, :, 1]
         t = np.clip((sx * d[:, 0] + sy * d[:, 1]) / l2, 0.0, 1.0)
         t = np.where(seg_len > 0, t, 0.0)
         rx = sx - t * d[:, 0]
@@ -363,11 +367,11 @@ def project_onto_polyline(
         dist2 = rx * rx + ry * ry
         k = np.argmin(dist2, axis=1)
         rows = np.arange(len(k))
-        chain[start:start + chunk] = cum[k] + t[rows, k] * seg_len[k]
+        chain[start : start + chunk] = cum[k] + t[rows, k] * seg_len[k]
         nx = d[k, 1] / np.where(seg_len[k] > 0, seg_len[k], 1.0)
         ny = -d[k, 0] / np.where(seg_len[k] > 0, seg_len[k], 1.0)
         sign = np.sign(rx[rows, k] * nx + ry[rows, k] * ny)
-        off[start:start + chunk] = np.where(sign == 0, 1.0, sign) * np.sqrt(dist2[rows, k])
+        off[start : start + chunk] = np.where(sign == 0, 1.0, sign) * np.sqrt(dist2[rows, k])
     return chain.reshape(shape), off.reshape(shape)
 
 
@@ -427,9 +431,10 @@ def build_gathers(
         if not sel.any():
             present = ", ".join(sorted(set(np.asarray(pk.reflector).astype(str))))
             raise SurveyConfigError(
-                getattr(survey, "path", None), None, "reflector",
-                f"no picks for reflector {wanted!r}; the picks file has reflector(s) {present}: "
-                "choose one of those",
+                getattr(survey, "path", None),
+                None,
+                "reflector",
+                f"no picks for reflector {wanted!r}; the picks file has reflector(s) {present}: choose one of those",
             )
     rows = np.flatnonzero(sel)
 
@@ -448,7 +453,9 @@ def build_gathers(
         if len(bad):
             b = bad[0]
             raise InputFileError(
-                pk_path, int(p_file_line[b]), field,
+                pk_path,
+                int(p_file_line[b]),
+                field,
                 f"{field} '{labels[b]}' of line '{p_line[b]}' is not a station of that line in the "
                 f"stations file ({len(bad)} pick(s) affected); add the station or correct the label",
             )
@@ -591,9 +598,11 @@ def _normals_from(u: np.ndarray, w: np.ndarray, s: np.ndarray, q: np.ndarray) ->
     q = np.where(np.isfinite(q), q, 0.0)
     c2 = 1.0 - s * s - q * q
     c = np.sqrt(np.where(c2 >= 0, c2, np.nan))
-    return -s[:, None] * np.column_stack([u, np.zeros(len(s))]) - q[:, None] * np.column_stack(
-        [w, np.zeros(len(s))]
-    ) - c[:, None] * np.array([0.0, 0.0, 1.0])
+    return (
+        -s[:, None] * np.column_stack([u, np.zeros(len(s))])
+        - q[:, None] * np.column_stack([w, np.zeros(len(s))])
+        - c[:, None] * np.array([0.0, 0.0, 1.0])
+    )
 
 
 def vertical_depth_below_source(normal_distance_m: ArrayLike, dip_deg: ArrayLike) -> np.ndarray:
@@ -786,9 +795,11 @@ def reflector_points(
     s = _fit_array(fits, "s_along", g)
     if cross_component is None:
         cross_component = getattr(fits, "cross_component", None)
-    q = np.zeros(g) if cross_component is None else np.broadcast_to(
-        np.asarray(cross_component, dtype=float), (g,)
-    ).copy()
+    q = (
+        np.zeros(g)
+        if cross_component is None
+        else np.broadcast_to(np.asarray(cross_component, dtype=float), (g,)).copy()
+    )
     q = np.where(np.isfinite(q), q, 0.0)
 
     p0, pr, n = _points_local(src, rec, u, w, h, s, q, gid)

@@ -133,9 +133,12 @@ def line_crossings(frames: Mapping[str, LineFrame], max_gap_m: float = 0.0) -> C
             rows.append((0.5 * (pa.x + pb.x), 0.5 * (pa.y + pb.y), a, b, angle, gap))
     cols: list[Any] = list(zip(*rows)) if rows else [[] for _ in range(6)]
     return Crossings(
-        x_m=np.asarray(cols[0], float), y_m=np.asarray(cols[1], float),
-        line_a=np.asarray(cols[2], dtype=object), line_b=np.asarray(cols[3], dtype=object),
-        angle_deg=np.asarray(cols[4], float), gap_m=np.asarray(cols[5], float),
+        x_m=np.asarray(cols[0], float),
+        y_m=np.asarray(cols[1], float),
+        line_a=np.asarray(cols[2], dtype=object),
+        line_b=np.asarray(cols[3], dtype=object),
+        angle_deg=np.asarray(cols[4], float),
+        gap_m=np.asarray(cols[5], float),
     )
 
 
@@ -251,13 +254,36 @@ def line_misties(
                 za, sa, why_a = _value_at(prof_a, points, ca, x, y, gaps[a, refl])
                 zb, sb, why_b = _value_at(prof_b, points, cb, x, y, gaps[b, refl])
                 reasons = [f"line {n}: {why}" for n, why in ((a, why_a), (b, why_b)) if why != "ok"]
-                rows.append((x, y, a, b, refl, ca, cb, za, zb, za - zb, np.hypot(sa, sb),
-                             "ok" if not reasons else "no value: " + "; ".join(reasons)))
+                rows.append(
+                    (
+                        x,
+                        y,
+                        a,
+                        b,
+                        refl,
+                        ca,
+                        cb,
+                        za,
+                        zb,
+                        za - zb,
+                        np.hypot(sa, sb),
+                        "ok" if not reasons else "no value: " + "; ".join(reasons),
+                    )
+                )
     cols: list[Any] = list(zip(*rows)) if rows else [[] for _ in range(12)]
     f = lambda i: np.asarray(cols[i], dtype=float)  # noqa: E731
     o = lambda i: np.asarray(cols[i], dtype=object)  # noqa: E731
     return Misties(
-        x_m=f(0), y_m=f(1), line_a=o(2), line_b=o(3), reflector=o(4),
-        chainage_a_m=f(5), chainage_b_m=f(6), elevation_a_m=f(7), elevation_b_m=f(8),
-        mistie_m=f(9), sigma_m=f(10), status=o(11),
+        x_m=f(0),
+        y_m=f(1),
+        line_a=o(2),
+        line_b=o(3),
+        reflector=o(4),
+        chainage_a_m=f(5),
+        chainage_b_m=f(6),
+        elevation_a_m=f(7),
+        elevation_b_m=f(8),
+        mistie_m=f(9),
+        sigma_m=f(10),
+        status=o(11),
     )

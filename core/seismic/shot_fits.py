@@ -118,7 +118,6 @@ class ShotFits:
         return gather_normals(gathers, self)
 
 
-
 class _ShotModel:
     r"""Image-source traveltime of a common-shot gather (padded arrays).
 
@@ -341,9 +340,7 @@ class _ShotComponents:
     block by block keeps the arrays in the processor cache.
     """
 
-    def __init__(
-        self, Dx: np.ndarray, Dy: np.ndarray, Dz: np.ndarray, u: np.ndarray, w: np.ndarray, q: np.ndarray
-    ):
+    def __init__(self, Dx: np.ndarray, Dy: np.ndarray, Dz: np.ndarray, u: np.ndarray, w: np.ndarray, q: np.ndarray):
         self.Dx, self.Dy, self.Dz, self.u, self.w, self.q = Dx, Dy, Dz, u, w, q
 
     def take(self, rows: Rows) -> _ShotModel:
@@ -383,9 +380,7 @@ def _cross_components(cross_component: Union[float, np.ndarray, None], g: int) -
         return np.zeros(g)
     q = np.asarray(cross_component, dtype=float)
     if q.ndim > 1 or (q.ndim == 1 and len(q) not in (1, g)):
-        raise InversionError(
-            f"cross_component has shape {q.shape}; expected one value or one per gather, shape ({g},)"
-        )
+        raise InversionError(f"cross_component has shape {q.shape}; expected one value or one per gather, shape ({g},)")
     q = np.broadcast_to(q, (g,)).copy()
     q = np.where(np.isfinite(q), q, 0.0)  # NaN: cross-line dip not resolved, taken as level
     if np.any(np.abs(q) >= 1.0):
@@ -576,4 +571,3 @@ def fit_shot_gathers(
         excluded=ex.copy(),
         weight=unpad(out.weight, row, col),
     )
-

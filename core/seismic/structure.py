@@ -414,11 +414,16 @@ def combine_lines(
 
     m = len(clusters)
     out = {
-        "x_m": np.full(m, np.nan), "y_m": np.full(m, np.nan),
-        "dip_deg": np.full(m, np.nan), "dip_direction_deg": np.full(m, np.nan),
-        "sigma_dip_deg": np.full(m, np.nan), "sigma_dip_direction_deg": np.full(m, np.nan),
-        "max_angle_deg": np.full(m, np.nan), "condition_number": np.full(m, np.nan),
-        "variance_factor": np.full(m, np.nan), "normal_h": np.full((m, 2), np.nan),
+        "x_m": np.full(m, np.nan),
+        "y_m": np.full(m, np.nan),
+        "dip_deg": np.full(m, np.nan),
+        "dip_direction_deg": np.full(m, np.nan),
+        "sigma_dip_deg": np.full(m, np.nan),
+        "sigma_dip_direction_deg": np.full(m, np.nan),
+        "max_angle_deg": np.full(m, np.nan),
+        "condition_number": np.full(m, np.nan),
+        "variance_factor": np.full(m, np.nan),
+        "normal_h": np.full((m, 2), np.nan),
         "covariance": np.full((m, 2, 2), np.nan),
     }
     lines_txt = np.empty(m, dtype=object)
@@ -505,14 +510,26 @@ def combine_lines(
         reason[k] = f"{len(mem)} gathers on {len(names)} line(s), directions {angle:.1f} deg apart"
 
     return DipMeasurements(
-        x_m=out["x_m"], y_m=out["y_m"], reflector=reflector_out,
-        dip_deg=out["dip_deg"], dip_direction_deg=out["dip_direction_deg"],
+        x_m=out["x_m"],
+        y_m=out["y_m"],
+        reflector=reflector_out,
+        dip_deg=out["dip_deg"],
+        dip_direction_deg=out["dip_direction_deg"],
         strike_deg=strike_from_dip_direction(out["dip_direction_deg"]),
-        sigma_dip_deg=out["sigma_dip_deg"], sigma_dip_direction_deg=out["sigma_dip_direction_deg"],
-        lines=lines_txt, n_lines=n_lines, n_gathers=n_members, max_angle_deg=out["max_angle_deg"],
-        condition_number=out["condition_number"], variance_factor=out["variance_factor"],
-        normal_h=out["normal_h"], covariance=out["covariance"], status=stat, reason=reason,
-        gather_measurement=membership, radius_m=float(radius_m),
+        sigma_dip_deg=out["sigma_dip_deg"],
+        sigma_dip_direction_deg=out["sigma_dip_direction_deg"],
+        lines=lines_txt,
+        n_lines=n_lines,
+        n_gathers=n_members,
+        max_angle_deg=out["max_angle_deg"],
+        condition_number=out["condition_number"],
+        variance_factor=out["variance_factor"],
+        normal_h=out["normal_h"],
+        covariance=out["covariance"],
+        status=stat,
+        reason=reason,
+        gather_measurement=membership,
+        radius_m=float(radius_m),
     )
 
 
@@ -548,9 +565,7 @@ def _crossing_clusters(crossings, xy, usable, refl, line, radius_m):
     return clusters, membership
 
 
-def cross_components(
-    gathers: GatherSet, dips: DipMeasurements, max_distance_m: Optional[float] = None
-) -> np.ndarray:
+def cross_components(gathers: GatherSet, dips: DipMeasurements, max_distance_m: Optional[float] = None) -> np.ndarray:
     r"""Find the resolved cross-line component :math:`q_k = -\mathbf w_k\cdot\mathbf n_h` of each gather.
 
     Uses the measurement each gather belongs to (``dips.gather_measurement``)
@@ -658,8 +673,14 @@ def resolve_cross_dips(
     q_used = np.zeros(g)
     rounds = 0
     for rounds in range(1, max_iter + 1):
-        dips = combine_lines(gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg,
-                             max_condition=max_condition, crossings=crossings)
+        dips = combine_lines(
+            gathers,
+            fits,
+            radius_m=radius_m,
+            min_angle_deg=min_angle_deg,
+            max_condition=max_condition,
+            crossings=crossings,
+        )
         q = cross_components(gathers, dips, max_distance_m=max_distance_m)
         q_new = np.where(np.isfinite(q), q, 0.0)
         change = float(np.max(np.abs(q_new - q_used))) if g else 0.0
@@ -668,7 +689,11 @@ def resolve_cross_dips(
         fits = refit(q_new)
         q_used = q_new
     dips = combine_lines(
-        gathers, fits, radius_m=radius_m, min_angle_deg=min_angle_deg, max_condition=max_condition,
+        gathers,
+        fits,
+        radius_m=radius_m,
+        min_angle_deg=min_angle_deg,
+        max_condition=max_condition,
         crossings=crossings,
     )
     return fits, dips, cross_components(gathers, dips, max_distance_m=max_distance_m), rounds

@@ -209,11 +209,12 @@ def distance_mask(
     xc = spec.x_centres - origin[0]
     rows = max(1, 2_000_000 // spec.nx)
     for r0 in range(0, spec.ny, rows):
-        yc = spec.y_centres[r0:r0 + rows] - origin[1]
+        yc = spec.y_centres[r0 : r0 + rows] - origin[1]
         gx, gy = np.meshgrid(xc, yc)
-        d, _ = tree.query(np.column_stack([gx.ravel(), gy.ravel()]), k=1, workers=-1,
-                          distance_upper_bound=md * (1 + 1e-12))
-        mask[r0:r0 + rows] = (d > md).reshape(gx.shape)
+        d, _ = tree.query(
+            np.column_stack([gx.ravel(), gy.ravel()]), k=1, workers=-1, distance_upper_bound=md * (1 + 1e-12)
+        )
+        mask[r0 : r0 + rows] = (d > md).reshape(gx.shape)
     return mask
 
 

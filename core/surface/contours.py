@@ -61,9 +61,7 @@ def nice_interval(zmin: float, zmax: float, target_count: int = 10) -> float:
     """
     span = float(zmax) - float(zmin)
     if not (math.isfinite(span) and span > 0):
-        raise OutputError(
-            f"cannot choose a contour interval for the range {zmin!r} .. {zmax!r}; it must be > 0"
-        )
+        raise OutputError(f"cannot choose a contour interval for the range {zmin!r} .. {zmax!r}; it must be > 0")
     if target_count < 1:
         raise OutputError(f"target_count={target_count!r}; expected at least 1")
     raw = span / target_count

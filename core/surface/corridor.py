@@ -75,7 +75,10 @@ class LineCorridor:
 
 
 def line_corridor(
-    x_m: ArrayLike, y_m: ArrayLike, width_m: Optional[float], depth_m: Optional[ArrayLike] = None,
+    x_m: ArrayLike,
+    y_m: ArrayLike,
+    width_m: Optional[float],
+    depth_m: Optional[ArrayLike] = None,
     cross_dip_deg: float = 10.0,
 ) -> Optional[LineCorridor]:
     """The corridor of the points when they lie along one straight line, else None.

@@ -196,8 +196,13 @@ def interpolate_surface(
     if spec is None:
         spec = GridSpec.from_data(xa, ya)
     diag: dict[str, Any] = {
-        "method": method, "n_data": int(xa.size), "experimental_variogram": None, "variogram": None,
-        "variogram_fitted": None, "variogram_scores": None, "smoothing": None,
+        "method": method,
+        "n_data": int(xa.size),
+        "experimental_variogram": None,
+        "variogram": None,
+        "variogram_fitted": None,
+        "variogram_scores": None,
+        "smoothing": None,
     }
     model: Union[OrdinaryKriging, ThinPlateSpline]
     if method == "kriging":
@@ -222,8 +227,7 @@ def interpolate_surface(
         p0 = 20
     else:
         raise SurfaceError(
-            f"method must be 'kriging' or 'spline', got {method!r}; choose one of them "
-            "([processing] surface_method)"
+            f"method must be 'kriging' or 'spline', got {method!r}; choose one of them ([processing] surface_method)"
         )
     if max_distance_m is None:
         max_distance_m = default_max_distance(xa, ya, diag["variogram"])

@@ -161,15 +161,18 @@ def choose_variogram(
         fitted[m] = v
         used[m] = VariogramModel(m, max(v.nugget - mean_e, 0.0), v.sill, v.range_m)
     info: dict[str, Any] = {
-        "experimental_variogram": ev, "fitted": fitted, "scores": None, "mean_error_variance": mean_e,
+        "experimental_variogram": ev,
+        "fitted": fitted,
+        "scores": None,
+        "mean_error_variance": mean_e,
     }
     if len(models) == 1:
         return used[models[0]], info
     scores = {}
     for m in models:
         try:
-            cv = OrdinaryKriging(used[m], neighbours=neighbours).fit(xa, ya, za, e).cross_validate(
-                max_points=max_points
+            cv = (
+                OrdinaryKriging(used[m], neighbours=neighbours).fit(xa, ya, za, e).cross_validate(max_points=max_points)
             )
             sc = cv.mean_log_score
         except (InversionError, np.linalg.LinAlgError):
@@ -253,9 +256,7 @@ class OrdinaryKriging:
         self.n_threads = n_threads
 
     # -- fitting
-    def fit(
-        self, x: ArrayLike, y: ArrayLike, z: ArrayLike, error_variance: ArrayLike | None = None
-    ) -> OrdinaryKriging:
+    def fit(self, x: ArrayLike, y: ArrayLike, z: ArrayLike, error_variance: ArrayLike | None = None) -> OrdinaryKriging:
         """Store the data (and fit the variogram when "auto").
 
         Parameters
@@ -286,8 +287,7 @@ class OrdinaryKriging:
         if k is not None:
             if int(k) != k or int(k) < 1:
                 raise SurfaceError(
-                    f"neighbours must be a positive integer or None, got {k!r}; "
-                    "32 is usual ([processing] neighbours)"
+                    f"neighbours must be a positive integer or None, got {k!r}; 32 is usual ([processing] neighbours)"
                 )
             k = min(int(k), xa.size)
         elif xa.size > GLOBAL_MAX_DATA:
@@ -427,17 +427,19 @@ class OrdinaryKriging:
         return self._solve_local(tx, ty, idx)
 
     def _run_chunks(
-        self, n: int, chunk: int, work: Callable[[slice], Any], progress: Optional[Progress],
-        p0: float = 0.0, p1: float = 100.0,
+        self,
+        n: int,
+        chunk: int,
+        work: Callable[[slice], Any],
+        progress: Optional[Progress],
+        p0: float = 0.0,
+        p1: float = 100.0,
     ) -> None:
         """Apply ``work(slice)`` to chunks of range(n): on threads, BLAS on one, when local."""
         local = self._k is not None  # global: few large solves, let BLAS use its threads
-        run_chunks(n, chunk, work, progress, n_threads=self.n_threads if local else 1, limit_blas=local,
-                   p0=p0, p1=p1)
+        run_chunks(n, chunk, work, progress, n_threads=self.n_threads if local else 1, limit_blas=local, p0=p0, p1=p1)
 
-    def predict(
-        self, x: ArrayLike, y: ArrayLike, progress: Optional[Progress] = None
-    ) -> tuple[np.ndarray, np.ndarray]:
+    def predict(self, x: ArrayLike, y: ArrayLike, progress: Optional[Progress] = None) -> tuple[np.ndarray, np.ndarray]:
         r"""Kriging estimate and standard deviation at points.
 
         Parameters
@@ -471,7 +473,11 @@ class OrdinaryKriging:
         return est.reshape(shape), np.sqrt(np.maximum(var, 0.0)).reshape(shape)
 
     def _predict_centred(
-        self, tx: np.ndarray, ty: np.ndarray, progress: Optional[Progress] = None, p0: float = 0.0,
+        self,
+        tx: np.ndarray,
+        ty: np.ndarray,
+        progress: Optional[Progress] = None,
+        p0: float = 0.0,
         p1: float = 100.0,
     ) -> tuple[np.ndarray, np.ndarray]:
         n = tx.size
@@ -530,8 +536,12 @@ class OrdinaryKriging:
             z[sel] = e
             s[sel] = np.sqrt(np.maximum(v, 0.0))
         return SurfaceGrid(
-            spec=spec, z=z.reshape(spec.shape), std=s.reshape(spec.shape), mask=mask,
-            method="kriging", n_data=self.n_data_,
+            spec=spec,
+            z=z.reshape(spec.shape),
+            std=s.reshape(spec.shape),
+            mask=mask,
+            method="kriging",
+            n_data=self.n_data_,
         )
 
     def cross_validate(

@@ -114,8 +114,9 @@ def kriging_weights(variogram, x, y, error_variance, tx, ty, neighbours=32):
         try:
             sol = np.linalg.solve(m, b[:, :, None])[:, :, 0]
         except np.linalg.LinAlgError as exc:
-            raise SurfaceError(f"a kriging system of the simulation is singular ({exc}): data at one place "
-                                 "without error variance") from exc
+            raise SurfaceError(
+                f"a kriging system of the simulation is singular ({exc}): data at one place without error variance"
+            ) from exc
         weights[sl] = sol[:, :k]
         variance[sl] = (np.einsum("ij,ij->i", sol[:, :k], b[:, :k]) + sol[:, k]) * s
     return idx, weights, np.maximum(variance, 0.0)
@@ -137,8 +138,10 @@ def _cholesky(cov, sill):
             return cholesky(a, lower=True, check_finite=False), jitter
         except LinAlgError:
             continue
-    raise SurfaceError("the covariance matrix of the simulation is not positive definite even with a jitter of "
-                         f"{1e-4 * sill:.3g} m2 on its diagonal")
+    raise SurfaceError(
+        "the covariance matrix of the simulation is not positive definite even with a jitter of "
+        f"{1e-4 * sill:.3g} m2 on its diagonal"
+    )
 
 
 def simulate_conditional(
@@ -207,5 +210,5 @@ def simulate_conditional(
     kriged_s = np.empty((m, int(n_simulations)))
     step = max(1, int(4e6 // (idx.shape[1] * int(n_simulations))))  # ~32 MB of gathered data per chunk
     for a in range(0, m, step):
-        kriged_s[a:a + step] = np.einsum("ik,iks->is", lam[a:a + step], z_data[idx[a:a + step]])
+        kriged_s[a : a + step] = np.einsum("ik,iks->is", lam[a : a + step], z_data[idx[a : a + step]])
     return ConditionalSimulation(values=mean[:, None] + y_s[:m] - kriged_s, jitter=float(jitter))

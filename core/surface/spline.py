@@ -110,9 +110,7 @@ class ThinPlateSpline:
             k = min(int(k), len(z))
         return RBFInterpolator(xy, z, neighbors=k, smoothing=smooth, kernel="thin_plate_spline", degree=1)
 
-    def fit(
-        self, x: ArrayLike, y: ArrayLike, z: ArrayLike, error_variance: ArrayLike | None = None
-    ) -> ThinPlateSpline:
+    def fit(self, x: ArrayLike, y: ArrayLike, z: ArrayLike, error_variance: ArrayLike | None = None) -> ThinPlateSpline:
         """Fit the spline (choosing the smoothing when "auto").
 
         Parameters
@@ -139,8 +137,7 @@ class ThinPlateSpline:
         k = self.neighbours
         if k is not None and (int(k) != k or int(k) < 3):
             raise SurfaceError(
-                f"neighbours must be an integer >= 3 or None, got {k!r}; "
-                "32 is usual ([processing] neighbours)"
+                f"neighbours must be an integer >= 3 or None, got {k!r}; 32 is usual ([processing] neighbours)"
             )
         self._origin = (float(np.mean(xa)), float(np.mean(ya)))
         scale = 0.5 * math.hypot(np.ptp(xa), np.ptp(ya))
@@ -201,9 +198,7 @@ class ThinPlateSpline:
         if not hasattr(self, "interpolator_"):
             raise NotFittedError("ThinPlateSpline is not fitted yet: call fit(x, y, z) first")
 
-    def predict(
-        self, x: ArrayLike, y: ArrayLike, progress: Optional[Progress] = None
-    ) -> tuple[np.ndarray, np.ndarray]:
+    def predict(self, x: ArrayLike, y: ArrayLike, progress: Optional[Progress] = None) -> tuple[np.ndarray, np.ndarray]:
         """Spline value at points, and NaN as std (the spline has no variance).
 
         Parameters
@@ -230,8 +225,9 @@ class ThinPlateSpline:
         self._check_fitted()
         xa, ya = check_targets(x, y)
         shape = xa.shape
-        xy = np.column_stack([(xa.ravel() - self._origin[0]) / self._scale,
-                              (ya.ravel() - self._origin[1]) / self._scale])
+        xy = np.column_stack(
+            [(xa.ravel() - self._origin[0]) / self._scale, (ya.ravel() - self._origin[1]) / self._scale]
+        )
         out = self._eval(xy, progress)
         return out.reshape(shape), np.full(shape, np.nan)
 
@@ -243,7 +239,7 @@ class ThinPlateSpline:
         out = np.empty(n)
         for s in range(0, n, chunk):
             check_cancel(sink)
-            out[s:s + chunk] = self.interpolator_(xy[s:s + chunk])
+            out[s : s + chunk] = self.interpolator_(xy[s : s + chunk])
             sink.set_progress(100.0 * min(n, s + chunk) / max(n, 1))
         return out
 
@@ -280,8 +276,15 @@ class ThinPlateSpline:
         sel = ~mask.ravel()
         z = np.full(spec.size, np.nan)
         if sel.any():
-            xy = np.column_stack([(gx.ravel()[sel] - self._origin[0]) / self._scale,
-                                  (gy.ravel()[sel] - self._origin[1]) / self._scale])
+            xy = np.column_stack(
+                [(gx.ravel()[sel] - self._origin[0]) / self._scale, (gy.ravel()[sel] - self._origin[1]) / self._scale]
+            )
             z[sel] = self._eval(xy, progress)
-        return SurfaceGrid(spec=spec, z=z.reshape(spec.shape), std=np.full(spec.shape, np.nan),
-                           mask=mask, method="spline", n_data=self.n_data_)
+        return SurfaceGrid(
+            spec=spec,
+            z=z.reshape(spec.shape),
+            std=np.full(spec.shape, np.nan),
+            mask=mask,
+            method="spline",
+            n_data=self.n_data_,
+        )

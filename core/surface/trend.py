@@ -180,14 +180,23 @@ def grid_with_trend(
     """
     trend = fit_trend(settings, x, y, z, s, None if corridor is None else corridor.unit)
     surf, diag = interpolate_surface(
-        x, y, z - trend(x, y), s, spec, method=method, neighbours=settings.neighbours,
-        variogram_model=settings.variogram_model, max_distance_m=settings.max_distance_m, progress=progress,
+        x,
+        y,
+        z - trend(x, y),
+        s,
+        spec,
+        method=method,
+        neighbours=settings.neighbours,
+        variogram_model=settings.variogram_model,
+        max_distance_m=settings.max_distance_m,
+        progress=progress,
     )
     if corridor is not None:
         mask = surf.mask | corridor.outside(spec)
         std = np.hypot(surf.std, corridor.cross_sigma_m(spec))
-        surf = SurfaceGrid(spec, np.where(mask, np.nan, surf.z), np.where(mask, np.nan, std), mask,
-                           surf.method, surf.n_data)
+        surf = SurfaceGrid(
+            spec, np.where(mask, np.nan, surf.z), np.where(mask, np.nan, std), mask, surf.method, surf.n_data
+        )
     cx, cy = np.meshgrid(spec.x_centres, spec.y_centres)
     z_grid = np.where(surf.mask, np.nan, surf.z + trend(cx, cy))
     diag["trend"] = trend

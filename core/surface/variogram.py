@@ -169,9 +169,7 @@ def experimental_variogram(
         max_lag_m = 0.5 * math.hypot(x.max() - x.min(), y.max() - y.min())
     max_lag_m = float(max_lag_m)
     if not (max_lag_m > 0 and math.isfinite(max_lag_m)):
-        raise SurfaceError(
-            f"max_lag_m must be positive, got {max_lag_m!r} (all data at one location?); give max_lag_m"
-        )
+        raise SurfaceError(f"max_lag_m must be positive, got {max_lag_m!r} (all data at one location?); give max_lag_m")
     edges = np.linspace(0.0, max_lag_m, n_lags + 1)
     width = max_lag_m / n_lags
     sum_sq = np.zeros(n_lags)
@@ -406,9 +404,7 @@ class VariogramModel:
         return self.total_sill - self(h)
 
 
-def fit_variogram(
-    lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: str = "spherical"
-) -> VariogramModel:
+def fit_variogram(lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: str = "spherical") -> VariogramModel:
     r"""Fit a variogram model by weighted least squares [Cressie 1985].
 
     Minimises Cressie's criterion
@@ -487,7 +483,7 @@ def fit_variogram(
 
     lower = [0.0, 1e-9 * gmax, hmax / 1000.0]
     upper = [gmax, 2.0 * gmax, 3.0 * hmax]
-    tail = float(np.mean(g[-max(1, len(g) // 4):]))
+    tail = float(np.mean(g[-max(1, len(g) // 4) :]))
     best = None
     for a0 in (0.25 * hmax, 0.5 * hmax, 1.0 * hmax):
         for c00 in (0.0, 0.5 * float(g[0])):

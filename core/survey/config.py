@@ -98,8 +98,13 @@ def toml_keys() -> dict[str, tuple[str, ...]]:
     >>> toml_keys()["files"]
     ('stations', 'picks', 'boreholes', 'dem', 'pick_edits')
     """
-    return {"survey": _SURVEY_KEYS + SURVEY_EXTRA_KEYS, "files": _FILE_KEYS, "processing": tuple(_processing_fields()),
-            "design": DESIGN_KEYS, "sections": SECTION_KEYS}
+    return {
+        "survey": _SURVEY_KEYS + SURVEY_EXTRA_KEYS,
+        "files": _FILE_KEYS,
+        "processing": tuple(_processing_fields()),
+        "design": DESIGN_KEYS,
+        "sections": SECTION_KEYS,
+    }
 
 
 class _Toml:
@@ -480,8 +485,14 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
     if "boreholes" in paths:
         boreholes = read_boreholes(paths["boreholes"], crs_in, crs_work, settings.borehole_sigma_m, stations=stations)
     handoff = read_handoff(
-        survey, _get_table(toml, doc, "design", required=False), _get_table(toml, doc, "sections", required=False),
-        toml_dir=toml.path.parent, error=toml.error, crs_in=crs_in, crs_work=crs_work, read_table=read_csv_table,
+        survey,
+        _get_table(toml, doc, "design", required=False),
+        _get_table(toml, doc, "sections", required=False),
+        toml_dir=toml.path.parent,
+        error=toml.error,
+        crs_in=crs_in,
+        crs_work=crs_work,
+        read_table=read_csv_table,
     )
     if handoff.design_area_path is not None:
         paths["design_area"] = handoff.design_area_path
@@ -500,4 +511,3 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         handoff=handoff,
         edits=edits,
     )
-

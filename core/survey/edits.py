@@ -257,9 +257,7 @@ class _PickIndex:
     def find(self, path, lineno, ln, sh, rc, rf) -> tuple:
         """Row index and reflector of the pick, or InputFileError naming the first field that misses."""
         if ln not in self.shots:
-            raise InputFileError(
-                path, lineno, "line", f"line {ln!r} has no picks in picks.csv{_near(ln, self.shots)}"
-            )
+            raise InputFileError(path, lineno, "line", f"line {ln!r} has no picks in picks.csv{_near(ln, self.shots)}")
         if sh not in self.shots[ln]:
             raise InputFileError(
                 path, lineno, "shot", f"shot {sh!r} of line {ln!r} has no picks in picks.csv{_near(sh, self.shots[ln])}"
@@ -337,9 +335,7 @@ def read_pick_edits(path: Union[str, Path], picks: Picks, *, max_time_ms: float 
         if action not in ACTIONS:
             close = difflib.get_close_matches(action, ACTIONS, n=1, cutoff=0.5)
             hint = f" (did you mean '{close[0]}'?)" if close else ""
-            raise InputFileError(
-                path, lineno, "action", f"action {r[3]!r} is not one of {', '.join(ACTIONS)}{hint}"
-            )
+            raise InputFileError(path, lineno, "action", f"action {r[3]!r} is not one of {', '.join(ACTIONS)}{hint}")
         _, rf = index.find(path, lineno, ln, sh, rc, _unguard(text(r, "reflector")))
         raw_time = text(r, "new_time_ms")
         new_time = None
@@ -426,12 +422,17 @@ def apply_pick_edits(picks: Picks, edits: PickEdits) -> AppliedEdits:
                 time_s[row] = picks.time_s[row]
             elif e.action == "retime":
                 if e.new_time_ms is None:
-                    raise InputFileError(edits.path, e.file_line, "new_time_ms", "a retime needs its new two-way "
-                                         "time in new_time_ms (milliseconds)")
+                    raise InputFileError(
+                        edits.path,
+                        e.file_line,
+                        "new_time_ms",
+                        "a retime needs its new two-way time in new_time_ms (milliseconds)",
+                    )
                 time_s[row] = float(e.new_time_ms) / 1e3
             else:
-                raise InputFileError(edits.path, e.file_line, "action", f"action {e.action!r} is not one of "
-                                     f"{', '.join(ACTIONS)}")
+                raise InputFileError(
+                    edits.path, e.file_line, "action", f"action {e.action!r} is not one of {', '.join(ACTIONS)}"
+                )
     edited = excluded | (time_s != picks.time_s)
     return AppliedEdits(replace(picks, time_s=time_s), excluded, np.asarray(picks.time_s, float), edited, edits)
 

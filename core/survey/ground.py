@@ -217,9 +217,7 @@ class GroundModel:
             x, values = x[::-1], values[:, ::-1]
         if y[1] < y[0]:
             y, values = y[::-1], values[::-1]
-        interp = RegularGridInterpolator(
-            (y, x), values, method="linear", bounds_error=False, fill_value=np.nan
-        )
+        interp = RegularGridInterpolator((y, x), values, method="linear", bounds_error=False, fill_value=np.nan)
         hx, hy = abs(raster.dx) / 2, abs(raster.dy) / 2
         extent = (x[0] - hx, x[-1] + hx, y[0] - hy, y[-1] + hy)
 
@@ -245,8 +243,7 @@ class GroundModel:
                 model._to_dem = pyproj.Transformer.from_crs(work, dem_crs, always_xy=True)
             except pyproj.exceptions.ProjError as exc:
                 raise GeoreferenceError(
-                    f"cannot transform from the working CRS '{work.name}' to the CRS of {name} "
-                    f"'{dem_crs.name}': {exc}"
+                    f"cannot transform from the working CRS '{work.name}' to the CRS of {name} '{dem_crs.name}': {exc}"
                 ) from exc
             crs_note += f", sampled through a transformation from '{work.name}'"
         cells = f"{nx} x {ny} cells of {abs(raster.dx):g} x {abs(raster.dy):g}"
@@ -281,9 +278,7 @@ class GroundModel:
         y = np.asarray(y_m, dtype=float).ravel()
         z = np.asarray(z_m, dtype=float).ravel()
         if not (len(x) == len(y) == len(z)):
-            raise GeoreferenceError(
-                f"station arrays differ in length: x {len(x)}, y {len(y)}, z {len(z)}"
-            )
+            raise GeoreferenceError(f"station arrays differ in length: x {len(x)}, y {len(y)}, z {len(z)}")
         ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(z)
         if not np.any(ok):
             raise GeoreferenceError("no station has a finite x, y and z; check the stations file")
@@ -475,10 +470,11 @@ class _Hull:
         y = np.asarray(py, float).ravel()
         ab = self.b - self.a  # (k, 2)
         length2 = np.maximum(np.sum(ab * ab, axis=1), 1e-300)
-        t = ((x[:, None] - self.a[None, :, 0]) * ab[None, :, 0] + (y[:, None] - self.a[None, :, 1]) * ab[None, :, 1])
+        t = (x[:, None] - self.a[None, :, 0]) * ab[None, :, 0] + (y[:, None] - self.a[None, :, 1]) * ab[None, :, 1]
         t = np.clip(t / length2[None, :], 0.0, 1.0)
-        d = np.hypot(x[:, None] - self.a[None, :, 0] - t * ab[None, :, 0],
-                     y[:, None] - self.a[None, :, 1] - t * ab[None, :, 1])
+        d = np.hypot(
+            x[:, None] - self.a[None, :, 0] - t * ab[None, :, 0], y[:, None] - self.a[None, :, 1] - t * ab[None, :, 1]
+        )
         k = np.argmin(d, axis=1)
         rows = np.arange(len(x))
         tk = t[rows, k]
@@ -489,8 +485,9 @@ class _Hull:
         x = np.asarray(px, float)
         y = np.asarray(py, float)
         fx, fy = x.ravel(), y.ravel()
-        out = np.max(fx[:, None] * self.eq[None, :, 0] + fy[:, None] * self.eq[None, :, 1] + self.eq[None, :, 2],
-                     axis=1)
+        out = np.max(
+            fx[:, None] * self.eq[None, :, 0] + fy[:, None] * self.eq[None, :, 1] + self.eq[None, :, 2], axis=1
+        )
         d = np.zeros(fx.shape)
         far = out > 0
         if far.any():

@@ -78,23 +78,29 @@ def _resolve_file(toml_dir: Path, table: str, key: str, value, error) -> Path:
     if not isinstance(value, str) or not value.strip():
         raise error(table, key, f"value {value!r} is {_type_name(value)}; expected a file name in quotes")
     if any(ord(c) < 32 for c in value):
-        raise error(table, key, f"the file name {value!r} holds a control character: write Windows paths with "
-                                "forward slashes or in single quotes")
+        raise error(
+            table,
+            key,
+            f"the file name {value!r} holds a control character: write Windows paths with "
+            "forward slashes or in single quotes",
+        )
     try:
         resolved = (toml_dir / Path(value.strip()).expanduser()).resolve()
         is_file = resolved.is_file()
     except (OSError, ValueError, RuntimeError) as exc:
         raise error(table, key, f"cannot use the path {value!r}: {exc}") from exc
     if not is_file:
-        raise error(table, key, f"file not found: '{value}' (resolved to {resolved}; paths are relative to "
-                                "survey.toml)")
+        raise error(
+            table, key, f"file not found: '{value}' (resolved to {resolved}; paths are relative to survey.toml)"
+        )
     return resolved
 
 
 def _number(error, table, key, value, *, minimum=None, integer=False):
     if isinstance(value, bool) or not isinstance(value, (int, float)):
-        raise error(table, key, f"value {value!r} is {_type_name(value)}; expected a "
-                                f"{'whole number' if integer else 'number'}")
+        raise error(
+            table, key, f"value {value!r} is {_type_name(value)}; expected a {'whole number' if integer else 'number'}"
+        )
     if integer and not isinstance(value, int):
         raise error(table, key, f"value {value!r} is a number with decimals; expected a whole number")
     if not math.isfinite(value):
@@ -112,25 +118,36 @@ def _vertical_crs(survey_table, error, crs_in) -> Optional[pyproj.CRS]:
     if "vertical_crs" in survey_table:
         value = survey_table["vertical_crs"]
         if isinstance(value, bool) or not isinstance(value, (str, int)):
-            raise error("survey", "vertical_crs", f'value {value!r} is {_type_name(value)}; expected text such as '
-                                                  '"EPSG:5703"')
+            raise error(
+                "survey", "vertical_crs", f'value {value!r} is {_type_name(value)}; expected text such as "EPSG:5703"'
+            )
         try:
             vcrs = crsmod.parse_crs(value)
         except GeoreferenceError as exc:
             raise error("survey", "vertical_crs", str(exc)) from exc
         if not vcrs.is_vertical:
-            raise error("survey", "vertical_crs", f"{crsmod.crs_label(vcrs)} is not a vertical CRS: give one such as "
-                                                  '"EPSG:5703" (NAVD88 height)')
+            raise error(
+                "survey",
+                "vertical_crs",
+                f'{crsmod.crs_label(vcrs)} is not a vertical CRS: give one such as "EPSG:5703" (NAVD88 height)',
+            )
         if stated is not None and stated.name != vcrs.name:
-            raise error("survey", "vertical_crs", f"the compound crs already names the vertical datum "
-                                                  f"{stated.name!r}; state it once")
+            raise error(
+                "survey",
+                "vertical_crs",
+                f"the compound crs already names the vertical datum {stated.name!r}; state it once",
+            )
         stated, key = vcrs, "vertical_crs"
     if stated is not None:
         units = sorted({a.unit_name or "" for a in stated.axis_info})
         if not {u.lower() for u in units} <= {"metre", "meter", "m"}:
-            raise error("survey", key, f"{crsmod.crs_label(stated)} measures heights in {', '.join(units)}, "
-                                       "but z in stations.csv and boreholes.csv is in metres: give the metre-based "
-                                       "vertical CRS of that datum (e.g. \"EPSG:5703\", NAVD88 height)")
+            raise error(
+                "survey",
+                key,
+                f"{crsmod.crs_label(stated)} measures heights in {', '.join(units)}, "
+                "but z in stations.csv and boreholes.csv is in metres: give the metre-based "
+                'vertical CRS of that datum (e.g. "EPSG:5703", NAVD88 height)',
+            )
     return stated
 
 
@@ -195,8 +212,12 @@ def read_handoff(
     if "elevation_m" in design_table:
         z = float(_number(error, "design", "elevation_m", design_table["elevation_m"]))
         if abs(z) > MAX_ABS_ELEVATION_M:
-            raise error("design", "elevation_m", f"value {z!r} m is outside +-{MAX_ABS_ELEVATION_M:g} m: give the "
-                                                 "design level as an elevation in metres")
+            raise error(
+                "design",
+                "elevation_m",
+                f"value {z!r} m is outside +-{MAX_ABS_ELEVATION_M:g} m: give the "
+                "design level as an elevation in metres",
+            )
         values["design_elevation_m"] = z
     if "area" in design_table:
         path = _resolve_file(toml_dir, "design", "area", design_table["area"], error)
@@ -206,8 +227,9 @@ def read_handoff(
         key = "area" if "area" in design_table else "simulations"
         raise error("design", key, "[design] has no elevation_m: give the design level, e.g. elevation_m = 312.5")
     if "simulations" in design_table:
-        values["simulations"] = int(_number(error, "design", "simulations", design_table["simulations"],
-                                            minimum=MIN_SIMULATIONS, integer=True))
+        values["simulations"] = int(
+            _number(error, "design", "simulations", design_table["simulations"], minimum=MIN_SIMULATIONS, integer=True)
+        )
     if "seed" in design_table:
         values["seed"] = int(_number(error, "design", "seed", design_table["seed"], minimum=0, integer=True))
     if "corridor_m" in sections_table:
@@ -224,8 +246,12 @@ def read_handoff(
         names = sections_table["alignment"]
         names = [names] if isinstance(names, str) else names
         if not isinstance(names, list) or not names:
-            raise error("sections", "alignment", f"value {names!r} is {_type_name(names)}; expected a file name in "
-                                                 'quotes or a list of them, e.g. ["axis.csv", "ramp.csv"]')
+            raise error(
+                "sections",
+                "alignment",
+                f"value {names!r} is {_type_name(names)}; expected a file name in "
+                'quotes or a list of them, e.g. ["axis.csv", "ramp.csv"]',
+            )
         alignments, seen = [], set()
         for value in names:
             path = _resolve_file(toml_dir, "sections", "alignment", value, error)
@@ -249,8 +275,9 @@ def _cell_number(table: Any, i: int, name: str, text: str) -> float:
         if math.isfinite(value):
             return value
     if re.match(r"^[+-]?\d*,\d+$", text):
-        raise InputFileError(table.path, table.lines[i], name, f"value {text!r} uses a decimal comma: write "
-                                                               f"{text.replace(',', '.')}")
+        raise InputFileError(
+            table.path, table.lines[i], name, f"value {text!r} uses a decimal comma: write {text.replace(',', '.')}"
+        )
     raise InputFileError(table.path, table.lines[i], name, f"value {text!r} is not a finite number")
 
 
@@ -307,8 +334,9 @@ def read_alignment_csv(
     keep[1:] = np.hypot(np.diff(x), np.diff(y)) > 1e-9
     x, y = x[keep], y[keep]
     if len(x) < 2:
-        raise InputFileError(path, table.lines[-1], None, "an alignment needs at least two distinct vertices (x, y), "
-                                                          "in order along it")
+        raise InputFileError(
+            path, table.lines[-1], None, "an alignment needs at least two distinct vertices (x, y), in order along it"
+        )
     return Alignment(name=name or path.stem, x_m=x, y_m=y, path=path)
 
 
@@ -369,8 +397,11 @@ def read_area(
     if area.is_empty or area.geom_type not in ("Polygon", "MultiPolygon"):
         raise InputFileError(*where, None, "holds no polygon with an area: give the outline of the design area")
     if not area.is_valid:
-        raise InputFileError(*where, None, "the polygon is not valid (its edges cross themselves): list the "
-                                           "vertices in order around the outline")
+        raise InputFileError(
+            *where,
+            None,
+            "the polygon is not valid (its edges cross themselves): list the vertices in order around the outline",
+        )
     if not area.area > 0:
         raise InputFileError(*where, None, "the polygon has no area")
     return area

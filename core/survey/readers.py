@@ -668,9 +668,7 @@ def read_boreholes(
     )
 
 
-def _warn_far_boreholes(
-    table: CsvTable, name: np.ndarray, xw: np.ndarray, yw: np.ndarray, stations: Stations
-) -> None:
+def _warn_far_boreholes(table: CsvTable, name: np.ndarray, xw: np.ndarray, yw: np.ndarray, stations: Stations) -> None:
     sx, sy = np.asarray(stations.x_m, float), np.asarray(stations.y_m, float)
     extent = float(np.hypot(np.ptp(sx), np.ptp(sy)))
     limit = max(extent, 100.0)

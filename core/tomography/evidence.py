@@ -131,6 +131,7 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
     for k in range(layout.n_interfaces):
         best = (best_total, current[k])
         for nu in (1, 2):
+
             def neg(x, k=k, nu=nu):
                 x = np.clip(x, lo, hi)
                 trial = list(current)
@@ -139,9 +140,17 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
                 return -v if np.isfinite(v) else 1e300
 
             x0 = np.clip(np.log([current[k].sigma_m, current[k].range_m]), lo, hi)
-            res = minimize(neg, x0, method="Nelder-Mead",
-                           options={"xatol": 0.02, "fatol": 0.05, "maxfev": 80, "initial_simplex":
-                                    x0 + np.array([[0.0, 0.0], [0.7, 0.0], [0.0, 0.7]])})
+            res = minimize(
+                neg,
+                x0,
+                method="Nelder-Mead",
+                options={
+                    "xatol": 0.02,
+                    "fatol": 0.05,
+                    "maxfev": 80,
+                    "initial_simplex": x0 + np.array([[0.0, 0.0], [0.7, 0.0], [0.0, 0.7]]),
+                },
+            )
             val = -float(res.fun)
             if val > best[0]:
                 x = np.clip(res.x, lo, hi)
@@ -149,7 +158,8 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
         if best[1] is not current[k]:
             p = best[1]
             current[k] = replace(
-                p, source=f"most probable given the picks (type-II maximum likelihood, log evidence "
+                p,
+                source=f"most probable given the picks (type-II maximum likelihood, log evidence "
                 f"{best[0] - best_total:+.1f} over the previous prior): Matern nu = {p.nu}, sigma {p.sigma_m:.3g} m, "
                 f"range {p.range_m:.1f} m; started from {priors[k].source}",
             )

@@ -159,9 +159,13 @@ class BoreholeTies:
     def from_boreholes(cls, boreholes, reflector: str) -> BoreholeTies:
         """Ties of one reflector from a :class:`~rockhead.core.survey.model.Boreholes` table."""
         n = len(boreholes)
-        return cls(np.asarray(boreholes.x_m, float), np.asarray(boreholes.y_m, float),
-                   np.asarray(boreholes.elevation_m, float), np.asarray(boreholes.sigma_m, float),
-                   np.full(n, str(reflector), dtype=object))
+        return cls(
+            np.asarray(boreholes.x_m, float),
+            np.asarray(boreholes.y_m, float),
+            np.asarray(boreholes.elevation_m, float),
+            np.asarray(boreholes.sigma_m, float),
+            np.full(n, str(reflector), dtype=object),
+        )
 
 
 @dataclass(frozen=True)
@@ -223,8 +227,10 @@ class ModelChoice:
             )
         text = "; ".join(parts) + f". BIC {self.bic[self.chosen]:.1f} (n = {self.n_picks} picks)"
         if low != self.chosen:
-            text += (f"; the lowest, {self.bic[low]:.1f} for ({', '.join(self.candidates[low])}), is within "
-                     f"{BIC_STRONG:g} (not strong evidence, Kass & Raftery 1995), so the simpler model is kept")
+            text += (
+                f"; the lowest, {self.bic[low]:.1f} for ({', '.join(self.candidates[low])}), is within "
+                f"{BIC_STRONG:g} (not strong evidence, Kass & Raftery 1995), so the simpler model is kept"
+            )
         else:
             others = np.delete(self.bic, low)
             if others.size:
@@ -478,12 +484,25 @@ def estimate_layered(
     threads against 0.015 s without, at a load of 8 on 2 cores).
     """
     with SingleThreadedBlas():
-        return _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec, order, boreholes,
-                         settings, ground, progress)
+        return _estimate(
+            source_xyz,
+            receiver_xyz,
+            time_s,
+            sigma_s,
+            reflector,
+            start,
+            spec,
+            order,
+            boreholes,
+            settings,
+            ground,
+            progress,
+        )
 
 
-def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec, order, boreholes, settings,
-              ground, progress):
+def _estimate(
+    source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec, order, boreholes, settings, ground, progress
+):
     progress = progress or NullProgress()
     cfg = settings or LayeredSettings()
     S = np.asarray(source_xyz, float)
@@ -554,11 +573,15 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
         # relief smaller than the points' own scatter cannot be told from it: the prior allows at
         # least that much (a noisy variogram otherwise makes a stiff, over-confident interface),
         # smooth at the scale of the site (relief hidden under noise has no resolved range)
-        if cfg.priors is None and prior.sigma_m ** 2 < prior.nugget_m2:
+        if cfg.priors is None and prior.sigma_m**2 < prior.nugget_m2:
             site = float(np.hypot(np.ptp(x), np.ptp(y))) / 3
-            prior = replace(prior, sigma_m=math.sqrt(prior.nugget_m2), range_m=max(prior.range_m, site),
-                            source=prior.source + f"; relief below the points' scatter: sigma raised to the "
-                            f"nugget's {math.sqrt(prior.nugget_m2):.3g} m, range at least a third of the extent")
+            prior = replace(
+                prior,
+                sigma_m=math.sqrt(prior.nugget_m2),
+                range_m=max(prior.range_m, site),
+                source=prior.source + f"; relief below the points' scatter: sigma raised to the "
+                f"nugget's {math.sqrt(prior.nugget_m2):.3g} m, range at least a third of the extent",
+            )
         # the node spacing must resolve the prior; a range below two node spacings is raised to it
         if prior.range_m < 2 * node_spec.cell_size_m:
             floor = 2 * node_spec.cell_size_m
@@ -589,8 +612,9 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
                 bh_sigma_m=np.asarray(bh.sigma_m, float)[keep],
                 bh_interface=np.array([names.index(r) for r in bref[keep]], np.int64),
             )
-    data = JointData(S[pick], R[pick], t[pick], sig[pick], iface[pick], Q, beta0, sigma_beta, theta0,
-                     sigma_theta, **bh_kw)
+    data = JointData(
+        S[pick], R[pick], t[pick], sig[pick], iface[pick], Q, beta0, sigma_beta, theta0, sigma_theta, **bh_kw
+    )
 
     # start: the GMRF conditional mean of each interface given its points
     u0 = np.zeros((K, node_spec.nx * node_spec.ny))
@@ -598,8 +622,9 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
         x, y, z, s = start.points[k]
         ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(z) & np.isfinite(s)
         trend_pts = trend_basis(x[ok], y[ok], centre_xy) @ beta0[k]
-        u0[k] = _condition_on_points(node_spec, Q[k], x[ok], y[ok], z[ok] - trend_pts,
-                                     s[ok] ** 2 + priors[k].nugget_m2 + 1e-6)
+        u0[k] = _condition_on_points(
+            node_spec, Q[k], x[ok], y[ok], z[ok] - trend_pts, s[ok] ** 2 + priors[k].nugget_m2 + 1e-6
+        )
     state = JointState(u0, beta0.copy(), theta0.copy())
 
     def layout_for(complexities):
@@ -608,16 +633,23 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
 
     hist_all = []
     layout = layout_for(("constant",) * K)
-    progress.info(f"joint estimate: {pick.size} picks, {K} interfaces on {node_spec.nx} x {node_spec.ny} nodes "
-                  f"of {node_spec.cell_size_m:g} m")
+    progress.info(
+        f"joint estimate: {pick.size} picks, {K} interfaces on {node_spec.nx} x {node_spec.ny} nodes "
+        f"of {node_spec.cell_size_m:g} m"
+    )
     state = forward(layout, data, state)
     if np.sum(state.paths.valid) < 3 * K + 4:
         raise InversionError(
             f"only {int(np.sum(state.paths.valid))} of {pick.size} picks can be modelled through the start model; "
             "check the picks and the reflector order"
         )
-    kw = dict(robust_scale=cfg.robust_scale, reject_sigma=cfg.reject_sigma, max_iterations=cfg.max_iterations,
-              tolerance_m=cfg.tolerance_m, progress=progress)
+    kw = dict(
+        robust_scale=cfg.robust_scale,
+        reject_sigma=cfg.reject_sigma,
+        max_iterations=cfg.max_iterations,
+        tolerance_m=cfg.tolerance_m,
+        progress=progress,
+    )
     # intermediate stages only need to come close: their result starts the next stage
     kw_rough = dict(kw, tolerance_m=5 * cfg.tolerance_m)
     # continuation: constant layers first (interfaces settle), then the gradients from zero
@@ -640,12 +672,13 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
         thick_now = np.maximum(np.array(tops) - np.array(mean_z), 1.0)
         gz0 = -0.25 * state.theta[:, 0] / thick_now
         tries = []
-        for g_start in ((0.0 * gz0, gz0) if layout.free[:, 3].any() else (0.0 * gz0,)):
+        for g_start in (0.0 * gz0, gz0) if layout.free[:, 3].any() else (0.0 * gz0,):
             trial = state.copy()
             trial.theta[:, 3] = np.where(layout.free[:, 3], g_start, 0.0)
             trial = forward(layout, data, trial, start=state.paths.point_xyz[..., :2])
-            trial, h = gauss_newton(layout, data, trial, label=f"joint estimate ({', '.join(stage)})",
-                                    **(kw_rough if fixed is None else kw))
+            trial, h = gauss_newton(
+                layout, data, trial, label=f"joint estimate ({', '.join(stage)})", **(kw_rough if fixed is None else kw)
+            )
             tries.append((h.objective_history[-1], trial, h))
         _, state, h = min(tries, key=lambda item: item[0])
         hist_all.append(h)
@@ -668,8 +701,9 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
     scale = 1.0
     if chi2 > 1.0:
         scale = math.sqrt(chi2)
-        state, h = gauss_newton(layout, data, state, sigma_scale=scale,
-                                label=f"joint estimate (pick errors x {scale:.2f})", **kw)
+        state, h = gauss_newton(
+            layout, data, state, sigma_scale=scale, label=f"joint estimate (pick errors x {scale:.2f})", **kw
+        )
         hist_all.append(h)
         post = posterior(layout, data, state, sigma_scale=scale)
     check_cancel(progress)
@@ -695,10 +729,17 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
     sd[layout.free] = np.sqrt(np.maximum(np.diag(Cth), 0.0))
     layers = tuple(
         LayerEstimate(
-            "ground" if k == 0 else names[k - 1], names[k],
-            LayerVelocity(float(state.theta[k, 0]), tuple(float(v) for v in state.theta[k, 1:]),
-                          tuple(float(v) for v in vcentre[k]), stage[k]),
-            sd[k], stage[k], float(start.interval_velocity_m_s[k]),
+            "ground" if k == 0 else names[k - 1],
+            names[k],
+            LayerVelocity(
+                float(state.theta[k, 0]),
+                tuple(float(v) for v in state.theta[k, 1:]),
+                tuple(float(v) for v in vcentre[k]),
+                stage[k],
+            ),
+            sd[k],
+            stage[k],
+            float(start.interval_velocity_m_s[k]),
         )
         for k in range(K)
     )
@@ -740,15 +781,36 @@ def _estimate(source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec,
     misfit = np.concatenate([np.asarray(h.misfit_history) for h in hist_all])
     progress.set_progress(100.0)
     return LayeredEstimate(
-        spec=spec, node_spec=node_spec, names=names,
-        elevation_m=np.where(mask, np.nan, elev), sigma_m=np.where(mask, np.nan, sig_cells),
-        elevation_unmasked_m=elev, sigma_unmasked_m=sig_cells, mask=mask, max_sigma_m=limits,
-        node_elevation_m=z_nodes, trend=state.beta.copy(), trend_sigma=tsd, trend_centre_m=centre_xy,
-        layers=layers, choice=choice, priors=tuple(priors),
-        interface=iface, residual_s=resid, weight=weight, rejected=rejected, status=status,
-        used=np.isfinite(resid) & (weight > 0), reflection_xyz_m=refl_xyz, average_velocity_m_s=avg,
-        iterations=int(sum(h.count for h in hist_all)), converged=converged, misfit_history=misfit,
-        chi2_reduced=float(chi2), sigma_scale=float(scale), notes=tuple(notes),
+        spec=spec,
+        node_spec=node_spec,
+        names=names,
+        elevation_m=np.where(mask, np.nan, elev),
+        sigma_m=np.where(mask, np.nan, sig_cells),
+        elevation_unmasked_m=elev,
+        sigma_unmasked_m=sig_cells,
+        mask=mask,
+        max_sigma_m=limits,
+        node_elevation_m=z_nodes,
+        trend=state.beta.copy(),
+        trend_sigma=tsd,
+        trend_centre_m=centre_xy,
+        layers=layers,
+        choice=choice,
+        priors=tuple(priors),
+        interface=iface,
+        residual_s=resid,
+        weight=weight,
+        rejected=rejected,
+        status=status,
+        used=np.isfinite(resid) & (weight > 0),
+        reflection_xyz_m=refl_xyz,
+        average_velocity_m_s=avg,
+        iterations=int(sum(h.count for h in hist_all)),
+        converged=converged,
+        misfit_history=misfit,
+        chi2_reduced=float(chi2),
+        sigma_scale=float(scale),
+        notes=tuple(notes),
     )
 
 

@@ -284,15 +284,20 @@ def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8, nu=None) -> Mat
     s = None if sigma_m is None else np.broadcast_to(np.asarray(sigma_m, float), ok.shape)[ok]
     extent = float(np.hypot(np.ptp(x), np.ptp(y))) if x.size else 0.0
     if x.size < 3 or extent <= 0:
-        return MaternPrior(5.0, max(extent, 50.0) / 3, 0.0,
-                           "fallback: fewer than 3 points (5 m, a third of the extent)")
+        return MaternPrior(
+            5.0, max(extent, 50.0) / 3, 0.0, "fallback: fewer than 3 points (5 m, a third of the extent)"
+        )
     w = None if s is None else 1.0 / np.maximum(s, 1e-3) ** 2
     _, _, res = plane_fit(x, y, z, w)
     var = float(np.var(res)) if res.size > 1 else 1.0
     mean_err = float(np.mean(s**2)) if s is not None else 0.0
     fallback_sigma = math.sqrt(max(var - mean_err, 0.01 * var, 1e-4))
-    fallback = MaternPrior(fallback_sigma, extent / 3, mean_err,
-                           "fallback: too few points for a variogram (the residuals' variance, a third of the extent)")
+    fallback = MaternPrior(
+        fallback_sigma,
+        extent / 3,
+        mean_err,
+        "fallback: too few points for a variogram (the residuals' variance, a third of the extent)",
+    )
     if x.size < min_points:
         return fallback
     ev = experimental_variogram(x, y, res)
@@ -306,7 +311,8 @@ def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8, nu=None) -> Mat
     lo = np.log([1e-8, 1e-8, lag_min])
     hi = np.log([10 * g_top, 100 * g_top, 5 * lag_max])
     fits: dict = {}
-    for smooth in ((1, 2) if nu is None else (int(nu),)):
+    for smooth in (1, 2) if nu is None else (int(nu),):
+
         def resid(p, smooth=smooth):
             c0, s2, rng = np.exp(p)
             gm = c0 + s2 * (1.0 - matern_correlation(h, rng, smooth))
@@ -326,7 +332,9 @@ def fit_matern(x_m, y_m, z_m, sigma_m=None, min_points: int = 8, nu=None) -> Mat
     c0, s2, rng = np.exp(fits[best].x)
     costs = ", ".join(f"nu = {k}: {2 * fits[k].cost:.3g}" for k in sorted(fits))
     return MaternPrior(
-        math.sqrt(s2), float(rng), float(c0),
+        math.sqrt(s2),
+        float(rng),
+        float(c0),
         f"Matern (nu = {best}) fit to the variogram of {x.size} points after removing a plane "
         f"(sill {s2:.3g} m2, range {rng:.1f} m, nugget {c0:.3g} m2; weighted misfit {costs})",
         best,

@@ -185,7 +185,11 @@ def path_layout(k: int):
 def _points(model, X, iface, derivatives):
     """Path points (n, m, 3) on their interfaces and, optionally, the slopes and curvatures."""
     vals = interface_values(
-        model.elevation_m, model.spec, X[..., 0], X[..., 1], derivatives=derivatives,
+        model.elevation_m,
+        model.spec,
+        X[..., 0],
+        X[..., 1],
+        derivatives=derivatives,
         surface=np.broadcast_to(iface, X.shape[:-1]),
     )
     z = vals if derivatives == 0 else vals[0]
@@ -210,7 +214,9 @@ def _turning(A, B, th, c):
     """True for paths (rows) with a leg whose arc turns inside its layer."""
     n, nl, _ = A.shape
     turn = leg_turns(
-        A.reshape(-1, 3), B.reshape(-1, 3), np.broadcast_to(th, (n, nl, 4)).reshape(-1, 4),
+        A.reshape(-1, 3),
+        B.reshape(-1, 3),
+        np.broadcast_to(th, (n, nl, 4)).reshape(-1, 4),
         np.broadcast_to(c, (n, nl, 3)).reshape(-1, 3),
     )
     return np.any(turn.reshape(n, nl), axis=1)
@@ -225,7 +231,10 @@ def _flat_start(model, S, R, k):
     u = np.where(X[:, None] > 1e-9, d / np.maximum(X, 1e-300)[:, None], 0.0)
     top = 0.5 * (S[:, 2] + R[:, 2])
     zi = interface_values(
-        model.elevation_m, model.spec, np.repeat(M[:, 0][:, None], k + 1, 1), np.repeat(M[:, 1][:, None], k + 1, 1),
+        model.elevation_m,
+        model.spec,
+        np.repeat(M[:, 0][:, None], k + 1, 1),
+        np.repeat(M[:, 1][:, None], k + 1, 1),
         surface=np.broadcast_to(np.arange(k + 1), (n, k + 1)),
     )
     upper = np.concatenate([top[:, None], zi[:, :-1]], axis=1)
@@ -310,8 +319,9 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             shift = np.where(lam_min < floor, floor - lam_min, 0.0)
             hxx, hyy = hxx + shift, hyy + shift
             det = hxx * hyy - hxy * hxy
-            step = -np.stack([(hyy * gflat[:, 0] - hxy * gflat[:, 1]) / det,
-                              (-hxy * gflat[:, 0] + hxx * gflat[:, 1]) / det], axis=-1)[:, None, :]
+            step = -np.stack(
+                [(hyy * gflat[:, 0] - hxy * gflat[:, 1]) / det, (-hxy * gflat[:, 0] + hxx * gflat[:, 1]) / det], axis=-1
+            )[:, None, :]
         else:
             lam, V = np.linalg.eigh(H)
             lam = np.maximum(lam, floor[:, None])

@@ -84,10 +84,20 @@ class GatherPoints:
 
         key = np.array([f"{a}\x1f{b}" for a, b in zip(gathers.line, gathers.shot)], dtype=object)
         ok = have & (np.asarray(fits.status) == "ok") & np.isfinite(col(points.elevation_m))
-        return cls(key, np.asarray(gathers.reflector).astype(str), col(points.x_m), col(points.y_m),
-                   col(points.ground_m), col(points.depth_m), col(points.sigma_m), np.asarray(fits.t0_s, float),
-                   np.asarray(fits.velocity_m_s, float), np.asarray(fits.se_t0_s, float),
-                   np.asarray(fits.se_velocity_m_s, float), ok)
+        return cls(
+            key,
+            np.asarray(gathers.reflector).astype(str),
+            col(points.x_m),
+            col(points.y_m),
+            col(points.ground_m),
+            col(points.depth_m),
+            col(points.sigma_m),
+            np.asarray(fits.t0_s, float),
+            np.asarray(fits.velocity_m_s, float),
+            np.asarray(fits.se_t0_s, float),
+            np.asarray(fits.se_velocity_m_s, float),
+            ok,
+        )
 
 
 @dataclass(frozen=True)
@@ -169,8 +179,7 @@ def start_from_gathers(points: GatherPoints, order) -> StartModel:
         if run == 0:
             continue
         idx = idx[:run]
-        d = dix_intervals(points.t0_s[idx], points.velocity_m_s[idx], points.se_t0_s[idx],
-                          points.se_velocity_m_s[idx])
+        d = dix_intervals(points.t0_s[idx], points.velocity_m_s[idx], points.se_t0_s[idx], points.se_velocity_m_s[idx])
         if np.any(d.order != np.arange(run)):  # t0 out of the stated order: not a Dix stack
             continue
         for j in range(run):
@@ -202,8 +211,11 @@ def start_from_gathers(points: GatherPoints, order) -> StartModel:
         t0[(key[i], rank[refl[i]])] = float(points.t0_s[i])
     dt_site = np.zeros(K)
     for j in range(K):
-        diffs = [t0[(kk, j)] - (t0[(kk, j - 1)] if j else 0.0)
-                 for (kk, jj) in t0 if jj == j and (j == 0 or (kk, j - 1) in t0)]
+        diffs = [
+            t0[(kk, j)] - (t0[(kk, j - 1)] if j else 0.0)
+            for (kk, jj) in t0
+            if jj == j and (j == 0 or (kk, j - 1) in t0)
+        ]
         positive = [v for v in diffs if v > 0]
         dt_site[j] = float(np.median(positive)) if positive else np.nan
     for j in range(K):
@@ -264,8 +276,10 @@ def robust_site_velocity(velocity_m_s, se_velocity_m_s, status=None):
         usable = np.ones(v.size, bool)
     else:
         s = np.asarray(status)
-        usable = s.ravel() if s.dtype == bool else np.array(
-            [str(x).strip().lower() in ("ok", "fitted", "good", "") for x in s.ravel()]
+        usable = (
+            s.ravel()
+            if s.dtype == bool
+            else np.array([str(x).strip().lower() in ("ok", "fitted", "good", "") for x in s.ravel()])
         )
     ok = usable & np.isfinite(v) & (v > 0) & np.isfinite(se)
     if not ok.any():

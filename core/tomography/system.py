@@ -175,8 +175,9 @@ class JointState:
 
     def copy(self):
         """A copy whose arrays can be changed without touching this state."""
-        return JointState(self.u.copy(), self.beta.copy(), self.theta.copy(), self.paths, self.residual_s,
-                          self.weight, self.rejected)
+        return JointState(
+            self.u.copy(), self.beta.copy(), self.theta.copy(), self.paths, self.residual_s, self.weight, self.rejected
+        )
 
 
 def node_elevations(layout: Layout, u, beta):
@@ -187,14 +188,16 @@ def node_elevations(layout: Layout, u, beta):
 
 
 def model_of(layout: Layout, state: JointState) -> LayeredModel:
-    return LayeredModel(layout.spec, node_elevations(layout, state.u, state.beta), state.theta,
-                        layout.velocity_centre_m)
+    return LayeredModel(
+        layout.spec, node_elevations(layout, state.u, state.beta), state.theta, layout.velocity_centre_m
+    )
 
 
 def forward(layout, data, state, start=None):
     """Trace all picks through the state's model; fills paths and residuals (NaN where not modelled)."""
-    paths = trace_reflections(model_of(layout, state), data.source_xyz, data.receiver_xyz, data.interface,
-                              start_xy=start)
+    paths = trace_reflections(
+        model_of(layout, state), data.source_xyz, data.receiver_xyz, data.interface, start_xy=start
+    )
     state.paths = paths
     state.residual_s = np.where(paths.valid, data.time_s - paths.time_s, np.nan)
     return state
@@ -231,8 +234,9 @@ def borehole_matrix(layout, data):
     s = data.bh_interface
     T = trend_basis(data.bh_xy[:, 0], data.bh_xy[:, 1], layout.centre_xy)
     rows = np.concatenate([np.repeat(np.arange(nb), 16), np.repeat(np.arange(nb), 3)])
-    cols = np.concatenate([(s[:, None] * layout.nn + idx).ravel(),
-                           (layout.n_nodes + 3 * s[:, None] + np.arange(3)[None, :]).ravel()])
+    cols = np.concatenate(
+        [(s[:, None] * layout.nn + idx).ravel(), (layout.n_nodes + 3 * s[:, None] + np.arange(3)[None, :]).ravel()]
+    )
     vals = np.concatenate([w.ravel(), T.ravel()])
     return sp.csr_matrix((vals, (rows, cols)), shape=(nb, layout.n_params))
 
@@ -269,8 +273,9 @@ def jacobian(layout, data, state, sigma_scale=1.0):
         rows.append(nz)
         cols.append(np.full(nz.size, base + c))
         vals.append(d[nz])
-    J = sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
-                      shape=(use.size, layout.n_params))
+    J = sp.csr_matrix(
+        (np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(use.size, layout.n_params)
+    )
     return J, use, sw
 
 
@@ -320,8 +325,9 @@ def objective(layout, data, state, P, B, sigma_scale=1.0, residual=None):
 
 def _factorize(A):
     try:
-        return spla.splu(sp.csc_matrix(A), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                         options={"SymmetricMode": True})
+        return spla.splu(
+            sp.csc_matrix(A), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True}
+        )
     except RuntimeError as err:
         raise InversionError(
             f"the joint normal equations are singular ({err}); the picks and priors do not determine the model"
@@ -345,8 +351,18 @@ def rms_misfit(data, state, sigma_scale=1.0):
     return float(np.sqrt(np.mean((r[m] / (data.sigma_s[m] * sigma_scale)) ** 2))) if m.any() else float("nan")
 
 
-def gauss_newton(layout, data, state, robust_scale=1.5, reject_sigma=4.0, max_iterations=12, tolerance_m=0.02,
-                 sigma_scale=1.0, progress=None, label="joint estimate"):
+def gauss_newton(
+    layout,
+    data,
+    state,
+    robust_scale=1.5,
+    reject_sigma=4.0,
+    max_iterations=12,
+    tolerance_m=0.02,
+    sigma_scale=1.0,
+    progress=None,
+    label="joint estimate",
+):
     """Iterate Gauss-Newton / Levenberg-Marquardt from ``state`` (forward already done); returns (state, Iterations)."""
     P = _prior_blocks(layout, data)
     B = borehole_matrix(layout, data)
@@ -398,8 +414,10 @@ def gauss_newton(layout, data, state, robust_scale=1.5, reject_sigma=4.0, max_it
         if B is not None:
             touched[np.unique(B.indices)] = True
         gx, gy = layout.spec.coords()
-        dzn = delta[:nn_all].reshape(K, layout.nn) + delta[nn_all : nn_all + 3 * K].reshape(K, 3) @ trend_basis(
-            gx, gy, layout.centre_xy).T
+        dzn = (
+            delta[:nn_all].reshape(K, layout.nn)
+            + delta[nn_all : nn_all + 3 * K].reshape(K, 3) @ trend_basis(gx, gy, layout.centre_xy).T
+        )
         dz_max = float(np.max(np.abs(dzn.ravel()[touched[:nn_all]]))) if touched[:nn_all].any() else 0.0
         rel_v = float(np.max(np.abs(dv) / v0_now)) if dv.size else 0.0
         state = reweight(data, trial, robust_scale, reject_sigma, sigma_scale)
@@ -408,9 +426,11 @@ def gauss_newton(layout, data, state, robust_scale=1.5, reject_sigma=4.0, max_it
         hist.objective_history.append(objective(layout, data, state, P, B, sigma_scale))
         hist.change_history.append(alpha * dz_max)
         if progress is not None:
-            progress.info(f"{label}, iteration {it}: rms misfit {hist.misfit_history[-1]:.3f} sigma, largest node "
-                          f"change {alpha * dz_max:.3f} m, velocity change {100 * alpha * rel_v:.2f} % "
-                          f"(step {alpha:g})")
+            progress.info(
+                f"{label}, iteration {it}: rms misfit {hist.misfit_history[-1]:.3f} sigma, largest node "
+                f"change {alpha * dz_max:.3f} m, velocity change {100 * alpha * rel_v:.2f} % "
+                f"(step {alpha:g})"
+            )
         if (alpha * dz_max < tolerance_m and alpha * rel_v < 1e-3) or obj_old - obj_new < 1e-6 * obj_old:
             hist.converged = True
             break

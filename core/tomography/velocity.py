@@ -145,9 +145,7 @@ class LayerVelocity:
 # ---------------------------------------------------------------------------- f(eps)
 
 _N_SERIES = 12
-_SERIES = np.array(
-    [(-1) ** n * factorial(2 * n) / (8**n * factorial(n) ** 2 * (2 * n + 1)) for n in range(_N_SERIES)]
-)
+_SERIES = np.array([(-1) ** n * factorial(2 * n) / (8**n * factorial(n) ** 2 * (2 * n + 1)) for n in range(_N_SERIES)])
 _EPS_SERIES = 0.05  # below: series (truncation ~ 1e-17); above: closed form (cancellation ~ 1e-13)
 
 

@@ -11,5 +11,12 @@ def all_algorithms():
     from .run_survey import RunSurveyAlgorithm
     from .section_alignment import SectionAlongAlignmentAlgorithm
 
-    return [FitGathersAlgorithm(), CombineLinesAlgorithm(), InterpolateSurfaceAlgorithm(), RunSurveyAlgorithm(),
-            MapSheetAlgorithm(), SectionAlongAlignmentAlgorithm(), DesignLevelAlgorithm()]
+    return [
+        FitGathersAlgorithm(),
+        CombineLinesAlgorithm(),
+        InterpolateSurfaceAlgorithm(),
+        RunSurveyAlgorithm(),
+        MapSheetAlgorithm(),
+        SectionAlongAlignmentAlgorithm(),
+        DesignLevelAlgorithm(),
+    ]

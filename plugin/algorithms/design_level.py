@@ -58,24 +58,42 @@ class DesignLevelAlgorithm(ReflectorAlgorithm):
 
     def initAlgorithm(self, config=None):
         self.add_survey_parameters()
-        self.addParameter(QgsProcessingParameterNumber(
-            self.DESIGN_ELEVATION, tr("Design elevation (m, the survey's heights)"),
-            type=QgsProcessingParameterNumber.Double))
-        self.addParameter(QgsProcessingParameterFeatureSource(
-            self.AREA, tr("Design area (polygons; empty: the whole mapped area)"), [QgsProcessing.TypeVectorPolygon],
-            optional=True))
-        sims = QgsProcessingParameterNumber(self.SIMULATIONS, tr("Conditional simulations"),
-                                            type=QgsProcessingParameterNumber.Integer, defaultValue=500)
+        self.addParameter(
+            QgsProcessingParameterNumber(
+                self.DESIGN_ELEVATION,
+                tr("Design elevation (m, the survey's heights)"),
+                type=QgsProcessingParameterNumber.Double,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterFeatureSource(
+                self.AREA,
+                tr("Design area (polygons; empty: the whole mapped area)"),
+                [QgsProcessing.TypeVectorPolygon],
+                optional=True,
+            )
+        )
+        sims = QgsProcessingParameterNumber(
+            self.SIMULATIONS, tr("Conditional simulations"), type=QgsProcessingParameterNumber.Integer, defaultValue=500
+        )
         sims.setMinimum(200)
         self.addParameter(sims)
-        seed = QgsProcessingParameterNumber(self.SEED, tr("Random seed (same seed, same volumes)"),
-                                            type=QgsProcessingParameterNumber.Integer, defaultValue=1)
+        seed = QgsProcessingParameterNumber(
+            self.SEED,
+            tr("Random seed (same seed, same volumes)"),
+            type=QgsProcessingParameterNumber.Integer,
+            defaultValue=1,
+        )
         seed.setMinimum(0)
         self.addParameter(seed)
-        self.addParameter(QgsProcessingParameterRasterDestination(
-            self.PROBABILITY, tr("Probability of rock above the design level")))
-        self.addParameter(QgsProcessingParameterFeatureSink(
-            self.OUTPUT, tr("Rock volume above the design level"), QgsProcessing.TypeVectorPolygon))
+        self.addParameter(
+            QgsProcessingParameterRasterDestination(self.PROBABILITY, tr("Probability of rock above the design level"))
+        )
+        self.addParameter(
+            QgsProcessingParameterFeatureSink(
+                self.OUTPUT, tr("Rock volume above the design level"), QgsProcessing.TypeVectorPolygon
+            )
+        )
 
     def processAlgorithm(self, parameters, context, feedback):
         from ...core.formats.gdalio import write_raster
@@ -100,24 +118,35 @@ class DesignLevelAlgorithm(ReflectorAlgorithm):
         result = None
         with CoreCall(feedback) as call:
             result = compute(survey, progress=progress_for(feedback))
-            design = design_answers(result, z_design, area=area, n_simulations=n_sims, seed=seed,
-                                    progress=progress_for(feedback))
+            design = design_answers(
+                result, z_design, area=area, n_simulations=n_sims, seed=seed, progress=progress_for(feedback)
+            )
         if call.cancelled or result is None:
             return {}
         if design.probability is None:
             raise QgsProcessingException(design.note)
         spec = result.spec
-        write_raster(prob_path, design.probability, spec, survey.crs, unit="",
-                     description=f"P(reflector elevation > {z_design:g} m)")
+        write_raster(
+            prob_path,
+            design.probability,
+            spec,
+            survey.crs,
+            unit="",
+            description=f"P(reflector elevation > {z_design:g} m)",
+        )
         out = {self.PROBABILITY: prob_path}
         if design.volume is None:
             feedback.reportError(design.note, fatalError=False)
             return out
         v = design.volume
-        feedback.pushInfo(tr("Rock volume above {z} m: P10 {p10:.0f}, P50 {p50:.0f}, P90 {p90:.0f} m³.").format(
-            z=z_design, p10=v.p10_m3, p50=v.p50_m3, p90=v.p90_m3))
+        feedback.pushInfo(
+            tr("Rock volume above {z} m: P10 {p10:.0f}, P50 {p50:.0f}, P90 {p90:.0f} m³.").format(
+                z=z_design, p10=v.p10_m3, p50=v.p50_m3, p90=v.p90_m3
+            )
+        )
         if design.note:
             feedback.pushWarning(design.note)
-        out[self.OUTPUT] = write_core_layer(self, parameters, self.OUTPUT, context, design_volumes_layer(design), crs,
-                                            feedback)
+        out[self.OUTPUT] = write_core_layer(
+            self, parameters, self.OUTPUT, context, design_volumes_layer(design), crs, feedback
+        )
         return out

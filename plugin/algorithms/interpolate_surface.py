@@ -71,8 +71,12 @@ def raster_provenance(crs, method: str, source_name: str):
 
     vertical = crs.sub_crs_list[1] if crs.is_compound and len(crs.sub_crs_list) > 1 else None
     return Provenance(
-        software=f"Rockhead {__version__}", survey=f"points of the layer '{source_name}'", method=method,
-        date="not stated", timestamp=product_timestamp(None), crs=crs_label(horizontal_crs(crs)),
+        software=f"Rockhead {__version__}",
+        survey=f"points of the layer '{source_name}'",
+        method=method,
+        date="not stated",
+        timestamp=product_timestamp(None),
+        crs=crs_label(horizontal_crs(crs)),
         vertical_datum=vertical_label(vertical),
     )
 
@@ -225,7 +229,13 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
                     neighbours=neighbours, variogram_model=variogram, max_distance_m=max_distance, trend=trend
                 )
                 surf, _diag = grid_with_trend(
-                    x, y, z, sigma if sigma_field else np.zeros_like(z), spec, settings, method,
+                    x,
+                    y,
+                    z,
+                    sigma if sigma_field else np.zeros_like(z),
+                    spec,
+                    settings,
+                    method,
                     progress_for(feedback),
                 )
             except ValueError as err:  # the surface module's input checks
@@ -240,11 +250,21 @@ class InterpolateSurfaceAlgorithm(ReflectorAlgorithm):
         with CoreCall(feedback):
             target = pyproj_crs(crs)
             prov = raster_provenance(target, method, source.sourceName())
-            for path, grid, what in ((out, surf.z, "reflector elevation (m, up positive)"),
-                                     (std_out, surf.std, "standard deviation of the reflector surface (m)")):
+            for path, grid, what in (
+                (out, surf.z, "reflector elevation (m, up positive)"),
+                (std_out, surf.std, "standard deviation of the reflector surface (m)"),
+            ):
                 if path:  # the GDAL driver follows the file's extension (.tif: cloud-optimised GeoTIFF)
-                    write_raster(path, grid, spec, target, metadata=prov.items(), description=what,
-                                 timestamp=prov.timestamp, software=prov.software)
+                    write_raster(
+                        path,
+                        grid,
+                        spec,
+                        target,
+                        metadata=prov.items(),
+                        description=what,
+                        timestamp=prov.timestamp,
+                        software=prov.software,
+                    )
             lines = contours_layer(spec.x_centres, spec.y_centres, elevation_m=surf.z, elevation_interval_m=interval)
         results = {self.OUTPUT: out}
         if std_out:

@@ -49,8 +49,15 @@ PANEL_X_MM = 316.0
 PANEL_W_MM = 96.0
 
 #: Layers of a results folder on each page (GeoPackage tables; the raster first is the page's subject).
-DEPTH_PAGE = ("reflector_depth.tif", "contours", "shots", "reflector_points", "boreholes", "dip_measurements",
-              "surface_dips")
+DEPTH_PAGE = (
+    "reflector_depth.tif",
+    "contours",
+    "shots",
+    "reflector_points",
+    "boreholes",
+    "dip_measurements",
+    "surface_dips",
+)
 SIGMA_PAGE = ("depth_sigma.tif", "shots", "reflector_points", "boreholes")
 PROBABILITY_PAGE = ("probability_above_design.tif", "shots", "reflector_points", "boreholes")
 
@@ -118,8 +125,10 @@ def build_layout(project, out_dir, layers_by_name, crs, info, title=None):
     layout.initializeDefaults()
     layout.setName(title or "Rockhead map sheet")
     keep = []  # legend layer trees must outlive the export
-    pages = [(tr("Depth to the reflector below ground"), DEPTH_PAGE),
-             (tr("Standard deviation of the mapped surface"), SIGMA_PAGE)]
+    pages = [
+        (tr("Depth to the reflector below ground"), DEPTH_PAGE),
+        (tr("Standard deviation of the mapped surface"), SIGMA_PAGE),
+    ]
     if "probability_above_design.tif" in layers_by_name:  # a run with a [design] level
         level = info.get("design_elevation_m", "")
         pages.append((tr("Probability that the reflector is above {level} m").format(level=level), PROBABILITY_PAGE))
@@ -196,11 +205,31 @@ def build_layout(project, out_dir, layers_by_name, crs, info, title=None):
             arrow.setLinkedMap(m)  # rotates with the map: grid north up
             _place(arrow, layout, PANEL_X_MM + 80.0, 126.0, 16.0, 20.0, k)
         _label(layout, tr("N: grid north"), PANEL_X_MM + 74.0, 146.0, 26.0, 5.0, k, size=7)
-        _label(layout, "\n".join(CAUTION_LINES), PANEL_X_MM, 154.0, PANEL_W_MM, 32.0, k, size=7.5, frame=True,
-               background="#fff4d6")
+        _label(
+            layout,
+            "\n".join(CAUTION_LINES),
+            PANEL_X_MM,
+            154.0,
+            PANEL_W_MM,
+            32.0,
+            k,
+            size=7.5,
+            frame=True,
+            background="#fff4d6",
+        )
         block = "\n".join(f"{a}: {b}" for a, b in facts)
-        _label(layout, f"{page_title} (sheet {k + 1} of {len(pages)})", PANEL_X_MM, 190.0, PANEL_W_MM, 10.0, k,
-               size=10, bold=True, frame=True)
+        _label(
+            layout,
+            f"{page_title} (sheet {k + 1} of {len(pages)})",
+            PANEL_X_MM,
+            190.0,
+            PANEL_W_MM,
+            10.0,
+            k,
+            size=10,
+            bold=True,
+            frame=True,
+        )
         _label(layout, block, PANEL_X_MM, 200.0, PANEL_W_MM, 84.0, k, size=8, frame=True)
     return layout, keep
 
@@ -224,11 +253,18 @@ class MapSheetAlgorithm(ReflectorAlgorithm):
     )
 
     def initAlgorithm(self, config=None):
-        self.addParameter(QgsProcessingParameterFile(
-            self.RESULTS, tr("Results folder (written by Run whole survey)"),
-            behavior=QgsProcessingParameterFile.Folder))
-        self.addParameter(QgsProcessingParameterFileDestination(self.OUTPUT, tr("Map sheet (PDF)"),
-                                                                fileFilter=tr("PDF files (*.pdf)")))
+        self.addParameter(
+            QgsProcessingParameterFile(
+                self.RESULTS,
+                tr("Results folder (written by Run whole survey)"),
+                behavior=QgsProcessingParameterFile.Folder,
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterFileDestination(
+                self.OUTPUT, tr("Map sheet (PDF)"), fileFilter=tr("PDF files (*.pdf)")
+            )
+        )
 
     def processAlgorithm(self, parameters, context, feedback):
         from ..styling import load_results
@@ -236,8 +272,11 @@ class MapSheetAlgorithm(ReflectorAlgorithm):
         out_dir = self.parameterAsFile(parameters, self.RESULTS, context)
         pdf = self.parameterAsFileOutput(parameters, self.OUTPUT, context)
         if not out_dir or not os.path.isfile(os.path.join(out_dir, "reflector_depth.tif")):
-            raise QgsProcessingException(tr("'{path}' holds no results of Run whole survey (reflector_depth.tif "
-                                            "is missing).").format(path=out_dir))
+            raise QgsProcessingException(
+                tr("'{path}' holds no results of Run whole survey (reflector_depth.tif is missing).").format(
+                    path=out_dir
+                )
+            )
         info = run_info(out_dir)
         project = QgsProject()  # a private project: the user's is left as it is
         group = load_results(out_dir, project)
@@ -260,8 +299,11 @@ class MapSheetAlgorithm(ReflectorAlgorithm):
         status = exporter.exportToPdf(pdf, settings)
         del keep
         if status != QgsLayoutExporter.Success:
-            raise QgsProcessingException(tr("The map sheet could not be exported to '{path}' ({err}).").format(
-                path=pdf, err=exporter.errorMessage() if hasattr(exporter, "errorMessage") else status))
+            raise QgsProcessingException(
+                tr("The map sheet could not be exported to '{path}' ({err}).").format(
+                    path=pdf, err=exporter.errorMessage() if hasattr(exporter, "errorMessage") else status
+                )
+            )
         project.removeAllMapLayers()
         feedback.setProgress(100)
         return {self.OUTPUT: pdf}

@@ -64,17 +64,30 @@ class SectionAlongAlignmentAlgorithm(ReflectorAlgorithm):
 
     def initAlgorithm(self, config=None):
         self.add_survey_parameters()
-        self.addParameter(QgsProcessingParameterFeatureSource(
-            self.ALIGNMENT, tr("Alignment (line layer; one section per line)"), [QgsProcessing.TypeVectorLine]))
-        self.addParameter(QgsProcessingParameterField(
-            self.NAME_FIELD, tr("Alignment name field (optional)"), parentLayerParameterName=self.ALIGNMENT,
-            optional=True))
-        corridor = QgsProcessingParameterNumber(self.CORRIDOR, tr("Corridor width (m), centred on the alignment"),
-                                                type=QgsProcessingParameterNumber.Double, defaultValue=25.0)
+        self.addParameter(
+            QgsProcessingParameterFeatureSource(
+                self.ALIGNMENT, tr("Alignment (line layer; one section per line)"), [QgsProcessing.TypeVectorLine]
+            )
+        )
+        self.addParameter(
+            QgsProcessingParameterField(
+                self.NAME_FIELD,
+                tr("Alignment name field (optional)"),
+                parentLayerParameterName=self.ALIGNMENT,
+                optional=True,
+            )
+        )
+        corridor = QgsProcessingParameterNumber(
+            self.CORRIDOR,
+            tr("Corridor width (m), centred on the alignment"),
+            type=QgsProcessingParameterNumber.Double,
+            defaultValue=25.0,
+        )
         corridor.setMinimum(0.01)
         self.addParameter(corridor)
-        self.addParameter(QgsProcessingParameterEnum(self.FORMAT, tr("Sheet format"), options=list(FORMATS),
-                                                     defaultValue=0))
+        self.addParameter(
+            QgsProcessingParameterEnum(self.FORMAT, tr("Sheet format"), options=list(FORMATS), defaultValue=0)
+        )
         self.addParameter(QgsProcessingParameterFolderDestination(self.OUTPUT, tr("Output folder")))
         self.addOutput(QgsProcessingOutputMultipleLayers(self.FILES, tr("Section files")))
 
@@ -107,8 +120,10 @@ class SectionAlongAlignmentAlgorithm(ReflectorAlgorithm):
                 if feedback.isCanceled():
                     break
                 if len(vertices) < 2:
-                    feedback.reportError(tr("Alignment '{name}' has fewer than two vertices: skipped.").format(
-                        name=name), fatalError=False)
+                    feedback.reportError(
+                        tr("Alignment '{name}' has fewer than two vertices: skipped.").format(name=name),
+                        fatalError=False,
+                    )
                     continue
                 section = section_along(result, name, vertices, corridor, title=f"alignment {name}")
                 sheet, table = section_files(result, section, fmt, info)
@@ -117,8 +132,9 @@ class SectionAlongAlignmentAlgorithm(ReflectorAlgorithm):
                     tmp.write_bytes(sheet)
                 write_csv(f"{stem}.csv", table)
                 files += [f"{stem}.{fmt}", f"{stem}.csv"]
-                feedback.pushInfo(tr("Section {name}: {n} boreholes in the corridor.").format(
-                    name=name, n=len(section.boreholes)))
+                feedback.pushInfo(
+                    tr("Section {name}: {n} boreholes in the corridor.").format(name=name, n=len(section.boreholes))
+                )
         if call.cancelled:
             return {}
         return {self.OUTPUT: out_dir, self.FILES: files}

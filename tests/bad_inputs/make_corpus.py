@@ -796,7 +796,6 @@ def boreholes_sigma_zero(s):
     return r"^boreholes\.csv, line 2, field 'sigma_m': sigma '0' m must be > 0"
 
 
-
 # ----------------------------------------------------------------- hand-off settings ([design], [sections])
 
 AXIS_CSV = "x,y\n499970.000,5499990.000\n500030.000,5500010.000\n"

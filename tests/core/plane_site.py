@@ -55,8 +55,9 @@ class PlaneSite:
     @property
     def plane(self):
         """(normal, d) of the reflector plane (local coordinates)."""
-        return forward.plane_through_point([0.0, 0.0, self.ground_m - self.depth_m], self.dip_deg,
-                                           self.dip_direction_deg)
+        return forward.plane_through_point(
+            [0.0, 0.0, self.ground_m - self.depth_m], self.dip_deg, self.dip_direction_deg
+        )
 
     def reflector(self, x, y):
         """Reflector elevation (m) at local x, y."""

@@ -29,8 +29,13 @@ def _levin_vnmo(beta_deg):
 def cmp_run(tmp_path_factory):
     # two lines on level ground: along the dip direction and 50 degrees off it; receivers every
     # 2 m, a shot every 4 stations (8 m), so shot spacing / midpoint spacing = 8
-    site = PlaneSite(dip_deg=DIP_DEG, dip_direction_deg=DIP_DIR_DEG, velocity_m_s=V_M_S, depth_m=30.0,
-                     lines=[("D", (0.0, 0.0), DIP_DIR_DEG, 97), ("E", (0.0, 0.0), DIP_DIR_DEG + 50.0, 97)])
+    site = PlaneSite(
+        dip_deg=DIP_DEG,
+        dip_direction_deg=DIP_DIR_DEG,
+        velocity_m_s=V_M_S,
+        depth_m=30.0,
+        lines=[("D", (0.0, 0.0), DIP_DIR_DEG, 97), ("E", (0.0, 0.0), DIP_DIR_DEG + 50.0, 97)],
+    )
     path = write_site(tmp_path_factory.mktemp("cmp"), site, processing='gather = "cmp"')
     survey = load_survey(path)
     fit = fit_step(survey)

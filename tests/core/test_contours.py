@@ -129,8 +129,12 @@ def _smallest_step_not_below(raw):
     return next(s for s in steps if s >= raw * (1 - 1e-12))  # 1e-12: the documented rounding allowance
 
 
-EDGES = [float(f"{m}e{k}") * f for k in range(-8, 9) for m in (1, 2, 5)
-         for f in (1.0, 1 + 1e-12, 1 - 1e-12, 1 + 1.1e-12, 1 - 1.1e-12, 1.3, 0.8)]
+EDGES = [
+    float(f"{m}e{k}") * f
+    for k in range(-8, 9)
+    for m in (1, 2, 5)
+    for f in (1.0, 1 + 1e-12, 1 - 1e-12, 1 + 1.1e-12, 1 - 1.1e-12, 1.3, 0.8)
+]
 
 
 def test_nice_interval_is_the_enumerated_step(rng):

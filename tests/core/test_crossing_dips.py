@@ -35,8 +35,12 @@ def _azimuth_error(a, b):
 )
 def test_crossing_dip_on_sloping_ground_is_unbiased(tmp_path, dip_deg, angle_deg):
     # ground sloping 12 % east and 8 % north (receivers up to 8 m above or below the shot)
-    site = PlaneSite(dip_deg=dip_deg, dip_direction_deg=120.0, ground_slope=(0.12, 0.08),
-                     lines=[("A", (0.0, 0.0), 20.0, 97), ("B", (10.0, 5.0), 20.0 + angle_deg, 97)])
+    site = PlaneSite(
+        dip_deg=dip_deg,
+        dip_direction_deg=120.0,
+        ground_slope=(0.12, 0.08),
+        lines=[("A", (0.0, 0.0), 20.0, 97), ("B", (10.0, 5.0), 20.0 + angle_deg, 97)],
+    )
     survey = load_survey(write_site(tmp_path, site))
     fit = fit_step(survey)
     dips, _ = dips_step(survey, fit)
@@ -50,8 +54,10 @@ def test_crossing_dip_on_sloping_ground_is_unbiased(tmp_path, dip_deg, angle_deg
     # in dip and 0.2-0.9 deg in dip direction when written
     first = combine_lines(fit.gathers, fit.fits, min_angle_deg=30.0)
     k = first.status == "ok"
-    worst = max(np.max(np.abs(first.dip_deg[k] - dip_deg)),
-                np.max(np.abs(_azimuth_error(first.dip_direction_deg[k], 120.0))) / 10.0)
+    worst = max(
+        np.max(np.abs(first.dip_deg[k] - dip_deg)),
+        np.max(np.abs(_azimuth_error(first.dip_direction_deg[k], 120.0))) / 10.0,
+    )
     assert worst > 1e-2
 
 
@@ -59,10 +65,22 @@ def test_crossing_dip_on_sloping_ground_is_unbiased(tmp_path, dip_deg, angle_deg
 def bowl(tmp_path_factory):
     # four lines in a # pattern crossing at (+-40, +-40); a bowl of radius 1,000 m centred off the
     # site on a 3-degree plane, 25 m deep: the dip changes by 2.7 deg over the 48 m search radius
-    lines = [("E1", (0.0, -40.0), 90.0, 101), ("E2", (0.0, 40.0), 90.0, 101),
-             ("N1", (-40.0, 0.0), 0.0, 101), ("N2", (40.0, 0.0), 0.0, 101)]
-    site = PlaneSite(dip_deg=3.0, dip_direction_deg=120.0, depth_m=25.0, bowl_radius_m=1000.0,
-                     bowl_centre=(-60.0, 30.0), ground_slope=(0.03, -0.02), lines=lines, sigma_ms=0.1)
+    lines = [
+        ("E1", (0.0, -40.0), 90.0, 101),
+        ("E2", (0.0, 40.0), 90.0, 101),
+        ("N1", (-40.0, 0.0), 0.0, 101),
+        ("N2", (40.0, 0.0), 0.0, 101),
+    ]
+    site = PlaneSite(
+        dip_deg=3.0,
+        dip_direction_deg=120.0,
+        depth_m=25.0,
+        bowl_radius_m=1000.0,
+        bowl_centre=(-60.0, 30.0),
+        ground_slope=(0.03, -0.02),
+        lines=lines,
+        sigma_ms=0.1,
+    )
     survey = load_survey(write_site(tmp_path_factory.mktemp("bowl"), site))
     fit = fit_step(survey)
     return site, survey, fit, dips_step(survey, fit)[0]
@@ -106,8 +124,12 @@ def test_crossing_dip_is_the_local_dip_of_a_curved_reflector(bowl):
 
 @pytest.mark.slow  # a whole computation (end to end)
 def test_run_reports_the_crossing_dips(tmp_path):
-    site = PlaneSite(dip_deg=8.0, dip_direction_deg=120.0, ground_slope=(0.12, 0.08),
-                     lines=[("A", (0.0, 0.0), 20.0, 97), ("B", (10.0, 5.0), 90.0, 97)])
+    site = PlaneSite(
+        dip_deg=8.0,
+        dip_direction_deg=120.0,
+        ground_slope=(0.12, 0.08),
+        lines=[("A", (0.0, 0.0), 20.0, 97), ("B", (10.0, 5.0), 90.0, 97)],
+    )
     r = compute(load_survey(write_site(tmp_path, site)), method="kriging")
     ok = r.dips.status == "ok"
     assert ok.sum() == 1 and r.dips.lines[ok][0] == "A,B"

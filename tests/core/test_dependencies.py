@@ -49,8 +49,12 @@ def _third_party_imports(folder: Path) -> set:
         for node in ast.walk(tree):
             found |= set(_names(node))
             if isinstance(node, ast.Try):
-                carries_on = [h for h in node.handlers if "ImportError" in ast.dump(h.type or ast.Name("x"))
-                              and not any(isinstance(n, ast.Raise) for n in ast.walk(h))]
+                carries_on = [
+                    h
+                    for h in node.handlers
+                    if "ImportError" in ast.dump(h.type or ast.Name("x"))
+                    and not any(isinstance(n, ast.Raise) for n in ast.walk(h))
+                ]
                 if carries_on:
                     optional |= {n for stmt in node.body for sub in ast.walk(stmt) for n in _names(sub)}
     return (found - optional) - stdlib
@@ -63,8 +67,9 @@ def _requirement_name(spec: str) -> str:
 
 
 def test_pyproject_requires_every_package_the_core_imports():
-    declared = {_requirement_name(d) for d in tomllib.loads((REPO / "pyproject.toml").read_text())["project"][
-        "dependencies"]}
+    declared = {
+        _requirement_name(d) for d in tomllib.loads((REPO / "pyproject.toml").read_text())["project"]["dependencies"]
+    }
     imported = _third_party_imports(REPO / "core") - {"osgeo"}  # osgeo: inside QGIS, see the next test
     assert {DISTRIBUTIONS.get(m, m).lower() for m in imported} <= declared
     assert GDAL_ON_PYPI <= declared
@@ -91,8 +96,13 @@ def _run_cli(tmp_path, shim, *args):
     env = dict(os.environ)
     parent = str(Path(rockhead.__path__[0]).parent)  # the link folder made by conftest
     env["PYTHONPATH"] = os.pathsep.join([str(shim), parent])
-    return subprocess.run([sys.executable, "-m", "rockhead.core.cli", *map(str, args)], capture_output=True,
-                          text=True, env=env, timeout=600)
+    return subprocess.run(
+        [sys.executable, "-m", "rockhead.core.cli", *map(str, args)],
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=600,
+    )
 
 
 @pytest.mark.slow  # the command line in a child process

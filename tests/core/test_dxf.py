@@ -54,9 +54,7 @@ def _expected(layer, kind):
     field = "elevation_m" if kind == "elevation" else "depth_m"
     return [
         (g, float(v), bool(ix))
-        for g, k, v, ix in zip(
-            layer.geometries, layer.fields["kind"], layer.fields[field], layer.fields["index"]
-        )
+        for g, k, v, ix in zip(layer.geometries, layer.fields["kind"], layer.fields[field], layer.fields["index"])
         if k == kind
     ]
 

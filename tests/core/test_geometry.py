@@ -76,9 +76,7 @@ def survey_over_plane(
             cols["line"] += [name] * len(rec)
             cols["shot"] += [stations.station[js]] * len(rec)
             cols["receiver"] += list(stations.station[rec])
-            cols["t"] += list(
-                forward.image_source_traveltime(xyz[js], xyz[rec], normal, offset_m, velocity_m_s)
-            )
+            cols["t"] += list(forward.image_source_traveltime(xyz[js], xyz[rec], normal, offset_m, velocity_m_s))
     t = np.array(cols["t"])
     if noise_s:
         t = t + rng.normal(0.0, noise_s, len(t))
@@ -170,17 +168,13 @@ def test_crooked_line_polyline_and_projection():
     px, py = np.array([10.0, 65.0, 58.0]), np.array([-3.0, 50.0, 2.0])
     chain, off = f.locate(px, py)
     np.testing.assert_allclose(chain, [f.polyline.project(Point(a, b)) for a, b in zip(px, py)], atol=1e-9)
-    np.testing.assert_allclose(
-        np.abs(off), [f.polyline.distance(Point(a, b)) for a, b in zip(px, py)], atol=1e-9
-    )
+    np.testing.assert_allclose(np.abs(off), [f.polyline.distance(Point(a, b)) for a, b in zip(px, py)], atol=1e-9)
     assert off[0] > 0 and off[1] > 0  # right of the direction of travel
 
 
 def test_line_frame_errors_name_the_station():
     dup = make_stations({"L": (["1", "2", "2"], [0.0, 1.0, 2.0], [0.0] * 3, [0.0] * 3)})
-    with pytest.raises(
-        InputFileError, match=r"stations.csv, line 4, field 'station': station '2' appears more"
-    ):
+    with pytest.raises(InputFileError, match=r"stations.csv, line 4, field 'station': station '2' appears more"):
         geometry.line_frames(dup, path="stations.csv")
     one = make_stations({"L": (["1", "2"], [5.0, 5.0], [7.0, 7.0], [0.0, 0.0])})
     with pytest.raises(InputFileError, match=r"line 'L' has 2 station\(s\) at a single position"):
@@ -213,9 +207,7 @@ def test_build_gathers_joins_picks_to_stations():
     frames = geometry.line_frames(st)
     for name in ("A", "B"):
         m = g.line == name
-        np.testing.assert_allclose(
-            g.line_unit[m], np.broadcast_to(frames[name].unit, (m.sum(), 2)), atol=1e-9
-        )
+        np.testing.assert_allclose(g.line_unit[m], np.broadcast_to(frames[name].unit, (m.sum(), 2)), atol=1e-9)
     np.testing.assert_allclose(g.cross_unit, np.column_stack([g.line_unit[:, 1], -g.line_unit[:, 0]]))
     # spread length: a full split spread reaches 60 m each way; end-on ones 60 m
     assert g.spread_length_m.max() == pytest.approx(120.0, abs=1e-9)
@@ -257,9 +249,7 @@ def test_build_gathers_reports_unknown_stations_and_reflectors():
     bad_rec = pk.receiver.copy()
     bad_rec[7] = "999"
     bad = replace(survey, picks=replace(pk, receiver=bad_rec), files={"picks": "picks.csv"})
-    with pytest.raises(
-        InputFileError, match=r"picks.csv, line 9, field 'receiver': receiver '999' of line 'A'"
-    ):
+    with pytest.raises(InputFileError, match=r"picks.csv, line 9, field 'receiver': receiver '999' of line 'A'"):
         geometry.build_gathers(bad)
     with pytest.raises(SurveyConfigError, match=r"no picks for reflector \['base'\]"):
         geometry.build_gathers(survey, reflector="base")
@@ -483,9 +473,7 @@ def test_mistie_needs_coverage_on_both_lines():
     normal, offset = forward.plane_through_point([0.0, 0.0, -45.0], 0.0, 0.0)
     survey = survey_over_plane(stations, normal, offset)
     keep = ~((survey.picks.line == "B") & (survey.picks.shot.astype(int) < 220))  # B's shots from +20 m
-    survey = replace(
-        survey, picks=Picks(*[getattr(survey.picks, k)[keep] for k in Picks.__dataclass_fields__])
-    )
+    survey = replace(survey, picks=Picks(*[getattr(survey.picks, k)[keep] for k in Picks.__dataclass_fields__]))
     frames = geometry.line_frames(survey.stations)
     g = geometry.build_gathers(survey, frames=frames)
     pts = geometry.reflector_points(g, truth_fits(g, normal, offset))
@@ -546,9 +534,7 @@ def test_same_survey_in_lonlat_and_utm_gives_the_same_results(tmp_path):
     )
     normal, offset = forward.plane_through_point([512400.0, 5455600.0, 205.0], 14.0, 110.0)
     truth = survey_over_plane(stations, normal, offset)
-    lon, lat = Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True).transform(
-        stations.x_m, stations.y_m
-    )
+    lon, lat = Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True).transform(stations.x_m, stations.y_m)
     utm = config.load_survey(
         _write_survey(tmp_path / "utm", stations, stations.x_m, stations.y_m, truth.picks, "EPSG:32633")
     )
@@ -569,8 +555,15 @@ def test_same_survey_in_lonlat_and_utm_gives_the_same_results(tmp_path):
 
 @pytest.mark.parametrize(
     ("east", "north", "azimuth"),
-    [(0.0, 1.0, 0.0), (1.0, 1.0, 45.0), (1.0, 0.0, 90.0), (0.0, -1.0, 180.0), (-1.0, 0.0, 270.0),
-     (-1e-12, 1.0, 360.0 - np.degrees(1e-12)), (-1.0, -np.sqrt(3.0), 210.0)],
+    [
+        (0.0, 1.0, 0.0),
+        (1.0, 1.0, 45.0),
+        (1.0, 0.0, 90.0),
+        (0.0, -1.0, 180.0),
+        (-1.0, 0.0, 270.0),
+        (-1e-12, 1.0, 360.0 - np.degrees(1e-12)),
+        (-1.0, -np.sqrt(3.0), 210.0),
+    ],
     ids=["N", "NE", "E", "S", "W", "just-W-of-N", "SSW"],
 )
 def test_vector_azimuth_is_clockwise_from_north(east, north, azimuth):
@@ -593,15 +586,18 @@ def test_gather_normals_one_formula_for_fits_and_overrides(rng):
     s = -np.sum(u * n_true[:, :2], axis=1)
     q = -np.sum(w * n_true[:, :2], axis=1)
     gs = SimpleNamespace(n_gathers=g, line_unit=u, cross_unit=w)
-    np.testing.assert_allclose(geometry.gather_normals(gs, SimpleNamespace(s_along=s, cross_component=q)), n_true,
-                               atol=1e-12)
-    np.testing.assert_allclose(geometry.gather_normals(gs, SimpleNamespace(s_along=s), cross_component=q), n_true,
-                               atol=1e-12)
+    np.testing.assert_allclose(
+        geometry.gather_normals(gs, SimpleNamespace(s_along=s, cross_component=q)), n_true, atol=1e-12
+    )
+    np.testing.assert_allclose(
+        geometry.gather_normals(gs, SimpleNamespace(s_along=s), cross_component=q), n_true, atol=1e-12
+    )
     # no cross component known: level across the line (q = 0), still a unit vector
     level = geometry.gather_normals(gs, SimpleNamespace(s_along=s, cross_component=np.full(g, np.nan)))
     np.testing.assert_allclose(np.linalg.norm(level, axis=1), 1.0, atol=1e-12)
     np.testing.assert_allclose(-np.sum(level[:, :2] * w, axis=1), 0.0, atol=1e-12)
     # impossible components (s^2 + q^2 > 1) and failed fits give no normal at all
-    bad = geometry.gather_normals(gs, SimpleNamespace(s_along=np.r_[0.9, np.nan, s[2:]]),
-                                  cross_component=np.r_[0.9, 0.0, q[2:]])
+    bad = geometry.gather_normals(
+        gs, SimpleNamespace(s_along=np.r_[0.9, np.nan, s[2:]]), cross_component=np.r_[0.9, 0.0, q[2:]]
+    )
     assert np.all(np.isnan(bad[:2])) and np.all(np.isfinite(bad[2:]))

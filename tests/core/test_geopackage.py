@@ -34,8 +34,11 @@ def _read_layer(path, layer):
 
         meta, _, geoms, fields = pyogrio.raw.read(path, layer=layer)
         out = {n: list(f) for n, f in zip(meta["fields"], fields)}
-        shapes = None if meta["geometry_type"] is None else [None if g is None else shapely_wkb.loads(bytes(g))
-                                                              for g in geoms]
+        shapes = (
+            None
+            if meta["geometry_type"] is None
+            else [None if g is None else shapely_wkb.loads(bytes(g)) for g in geoms]
+        )
         return shapes, out, meta["crs"]
     from osgeo import ogr  # Debian's QGIS stack
 
@@ -85,8 +88,11 @@ def _write(path, layers=None, crs="EPSG:32633", **kwargs):
 
 @pytest.fixture
 def gpkg(tmp_path):
-    return _write(tmp_path / "survey.gpkg", dataset_metadata={"CAUTION": "an interpretation"},
-                  layer_metadata={"shots": {"SOFTWARE": "Rockhead test"}})
+    return _write(
+        tmp_path / "survey.gpkg",
+        dataset_metadata={"CAUTION": "an interpretation"},
+        layer_metadata={"shots": {"SOFTWARE": "Rockhead test"}},
+    )
 
 
 def test_gdal_validator_accepts_it(gpkg, gdal_validate):
@@ -128,11 +134,20 @@ def test_sql_types_and_null(gpkg):
     try:
         assert con.execute("SELECT velocity_m_s IS NULL FROM shots WHERE fid = 2").fetchone()[0] == 1
         assert con.execute("SELECT typeof(picks_used), typeof(accepted) FROM shots WHERE fid = 1").fetchone() == (
-            "integer", "integer")
+            "integer",
+            "integer",
+        )
         # 12-128r18 Table 6 column types, and z = 1 (mandatory) for the 3D point layer
         decl = {r[1]: r[2] for r in con.execute("PRAGMA table_info(shots)")}
-        assert decl == {"fid": "INTEGER", "geom": "POINT", "line": "TEXT", "velocity_m_s": "REAL",
-                        "picks_used": "INTEGER", "accepted": "BOOLEAN", "status": "TEXT"}
+        assert decl == {
+            "fid": "INTEGER",
+            "geom": "POINT",
+            "line": "TEXT",
+            "velocity_m_s": "REAL",
+            "picks_used": "INTEGER",
+            "accepted": "BOOLEAN",
+            "status": "TEXT",
+        }
         cols = dict(con.execute("SELECT table_name, z FROM gpkg_geometry_columns").fetchall())
         assert cols == {"shots": 1, "contours": 0, "areas": 0}
     finally:
@@ -202,8 +217,10 @@ def test_metadata_in_the_standard_tables(gpkg):
     con = sqlite3.connect(str(gpkg))
     try:
         # 12-128r18 F.8: a dataset record referenced by the whole file and one by the table 'shots'
-        refs = con.execute("SELECT reference_scope, table_name, m.metadata FROM gpkg_metadata_reference r "
-                           "JOIN gpkg_metadata m ON m.id = r.md_file_id ORDER BY r.md_file_id").fetchall()
+        refs = con.execute(
+            "SELECT reference_scope, table_name, m.metadata FROM gpkg_metadata_reference r "
+            "JOIN gpkg_metadata m ON m.id = r.md_file_id ORDER BY r.md_file_id"
+        ).fetchall()
     finally:
         con.close()
     assert ("geopackage", None) == refs[0][:2] and "an interpretation" in refs[0][2]

@@ -130,9 +130,7 @@ def test_stations_exact_at_stations_and_on_a_plane(rng):
 
     qx, qy = rng.uniform(0, 500, 400), rng.uniform(0, 300, 400)
     inside = Delaunay(np.column_stack([xs, ys])).find_simplex(np.column_stack([qx, qy])) >= 0
-    np.testing.assert_allclose(
-        model(qx[inside], qy[inside]), 100.0 + 0.03 * qx[inside] - 0.01 * qy[inside], atol=1e-9
-    )
+    np.testing.assert_allclose(model(qx[inside], qy[inside]), 100.0 + 0.03 * qx[inside] - 0.01 * qy[inside], atol=1e-9)
     # outside the hull: the ground at the nearest point of the hull's outline, flat beyond it (the
     # outline's nearest point from shapely, the plane's value there; 1e-9 m: rounding)
     from shapely.geometry import MultiPoint, Point
@@ -164,9 +162,7 @@ def test_stations_on_one_line():
 
 
 def test_duplicate_and_single_stations():
-    model = GroundModel.from_stations(
-        [0.0, 0.0, 10.0, 0.0], [0.0, 0.0, 0.0, 10.0], [100.0, 102.0, 110.0, 90.0]
-    )
+    model = GroundModel.from_stations([0.0, 0.0, 10.0, 0.0], [0.0, 0.0, 0.0, 10.0], [100.0, 102.0, 110.0, 90.0])
     assert model(0.0, 0.0) == pytest.approx(101.0)  # two surveys of one point are averaged
     flat = GroundModel.from_stations([5.0], [5.0], [42.0])
     np.testing.assert_array_equal(flat(np.array([0.0, 100.0]), np.array([0.0, -3.0])), [42.0, 42.0])

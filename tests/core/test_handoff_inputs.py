@@ -42,8 +42,11 @@ def test_defaults_without_tables(base):
 def test_design_and_sections_read(base):
     (base / "axis.csv").write_text("x,y\n499970,5499990\n500000,5500000\n500030,5500010\n")
     (base / "area.csv").write_text("x,y\n499980,5499980\n500020,5499980\n500020,5500020\n499980,5500020\n")
-    _append(base, '[design]\nelevation_m = 292.5\narea = "area.csv"\nsimulations = 300\nseed = 7\n'
-                  '[sections]\nalignment = ["axis.csv"]\ncorridor_m = 40\nformat = "svg"\n')
+    _append(
+        base,
+        '[design]\nelevation_m = 292.5\narea = "area.csv"\nsimulations = 300\nseed = 7\n'
+        '[sections]\nalignment = ["axis.csv"]\ncorridor_m = 40\nformat = "svg"\n',
+    )
     s = load_survey(base / "survey.toml")
     h = s.handoff
     assert h.design_elevation_m == 292.5 and h.simulations == 300 and h.seed == 7
@@ -134,8 +137,11 @@ def test_survey_extra_keys_checked(base, text, match):
 
 def test_survey_date_and_vertical_crs_read(base):
     toml = base / "survey.toml"
-    toml.write_text(toml.read_text().replace('crs = "EPSG:32633"\n',
-                                             'crs = "EPSG:32633"\ndate = 2025-06-14\nvertical_crs = "EPSG:5703"\n'))
+    toml.write_text(
+        toml.read_text().replace(
+            'crs = "EPSG:32633"\n', 'crs = "EPSG:32633"\ndate = 2025-06-14\nvertical_crs = "EPSG:5703"\n'
+        )
+    )
     h = load_survey(toml).handoff
     assert h.survey_date == "2025-06-14" and h.vertical_datum == "NAVD88 height"
 

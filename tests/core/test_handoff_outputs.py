@@ -36,8 +36,10 @@ def run(tmp_path_factory):
     folder = tmp_path_factory.mktemp("handoff")
     toml = _write_survey(folder, boreholes=True)
     (folder / "axis.csv").write_text("x,y\n" + "".join(f"{x},{y}\n" for x, y in AXIS))
-    toml.write_text(toml.read_text() + f'[processing]\nsurface_method = "kriging"\n[design]\nelevation_m = {DESIGN_M}\n'
-                    'simulations = 200\n[sections]\nalignment = "axis.csv"\ncorridor_m = 30\n')
+    toml.write_text(
+        toml.read_text() + f'[processing]\nsurface_method = "kriging"\n[design]\nelevation_m = {DESIGN_M}\n'
+        'simulations = 200\n[sections]\nalignment = "axis.csv"\ncorridor_m = 30\n'
+    )
     out = folder / "out"
     result = job.run(toml, out)
     return result, out
@@ -57,9 +59,17 @@ def _sampler(raster, values):
 
 def test_every_handoff_file_is_written(run):
     _, out = run
-    for name in ("map_sheet.pdf", "reflector_surface.xml", "probability_above_design.tif", "section_line_EW.pdf",
-                 "section_line_EW.csv", "section_line_NS.pdf", "section_line_NS.csv", "section_axis.pdf",
-                 "section_axis.csv"):
+    for name in (
+        "map_sheet.pdf",
+        "reflector_surface.xml",
+        "probability_above_design.tif",
+        "section_line_EW.pdf",
+        "section_line_EW.csv",
+        "section_line_NS.pdf",
+        "section_line_NS.csv",
+        "section_axis.pdf",
+        "section_axis.csv",
+    ):
         assert (out / name).is_file(), name
     assert all("section" in p.name for p in out.glob("section*"))
 
@@ -69,10 +79,24 @@ def test_map_sheet_has_its_parts(run, tmp_path):
     result, out = run
     pdf = out / "map_sheet.pdf"
     text = subprocess.run(["pdftotext", "-layout", str(pdf), "-"], capture_output=True, text=True, check=True).stdout
-    for part in (result.survey.name, "vertical datum not stated", "Rockhead", "EPSG:32633", "Legend", "grid north",
-                 "scale 1:", "kriging", "5 m" if result.spec.cell_size_m == 5 else f"{result.spec.cell_size_m:g} m",
-                 "interpretation with stated", "check it against borings", "licensed professionals",
-                 "Depth to the reflector", "Standard deviation", f"above {DESIGN_M:g} m", "depth below ground (m)"):
+    for part in (
+        result.survey.name,
+        "vertical datum not stated",
+        "Rockhead",
+        "EPSG:32633",
+        "Legend",
+        "grid north",
+        "scale 1:",
+        "kriging",
+        "5 m" if result.spec.cell_size_m == 5 else f"{result.spec.cell_size_m:g} m",
+        "interpretation with stated",
+        "check it against borings",
+        "licensed professionals",
+        "Depth to the reflector",
+        "Standard deviation",
+        f"above {DESIGN_M:g} m",
+        "depth below ground (m)",
+    ):
         assert part in text, part
     info = subprocess.run(["pdfinfo", str(pdf)], capture_output=True, text=True, check=True).stdout
     assert re.search(r"^Pages:\s+3$", info, re.M)  # depth, sigma, probability
@@ -83,7 +107,7 @@ def test_map_sheet_has_its_parts(run, tmp_path):
 
     img = imread(str(next(tmp_path.glob("p*.png"))))[..., :3]
     h, w, _ = img.shape
-    frame = img[int(h * (1 - 272 / 297)):int(h * (1 - 20 / 297)), int(w * 24 / 420):int(w * 304 / 420)]
+    frame = img[int(h * (1 - 272 / 297)) : int(h * (1 - 20 / 297)), int(w * 24 / 420) : int(w * 304 / 420)]
     coloured = np.ptp(frame, axis=2) > 0.15  # saturated pixels: the depth ramp (grey lines and white are not)
     # the two crossing lines map a cross-shaped area: about a tenth of the frame at this scale
     assert coloured.mean() > 0.05
@@ -151,8 +175,11 @@ def test_landxml_surface_is_the_grid(run):
     np.testing.assert_allclose(neh[:, 2], z[row, col], atol=1e-3)
     # two faces per quad of four mapped cells, counted here by brute force
     ok = np.isfinite(z)
-    quads = sum(ok[i, j] and ok[i, j + 1] and ok[i + 1, j] and ok[i + 1, j + 1]
-                for i in range(z.shape[0] - 1) for j in range(z.shape[1] - 1))
+    quads = sum(
+        ok[i, j] and ok[i, j + 1] and ok[i + 1, j] and ok[i + 1, j + 1]
+        for i in range(z.shape[0] - 1)
+        for j in range(z.shape[1] - 1)
+    )
     assert len(faces) == 2 * quads > 0
     assert faces.min() == 1 and faces.max() == len(pts)
     # counter-clockwise seen from above: positive signed area in (easting, northing)
@@ -176,8 +203,10 @@ def test_probability_raster_is_the_gaussian_formula(run):
 def test_design_volumes_in_the_geopackage_and_report(run):
     result, out = run
     with sqlite3.connect(out / "survey.gpkg") as con:
-        row = con.execute("SELECT design_elevation_m, volume_p10_m3, volume_p50_m3, volume_p90_m3, simulations, "
-                          "map_volume_m3 FROM design_volumes").fetchone()
+        row = con.execute(
+            "SELECT design_elevation_m, volume_p10_m3, volume_p50_m3, volume_p90_m3, simulations, "
+            "map_volume_m3 FROM design_volumes"
+        ).fetchone()
         tables = {r[0] for r in con.execute("SELECT table_name FROM gpkg_contents")}
     assert "sections" in tables
     zd, p10, p50, p90, n, _ = row

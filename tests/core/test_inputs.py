@@ -405,8 +405,9 @@ def test_station_rows_then_working_crs_equal_read_stations(tmp_path):
 def test_csv_lines_and_fields_are_located(tmp_path):
     # line numbers count LF, CRLF and lone CR alike (common practice of spreadsheet exports)
     assert csvfile.split_lines("a\r\nb\rc\nd") == ["a", "b", "c", "d"]
-    table = csvfile.read_csv_table(write(tmp_path / "t.csv", "# note\r\nline,station\r\n\r\nL1, 12 \r\n"),
-                                   ("line", "station"), role="stations")
+    table = csvfile.read_csv_table(
+        write(tmp_path / "t.csv", "# note\r\nline,station\r\n\r\nL1, 12 \r\n"), ("line", "station"), role="stations"
+    )
     assert table.lines == [4] and table.rows == [["L1", "12"]]
     with pytest.raises(InputFileError, match=r"t.csv, line 4, field 'station': value '12,5' uses a decimal comma"):
         table.number(0, "station", "12,5")

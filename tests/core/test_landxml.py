@@ -49,8 +49,16 @@ def test_file_structure(tmp_path):
     y = np.array([1.0, 0.0]) + 5455000.0
     t = grid_tin(x, y, np.array([[1.0, 2.0, 3.0], [4.0, 5.0, 6.0]]))
     path = tmp_path / "s.xml"
-    write_landxml_surface(path, t, parse_crs("EPSG:32633"), surface_name="rock", project_name="site",
-                          vertical_datum="NAVD88 height", version="0.1.0", timestamp=1764633600)
+    write_landxml_surface(
+        path,
+        t,
+        parse_crs("EPSG:32633"),
+        surface_name="rock",
+        project_name="site",
+        vertical_datum="NAVD88 height",
+        version="0.1.0",
+        timestamp=1764633600,
+    )
     text = path.read_text(encoding="utf-8")
     assert text.startswith("<?xml version='1.0' encoding='utf-8'?>")
     root = ET.fromstring(text.encode())
@@ -66,8 +74,16 @@ def test_file_structure(tmp_path):
     assert [f.text for f in d.find(NS + "Faces")] == ["1 4 5", "1 5 2", "2 5 6", "2 6 3"]
     # the same inputs give the same bytes
     path2 = tmp_path / "s2.xml"
-    write_landxml_surface(path2, t, parse_crs("EPSG:32633"), surface_name="rock", project_name="site",
-                          vertical_datum="NAVD88 height", version="0.1.0", timestamp=1764633600)
+    write_landxml_surface(
+        path2,
+        t,
+        parse_crs("EPSG:32633"),
+        surface_name="rock",
+        project_name="site",
+        vertical_datum="NAVD88 height",
+        version="0.1.0",
+        timestamp=1764633600,
+    )
     assert path.read_bytes() == path2.read_bytes()
 
 

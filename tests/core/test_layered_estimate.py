@@ -62,8 +62,13 @@ def snell_time(offset_m, thickness_m, v_m_s):
     v = np.asarray(v_m_s, float)
     if offset_m == 0:
         return float(np.sum(2 * h / v))
-    p = brentq(lambda q: float(np.sum(2 * h * q * v / np.sqrt(1 - (q * v) ** 2))) - offset_m,
-               0.0, (1 - 1e-15) / v.max(), xtol=1e-18, rtol=1e-15)
+    p = brentq(
+        lambda q: float(np.sum(2 * h * q * v / np.sqrt(1 - (q * v) ** 2))) - offset_m,
+        0.0,
+        (1 - 1e-15) / v.max(),
+        xtol=1e-18,
+        rtol=1e-15,
+    )
     return float(np.sum(2 * h / (v * np.sqrt(1 - (p * v) ** 2))))
 
 
@@ -75,8 +80,9 @@ def start_near(names, points_xy, elevations, velocities, sigma_m=0.5, rng=None):
         zz = np.asarray(z, float) + rng.normal(0.0, sigma_m, len(points_xy))
         pts.append((points_xy[:, 0], points_xy[:, 1], zz, np.full(len(zz), sigma_m)))
     k = len(names)
-    return StartModel(tuple(names), tuple(pts), np.asarray(velocities, float), np.full(k, 10.0),
-                      np.full(k, 10), np.ones(k))
+    return StartModel(
+        tuple(names), tuple(pts), np.asarray(velocities, float), np.full(k, 10.0), np.full(k, 10), np.ones(k)
+    )
 
 
 @pytest.fixture(scope="module")
@@ -95,8 +101,9 @@ def flat_two_layers():
     refl = np.array(["wt"] * int(keep_wt.sum()) + ["rock"] * len(S))
     mids = 0.5 * (S[::8, :2] + R[::8, :2])
     # start: rms-velocity depths and V_rms (what the gather fits give), within a few per cent
-    start = start_near(("wt", "rock"), mids, [np.full(len(mids), 95.5), np.full(len(mids), 68.0)], [620.0, 1550.0],
-                       rng=rng)
+    start = start_near(
+        ("wt", "rock"), mids, [np.full(len(mids), 95.5), np.full(len(mids), 68.0)], [620.0, 1550.0], rng=rng
+    )
     res = estimate_layered(SS, RR, t, 0.2e-3, refl, start, SPEC)
     return res, h, v
 
@@ -207,8 +214,13 @@ def test_boreholes_pull_the_surface_within_their_error(dipping_plane):
     start = start_near(("rock",), mids, [plane(mids[:, 0], mids[:, 1]) - 1.0], [1850.0], rng=rng)
     # a borehole 40 m from both lines, its elevation deliberately 0.6 m above the plane
     bx, by = 40.0, 40.0
-    ties = BoreholeTies(np.array([bx]), np.array([by]), np.array([plane(bx, by) + 0.6]), np.array([0.05]),
-                        np.array(["rock"], dtype=object))
+    ties = BoreholeTies(
+        np.array([bx]),
+        np.array([by]),
+        np.array([plane(bx, by) + 0.6]),
+        np.array([0.05]),
+        np.array(["rock"], dtype=object),
+    )
     res = estimate_layered(S, R, t, 0.3e-3, np.full(len(t), "rock"), start, SPEC, boreholes=ties)
     col = round((bx - SPEC.x0) / SPEC.cell_size_m)
     row = round((SPEC.y0 - by) / SPEC.cell_size_m)
@@ -264,9 +276,20 @@ def test_start_uses_dix_interval_velocities_and_site_layer_cake():
     vrms = math.sqrt((600**2 * t_wt + 1600**2 * (t_rock - t_wt)) / t_rock)
     v = np.array([600.0, vrms, 600.0, vrms, 600.0, vrms * 1.3])
     t0 = np.array([t_wt, t_rock] * 3)
-    g = GatherPoints(np.array(["s1", "s1", "s2", "s2", "s3", "s3"]), np.array(["wt", "rock"] * 3),
-                     np.zeros(6), np.zeros(6), np.full(6, 100.0), v * t0 / 2, np.full(6, 0.1), t0, v,
-                     np.full(6, 1e-5), np.full(6, 1.0), np.ones(6, bool))
+    g = GatherPoints(
+        np.array(["s1", "s1", "s2", "s2", "s3", "s3"]),
+        np.array(["wt", "rock"] * 3),
+        np.zeros(6),
+        np.zeros(6),
+        np.full(6, 100.0),
+        v * t0 / 2,
+        np.full(6, 0.1),
+        t0,
+        v,
+        np.full(6, 1e-5),
+        np.full(6, 1.0),
+        np.ones(6, bool),
+    )
     s = start_from_gathers(g, ["wt", "rock"])
     assert s.interval_velocity_m_s == pytest.approx([600.0, 1600.0], rel=1e-6)  # Dix (1955), median of shots
     assert s.points[1][2] == pytest.approx([70.0, 70.0, 70.0], abs=1e-6)
@@ -330,18 +353,36 @@ def test_banded_selected_inverse_matches_dense_even_when_ill_conditioned():
 def test_posterior_sigma_matches_a_dense_inverse():
     # a small two-interface joint problem: the cell sigma formula against a dense inverse
     grid = GridSpec(x0=-30.0, y0=30.0, cell_size_m=10.0, nx=7, ny=7)
-    truth = LayeredModel(grid, np.stack([np.full(grid.shape, 95.0), np.full(grid.shape, 70.0)]),
-                         [[600.0, 0, 0, 0], [1600.0, 0, 0, 0]], [[0, 0, 97.5], [0, 0, 82.5]])
+    truth = LayeredModel(
+        grid,
+        np.stack([np.full(grid.shape, 95.0), np.full(grid.shape, 70.0)]),
+        [[600.0, 0, 0, 0], [1600.0, 0, 0, 0]],
+        [[0, 0, 97.5], [0, 0, 82.5]],
+    )
     S, R = cross_lines(half=24.0, max_offset=20.0)
     k = np.r_[np.zeros(len(S), int), np.ones(len(S), int)]
     SS, RR = np.r_[S, S], np.r_[R, R]
     p = trace_reflections(truth, SS, RR, k)
     Q = tuple(prior.matern_precision(grid, prior.MaternPrior(1.0, 30.0, 0.0, "", 2)) for _ in range(2))
-    data = system.JointData(SS, RR, p.time_s, np.full(len(k), 0.3e-3), k, Q, np.array([[95.0, 0, 0], [70.0, 0, 0]]),
-                            np.full(3, 50.0), np.array([[600.0, 0, 0, 0], [1600.0, 0, 0, 0]]),
-                            np.array([[300.0, 1, 1, 10], [800.0, 1, 1, 10]]))
-    layout = system.Layout(grid, 2, np.array([[True, True, False, True], [True, False, False, False]]),
-                           np.zeros(2), np.array([[0, 0, 97.5], [0, 0, 82.5]]))
+    data = system.JointData(
+        SS,
+        RR,
+        p.time_s,
+        np.full(len(k), 0.3e-3),
+        k,
+        Q,
+        np.array([[95.0, 0, 0], [70.0, 0, 0]]),
+        np.full(3, 50.0),
+        np.array([[600.0, 0, 0, 0], [1600.0, 0, 0, 0]]),
+        np.array([[300.0, 1, 1, 10], [800.0, 1, 1, 10]]),
+    )
+    layout = system.Layout(
+        grid,
+        2,
+        np.array([[True, True, False, True], [True, False, False, False]]),
+        np.zeros(2),
+        np.array([[0, 0, 97.5], [0, 0, 82.5]]),
+    )
     state = system.JointState(np.zeros((2, 49)), data.beta0.copy(), data.theta0.copy())
     state = system.forward(layout, data, state)
     state = system.reweight(data, state, 1.5, 4.0)
@@ -355,8 +396,9 @@ def test_posterior_sigma_matches_a_dense_inverse():
         idx, w = node_weights(grid, xs, ys)
         for r in range(3):
             np.add.at(a[r], s * layout.nn + idx[r], w[r])
-            a[r, layout.n_nodes + 3 * s : layout.n_nodes + 3 * s + 3] = system.trend_basis(xs[r:r + 1], ys[r:r + 1],
-                                                                                           layout.centre_xy)[0]
+            a[r, layout.n_nodes + 3 * s : layout.n_nodes + 3 * s + 3] = system.trend_basis(
+                xs[r : r + 1], ys[r : r + 1], layout.centre_xy
+            )[0]
         dense = np.sqrt(np.einsum("ij,jk,ik->i", a, C, a))
         # exact formulas on both sides: agreement to the dense inverse's round-off
         assert np.allclose(post.elevation_sigma(s, xs, ys), dense, rtol=1e-8)

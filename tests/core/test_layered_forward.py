@@ -132,8 +132,7 @@ def test_leg_derivatives_match_finite_differences():
         assert np.allclose((gA(A + h * e[i]) - gA(A - h * e[i])) / (2 * h), o["HAA"][:, :, i], rtol=1e-5, atol=1e-10)
         assert np.allclose((gB(B + h * e[i]) - gB(B - h * e[i])) / (2 * h), o["HBB"][:, :, i], rtol=1e-5, atol=1e-10)
         gAB = lambda b: velocity.leg_times(A, b, th, c, hessian=False)["gA"]  # noqa: E731
-        assert np.allclose((gAB(B + h * e[i]) - gAB(B - h * e[i])) / (2 * h), o["HAB"][:, :, i], rtol=1e-5,
-                           atol=1e-10)
+        assert np.allclose((gAB(B + h * e[i]) - gAB(B - h * e[i])) / (2 * h), o["HAB"][:, :, i], rtol=1e-5, atol=1e-10)
     steps = np.array([1e-3, 1e-6, 1e-6, 1e-6])
     for j in range(4):
         d = steps[j] * np.eye(4)[j]
@@ -273,6 +272,7 @@ def test_curved_interfaces_and_lateral_velocity_give_the_least_time_path():
     assert np.all(p.valid)
     iface, layer = path_layout(1)
     for i in range(2):
+
         def total(xy, i=i):
             xy = xy.reshape(3, 2)
             z, zx, zy = nodes.interface_values(model.elevation_m, SPEC, xy[:, 0], xy[:, 1], 1, surface=iface)

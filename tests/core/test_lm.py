@@ -47,7 +47,12 @@ def test_same_minimum_as_scipy(loss, rng):
         mk = model.take(slice(k, k + 1))
         ref = least_squares(
             lambda th, mk=mk, k=k: (t[k] - mk.evaluate(th[None, :], jacobian=False)[0][0]) / SIGMA,
-            theta0[k], loss=loss, f_scale=1.5, xtol=1e-14, ftol=1e-14, gtol=1e-14,
+            theta0[k],
+            loss=loss,
+            f_scale=1.5,
+            xtol=1e-14,
+            ftol=1e-14,
+            gtol=1e-14,
         )
         # the engine stops at steps below 1e-6 in ln t0 and ln v and contracts fast from there:
         # 1e-7 in the log parameters is a relative 1e-7 in t0 and v
@@ -80,11 +85,19 @@ def test_cancel_stops_the_engine(rng):
 
     model, theta0, t = _problems(rng, 3)
     with pytest.raises(CancelledError):
-        lm.batched_least_squares(model, theta0, t, np.full(t.shape, SIGMA), np.ones(t.shape, bool), "huber", 1.5,
-                                 progress=Cancelled())
+        lm.batched_least_squares(
+            model, theta0, t, np.full(t.shape, SIGMA), np.ones(t.shape, bool), "huber", 1.5, progress=Cancelled()
+        )
 
 
 def test_no_rows():
-    sol = lm.batched_least_squares(Hyperbola(np.zeros((0, 5))), np.zeros((0, 2)), np.zeros((0, 5)),
-                                   np.ones((0, 5)), np.zeros((0, 5), bool), "huber", 1.5)
+    sol = lm.batched_least_squares(
+        Hyperbola(np.zeros((0, 5))),
+        np.zeros((0, 2)),
+        np.zeros((0, 5)),
+        np.ones((0, 5)),
+        np.zeros((0, 5), bool),
+        "huber",
+        1.5,
+    )
     assert sol.theta.shape == (0, 2) and sol.jacobian.shape == (0, 2, 5)

@@ -40,11 +40,13 @@ def _pick_rows(folder):
 def test_write_read_round_trip(tmp_path, survey_dir):
     picks = load_survey(survey_dir / "survey.toml").picks
     line, shot, rec, refl = (str(picks.line[5]), str(picks.shot[5]), str(picks.receiver[5]), str(picks.reflector[5]))
-    edits = ed.PickEdits((
-        ed.PickEdit(line, shot, rec, refl, "exclude", None, "=noisy, trace", "2026-12-02T07:30:12Z"),
-        ed.PickEdit(line, shot, rec, refl, "retime", 23.456, "cycle skip; \"late\"", ed.now_time_stamp()),
-        ed.PickEdit(line, shot, rec, refl, "restore"),
-    ))
+    edits = ed.PickEdits(
+        (
+            ed.PickEdit(line, shot, rec, refl, "exclude", None, "=noisy, trace", "2026-12-02T07:30:12Z"),
+            ed.PickEdit(line, shot, rec, refl, "retime", 23.456, 'cycle skip; "late"', ed.now_time_stamp()),
+            ed.PickEdit(line, shot, rec, refl, "restore"),
+        )
+    )
     path = ed.write_pick_edits(tmp_path / "pick_edits.csv", edits)
     assert path.read_text().splitlines()[0] == HEADER.strip()
     back = ed.read_pick_edits(path, picks)
@@ -65,12 +67,14 @@ def test_edits_apply_in_order_last_wins(survey_dir):
     picks = load_survey(survey_dir / "survey.toml").picks
     key = (str(picks.line[0]), str(picks.shot[0]), str(picks.receiver[0]), str(picks.reflector[0]))
     other = (str(picks.line[1]), str(picks.shot[1]), str(picks.receiver[1]), str(picks.reflector[1]))
-    seq = ed.PickEdits((
-        ed.PickEdit(*key, "exclude"),
-        ed.PickEdit(*other, "retime", 30.0),
-        ed.PickEdit(*other, "exclude"),
-        ed.PickEdit(*key, "restore"),
-    ))
+    seq = ed.PickEdits(
+        (
+            ed.PickEdit(*key, "exclude"),
+            ed.PickEdit(*other, "retime", 30.0),
+            ed.PickEdit(*other, "exclude"),
+            ed.PickEdit(*key, "restore"),
+        )
+    )
     a = ed.apply_pick_edits(picks, seq)
     assert not a.excluded[0] and a.excluded[1] and a.n_excluded == 1
     assert a.picks.time_s[1] == pytest.approx(0.030, abs=0)  # 30 ms, exactly as written
@@ -98,9 +102,20 @@ def test_edits_apply_in_order_last_wins(survey_dir):
         ("A,1001,1002,,exclude,,,yesterday", "time_stamp", r"time stamp 'yesterday' is not an ISO 8601"),
         (",1001,1002,,exclude,,,", "line", r"empty label"),
     ],
-    ids=["unknown-action", "retime-no-time", "retime-negative", "retime-absurd", "retime-text",
-         "time-on-exclude", "unknown-line", "unknown-shot", "unknown-receiver", "unknown-reflector",
-         "bad-time-stamp", "empty-line"],
+    ids=[
+        "unknown-action",
+        "retime-no-time",
+        "retime-negative",
+        "retime-absurd",
+        "retime-text",
+        "time-on-exclude",
+        "unknown-line",
+        "unknown-shot",
+        "unknown-receiver",
+        "unknown-reflector",
+        "bad-time-stamp",
+        "empty-line",
+    ],
 )
 def test_malformed_edits_name_file_line_field(survey_dir, row, field, message):
     picks = load_survey(survey_dir / "survey.toml").picks
@@ -119,8 +134,15 @@ def test_ambiguous_reflector_must_be_named(tmp_path):
     from rockhead.core.survey.model import Picks
 
     s = lambda *v: np.array(v, dtype=object)  # noqa: E731
-    picks = Picks(s("A", "A"), s("1", "1"), s("2", "2"), np.array([0.02, 0.04]), np.array([5e-4, 5e-4]),
-                  s("top", "rock"), np.array([2, 3]))
+    picks = Picks(
+        s("A", "A"),
+        s("1", "1"),
+        s("2", "2"),
+        np.array([0.02, 0.04]),
+        np.array([5e-4, 5e-4]),
+        s("top", "rock"),
+        np.array([2, 3]),
+    )
     path = tmp_path / "pick_edits.csv"
     path.write_text(HEADER + "A,1,2,,exclude,,,\n")
     with pytest.raises(InputFileError, match=r"line 2, field 'reflector': .*reflectors 'top', 'rock': name"):
@@ -141,15 +163,27 @@ def test_survey_reads_default_and_named_edits_file(survey_dir):
     # named in [files]: another file name; a named file that is missing is an error of survey.toml
     (survey_dir / "pick_edits.csv").rename(survey_dir / "my_edits.csv")
     text = (survey_dir / "survey.toml").read_text()
-    (survey_dir / "survey.toml").write_text(text.replace("[files]\n", "[files]\npick_edits = \"my_edits.csv\"\n"))
+    (survey_dir / "survey.toml").write_text(text.replace("[files]\n", '[files]\npick_edits = "my_edits.csv"\n'))
     assert load_survey(survey_dir / "survey.toml").excluded_picks[3]
     (survey_dir / "my_edits.csv").unlink()
     with pytest.raises(SurveyConfigError, match=r"field 'files\.pick_edits': file not found: 'my_edits\.csv'"):
         load_survey(survey_dir / "survey.toml")
 
 
-def _fits_equal(a, b, keys=("velocity_m_s", "normal_distance_m", "t0_s", "traveltime_dip_deg", "rms_residual_s",
-                            "se_velocity_m_s", "picks_used", "picks_rejected")):
+def _fits_equal(
+    a,
+    b,
+    keys=(
+        "velocity_m_s",
+        "normal_distance_m",
+        "t0_s",
+        "traveltime_dip_deg",
+        "rms_residual_s",
+        "se_velocity_m_s",
+        "picks_used",
+        "picks_rejected",
+    ),
+):
     for k in keys:
         # The batched solver stops once a step is below its tolerance (1e-6 of the internal parameters,
         # lm.STEP_TOLERANCE) and converges quadratically, so the error left is far below it; an excluded

@@ -49,8 +49,10 @@ def read_layer(path, name):
 
         table = pyogrio.read_dataframe(path, layer=name)
         cols = {c: table[c].to_numpy() for c in table.columns if c != "geometry"}
-        xy = np.array([(g.x, g.y) if g is not None and g.geom_type == "Point" else (np.nan, np.nan)
-                       for g in table.geometry], float)
+        xy = np.array(
+            [(g.x, g.y) if g is not None and g.geom_type == "Point" else (np.nan, np.nan) for g in table.geometry],
+            float,
+        )
         return cols, xy
 
 
@@ -81,16 +83,32 @@ def read_raster(path):
 
 def test_cli_writes_every_fixed_output(sample_run):
     out = sample_run.out
-    for name in ["survey.gpkg", "reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
-                 "elevation_sigma.tif", "report.html"]:
+    for name in [
+        "survey.gpkg",
+        "reflector_elevation.tif",
+        "reflector_depth.tif",
+        "depth_sigma.tif",
+        "elevation_sigma.tif",
+        "report.html",
+    ]:
         assert (out / name).is_file() and (out / name).stat().st_size > 0, name
     assert not [p for p in out.rglob(".*") if p.is_file()], "temporary files left behind"
     assert sample_run.exit_code == 0 and "gathers fitted" in sample_run.stdout
 
 
 FIXED_FIELDS = {
-    "shots": ["line", "shot", "velocity_m_s", "t0_ms", "normal_distance_m", "traveltime_dip_deg",
-              "rms_residual_ms", "picks_used", "picks_rejected", "status"],
+    "shots": [
+        "line",
+        "shot",
+        "velocity_m_s",
+        "t0_ms",
+        "normal_distance_m",
+        "traveltime_dip_deg",
+        "rms_residual_ms",
+        "picks_used",
+        "picks_rejected",
+        "status",
+    ],
     "reflector_points": ["line", "shot", "elevation_m", "depth_m", "sigma_m"],
     "dip_measurements": ["dip_deg", "dip_direction_deg", "strike_deg", "sigma_dip_deg", "lines"],
     "contours": ["elevation_m", "depth_m"],
@@ -214,7 +232,7 @@ def test_report_is_self_contained_with_cautions(sample_run):
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")
     assert "does not replace borings" in html
     assert "licensed professionals" in html
-    assert "src=\"http" not in html and "src='http" not in html
+    assert 'src="http' not in html and "src='http" not in html
     assert html.count("data:image/png;base64,") >= 4  # map, variogram, cross-validation, sections
     # one QC figure per gather, embedded and in qc/ (SVG)
     n_qc = len(list((sample_run.out / "qc").glob("gather_*.svg")))

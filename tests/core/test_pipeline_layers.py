@@ -52,9 +52,7 @@ def _write_survey(folder, reflector_setting=None, boreholes=False, calibrate=Fal
     if calibrate:
         processing.append("calibrate_velocity = true")
     extra = "[processing]\n" + "\n".join(processing) + "\n" if processing else ""
-    (folder / "survey.toml").write_text(
-        '[survey]\nname = "two layers"\ncrs = "EPSG:32633"\n[files]\n' + files + extra
-    )
+    (folder / "survey.toml").write_text('[survey]\nname = "two layers"\ncrs = "EPSG:32633"\n[files]\n' + files + extra)
     return folder / "survey.toml"
 
 
@@ -205,7 +203,7 @@ def test_degenerate_gather_is_flagged_reported_and_the_run_goes_on(tmp_path):
     assert np.all(shots["reason"][shots["status"] != "ok"] != "")  # every flagged gather says why
     write_outputs(r, tmp_path / "out")
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
-    flagged = html[html.index("Flagged gathers"):]
+    flagged = html[html.index("Flagged gathers") :]
     assert "too_few_picks" in flagged[:3000] and "120" in flagged[:3000]
 
 

@@ -82,8 +82,12 @@ def test_time_axis_points_down_in_t_x():
 
 @pytest.mark.parametrize(
     "lo, hi, expected",
-    [(0.0, 47.0, [0, 10, 20, 30, 40]), (-1.3, 1.3, [-1, -0.5, 0, 0.5, 1]), (20.1, 20.9, [20.2, 20.4, 20.6, 20.8]),
-     (0.0, 9400.0, [0, 2000, 4000, 6000, 8000])],
+    [
+        (0.0, 47.0, [0, 10, 20, 30, 40]),
+        (-1.3, 1.3, [-1, -0.5, 0, 0.5, 1]),
+        (20.1, 20.9, [20.2, 20.4, 20.6, 20.8]),
+        (0.0, 9400.0, [0, 2000, 4000, 6000, 8000]),
+    ],
     ids=["tens", "halves", "fifths", "thousands"],
 )
 def test_nice_ticks_are_1_2_5_steps(lo, hi, expected):
@@ -103,12 +107,14 @@ def test_many_figures_inline_without_id_clashes():
     assert ids_a and not ids_a & ids_b
 
 
-@pytest.mark.parametrize("layout, size", [("row", None), ("column", (480, 900)), ("grid", (480, 480)),
-                                          ("grid", (900, 700))], ids=["row", "column", "grid-small", "grid-large"])
+@pytest.mark.parametrize(
+    "layout, size",
+    [("row", None), ("column", (480, 900)), ("grid", (480, 480)), ("grid", (900, 700))],
+    ids=["row", "column", "grid-small", "grid-large"],
+)
 def test_layouts_keep_panels_inside_the_drawing(layout, size):
     x, t = _flat_gather()
-    svg = gather_svg(x, t, t, np.zeros(len(x), bool), np.zeros(len(x), bool), "flat", "a\nb", layout=layout,
-                     size=size)
+    svg = gather_svg(x, t, t, np.zeros(len(x), bool), np.zeros(len(x), bool), "flat", "a\nb", layout=layout, size=size)
     root = ET.fromstring(svg)
     w, h = (float(v) for v in root.get("viewBox").split()[2:])
     if size is not None:
@@ -119,5 +125,5 @@ def test_layouts_keep_panels_inside_the_drawing(layout, size):
     for x0, y0, bw, bh in boxes:
         assert x0 >= 40 and y0 >= 40 and x0 + bw <= w and y0 + bh + 30 <= h and bw > 100 and bh > 60
     for i, a in enumerate(boxes):  # no two panels overlap
-        for b in boxes[i + 1:]:
+        for b in boxes[i + 1 :]:
             assert a[0] + a[2] <= b[0] or b[0] + b[2] <= a[0] or a[1] + a[3] <= b[1] or b[1] + b[3] <= a[1]

@@ -55,16 +55,30 @@ def _reference(path):
 
         with rasterio.open(path) as ds:
             t = ds.transform
-            return {"driver": ds.driver, "gt": (t.c, t.a, t.b, t.f, t.d, t.e), "band": ds.read(1),
-                    "nodata": ds.nodata, "block": ds.block_shapes[0], "overviews": len(ds.overviews(1)),
-                    "tags": ds.tags(), "wkt": ds.crs.to_wkt() if ds.crs else ""}
+            return {
+                "driver": ds.driver,
+                "gt": (t.c, t.a, t.b, t.f, t.d, t.e),
+                "band": ds.read(1),
+                "nodata": ds.nodata,
+                "block": ds.block_shapes[0],
+                "overviews": len(ds.overviews(1)),
+                "tags": ds.tags(),
+                "wkt": ds.crs.to_wkt() if ds.crs else "",
+            }
     from osgeo import gdal
 
     ds = gdal.Open(str(path))
     b = ds.GetRasterBand(1)
-    out = {"driver": ds.GetDriver().ShortName, "gt": ds.GetGeoTransform(), "band": b.ReadAsArray(),
-           "nodata": b.GetNoDataValue(), "block": tuple(b.GetBlockSize())[::-1], "overviews": b.GetOverviewCount(),
-           "tags": ds.GetMetadata(), "wkt": ds.GetProjection()}
+    out = {
+        "driver": ds.GetDriver().ShortName,
+        "gt": ds.GetGeoTransform(),
+        "band": b.ReadAsArray(),
+        "nodata": b.GetNoDataValue(),
+        "block": tuple(b.GetBlockSize())[::-1],
+        "overviews": b.GetOverviewCount(),
+        "tags": ds.GetMetadata(),
+        "wkt": ds.GetProjection(),
+    }
     b = None
     ds = None
     return out
@@ -74,8 +88,10 @@ def same_crs(a, b) -> bool:
     """pyproj's equivalence, part by part for a compound CRS (its EPSG code is not stored)."""
     a, b = pyproj.CRS(a), pyproj.CRS(b)
     if a.is_compound or b.is_compound:
-        return a.is_compound and b.is_compound and all(
-            x.equals(y, ignore_axis_order=True) for x, y in zip(a.sub_crs_list, b.sub_crs_list)
+        return (
+            a.is_compound
+            and b.is_compound
+            and all(x.equals(y, ignore_axis_order=True) for x, y in zip(a.sub_crs_list, b.sub_crs_list))
         )
     return a.equals(b, ignore_axis_order=True)
 
@@ -121,8 +137,10 @@ def test_crs_round_trips_exactly(tmp_path, crs_text, xy):
     assert same_crs(back, crs), back.to_wkt()
     assert same_crs(_reference(path)["wkt"], crs)  # and as a reference reader sees it
     # the datum shift (towgs84, bound CRS) is kept: the same point goes to the same WGS 84 position
-    to_wgs84 = [pyproj.Transformer.from_crs(c, "EPSG:4979" if c.is_compound else "EPSG:4326", always_xy=True)
-                for c in (crs, back)]
+    to_wgs84 = [
+        pyproj.Transformer.from_crs(c, "EPSG:4979" if c.is_compound else "EPSG:4326", always_xy=True)
+        for c in (crs, back)
+    ]
     args = (*xy, 100.0) if crs.is_compound else xy
     a, b = (np.array(t.transform(*args)) for t in to_wgs84)
     np.testing.assert_allclose(a, b, rtol=0, atol=1e-9)  # degrees (and m): identical transformations
@@ -142,9 +160,17 @@ def test_towgs84_shift_is_in_the_file(tmp_path):
 def test_metadata_caution_and_provenance(tmp_path):
     spec = GridSpec(0.5, 9.5, 1.0, 10, 10)
     md = {"CAUTION": "an interpretation", "SOFTWARE": "Rockhead 0.1.0", "SURVEY": "Site"}
-    path = gdalio.write_raster(tmp_path / "m.tif", np.zeros(spec.shape), spec, "EPSG:32633", metadata=md,
-                               description="reflector depth", timestamp="2024-05-14T00:00:00.000Z",
-                               software="Rockhead 0.1.0", band_metadata={"QUANTITY": "depth"})
+    path = gdalio.write_raster(
+        tmp_path / "m.tif",
+        np.zeros(spec.shape),
+        spec,
+        "EPSG:32633",
+        metadata=md,
+        description="reflector depth",
+        timestamp="2024-05-14T00:00:00.000Z",
+        software="Rockhead 0.1.0",
+        band_metadata={"QUANTITY": "depth"},
+    )
     tags = _reference(path)["tags"]
     assert {k: tags[k] for k in md} == md
     # TIFF 6.0 DateTime "YYYY:MM:DD HH:MM:SS" and Software tags
@@ -222,8 +248,16 @@ def test_grid_reader_refuses_non_square_cells(tmp_path):
         import rasterio
         from rasterio.transform import Affine
 
-        with rasterio.open(path, "w", driver="GTiff", width=4, height=3, count=1, dtype="float32",
-                           transform=Affine(2.0, 0, 0, 0, -1.0, 3.0)) as ds:
+        with rasterio.open(
+            path,
+            "w",
+            driver="GTiff",
+            width=4,
+            height=3,
+            count=1,
+            dtype="float32",
+            transform=Affine(2.0, 0, 0, 0, -1.0, 3.0),
+        ) as ds:
             ds.write(np.zeros((3, 4), "float32"), 1)
     else:
         from osgeo import gdal

@@ -70,10 +70,36 @@ def _table(cls, n=2):
 
 
 # the layers' field names are fixed (README, Outputs): these lists are the contract
-DIX_FIELDS = ["line", "shot", "reflector_top", "reflector_base", "t0_top_ms", "t0_base_ms", "interval_velocity_m_s",
-              "se_interval_velocity_m_s", "thickness_m", "se_thickness_m", "depth_base_m", "status", "reason"]
-CMP_FIELDS = ["line", "reflector", "t0_ms", "nmo_velocity_m_s", "se_t0_ms", "se_nmo_velocity_m_s", "depth_m",
-              "rms_residual_ms", "picks_used", "picks_rejected", "status", "reason", "bin_m"]
+DIX_FIELDS = [
+    "line",
+    "shot",
+    "reflector_top",
+    "reflector_base",
+    "t0_top_ms",
+    "t0_base_ms",
+    "interval_velocity_m_s",
+    "se_interval_velocity_m_s",
+    "thickness_m",
+    "se_thickness_m",
+    "depth_base_m",
+    "status",
+    "reason",
+]
+CMP_FIELDS = [
+    "line",
+    "reflector",
+    "t0_ms",
+    "nmo_velocity_m_s",
+    "se_t0_ms",
+    "se_nmo_velocity_m_s",
+    "depth_m",
+    "rms_residual_ms",
+    "picks_used",
+    "picks_rejected",
+    "status",
+    "reason",
+    "bin_m",
+]
 
 
 @pytest.mark.parametrize(

@@ -12,8 +12,9 @@ NONLINEAR = ("huber", "soft_l1", "cauchy")
 
 def _scipy_cost(e, loss, f_scale):
     """scipy's 0.5 * C^2 * sum(rho(e^2 / C^2)) at the start, from a residual that x cannot change."""
-    res = least_squares(lambda x: e + 0.0 * x[0], x0=[0.0], jac=lambda x: np.zeros((len(e), 1)), loss=loss,
-                        f_scale=f_scale)
+    res = least_squares(
+        lambda x: e + 0.0 * x[0], x0=[0.0], jac=lambda x: np.zeros((len(e), 1)), loss=loss, f_scale=f_scale
+    )
     return res.cost
 
 

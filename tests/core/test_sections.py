@@ -29,8 +29,14 @@ def test_values_at_cell_centres_are_the_grid():
     row = 7
     y = SPEC.y_centres[row]
     v = np.array([[SPEC.x_centres[0], y], [SPEC.x_centres[-1], y]])  # along a row of cell centres
-    sec = build_section("row", v, SPEC, [Interface("rock", z, s), Interface("water", water, 0 * water, "water_table")],
-                        ground=lambda x, yy: np.full(np.shape(x), 70.0), step_m=SPEC.cell_size_m)
+    sec = build_section(
+        "row",
+        v,
+        SPEC,
+        [Interface("rock", z, s), Interface("water", water, 0 * water, "water_table")],
+        ground=lambda x, yy: np.full(np.shape(x), 70.0),
+        step_m=SPEC.cell_size_m,
+    )
     np.testing.assert_allclose(sec.x_m, SPEC.x_centres)  # samples fall on the cell centres
     np.testing.assert_allclose(sec.elevation_m, z[row], atol=1e-12)  # bilinear at a node = node value
     np.testing.assert_allclose(sec.sigma_m, s[row], atol=1e-12)
@@ -50,9 +56,14 @@ def test_corridor_projection_on_a_bent_alignment():
     np.testing.assert_allclose(ch[2:4], [50.0 + 30.0, 50.0 + 30.0])
     np.testing.assert_allclose(off[2:4], [10.0, -10.0])
     z, s, _ = _grids()
-    sec = build_section("bent", v, SPEC, [Interface("rock", z, s)], corridor_m=25.0,
-                        boreholes=(np.array(["A", "B", "C", "D", "E"]), px, py, np.full(5, 70.0), np.full(5, 55.0),
-                                   np.full(5, 0.1)))
+    sec = build_section(
+        "bent",
+        v,
+        SPEC,
+        [Interface("rock", z, s)],
+        corridor_m=25.0,
+        boreholes=(np.array(["A", "B", "C", "D", "E"]), px, py, np.full(5, 70.0), np.full(5, 55.0), np.full(5, 0.1)),
+    )
     # within 12.5 m: A (4 m), C (10 m) and D (10 m); B is 20 m away and E 30 m
     assert list(sec.boreholes.label) == ["A", "C", "D"]
     np.testing.assert_allclose(sec.boreholes.chainage_m, [20.0, 80.0, 80.0])
@@ -63,16 +74,34 @@ def test_sheet_is_drawn_and_reproducible(fmt):
     z, s, water = _grids()
     v = np.array([[5.0, 50.0], [95.0, 55.0]])
     itf = [Interface("rock", z, s), Interface("groundwater", water, np.full(SPEC.shape, 0.3), "water_table")]
-    sec = build_section("s", v, SPEC, itf, ground=lambda x, y: np.full(np.shape(x), 70.0),
-                        boreholes=(np.array(["BH9"]), np.array([50.0]), np.array([55.0]), np.array([70.0]),
-                                   np.array([55.5]), np.array([0.1])))
+    sec = build_section(
+        "s",
+        v,
+        SPEC,
+        itf,
+        ground=lambda x, y: np.full(np.shape(x), 70.0),
+        boreholes=(
+            np.array(["BH9"]),
+            np.array([50.0]),
+            np.array([55.0]),
+            np.array([70.0]),
+            np.array([55.5]),
+            np.array([0.1]),
+        ),
+    )
     a = section_sheet(sec, INFO, fmt=fmt)
     b = section_sheet(sec, INFO, fmt=fmt)
     assert a == b  # no date, fixed ids: the same section gives the same bytes
     if fmt == "svg":
         text = a.decode("utf-8")
-        for part in ("groundwater (water table)", "BH9", "offset", "vertical exaggeration", "CAUTION",
-                     "vertical datum not stated"):
+        for part in (
+            "groundwater (water table)",
+            "BH9",
+            "offset",
+            "vertical exaggeration",
+            "CAUTION",
+            "vertical datum not stated",
+        ):
             assert part in text, part
     else:
         assert a.startswith(b"%PDF")

@@ -149,9 +149,7 @@ APPARENT_TABLE = [
 ]
 
 
-@pytest.mark.parametrize(
-    "dip, beta, alpha", APPARENT_TABLE, ids=[f"d{d:g}-b{b:g}" for d, b, _ in APPARENT_TABLE]
-)
+@pytest.mark.parametrize("dip, beta, alpha", APPARENT_TABLE, ids=[f"d{d:g}-b{b:g}" for d, b, _ in APPARENT_TABLE])
 def test_apparent_dip_table(dip, beta, alpha):
     assert float(structure.apparent_dip_deg(dip, beta)) == pytest.approx(alpha, abs=5e-4)
 
@@ -183,9 +181,7 @@ def test_traveltime_dip_is_not_the_apparent_dip():
     t = forward.image_source_traveltime([0.0, 0.0, 0.0], x[:, None] * u, n, d, 2000.0)
     a, b, c = np.polyfit(x, t**2, 2)
     s = b / (2.0 * np.sqrt(a * c))
-    assert np.degrees(np.arcsin(s)) == pytest.approx(
-        float(structure.traveltime_dip_deg(30.0, 60.0)), abs=1e-6
-    )
+    assert np.degrees(np.arcsin(s)) == pytest.approx(float(structure.traveltime_dip_deg(30.0, 60.0)), abs=1e-6)
     # along dip both equal the true dip
     assert float(structure.traveltime_dip_deg(30.0, 0.0)) == pytest.approx(30.0, abs=1e-12)
     assert float(structure.apparent_dip_deg(30.0, 0.0)) == pytest.approx(30.0, abs=1e-12)
@@ -332,9 +328,7 @@ def test_inconsistent_or_unconstrained_dips_are_flagged():
     dips = structure.combine_lines(gathers, vague)
     assert dips.status[0] == "poorly_constrained" and np.isnan(dips.dip_deg[0])
     # failed fits are left out of every cluster
-    failed = replace(
-        f, status=np.where(np.arange(gathers.n_gathers) % 2 == 0, "too_few_picks", "ok").astype(object)
-    )
+    failed = replace(f, status=np.where(np.arange(gathers.n_gathers) % 2 == 0, "too_few_picks", "ok").astype(object))
     dips = structure.combine_lines(gathers, failed)
     assert np.all(dips.gather_measurement[::2] == -1) and np.all(dips.gather_measurement[1::2] >= 0)
     assert dips.ok[0] and dips.dip_deg[0] == pytest.approx(20.0, abs=1e-9)
@@ -370,15 +364,9 @@ def test_combine_keeps_reflectors_apart():
     n2, d2 = forward.plane_through_point([0.0, 0.0, -20.0], 8.0, 300.0)
     f1 = truth_fits(gathers, *planes[0])
     f2 = truth_fits(gathers, n2, d2)
-    fits = TruthFits(
-        *[np.concatenate([getattr(f1, k), getattr(f2, k)]) for k in TruthFits.__dataclass_fields__]
-    )
+    fits = TruthFits(*[np.concatenate([getattr(f1, k), getattr(f2, k)]) for k in TruthFits.__dataclass_fields__])
     dips = structure.combine_lines(both, fits)
-    got = {
-        r: (d, dd)
-        for r, d, dd, ok in zip(dips.reflector, dips.dip_deg, dips.dip_direction_deg, dips.ok)
-        if ok
-    }
+    got = {r: (d, dd) for r, d, dd, ok in zip(dips.reflector, dips.dip_deg, dips.dip_direction_deg, dips.ok) if ok}
     assert got["1"] == pytest.approx((20.0, 130.0), abs=1e-9)
     assert got["2"] == pytest.approx((8.0, 300.0), abs=1e-9)
 

@@ -31,8 +31,10 @@ def _styles(run_dir):
     table, _ = read_layer(run_dir / "survey.gpkg", "layer_styles")
     f = table.fields
     return [
-        {k: f[k][i] for k in ("f_table_schema", "f_table_name", "f_geometry_column", "styleName", "styleQML",
-                              "useAsDefault")}
+        {
+            k: f[k][i]
+            for k in ("f_table_schema", "f_table_name", "f_geometry_column", "styleName", "styleQML", "useAsDefault")
+        }
         for i in range(len(table))
     ]
 
@@ -70,8 +72,11 @@ def test_every_field_has_an_alias_and_reals_their_decimals(run_dir):
     assert styles.field_display("shots", "t0_ms")[0].endswith("(ms)")
 
 
-@pytest.mark.parametrize("name, prefix", [("reflector_depth", ""), ("reflector_elevation", ""),
-                                          ("depth_sigma", "±")], ids=["depth", "elevation", "sigma"])
+@pytest.mark.parametrize(
+    "name, prefix",
+    [("reflector_depth", ""), ("reflector_elevation", ""), ("depth_sigma", "±")],
+    ids=["depth", "elevation", "sigma"],
+)
 def test_raster_legend_is_the_data_range_in_units(run_dir, name, prefix):
     raster = read_raster(run_dir / f"{name}.tif")
     v = np.asarray(raster.values, float)
@@ -104,7 +109,8 @@ def test_contour_labels_carry_the_unit_and_the_kind(run_dir):
         assert all(f"\"kind\" = '{kind}'" in rule.get("filter") for rule in rules)
         show = [o for o in root.iter("Option") if o.get("name") == "Show"]
         assert show and f"'{kind}'" in next(e for e in show[0].iter("Option") if e.get("name") == "expression").get(
-            "value")
+            "value"
+        )
 
 
 def test_few_index_contours_label_every_contour():
@@ -113,9 +119,15 @@ def test_few_index_contours_label_every_contour():
 
     def contours(levels, index):
         n = len(levels)
-        return Layer([LineString([(0, k), (10, k)]) for k in range(n)],
-                     {"kind": np.array(["depth"] * n, dtype=object), "elevation_m": np.full(n, np.nan),
-                      "depth_m": np.array(levels, float), "index": np.array(index, bool)})
+        return Layer(
+            [LineString([(0, k), (10, k)]) for k in range(n)],
+            {
+                "kind": np.array(["depth"] * n, dtype=object),
+                "elevation_m": np.full(n, np.nan),
+                "depth_m": np.array(levels, float),
+                "index": np.array(index, bool),
+            },
+        )
 
     few = styles.layer_styles({"contours": contours([10, 12, 14, 16], [True, False, False, False])})
     many = styles.layer_styles({"contours": contours([10, 20, 30, 40], [True, True, True, True])})
@@ -128,7 +140,7 @@ def test_few_index_contours_label_every_contour():
     assert '"index"' not in show(few)
     assert '"index"' in show(many)
     # interval 2 m: whole metres in the labels
-    assert "format_number(\"depth_m\", 0)" in _qml(few["contours"][0][1]).find(".//text-style").get("fieldName")
+    assert 'format_number("depth_m", 0)' in _qml(few["contours"][0][1]).find(".//text-style").get("fieldName")
 
 
 def test_symbol_colours_are_the_shared_ones(run_dir):

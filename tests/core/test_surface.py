@@ -98,8 +98,12 @@ def test_measurement_error_matches_pykrige_filtered_nugget(rng, pykrige_ok):
     for k in (None, 20):
         est, std = OrdinaryKriging(signal, neighbours=k).fit(x, y, z, error_variance=c0).predict(tx, ty)
         pk = pykrige_ok.OrdinaryKriging(
-            x, y, z, variogram_model="spherical",
-            variogram_parameters={"psill": 9.0, "range": 500.0, "nugget": c0}, exact_values=False,
+            x,
+            y,
+            z,
+            variogram_model="spherical",
+            variogram_parameters={"psill": 9.0, "range": 500.0, "nugget": c0},
+            exact_values=False,
         )
         if k is None:
             pe, pv = pk.execute("points", tx, ty, backend="vectorized")
@@ -209,9 +213,8 @@ def test_cross_validation_matches_pykrige_refits(rng, pykrige_ok):
     ref_var = np.empty(25)
     for i in range(25):
         keep = np.arange(25) != i
-        pk = pykrige_ok.OrdinaryKriging(x[keep], y[keep], z[keep], variogram_model=model,
-                                        variogram_parameters=params)
-        pe, pv = pk.execute("points", x[i:i + 1], y[i:i + 1])
+        pk = pykrige_ok.OrdinaryKriging(x[keep], y[keep], z[keep], variogram_model=model, variogram_parameters=params)
+        pe, pv = pk.execute("points", x[i : i + 1], y[i : i + 1])
         ref_est[i], ref_var[i] = float(pe[0]), float(pv[0])
     for k in (None, 24):
         cv = OrdinaryKriging(v, neighbours=k).fit(x, y, z).cross_validate()
@@ -245,8 +248,10 @@ def test_masking_far_cells():
     y = np.array([0.0, 0.0, 10.0, 10.0, 5.0])
     z = np.array([1.0, 2.0, 3.0, 4.0, 2.5])
     spec = GridSpec(x0=0.0, y0=100.0, cell_size_m=5.0, nx=21, ny=21)  # 0..100 m, north-up
-    surf = OrdinaryKriging(VariogramModel("spherical", 0.0, 1.0, 50.0), neighbours=4).fit(x, y, z).grid(
-        spec, max_distance_m=20.0
+    surf = (
+        OrdinaryKriging(VariogramModel("spherical", 0.0, 1.0, 50.0), neighbours=4)
+        .fit(x, y, z)
+        .grid(spec, max_distance_m=20.0)
     )
     # row 0 is the north row (y = 100); the datum (0, 0) is at row 20, column 0
     assert spec.y_centres[0] == 100.0 and spec.y_centres[-1] == 0.0
@@ -383,8 +388,10 @@ SURFACE_ERRORS = [
     (lambda: OrdinaryKriging(_V, neighbours=0).fit(*_XYZ), r"got 0;.*\[processing\] neighbours"),
     (lambda: OrdinaryKriging(_V, neighbours=2.5).fit(*_XYZ), r"got 2\.5;"),
     (lambda: ThinPlateSpline(neighbours=2).fit(*_XYZ), r"integer >= 3 or None, got 2;.*\[processing\] neighbours"),
-    (lambda: OrdinaryKriging(_V).fit(*_XYZ).grid(GridSpec(0.0, 30.0, 10.0, 5, 4), max_distance_m=-5.0),
-     r"got -5\.0;.*\[processing\] max_distance_m"),
+    (
+        lambda: OrdinaryKriging(_V).fit(*_XYZ).grid(GridSpec(0.0, 30.0, 10.0, 5, 4), max_distance_m=-5.0),
+        r"got -5\.0;.*\[processing\] max_distance_m",
+    ),
     (lambda: choose_variogram(*_XYZ, model="linear"), r"'linear'.*\[processing\] variogram_model"),
     (lambda: VariogramModel("cubic", 0.0, 1.0, 10.0), r"unknown variogram model 'cubic'"),
     (lambda: VariogramModel("spherical", 0.0, 1.0, 0.0), r"range_m must be > 0 \(m\), got 0\.0"),
@@ -407,10 +414,29 @@ SURFACE_ERRORS = [
 @pytest.mark.parametrize(
     "call, match",
     SURFACE_ERRORS,
-    ids=["method", "kriging-neighbours", "fractional-neighbours", "spline-neighbours", "max-distance",
-         "variogram-setting", "model-name", "range", "nugget", "flat-model", "variogram-type", "target-shape",
-         "smoothing-name", "smoothing-value", "sigma", "lengths", "nan", "n-lags", "tolerance", "one-place",
-         "fit-lengths"],
+    ids=[
+        "method",
+        "kriging-neighbours",
+        "fractional-neighbours",
+        "spline-neighbours",
+        "max-distance",
+        "variogram-setting",
+        "model-name",
+        "range",
+        "nugget",
+        "flat-model",
+        "variogram-type",
+        "target-shape",
+        "smoothing-name",
+        "smoothing-value",
+        "sigma",
+        "lengths",
+        "nan",
+        "n-lags",
+        "tolerance",
+        "one-place",
+        "fit-lengths",
+    ],
 )
 def test_bad_values_raise_a_surface_error_with_the_fix(call, match):
     with pytest.raises(SurfaceError, match=match) as info:
@@ -439,9 +465,7 @@ def test_bad_grids_raise_a_grid_error_with_the_fix(call, match):
     assert isinstance(info.value, RockheadError) and isinstance(info.value, ValueError)
 
 
-@pytest.mark.parametrize(
-    "model", [OrdinaryKriging(_V), ThinPlateSpline(0.0)], ids=["kriging", "spline"]
-)
+@pytest.mark.parametrize("model", [OrdinaryKriging(_V), ThinPlateSpline(0.0)], ids=["kriging", "spline"])
 def test_unfitted_models_raise_not_fitted(model):
     with pytest.raises(NotFittedError, match=r"not fitted yet: call fit\(x, y, z\) first") as info:
         model.predict([1.0], [1.0])
@@ -593,8 +617,7 @@ def test_interpolate_surface_end_to_end(rng):
     # the std grows away from the data: at a line it is below the mid-gap std
     assert surf.std[round((447.5 - 200) / 5), 30] < surf.std[round((447.5 - 250) / 5), 30]
     assert surf.mask[0, 0] and np.isnan(surf.z[0, 0])  # (-47.5, 447.5): 60+ m from every datum
-    spl, _sdiag = interpolate_surface(x, y, z, sigma, spec, method="spline", neighbours=None,
-                                     max_distance_m=60.0)
+    spl, _sdiag = interpolate_surface(x, y, z, sigma, spec, method="spline", neighbours=None, max_distance_m=60.0)
     assert spl.method == "spline" and np.all(np.isnan(spl.std))
     np.testing.assert_array_equal(spl.mask, surf.mask)
     with pytest.raises(CancelledError):

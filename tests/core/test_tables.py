@@ -30,9 +30,7 @@ def test_digits_option(tmp_path):
     assert [r[0] for r in _rows(path)[1:]] == ["1235", "-0.0001235"]
 
 
-@pytest.mark.parametrize(
-    "prefix", ["=", "+", "-", "@", "\t", "\r"], ids=["eq", "plus", "minus", "at", "tab", "cr"]
-)
+@pytest.mark.parametrize("prefix", ["=", "+", "-", "@", "\t", "\r"], ids=["eq", "plus", "minus", "at", "tab", "cr"])
 def test_text_formula_prefixes_are_guarded(tmp_path, prefix):
     # OWASP "CSV Injection": cells starting with these characters get a leading apostrophe
     text = prefix + "cmd|' /C calc'!A0"

@@ -45,8 +45,10 @@ def test_vertical_crs_read_either_way(sample_dir, tmp_path, new):
 
 @pytest.mark.parametrize(
     ("new", "field"),
-    [('crs = "EPSG:32633"\nvertical_crs = "EPSG:6360"', "survey.vertical_crs"),
-     ('crs = "EPSG:32633+6360"', "survey.crs")],
+    [
+        ('crs = "EPSG:32633"\nvertical_crs = "EPSG:6360"', "survey.vertical_crs"),
+        ('crs = "EPSG:32633+6360"', "survey.crs"),
+    ],
     ids=["feet-vertical-key", "feet-in-compound"],
 )
 def test_vertical_crs_in_feet_is_refused(sample_dir, tmp_path, new, field):
@@ -81,8 +83,9 @@ def test_elevation_raster_carries_the_vertical_datum(stated_run, gdal_validate):
     for name in ("reflector_depth.tif", "depth_sigma.tif"):
         assert gdalio.read_raster(out / name).crs.equals("EPSG:32633", ignore_axis_order=True), name
     assert elevation.metadata["VERTICAL_DATUM"] == "EPSG:5621 (EVRF2007 height)"
-    gdal_validate(*(out / n for n in ("reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif",
-                                      "survey.gpkg")))
+    gdal_validate(
+        *(out / n for n in ("reflector_elevation.tif", "reflector_depth.tif", "depth_sigma.tif", "survey.gpkg"))
+    )
 
 
 @pytest.mark.slow  # a whole run of the sample project with a vertical datum
@@ -147,7 +150,8 @@ def test_file_dates_come_from_the_survey_date(stated_run, unstated_run):
     con = sqlite3.connect(str(out / "survey.gpkg"))
     try:
         assert con.execute("SELECT DISTINCT last_change FROM gpkg_contents").fetchall() == [
-            ("2025-06-14T00:00:00.000Z",)]
+            ("2025-06-14T00:00:00.000Z",)
+        ]
     finally:
         con.close()
     _r, out = unstated_run

@@ -70,8 +70,7 @@ def test_layers_open_with_their_default_styles(qgis_app, results):
     # the default style shows the depth contours, index ones heavier
     assert "'depth'" in rules[0].filterExpression() and rules[0].symbol().width() > rules[1].symbol().width()
     shots = _open(results, "shots")
-    assert [r.label()[:10] for r in shots.renderer().rootRule().children()] == ["fit ok", "not fitted",
-                                                                                 "fitted, fl"]
+    assert [r.label()[:10] for r in shots.renderer().rootRule().children()] == ["fit ok", "not fitted", "fitted, fl"]
     for table in ("stations", "reflector_points", "boreholes", "lines", "reflection_points"):
         assert _open(results, table).renderer().type() == "singleSymbol", table
     # field aliases with units come with the style

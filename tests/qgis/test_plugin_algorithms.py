@@ -297,9 +297,18 @@ def test_interpolate_surface_writes_the_format_of_the_extension(provider, tmp_pa
     from osgeo import gdal
 
     out = tmp_path / name
-    run("interpolatesurface", {"INPUT": _plane_points(), "VALUE_FIELD": "elevation_m", "ERROR_FIELD": "sigma_m",
-                               "CELL_SIZE": 10.0, "OUTPUT": str(out), "STD_OUTPUT": str(tmp_path / f"std{out.suffix}"),
-                               "CONTOURS": "TEMPORARY_OUTPUT"})
+    run(
+        "interpolatesurface",
+        {
+            "INPUT": _plane_points(),
+            "VALUE_FIELD": "elevation_m",
+            "ERROR_FIELD": "sigma_m",
+            "CELL_SIZE": 10.0,
+            "OUTPUT": str(out),
+            "STD_OUTPUT": str(tmp_path / f"std{out.suffix}"),
+            "CONTOURS": "TEMPORARY_OUTPUT",
+        },
+    )
     ds = gdal.Open(str(out))
     assert ds.GetDriver().ShortName == driver  # a .asc is an ASCII grid, not TIFF bytes
     md = ds.GetMetadata()
@@ -349,8 +358,12 @@ def test_run_survey_equals_core(provider, sample_survey, core_results, tmp_path)
     # the survey's own surface method, as the core's command-line run used
     res = run(
         "runsurvey",
-        {"SURVEY": str(sample_survey), "OUTPUT": str(out), "LOAD_RESULTS": False,
-         "METHOD": METHODS.index("survey setting")},
+        {
+            "SURVEY": str(sample_survey),
+            "OUTPUT": str(out),
+            "LOAD_RESULTS": False,
+            "METHOD": METHODS.index("survey setting"),
+        },
     )
     assert res["OUTPUT"] == str(out)
     for key, name in (

@@ -18,8 +18,7 @@ from rockhead.core.survey.config import load_survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 BAD = sorted(
-    p.name for p in CORPUS.iterdir()
-    if (p / "survey.toml").is_file() and not p.name.startswith(("good_", "warn_"))
+    p.name for p in CORPUS.iterdir() if (p / "survey.toml").is_file() and not p.name.startswith(("good_", "warn_"))
 )
 
 

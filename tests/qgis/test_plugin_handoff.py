@@ -45,16 +45,25 @@ def test_map_sheet_print_layout(provider, core_results, tmp_path):
     assert "(A3)" in info
     text = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True, check=True).stdout
     flat = " ".join(text.split())
-    for part in (result.survey.name, "vertical datum not stated", "Rockhead", "EPSG:32633", "kriging", "Legend",
-                 "grid north", "interpretation with stated uncertainty", "licensed professionals",
-                 "Standard deviation of the mapped surface"):
+    for part in (
+        result.survey.name,
+        "vertical datum not stated",
+        "Rockhead",
+        "EPSG:32633",
+        "kriging",
+        "Legend",
+        "grid north",
+        "interpretation with stated uncertainty",
+        "licensed professionals",
+        "Standard deviation of the mapped surface",
+    ):
         assert part in flat, part
     subprocess.run(["pdftoppm", "-r", "25", "-f", "1", "-l", "1", "-png", str(pdf), str(tmp_path / "p")], check=True)
     from matplotlib.image import imread
 
     img = imread(str(next(tmp_path.glob("p*.png"))))[..., :3]
     h, w, _ = img.shape
-    frame = img[int(h * 14 / 297):int(h * 284 / 297), int(w * 12 / 420):int(w * 302 / 420)]
+    frame = img[int(h * 14 / 297) : int(h * 284 / 297), int(w * 12 / 420) : int(w * 302 / 420)]
     coloured = np.ptp(frame, axis=2) > 0.15  # the depth ramp (greys and white are not saturated)
     assert coloured.mean() > 0.2  # the sample site fills most of the frame at the chosen scale
 
@@ -66,8 +75,9 @@ def test_map_sheet_has_the_probability_page_with_a_design_level(provider, core_a
     toml, _ = core_auto
     folder = tmp_path / "design"
     shutil.copytree(toml.parent, folder)
-    (folder / "survey.toml").write_text((folder / "survey.toml").read_text()
-                                        + "\n[design]\nelevation_m = 222.0\nsimulations = 200\n")
+    (folder / "survey.toml").write_text(
+        (folder / "survey.toml").read_text() + "\n[design]\nelevation_m = 222.0\nsimulations = 200\n"
+    )
     job.run(folder / "survey.toml", folder / "results")
     pdf = tmp_path / "sheet.pdf"
     run("mapsheet", {"RESULTS": str(folder / "results"), "OUTPUT": str(pdf)})
@@ -90,8 +100,17 @@ def _alignment_layer():
 def test_section_along_alignment_equals_the_core(provider, core_auto, tmp_path):
     toml, result = core_auto
     out = tmp_path / "sections"
-    res = run("sectionalongalignment", {"SURVEY": str(toml), "ALIGNMENT": _alignment_layer(), "NAME_FIELD": "name",
-                                        "CORRIDOR": 30.0, "FORMAT": 0, "OUTPUT": str(out)})
+    res = run(
+        "sectionalongalignment",
+        {
+            "SURVEY": str(toml),
+            "ALIGNMENT": _alignment_layer(),
+            "NAME_FIELD": "name",
+            "CORRIDOR": 30.0,
+            "FORMAT": 0,
+            "OUTPUT": str(out),
+        },
+    )
     assert sorted(p.name for p in out.iterdir()) == ["section_axis.csv", "section_axis.pdf"]
     assert len(res["FILES"]) == 2
     table = np.genfromtxt(out / "section_axis.csv", delimiter=",", names=True)
@@ -104,8 +123,17 @@ def test_section_along_alignment_equals_the_core(provider, core_auto, tmp_path):
 def test_design_level_equals_the_core(provider, core_auto, tmp_path):
     toml, result = core_auto
     prob = tmp_path / "p.tif"
-    res = run("designlevel", {"SURVEY": str(toml), "DESIGN_ELEVATION": 222.0, "SIMULATIONS": 200, "SEED": 3,
-                              "PROBABILITY": str(prob), "OUTPUT": "memory:volumes"})
+    res = run(
+        "designlevel",
+        {
+            "SURVEY": str(toml),
+            "DESIGN_ELEVATION": 222.0,
+            "SIMULATIONS": 200,
+            "SEED": 3,
+            "PROBABILITY": str(prob),
+            "OUTPUT": "memory:volumes",
+        },
+    )
     ref = design_answers(result, 222.0, n_simulations=200, seed=3)
     got = read_raster(prob).values
     # float32 GeoTIFF of probabilities in [0, 1]: 1e-6

@@ -8,8 +8,15 @@ import rockhead
 from qgis.core import Qgis, QgsApplication
 from qgis.PyQt.QtWidgets import QAction
 
-ALGORITHM_IDS = {"fitgathers", "combinelines", "interpolatesurface", "runsurvey", "mapsheet", "sectionalongalignment",
-                 "designlevel"}
+ALGORITHM_IDS = {
+    "fitgathers",
+    "combinelines",
+    "interpolatesurface",
+    "runsurvey",
+    "mapsheet",
+    "sectionalongalignment",
+    "designlevel",
+}
 
 
 def _registry():

@@ -165,8 +165,7 @@ def test_edit_undo_redo_refit_and_remap(iface, site):
     # the same fit as the run before the edits (batched solver: converged to far below this)
     assert back["velocity_m_s"] == pytest.approx(before["velocity_m_s"], rel=1e-9)
     # float32 grids; the relocation loop stops at a 0.05 m change, so the same inputs give the same cells
-    np.testing.assert_allclose(read_raster(results / "reflector_depth.tif").values, depth0, atol=1e-4,
-                               equal_nan=True)
+    np.testing.assert_allclose(read_raster(results / "reflector_depth.tif").values, depth0, atol=1e-4, equal_nan=True)
     dock.close_panel()
     dock.deleteLater()
 
@@ -189,8 +188,12 @@ def test_edits_file_read_by_the_command_line_gives_the_same_products(iface, site
     import rockhead
 
     package_parent = str(Path(rockhead.__path__[0]).parent)  # the folder holding the link named rockhead
-    proc = subprocess.run([sys.executable, "-m", "rockhead.core.cli", "run", str(survey), "--out", str(other)],
-                          capture_output=True, text=True, env={**os.environ, "PYTHONPATH": package_parent})
+    proc = subprocess.run(
+        [sys.executable, "-m", "rockhead.core.cli", "run", str(survey), "--out", str(other)],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": package_parent},
+    )
     assert proc.returncode == 0, proc.stderr
     assert "pick edits: 2 read from pick_edits.csv: 1 picks excluded, 1 retimed" in proc.stdout
     for layer in ("shots", "reflector_points"):
@@ -204,8 +207,14 @@ def test_edits_file_read_by_the_command_line_gives_the_same_products(iface, site
             else:
                 assert list(v) == list(b.fields[k]), k
     for name in ("reflector_depth.tif", "reflector_elevation.tif", "depth_sigma.tif"):
-        np.testing.assert_allclose(read_raster(results / name).values, read_raster(other / name).values,
-                                   rtol=0, atol=1e-4, equal_nan=True, err_msg=name)  # float32 cells
+        np.testing.assert_allclose(
+            read_raster(results / name).values,
+            read_raster(other / name).values,
+            rtol=0,
+            atol=1e-4,
+            equal_nan=True,
+            err_msg=name,
+        )  # float32 cells
     html = (other / "report.html").read_text(encoding="utf-8")
     assert "Pick edits" in html and "retime" in html
     dock.close_panel()

@@ -1,6 +1,5 @@
 """The provider works from the qgis_process command line (the plugin loaded as QGIS loads it)."""
 
-
 import pytest
 
 pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
