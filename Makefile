@@ -1,6 +1,6 @@
 # Rockhead: developer shortcuts.
-#   make check            quick tier: lint, then tests/core without the slow tests (PyPI stack, < 60 s)
-#   make style            ruff format --check, ruff's docstring rules (numpy convention) on core/, mypy on core/
+#   make check            quick tier: lint and format check, then tests/core without the slow tests (PyPI stack, < 60 s)
+#   make style            the style checks CI runs: ruff (with the docstring rules on core/), ruff format, mypy on core/
 #   make install-plugin   link this checkout into the QGIS user profile (QGIS loads it from there)
 #   make package          build dist/rockhead-<version>.zip for the plugin repository
 # The full tier (every test, both stacks, what CI runs) is `bash scripts/test.sh`.
@@ -15,11 +15,12 @@ PLUGINS_DIR := $(QGIS_PROFILE_DIR)/python/plugins
 
 check:
 	$(VENV)/bin/ruff check .
+	$(VENV)/bin/ruff format --check .
 	$(VENV)/bin/python -m pytest -q -m "not slow" tests/core
 
 style:
+	$(VENV)/bin/ruff check .
 	$(VENV)/bin/ruff format --check .
-	$(VENV)/bin/ruff check --extend-select D core
 	PYTHON=$(VENV)/bin/python bash scripts/typecheck.sh
 
 install-plugin:

@@ -11,8 +11,10 @@ apt_install "${QGIS_DEBS[@]}"
 setup_pypi_venv test
 setup_qgis_venv
 
-echo "== lint (ruff)"
+echo "== lint (ruff: rules, docstrings of core/ in the numpy convention), format, types (mypy on core/)"
 .venv/bin/ruff check .
+.venv/bin/ruff format --check .
+PYTHON=.venv/bin/python bash scripts/typecheck.sh
 
 echo "== 1/2 core tests on current PyPI releases"
 .venv/bin/python -c "import numpy, scipy, pyproj, shapely; print('numpy', numpy.__version__, 'scipy', scipy.__version__, 'pyproj', pyproj.__version__, 'shapely', shapely.__version__)"
