@@ -46,11 +46,12 @@ def _layout(layout: str, size, n_params: int) -> tuple:
     avail = h - header
     if layout == "column":
         shares = (0.33, 0.40, 0.27)  # t^2-x^2, t-x, residuals
-        boxes, top = [], header
+        stacked: list = []
+        top = header
         for f in shares:
-            boxes.append((ml, top + mt, w - ml - mr, avail * f - mt - mb))
+            stacked.append((ml, top + mt, w - ml - mr, avail * f - mt - mb))
             top += avail * f
-        return w, h, header, tuple(boxes)
+        return w, h, header, tuple(stacked)
     if layout != "grid":
         raise ValueError(f"layout {layout!r}: expected 'row', 'column' or 'grid'")
     top_h = avail * 0.55  # t-x across the whole width; t^2-x^2 and residuals side by side below
@@ -138,8 +139,9 @@ class _Panel:
 
     def frame(self, xlabel, ylabel, title):
         o, l, t, w, h = self.out, self.left, self.top, self.width, self.height
-        xt = nice_ticks(*self.xlim, target=max(3, min(5, int(w // 55))))  # tick labels need ~55 px each
-        yt = nice_ticks(*self.ylim, target=max(3, min(5, int(h // 40))))
+        (x0, x1), (y0, y1) = self.xlim, self.ylim
+        xt = nice_ticks(x0, x1, target=max(3, min(5, int(w // 55))))  # tick labels need ~55 px each
+        yt = nice_ticks(y0, y1, target=max(3, min(5, int(h // 40))))
         xs = float(xt[1] - xt[0]) if len(xt) > 1 else 1.0
         ys = float(yt[1] - yt[0]) if len(yt) > 1 else 1.0
         grid = "".join(f"M{float(self.px(v)):.1f} {t:.1f}V{t + h:.1f}" for v in xt)
