@@ -131,7 +131,7 @@ def test_flat_layers_give_snell_velocities_and_depths(flat_two_layers):
     t0 = np.sum(2 * h / v)
     vrms = np.sqrt(np.sum(v**2 * 2 * h / v) / t0)  # Dix (1955): 1340 m/s
     avg = 2 * h.sum() / t0  # vertical average: 1252 m/s
-    assert vrms / avg == pytest.approx(1.07, abs=0.001)  # DESIGN: ~7 % too deep with V_rms
+    assert vrms / avg == pytest.approx(1.07, abs=0.001)  # ~7 % too deep with V_rms (Dix 1955, worked above)
     med = res.median_average_velocity_m_s("rock")
     assert np.isnan(med)  # no ground model given: no average velocity map
 
