@@ -12,7 +12,7 @@ import numpy as np
 
 from .. import __version__
 from ..results import RunResult
-from . import figures
+from . import figures, qc_svg
 from .handoff_content import handoff_section
 from .html import Report
 
@@ -211,14 +211,14 @@ def _surface(rep, r):
             )
         ev = diag.experimental_variogram
         if ev is not None:
-            png = figures.variogram_figure(
+            svg = qc_svg.variogram_svg(
                 ev.lag_m,
                 ev.semivariance,
                 ev.n_pairs,
                 vm,
                 title="semivariogram of reflector elevations (after the trend)",
             )
-            rep.figure(png, "variogram")
+            rep.figure(svg, "variogram")
     elif diag.smoothing is not None:
         rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag.smoothing:.3g}; no standard deviation.")
     cv = diag.cross_validation
@@ -237,7 +237,7 @@ def _surface(rep, r):
             ]
         )
         rep.figure(
-            figures.scatter_figure(
+            qc_svg.scatter_svg(
                 cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)", "datum (m)", "cross-validation"
             ),
             "cross-validation scatter",
@@ -436,7 +436,7 @@ def _lines(rep, r, layers, qc_figures):
     for line in sorted(fit.frames):
         frame = fit.frames[line]
         rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
-        rep.figure(_section_png(r, line), f"section of line {line}")
+        rep.figure(_section_svg(r, line), f"section of line {line}")
         sel = np.flatnonzero(np.asarray(g.line) == line)
         rep.table(
             {n: [shots.fields[n][i] for i in sel] for n in names},
@@ -453,7 +453,7 @@ def _lines(rep, r, layers, qc_figures):
                 )
 
 
-def _section_png(r, line):
+def _section_svg(r, line):
     from ..grid import bilinear as _bilinear
 
     frame = r.fit.frames[line]
@@ -464,12 +464,13 @@ def _section_png(r, line):
     s = r.surface
     z = _bilinear(r.spec, np.where(s.mask, np.nan, s.z), frame.x_m, frame.y_m)
     sd = _bilinear(r.spec, np.where(s.mask, np.nan, s.std), frame.x_m, frame.y_m)
-    return figures.section_figure(
+    return qc_svg.section_svg(
         frame.chainage_m,
         frame.z_m,
         (ch, pts.elevation_m[sel], pts.sigma_m[sel], ok),
         surface=(frame.chainage_m, z, sd),
         title=f"line {line}: ground, reflector points, mapped surface (±2σ)",
+        ident=f"s{''.join(c if c.isalnum() else '_' for c in str(line))}",
     )
 
 

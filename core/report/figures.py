@@ -157,48 +157,6 @@ def strike_dip_symbol(ax, x, y, strike_deg, dip_deg, size, colour, fontsize=7):
     )
 
 
-def section_figure(distance_m, ground_m, points, surface=None, title="", dpi=90) -> bytes:
-    """Line section: ground, reflector points with error bars, surface along the line.
-
-    ``points`` is (distance_m, elevation_m, sigma_m, ok_mask); ``surface`` an
-    optional (distance_m, elevation_m, sigma_m) profile of the mapped surface.
-    Vertical exaggeration is stated on the axis.
-    """
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=(10, 3.4), dpi=dpi)
-    ax.plot(distance_m, ground_m, "-", color=colours.GROUND, lw=1.5, label="ground")
-    d, z, s, ok = points
-    ax.errorbar(d[ok], z[ok], yerr=2 * s[ok], fmt="o", ms=3, color=USED, lw=0.8, label="reflector points (±2σ)")
-    if np.any(~ok):
-        ax.plot(d[~ok], z[~ok], "x", color=REJECTED, label="flagged gathers")
-    if surface is not None:
-        sd, sz, ss = surface
-        ax.plot(sd, sz, "-", color=FIT, lw=1.2, label="mapped surface")
-        ax.fill_between(sd, sz - 2 * ss, sz + 2 * ss, color=FIT, alpha=0.2, lw=0)
-    ax.set_xlabel("distance along line (m)")
-    ax.set_ylabel("elevation (m)")
-    ax.legend(fontsize=7, ncol=4, loc="lower left")
-    ax.set_title(title, fontsize=10)
-    fig.tight_layout()
-    return _png(fig)
-
-
-def scatter_figure(x, y, xlabel, ylabel, title="", one_to_one=True, dpi=90) -> bytes:
-    """A plain scatter plot (e.g. cross-validation: estimate against datum)."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=(4.2, 4.0), dpi=dpi)
-    ax.plot(x, y, "o", ms=3, color=USED)
-    if one_to_one and len(x):
-        lo = float(np.nanmin([np.nanmin(x), np.nanmin(y)]))
-        hi = float(np.nanmax([np.nanmax(x), np.nanmax(y)]))
-        ax.plot([lo, hi], [lo, hi], "-", color="0.5", lw=0.8)
-    ax.set_xlabel(xlabel)
-    ax.set_ylabel(ylabel)
-    ax.set_title(title, fontsize=9)
-    fig.tight_layout()
-    return _png(fig)
-
-
 def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_CMAP, symmetric=True, dpi=90) -> bytes:
     """A single grid as an image (e.g. the difference between two surfaces)."""
     plt = _plt()
@@ -220,28 +178,6 @@ def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_C
     ax.set_aspect("equal")
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
-    ax.set_title(title, fontsize=9)
-    fig.tight_layout()
-    return _png(fig)
-
-
-def variogram_figure(lag_m, semivariance, n_pairs, model, title="", dpi=90) -> bytes:
-    """Experimental semivariogram (points sized by pair count) and the fitted model."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=(5.0, 3.6), dpi=dpi)
-    lag = np.asarray(lag_m, float)
-    gam = np.asarray(semivariance, float)
-    n = np.asarray(n_pairs, float)
-    ok = np.isfinite(gam) & (n > 0)
-    ax.scatter(lag[ok], gam[ok], s=8 + 40 * n[ok] / max(n[ok].max(), 1), color=USED, label="experimental")
-    if model is not None:
-        h = np.linspace(0, lag.max() * 1.05 if len(lag) else 1.0, 200)
-        ax.plot(h, model(h), "-", color=FIT, label=f"{model.model} model")
-    ax.set_xlabel("lag (m)")
-    ax.set_ylabel("semivariance (m²)")
-    ax.set_xlim(left=0)
-    ax.set_ylim(bottom=0)
-    ax.legend(fontsize=7)
     ax.set_title(title, fontsize=9)
     fig.tight_layout()
     return _png(fig)

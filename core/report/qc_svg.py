@@ -25,7 +25,7 @@ import numpy as np
 
 from .. import colours
 
-__all__ = ["gather_svg", "nice_ticks"]
+__all__ = ["gather_svg", "nice_ticks", "scatter_svg", "section_svg", "variogram_svg"]
 
 #: The report's layout: drawing size (px of the SVG's own coordinates) and the (left, top, width,
 #: height) of the three panels (t^2-x^2, t-x, residuals) side by side.
@@ -171,6 +171,37 @@ class _Panel:
         extra = f' stroke-dasharray="{dash}"' if dash else ""
         self.out.append(f'<path d="{d}" fill="none" stroke="{colour}" stroke-width="{width}"{extra}/>')
 
+    def band(self, x, lo, hi, colour, opacity=0.2):
+        """A filled band between ``lo`` and ``hi`` along ``x`` (gaps where either is not finite)."""
+        x, lo, hi = (np.asarray(v, float) for v in (x, lo, hi))
+        ok = np.isfinite(x) & np.isfinite(lo) & np.isfinite(hi)
+        # one polygon per run of finite values
+        edges = np.flatnonzero(np.diff(np.r_[0, ok.astype(int), 0]))
+        for a, b in zip(edges[::2], edges[1::2]):
+            if b - a < 2:
+                continue
+            xs = np.r_[x[a:b], x[a:b][::-1]]
+            ys = np.r_[hi[a:b], lo[a:b][::-1]]
+            d = "M" + "L".join(f"{u:.1f} {v:.1f}" for u, v in zip(self.px(xs), self.py(ys))) + "Z"
+            self.out.append(f'<path d="{d}" fill="{colour}" fill-opacity="{opacity}" stroke="none"/>')
+
+    def errorbars(self, x, lo, hi, colour, width=1.0):
+        """Vertical bars from ``lo`` to ``hi`` at ``x``."""
+        x, lo, hi = (np.asarray(v, float) for v in (x, lo, hi))
+        ok = np.isfinite(x) & np.isfinite(lo) & np.isfinite(hi)
+        if not ok.any():
+            return
+        d = "".join(f"M{a:.1f} {b:.1f}V{c:.1f}" for a, b, c in zip(self.px(x[ok]), self.py(lo[ok]), self.py(hi[ok])))
+        self.out.append(f'<path d="{d}" stroke="{colour}" stroke-width="{width}"/>')
+
+    def circles(self, x, y, radius_px, colour):
+        """Filled circles of the given radii (px)."""
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        r = np.broadcast_to(np.asarray(radius_px, float), x.shape)
+        ok = np.isfinite(x) & np.isfinite(y)
+        for a, b, c in zip(self.px(x[ok]), self.py(y[ok]), r[ok]):
+            self.out.append(f'<circle cx="{a:.1f}" cy="{b:.1f}" r="{c:.1f}" fill="{colour}"/>')
+
     def marks(self, x, y, symbol):
         x, y = np.asarray(x, float), np.asarray(y, float)
         ok = np.isfinite(x) & np.isfinite(y)
@@ -304,4 +335,150 @@ def gather_svg(
     p.marks(x[exc], r[exc], f"{ident}ex")
     p.marks(x[rej], np.clip(r[rej], -0.97 * lim, 0.97 * lim), f"{ident}x")
     out.append("</g></svg>\n")
+    return "\n".join(out).encode("utf-8")
+
+
+# -- the report's other small figures -------------------------------------------------------------
+def _start(w: float, h: float, title: str, ident: str) -> list:
+    return [
+        '<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" '
+        f'viewBox="0 0 {w:.0f} {h:.0f}" width="{w:.0f}" height="{h:.0f}" font-size="11" style="{_FONT}" '
+        'fill="#222">',
+        f'<rect x="0" y="0" width="{w:.0f}" height="{h:.0f}" fill="white"/>',
+        _symbols(ident),
+        f'<text x="10" y="18" font-size="13" font-weight="600">{html.escape(title)}</text>',
+    ]
+
+
+def _key(out: list, items, x: float, y: float) -> None:
+    """A one-row key: items of (kind, colour or symbol id, label); kind "line", "band", "use"."""
+    for kind, what, label in items:
+        if kind == "line":
+            out.append(f'<path d="M{x:.0f} {y:.0f}h18" stroke="{what}" stroke-width="2"/>')
+        elif kind == "band":
+            out.append(f'<rect x="{x:.0f}" y="{y - 5:.0f}" width="18" height="10" fill="{what}" fill-opacity="0.25"/>')
+        else:
+            out.append(f'<use xlink:href="#{what}" x="{x + 9:.0f}" y="{y:.0f}"/>')
+        out.append(f'<text x="{x + 23:.0f}" y="{y + 4:.0f}">{html.escape(label)}</text>')
+        x += 36 + 6.0 * len(label)
+
+
+def section_svg(distance_m, ground_m, points, surface=None, title: str = "", ident: str = "s") -> bytes:
+    """A line's section: ground, reflector points with ±2σ bars, the mapped surface with its ±2σ band.
+
+    Parameters
+    ----------
+    distance_m, ground_m : (m,) array_like
+        Chainage along the line (m) and the ground elevation there (m).
+    points : tuple
+        (distance_m, elevation_m, sigma_m, ok) of the reflector points (m; ``ok`` bool).
+    surface : tuple, optional
+        (distance_m, elevation_m, sigma_m) of the mapped surface along the line (m).
+    title : str
+        Heading.
+    ident : str
+        Prefix of the element ids (unique per figure in one page).
+
+    Returns
+    -------
+    bytes
+        A standalone SVG document (1000 x 330).
+    """
+    d, z, s, ok = (np.asarray(v) for v in points)
+    d, z, s, ok = d.astype(float), z.astype(float), s.astype(float), ok.astype(bool)
+    values = [np.asarray(ground_m, float), z + 2 * s, z - 2 * s]
+    if surface is not None:
+        sd, sz, ss = (np.asarray(v, float) for v in surface)
+        values += [sz + 2 * ss, sz - 2 * ss]
+    out = _start(1000.0, 330.0, title, ident)
+    p = _Panel(out, (70.0, 58.0, 900.0, 222.0), _range(np.r_[np.asarray(distance_m, float), d]),
+               _range(np.concatenate(values)))
+    p.frame("distance along line (m)", "elevation (m)", "")
+    if surface is not None:
+        p.band(sd, sz - 2 * ss, sz + 2 * ss, colours.FIT_CURVE)
+        p.line(sd, sz, colours.FIT_CURVE, width=1.6)
+    p.line(distance_m, ground_m, colours.GROUND, width=1.6)
+    p.errorbars(d[ok], (z - 2 * s)[ok], (z + 2 * s)[ok], colours.PICK_USED)
+    p.marks(d[ok], z[ok], f"{ident}o")
+    p.marks(d[~ok], z[~ok], f"{ident}x")
+    items = [("line", colours.GROUND, "ground"), ("use", f"{ident}o", "reflector points (±2σ)")]
+    if np.any(~ok):
+        items.append(("use", f"{ident}x", "flagged gathers"))
+    if surface is not None:
+        items += [("line", colours.FIT_CURVE, "mapped surface"), ("band", colours.FIT_CURVE, "±2σ")]
+    _key(out, items, 70.0, 38.0)
+    out.append("</svg>\n")
+    return "\n".join(out).encode("utf-8")
+
+
+def variogram_svg(lag_m, semivariance, n_pairs, model=None, title: str = "", ident: str = "v") -> bytes:
+    """Experimental semivariogram (points sized by their pair count) and the fitted model.
+
+    Parameters
+    ----------
+    lag_m, semivariance, n_pairs : (k,) array_like
+        Lag (m), semivariance (m²) and number of pairs of each lag class.
+    model : callable, optional
+        The fitted model, ``model(h)`` in m² at lag ``h`` (m), with a ``model`` name attribute.
+    title : str
+        Heading.
+    ident : str
+        Prefix of the element ids.
+
+    Returns
+    -------
+    bytes
+        A standalone SVG document (520 x 360).
+    """
+    lag = np.asarray(lag_m, float)
+    gam = np.asarray(semivariance, float)
+    n = np.asarray(n_pairs, float)
+    ok = np.isfinite(gam) & np.isfinite(lag) & (n > 0)
+    h = np.linspace(0.0, (lag[ok].max() if ok.any() else 1.0) * 1.05, 120)
+    curve = np.asarray(model(h), float) if model is not None else np.full(len(h), np.nan)
+    top = np.nanmax(np.r_[gam[ok], curve, 0.0]) if ok.any() or np.isfinite(curve).any() else 1.0
+    out = _start(520.0, 360.0, title, ident)
+    p = _Panel(out, (70.0, 60.0, 430.0, 240.0), (0.0, float(h[-1]) or 1.0), (0.0, 1.08 * top or 1.0))
+    p.frame("lag (m)", "semivariance (m²)", "")
+    p.circles(lag[ok], gam[ok], 2.0 + 5.0 * np.sqrt(n[ok] / max(n[ok].max(), 1.0)) if ok.any() else 2.0,
+              colours.PICK_USED)
+    items = [("use", f"{ident}o", "experimental (size: pairs)")]
+    if model is not None:
+        p.line(h, curve, colours.FIT_CURVE, width=1.8)
+        items.append(("line", colours.FIT_CURVE, f"{getattr(model, 'model', '')} model".strip()))
+    _key(out, items, 70.0, 38.0)
+    out.append("</svg>\n")
+    return "\n".join(out).encode("utf-8")
+
+
+def scatter_svg(x, y, xlabel: str, ylabel: str, title: str = "", one_to_one: bool = True,
+                ident: str = "c") -> bytes:
+    """A scatter plot with the 1:1 line (e.g. cross-validation: datum against its estimate from the others).
+
+    Parameters
+    ----------
+    x, y : (n,) array_like
+        The values (same unit on both axes when ``one_to_one``).
+    xlabel, ylabel, title : str
+        Axis labels with units, and the heading.
+    one_to_one : bool
+        Draw the line y = x over the common range.
+    ident : str
+        Prefix of the element ids.
+
+    Returns
+    -------
+    bytes
+        A standalone SVG document (440 x 420).
+    """
+    x, y = np.asarray(x, float), np.asarray(y, float)
+    both = np.r_[x, y] if one_to_one else None
+    out = _start(440.0, 420.0, title, ident)
+    p = _Panel(out, (70.0, 40.0, 340.0, 320.0), _range(both if one_to_one else x), _range(both if one_to_one else y))
+    p.frame(xlabel, ylabel, "")
+    if one_to_one and np.isfinite(both).any():
+        lo, hi = p.xlim
+        p.line((lo, hi), (lo, hi), "#888", width=1.0)
+    p.marks(x, y, f"{ident}o")
+    out.append("</svg>\n")
     return "\n".join(out).encode("utf-8")

@@ -127,3 +127,47 @@ def test_layouts_keep_panels_inside_the_drawing(layout, size):
     for i, a in enumerate(boxes):  # no two panels overlap
         for b in boxes[i + 1 :]:
             assert a[0] + a[2] <= b[0] or b[0] + b[2] <= a[0] or a[1] + a[3] <= b[1] or b[1] + b[3] <= a[1]
+
+
+def test_section_band_and_bars_are_where_the_values_are():
+    """The ±2σ band and bars of the section: their pixel extents map back to z ± 2σ (linear axes)."""
+    from rockhead.core.report.qc_svg import section_svg
+
+    dist = np.linspace(0.0, 100.0, 21)
+    ground = 240.0 + 0.02 * dist
+    z = 220.0 - 0.05 * dist
+    s = np.full(len(dist), 0.5)
+    ok = np.ones(len(dist), bool)
+    ok[4] = False
+    svg = section_svg(dist, ground, (dist, z, s, ok), surface=(dist, z, s), title="line A", ident="sA")
+    root = ET.fromstring(svg)
+    paths = list(root.iter(SVG + "path"))
+    band = next(p for p in paths if p.get("fill-opacity") == "0.2")
+    bars = next(p for p in paths if p.get("d", "").count("V") == int(ok.sum()))
+    # the vertical span of each bar is 4 sigma; on a linear axis all spans are equal (0.1 px rounding)
+    spans = [abs(float(seg.split("V")[1]) - float(seg.split()[1].split("V")[0]))
+             for seg in bars.get("d").split("M")[1:]]
+    assert np.ptp(spans) <= 0.2 and spans[0] > 5
+    assert band.get("d").endswith("Z")
+    uses = [u.get(XLINK) for u in root.iter(SVG + "use")]
+    assert uses.count("#sAx") == 1 + 1  # the flagged gather, and its key entry
+
+
+def test_variogram_and_scatter_draw_their_data():
+    from rockhead.core.report.qc_svg import scatter_svg, variogram_svg
+
+    class Model:
+        model = "spherical"
+
+        def __call__(self, h):  # spherical model, range 50 m, sill 2 m² (Journel & Huijbregts 1978)
+            h = np.minimum(np.asarray(h, float) / 50.0, 1.0)
+            return 2.0 * (1.5 * h - 0.5 * h**3)
+
+    lag = np.arange(5.0, 80.0, 5.0)
+    svg = variogram_svg(lag, Model()(lag), np.arange(len(lag)) + 10, Model(), "v")
+    root = ET.fromstring(svg)
+    assert len(root.findall(f"./{SVG}circle")) == len(lag)  # the drawn ones (the symbol defs aside)
+    assert "spherical model" in "".join(t.text or "" for t in root.iter(SVG + "text"))
+    svg = scatter_svg(np.arange(10.0), np.arange(10.0) + 0.1, "estimate (m)", "datum (m)", "cv")
+    uses = [u.get(XLINK) for u in ET.fromstring(svg).iter(SVG + "use")]
+    assert uses.count("#co") == 10
