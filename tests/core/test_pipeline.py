@@ -233,10 +233,10 @@ def test_report_is_self_contained_with_cautions(sample_run):
     assert "does not replace borings" in html
     assert "licensed professionals" in html
     assert 'src="http' not in html and "src='http" not in html
-    assert html.count("data:image/png;base64,") >= 4  # map, variogram, cross-validation, sections
-    # one QC figure per gather, embedded and in qc/ (SVG)
+    assert html.count("data:image/png;base64,") >= 2  # the map and the joint-inversion difference map
+    # one QC figure per gather, embedded and in qc/ (SVG); plus the variogram, cross-validation and line sections
     n_qc = len(list((sample_run.out / "qc").glob("gather_*.svg")))
-    assert n_qc == 56 and html.count("data:image/svg+xml;base64,") == n_qc
+    assert n_qc == 56 and html.count("data:image/svg+xml;base64,") == n_qc + 2 + 4
 
 
 def test_cli_bad_input_exits_2_with_one_line(tmp_path, run_cli):
