@@ -391,8 +391,9 @@ def section_svg(distance_m, ground_m, points, surface=None, title: str = "", ide
         sd, sz, ss = (np.asarray(v, float) for v in surface)
         values += [sz + 2 * ss, sz - 2 * ss]
     out = _start(1000.0, 330.0, title, ident)
-    p = _Panel(out, (70.0, 58.0, 900.0, 222.0), _range(np.r_[np.asarray(distance_m, float), d]),
-               _range(np.concatenate(values)))
+    p = _Panel(
+        out, (70.0, 58.0, 900.0, 222.0), _range(np.r_[np.asarray(distance_m, float), d]), _range(np.concatenate(values))
+    )
     p.frame("distance along line (m)", "elevation (m)", "")
     if surface is not None:
         p.band(sd, sz - 2 * ss, sz + 2 * ss, colours.FIT_CURVE)
@@ -440,8 +441,9 @@ def variogram_svg(lag_m, semivariance, n_pairs, model=None, title: str = "", ide
     out = _start(520.0, 360.0, title, ident)
     p = _Panel(out, (70.0, 60.0, 430.0, 240.0), (0.0, float(h[-1]) or 1.0), (0.0, 1.08 * top or 1.0))
     p.frame("lag (m)", "semivariance (m²)", "")
-    p.circles(lag[ok], gam[ok], 2.0 + 5.0 * np.sqrt(n[ok] / max(n[ok].max(), 1.0)) if ok.any() else 2.0,
-              colours.PICK_USED)
+    p.circles(
+        lag[ok], gam[ok], 2.0 + 5.0 * np.sqrt(n[ok] / max(n[ok].max(), 1.0)) if ok.any() else 2.0, colours.PICK_USED
+    )
     items = [("use", f"{ident}o", "experimental (size: pairs)")]
     if model is not None:
         p.line(h, curve, colours.FIT_CURVE, width=1.8)
@@ -451,8 +453,7 @@ def variogram_svg(lag_m, semivariance, n_pairs, model=None, title: str = "", ide
     return "\n".join(out).encode("utf-8")
 
 
-def scatter_svg(x, y, xlabel: str, ylabel: str, title: str = "", one_to_one: bool = True,
-                ident: str = "c") -> bytes:
+def scatter_svg(x, y, xlabel: str, ylabel: str, title: str = "", one_to_one: bool = True, ident: str = "c") -> bytes:
     """A scatter plot with the 1:1 line (e.g. cross-validation: datum against its estimate from the others).
 
     Parameters

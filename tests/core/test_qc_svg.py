@@ -145,8 +145,9 @@ def test_section_band_and_bars_are_where_the_values_are():
     band = next(p for p in paths if p.get("fill-opacity") == "0.2")
     bars = next(p for p in paths if p.get("d", "").count("V") == int(ok.sum()))
     # the vertical span of each bar is 4 sigma; on a linear axis all spans are equal (0.1 px rounding)
-    spans = [abs(float(seg.split("V")[1]) - float(seg.split()[1].split("V")[0]))
-             for seg in bars.get("d").split("M")[1:]]
+    spans = [
+        abs(float(seg.split("V")[1]) - float(seg.split()[1].split("V")[0])) for seg in bars.get("d").split("M")[1:]
+    ]
     assert np.ptp(spans) <= 0.2 and spans[0] > 5
     assert band.get("d").endswith("Z")
     uses = [u.get(XLINK) for u in root.iter(SVG + "use")]
