@@ -34,17 +34,22 @@ if TYPE_CHECKING:  # annotations only: the result types of the steps
 
 __all__ = [
     "BoreholeCheck",
+    "BoreholeDepths",
     "CmpTable",
     "DepthRatio",
     "DesignResult",
     "DixTable",
     "FitStep",
+    "InterfaceMap",
+    "IntervalVelocityMap",
     "MapProducts",
+    "Overburden",
     "PointTable",
     "RunResult",
     "SiteVelocity",
     "SurfaceDiagnostics",
     "TomographyOutcome",
+    "VelocityModelTable",
 ]
 
 
@@ -369,6 +374,143 @@ class CmpTable(PointTable):
 
 
 @dataclass(frozen=True)
+class BoreholeDepths(PointTable):
+    """Depths at the boreholes, one row per borehole and reflector it logged (m below the collar).
+
+    ``depth_m``, ``sigma_m``: the borehole's; ``rms_*``: the seismic-only
+    surface of the gather fits, whose velocity is the rms velocity of the
+    layers above (Dix 1955); ``dix_*``: the seismic-only surface of the depths
+    under the shots from Dix interval velocities; ``joint_*``: the joint
+    estimate, which includes the boreholes (NaN when it was not run).
+    """
+
+    borehole: np.ndarray
+    reflector: np.ndarray
+    collar_z_m: np.ndarray
+    depth_m: np.ndarray
+    sigma_m: np.ndarray
+    rms_depth_m: np.ndarray
+    rms_sigma_m: np.ndarray
+    dix_depth_m: np.ndarray
+    dix_sigma_m: np.ndarray
+    joint_depth_m: np.ndarray
+    joint_sigma_m: np.ndarray
+
+
+@dataclass(frozen=True)
+class InterfaceMap:
+    """One interface of the overburden on the output grid.
+
+    Attributes
+    ----------
+    reflector : str
+        Its label.
+    surface : SurfaceGrid
+        Elevation (m) and its standard deviation (m), masked cells NaN.
+    depth_m, depth_sigma_m : ndarray (ny, nx)
+        Depth below ground and its standard deviation (surface and ground; m),
+        NaN where the surface or the ground is unknown.
+    source : str
+        How it was made.
+    """
+
+    reflector: str
+    surface: SurfaceGrid
+    depth_m: np.ndarray
+    depth_sigma_m: np.ndarray
+    source: str
+
+
+@dataclass(frozen=True)
+class IntervalVelocityMap:
+    """The vertical-average velocity of one layer on the output grid.
+
+    ``top`` and ``base`` bound the layer ("ground" for the first top);
+    ``velocity_m_s`` (ny, nx) is NaN where not estimated; ``sigma_m_s`` its
+    standard deviation where known (else None); ``source`` how it was made.
+    """
+
+    top: str
+    base: str
+    velocity_m_s: np.ndarray
+    sigma_m_s: Optional[np.ndarray]
+    source: str
+
+
+@dataclass(frozen=True)
+class VelocityModelTable:
+    """The velocity model of each layer: which model, its parameters with standard errors, and why.
+
+    One row per layer (top down): ``layer`` (1-based), ``top``, ``base``,
+    ``model`` (constant, lateral, vertical, full; or the Dix value),
+    ``v0_m_s`` (at the layer's centre) and ``se_v0_m_s``, the gradients east,
+    north and with depth ((m/s)/m, NaN where not in the model) and their
+    ``se_*``, ``dix_velocity_m_s`` (median Dix interval velocity of the gather
+    fits) and ``reason`` (why this model).
+    """
+
+    layer: np.ndarray
+    top: np.ndarray
+    base: np.ndarray
+    model: np.ndarray
+    v0_m_s: np.ndarray
+    se_v0_m_s: np.ndarray
+    gradient_east_m_s_per_m: np.ndarray
+    se_gradient_east_m_s_per_m: np.ndarray
+    gradient_north_m_s_per_m: np.ndarray
+    se_gradient_north_m_s_per_m: np.ndarray
+    gradient_depth_m_s_per_m: np.ndarray
+    se_gradient_depth_m_s_per_m: np.ndarray
+    dix_velocity_m_s: np.ndarray
+    reason: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.layer)
+
+    def columns(self) -> Dict[str, np.ndarray]:
+        """Column name -> array, in field order."""
+        return {f.name: getattr(self, f.name) for f in fields(self)}
+
+
+@dataclass(frozen=True)
+class Overburden:
+    """Every interface of the overburden, top down, and the velocities between them.
+
+    Attributes
+    ----------
+    order : tuple of str
+        Reflector labels top down.
+    source : str
+        "joint estimate" or "gather fits" (when the joint estimate did not run).
+    interfaces : tuple of InterfaceMap
+        One per label of ``order`` that could be mapped.
+    intervals : tuple of IntervalVelocityMap
+        One per layer that could be estimated.
+    velocity_model : VelocityModelTable
+        One row per layer.
+    boreholes : BoreholeDepths or None
+        The depth comparison at the boreholes (None without boreholes).
+    notes : tuple of str
+        What was done and why.
+    """
+
+    order: Tuple[str, ...]
+    source: str
+    interfaces: Tuple[InterfaceMap, ...]
+    intervals: Tuple[IntervalVelocityMap, ...]
+    velocity_model: VelocityModelTable
+    boreholes: Optional[BoreholeDepths] = None
+    notes: Tuple[str, ...] = ()
+
+    def interface(self, reflector: str) -> InterfaceMap:
+        """The map of one interface (KeyError when it has none)."""
+        for m in self.interfaces:
+            if m.reflector == str(reflector):
+                return m
+        raise KeyError(reflector)
+
+
+@dataclass(frozen=True)
 class MapProducts:
     """What the final surface gives on the grid besides its elevation (see :func:`~.workflow.products_step`).
 
@@ -455,6 +597,9 @@ class RunResult:
         the depth (surface and ground combined; NaN where no depth is given) (m).
     ground_buffer_m : float or None
         How far beyond the stations' outline depth is given (m).
+    overburden : Overburden or None
+        Every interface, interval velocities, the velocity model and the
+        borehole depths (:func:`~.overburden.overburden_step`).
     notes : tuple of str
         What the run decided and why (one sentence each).
     outputs : tuple of Path
@@ -489,6 +634,7 @@ class RunResult:
     ground_sigma_m: Optional[np.ndarray] = None
     depth_sigma_m: Optional[np.ndarray] = None
     ground_buffer_m: Optional[float] = None
+    overburden: Optional[Overburden] = None
     notes: Tuple[str, ...] = ()
     outputs: Tuple[Path, ...] = ()
 

@@ -24,6 +24,7 @@ import numpy as np
 
 from .errors import GridError, InversionError, RockheadWarning, SurveyConfigError
 from .grid import GridSpec, bilinear, nice_step
+from .overburden import layer_order, layered_ties, mapped_boreholes, overburden_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import (
     BoreholeCheck,
@@ -48,7 +49,7 @@ from .surface.contours import contours_layer
 from .surface.corridor import line_corridor
 from .surface.trend import grid_with_trend, predict_with_trend
 from .survey.ground import GroundModel
-from .tomography.layered import BoreholeTies, LayeredSettings, estimate_layered, reflector_order
+from .tomography.layered import LayeredSettings, estimate_layered, reflector_order
 from .tomography.start import GatherPoints, curvature_flags, robust_site_velocity, start_from_gathers
 
 SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
@@ -296,12 +297,14 @@ def site_velocity(fit: FitStep, reflector: str) -> SiteVelocity:
 
 
 def tomography_step(
-    survey, fit, start, spec, forced=False, progress=None, corridor=None, site=None, ground=None
+    survey, fit, start, spec, forced=False, progress=None, corridor=None, site=None, ground=None, boreholes_all=None
 ) -> TomographyOutcome:
     """Joint estimate from every pick of every reflector: layered overburden, interfaces, velocities.
 
-    The reflectors are layered top down (``[processing] layers``, else by
-    median pick time); the gather fits start the model through Dix interval
+    The reflectors are layered top down (``[processing] layers``, else by the
+    median t0 of their gathers, :func:`~.overburden.layer_order`); every depth
+    the boreholes logged (``boreholes_all``, all reflectors; else those of the
+    mapped reflector in ``survey``) is a datum with its sigma; the gather fits start the model through Dix interval
     velocities (:mod:`.tomography.start`) and :func:`~.tomography.layered.estimate_layered`
     does the rest. The surface of the mapped reflector is the posterior mean
     at every output cell, its std the posterior standard deviation (not
@@ -328,11 +331,12 @@ def tomography_step(
             raise InversionError(f"the joint inversion is not supported by this survey: {why}")
         return TomographyOutcome.skipped(why)
     pick_labels = labels[g.gather]
-    order = reflector_order(pick_labels[use], g.time_s[use], getattr(st, "layers", None))
+    present = set(pick_labels[use].tolist())
+    order = reflector_order(pick_labels[use], g.time_s[use], [x for x in layer_order(fit, st) if x in present])
     use &= np.isin(pick_labels, order)
     start_model = start_from_gathers(GatherPoints.from_fit(g, f, fit.points), order)
     bh = survey.boreholes
-    ties = None if bh is None or not len(bh) else BoreholeTies.from_boreholes(bh, st.reflector)
+    ties = layered_ties(boreholes_all if boreholes_all is not None else bh, order, str(st.reflector))
     res = estimate_layered(
         g.source_xyz[use],
         g.receiver_xyz[use],
@@ -362,7 +366,7 @@ def tomography_step(
     ss = bilinear(spec, res.sigma_unmasked_m[k], x, y)
     keep = np.isfinite(zz) & np.isfinite(ss)
     x, y, zz, ss = x[keep], y[keep], zz[keep], ss[keep]
-    if ties is not None:
+    if bh is not None and len(bh):
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
     _, diag = grid_with_trend(x, y, zz, ss, spec, st, corridor=corridor)
@@ -419,8 +423,12 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
             f"only {n_ok} of {len(fit.fits)} gathers gave a usable fit; a surface needs at least 3 "
             "(see the status and reason of each gather in the shots layer)"
         )
-    survey = replace(survey, settings=replace(settings, reflector=mapped_reflector(fit, settings)))
-    settings = survey.settings
+    survey_all = replace(survey, settings=replace(settings, reflector=mapped_reflector(fit, settings)))
+    settings = survey_all.settings
+    picked = tuple(sorted(set(np.asarray(fit.gathers.reflector).astype(str).tolist())))
+    # the mapped reflector's boreholes (depth_m, or its depth_<label>_m column) feed the map's steps;
+    # survey_all keeps every reflector the boreholes logged, for the other interfaces
+    survey = replace(survey_all, boreholes=mapped_boreholes(survey_all.boreholes, settings.reflector, picked))
     notes = []
     dix = dix_table(fit)
     cmp = None
@@ -495,6 +503,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
             corridor=corridor,
             site=site,
             ground=ground,
+            boreholes_all=survey_all.boreholes,
         )
         layers = tomography.inversion.names if tomography.inversion is not None else ()
         if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
@@ -519,6 +528,8 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
                 "reported as a cross-check"
             )
     maps = products_step(spec, surface, ground, settings, fit.points)
+    overburden = overburden_step(survey_all, fit, spec, ground, maps, surface, dix, tomography, corridor, check)
+    notes.extend(overburden.notes if len(overburden.order) > 1 else ())
     progress.set_progress(100)
     return RunResult(
         survey=survey,
@@ -541,6 +552,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
         ground_sigma_m=maps.ground_sigma_m,
         depth_sigma_m=maps.depth_sigma_m,
         ground_buffer_m=maps.ground_buffer_m,
+        overburden=overburden,
         dix=dix,
         relocation_history_m=history,
         borehole_check=check,
@@ -553,7 +565,10 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
 
 
 def mapped_reflector(fit, settings) -> str:
-    """The reflector label to map: the one asked for, the only one, or the deepest (latest median t0)."""
+    """The reflector label to map: the one asked for, the only one, the last of ``layers``, or the deepest.
+
+    The deepest is the one with the latest median t0 of its ok gathers.
+    """
     labels = np.asarray(fit.gathers.reflector).astype(str)
     names = sorted(set(labels.tolist()))
     if settings.reflector is not None:
@@ -564,6 +579,8 @@ def mapped_reflector(fit, settings) -> str:
         return str(settings.reflector)
     if len(names) == 1:
         return names[0]
+    if settings.layers:
+        return str(settings.layers[-1])
     ok = fit.fits.status == "ok"
     t0 = {n: np.nanmedian(np.where(ok & (labels == n), fit.fits.t0_s, np.nan)) for n in names}
     return max(names, key=lambda n: (np.nan_to_num(t0[n], nan=-1.0), n))

@@ -24,6 +24,7 @@ from ..workflow import surface_data
 from . import layers as lay
 from .geopackage import layers_3d, qgis_layer_metadata
 from .handoff import PROBABILITY_NAME, handoff_layers, handoff_run_info, write_handoff
+from .overburden import overburden_layers, overburden_rasters
 from .provenance import elevation_crs, provenance
 from .styles import layer_styles, raster_styles, styles_table
 
@@ -54,6 +55,7 @@ def result_layers(result: RunResult, sections=None) -> dict:
     if cv is not None:
         x, y, _, _ = surface_data(result.fit.points, result.survey.settings.reflector)
         out["cross_validation"] = lay.cross_validation_layer(x, y, cv)
+    out.update(overburden_layers(result))
     out.update(handoff_layers(result, sections))
     out["run_info"] = lay.run_info_layer(run_info(result))
     return out
@@ -108,6 +110,15 @@ def run_info(result: RunResult) -> list:
     if result.depth_ratio is not None:
         d = result.depth_ratio
         items.append(("borehole_depth_ratio", f"{d.factor:.4f} +- {d.sigma_factor:.4f}"))
+    ob = result.overburden
+    if ob is not None:
+        items.append(
+            (
+                "layers",
+                f"{' over '.join(ob.order)} (top down; " + ("[processing] layers)" if s.layers else "by median t0)"),
+            )
+        )
+        items.append(("interfaces", f"{', '.join(m.reflector for m in ob.interfaces)} mapped from the {ob.source}"))
     items.append(("calibrate_velocity", s.calibrate_velocity))
     items += handoff_run_info(result)
     items.append(
@@ -228,6 +239,18 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
             timestamp=prov.timestamp,
             software=prov.software,
         )
+    for name, (grid, description, is_elevation) in overburden_rasters(result).items():
+        write_raster(
+            outputs.stage(out_dir / name),
+            grid,
+            spec,
+            z_crs if is_elevation else crs,
+            metadata=prov.items(),
+            description=description,
+            timestamp=prov.timestamp,
+            software=prov.software,
+        )
+        rasters[name] = grid
     if result.design is not None and result.design.probability is not None:
         rasters[PROBABILITY_NAME] = result.design.probability
     for name, qml in raster_styles(rasters).items():  # QGIS reads a raster's default style beside it

@@ -697,6 +697,23 @@ def raster_qml(ramp, lo: float, hi: float, suffix: str = " m", prefix: str = "",
     return _qml(body)
 
 
+#: Name ending -> style of the rasters of the other interfaces and layers (``wt_depth.tif``, ...).
+RASTER_SUFFIX_STYLES = (
+    ("_depth_sigma.tif", RASTER_STYLES["depth_sigma.tif"]),
+    ("_elevation_sigma.tif", RASTER_STYLES["elevation_sigma.tif"]),
+    ("_depth.tif", RASTER_STYLES["reflector_depth.tif"]),
+    ("_elevation.tif", RASTER_STYLES["reflector_elevation.tif"]),
+)
+
+
+def _style_by_suffix(name: str):
+    """The style of an interface raster by its name's ending, or None."""
+    for ending, style in RASTER_SUFFIX_STYLES:
+        if name.endswith(ending):
+            return style
+    return None
+
+
 def raster_styles(rasters: dict) -> dict:
     """QML of each raster written, over its own data range.
 
@@ -708,13 +725,15 @@ def raster_styles(rasters: dict) -> dict:
     Returns
     -------
     dict
-        File name -> QML (only the rasters :data:`RASTER_STYLES` knows).
+        File name -> QML (only the rasters :data:`RASTER_STYLES` knows, and the
+        other interfaces' by their name's ending).
     """
     out = {}
     for name, grid in rasters.items():
-        if name not in RASTER_STYLES:
+        style = RASTER_STYLES.get(name) or _style_by_suffix(name)
+        if style is None:
             continue
-        ramp, suffix, prefix, decimals, fixed = RASTER_STYLES[name]
+        ramp, suffix, prefix, decimals, fixed = style
         v = np.asarray(grid, float).astype(np.float32).astype(float)  # the values the GeoTIFF holds
         v = v[np.isfinite(v)]
         if fixed is not None:

@@ -1,7 +1,8 @@
 """Content of report.html: what a reviewer of the survey asks to see.
 
 Sections: summary and cautions; site map; the surface (method, variogram,
-cross-validation, comparison of the two methods); boreholes; true dips at line
+cross-validation, comparison of the two methods); boreholes; every interface of
+the overburden (velocity model, depths at the boreholes); true dips at line
 crossings; misties; flagged gathers; one section per line (section view, fit
 table, QC figures); method notes.
 """
@@ -15,6 +16,7 @@ from ..results import RunResult
 from . import figures, qc_svg
 from .handoff_content import handoff_section
 from .html import Report
+from .overburden_content import overburden_section
 
 
 def _rms(values):
@@ -32,6 +34,7 @@ def build_report(result: RunResult, layers, qc_figures, sections=None) -> str:
     _map(rep, result)
     _surface(rep, result)
     _boreholes(rep, result)
+    overburden_section(rep, result)
     _dips(rep, result)
     _misties(rep, result)
     _flagged(rep, fit)

@@ -9,7 +9,8 @@
     (required), ``boreholes``, ``dem``, ``pick_edits`` (optional; without it
     ``pick_edits.csv`` beside the TOML file is read when it exists, see
     :mod:`.edits`); paths relative to the TOML file. ``[processing]``: the fields of :class:`core.survey.model.Settings`
-    except ``dem`` and ``work_crs``, type- and range-checked. ``[design]``,
+    except ``dem`` and ``work_crs``, type- and range-checked; ``layers`` (reflector
+    labels top down) also against the picks. ``[design]``,
     ``[sections]`` and the title-block keys of ``[survey]`` are those of
     :mod:`.handoff`. Unknown keys in any table are errors naming the nearest
     valid key. Outputs are never set here (the command line's ``--out``). A
@@ -27,11 +28,14 @@ import dataclasses
 import difflib
 import math
 import re
+import warnings
 from pathlib import Path
 from typing import Any, Optional, Union
 
+import numpy as np
+
 from .. import crs as crsmod
-from ..errors import GeoreferenceError, SurveyConfigError
+from ..errors import GeoreferenceError, RockheadWarning, SurveyConfigError
 from .csvfile import read_csv_table, split_lines
 from .edits import EDITS_FILE_NAME, apply_pick_edits, read_pick_edits
 from .handoff import DESIGN_KEYS, SECTION_KEYS, SURVEY_EXTRA_KEYS, read_handoff
@@ -51,7 +55,7 @@ try:  # Python 3.11+
 except ModuleNotFoundError:  # pragma: no cover - Python 3.9/3.10
     import tomli as tomllib  # type: ignore[no-redef]
 
-__all__ = ["load_survey", "read_settings", "toml_keys"]
+__all__ = ["check_layers", "load_survey", "read_settings", "toml_keys"]
 
 _SURVEY_KEYS = ("name", "crs", "work_crs")
 _SURVEY_KEYS = ("name", "crs", "work_crs")
@@ -220,6 +224,80 @@ def _check_settings_value(toml: _Toml, key: str, value: Any, field: dataclasses.
     return value
 
 
+def _layers_value(toml: _Toml, value: Any) -> tuple:
+    """``[processing] layers``: reflector labels top down, as a tuple of distinct non-empty texts."""
+    example = 'e.g. layers = ["wt", "rock"] (the reflector labels of picks.csv, shallowest first)'
+    if isinstance(value, str) or not isinstance(value, list):
+        raise toml.error("processing", "layers", f"value {value!r} is {_type_name(value)}; expected a list, {example}")
+    if not value:
+        raise toml.error("processing", "layers", f"the list is empty; name the reflectors top down, {example}")
+    out = []
+    for item in value:
+        if isinstance(item, bool) or not isinstance(item, (str, int)) or not str(item).strip():
+            raise toml.error(
+                "processing", "layers", f"item {item!r} is not a reflector label (text in quotes); {example}"
+            )
+        label = str(item).strip()
+        if label in out:
+            raise toml.error("processing", "layers", f"reflector {label!r} is named twice: each layer once, top down")
+        out.append(label)
+    return tuple(out)
+
+
+def check_layers(settings: Settings, picks: Any, toml_path: Union[str, Path], toml_text: str = "") -> None:
+    """Check ``[processing] layers`` (and ``reflector``) against the reflector labels of the picks.
+
+    Parameters
+    ----------
+    settings : Settings
+        With ``layers`` (None: nothing to check) and ``reflector``.
+    picks : Picks
+        The picks (their ``reflector`` labels).
+    toml_path, toml_text : str or Path, str
+        survey.toml and its text, to name the line.
+
+    Raises
+    ------
+    SurveyConfigError
+        A layer no pick has, or a mapped ``reflector`` that is not one of the layers.
+
+    Warns
+    -----
+    RockheadWarning
+        Picked reflectors left out of the layers (they are fitted gather by
+        gather but not in the layered estimate).
+    """
+    if settings.layers is None:
+        return
+    toml = _Toml(Path(toml_path), toml_text)
+    picked = sorted(set(np.asarray(picks.reflector).astype(str).tolist()))
+    missing = [label for label in settings.layers if label not in picked]
+    if missing:
+        raise toml.error(
+            "processing",
+            "layers",
+            f"{', '.join(repr(m) for m in missing)} {'is' if len(missing) == 1 else 'are'} not a reflector of the "
+            f"picks; the picks name {', '.join(picked)}",
+        )
+    if settings.reflector is not None and str(settings.reflector) not in settings.layers:
+        raise toml.error(
+            "processing",
+            "reflector",
+            f"reflector {settings.reflector!r} is not one of the layers {', '.join(settings.layers)}; add it to "
+            "layers or map one of them",
+        )
+    left = [label for label in picked if label not in settings.layers]
+    if left:
+        warnings.warn(
+            RockheadWarning(
+                f"{Path(toml_path).name}, line {toml.line_of('processing', 'layers')}: reflector"
+                f"{'s' if len(left) > 1 else ''} {', '.join(repr(x) for x in left)} picked but not in [processing] "
+                "layers: fitted gather by gather, left out of the layered estimate"
+            ),
+            stacklevel=2,
+        )
+
+
 def _choice_hint(value: Any, choices: tuple) -> str:
     close = difflib.get_close_matches(str(value).lower(), list(choices), n=1, cutoff=0.5)
     return f"; did you mean {close[0]!r}?" if close else ""
@@ -263,10 +341,13 @@ def read_settings(
     if not isinstance(table, dict):
         raise toml.error(None, "processing", f"[processing] must be a table, not {_type_name(table)}")
     fields = _processing_fields()
-    values = {}
+    values: dict[str, Any] = {}
     for key, value in table.items():
         if key not in fields:
             raise _unknown_key(toml, "processing", key, tuple(fields))
+        if key == "layers":
+            values[key] = _layers_value(toml, value)
+            continue
         values[key] = _check_settings_value(toml, key, value, fields[key])
     vmin = values.get("velocity_min_m_s", Settings.velocity_min_m_s)
     vmax = values.get("velocity_max_m_s", Settings.velocity_max_m_s)
@@ -475,6 +556,7 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         raise toml.error("survey", "crs", f"{exc}") from exc
     stations = rows.stations(*to_working_crs(rows.table, rows.x, rows.y, crs_in, crs_work))
     picks = read_picks(paths["picks"], settings.default_sigma_ms, stations)
+    check_layers(settings, picks, toml.path, toml.text)
     if "pick_edits" not in paths and (toml.path.parent / EDITS_FILE_NAME).is_file():
         paths["pick_edits"] = (toml.path.parent / EDITS_FILE_NAME).resolve()
     edits = None

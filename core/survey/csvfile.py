@@ -30,7 +30,7 @@ import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Union
+from typing import Optional, Union
 
 from ..errors import InputFileError, RockheadWarning
 
@@ -269,6 +269,7 @@ def read_csv_table(
     optional: Sequence[str] = (),
     role: str = "CSV",
     allow_empty: bool = False,
+    optional_pattern: Optional[str] = None,
 ) -> CsvTable:
     """Read and check the structure of one CSV file.
 
@@ -289,6 +290,9 @@ def read_csv_table(
     allow_empty : bool
         Accept a header without data rows (a log such as the pick edits may
         hold none).
+    optional_pattern : str, optional
+        Regular expression: header names it matches in full are optional
+        columns too (kept in header order after the named optional ones).
 
     Returns
     -------
@@ -340,6 +344,11 @@ def read_csv_table(
                 None,
                 f"fields are separated by spaces: use commas; expected the header {wanted}",
             )
+    if optional_pattern is not None:
+        pattern = re.compile(optional_pattern)
+        optional = list(optional) + [
+            c for c in columns if c not in required and c not in optional and pattern.fullmatch(c)
+        ]
     known_names = set(required) | set(optional)
     if columns and not known_names & set(columns) and any(_looks_numeric(c) for c in columns):
         raise InputFileError(

@@ -91,7 +91,7 @@ class Picks:
 
 @dataclass(frozen=True)
 class Boreholes:
-    """Boreholes that reached the reflector.
+    """Boreholes and the depths of the reflectors they logged.
 
     Attributes
     ----------
@@ -102,20 +102,31 @@ class Boreholes:
     z_m : (n,) ndarray
         Collar elevation (m).
     depth_m : (n,) ndarray
-        Depth of the reflector below the collar (m).
+        Depth of the mapped reflector below the collar (m; the ``depth_m``
+        column, NaN without one).
     sigma_m : (n,) ndarray
         Standard error of that depth (m).
     file_line : (n,) int ndarray
         1-based line of each row in boreholes.csv.
+    interface_depth_m, interface_sigma_m : dict of str to (n,) ndarray
+        Depths of named reflectors (columns ``depth_<label>_m``; NaN where a
+        borehole did not log it) and their standard errors
+        (``sigma_<label>_m``, else the default), by lower-case label.
+    path : Path or None
+        boreholes.csv, and ``header_line`` its header's line (for messages).
     """
 
     name: np.ndarray  # str
     x_m: np.ndarray
     y_m: np.ndarray
     z_m: np.ndarray  # collar elevation
-    depth_m: np.ndarray  # depth of the reflector below the collar
+    depth_m: np.ndarray  # depth of the mapped reflector below the collar
     sigma_m: np.ndarray  # standard error of that depth
     file_line: np.ndarray
+    interface_depth_m: dict = field(default_factory=dict)
+    interface_sigma_m: dict = field(default_factory=dict)
+    path: Optional[Path] = None
+    header_line: Optional[int] = None
 
     def __len__(self) -> int:
         """Return the number of boreholes."""
@@ -125,6 +136,41 @@ class Boreholes:
     def elevation_m(self) -> np.ndarray:
         """Reflector elevation at each borehole (collar - depth)."""
         return self.z_m - self.depth_m
+
+    def column_of(self, reflector: str) -> Optional[str]:
+        """The ``depth_<label>_m`` label that names ``reflector`` (case-insensitively), or None."""
+        want = str(reflector).lower()
+        found = [k for k in self.interface_depth_m if k.lower() == want]
+        return found[0] if found else None
+
+    def depths(self, reflector: str, mapped: str) -> tuple[np.ndarray, np.ndarray]:
+        """Depth below the collar (m, NaN where not logged) and its sigma (m) of one reflector.
+
+        The plain ``depth_m`` column is the mapped reflector's; ``depth_<label>_m``
+        columns name theirs.
+        """
+        label = self.column_of(reflector)
+        if label is not None:
+            return self.interface_depth_m[label], self.interface_sigma_m[label]
+        if str(reflector) == str(mapped):
+            return self.depth_m, self.sigma_m
+        return np.full(len(self), np.nan), np.full(len(self), np.nan)
+
+    def for_reflector(self, reflector: str, mapped: str) -> Boreholes:
+        """The boreholes that logged ``reflector``, its depth and sigma as ``depth_m``, ``sigma_m``."""
+        d, s = self.depths(reflector, mapped)
+        keep = np.isfinite(d)
+        return Boreholes(
+            self.name[keep],
+            self.x_m[keep],
+            self.y_m[keep],
+            self.z_m[keep],
+            d[keep],
+            s[keep],
+            self.file_line[keep],
+            path=self.path,
+            header_line=self.header_line,
+        )
 
 
 @dataclass(frozen=True)
@@ -148,6 +194,7 @@ class Settings:
     line_corridor_m: Optional[float] = None  # full width mapped along a single line; None: the reflector depth
     line_cross_dip_deg: float = 10.0  # cross-line dip a single line's sigma allows for (assumed, degrees)
     reflector: Optional[str] = None  # reflector to map; None: the only one, or the deepest picked
+    layers: Optional[tuple] = None  # reflector labels top down; None: ordered by median t0
     min_line_angle_deg: float = 30.0  # least angle between line directions to combine
     cell_size_m: Optional[float] = None  # None: chosen from the data spacing
     max_distance_m: Optional[float] = None  # None: from the data spacing; farther = nodata

@@ -610,13 +610,26 @@ def read_boreholes(
         raise InputFileError(
             path, None, "sigma_m", f"default sigma {default_sigma_m!r} m must be >= {MIN_SIGMA_M:g} (and > 0)"
         )
-    table = read_csv_table(path, BOREHOLE_COLUMNS, BOREHOLE_OPTIONAL, role="boreholes")
+    try:
+        table = read_csv_table(
+            path, BOREHOLE_COLUMNS, BOREHOLE_OPTIONAL, role="boreholes", optional_pattern=INTERFACE_COLUMNS
+        )
+    except InputFileError as err:
+        # without depth_m, the depths of named reflectors (depth_<label>_m) are enough
+        if err.field != "depth_m":
+            raise
+        table = read_csv_table(
+            path, BOREHOLE_COLUMNS[:4], BOREHOLE_OPTIONAL, role="boreholes", optional_pattern=INTERFACE_COLUMNS
+        )
+        if not any(c.startswith("depth_") for c in table.columns):
+            raise err from None
     path = table.path
     n = len(table.rows)
     name = np.empty(n, dtype=object)
-    depth = np.empty(n)
-    sigma = np.empty(n)
+    depth = np.full(n, np.nan)
+    sigma = np.full(n, float(default_sigma_m))
     j_sig = table.columns.index("sigma_m") if "sigma_m" in table.columns else None
+    j_depth = table.columns.index("depth_m") if "depth_m" in table.columns else None
     seen: dict[Any, int] = {}
     for i, r in enumerate(table.rows):
         lineno = table.lines[i]
@@ -628,29 +641,11 @@ def read_boreholes(
         seen[name[i]] = lineno
     x, y, z = _coords(table)
     for i, r in enumerate(table.rows):
-        lineno = table.lines[i]
-        depth[i] = table.number(i, "depth_m", r[4])
-        if depth[i] <= 0:
-            raise InputFileError(
-                path,
-                lineno,
-                "depth_m",
-                f"depth {r[4]!r} m must be > 0 (depth below the collar, down positive)",
-            )
+        if j_depth is not None:
+            depth[i] = _depth_value(table, i, "depth_m", r[j_depth])
         if j_sig is not None and r[j_sig] != "":
-            s = table.number(i, "sigma_m", r[j_sig])
-            if s <= 0:
-                raise InputFileError(path, lineno, "sigma_m", f"sigma {r[j_sig]!r} m must be > 0")
-            if s < MIN_SIGMA_M:
-                raise InputFileError(
-                    path,
-                    lineno,
-                    "sigma_m",
-                    f"sigma {r[j_sig]!r} m is below {MIN_SIGMA_M:g} m: give a realistic error",
-                )
-            sigma[i] = s
-        else:
-            sigma[i] = default_sigma_m
+            sigma[i] = _sigma_value(table, i, "sigma_m", r[j_sig])
+    interface_depth, interface_sigma = _interface_columns(table, default_sigma_m)
     crs_in = _parse_crs_or_raise(crs_in, path)
     lon, lat = locate_lonlat(table, x, y, crs_in)
     crs_in, crs_work = _resolve_crs(crs_in, crs_work, lon, lat, path)
@@ -665,7 +660,65 @@ def read_boreholes(
         depth_m=depth,
         sigma_m=sigma,
         file_line=np.asarray(table.lines, dtype=int),
+        interface_depth_m=interface_depth,
+        interface_sigma_m=interface_sigma,
+        path=path,
+        header_line=table.header_line,
     )
+
+
+#: Columns of the depths of named reflectors in boreholes.csv and their errors: depth_<label>_m, sigma_<label>_m
+INTERFACE_COLUMNS = r"(depth|sigma)_.+_m"
+
+
+def _depth_value(table: CsvTable, i: int, field: str, text: str) -> float:
+    """A borehole depth (m, > 0), located errors."""
+    value = table.number(i, field, text)
+    if value <= 0:
+        raise InputFileError(
+            table.path, table.lines[i], field, f"depth {text!r} m must be > 0 (depth below the collar, down positive)"
+        )
+    return value
+
+
+def _sigma_value(table: CsvTable, i: int, field: str, text: str) -> float:
+    """A borehole depth's standard error (m, >= MIN_SIGMA_M), located errors."""
+    value = table.number(i, field, text)
+    if value <= 0:
+        raise InputFileError(table.path, table.lines[i], field, f"sigma {text!r} m must be > 0")
+    if value < MIN_SIGMA_M:
+        raise InputFileError(
+            table.path, table.lines[i], field, f"sigma {text!r} m is below {MIN_SIGMA_M:g} m: give a realistic error"
+        )
+    return value
+
+
+def _interface_columns(table: CsvTable, default_sigma_m: float) -> tuple[dict, dict]:
+    """Depths of named reflectors (``depth_<label>_m``; empty: not logged) and their sigmas, by label."""
+    depths: dict[str, np.ndarray] = {}
+    sigmas: dict[str, np.ndarray] = {}
+    labels = [c[len("depth_") : -len("_m")] for c in table.columns if c.startswith("depth_") and c != "depth_m"]
+    for c in table.columns:
+        if c.startswith("sigma_") and c != "sigma_m" and c[len("sigma_") : -len("_m")] not in labels:
+            raise InputFileError(
+                table.path,
+                table.header_line,
+                c,
+                f"column '{c}' gives the error of a depth no column gives: add 'depth_{c[len('sigma_') :]}' "
+                "or remove it",
+            )
+    for label in labels:
+        jd = table.columns.index(f"depth_{label}_m")
+        js = table.columns.index(f"sigma_{label}_m") if f"sigma_{label}_m" in table.columns else None
+        d = np.full(len(table.rows), np.nan)
+        sd = np.full(len(table.rows), float(default_sigma_m))
+        for i, r in enumerate(table.rows):
+            if r[jd] != "":  # empty: this borehole did not log the reflector
+                d[i] = _depth_value(table, i, f"depth_{label}_m", r[jd])
+            if js is not None and r[js] != "":
+                sd[i] = _sigma_value(table, i, f"sigma_{label}_m", r[js])
+        depths[label], sigmas[label] = d, sd
+    return depths, sigmas
 
 
 def _warn_far_boreholes(table: CsvTable, name: np.ndarray, xw: np.ndarray, yw: np.ndarray, stations: Stations) -> None:

@@ -86,6 +86,7 @@ def bowl(tmp_path_factory):
     return site, survey, fit, dips_step(survey, fit)[0]
 
 
+@pytest.mark.slow  # exact Fermat times and fits of a four-line survey
 def test_one_measurement_per_crossing_from_the_gathers_within_the_radius(bowl):
     _, _, fit, dips = bowl
     ok = dips.status == "ok"
@@ -101,6 +102,7 @@ def test_one_measurement_per_crossing_from_the_gathers_within_the_radius(bowl):
         assert dips.n_gathers[k] == int(np.sum((d <= 48.0) & (fit.fits.status == "ok")))
 
 
+@pytest.mark.slow  # exact Fermat times and fits of a four-line survey
 def test_crossing_dip_is_the_local_dip_of_a_curved_reflector(bowl):
     site, _, fit, dips = bowl
     ok = dips.status == "ok"
