@@ -179,6 +179,7 @@ VECTOR_LAYERS = (
     ("misties", "Line misties", None, False),
     ("reflector_points", "Reflector points", None, False),
     ("stations", "Stations", None, False),
+    ("borehole_depths", "Depths at boreholes, every interface", "Other interfaces and layers", False),
     ("contours", "Reflector depth contours", "Depth", True),
     ("contours", "Reflector elevation contours", "Elevation", True),
 )
@@ -191,7 +192,9 @@ RASTER_LAYERS = (
     ("probability_above_design.tif", "Probability of rock above the design level", "Uncertainty", True),
 )
 #: subgroup -> visible (only the depth map shows at first)
-SUBGROUPS = (("Depth", True), ("Elevation", False), ("Uncertainty", False))
+SUBGROUPS = (("Depth", True), ("Elevation", False), ("Uncertainty", False), ("Other interfaces and layers", False))
+#: endings of the rasters of the other interfaces of a layered overburden (core.products.overburden)
+OTHER_RASTER_ENDINGS = ("_elevation.tif", "_depth.tif", "_depth_sigma.tif", "_elevation_sigma.tif")
 _DESCRIPTIONS = {
     "contours": "Contours of the mapped reflector surface; index contours heavier and labelled (m).",
     "dip_measurements": "True dip and strike where crossing lines meet (strike and dip symbol, right-hand rule).",
@@ -272,6 +275,7 @@ def load_results(out_dir: str, project: QgsProject = None, group_name: str = GRO
             style_raster(layer, ramp, suffix.strip(), prefix, decimals)
         set_caution(layer, display)
         loaded.append((layer, sub, visible))
+    loaded += _other_interface_rasters(out_dir)
     for layer, sub, visible in loaded:
         if sub is None:
             project.addMapLayer(layer, False)
@@ -286,6 +290,28 @@ def load_results(out_dir: str, project: QgsProject = None, group_name: str = GRO
             project.addMapLayer(layer, False)
             sub_node.addLayer(layer).setItemVisibilityChecked(visible)
     return group
+
+
+def _other_interface_rasters(out_dir: str) -> list:
+    """(layer, subgroup, visible) of every other interface's rasters and every interval velocity, hidden.
+
+    Their styles are the .qml files beside them (written by the core); the
+    interval velocities have none and show in QGIS's default grey ramp.
+    """
+    fixed = {filename for filename, *_ in RASTER_LAYERS}
+    out = []
+    for filename in sorted(os.listdir(out_dir)):
+        other = filename.endswith(OTHER_RASTER_ENDINGS) or (
+            filename.startswith("interval_velocity_") and filename.endswith(".tif")
+        )
+        if filename in fixed or not other:
+            continue
+        layer = QgsRasterLayer(os.path.join(out_dir, filename), filename[: -len(".tif")].replace("_", " "), "gdal")
+        if not layer.isValid():
+            continue
+        set_caution(layer, filename)
+        out.append((layer, "Other interfaces and layers", False))
+    return out
 
 
 def group_layers(group: QgsLayerTreeGroup, visible_only=True) -> list:

@@ -363,3 +363,35 @@ def test_shipped_project_legends_are_the_data_ranges(qgis_app, core_results, tmp
     assert "' m'" in vectors["Reflector depth contours"].labeling().settings().fieldName
     assert "residual" in vectors["Boreholes"].labeling().settings().fieldName
     project.clear()
+
+
+@pytest.mark.slow
+def test_other_interfaces_load_in_their_subgroup(qgis_app, tmp_path):
+    """A layered survey's other interfaces and interval velocities load hidden, styled by their .qml."""
+    import sys
+
+    from qgis.core import QgsProject, QgsRasterLayer
+    from rockhead.core import job
+
+    sys.path.insert(0, str(REPO / "tests" / "core"))
+    from test_pipeline_layers import _write_survey  # two flat reflectors, exact times
+
+    path = _write_survey(tmp_path)
+    path.write_text(path.read_text() + '[processing]\nsurface_method = "kriging"\n')
+    job.run(path, tmp_path / "out")
+    group = styling.load_results(str(tmp_path / "out"), QgsProject.instance())
+    sub = next(g for g in group.children() if g.name() == "Other interfaces and layers")
+    names = sorted(node.layer().name() for node in sub.findLayers())
+    assert names == [
+        "interval velocity ground to top",
+        "interval velocity top to rock",
+        "top depth",
+        "top depth sigma",
+        "top elevation",
+        "top elevation sigma",
+    ]
+    assert not any(node.isVisible() for node in sub.findLayers())
+    depth = next(n.layer() for n in sub.findLayers() if n.layer().name() == "top depth")
+    assert isinstance(depth, QgsRasterLayer)
+    legend = [label for label, _colour in depth.renderer().legendSymbologyItems()]
+    assert len(legend) == len(styling.DEPTH_RAMP)  # the depth ramp of its .qml (the core's style)
