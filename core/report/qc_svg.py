@@ -473,7 +473,7 @@ def scatter_svg(x, y, xlabel: str, ylabel: str, title: str = "", one_to_one: boo
         A standalone SVG document (440 x 420).
     """
     x, y = np.asarray(x, float), np.asarray(y, float)
-    both = np.r_[x, y] if one_to_one else None
+    both = np.r_[x, y]
     out = _start(440.0, 420.0, title, ident)
     p = _Panel(out, (70.0, 40.0, 340.0, 320.0), _range(both if one_to_one else x), _range(both if one_to_one else y))
     p.frame(xlabel, ylabel, "")
