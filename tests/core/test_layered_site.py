@@ -86,3 +86,47 @@ def test_mapped_cells_cover_the_lines(runs):
     inside = hull.find_simplex(np.column_stack([x.ravel(), y.ravel()])).reshape(x.shape) >= 0
     mapped = ~result.surface.mask
     assert np.mean(mapped[inside]) >= 0.99, np.mean(mapped[inside])
+
+
+def test_the_map_comes_from_the_joint_estimate_of_both_layers(runs):
+    for result in runs.values():
+        assert result.method_used == "tomography"
+        assert result.tomography.inversion.names == ("wt", "rock")
+        assert any("2 reflectors picked" in note for note in result.notes)
+
+
+def test_the_numbers_of_the_issue(runs):
+    """Print the issue's numbers; the gather fits' rms velocities put the rock ~3 m too deep (Dix 1955)."""
+    result = runs["seismic only"]
+    err, sigma, _ = _errors(result)
+    kerr, _, _ = _errors(replace(result, surface=result.kriged_surface))
+    print(f"layered site, seismic only: rms {np.sqrt(np.mean(err**2)):.3f} m, mean {np.mean(err):+.3f} m, "
+          f"{np.mean(np.abs(err) <= 2 * sigma):.3f} within 2 sigma over {err.size} cells (the issue's upper bound of "
+          f"0.98 is not met: sigma is conservative between the lines); kriged gather fits rms "
+          f"{np.sqrt(np.mean(kerr**2)):.2f} m, mean {np.mean(kerr):+.2f} m")
+    assert np.mean(kerr) < -2.0
+
+
+def test_the_map_passes_the_boreholes(runs):
+    from rockhead.core.grid import bilinear
+
+    result = runs["with boreholes"]
+    bh = result.survey.boreholes
+    res = result.tomography.inversion
+    at = bilinear(result.spec, res.elevation_unmasked_m[res.index("rock")], bh.x_m, bh.y_m)
+    # within 0.2 m: twice the boreholes' stated 0.1 m (common practice: a 2-sigma tie)
+    assert np.all(np.abs(at - bh.elevation_m) < 0.2), at - bh.elevation_m
+
+
+def test_vertical_average_velocity_is_not_the_rms_velocity(runs):
+    result = runs["seismic only"]
+    res = result.tomography.inversion
+    truth = json.loads((SITE / "truth.json").read_text(encoding="utf-8"))["boreholes"]
+    v_true = np.mean([b["vertical_average_velocity_to_rock_m_s"] for b in truth])
+    v_est = res.median_average_velocity_m_s("rock")
+    print(f"vertical-average velocity to rock: {v_est:.0f} m/s (truth at the boreholes {v_true:.0f} m/s); "
+          f"rms velocity of the gather fits {result.site_velocity.velocity_m_s:.0f} m/s")
+    # median over the mapped cells against the mean of three boreholes: the site's lateral change
+    # makes them differ by ~1-2 %; the rms velocity of the gather fits is more than 5 % higher
+    assert v_est == pytest.approx(v_true, rel=0.03)
+    assert result.site_velocity.velocity_m_s > 1.05 * v_est
