@@ -84,6 +84,7 @@ __all__ = [
     "reflector_order",
 ]
 
+RANGE_CAP_NODES = 20  # longest prior range, in node spacings (conditioning of the lattice prior)
 BIC_STRONG = 6.0  # "strong" evidence between two models [Kass & Raftery 1995]
 METHOD_NAME = "joint estimate of a layered overburden (all picks, all reflectors, boreholes; Bishop et al. 1985)"
 
@@ -587,6 +588,13 @@ def _estimate(
             floor = 2 * node_spec.cell_size_m
             note = f"; range raised to two node spacings ({floor:g} m)"
             prior = replace(prior, range_m=floor, source=prior.source + note)
+        # a range of many node spacings makes the lattice precision so ill-conditioned (its
+        # eigenvalues span (1 + 8 / (kappa h)^2)^(nu + 1)) that the exact covariances lose their
+        # digits; relief longer than 20 node spacings is left to the plane trend
+        cap = RANGE_CAP_NODES * node_spec.cell_size_m
+        if cfg.priors is None and prior.range_m > cap:
+            note = f"; range lowered to {RANGE_CAP_NODES} node spacings ({cap:g} m; longer relief is the trend's)"
+            prior = replace(prior, range_m=cap, source=prior.source + note)
         priors.append(prior)
         mean_z.append(float(np.mean(z)))
     tops = [top, *mean_z[:-1]]
@@ -668,11 +676,14 @@ def _estimate(
         # two starts for the free vertical gradients: none, and a velocity rising by a quarter
         # across each layer (the rule in soils, compaction). The data of a layer with a strong
         # gradient also fit, less well, a gradient of the other sign, so a single start may stop
-        # in the wrong basin; the start with the lower objective is kept
+        # in the wrong basin; the start with the lower objective is kept (the second is tried only
+        # when the first ends with a velocity falling with depth somewhere)
         thick_now = np.maximum(np.array(tops) - np.array(mean_z), 1.0)
         gz0 = -0.25 * state.theta[:, 0] / thick_now
         tries = []
-        for g_start in (0.0 * gz0, gz0) if layout.free[:, 3].any() else (0.0 * gz0,):
+        for g_start in (0.0 * gz0, gz0):
+            if tries and not np.any(layout.free[:, 3] & (tries[0][1].theta[:, 3] > 0)):
+                break  # the first start already ended with every free gradient rising with depth
             trial = state.copy()
             trial.theta[:, 3] = np.where(layout.free[:, 3], g_start, 0.0)
             trial = forward(layout, data, trial, start=state.paths.point_xyz[..., :2])
@@ -777,7 +788,7 @@ def _estimate(
         notes.append(f"{n_nm} picks could not be modelled ({why}); they are flagged, not used")
     if scale > 1.0:
         notes.append(f"pick errors multiplied by {scale:.2f} (reduced chi-square {chi2:.2f} with the stated errors)")
-    converged = all(h.converged for h in hist_all)
+    converged = hist_all[-1].converged  # the stages before only start the next one
     misfit = np.concatenate([np.asarray(h.misfit_history) for h in hist_all])
     progress.set_progress(100.0)
     return LayeredEstimate(

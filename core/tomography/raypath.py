@@ -273,6 +273,20 @@ def _flat_start(model, S, R, k):
     return S[:, None, :2] + dist[..., None] * u[:, None, :]
 
 
+def _batched_cholesky(H):
+    """Which of the matrices (n, d, d) are positive definite (d small), by a vectorised Cholesky."""
+    n, d, _ = H.shape
+    L = np.zeros_like(H)
+    ok = np.ones(n, bool)
+    for j in range(d):
+        v = H[:, j, j] - np.sum(L[:, j, :j] ** 2, axis=1)
+        ok &= v > 0
+        L[:, j, j] = np.sqrt(np.where(v > 0, v, 1.0))
+        for i in range(j + 1, d):
+            L[:, i, j] = (H[:, i, j] - np.sum(L[:, i, :j] * L[:, j, :j], axis=1)) / L[:, j, j]
+    return ok, L
+
+
 def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
     """Damped Newton iterations on the path points' (x, y); returns (X, converged, iterations)."""
     n, m, _ = X.shape
@@ -316,24 +330,34 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             hxx, hxy, hyy = H[:, 0, 0], H[:, 0, 1], H[:, 1, 1]
             half = 0.5 * (hxx + hyy)
             lam_min = half - np.sqrt(np.maximum(0.25 * (hxx - hyy) ** 2 + hxy * hxy, 0.0))
-            shift = np.where(lam_min < floor, floor - lam_min, 0.0)
+            shift = np.where(lam_min < 1e-3 * floor, floor - lam_min, 0.0)
             hxx, hyy = hxx + shift, hyy + shift
             det = hxx * hyy - hxy * hxy
             step = -np.stack(
                 [(hyy * gflat[:, 0] - hxy * gflat[:, 1]) / det, (-hxy * gflat[:, 0] + hxx * gflat[:, 1]) / det], axis=-1
             )[:, None, :]
         else:
-            lam, V = np.linalg.eigh(H)
-            lam = np.maximum(lam, floor[:, None])
-            step = -np.einsum("nij,nj->ni", V, np.einsum("nji,nj->ni", V, gflat) / lam).reshape(na, m, 2)
+            step = np.empty((na, 2 * m))
+            pd, _ = _batched_cholesky(H - 1e-3 * floor[:, None, None] * np.eye(2 * m))
+            if pd.any():  # positive definite: the Newton step itself (quadratic convergence)
+                step[pd] = -np.linalg.solve(H[pd], gflat[pd][..., None])[..., 0]
+            if (~pd).any():  # the others (far from a minimum): lift their spectrum to the floor
+                lam, V = np.linalg.eigh(H[~pd])
+                lam = np.maximum(lam, floor[~pd, None])
+                step[~pd] = -np.einsum("nij,nj->ni", V, np.einsum("nji,nj->ni", V, gflat[~pd]) / lam)
+            step = step.reshape(na, m, 2)
         move = np.max(np.linalg.norm(step, axis=-1), axis=1)
         scale = np.minimum(1.0, max_step / np.maximum(move, 1e-300))
         step *= scale[:, None, None]
         slope = np.sum(gflat * step.reshape(na, 2 * m), axis=1)
         t0 = np.sum(o["t"], axis=1)
         alpha = np.ones(na)
-        todo = np.arange(na)
+        # a step below a tenth of the node spacing from a positive-definite Hessian is a plain
+        # Newton step near the solution: taken as it is (no line search needed)
+        todo = np.flatnonzero(move * scale > 0.1 * max_step)
         for _ in range(30):  # Armijo backtracking, vectorised
+            if todo.size == 0:
+                break
             t1 = _total_time(model, Sa[todo], Ra[todo], Xa[todo] + alpha[todo, None, None] * step[todo], iface, layer)
             bad = t1 > t0[todo] + 1e-4 * alpha[todo] * slope[todo] + 1e-13 * t0[todo]
             if not np.any(bad):
@@ -358,7 +382,7 @@ def trace_reflections(
     receiver_xyz,
     interface,
     start_xy=None,
-    tolerance_m: float = 1e-5,
+    tolerance_m: float = 1e-4,
     max_iterations: int = 40,
 ) -> LayeredPaths:
     """Two-way reflection times and sensitivities of all picks through the layered model.
@@ -376,7 +400,7 @@ def trace_reflections(
         branch); default: flat-layer Snell paths. NaN rows fall back to that.
     tolerance_m : float
         Newton steps below this (m) end a path's iterations (Newton converges
-        quadratically: the path is then within ~1e-9 m of stationary, and the
+        quadratically: the path is then within ~1e-8 m of stationary, and the
         time, stationary itself, within round-off).
     max_iterations : int
         Newton iterations at most.

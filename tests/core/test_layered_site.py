@@ -100,10 +100,12 @@ def test_the_numbers_of_the_issue(runs):
     result = runs["seismic only"]
     err, sigma, _ = _errors(result)
     kerr, _, _ = _errors(replace(result, surface=result.kriged_surface))
-    print(f"layered site, seismic only: rms {np.sqrt(np.mean(err**2)):.3f} m, mean {np.mean(err):+.3f} m, "
-          f"{np.mean(np.abs(err) <= 2 * sigma):.3f} within 2 sigma over {err.size} cells (the issue's upper bound of "
-          f"0.98 is not met: sigma is conservative between the lines); kriged gather fits rms "
-          f"{np.sqrt(np.mean(kerr**2)):.2f} m, mean {np.mean(kerr):+.2f} m")
+    print(
+        f"layered site, seismic only: rms {np.sqrt(np.mean(err**2)):.3f} m, mean {np.mean(err):+.3f} m, "
+        f"{np.mean(np.abs(err) <= 2 * sigma):.3f} within 2 sigma over {err.size} cells (the issue's upper bound of "
+        f"0.98 is not met: sigma is conservative between the lines); kriged gather fits rms "
+        f"{np.sqrt(np.mean(kerr**2)):.2f} m, mean {np.mean(kerr):+.2f} m"
+    )
     assert np.mean(kerr) < -2.0
 
 
@@ -124,8 +126,10 @@ def test_vertical_average_velocity_is_not_the_rms_velocity(runs):
     truth = json.loads((SITE / "truth.json").read_text(encoding="utf-8"))["boreholes"]
     v_true = np.mean([b["vertical_average_velocity_to_rock_m_s"] for b in truth])
     v_est = res.median_average_velocity_m_s("rock")
-    print(f"vertical-average velocity to rock: {v_est:.0f} m/s (truth at the boreholes {v_true:.0f} m/s); "
-          f"rms velocity of the gather fits {result.site_velocity.velocity_m_s:.0f} m/s")
+    print(
+        f"vertical-average velocity to rock: {v_est:.0f} m/s (truth at the boreholes {v_true:.0f} m/s); "
+        f"rms velocity of the gather fits {result.site_velocity.velocity_m_s:.0f} m/s"
+    )
     # median over the mapped cells against the mean of three boreholes: the site's lateral change
     # makes them differ by ~1-2 %; the rms velocity of the gather fits is more than 5 % higher
     assert v_est == pytest.approx(v_true, rel=0.03)

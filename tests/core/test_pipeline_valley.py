@@ -123,7 +123,8 @@ def test_joint_estimate_maps_the_valley_with_honest_sigma(valley_run):
     # allows for the cells' correlation). The issue's upper bound of 98 % is NOT met: the
     # isotropic prior fitted to the points' variogram does not know that the valley runs
     # straight between the lines, so sigma there is wider than the realised error
-    # (measured when written: 0.47 m rms, 100 % within 2 sigma).
+    # (measured when written: 0.48 m rms, 100 % within 2 sigma; 0.45-0.52 m as the iterations
+    # were tuned, so the 0.5 m target is met with little margin).
     assert rms <= 0.5, rms
     assert cover >= 0.90, cover
     assert rms < 0.5 * krms
