@@ -680,7 +680,7 @@ def _estimate(
         # when the first ends with a velocity falling with depth somewhere)
         thick_now = np.maximum(np.array(tops) - np.array(mean_z), 1.0)
         gz0 = -0.25 * state.theta[:, 0] / thick_now
-        tries = []
+        tries: list = []
         for g_start in (0.0 * gz0, gz0):
             if tries and not np.any(layout.free[:, 3] & (tries[0][1].theta[:, 3] > 0)):
                 break  # the first start already ended with every free gradient rising with depth
