@@ -24,6 +24,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 from . import __version__
 from .errors import CancelledError, RockheadError
 from .progress import NullProgress, StderrProgress
+from .text import printable
 
 CAUTION = (
     "A seismic depth map is an interpretation with stated uncertainty. It does not replace borings; "
@@ -66,8 +67,18 @@ def _edits_line(survey) -> str:
 
 
 def _one_line(message: object) -> str:
-    """The text of ``message`` (an error, a warning or a string) on one line."""
-    return " ".join(str(message).split())
+    """The text of ``message`` (an error, a warning or a string) on one printable line.
+
+    Whitespace runs are collapsed and control characters (terminal escape
+    sequences from a label or a survey name) are shown escaped, never sent raw.
+    """
+    return printable(" ".join(str(message).split()))
+
+
+def _print_warnings(caught) -> None:
+    for w in caught:
+        if issubclass(w.category, UserWarning):
+            print(f"rockhead: warning: {_one_line(w.message)}", file=sys.stderr)
 
 
 def main(argv: Optional[Sequence[str]] = None) -> int:
@@ -75,55 +86,52 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
 
     0 success; 2 bad input or an output that cannot be written (any
     :class:`~.errors.RockheadError`), one line on stderr; 1 an internal error
-    (a bug), one line, the traceback with ``--debug``; 130 cancelled.
+    (a bug), one line, the traceback with ``--debug``; 130 cancelled. The
+    warnings met are shown whether the run succeeds or fails, before the
+    error, which is the last line on stderr.
     """
     args = _parser().parse_args(argv)
     show_progress = getattr(args, "progress", False) or sys.stderr.isatty()
     progress = StderrProgress() if show_progress else NullProgress()
-    caught = []
-    try:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
+    code, message = 0, None
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
             if args.command == "check":
                 from .survey.config import load_survey
 
                 survey = load_survey(args.survey)
                 n_bh = 0 if survey.boreholes is None else len(survey.boreholes)
                 print(
-                    f"{survey.name}: {len(survey.stations)} stations, {len(survey.picks)} picks, "
-                    f"{n_bh} boreholes; CRS {survey.crs.name}"
+                    f"{printable(survey.name)}: {len(survey.stations)} stations, {len(survey.picks)} picks, "
+                    f"{n_bh} boreholes; CRS {printable(survey.crs.name)}"
                 )
                 if survey.edits is not None:
-                    print(_edits_line(survey))
+                    print(printable(_edits_line(survey)))
             else:
                 from .job import run
 
                 result = run(args.survey, args.out, method=args.method, progress=progress)
-                print(result.summary())
+                print("\n".join(printable(line) for line in result.summary().splitlines()))
                 if result.survey.edits is not None:
-                    print(_edits_line(result.survey))
+                    print(printable(_edits_line(result.survey)))
                 print(f"Caution: {CAUTION}")
-    except CancelledError:
-        print("rockhead: cancelled", file=sys.stderr)
-        return 130
-    except KeyboardInterrupt:
-        print("rockhead: interrupted", file=sys.stderr)
-        return 130
-    except RockheadError as err:
-        print(f"rockhead: error: {_one_line(err)}", file=sys.stderr)
-        return 2
-    except Exception as err:  # an internal error: say so in one line unless --debug
-        if getattr(args, "debug", False):
-            raise
-        print(
-            f"rockhead: internal error: {type(err).__name__}: {_one_line(err)} (rerun with --debug)",
-            file=sys.stderr,
-        )
-        return 1
-    for w in caught:
-        if issubclass(w.category, UserWarning):
-            print(f"rockhead: warning: {_one_line(w.message)}", file=sys.stderr)
-    return 0
+        except CancelledError:
+            code, message = 130, "rockhead: cancelled"
+        except KeyboardInterrupt:
+            code, message = 130, "rockhead: interrupted"
+        except RockheadError as err:
+            code, message = 2, f"rockhead: error: {_one_line(err)}"
+        except Exception as err:  # an internal error: say so in one line unless --debug
+            if getattr(args, "debug", False):
+                _print_warnings(caught)
+                raise
+            code = 1
+            message = f"rockhead: internal error: {type(err).__name__}: {_one_line(err)} (rerun with --debug)"
+    _print_warnings(caught)
+    if message is not None:  # last, so that the error is the last line on stderr
+        print(message, file=sys.stderr)
+    return code
 
 
 if __name__ == "__main__":

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import replace
 from pathlib import Path
 from typing import List, Optional
 
-from .formats.atomic import check_output_dir
+from .errors import RockheadWarning
 from .formats.gdalio import engine
+from .formats.runfolder import RunFolder
 from .handoff.steps import design_step
 from .products import outputs
 from .products.handoff import HANDOFF_NAMES
@@ -28,7 +30,7 @@ OUTPUT_NAMES = (
     *HANDOFF_NAMES,
 )
 
-__all__ = ["OUTPUT_NAMES", "run", "with_design", "write_outputs"]
+__all__ = ["OUTPUT_NAMES", "open_output_folder", "run", "with_design", "write_outputs"]
 
 
 def with_design(result: RunResult, progress=None) -> RunResult:
@@ -42,29 +44,49 @@ def with_design(result: RunResult, progress=None) -> RunResult:
     return result
 
 
-def write_outputs(result: RunResult, out_dir, progress=None) -> List[Path]:
-    """Write every output of ``result`` into ``out_dir`` (atomically, as one set).
+def write_outputs(result: RunResult, out_dir, progress=None, gather_figures: str = "all") -> List[Path]:
+    """Write every output of ``result`` into ``out_dir`` (a folder path or an open RunFolder), as one set.
 
     With ``[design] elevation_m`` and no design answers in ``result`` yet,
-    they are computed first (:func:`with_design`).
+    they are computed first (:func:`with_design`). ``gather_figures`` chooses
+    the gathers with a QC figure: ``all``, ``flagged`` or ``none``.
     """
     progress = progress or NullProgress()
-    return outputs.write_all(with_design(result, progress), out_dir, progress)
+    return outputs.write_all(with_design(result, progress), out_dir, progress, gather_figures)
+
+
+def open_output_folder(survey, out_dir) -> RunFolder:
+    """Check, lock and prepare ``out_dir`` for a run of ``survey`` (see :class:`RunFolder`).
+
+    Warns (:class:`~.errors.RockheadWarning`) when leftovers of a killed run
+    were tidied away. The caller closes it (``with``).
+    """
+    folder = RunFolder(out_dir, survey.input_files()).open()
+    if folder.stale_lock:
+        warnings.warn(
+            f"output folder '{folder.requested}': an earlier run ({folder.previous_owner}) was killed while "
+            "writing it; its lock and leftovers were removed, its earlier complete outputs kept",
+            RockheadWarning,
+            stacklevel=2,
+        )
+    return folder
 
 
 def run(survey_path, out_dir, method: Optional[str] = None, progress=None) -> RunResult:
     """Read the survey, run the whole job and write every output into ``out_dir``.
 
-    Returns the :class:`~.results.RunResult` with its design answers and
-    ``outputs``, the files written.
+    The output folder is checked and locked before the computation starts (a
+    second run into it at the same time refuses at once) and replaced as a
+    whole at the end (:class:`~.formats.runfolder.RunFolder`). Returns the
+    :class:`~.results.RunResult` with its design answers and ``outputs``,
+    the files written.
     """
     progress = progress or NullProgress()
     survey = load_survey(survey_path)
-    inputs = [Path(p) for p in survey.files.values() if p is not None] + [Path(survey_path)]
-    check_output_dir(out_dir, inputs, OUTPUT_NAMES)
     engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
-    result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
-    stage = SubProgress(progress, 85, 100)
-    result = with_design(result, stage)
-    written = write_outputs(result, Path(out_dir), stage)
+    with open_output_folder(survey, Path(out_dir)) as folder:
+        result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
+        stage = SubProgress(progress, 85, 100)
+        result = with_design(result, stage)
+        written = write_outputs(result, folder, stage)
     return replace(result, outputs=tuple(written))

@@ -14,6 +14,8 @@ from typing import TYPE_CHECKING, Any, Dict, Mapping, Optional, Tuple, Union
 
 import numpy as np
 
+from .text import printable
+
 if TYPE_CHECKING:  # annotations only: the result types of the steps
     from shapely.geometry.base import BaseGeometry
 
@@ -643,7 +645,7 @@ class RunResult:
         f = self.fit.fits
         n_ok = int(np.sum(f.status == "ok"))
         lines = [
-            f"{self.survey.name}: {len(f)} gathers fitted ({n_ok} ok, {len(f) - n_ok} flagged), "
+            f"{printable(self.survey.name)}: {len(f)} gathers fitted ({n_ok} ok, {len(f) - n_ok} flagged), "
             f"{int(f.picks_rejected.sum())} of {len(f.residual_s)} picks rejected",
         ]
         est = int(np.sum(~self.surface.mask))

@@ -16,6 +16,7 @@ from ..formats.landxml import grid_tin, issue_date
 from ..progress import NullProgress
 from ..report.sheet import SheetInfo
 from ..results import DesignResult
+from ..text import printable
 from ..workflow import surface_data
 from .design import probability_above, rock_volume
 from .sections import Interface, Section, build_section
@@ -176,7 +177,7 @@ def sheet_info(result, timestamp=None) -> SheetInfo:
     if conv is not None:
         extra.append(("grid convergence", f"{conv:+.3f}° at the site centre (PROJ meridian convergence)"))
     return SheetInfo(
-        survey=sv.name,
+        survey=printable(sv.name),
         issued=issue_date(timestamp).isoformat(),
         software=f"Rockhead {__version__}",
         crs=crs_label(sv.crs),

@@ -22,6 +22,7 @@ from ..progress import check_cancel
 from ..report import figures
 from ..report.map_sheet import MapOverlays, MapPage, map_sheet
 from ..report.section_sheet import section_sheet
+from ..text import file_stem, printable
 
 __all__ = [
     "HANDOFF_NAMES",
@@ -32,6 +33,7 @@ __all__ = [
     "handoff_run_info",
     "map_content",
     "section_file_stem",
+    "section_file_stems",
     "section_files",
     "write_handoff",
 ]
@@ -43,9 +45,18 @@ HANDOFF_NAMES = (MAP_SHEET_NAME, LANDXML_NAME, PROBABILITY_NAME)
 
 
 def section_file_stem(name: str) -> str:
-    """File stem of a section: ``section_<name>`` with only letters, digits, '-' and '_'."""
-    safe = "".join(c if c.isalnum() or c in "-_" else "_" for c in str(name))
-    return f"section_{safe}"
+    """File stem of one section: ``section_<name>`` with only letters, digits, '-' and '_'.
+
+    A name that had to be changed or cut gets a short hash (:func:`~..text.file_stem`);
+    :func:`section_file_stems` also keeps the stems of several sections apart.
+    """
+    return file_stem("section", name)
+
+
+def section_file_stems(sections) -> list:
+    """File stems of ``sections``, unique even case-insensitively ("A B"/"A_B", "A"/"a")."""
+    used: set = set()
+    return [file_stem("section", s.name, used=used) for s in sections]
 
 
 def design_volumes_layer(design) -> Layer:
@@ -86,7 +97,7 @@ def sections_layer(sections, fmt) -> Layer:
             "length_m": np.array([s.length_m for s in sections]),
             "corridor_m": np.array([s.corridor_m for s in sections]),
             "boreholes": np.array([len(s.boreholes) for s in sections], dtype=np.int64),
-            "file": np.array([f"{section_file_stem(s.name)}.{fmt}" for s in sections], dtype=object),
+            "file": np.array([f"{stem}.{fmt}" for stem in section_file_stems(sections)], dtype=object),
         },
         "LINESTRING",
         "Alignments of the sections (seismic lines and [sections] alignments); chainage from the first vertex",
@@ -260,7 +271,7 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
         surface_name=f"reflector {result.survey.settings.reflector}",
         description=f"{result.method_used} surface of the seismic reflector (elevation, m); an interpretation with "
         f"stated uncertainty ({spread}): check against borings",
-        project_name=result.survey.name,
+        project_name=printable(result.survey.name),
         vertical_datum=h.vertical_datum,
         version=info.software.split()[-1],
     )
@@ -282,9 +293,8 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
         )
     sections = sections if sections is not None else sections_step(result)
     plan = _plan(overlays)
-    for sec in sections:
+    for sec, stem in zip(sections, section_file_stems(sections)):
         check_cancel(progress)
-        stem = section_file_stem(sec.name)
         sheet, table = section_files(result, sec, h.section_format, info, plan)
         outputs.stage(out_dir / f"{stem}.{h.section_format}").write_bytes(sheet)
         write_csv(outputs.stage(out_dir / f"{stem}.csv"), table)

@@ -1,25 +1,26 @@
 """Write a :class:`~rockhead.core.results.RunResult` to its output folder.
 
-Every file is staged beside its target and renamed only when the whole set is
-written (:class:`~.atomic.OutputSet`): a run that fails or is cancelled half
-way leaves the previous outputs byte-identical and no partial file.
+Every file is written into the staging folder of a
+:class:`~.runfolder.RunFolder`, which replaces the output folder as a whole
+once the set is complete: a run that fails, is cancelled or is killed half way
+leaves the previous outputs byte-identical and no partial file.
 """
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import List, Tuple
 
 import numpy as np
 
 from ..errors import OutputError
-from ..formats.atomic import OutputSet
 from ..formats.dxf import write_contours_dxf
 from ..formats.gdalio import gdal_timestamp, write_layers, write_raster
 from ..formats.qgis_gpkg import add_layer_metadata
+from ..formats.runfolder import RunFolder
 from ..formats.tables import write_layer_csv
 from ..progress import check_cancel
 from ..results import RunResult
+from ..text import file_stem, printable
 from ..workflow import surface_data
 from . import layers as lay
 from .geopackage import layers_3d, qgis_layer_metadata
@@ -154,8 +155,27 @@ def result_rasters(result: RunResult) -> dict:
     }
 
 
-def gather_qc_figures(result: RunResult):
-    """Yield (gather index, file name, SVG bytes) of the QC figure of every gather."""
+GATHER_FIGURES = ("all", "flagged", "none")
+
+
+def figure_gathers(result: RunResult, which: str = "all") -> np.ndarray:
+    """Indices of the gathers that get a QC figure: ``all``, ``flagged`` (not ok, or with rejected picks), ``none``."""
+    f = result.fit.fits
+    if which == "none":
+        return np.zeros(0, dtype=int)
+    if which == "flagged":
+        return np.flatnonzero((f.status != "ok") | (np.asarray(f.picks_rejected) > 0))
+    if which != "all":
+        raise ValueError(f"gather_figures must be one of {', '.join(GATHER_FIGURES)}, not {which!r}")
+    return np.arange(len(f))
+
+
+def gather_qc_figures(result: RunResult, which: str = "all"):
+    """Yield (gather index, file name, SVG bytes) of the QC figure of the gathers chosen by ``which``.
+
+    File names are portable and unique even case-insensitively
+    (:func:`~..text.file_stem`); labels in titles are shown printable.
+    """
     from ..report.qc_svg import gather_svg
 
     g, f = result.fit.gathers, result.fit.fits
@@ -164,9 +184,13 @@ def gather_qc_figures(result: RunResult):
     model = g.time_s - f.residual_s
     order = np.argsort(g.gather, kind="stable")
     bounds = np.searchsorted(g.gather[order], np.arange(g.n_gathers + 1))
-    for k in range(g.n_gathers):
+    used: set = set()  # file names so far, case-folded: "A B"/"A_B" and "A"/"a" get their own files
+    for k in figure_gathers(result, which):
         sel = order[bounds[k] : bounds[k + 1]]
-        title = f"line {g.line[k]}, shot {g.shot[k]}, reflector {g.reflector[k]}: {f.status[k]}"
+        title = (
+            f"line {printable(g.line[k], 40)}, shot {printable(g.shot[k], 40)}, "
+            f"reflector {printable(g.reflector[k], 40)}: {f.status[k]}"
+        )
         if f.status[k] != "ok":
             title += f" ({f.reason[k]})"
         params = (
@@ -179,30 +203,36 @@ def gather_qc_figures(result: RunResult):
         svg = gather_svg(
             x_along[sel], g.time_s[sel], model[sel], f.rejected[sel], f.excluded[sel], title, params, ident=f"g{k}"
         )
-        yield k, f"gather_{_safe(g.line[k])}_{_safe(g.shot[k])}_{_safe(g.reflector[k])}.svg", svg
+        yield k, file_stem("gather", g.line[k], g.shot[k], g.reflector[k], used=used) + ".svg", svg
 
 
-def _safe(text) -> str:
-    return "".join(c if c.isalnum() or c in "-_" else "_" for c in str(text))
+def write_all(result: RunResult, out_dir, progress, gather_figures: str = "all") -> list:
+    """Write every output into ``out_dir`` as one set; returns the files written.
 
-
-def write_all(result: RunResult, out_dir, progress) -> list:
-    """Write every output; returns the list of files written.
-
-    A system error while writing (disk full, permissions, a vanished folder)
-    becomes :class:`~.errors.OutputError`; the staged files are removed and
-    the previous outputs stay as they were.
+    ``out_dir`` is a folder path or an open :class:`~.runfolder.RunFolder`
+    (the command line opens it before computing, to hold its lock through the
+    run). A system error while writing (disk full, permissions, a vanished
+    folder) becomes :class:`~.errors.OutputError`; the staged files are
+    removed and the previous outputs stay as they were. ``gather_figures``
+    chooses the gathers whose QC figure is drawn (:func:`figure_gathers`).
     """
+    if isinstance(out_dir, RunFolder):
+        return _guarded(_write_all, result, out_dir, progress, gather_figures)
+    with RunFolder(out_dir, result.survey.input_files()) as folder:
+        return _guarded(_write_all, result, folder, progress, gather_figures)
+
+
+def _guarded(write, result, folder: RunFolder, *args) -> list:
     try:
-        return _write_all(result, Path(out_dir), progress)
+        return write(result, folder, *args)
     except OSError as exc:
         raise OutputError(
-            f"could not write the outputs in {out_dir}: {exc.strerror or exc}"
+            f"could not write the outputs in {folder.requested}: {exc.strerror or exc}"
             f"{f' ({exc.filename})' if exc.filename else ''}; earlier outputs there are unchanged"
         ) from exc
 
 
-def _stage_map(outputs, result, out_dir, layers, progress) -> None:
+def _stage_map(folder: RunFolder, result, layers, progress) -> None:
     """Stage the map products: the GeoPackage (with its styles), CSV tables, GeoTIFFs (with .qml), DXF."""
     crs = result.survey.crs
     spec = result.spec
@@ -212,7 +242,7 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
     gpkg_layers, layer_md = layers_3d(layers, result, prov.vertical_datum)
     gpkg_layers["layer_styles"] = styles_table(layer_styles(layers), layers, stamp)
     gpkg = write_layers(
-        outputs.stage(out_dir / GPKG_NAME),
+        folder.path(GPKG_NAME),
         gpkg_layers,
         z_crs,
         dataset_metadata=prov.items(),
@@ -222,15 +252,14 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
     # QGIS's own layer metadata (title, abstract with the caution, history), shown in each layer's properties
     records = qgis_layer_metadata({k: v for k, v in gpkg_layers.items() if k != "layer_styles"}, prov, layer_md)
     add_layer_metadata(gpkg, records, gdal_timestamp(prov.timestamp))
-    (out_dir / "csv").mkdir(exist_ok=True)
     for name, layer in layers.items():
-        write_layer_csv(outputs.stage(out_dir / "csv" / f"{name}.csv"), layer)
+        write_layer_csv(folder.path(f"csv/{name}.csv"), layer)
     progress.set_progress(15)
     rasters = result_rasters(result)
     for name, grid in rasters.items():
         # elevations carry the vertical datum; depth below ground and sigma are lengths, not heights
         write_raster(
-            outputs.stage(out_dir / name),
+            folder.path(name),
             grid,
             spec,
             z_crs if name == ELEVATION_NAME else crs,
@@ -241,7 +270,7 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
         )
     for name, (grid, description, is_elevation) in overburden_rasters(result).items():
         write_raster(
-            outputs.stage(out_dir / name),
+            folder.path(name),
             grid,
             spec,
             z_crs if is_elevation else crs,
@@ -254,7 +283,7 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
     if result.design is not None and result.design.probability is not None:
         rasters[PROBABILITY_NAME] = result.design.probability
     for name, qml in raster_styles(rasters).items():  # QGIS reads a raster's default style beside it
-        outputs.stage((out_dir / name).with_suffix(".qml")).write_text(qml, encoding="utf-8")
+        folder.path(name.rsplit(".", 1)[0] + ".qml").write_text(qml, encoding="utf-8")
     if len(result.contours):
         for kind in ("elevation", "depth"):
             what = (
@@ -263,7 +292,7 @@ def _stage_map(outputs, result, out_dir, layers, progress) -> None:
                 else "z = depth of the reflector below ground (m, positive down)"
             )
             write_contours_dxf(
-                outputs.stage(out_dir / f"contours_{kind}.dxf"),
+                folder.path(f"contours_{kind}.dxf"),
                 result.contours,
                 kind=kind,
                 comments=[f"Reflector {kind} contours; {what}.", *prov.lines()],
@@ -276,48 +305,46 @@ def write_map(result, out_dir, progress) -> list:
 
     The interpretation loop's quick update after a pick edit: the map layers
     follow within a second, the documents (report, sheets, sections) come
-    with the whole run that follows. Written as one set, like
-    :func:`write_all`; returns the files written.
+    with the whole run that follows. The other files of the folder's last run
+    are carried over (:meth:`~.runfolder.RunFolder.carry_over`) and the folder
+    is replaced as one set, like :func:`write_all`; returns the files written.
     """
     from ..handoff.steps import sections_step
 
-    out_dir = Path(out_dir)
-    try:
-        out_dir.mkdir(parents=True, exist_ok=True)
+    def write(result, folder, progress):
         sections = sections_step(result)
         layers = result_layers(result, sections)
-        with OutputSet() as outputs:
-            _stage_map(outputs, result, out_dir, layers, progress)
-            written = outputs.targets
-    except OSError as exc:
-        raise OutputError(
-            f"could not write the map in {out_dir}: {exc.strerror or exc}"
-            f"{f' ({exc.filename})' if exc.filename else ''}; earlier outputs there are unchanged"
-        ) from exc
+        _stage_map(folder, result, layers, progress)
+        written = [folder.requested / rel for rel in folder.planned]
+        folder.carry_over()
+        folder.commit()
+        return written
+
+    with RunFolder(out_dir, result.survey.input_files()) as folder:
+        written = _guarded(write, result, folder, progress)
     progress.set_progress(100)
     return written
 
 
-def _write_all(result, out_dir, progress) -> list:
+def _write_all(result, folder: RunFolder, progress, gather_figures) -> list:
     from ..handoff.steps import sections_step
     from ..report.content import build_report
 
-    out_dir.mkdir(parents=True, exist_ok=True)
     sections = sections_step(result)
     layers = result_layers(result, sections)
-    with OutputSet() as outputs:
-        _stage_map(outputs, result, out_dir, layers, progress)
-        write_handoff(outputs, out_dir, result, progress, sections)
-        progress.set_progress(25)
-        (out_dir / "qc").mkdir(exist_ok=True)
-        qc_figures = {}
-        for k, name, svg in gather_qc_figures(result):
-            outputs.stage(out_dir / "qc" / name).write_bytes(svg)
-            qc_figures[k] = (name, svg)
-            check_cancel(progress)
-            progress.set_progress(25 + 50 * (k + 1) / max(result.fit.gathers.n_gathers, 1))
-        html = build_report(result, layers, qc_figures, sections)
-        outputs.stage(out_dir / "report.html").write_text(html, encoding="utf-8")
-        written = outputs.targets
+    _stage_map(folder, result, layers, progress)
+    write_handoff(folder, folder.requested, result, progress, sections)
+    progress.set_progress(25)
+    qc_figures = {}
+    n_figures = max(len(figure_gathers(result, gather_figures)), 1)
+    for i, (k, name, svg) in enumerate(gather_qc_figures(result, gather_figures)):
+        folder.path(f"qc/{name}").write_bytes(svg)
+        qc_figures[k] = (name, svg)
+        check_cancel(progress)
+        progress.set_progress(25 + 50 * (i + 1) / n_figures)
+    html = build_report(result, layers, qc_figures, sections)
+    folder.path("report.html").write_text(html, encoding="utf-8")
+    check_cancel(progress)
+    written = folder.commit()
     progress.set_progress(100)
     return written

@@ -13,6 +13,7 @@ import numpy as np
 
 from .. import __version__
 from ..results import RunResult
+from ..text import printable
 from . import figures, qc_svg
 from .handoff_content import handoff_section
 from .html import Report
@@ -472,7 +473,7 @@ def _section_svg(r, line):
         frame.z_m,
         (ch, pts.elevation_m[sel], pts.sigma_m[sel], ok),
         surface=(frame.chainage_m, z, sd),
-        title=f"line {line}: ground, reflector points, mapped surface (±2σ)",
+        title=f"line {printable(line, 40)}: ground, reflector points, mapped surface (±2σ)",
         ident=f"s{''.join(c if c.isalnum() else '_' for c in str(line))}",
     )
 

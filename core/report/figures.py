@@ -15,6 +15,7 @@ import numpy as np
 
 from .. import colours
 from ..errors import MissingDependencyError
+from ..text import printable
 
 # The colour code is shared with QGIS (core/colours.py); these names are the figures' own view of it.
 USED = colours.PICK_USED
@@ -65,7 +66,25 @@ def register_colour_maps() -> None:
             matplotlib.colormaps.register(LinearSegmentedColormap.from_list(name, [(p, c) for p, c in ramp]))
 
 
+def plain_text(fig) -> None:
+    r"""Draw every text of ``fig`` as written: no mathtext parsing.
+
+    Labels are data: a line called ``$\foo{$`` or ``x^$2$`` must print as
+    such, not be parsed as mathtext (which crashes on the first and typesets
+    the second). The project's figures use no mathtext of their own (units in
+    Unicode: m², ±), so every text artist of the figure (titles, annotations,
+    legends, table cells) is set to plain text. Every figure and sheet is
+    saved through a function that calls this; tick labels, made later at draw
+    time, are numbers.
+    """
+    from matplotlib.text import Text
+
+    for t in fig.findobj(Text):
+        t.set_parse_math(False)
+
+
 def _png(fig) -> bytes:
+    plain_text(fig)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=fig.dpi, metadata={"Software": None})
     _plt().close(fig)
@@ -109,7 +128,7 @@ def map_figure(
         ax.plot(xy[:, 0], xy[:, 1], color=colours.CONTOUR_DEPTH, lw=1.0 if is_index else 0.4)
     for line, xy in sorted(station_lines.items()):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0)
-        ax.annotate(f"line {line}", xy[0], fontsize=8, color=colours.LINE, ha="right", va="bottom")
+        ax.annotate(f"line {printable(line, 40)}", xy[0], fontsize=8, color=colours.LINE, ha="right", va="bottom")
     if points_xy is not None and len(points_xy):
         ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color=colours.REFLECTOR_POINT, ms=3, mec="white", mew=0.3)
     span = max(extent[1] - extent[0], extent[3] - extent[2])
@@ -124,7 +143,7 @@ def map_figure(
         bx, by, names = boreholes
         ax.plot(bx, by, "o", color="k", mfc=colours.BOREHOLE, ms=6)
         for x, y, n in zip(bx, by, names):
-            ax.annotate(n, (x, y), xytext=(4, 4), textcoords="offset points", fontsize=8)
+            ax.annotate(printable(n, 40), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=8)
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     ax.set_aspect("equal")
@@ -133,6 +152,7 @@ def map_figure(
     ax.set_xlabel("easting (m)")
     ax.set_ylabel("northing (m)")
     ax.set_title(title, fontsize=10)
+    plain_text(fig)  # before the layout measures the texts
     fig.tight_layout()
     return _png(fig)
 
@@ -179,5 +199,6 @@ def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_C
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
     ax.set_title(title, fontsize=9)
+    plain_text(fig)  # before the layout measures the texts
     fig.tight_layout()
     return _png(fig)

@@ -22,6 +22,7 @@ import numpy as np
 
 from .. import colours
 from ..grid import nice_step
+from ..text import printable
 from . import figures
 from .sheet import (
     A3_LANDSCAPE_MM,
@@ -134,7 +135,9 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
             ax.plot(xs, ys, "-", color="k", lw=1.4, ls="--", zorder=3)
     for name, xy in sorted(ov.lines.items()):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0, zorder=4)
-        ax.annotate(f"line {name}", xy[0], fontsize=7, color=colours.LINE, ha="right", va="bottom", zorder=4)
+        ax.annotate(
+            f"line {printable(name, 40)}", xy[0], fontsize=7, color=colours.LINE, ha="right", va="bottom", zorder=4
+        )
     if ov.points_xy is not None and len(ov.points_xy):
         ax.plot(
             ov.points_xy[:, 0],
@@ -157,7 +160,7 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         bx, by, names = ov.boreholes
         ax.plot(bx, by, "o", color="k", mfc=colours.BOREHOLE, ms=5, zorder=6)
         for x, y, nm in zip(bx, by, names):
-            ax.annotate(str(nm), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7, zorder=6)
+            ax.annotate(printable(nm, 40), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7, zorder=6)
     return im
 
 
@@ -262,6 +265,7 @@ def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
                 f"{page.title} (sheet {k} of {len(pages)})",
                 f"1:{scale:,} (A3)",
             )
+            figures.plain_text(fig)  # labels are data, never mathtext
             pdf.savefig(fig)
             _close(fig)
     return buf.getvalue()

@@ -13,6 +13,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import colours
+from ..text import printable
 from . import figures
 from .sheet import SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale, save_figure
 
@@ -132,7 +133,7 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
         ax.errorbar([c], [z], yerr=[2 * sg], fmt="s", ms=5, color="k", mfc="yellow", zorder=8)
         side = "R" if off >= 0 else "L"
         ax.annotate(
-            f"{b.label[i]}\noffset {abs(off):.1f} m {side}",
+            f"{printable(b.label[i], 40)}\noffset {abs(off):.1f} m {side}",
             (c, top),
             xytext=(0, 6),
             textcoords="offset points",

@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 from typing import Optional
 
 from ..errors import MissingDependencyError
+from . import figures
 
 __all__ = [
     "A3_LANDSCAPE_MM",
@@ -175,6 +176,7 @@ def save_figure(fig, fmt: str = "pdf") -> bytes:
     buf = io.BytesIO()
     meta = {"CreationDate": None} if fmt == "pdf" else {"Date": None}
     # Type 3 fonts (matplotlib's default): text stays searchable and the file is written fast
+    figures.plain_text(fig)  # labels are data, never mathtext
     with matplotlib.rc_context({"svg.hashsalt": "rockhead", "svg.fonttype": "none", "pdf.fonttype": 3}):
         fig.savefig(buf, format=fmt, metadata=meta)
     plt.close(fig)

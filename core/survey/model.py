@@ -266,6 +266,19 @@ class Survey:
             return np.zeros(len(self.picks), dtype=bool)
         return np.asarray(self.edits.excluded, dtype=bool)
 
+    def input_files(self) -> dict:
+        """Every input file of the survey by where it is named (``"[files] picks"``, ...)."""
+        names = {"design_area": "[design] area"}
+        out = {"survey file": self.path}
+        for role, path in self.files.items():
+            if path is None:
+                continue
+            if role.startswith("alignment_"):
+                out[f"[sections] alignment {role[len('alignment_') :]}"] = path
+            else:
+                out[names.get(role, f"[files] {role}")] = path
+        return out
+
 
 @dataclass(frozen=True)
 class GatherSet:

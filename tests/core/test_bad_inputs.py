@@ -147,8 +147,10 @@ def test_cli_run_returns_2_with_one_line(case, tmp_path, capsys):
     err = capsys.readouterr().err
     assert code == 2, err
     lines = [ln for ln in err.splitlines() if ln.strip()]
-    assert len(lines) == 1, err
-    assert re.search(_expected(case).lstrip("^"), lines[0]), lines[0]
+    # the error is one line, the last; warnings met before it are shown too, one line each
+    assert lines[-1].startswith("rockhead: error: "), err
+    assert all(ln.startswith("rockhead: warning: ") for ln in lines[:-1]), err
+    assert re.search(_expected(case).lstrip("^"), lines[-1]), lines[-1]
 
 
 @pytest.mark.parametrize("case", GOOD + WARN, ids=GOOD + WARN)
@@ -178,7 +180,9 @@ def test_cli_process_exit_code_2(case, tmp_path, run_cli):
     proc = run_cli("run", CORPUS / case / "survey.toml", "--out", tmp_path / "out", timeout_s=120)
     assert proc.returncode == 2, proc.stderr
     lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
-    assert len(lines) == 1, proc.stderr
+    assert lines[-1].startswith("rockhead: error: ") and len(lines) == 1 + sum(
+        ln.startswith("rockhead: warning: ") for ln in lines[:-1]
+    ), proc.stderr
     assert "Traceback" not in proc.stderr
-    assert re.search(_expected(case).lstrip("^"), lines[0]), lines[0]
+    assert re.search(_expected(case).lstrip("^"), lines[-1]), lines[-1]
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())

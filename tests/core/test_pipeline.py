@@ -92,7 +92,9 @@ def test_cli_writes_every_fixed_output(sample_run):
         "report.html",
     ]:
         assert (out / name).is_file() and (out / name).stat().st_size > 0, name
-    assert not [p for p in out.rglob(".*") if p.is_file()], "temporary files left behind"
+    # hidden files: only the run folder's manifest (the list of files with their SHA-256)
+    assert [p.name for p in out.rglob(".*") if p.is_file()] == [".rockhead-manifest.json"], "temporary files left"
+    assert not [p for p in out.parent.iterdir() if p.name.startswith(f".{out.name}.")], "staging folder left"
     assert sample_run.exit_code == 0 and "gathers fitted" in sample_run.stdout
 
 
