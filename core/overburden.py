@@ -297,24 +297,23 @@ def _robust(values, sigmas):
     return med, float(1.4826 * np.median(np.abs(v - med)) / np.sqrt(len(v)))
 
 
-def _joint_parts(res, order, spec: GridSpec, maps: MapProducts, mapped, final_surface):
+def _joint_parts(res, order, spec: GridSpec, maps: MapProducts, mapped, final_surface, corridor=None):
     """Interfaces, interval velocities and the velocity-model rows of a joint estimate."""
     interfaces, intervals, rows = [], [], []
     depth_prev, time_prev = np.zeros(spec.shape), np.zeros(spec.shape)
     for k, label in enumerate(res.names):
         if label == mapped and final_surface is not None:
             surface = final_surface
-        else:
-            surface = SurfaceGrid(
-                spec, res.elevation_m[k], res.sigma_m[k], res.mask[k], "tomography", int(np.sum(res.used))
-            )
+        else:  # a single line's other interfaces only in its corridor, as the mapped one
+            mask = res.mask[k] if corridor is None else res.mask[k] | corridor.outside(spec)
+            surface = SurfaceGrid(spec, res.elevation_m[k], res.sigma_m[k], mask, "tomography", int(np.sum(res.used)))
         interfaces.append(_interface(label, surface, maps, JOINT))
         depth = maps.ground_grid_m - np.asarray(res.elevation_m[k], float)
         avg = np.asarray(res.average_velocity_m_s[k], float)
         time = depth / avg
         with np.errstate(invalid="ignore", divide="ignore"):
             v = (depth - depth_prev) / (time - time_prev)
-        v = np.where(np.isfinite(v) & (v > 0), v, np.nan)
+        v = np.where(np.isfinite(v) & (v > 0) & ~surface.mask, v, np.nan)  # where its base is mapped
         top = "ground" if k == 0 else res.names[k - 1]
         intervals.append(IntervalVelocityMap(top, label, v, None, JOINT))
         depth_prev, time_prev = depth, time
@@ -427,7 +426,7 @@ def overburden_step(
     notes = []
     bh_all = survey.boreholes
     if joint:
-        interfaces, intervals, rows = _joint_parts(res, order, spec, maps, mapped, final_surface)
+        interfaces, intervals, rows = _joint_parts(res, order, spec, maps, mapped, final_surface, corridor)
         source = JOINT
     else:
         source = GATHERS
