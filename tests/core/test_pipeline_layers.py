@@ -213,7 +213,10 @@ def test_single_line_survey_runs_and_gives_no_invented_dip(tmp_path):
     for name in ("stations.csv", "picks.csv"):
         rows = (tmp_path / name).read_text().splitlines()
         (tmp_path / name).write_text("\n".join([rows[0]] + [r for r in rows[1:] if not r.startswith("NS,")]) + "\n")
-    r = compute(load_survey(path), method="kriging")
+    from rockhead.core.errors import RockheadWarning
+
+    with pytest.warns(RockheadWarning, match="cross-line dip is unknown"):  # and says so
+        r = compute(load_survey(path), method="kriging")
     assert len(r.dips) >= 1 and not np.any(r.dips.status == "ok")
     assert np.all(np.isnan(r.dips.dip_deg))
     assert set(r.dips.status) == {"single_direction"}
