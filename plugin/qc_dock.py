@@ -287,8 +287,9 @@ class _EditCommand(QUndoCommand):
     def undo(self):
         qc = self.dock.qc
         current = qc.edits
-        if current.edits[-len(self.new) :] != self.new:  # the file was changed behind our back
-            raise RuntimeError("the pick edits file no longer ends with this edit; reopen the survey")
+        if current.edits[-len(self.new) :] != self.new:  # the file was changed behind the panel's back
+            self.dock._error(tr("pick_edits.csv no longer ends with this edit (changed elsewhere?): not undone"))
+            return
         for _ in self.new:
             current = current.without_last()
         self.dock._edits_changed(current)
