@@ -14,12 +14,13 @@ HEADER = "line,shot,receiver,reflector,action,new_time_ms,reason,time_stamp\n"
 
 
 @pytest.fixture(scope="module")
-def site(tmp_path_factory, sample_dir):
+def site(tmp_path_factory, sample_dir, sample_run):
+    """A private copy of the sample survey, with the session's one whole run of it as ``before``."""
     d = tmp_path_factory.mktemp("remap")
     for name in ("survey.toml", "stations.csv", "picks.csv", "boreholes.csv"):
         shutil.copy(sample_dir / name, d / name)
-    first = job.run(d / "survey.toml", d / "before")
-    return d, first
+    shutil.copytree(sample_run.out, d / "before")
+    return d, sample_run.result
 
 
 def test_pinned_choices_are_the_runs(site):
