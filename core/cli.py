@@ -50,10 +50,28 @@ def _parser() -> argparse.ArgumentParser:
         default=None,
         help="surface method (default: the survey's [processing] surface_method, else auto)",
     )
+    run.add_argument(
+        "--gather-figures",
+        choices=["auto", "all", "flagged", "none"],
+        default=None,
+        help="QC figure of each gather in qc/: all, only flagged gathers, none, or auto (all up to "
+        "200 gathers, else the flagged ones); default the survey's [processing] gather_figures",
+    )
     run.add_argument("--progress", action="store_true", help="print progress on stderr")
     run.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    for cmd in (run,):
+        cmd.add_argument(
+            "--inputs-in-survey-folder",
+            action="store_true",
+            help="refuse any input file outside the folder of survey.toml (for surveys from elsewhere)",
+        )
     check = sub.add_parser("check", help="read and validate the inputs only")
     check.add_argument("survey")
+    check.add_argument(
+        "--inputs-in-survey-folder",
+        action="store_true",
+        help="refuse any input file outside the folder of survey.toml (for surveys from elsewhere)",
+    )
     return p
 
 
@@ -100,7 +118,7 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
             if args.command == "check":
                 from .survey.config import load_survey
 
-                survey = load_survey(args.survey)
+                survey = load_survey(args.survey, confine_inputs=args.inputs_in_survey_folder)
                 n_bh = 0 if survey.boreholes is None else len(survey.boreholes)
                 print(
                     f"{printable(survey.name)}: {len(survey.stations)} stations, {len(survey.picks)} picks, "
@@ -111,7 +129,14 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
             else:
                 from .job import run
 
-                result = run(args.survey, args.out, method=args.method, progress=progress)
+                result = run(
+                    args.survey,
+                    args.out,
+                    method=args.method,
+                    progress=progress,
+                    gather_figures=args.gather_figures,
+                    confine_inputs=args.inputs_in_survey_folder,
+                )
                 print("\n".join(printable(line) for line in result.summary().splitlines()))
                 if result.survey.edits is not None:
                     print(printable(_edits_line(result.survey)))

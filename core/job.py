@@ -30,7 +30,15 @@ OUTPUT_NAMES = (
     *HANDOFF_NAMES,
 )
 
-__all__ = ["OUTPUT_NAMES", "open_output_folder", "run", "with_design", "write_outputs"]
+__all__ = [
+    "AUTO_FIGURES_MAX_GATHERS",
+    "OUTPUT_NAMES",
+    "figures_for",
+    "open_output_folder",
+    "run",
+    "with_design",
+    "write_outputs",
+]
 
 
 def with_design(result: RunResult, progress=None) -> RunResult:
@@ -72,7 +80,15 @@ def open_output_folder(survey, out_dir) -> RunFolder:
     return folder
 
 
-def run(survey_path, out_dir, method: Optional[str] = None, progress=None) -> RunResult:
+def run(
+    survey_path,
+    out_dir,
+    method: Optional[str] = None,
+    progress=None,
+    *,
+    gather_figures: Optional[str] = None,
+    confine_inputs: bool = False,
+) -> RunResult:
     """Read the survey, run the whole job and write every output into ``out_dir``.
 
     The output folder is checked and locked before the computation starts (a
@@ -80,13 +96,44 @@ def run(survey_path, out_dir, method: Optional[str] = None, progress=None) -> Ru
     whole at the end (:class:`~.formats.runfolder.RunFolder`). Returns the
     :class:`~.results.RunResult` with its design answers and ``outputs``,
     the files written.
+
+    Parameters
+    ----------
+    survey_path, out_dir : str or Path
+        survey.toml and the output folder.
+    method : str, optional
+        Surface method; default the survey's ``surface_method``.
+    progress : object, optional
+        Progress sink.
+    gather_figures : str, optional
+        ``auto``, ``all``, ``flagged`` or ``none``; default the survey's ``gather_figures``
+        (:func:`figures_for`).
+    confine_inputs : bool
+        Refuse input files outside the survey's folder (see :func:`~.survey.config.load_survey`).
     """
     progress = progress or NullProgress()
-    survey = load_survey(survey_path)
+    survey = load_survey(survey_path, confine_inputs=confine_inputs)
     engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
-    with open_output_folder(survey, Path(out_dir)) as folder:
+    with open_output_folder(survey, out_dir) as folder:
         result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
         stage = SubProgress(progress, 85, 100)
         result = with_design(result, stage)
-        written = write_outputs(result, folder, stage)
+        written = write_outputs(result, folder, stage, gather_figures=figures_for(result, gather_figures))
     return replace(result, outputs=tuple(written))
+
+
+#: With ``gather_figures = "auto"``, every gather has its QC figure up to this many gathers; beyond, only flagged ones.
+AUTO_FIGURES_MAX_GATHERS = 200
+
+
+def figures_for(result: RunResult, asked: Optional[str] = None) -> str:
+    """The gathers that get a QC figure: ``asked``, else the survey's setting; ``auto`` resolved.
+
+    ``auto`` is ``all`` for up to :data:`AUTO_FIGURES_MAX_GATHERS` gathers and
+    ``flagged`` beyond (a figure per gather of a large survey is thousands of
+    files nobody opens; the flagged ones are those a reviewer asks for).
+    """
+    which = asked or getattr(result.survey.settings, "gather_figures", "auto")
+    if which == "auto":
+        return "all" if len(result.fit.fits) <= AUTO_FIGURES_MAX_GATHERS else "flagged"
+    return str(which)

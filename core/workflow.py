@@ -22,8 +22,8 @@ from typing import Dict, Optional, Union
 
 import numpy as np
 
-from .errors import GridError, InversionError, RockheadWarning, SurveyConfigError
-from .grid import GridSpec, bilinear, nice_step
+from .errors import GridError, InputFileError, InversionError, OutputError, RockheadWarning, SurveyConfigError
+from .grid import GridSpec, bilinear, next_nice_step, nice_step
 from .overburden import layer_order, layered_ties, mapped_boreholes, overburden_step
 from .progress import NullProgress, SubProgress, check_cancel
 from .results import (
@@ -48,10 +48,18 @@ from .surface.base import SurfaceGrid
 from .surface.contours import contours_layer
 from .surface.corridor import line_corridor
 from .surface.trend import grid_with_trend, predict_with_trend
+from .survey.checks import grid_buffer_m
 from .survey.ground import GroundModel
+from .text import printable
 from .tomography.layered import LayeredSettings, estimate_layered, reflector_order
 from .tomography.start import GatherPoints, curvature_flags, robust_site_velocity, start_from_gathers
 
+#: Stated limits of the joint estimate, beyond which the workflow skips it (auto) or refuses it
+#: (surface_method = "tomography") before calling it. The benchmark of the single-reflector joint
+#: inversion (benchmarks/RESULTS.md) ran 100 k picks on 200 x 200 nodes in 31 s and 0.6 GiB; the layered
+#: estimate on the output grid is held to the same picks and to that many cells at four per node.
+TOMOGRAPHY_MAX_PICKS = 100_000
+TOMOGRAPHY_MAX_CELLS = 4 * 200 * 200
 SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
 
 __all__ = ["SURFACE_METHODS", "compute", "fit_step"]
@@ -129,6 +137,8 @@ def surface_cross_components(spec, z_grid, gathers, x_m, y_m):
     q is its component along -w, w the gather's cross-line unit vector.
     NaN where the surface is not defined.
     """
+    if spec.nx < 2 or spec.ny < 2:  # a one-row or one-column grid has no gradient across it
+        return np.zeros(len(np.atleast_1d(x_m)))
     zy, zx = np.gradient(np.asarray(z_grid, float), -spec.cell_size_m, spec.cell_size_m)
     gx = bilinear(spec, zx, x_m, y_m)
     gy = bilinear(spec, zy, x_m, y_m)
@@ -226,37 +236,58 @@ def borehole_check(points, boreholes, settings, diagnostics: SurfaceDiagnostics)
     return BoreholeCheck(seismic_elevation_m=est, seismic_sigma_m=std, residual_m=resid, standardised=resid / total)
 
 
-def grid_spec(survey, points):
-    """Output grid: covers stations and reflector points; cell from the point spacing.
+def grid_spec(survey, points, spread_m: float = float("nan")) -> GridSpec:
+    """Output grid: covers the data the map is made from, plus a stated margin; never every station.
 
-    The default cell is half the median nearest-neighbour distance of the
-    reflector points rounded down to a 1-2-5 step (:meth:`GridSpec.from_data`),
-    not of the geophone stations, which are far denser than the reflector
-    sampling of one point per gather.
+    The grid's extent is the bounding box of the mapped reflector's points and
+    the boreholes, widened by :func:`~.survey.checks.grid_buffer_m` (half the
+    median spread ``spread_m``, which a gather's picks reach around its point,
+    plus 5 % of the larger side). Stations play no part: a station moved far
+    away, or a line with no picks, cannot inflate the grid. The default cell is
+    half the median nearest-neighbour distance of the reflector points rounded
+    down to a 1-2-5 step (:meth:`GridSpec.from_data`), coarsened to the next
+    step, with a warning, while the grid would exceed ``max_grid_cells``; a
+    ``cell_size_m`` that would exceed it is refused before any array is made.
 
     Raises
     ------
     SurveyConfigError
-        A ``[processing] cell_size_m`` that needs too many cells (naming the
-        survey file, the line and the key).
+        A ``[processing] cell_size_m`` that needs more than ``max_grid_cells``
+        cells (naming the survey file, the line and the key).
     GridError
         No cell size can be had from the reflector points.
     """
+    s = survey.settings
     ok = np.isfinite(points.x_m) & np.isfinite(points.y_m)
-    xs = np.concatenate([survey.stations.x_m, points.x_m[ok]])
-    ys = np.concatenate([survey.stations.y_m, points.y_m[ok]])
-    cell = survey.settings.cell_size_m
+    xs, ys = points.x_m[ok], points.y_m[ok]
+    bh = survey.boreholes
+    if bh is not None and len(bh):
+        xs, ys = np.concatenate([xs, bh.x_m]), np.concatenate([ys, bh.y_m])
+    buffer_m = grid_buffer_m(max(float(np.ptp(xs)), float(np.ptp(ys))), spread_m)
+    cell = s.cell_size_m
     if cell is None:
-        cell = GridSpec.from_data(points.x_m[ok], points.y_m[ok]).cell_size_m
-        # the automatic cell was bounded by the points' extent; the stations only widen the margin
-        return GridSpec.from_data(xs, ys, cell_size_m=cell, max_cells=2**62)
+        cell = GridSpec.from_data(points.x_m[ok], points.y_m[ok]).cell_size_m  # from the points' spacing
+        spec = GridSpec.from_data(xs, ys, cell_size_m=cell, pad_m=buffer_m, max_cells=2**62)
+        while spec.size > s.max_grid_cells:  # only arithmetic so far: no array of that size is made
+            new = next_nice_step(cell)
+            warnings.warn(
+                f"a {cell:g} m cell would need {spec.size:,} cells (> max_grid_cells = {s.max_grid_cells:,}); "
+                f"using {new:g} m cells. Give [processing] cell_size_m to choose yourself.",
+                RockheadWarning,
+                stacklevel=2,
+            )
+            cell = new
+            spec = GridSpec.from_data(xs, ys, cell_size_m=cell, pad_m=buffer_m, max_cells=2**62)
+        return spec
     try:
-        return GridSpec.from_data(xs, ys, cell_size_m=cell)
+        return GridSpec.from_data(xs, ys, cell_size_m=cell, pad_m=buffer_m, max_cells=s.max_grid_cells)
     except GridError as err:
-        path = survey.path
-        raise SurveyConfigError(
-            path, _key_line(path, "processing", "cell_size_m"), "processing.cell_size_m", str(err)
-        ) from err
+        raise settings_error(survey, "cell_size_m", f"{err}, or raise max_grid_cells") from err
+
+
+def settings_error(survey, key: str, message: str) -> SurveyConfigError:
+    """A :class:`SurveyConfigError` naming survey.toml, the line of ``[processing] key`` and the key."""
+    return SurveyConfigError(survey.path, _key_line(survey.path, "processing", key), f"processing.{key}", message)
 
 
 def _key_line(path, table: str, key: str) -> Optional[int]:
@@ -326,9 +357,15 @@ def tomography_step(
         why = f"only {int(np.sum(use & mapped[g.gather]))} picks of the mapped reflector (at least 200 needed)"
     elif n_v < 5:
         why = f"only {n_v} usable gathers for a starting velocity (at least 5 needed)"
+    if why is None:
+        why = tomography_size_reason(int(np.sum(use)), spec.nx, spec.ny)
     if why:
         if forced:
-            raise InversionError(f"the joint inversion is not supported by this survey: {why}")
+            raise settings_error(
+                survey,
+                "surface_method",
+                f'the joint estimate cannot run on this survey: {why}; use surface_method = "kriging" or "auto"',
+            )
         return TomographyOutcome.skipped(why)
     pick_labels = labels[g.gather]
     present = set(pick_labels[use].tolist())
@@ -365,6 +402,14 @@ def tomography_step(
     zz = bilinear(spec, res.elevation_unmasked_m[k], x, y)
     ss = bilinear(spec, res.sigma_unmasked_m[k], x, y)
     keep = np.isfinite(zz) & np.isfinite(ss)
+    if int(keep.sum()) < 3:  # the inversion left no usable value or sigma at the points: degrade, do not fail
+        why = (
+            f"the joint inversion gave a usable elevation and sigma at only {int(keep.sum())} of {len(keep)} "
+            "reflector points"
+        )
+        if forced:
+            raise InversionError(f'{why}; use surface_method = "kriging" or "auto"')
+        return TomographyOutcome.skipped(why)
     x, y, zz, ss = x[keep], y[keep], zz[keep], ss[keep]
     if bh is not None and len(bh):
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
@@ -381,6 +426,39 @@ def tomography_step(
         kriged_data=(x, y, zz, ss),  # the joint estimate at the points (for conditional simulation)
         used=use,
     )
+
+
+def tomography_size_reason(n_picks: int, nx: int, ny: int) -> Optional[str]:
+    """Why the joint estimate is too large to run (None when it is within its stated limits).
+
+    Parameters
+    ----------
+    n_picks : int
+        Picks it would invert.
+    nx, ny : int
+        Its grid (the output grid).
+
+    Returns
+    -------
+    str or None
+        The reason, naming the limit (:data:`TOMOGRAPHY_MAX_PICKS`,
+        :data:`TOMOGRAPHY_MAX_CELLS`).
+
+    Examples
+    --------
+    >>> tomography_size_reason(5000, 300, 300) is None
+    True
+    >>> tomography_size_reason(500_000, 100, 100)
+    '500,000 picks of the mapped reflector, more than its stated limit of 100,000'
+    """
+    if n_picks > TOMOGRAPHY_MAX_PICKS:
+        return f"{n_picks:,} picks of the mapped reflector, more than its stated limit of {TOMOGRAPHY_MAX_PICKS:,}"
+    if nx * ny > TOMOGRAPHY_MAX_CELLS:
+        return (
+            f"a grid of {nx} x {ny} = {nx * ny:,} cells, more than its stated limit of {TOMOGRAPHY_MAX_CELLS:,} "
+            "(a larger cell_size_m gives fewer)"
+        )
+    return None
 
 
 def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
@@ -419,9 +497,16 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     fit = fit_step(survey, SubProgress(progress, 0, 10), ground=ground)
     n_ok = int(np.sum(fit.fits.status == "ok"))
     if n_ok < 3:
-        raise InversionError(
-            f"only {n_ok} of {len(fit.fits)} gathers gave a usable fit; a surface needs at least 3 "
-            "(see the status and reason of each gather in the shots layer)"
+        reasons, counts = np.unique(
+            np.asarray(fit.fits.reason)[fit.fits.status != "ok"].astype(str), return_counts=True
+        )
+        top = ", ".join(f"{printable(r, 80)} ({c})" for r, c in sorted(zip(reasons, counts), key=lambda rc: -rc[1])[:3])
+        raise InputFileError(
+            survey.files.get("picks"),
+            None,
+            None,
+            f"only {n_ok} of {len(fit.fits)} gathers gave a usable fit; a surface needs at least 3. Reasons of the "
+            f"others: {top}",
         )
     survey_all = replace(survey, settings=replace(settings, reflector=mapped_reflector(fit, settings)))
     settings = survey_all.settings
@@ -445,7 +530,11 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
     progress.info("combining crossing lines into true dip and strike")
     dips, _ = dips_step(survey, fit)
     check_cancel(progress)
-    spec = grid_spec(survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector))
+    mapped = np.asarray(fit.gathers.reflector).astype(str) == settings.reflector
+    spread = float(np.median(fit.gathers.spread_length_m[mapped])) if mapped.any() else float("nan")
+    spec = grid_spec(
+        survey, fit.points.select(np.asarray(fit.points.reflector).astype(str) == settings.reflector), spread
+    )
     corridor = single_line_corridor(fit, settings)
     if corridor is not None:
         text = (
@@ -527,7 +616,18 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
                 f"scale of a spread): the surface is the {interp} of the gather fits; the joint inversion is "
                 "reported as a cross-check"
             )
-    maps = products_step(spec, surface, ground, settings, fit.points)
+    if not np.any(~surface.mask):
+        message = (
+            f"no cell of the {spec.nx} x {spec.ny} grid lies within the masking distance of a reflector "
+            "point, so the map would be empty"
+        )
+        if settings.max_distance_m is not None:
+            raise settings_error(survey, "max_distance_m", f"{message}: give a larger max_distance_m (m)")
+        raise InversionError(f"{message}; set [processing] max_distance_m (m)")
+    try:
+        maps = products_step(spec, surface, ground, settings, fit.points)
+    except OutputError as err:  # a contour interval giving more levels than a map can hold
+        raise settings_error(survey, "contour_interval_m", str(err)) from err
     overburden = overburden_step(survey_all, fit, spec, ground, maps, surface, dix, tomography, corridor, check)
     notes.extend(overburden.notes if len(overburden.order) > 1 else ())
     progress.set_progress(100)

@@ -84,6 +84,8 @@ LEGACY_TOP = {
     "reflector_depth.qml",
     "depth_sigma.qml",
     "probability_above_design.qml",
+    "elevation_sigma.tif",
+    "elevation_sigma.qml",
 }
 _LEGACY_SECTION_RE = re.compile(r"^section_[A-Za-z0-9_-]+\.(pdf|svg|csv)$")
 _LEGACY_DIRS = {"csv": (".csv",), "qc": (".png", ".svg")}

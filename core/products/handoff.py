@@ -28,7 +28,9 @@ __all__ = [
     "HANDOFF_NAMES",
     "LANDXML_NAME",
     "MAP_SHEET_NAME",
+    "MAX_LINE_SECTION_SHEETS",
     "PROBABILITY_NAME",
+    "drawn_sections",
     "handoff_layers",
     "handoff_run_info",
     "map_content",
@@ -51,6 +53,47 @@ def section_file_stem(name: str) -> str:
     :func:`section_file_stems` also keeps the stems of several sections apart.
     """
     return file_stem("section", name)
+
+
+#: Most section sheets drawn along seismic lines (a sheet takes about a second); a survey of more lines
+#: gets sheets of an evenly spread subset and the CSV of every section. Alignments always get theirs.
+MAX_LINE_SECTION_SHEETS = 40
+
+
+def drawn_sections(sections) -> list:
+    """Whether each section gets its sheet.
+
+    Every alignment does, and at most :data:`MAX_LINE_SECTION_SHEETS`
+    seismic lines, evenly spread (every k-th in order).
+
+    Parameters
+    ----------
+    sections : sequence
+        Sections with a ``title`` ("line ..." or "alignment ...").
+
+    Returns
+    -------
+    list of bool
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as S
+    >>> secs = [S(title=f"line {i}") for i in range(100)] + [S(title="alignment axis")]
+    >>> flags = drawn_sections(secs)
+    >>> sum(flags), flags[0], flags[1], flags[-1]
+    (41, True, False, True)
+    """
+    is_line = [not str(getattr(s, "title", "")).startswith("alignment ") for s in sections]
+    n_lines = sum(is_line)
+    step = max(1, -(-n_lines // MAX_LINE_SECTION_SHEETS))  # ceil
+    out, k = [], 0
+    for line in is_line:
+        if line:
+            out.append(k % step == 0)
+            k += 1
+        else:
+            out.append(True)
+    return out
 
 
 def section_file_stems(sections) -> list:
@@ -97,7 +140,13 @@ def sections_layer(sections, fmt) -> Layer:
             "length_m": np.array([s.length_m for s in sections]),
             "corridor_m": np.array([s.corridor_m for s in sections]),
             "boreholes": np.array([len(s.boreholes) for s in sections], dtype=np.int64),
-            "file": np.array([f"{stem}.{fmt}" for stem in section_file_stems(sections)], dtype=object),
+            "file": np.array(
+                [
+                    f"{stem}.{fmt if drawn else 'csv'}"
+                    for stem, drawn in zip(section_file_stems(sections), drawn_sections(sections))
+                ],
+                dtype=object,
+            ),
         },
         "LINESTRING",
         "Alignments of the sections (seismic lines and [sections] alignments); chainage from the first vertex",
@@ -293,8 +342,11 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
         )
     sections = sections if sections is not None else sections_step(result)
     plan = _plan(overlays)
-    for sec, stem in zip(sections, section_file_stems(sections)):
+    for sec, stem, drawn in zip(sections, section_file_stems(sections), drawn_sections(sections)):
         check_cancel(progress)
-        sheet, table = section_files(result, sec, h.section_format, info, plan)
-        outputs.stage(out_dir / f"{stem}.{h.section_format}").write_bytes(sheet)
+        if drawn:
+            sheet, table = section_files(result, sec, h.section_format, info, plan)
+            outputs.stage(out_dir / f"{stem}.{h.section_format}").write_bytes(sheet)
+        else:
+            table = sec.table()
         write_csv(outputs.stage(out_dir / f"{stem}.csv"), table)

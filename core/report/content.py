@@ -384,6 +384,7 @@ def _flagged(rep, fit):
             "reason": [str(f.reason[k]) for k in bad],
         },
         caption="Gathers not used for the surface, with the reason",
+        max_rows=200,
     )
 
 
@@ -418,6 +419,24 @@ def _pick_edits(rep, survey, fit):
         )
 
 
+#: The report stays a few megabytes however large the survey: at most this many lines get their section
+#: figure and table of gather fits, and this many gather QC figures are embedded (the others are linked
+#: to their files in qc/; every fit is in csv/shots.csv and the GeoPackage).
+REPORT_MAX_LINES = 30
+REPORT_MAX_QC_FIGURES = 40
+
+
+def _report_lines(r, names_sorted):
+    """The lines shown in full: all of them, or the REPORT_MAX_LINES with the most flagged gathers."""
+    if len(names_sorted) <= REPORT_MAX_LINES:
+        return list(names_sorted)
+    g, f = r.fit.gathers, r.fit.fits
+    lines = np.asarray(g.line).astype(str)
+    flagged = {ln: int(np.sum((lines == ln) & (f.status != "ok"))) for ln in names_sorted}
+    chosen = sorted(names_sorted, key=lambda ln: (-flagged[ln], ln))[:REPORT_MAX_LINES]
+    return [ln for ln in names_sorted if ln in set(chosen)]
+
+
 def _lines(rep, r, layers, qc_figures):
     fit = r.fit
     f, g = fit.fits, fit.gathers
@@ -437,11 +456,26 @@ def _lines(rep, r, layers, qc_figures):
         "picks_rejected",
         "status",
     ]
-    for line in sorted(fit.frames):
+    all_lines = sorted(fit.frames)
+    shown = _report_lines(r, all_lines)
+    if len(shown) < len(all_lines):
+        rep.paragraph(
+            f"{len(all_lines)} lines: the {len(shown)} with the most flagged gathers are shown with their section "
+            "and gather fits; every line's fits are in csv/shots.csv and the GeoPackage, its section sheet among "
+            "the section files."
+        )
+    if len(qc_figures) < len(f):
+        rep.paragraph(
+            f"QC figures of {len(qc_figures)} of the {len(f)} gathers (gather_figures; the flagged ones when the "
+            f"survey is large) are in qc/; at most {REPORT_MAX_QC_FIGURES} are shown here, the others linked."
+        )
+    embedded = 0
+    lines_of = np.asarray(g.line)
+    for line in shown:
         frame = fit.frames[line]
         rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
         rep.figure(_section_svg(r, line), f"section of line {line}")
-        sel = np.flatnonzero(np.asarray(g.line) == line)
+        sel = np.flatnonzero(lines_of == line)
         rep.table(
             {n: [shots.fields[n][i] for i in sel] for n in names},
             caption=f"Gather fits of line {line}",
@@ -449,12 +483,16 @@ def _lines(rep, r, layers, qc_figures):
         )
         for i in sel:
             if i in qc_figures:
-                name, png = qc_figures[i]
-                rep.figure(
-                    png,
-                    f"QC of line {line} shot {g.shot[i]}",
-                    collapsed_summary=f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})",
-                )
+                name, image = qc_figures[i]
+                if embedded < REPORT_MAX_QC_FIGURES:
+                    rep.figure(
+                        image,
+                        f"QC of line {line} shot {g.shot[i]}",
+                        collapsed_summary=f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})",
+                    )
+                    embedded += 1
+                else:
+                    rep.link(f"qc/{name}", f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})")
 
 
 def _section_svg(r, line):

@@ -112,6 +112,10 @@ class Report:
             img = f"<details><summary>{html.escape(collapsed_summary)}</summary>{img}</details>"
         self._parts.append(img)
 
+    def link(self, href: str, text: str) -> None:
+        """A link to a file beside the report (a relative path such as ``qc/gather_A_1.svg``)."""
+        self._parts.append(f'<p class="small"><a href="{html.escape(href, quote=True)}">{html.escape(text)}</a></p>')
+
     def render(self) -> str:
         """The whole page as one self-contained HTML string."""
         body = "\n".join(self._parts)

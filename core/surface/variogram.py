@@ -461,8 +461,8 @@ def fit_variogram(lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: s
     ok = (count_a > 0) & np.isfinite(gamma_a) & np.isfinite(lag_a) & (lag_a > 0)
     if ok.sum() < 3:
         raise InversionError(
-            f"a variogram fit needs at least 3 non-empty lag bins, got {int(ok.sum())}; "
-            "use fewer lags, a larger max_lag_m, or give the variogram model explicitly"
+            f"a variogram fit needs at least 3 non-empty lag bins, got {int(ok.sum())} (too few or too "
+            'clustered data; in survey.toml: set [processing] surface_method = "spline", which needs no variogram)'
         )
     h, g, w = lag_a[ok], gamma_a[ok], count_a[ok]
     gmax = float(g.max())

@@ -27,7 +27,9 @@ import codecs
 import dataclasses
 import difflib
 import math
+import os
 import re
+import stat
 import warnings
 from pathlib import Path
 from typing import Any, Optional, Union
@@ -36,7 +38,9 @@ import numpy as np
 
 from .. import crs as crsmod
 from ..errors import GeoreferenceError, RockheadWarning, SurveyConfigError
-from .csvfile import read_csv_table, split_lines
+from ..text import printable
+from .checks import check_survey
+from .csvfile import file_kind, read_csv_table, split_lines
 from .edits import EDITS_FILE_NAME, apply_pick_edits, read_pick_edits
 from .handoff import DESIGN_KEYS, SECTION_KEYS, SURVEY_EXTRA_KEYS, read_handoff
 from .model import Settings, Survey
@@ -67,11 +71,13 @@ _CHOICES = {
     "surface_method": ("auto", "kriging", "spline", "tomography"),
     "variogram_model": ("auto", "spherical", "exponential", "gaussian"),
     "trend": ("linear", "none"),
+    "gather_figures": ("auto", "all", "flagged", "none"),
 }
 _MINIMUM = {
     "min_picks": 3,
     "neighbours": 3,
     "index_contour_every": 1,
+    "max_grid_cells": 1000,
     "default_sigma_ms": MIN_SIGMA_MS,
     "borehole_sigma_m": MIN_SIGMA_M,
 }
@@ -144,6 +150,9 @@ class _Toml:
         field = f"{table}.{key}" if (table and key) else (key or table)
         return cls(self.path, self.line_of(table, key), field, message)
 
+
+# lines of survey.toml that name a file: [files] keys, [design] area, [sections] alignment
+_PATH_LINE = re.compile(r"^\s*[\"']?(stations|picks|boreholes|dem|pick_edits|area|alignment)[\"']?\s*=")
 
 _ALIASES = {"epsg": "crs", "srs": "crs", "projection": "crs", "coordinate_system": "crs", "title": "name"}
 
@@ -401,10 +410,16 @@ def _read_toml(path: Union[str, Path]) -> tuple[_Toml, dict[str, Any]]:
         if "Illegal character '\\n'" in reason or "Unterminated string" in reason:
             hint = 'a quoted text is not closed on this line: end it with "'
         if lineno and 1 <= lineno <= len(lines) and "\\" in lines[lineno - 1]:
-            hint = (
-                'a backslash starts an escape in "...": write Windows paths with forward slashes '
-                "(\"C:/data/picks.csv\") or in single quotes ('C:\\data\\picks.csv')"
-            )
+            if _PATH_LINE.match(lines[lineno - 1]):
+                hint = (
+                    'a backslash starts an escape in "...": write Windows paths with forward slashes '
+                    "(\"C:/data/picks.csv\") or in single quotes ('C:\\data\\picks.csv')"
+                )
+            else:
+                hint = (
+                    'a backslash starts an escape in "...": write \\\\ for a backslash, or put the text in '
+                    "single quotes ('...'), where a backslash is just a character"
+                )
         raise SurveyConfigError(path, lineno, None, f"not valid TOML: {reason}; {hint}") from exc
     except RecursionError as exc:
         raise SurveyConfigError(path, None, None, "not valid TOML: nested too deeply") from exc
@@ -441,7 +456,16 @@ def _crs_value(toml: _Toml, key: str, value: Any) -> Any:
         raise toml.error("survey", key, str(exc)) from exc
 
 
-def _file_value(toml: _Toml, key: str, value: Any, required: bool) -> Optional[Path]:
+def _inside(path: Path, folder: Path) -> bool:
+    """True when the resolved ``path`` lies in the resolved ``folder`` (or a subfolder)."""
+    try:
+        path.resolve().relative_to(folder.resolve())
+    except ValueError:
+        return False
+    return True
+
+
+def _file_value(toml: _Toml, key: str, value: Any, required: bool, confine_to: Optional[Path] = None) -> Optional[Path]:
     if value is None:
         if required:
             raise SurveyConfigError(
@@ -464,27 +488,51 @@ def _file_value(toml: _Toml, key: str, value: Any, required: bool) -> Optional[P
         )
     try:
         resolved = (toml.path.parent / Path(value.strip()).expanduser()).resolve()
-        is_dir, is_file = resolved.is_dir(), resolved.is_file()
-    except (OSError, ValueError, RuntimeError) as exc:
-        raise toml.error("files", key, f"cannot use the path {value!r}: {exc}") from exc
-    if is_dir:
-        raise toml.error("files", key, f"'{value}' is a folder ({resolved}), not a file")
-    if not is_file:
+        st = os.stat(resolved)
+    except FileNotFoundError:
         raise toml.error(
             "files",
             key,
-            f"file not found: '{value}' (resolved to {resolved}; paths are relative to survey.toml)",
+            f"file not found: '{printable(value)}' (resolved to {printable(resolved)}; paths are relative to "
+            "survey.toml)",
+        ) from None
+    except (OSError, ValueError, RuntimeError) as exc:
+        raise toml.error("files", key, f"cannot use the path {printable(value)!r}: {exc}") from exc
+    if stat.S_ISDIR(st.st_mode):
+        raise toml.error("files", key, f"'{printable(value)}' is a folder ({printable(resolved)}), not a file")
+    if not stat.S_ISREG(st.st_mode):
+        raise toml.error(
+            "files",
+            key,
+            f"'{printable(value)}' ({printable(resolved)}) is {file_kind(st.st_mode)}, not a regular file: name "
+            f"the {key} file",
+        )
+    if confine_to is not None and not _inside(resolved, confine_to):
+        raise toml.error(
+            "files",
+            key,
+            f"'{printable(value)}' resolves to {printable(resolved)}, outside the survey's folder "
+            f"{printable(confine_to)}: inputs are confined to it here; copy the file into that folder",
         )
     return resolved
 
 
-def load_survey(toml_path: Union[str, Path]) -> Survey:
+def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) -> Survey:
     """Read survey.toml and every file it names into a :class:`core.model.Survey`.
+
+    After the readers, :func:`.checks.check_survey` checks the files and
+    settings together, so that a survey this accepts is one a run can map
+    (what a run would refuse for input reasons is refused here, with the file,
+    line and field).
 
     Parameters
     ----------
     toml_path : str or Path
         The survey.toml file.
+    confine_inputs : bool
+        Refuse any input file outside the folder of survey.toml (and its
+        subfolders), before reading it: for survey folders from elsewhere, run
+        on a server (the Processing algorithms under ``qgis_process`` set it).
 
     Returns
     -------
@@ -502,6 +550,7 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         A CSV file's content (file, line, field).
     """
     toml, doc = _read_toml(Path(toml_path))
+    confine_to = toml.path.resolve().parent if confine_inputs else None
     for key in doc:
         if key not in toml_keys():
             raise _unknown_key(toml, None, key, tuple(toml_keys()))
@@ -539,7 +588,7 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
 
     paths: dict[str, Path] = {}
     for key in _FILE_KEYS:
-        p = _file_value(toml, key, files.get(key), required=key in ("stations", "picks"))
+        p = _file_value(toml, key, files.get(key), required=key in ("stations", "picks"), confine_to=confine_to)
         if p is not None:
             for other, q in paths.items():
                 if q == p:
@@ -575,12 +624,13 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         crs_in=crs_in,
         crs_work=crs_work,
         read_table=read_csv_table,
+        confine_to=confine_to,
     )
     if handoff.design_area_path is not None:
         paths["design_area"] = handoff.design_area_path
     for a in handoff.alignments:
         paths[f"alignment_{a.name}"] = a.path
-    return Survey(
+    loaded = Survey(
         name=name,
         path=toml.path,
         input_crs=crs_in,
@@ -593,3 +643,8 @@ def load_survey(toml_path: Union[str, Path]) -> Survey:
         handoff=handoff,
         edits=edits,
     )
+    if "dem" in paths:  # the run's ground model, read here so that a file GDAL cannot read is refused now
+        from .ground import GroundModel
+
+        GroundModel.from_raster(paths["dem"], crs_work)
+    return check_survey(loaded, toml.error)

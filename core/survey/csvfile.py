@@ -25,7 +25,9 @@ import codecs
 import csv
 import difflib
 import math
+import os
 import re
+import stat
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -33,17 +35,25 @@ from pathlib import Path
 from typing import Optional, Union
 
 from ..errors import InputFileError, RockheadWarning
+from ..text import printable
 
 __all__ = [
     "BOREHOLE_COLUMNS",
     "BOREHOLE_OPTIONAL",
+    "MAX_CSV_BYTES",
     "PICK_COLUMNS",
     "PICK_OPTIONAL",
     "STATION_COLUMNS",
     "CsvTable",
+    "excerpt",
+    "file_kind",
     "read_csv_table",
     "split_lines",
 ]
+
+#: Largest CSV file read (bytes): 512 MiB, some 12 million picks; larger files are refused
+#: before they are read, so that a wrong file (a disk image, a log) cannot exhaust the memory.
+MAX_CSV_BYTES = 512 * 2**20
 
 #: Required columns of stations.csv.
 STATION_COLUMNS = ("line", "station", "x", "y", "z")
@@ -61,6 +71,73 @@ _ROLE_COLUMNS = {
     "picks": PICK_COLUMNS,
     "boreholes": BOREHOLE_COLUMNS,
 }
+# every column name Rockhead reads in any table: a header with none of them is not one of ours
+_ANY_COLUMN = (
+    set(STATION_COLUMNS) | set(PICK_COLUMNS) | set(PICK_OPTIONAL) | set(BOREHOLE_COLUMNS) | set(BOREHOLE_OPTIONAL)
+)
+
+
+def excerpt(text: str, max_chars: int = 40) -> str:
+    """A short, printable, quoted excerpt of a field for a message.
+
+    Control characters are shown escaped and long text is cut, so that a
+    message never carries a terminal escape sequence or a whole line of an
+    unrelated file.
+
+    Parameters
+    ----------
+    text : str
+        The field's text.
+    max_chars : int
+        Longest excerpt (characters, before quoting).
+
+    Returns
+    -------
+    str
+        The excerpt in single quotes.
+
+    Examples
+    --------
+    >>> excerpt("12,5")
+    "'12,5'"
+    >>> excerpt("a" * 50, max_chars=8)
+    "'aaaaaaa…'"
+    """
+    return "'" + printable(text, max_chars).replace("'", "\\'") + "'"
+
+
+def file_kind(mode: int) -> str:
+    """What a file of ``os.stat`` mode ``mode`` is, in words ("a named pipe (FIFO)", ...).
+
+    Parameters
+    ----------
+    mode : int
+        ``st_mode`` of :func:`os.stat`.
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> import stat
+    >>> file_kind(stat.S_IFIFO)
+    'a named pipe (FIFO)'
+    """
+    if stat.S_ISDIR(mode):
+        return "a folder"
+    if stat.S_ISFIFO(mode):
+        return "a named pipe (FIFO)"
+    if stat.S_ISCHR(mode):
+        return "a character device"
+    if stat.S_ISBLK(mode):
+        return "a block device"
+    if stat.S_ISSOCK(mode):
+        return "a socket"
+    if stat.S_ISREG(mode):
+        return "a regular file"
+    return "not a regular file"
+
 
 _NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
 _DECIMAL_COMMA = re.compile(r"^[+-]?\d*,\d+$")
@@ -158,19 +235,19 @@ class CsvTable:
             value = float(text)
             if math.isfinite(value):
                 return value
-            raise InputFileError(path, lineno, name, f"value {text!r} overflows: expected a finite number")
+            raise InputFileError(path, lineno, name, f"value {excerpt(text)} overflows: expected a finite number")
         low = text.lower()
         if low.lstrip("+-") in ("nan", "inf", "infinity"):
-            raise InputFileError(path, lineno, name, f"value {text!r} is not a finite number: give a number")
+            raise InputFileError(path, lineno, name, f"value {excerpt(text)} is not a finite number: give a number")
         if _DECIMAL_COMMA.match(text):
             raise InputFileError(
                 path,
                 lineno,
                 name,
-                f"value {text!r} uses a decimal comma: write {text.replace(',', '.')} (decimal point; "
+                f"value {excerpt(text)} uses a decimal comma: write {text.replace(',', '.')} (decimal point; "
                 "commas separate fields)",
             )
-        raise InputFileError(path, lineno, name, f"value {text!r} is not a number")
+        raise InputFileError(path, lineno, name, f"value {excerpt(text)} is not a number")
 
     def label(self, i: int, name: str, text: str) -> str:
         """Return a non-empty label of data row ``i``, or raise naming the file, line and field.
@@ -201,17 +278,35 @@ class CsvTable:
 
 def _read_text(path: Path, role: str) -> str:
     try:
-        is_dir = path.is_dir()
+        st = os.stat(path)
+    except FileNotFoundError as exc:
+        raise InputFileError(path, None, None, f"{role} file not found: '{printable(path)}'") from exc
     except (OSError, ValueError) as exc:
-        raise InputFileError(path, None, None, f"cannot use the path '{path}': {exc}") from exc
-    if is_dir:
-        raise InputFileError(path, None, None, f"'{path}' is a folder, not the {role} file")
+        raise InputFileError(path, None, None, f"cannot use the path '{printable(path)}': {exc}") from exc
+    if stat.S_ISDIR(st.st_mode):
+        raise InputFileError(path, None, None, f"'{printable(path)}' is a folder, not the {role} file")
+    if not stat.S_ISREG(st.st_mode):  # reading a device or a pipe could block or never end
+        raise InputFileError(
+            path,
+            None,
+            None,
+            f"'{printable(path)}' is {file_kind(st.st_mode)}, not a regular file: name the {role} CSV file",
+        )
+    if st.st_size > MAX_CSV_BYTES:
+        raise InputFileError(
+            path,
+            None,
+            None,
+            f"the {role} file is {st.st_size / 2**20:.0f} MiB, more than the "
+            f"{MAX_CSV_BYTES / 2**20:.0f} MiB Rockhead reads (some 12 million picks): is it the right file? Split a "
+            "larger survey into parts",
+        )
     try:
         data = path.read_bytes()
     except FileNotFoundError as exc:
-        raise InputFileError(path, None, None, f"{role} file not found: '{path}'") from exc
+        raise InputFileError(path, None, None, f"{role} file not found: '{printable(path)}'") from exc
     except (OSError, ValueError) as exc:
-        raise InputFileError(path, None, None, f"cannot read the {role} file '{path}': {exc}") from exc
+        raise InputFileError(path, None, None, f"cannot read the {role} file '{printable(path)}': {exc}") from exc
     if data.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
         raise InputFileError(path, 1, None, "the file is UTF-16 text: save it as UTF-8 (CSV UTF-8)")
     if data.startswith(codecs.BOM_UTF8):
@@ -238,10 +333,41 @@ def _read_text(path: Path, role: str) -> str:
         ) from exc
 
 
-def _split_row(path: Path, lineno: int, text: str) -> list:
+def _open_quote_field(text: str) -> int | None:
+    """0-based field in which a quote opens and is not closed on the line (None when quotes balance)."""
+    field, quoted, start = 0, False, None
+    i = 0
+    while i < len(text):
+        c = text[i]
+        if quoted:
+            if c == '"':
+                if i + 1 < len(text) and text[i + 1] == '"':  # "" inside quotes is one quote
+                    i += 1
+                else:
+                    quoted = False
+        elif c == '"':
+            quoted, start = True, field
+        elif c == ",":
+            field += 1
+        i += 1
+    return start if quoted else None
+
+
+def _split_row(path: Path, lineno: int, text: str, header: Sequence[str] | None = None) -> list:
     try:
         rows = list(csv.reader([text], strict=True, skipinitialspace=True))
     except csv.Error as exc:
+        open_field = _open_quote_field(text)
+        if open_field is not None:
+            name = header[open_field] if header is not None and open_field < len(header) else None
+            named = f" ({excerpt(name, 30)})" if name else ""
+            raise InputFileError(
+                path,
+                lineno,
+                name.lower() if name else None,
+                f'a quote opened in field {open_field + 1}{named} is not closed on this line: close it with " '
+                "(a field may not span lines) or remove it",
+            ) from exc
         raise InputFileError(
             path,
             lineno,
@@ -312,7 +438,7 @@ def read_csv_table(
         stripped = raw.strip().strip("\ufeff").strip()
         if not stripped or stripped.startswith("#"):
             continue
-        fields = _split_row(path, i, raw)
+        fields = _split_row(path, i, raw, header)
         if not any(fields):  # ",,,,": a blank row as spreadsheets export it
             continue
         if header is None:
@@ -355,7 +481,7 @@ def read_csv_table(
             path,
             header_line,
             None,
-            f"the first row {header_raw.strip()[:60]!r} holds data, not column names: add the header "
+            f"the first row {excerpt(header_raw.strip(), 60)} holds data, not column names: add the header "
             f"row {', '.join(required)}",
         )
     for j, name in enumerate(columns):
@@ -366,6 +492,15 @@ def read_csv_table(
         if columns.index(name) != j:
             raise InputFileError(path, header_line, name, f"column '{name}' appears twice in the header: keep one")
     missing = [c for c in required if c not in columns]
+    if missing and not _ANY_COLUMN & set(columns):
+        # not a table of ours (another file named by mistake): say so without quoting its content
+        raise InputFileError(
+            path,
+            header_line,
+            None,
+            f"line {header_line} is not the header of a {role} file: none of its {len(columns)} field(s) is a "
+            f"column Rockhead reads (required: {', '.join(required)}); is the right file named in survey.toml?",
+        )
     if missing:
         unknown = [c for c in columns if c not in required and c not in optional]
         hints = []
@@ -381,7 +516,8 @@ def read_csv_table(
             header_line,
             missing[0],
             f"missing column{'s' if len(missing) > 1 else ''} {', '.join(repr(m) for m in missing)}: "
-            f"the header has {', '.join(columns) or 'nothing'}; required: {', '.join(required)}"
+            f"the header has {', '.join(printable(c, 30) for c in columns) or 'nothing'}; required: "
+            f"{', '.join(required)}"
             f"{hint}{_role_hint(columns)}",
         )
     known = list(required) + [c for c in optional if c in columns]

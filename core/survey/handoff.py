@@ -32,7 +32,9 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import math
+import os
 import re
+import stat
 from pathlib import Path
 from typing import Any, Callable, Optional, Union
 
@@ -41,7 +43,8 @@ import pyproj
 
 from .. import crs as crsmod
 from ..errors import GeoreferenceError, InputFileError
-from .csvfile import read_csv_table
+from ..text import printable
+from .csvfile import file_kind, read_csv_table
 from .model import Alignment, Handoff
 
 __all__ = [
@@ -74,7 +77,7 @@ def _type_name(value) -> str:
     return {str: "text", int: "integer", float: "number", bool: "true/false"}.get(type(value), type(value).__name__)
 
 
-def _resolve_file(toml_dir: Path, table: str, key: str, value, error) -> Path:
+def _resolve_file(toml_dir: Path, table: str, key: str, value, error, confine_to: Optional[Path] = None) -> Path:
     if not isinstance(value, str) or not value.strip():
         raise error(table, key, f"value {value!r} is {_type_name(value)}; expected a file name in quotes")
     if any(ord(c) < 32 for c in value):
@@ -86,13 +89,34 @@ def _resolve_file(toml_dir: Path, table: str, key: str, value, error) -> Path:
         )
     try:
         resolved = (toml_dir / Path(value.strip()).expanduser()).resolve()
-        is_file = resolved.is_file()
-    except (OSError, ValueError, RuntimeError) as exc:
-        raise error(table, key, f"cannot use the path {value!r}: {exc}") from exc
-    if not is_file:
+        st = os.stat(resolved)
+    except FileNotFoundError:
         raise error(
-            table, key, f"file not found: '{value}' (resolved to {resolved}; paths are relative to survey.toml)"
+            table,
+            key,
+            f"file not found: '{printable(value)}' (resolved to {printable(resolved)}; paths are "
+            "relative to survey.toml)",
+        ) from None
+    except (OSError, ValueError, RuntimeError) as exc:
+        raise error(table, key, f"cannot use the path {printable(value)!r}: {exc}") from exc
+    if not stat.S_ISREG(st.st_mode):
+        raise error(
+            table,
+            key,
+            f"'{printable(value)}' ({printable(resolved)}) is {file_kind(st.st_mode)}, not a "
+            "regular file: name the vertex or polygon file",
         )
+    if confine_to is not None:
+        try:
+            resolved.relative_to(Path(confine_to).resolve())
+        except ValueError:
+            raise error(
+                table,
+                key,
+                f"'{printable(value)}' resolves to {printable(resolved)}, outside the survey's "
+                f"folder {printable(confine_to)}: inputs are confined to it here; copy the file "
+                "into that folder",
+            ) from None
     return resolved
 
 
@@ -177,6 +201,7 @@ def read_handoff(
     crs_in: pyproj.CRS,
     crs_work: pyproj.CRS,
     read_table: Callable = read_csv_table,
+    confine_to: Optional[Path] = None,
 ) -> Handoff:
     """Check the hand-off keys of survey.toml and read the files they name.
 
@@ -195,6 +220,8 @@ def read_handoff(
         The survey's CSV reader, ``read_table(path, required, optional, role)``
         returning a table with ``rows``, ``lines``, ``columns`` and ``path``
         (default :func:`.csvfile.read_csv_table`).
+    confine_to : Path, optional
+        When given, every file named must lie in this folder (or below it).
 
     Returns
     -------
@@ -220,7 +247,7 @@ def read_handoff(
             )
         values["design_elevation_m"] = z
     if "area" in design_table:
-        path = _resolve_file(toml_dir, "design", "area", design_table["area"], error)
+        path = _resolve_file(toml_dir, "design", "area", design_table["area"], error, confine_to)
         values["design_area_path"] = path
         values["design_area"] = read_area(path, crs_in, crs_work, read_table=read_table)
     if ("area" in design_table or "simulations" in design_table) and "elevation_m" not in design_table:
@@ -254,7 +281,7 @@ def read_handoff(
             )
         alignments, seen = [], set()
         for value in names:
-            path = _resolve_file(toml_dir, "sections", "alignment", value, error)
+            path = _resolve_file(toml_dir, "sections", "alignment", value, error, confine_to)
             name = _SAFE_NAME.sub("_", path.stem).strip("_") or "alignment"
             while name in seen:
                 name += "_2"

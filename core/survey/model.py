@@ -197,6 +197,7 @@ class Settings:
     layers: Optional[tuple] = None  # reflector labels top down; None: ordered by median t0
     min_line_angle_deg: float = 30.0  # least angle between line directions to combine
     cell_size_m: Optional[float] = None  # None: chosen from the data spacing
+    max_grid_cells: int = 25_000_000  # largest output grid; beyond it a run refuses (or, cell chosen, coarsens)
     max_distance_m: Optional[float] = None  # None: from the data spacing; farther = nodata
     surface_method: str = "auto"  # "auto", "kriging", "spline", "tomography"
     variogram_model: str = "auto"  # "auto" (best cross-validation score), "spherical", "exponential", "gaussian"
@@ -204,6 +205,7 @@ class Settings:
     neighbours: int = 32  # kriging neighbourhood size
     contour_interval_m: Optional[float] = None  # None: a round value from the range
     index_contour_every: int = 5
+    gather_figures: str = "auto"  # QC figure per gather: "all", "flagged", "none"; "auto": all up to 200 gathers
     borehole_sigma_m: float = 0.1  # depth error of a borehole when boreholes.csv has none
     calibrate_velocity: bool = False  # scale velocities to fit the boreholes
     ground_buffer_m: Optional[float] = None  # depth given this far beyond the stations; None: half the depth

@@ -7,8 +7,11 @@ Files
     degrees for a geographic CRS), z ground elevation in metres.
 ``picks.csv``
     ``line, shot, receiver, time_ms`` and optional ``sigma_ms`` (an empty cell
-    takes ``default_sigma_ms``) and ``reflector`` (label; ``"1"`` when absent or
-    empty). ``shot`` and ``receiver`` are station labels of that line.
+    takes ``default_sigma_ms``) and ``reflector`` (label; ``"1"`` when the
+    column is absent or empty in every row; an empty cell among labelled rows is
+    an error). Reflector labels are compared without regard to case: ``rock``
+    and ``Rock`` are one reflector (with a warning), spelled as most rows spell
+    it. ``shot`` and ``receiver`` are station labels of that line.
 ``boreholes.csv``
     ``borehole, x, y, z, depth_m`` and optional ``sigma_m`` (empty:
     ``borehole_sigma_m``); z is the collar elevation, depth_m the depth of the
@@ -52,6 +55,7 @@ from .csvfile import (
     PICK_OPTIONAL,
     STATION_COLUMNS,
     CsvTable,
+    excerpt,
     read_csv_table,
 )
 from .model import Boreholes, Picks, Stations
@@ -82,6 +86,8 @@ MAX_TIME_MS = 2000.0
 MIN_TIME_MS = 0.1
 #: Smallest pick sigma accepted (ms, i.e. 1 microsecond, finer than any seismograph's timing).
 MIN_SIGMA_MS = 0.001
+#: A borehole farther than this many times the survey's extent from every station is refused.
+FAR_BOREHOLE_FACTOR = 10.0
 #: Smallest borehole depth sigma accepted (m).
 MIN_SIGMA_M = 0.001
 #: Largest |elevation| (m) accepted for stations and borehole collars.
@@ -375,7 +381,7 @@ def parse_stations(path: Union[str, Path]) -> StationRows:
                 table.path,
                 table.lines[i],
                 "station",
-                f"duplicate station {station[i]!r} on line {line[i]!r}: also on line {seen[key]}; "
+                f"duplicate station {excerpt(station[i])} on line {excerpt(line[i])}: also on line {seen[key]}; "
                 "station labels must be unique within a line",
             )
         seen[key] = table.lines[i]
@@ -480,6 +486,7 @@ def read_picks(
             known.setdefault(ln, set()).add(st)
     seen: dict[Any, int] = {}
     path = table.path
+    canonical = _reflector_spellings(table, j_ref) if j_ref is not None else {}
     for i, r in enumerate(table.rows):
         lineno = table.lines[i]
         line[i] = table.label(i, "line", r[0])
@@ -511,7 +518,7 @@ def read_picks(
             sigma_ms[i] = s
         else:
             sigma_ms[i] = default_sigma_ms
-        reflector[i] = r[j_ref] if (j_ref is not None and r[j_ref] != "") else DEFAULT_REFLECTOR
+        reflector[i] = canonical.get(r[j_ref].casefold(), DEFAULT_REFLECTOR) if j_ref is not None else DEFAULT_REFLECTOR
         if known is not None:
             _check_pick_stations(table, i, line[i], shot[i], receiver[i], known)
         key = (line[i], shot[i], receiver[i], reflector[i])
@@ -520,8 +527,9 @@ def read_picks(
                 path,
                 lineno,
                 "receiver",
-                f"duplicate pick: line {line[i]!r}, shot {shot[i]!r}, receiver {receiver[i]!r}, reflector "
-                f"{reflector[i]!r} is on lines {seen[key]} and {lineno}; keep one",
+                f"duplicate pick: line {excerpt(line[i])}, shot {excerpt(shot[i])}, receiver "
+                f"{excerpt(receiver[i])}, reflector {excerpt(reflector[i])} is on lines {seen[key]} and {lineno}; "
+                "keep one",
             )
         seen[key] = lineno
     if np.all(time_ms < 1.0) and np.median(time_ms) < 0.5:
@@ -552,6 +560,53 @@ def read_picks(
     )
 
 
+def _reflector_spellings(table: CsvTable, j_ref: int) -> dict[str, str]:
+    """Case-folded reflector label -> the spelling most rows use; refuses empty cells among labels.
+
+    ``rock`` and ``Rock`` are one reflector: labels differing only in case are
+    taken as one (the most frequent spelling, the first seen on a tie), with a
+    :class:`RockheadWarning` naming both and a line of each. An empty cell
+    while other rows name a reflector is an error (it would silently become a
+    reflector of its own); a column empty everywhere means one reflector.
+    """
+    texts = [r[j_ref] for r in table.rows]
+    labelled = [i for i, t in enumerate(texts) if t != ""]
+    if not labelled:
+        return {}
+    if len(labelled) < len(texts):
+        i = next(i for i, t in enumerate(texts) if t == "")
+        raise InputFileError(
+            table.path,
+            table.lines[i],
+            "reflector",
+            f"empty reflector label while other picks name one ({excerpt(texts[labelled[0]])} on line "
+            f"{table.lines[labelled[0]]}): give the reflector of every pick, or leave the column out for a survey "
+            "of one reflector",
+        )
+    counts: dict[str, dict[str, int]] = {}
+    first_line: dict[str, int] = {}
+    for i in labelled:
+        counts.setdefault(texts[i].casefold(), {}).setdefault(texts[i], 0)
+        counts[texts[i].casefold()][texts[i]] += 1
+        first_line.setdefault(texts[i], table.lines[i])
+    out = {}
+    for key, spellings in counts.items():
+        best = max(spellings, key=lambda sp: (spellings[sp], -first_line[sp]))
+        out[key] = best
+        others = [sp for sp in spellings if sp != best]
+        if others:
+            other = others[0]
+            warnings.warn(
+                RockheadWarning(
+                    f"{table.path.name}, line {first_line[other]}, field 'reflector': reflector labels "
+                    f"{excerpt(other)} ({spellings[other]} picks) and {excerpt(best)} ({spellings[best]} picks, "
+                    f"first on line {first_line[best]}) differ only in case: taken as one reflector {excerpt(best)}"
+                ),
+                stacklevel=4,
+            )
+    return out
+
+
 def _near(label: str, choices: Any) -> str:
     close = difflib.get_close_matches(str(label), sorted(map(str, choices)), n=3, cutoff=0.5)
     return f" (close: {', '.join(repr(c) for c in close)})" if close else ""
@@ -563,7 +618,7 @@ def _check_pick_stations(table: CsvTable, i: int, ln: str, sh: str, rc: str, kno
         lines = sorted(known)
         shown = ", ".join(repr(v) for v in lines[:10]) + (", ..." if len(lines) > 10 else "")
         raise InputFileError(
-            table.path, lineno, "line", f"line {ln!r} is not in the stations file (lines there: {shown})"
+            table.path, lineno, "line", f"line {excerpt(ln)} is not in the stations file (lines there: {shown})"
         )
     for name, lab in (("shot", sh), ("receiver", rc)):
         if lab not in known[ln]:
@@ -571,7 +626,8 @@ def _check_pick_stations(table: CsvTable, i: int, ln: str, sh: str, rc: str, kno
                 table.path,
                 lineno,
                 name,
-                f"{name} {lab!r} is not a station of line {ln!r} in the stations file{_near(lab, known[ln])}",
+                f"{name} {excerpt(lab)} is not a station of line {excerpt(ln)} in the stations "
+                f"file{_near(lab, known[ln])}",
             )
 
 
@@ -636,7 +692,7 @@ def read_boreholes(
         name[i] = table.label(i, "borehole", r[0])
         if name[i] in seen:
             raise InputFileError(
-                path, lineno, "borehole", f"duplicate borehole {name[i]!r}: also on line {seen[name[i]]}"
+                path, lineno, "borehole", f"duplicate borehole {excerpt(name[i])}: also on line {seen[name[i]]}"
             )
         seen[name[i]] = lineno
     x, y, z = _coords(table)
@@ -722,16 +778,34 @@ def _interface_columns(table: CsvTable, default_sigma_m: float) -> tuple[dict, d
 
 
 def _warn_far_boreholes(table: CsvTable, name: np.ndarray, xw: np.ndarray, yw: np.ndarray, stations: Stations) -> None:
+    """Warn about boreholes far from every station; refuse those beyond :data:`FAR_BOREHOLE_FACTOR` times that.
+
+    The distance to the nearest station comes from a KD-tree (memory linear
+    in the number of stations and boreholes, whatever their counts).
+    """
+    from scipy.spatial import cKDTree
+
     sx, sy = np.asarray(stations.x_m, float), np.asarray(stations.y_m, float)
     extent = float(np.hypot(np.ptp(sx), np.ptp(sy)))
     limit = max(extent, 100.0)
-    # distance from each borehole to its nearest station, (nb, ns) at once
-    d = np.hypot(xw[:, None] - sx[None, :], yw[:, None] - sy[None, :]).min(axis=1)
-    for i in np.flatnonzero(d > limit):
+    d, _ = cKDTree(np.column_stack([sx, sy])).query(np.column_stack([xw, yw]), k=1)
+    d = np.asarray(d, float)
+    far = np.flatnonzero(d > FAR_BOREHOLE_FACTOR * limit)
+    if far.size:
+        i = int(far[0])
+        raise InputFileError(
+            table.path,
+            table.lines[i],
+            "x",
+            f"borehole {excerpt(name[i])} is {d[i]:.0f} m from the nearest station, more than "
+            f"{FAR_BOREHOLE_FACTOR:g} times the survey's extent ({limit:.0f} m): it cannot belong to this survey's "
+            "map; check its coordinates (and the CRS) or remove it",
+        )
+    for j in np.flatnonzero(d > limit):
         warnings.warn(
             RockheadWarning(
-                f"{table.path.name}, line {table.lines[i]}, field 'x': borehole {name[i]!r} is "
-                f"{d[i]:.0f} m from the nearest station, farther than the survey's extent ({limit:.0f} m): "
+                f"{table.path.name}, line {table.lines[j]}, field 'x': borehole {excerpt(name[j])} is "
+                f"{d[j]:.0f} m from the nearest station, farther than the survey's extent ({limit:.0f} m): "
                 "check its coordinates; it will hardly constrain the map"
             ),
             stacklevel=3,

@@ -14,6 +14,7 @@ import os
 import tempfile
 
 from qgis.core import (
+    QgsApplication,
     QgsCoordinateReferenceSystem,
     QgsCoordinateTransform,
     QgsFeature,
@@ -25,7 +26,9 @@ from qgis.core import (
     QgsProcessing,
     QgsProcessingAlgorithm,
     QgsProcessingException,
+    QgsProcessingParameterBoolean,
     QgsProcessingParameterCrs,
+    QgsProcessingParameterDefinition,
     QgsProcessingParameterFeatureSource,
     QgsProcessingParameterField,
     QgsProcessingParameterFile,
@@ -40,6 +43,14 @@ from ..feedback import FeedbackProgress
 from ..provider import ICON_PATH
 
 GROUP_ID = "survey"
+
+
+def under_qgis_process() -> bool:
+    """True when QGIS runs as the ``qgis_process`` command line (no QGIS window)."""
+    try:
+        return QgsApplication.platform() == "qgis_process"
+    except (AttributeError, RuntimeError):  # no QgsApplication
+        return False
 
 
 def tr(text: str) -> str:
@@ -89,6 +100,7 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
     """Base class: naming, help with cautions, the survey-input parameters."""
 
     SURVEY = "SURVEY"
+    CONFINE = "INPUTS_IN_SURVEY_FOLDER"
     PICKS = "PICKS"
     LINE_FIELD = "LINE_FIELD"
     SHOT_FIELD = "SHOT_FIELD"
@@ -142,6 +154,18 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
                 optional=True,
             )
         )
+        # A survey.toml names its files by path; from a folder of unknown origin (a batch on a
+        # server, qgis_process behind a web service) it could name any readable file on the
+        # machine. Under qgis_process the inputs are confined to the survey's folder by default;
+        # in the QGIS window the user chose the survey and may keep a shared DEM elsewhere.
+        confine = QgsProcessingParameterBoolean(
+            self.CONFINE,
+            tr("Read input files only from the survey file's folder (and its subfolders)"),
+            defaultValue=under_qgis_process(),
+            optional=True,
+        )
+        confine.setFlags(confine.flags() | QgsProcessingParameterDefinition.FlagAdvanced)
+        self.addParameter(confine)
         self.addParameter(
             QgsProcessingParameterFeatureSource(
                 self.PICKS,
@@ -264,12 +288,18 @@ class ReflectorAlgorithm(QgsProcessingAlgorithm):
 
         path = self.survey_path(parameters, context, feedback)
         with CoreCall(feedback):
-            survey = load_survey(path)
+            survey = load_survey(path, confine_inputs=self.confine_inputs(parameters, context))
             overrides = {k: v for k, v in (overrides or {}).items() if v is not None}
             if overrides:
                 survey = dataclasses.replace(survey, settings=dataclasses.replace(survey.settings, **overrides))
             return survey
         raise QgsProcessingException(tr("Cancelled while reading the survey."))
+
+    def confine_inputs(self, parameters, context) -> bool:
+        """Whether the survey's input files must lie in its folder (the advanced parameter)."""
+        if self.CONFINE not in parameters or parameters.get(self.CONFINE) is None:
+            return under_qgis_process()
+        return self.parameterAsBoolean(parameters, self.CONFINE, context)
 
     def optional_number(self, parameters, key, context):
         """A number parameter, or None when it was left empty."""

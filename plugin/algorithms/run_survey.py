@@ -90,7 +90,13 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
         method = None if index == 0 else METHODS[index]
         result = None
         with CoreCall(feedback) as call:
-            result = job.run(survey_path, out_dir, method=method, progress=progress_for(feedback))
+            result = job.run(
+                survey_path,
+                out_dir,
+                method=method,
+                progress=progress_for(feedback),
+                confine_inputs=self.confine_inputs(parameters, context),
+            )
         if call.cancelled or result is None:
             return {}
         feedback.pushInfo(result.summary())

@@ -6,8 +6,9 @@ Run from anywhere::
     python tests/bad_inputs/make_corpus.py
 
 Every case starts from the same good base survey (an invented site: two
-crossing lines of 12 stations, 5 m apart, over a flat reflector 20 m deep) and
-changes one thing. Folders named ``good_*`` must load without error or warning,
+crossing lines of 12 stations, 5 m apart, three shots each, over a flat
+reflector 20 m deep: the smallest survey a run maps by kriging) and changes
+one thing. Folders named ``good_*`` must load without error or warning,
 ``warn_*`` must load with a RockheadWarning matching ``expected.txt``,
 all others must raise an error whose one-line message matches the regular
 expression in ``expected.txt`` (anchored at the start, so it pins the file,
@@ -43,7 +44,7 @@ def base():
         stations.append(["L2", str(201 + k), 0.0, 5.0 * k - 27.5, 310.0 - 0.05 * k])
     picks = []
     for line, first in (("L1", 101), ("L2", 201)):
-        for shot in (first, first + 11):
+        for shot in (first, first + 5, first + 11):  # end-on at both ends and split in the middle
             for rec in range(first, first + 12):
                 if rec == shot:
                     continue
@@ -272,9 +273,9 @@ def warn_extra_column(s):
 
 @case
 def warn_borehole_far(s):
-    s["boreholes"]["rows"][1][1] = 5000.0
+    s["boreholes"]["rows"][1][1] = 500.0
     return (
-        r"^boreholes\.csv, line 3, field 'x': borehole 'BH2' is 49\d\d m from the nearest station, "
+        r"^boreholes\.csv, line 3, field 'x': borehole 'BH2' is 4\d\d m from the nearest station, "
         r"farther than the survey's extent"
     )
 
@@ -712,8 +713,8 @@ def picks_unknown_line(s):
 
 @case
 def picks_shot_not_on_line(s):
-    s["picks"]["rows"][30][1] = "105"  # a station of L1, used on line L2
-    return rf"^picks\.csv, line {pline(30)}, field 'shot': shot '105' is not a station of line 'L2'"
+    s["picks"]["rows"][40][1] = "105"  # a station of L1, used on line L2
+    return rf"^picks\.csv, line {pline(40)}, field 'shot': shot '105' is not a station of line 'L2'"
 
 
 @case
@@ -746,13 +747,17 @@ def picks_file_holds_stations(s):
 @case
 def picks_malformed_quote(s):
     s["picks"]["rows"][10][0] = '"L1'
-    return rf"^picks\.csv, line {pline(10)}: malformed CSV row"
+    return (
+        rf"^picks\.csv, line {pline(10)}, field 'line': a quote opened in field 1 \('line'\) is not closed on this "
+        r"line"
+    )
 
 
 @case
 def picks_nul_bytes(s):
     s["raw"]["picks.csv"] = render_csv(s, "picks").encode().replace(b"L2,201,202", b"L2,201\x00,202")
-    return r"^picks\.csv, line 24: the file contains NUL bytes"
+    row = next(i for i, r in enumerate(s["picks"]["rows"]) if r[:3] == ["L2", "201", "202"])
+    return rf"^picks\.csv, line {pline(row)}: the file contains NUL bytes"
 
 
 @case
@@ -794,6 +799,196 @@ def boreholes_sigma_zero(s):
     s["boreholes"]["rows"][0].append("0")
     s["boreholes"]["rows"][1].append("0.2")
     return r"^boreholes\.csv, line 2, field 'sigma_m': sigma '0' m must be > 0"
+
+
+# ----------------------------------------------------------------- hostile input (files and settings together)
+# Each of these passed `check` and then failed `run` (or ran with a silent surprise) before the
+# survey-wide checks (core/survey/checks.py); now `check` refuses them with the file, line and field.
+
+
+@case
+def stations_not_a_csv_file(s):
+    # another text file named as the stations file: refused without quoting its content
+    s["raw"]["accounts.txt"] = b"root:x:0:0:root:/root:/bin/bash\ndaemon:x:1:1:daemon:/usr/sbin:/usr/sbin/nologin\n"
+    set_toml(s, "files", "stations", '"accounts.txt"')
+    return (
+        r"^accounts\.txt, line 1: line 1 is not the header of a stations file: none of its 1 field\(s\) is a column "
+        r"Rockhead reads \(required: line, station, x, y, z\)"
+    )
+
+
+@case
+def stations_device_file(s):
+    set_toml(s, "files", "stations", '"/dev/null"')
+    return (
+        r"^survey\.toml, line 6, field 'files\.stations': '/dev/null' \(/dev/null\) is a character device, not a "
+        r"regular file"
+    )
+
+
+@case
+def toml_backslash_in_name(s):
+    set_toml(s, "survey", "name", '"Site \\ north"')
+    return (
+        r"^survey\.toml, line 2: not valid TOML: .*; a backslash starts an escape in \"\.\.\.\": write \\\\ for a "
+        r"backslash, or put the text in single quotes"
+    )
+
+
+@case
+def boreholes_unmatched_quote(s):
+    text = render_csv(s, "boreholes").replace("BH2,", '"BH2,')
+    s["raw"]["boreholes.csv"] = text.encode()
+    return (
+        r"^boreholes\.csv, line 3, field 'borehole': a quote opened in field 1 \('borehole'\) is not closed on "
+        r"this line"
+    )
+
+
+@case
+def picks_reflector_empty_cells(s):
+    s["picks"]["header"].append("reflector")
+    for i, row in enumerate(s["picks"]["rows"]):
+        row.append("" if i in (3, 7) else "rock")
+    return (
+        rf"^picks\.csv, line {pline(3)}, field 'reflector': empty reflector label while other picks name one "
+        rf"\('rock' on line {pline(0)}\)"
+    )
+
+
+@case
+def warn_reflector_case(s):
+    s["picks"]["header"].append("reflector")
+    for i, row in enumerate(s["picks"]["rows"]):
+        row.append("Rock" if i % 3 == 0 else "rock")
+    return (
+        rf"^picks\.csv, line {pline(0)}, field 'reflector': reflector labels 'Rock' \(\d+ picks\) and 'rock' "
+        r"\(\d+ picks, first on line \d+\) differ only in case: taken as one reflector 'rock'"
+    )
+
+
+@case
+def picks_identical_times(s):
+    for row in s["picks"]["rows"]:
+        row[3] = "30.000"
+    return (
+        rf"^picks\.csv, line {pline(0)}, field 'time_ms': every gather of reflector '1' has one time at all its "
+        r"offsets \(30 ms here\)"
+    )
+
+
+@case
+def picks_too_few_gathers(s):
+    s["picks"]["rows"] = [r for r in s["picks"]["rows"] if r[1] in ("101", "201")]
+    return (
+        r"^picks\.csv, line 2: only 2 gather\(s\) of reflector '1' have at least min_picks = 6 picks whose times "
+        r"change with offset \(2 gathers in all\); a map needs at least 3"
+    )
+
+
+@case
+def picks_too_clustered_for_kriging(s):
+    s["picks"]["rows"] = [r for r in s["picks"]["rows"] if r[1] not in ("106", "206")]
+    return (
+        r"^picks\.csv: the 4 gathers of reflector '1' give reflector points too few or too clustered for a "
+        r"variogram \(1 distance class\(es\) of point pairs, at least 3 needed for kriging\)"
+    )
+
+
+@case
+def processing_reflector_unknown(s):
+    set_toml(s, "processing", "reflector", '"granite"')
+    return (
+        r"^survey\.toml, line 12, field 'processing\.reflector': reflector = 'granite' is not a reflector of the "
+        r"picks \(their reflector labels: '1'\)"
+    )
+
+
+@case
+def boreholes_far_away(s):
+    s["boreholes"]["rows"][1][1] = 100000.0
+    return (
+        r"^boreholes\.csv, line 3, field 'x': borehole 'BH2' is 99\d\d\d m from the nearest station, more than 10 "
+        r"times the survey's extent"
+    )
+
+
+@case
+def boreholes_depth_absurd(s):
+    s["boreholes"]["rows"][1][4] = 1e6
+    return (
+        r"^boreholes\.csv, line 3, field 'depth_m': depth 1e\+06 m of borehole 'BH2' is deeper than any reflector "
+        r"the picks can show"
+    )
+
+
+@case
+def stations_all_one_point(s):
+    for row in s["stations"]["rows"]:
+        row[2], row[3] = 0.0, 0.0
+    return rf"^stations\.csv, line {sline(0)}, field 'x': line 'L1' has 12 station\(s\) at a single position"
+
+
+@case
+def dem_not_a_raster(s):
+    s["raw"]["dem.tif"] = b"not a raster, only text\n"
+    set_toml(s, "files", "dem", '"dem.tif"')
+    return r"^dem\.tif: GDAL cannot read the raster"
+
+
+@case
+def processing_contour_interval_tiny(s):
+    set_toml(s, "processing", "contour_interval_m", "1e-6")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.contour_interval_m': contour_interval_m = 1e-06 m is below "
+        r"0\.1 m"
+    )
+
+
+@case
+def processing_max_distance_tiny(s):
+    set_toml(s, "processing", "max_distance_m", "1e-6")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.max_distance_m': max_distance_m = 1e-06 m is below the station "
+        r"spacing \(5 m\)"
+    )
+
+
+@case
+def processing_cell_size_tiny(s):
+    set_toml(s, "processing", "cell_size_m", "1e-6")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.cell_size_m': cell_size_m = 1e-06 m is below a tenth of the "
+        r"station spacing \(5 m\)"
+    )
+
+
+@case
+def processing_cell_size_small(s):
+    set_toml(s, "processing", "cell_size_m", "0.05")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.cell_size_m': cell_size_m = 0\.05 m is below a tenth of the "
+        r"station spacing"
+    )
+
+
+@case
+def processing_cell_size_huge(s):
+    set_toml(s, "processing", "cell_size_m", "1e6")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.cell_size_m': cell_size_m = 1e\+06 m is larger than the "
+        r"survey's extent \(55 m\)"
+    )
+
+
+@case
+def processing_grid_too_many_cells(s):
+    set_toml(s, "processing", "cell_size_m", "0.6")
+    set_toml(s, "processing", "max_grid_cells", "2000")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.cell_size_m': cell_size_m = 0\.6 m over the mapped area "
+        r"\(\d+ m x \d+ m\) needs about [\d,]+ cells \(.* GiB for the grids\), more than max_grid_cells = 2,000"
+    )
 
 
 # ----------------------------------------------------------------- hand-off settings ([design], [sections])

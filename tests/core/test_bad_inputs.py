@@ -139,18 +139,111 @@ def _cli_main():
     return main
 
 
+def _earlier_run(out: Path) -> dict:
+    """An earlier run's output folder (written through RunFolder, as a run writes it); returns its digest."""
+    from rockhead.core.formats.runfolder import RunFolder
+
+    with RunFolder(out, {}) as folder:
+        folder.path("report.html").write_text("<p>an earlier good run</p>", encoding="utf-8")
+        folder.path("csv/shots.csv").write_text("line,shot\nL1,101\n", encoding="utf-8")
+        folder.commit()
+    return _digest(out)
+
+
+def _digest(folder: Path) -> dict:
+    import hashlib
+
+    return {
+        str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file()
+    }
+
+
+def _assert_one_error_line(err: str, pattern: str) -> None:
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    # the error is one line, the last; warnings met before it are shown too, one line each
+    assert lines and lines[-1].startswith("rockhead: error: "), err
+    assert all(ln.startswith("rockhead: warning: ") for ln in lines[:-1]), err
+    assert "Traceback" not in err
+    assert re.search(pattern.lstrip("^"), lines[-1]), lines[-1]
+
+
 @pytest.mark.parametrize("case", BAD, ids=BAD)
 def test_cli_run_returns_2_with_one_line(case, tmp_path, capsys):
-    """Exit code 2 on bad input with a one-line message on stderr (README, Using it)."""
+    """Exit code 2 on bad input with a one-line message on stderr (README, Using it); the output
+    folder, holding an earlier run, is left byte-identical and nothing is left beside it."""
     main = _cli_main()
+    before = _earlier_run(tmp_path / "out")
     code = main(["run", str(CORPUS / case / "survey.toml"), "--out", str(tmp_path / "out")])
     err = capsys.readouterr().err
     assert code == 2, err
-    lines = [ln for ln in err.splitlines() if ln.strip()]
-    # the error is one line, the last; warnings met before it are shown too, one line each
-    assert lines[-1].startswith("rockhead: error: "), err
-    assert all(ln.startswith("rockhead: warning: ") for ln in lines[:-1]), err
-    assert re.search(_expected(case).lstrip("^"), lines[-1]), lines[-1]
+    _assert_one_error_line(err, _expected(case))
+    assert _digest(tmp_path / "out") == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
+
+
+def _output_case(name: str, tmp_path: Path) -> tuple:
+    """(argv, expected pattern, input files to keep intact) of the cases about the output folder."""
+    import shutil
+
+    src = tmp_path / "survey"
+    shutil.copytree(CORPUS / "good_base", src)
+    toml = src / "survey.toml"
+    out = tmp_path / "out"
+    if name == "stations_under_out_csv":
+        # the stations file lives at <out>/csv/stations.csv, where a run writes its CSV layers
+        (out / "csv").mkdir(parents=True)
+        (src / "stations.csv").rename(out / "csv" / "stations.csv")
+        toml.write_text(
+            toml.read_text().replace(
+                'stations = "stations.csv"', f'stations = "{(out / "csv" / "stations.csv").as_posix()}"'
+            )
+        )
+        return (
+            ["run", str(toml), "--out", str(out)],
+            r"output '.*out/csv/stations\.csv' would replace the input "
+            r"file .*stations\.csv' \(\[files\] stations\)",
+            [out / "csv" / "stations.csv"],
+        )
+    if name == "linked_csv_folder":
+        # an earlier run whose csv/ someone replaced by a link to the survey folder: the run's
+        # csv/stations.csv would be the input itself
+        _earlier_run(out)
+        shutil.rmtree(out / "csv")
+        os.symlink(src, out / "csv")
+        return (
+            ["run", str(toml), "--out", str(out)],
+            r"output '.*out/csv' is a link to .*survey",
+            [src / "stations.csv"],
+        )
+    if name == "empty_out":
+        return (["run", str(toml), "--out", ""], r"the output folder is empty text", [])
+    if name == "out_is_survey_folder":
+        return (
+            ["run", str(toml), "--out", str(src)],
+            r"output folder '.*survey' is or holds the input file",
+            [src / "stations.csv"],
+        )
+    raise AssertionError(name)
+
+
+OUTPUT_CASES = ["stations_under_out_csv", "linked_csv_folder", "empty_out", "out_is_survey_folder"]
+
+
+@pytest.mark.parametrize("name", OUTPUT_CASES, ids=OUTPUT_CASES)
+def test_cli_run_refuses_outputs_over_inputs(name, tmp_path, capsys, monkeypatch):
+    """Outputs never land on inputs: refused before anything is written, inputs byte-identical."""
+    monkeypatch.chdir(tmp_path)  # an empty --out would otherwise mean this folder
+    argv, pattern, keep = _output_case(name, tmp_path)
+    before = {p: p.read_bytes() for p in keep}
+    listing = sorted(str(p.relative_to(tmp_path)) for p in tmp_path.rglob("*"))
+    code = _cli_main()(argv)
+    err = capsys.readouterr().err
+    assert code == 2, err
+    _assert_one_error_line(err, pattern)
+    assert {p: p.read_bytes() for p in keep} == before
+    assert sorted(str(p.relative_to(tmp_path)) for p in tmp_path.rglob("*")) == listing  # nothing written
 
 
 @pytest.mark.parametrize("case", GOOD + WARN, ids=GOOD + WARN)

@@ -275,3 +275,16 @@ def test_staged_files_have_normal_permissions(tmp_path):
     mask = os.umask(0)
     os.umask(mask)
     assert (tmp_path / "out").stat().st_mode & 0o777 == 0o777 & ~mask
+
+
+def test_carry_over_keeps_the_last_runs_other_files(tmp_path):
+    """A partial update (the map after a pick edit) replaces what it writes and keeps the rest."""
+    out = tmp_path / "out"
+    _write_run(out, {"survey.gpkg": "map 1", "report.html": "report 1", "qc/gather_A_1_1.svg": "fig"})
+    with RunFolder(out, {}) as run:
+        run.path("survey.gpkg").write_text("map 2")
+        assert sorted(run.carry_over()) == ["qc/gather_A_1_1.svg", "report.html"]
+        run.commit()
+    assert (out / "survey.gpkg").read_text() == "map 2"
+    assert (out / "report.html").read_text() == "report 1"
+    assert [f["path"] for f in read_manifest(out)["files"]] == ["survey.gpkg", "report.html", "qc/gather_A_1_1.svg"]

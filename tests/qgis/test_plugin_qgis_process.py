@@ -89,3 +89,31 @@ def test_stripped_environment_names_what_is_missing(plugin_dir, tmp_path):
     assert "Rockhead cannot start: the Python package(s) contourpy could not be imported" in text
     assert "pip install contourpy" in text and "apt install python3-contourpy" in text
     assert "Traceback" not in text
+
+
+def test_inputs_confined_to_the_survey_folder_under_qgis_process(qp_env, sample_survey, tmp_path):
+    """Under qgis_process (a server, a batch of folders from elsewhere) a survey.toml may not name
+    files outside its own folder unless the parameter is turned off."""
+    import shutil
+    from pathlib import Path
+
+    folder = tmp_path / "confined"
+    shutil.copytree(Path(sample_survey).parent, folder)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    shutil.move(str(folder / "picks.csv"), elsewhere / "picks.csv")
+    toml = folder / "survey.toml"
+    toml.write_text(toml.read_text().replace('picks = "picks.csv"', 'picks = "../elsewhere/picks.csv"'))
+    args = [
+        "run",
+        "rockhead:fitgathers",
+        "--",
+        f"SURVEY={toml}",
+        f"SHOTS={tmp_path / 'shots.gpkg'}",
+        f"REFLECTOR_POINTS={tmp_path / 'points.gpkg'}",
+    ]
+    out = qgis_process(qp_env, *args)
+    assert out.returncode != 0
+    assert "outside the survey's folder" in out.stdout + out.stderr
+    out = qgis_process(qp_env, *args, "INPUTS_IN_SURVEY_FOLDER=false")
+    assert out.returncode == 0, out.stdout + out.stderr
