@@ -199,27 +199,61 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
     the largest cell change of each iteration (m).
     """
     progress = progress or NullProgress()
-    surf, diag = interpolate_step(
-        fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30), corridor=corridor
-    )
-    history = []
     if corridor is not None:
+        surf, diag = interpolate_step(
+            fit.points, spec, survey.settings, method, progress=SubProgress(progress, 0, 30), corridor=corridor
+        )
         return fit, surf, diag, ()
+    # the loop needs the surface's slope at the gathers, not every cell: a large grid is iterated on
+    # at a coarser cell and gridded at full resolution once, from the relocated points
+    work = relocation_grid(spec)
+    surf, diag = interpolate_step(fit.points, work, survey.settings, method, progress=SubProgress(progress, 0, 30))
+    history = []
     for it in range(max_iterations):
         check_cancel(progress)
-        q = surface_cross_components(spec, surf.z, fit.gathers, fit.points.x_m, fit.points.y_m)
+        q = surface_cross_components(work, surf.z, fit.gathers, fit.points.x_m, fit.points.y_m)
         mapped = np.asarray(fit.gathers.reflector).astype(str) == str(survey.settings.reflector)
         q = np.where(np.isfinite(q) & mapped, q, 0.0)
         fit = fit_step(survey, cross_component=q, ground=ground, exclude=fit.fits.excluded)
         new, diag = interpolate_step(
-            fit.points, spec, survey.settings, method, progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it)
+            fit.points, work, survey.settings, method, progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it)
         )
         change = np.nanmax(np.abs(new.z - surf.z)) if np.any(np.isfinite(new.z - surf.z)) else 0.0
         history.append(float(change))
         surf = new
         if change < tolerance_m:
             break
+    if work is not spec:
+        surf, diag = interpolate_step(
+            fit.points, spec, survey.settings, method, progress=SubProgress(progress, 95, 100)
+        )
     return fit, surf, diag, tuple(history)
+
+
+#: Largest grid the 3D relocation loop iterates on; a larger output grid is iterated on a coarser one.
+RELOCATION_MAX_CELLS = 250_000
+
+
+def relocation_grid(spec: GridSpec) -> GridSpec:
+    """The grid the relocation loop iterates on: ``spec``, or one over its extent with cells k times larger.
+
+    k is the smallest whole factor that brings the cells within
+    :data:`RELOCATION_MAX_CELLS`; the output grid itself is interpolated once,
+    after the loop.
+
+    >>> relocation_grid(GridSpec(0.5, 99.5, 1.0, 100, 100)).cell_size_m  # 10,000 cells: itself
+    1.0
+    >>> g = relocation_grid(GridSpec(0.5, 999.5, 1.0, 1000, 1000))  # a million cells: k = 2
+    >>> g.cell_size_m, g.shape, g.bounds == (0.0, 1000.0, 0.0, 1000.0)
+    (2.0, (500, 500), True)
+    """
+    if spec.size <= RELOCATION_MAX_CELLS:
+        return spec
+    k = int(np.ceil(np.sqrt(spec.size / RELOCATION_MAX_CELLS)))
+    cell = spec.cell_size_m * k
+    w, _, _, n = spec.bounds
+    nx, ny = -(-spec.nx // k), -(-spec.ny // k)
+    return GridSpec(w + cell / 2, n - cell / 2, cell, nx, ny)
 
 
 def borehole_check(points, boreholes, settings, diagnostics: SurfaceDiagnostics) -> BoreholeCheck:

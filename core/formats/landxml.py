@@ -23,6 +23,7 @@ Definition (surfType "TIN"), Pnts/P, Faces/F.
 from __future__ import annotations
 
 import datetime as _dt
+import io
 import os
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
@@ -204,17 +205,42 @@ def write_landxml_surface(
         definition.set("elevMin", _num(float(pts[:, 2].min()), digits))
         definition.set("elevMax", _num(float(pts[:, 2].max()), digits))
     pnts = ET.SubElement(definition, ns + "Pnts")
-    for i, (x, y, z) in enumerate(pts, start=1):
-        p = ET.SubElement(pnts, ns + "P", {"id": str(i)})
-        p.text = f"{_num(y, digits)} {_num(x, digits)} {_num(z, digits)}"  # northing easting elevation
     faces = ET.SubElement(definition, ns + "Faces")
-    for a, b, c in np.asarray(tin.faces, np.int64) + 1:
-        f = ET.SubElement(faces, ns + "F")
-        f.text = f"{a} {b} {c}"
+    face_index = np.asarray(tin.faces, np.int64) + 1
+    # The points and faces (hundreds of thousands on a large map) are written as text, not as
+    # ElementTree elements, which take a minute for a million; the bytes are those ElementTree
+    # writes (same indentation and escaping: numbers need none), as the tests check.
+    p_rows = [f"{_num(y, digits)} {_num(x, digits)} {_num(z, digits)}" for x, y, z in pts.tolist()]
+    f_rows = [f"{a} {b} {c}" for a, b, c in face_index.tolist()]
+    if p_rows:
+        pnts.text = _PNTS_MARK
+    if f_rows:
+        faces.text = _FACES_MARK
     tree = ET.ElementTree(root)
     if hasattr(ET, "indent"):  # Python 3.9+
         ET.indent(tree, space=" ")
+    buf = io.BytesIO()
+    tree.write(buf, encoding="utf-8", xml_declaration=True)
+    data = buf.getvalue().decode("utf-8")
+    data = _splice(data, _PNTS_MARK, "P", [f' id="{i}">{row}' for i, row in enumerate(p_rows, start=1)])
+    data = _splice(data, _FACES_MARK, "F", [f">{row}" for row in f_rows])
     with atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
-            tree.write(fh, encoding="utf-8", xml_declaration=True)
+            fh.write(data.encode("utf-8"))
     return path
+
+
+_PNTS_MARK = "\x1fPNTS\x1f"
+_FACES_MARK = "\x1fFACES\x1f"
+
+
+def _splice(xml: str, mark: str, tag: str, rows: list) -> str:
+    """Put child elements ``<tag{row}</tag>`` where ``mark`` stands, indented as ElementTree indents children."""
+    at = xml.find(mark)
+    if at < 0:
+        return xml
+    line_start = xml.rfind("\n", 0, at) + 1
+    indent = len(xml[line_start:at]) - len(xml[line_start:at].lstrip(" "))
+    child = "\n" + " " * (indent + 1)
+    body = child + child.join(f"<{tag}{row}</{tag}>" for row in rows) + "\n" + " " * indent
+    return xml[:at] + body + xml[at + len(mark) :]

@@ -43,8 +43,9 @@ def test_grid_error_from_survey_settings_exits_2_naming_file_line_field(tmp_path
     line = _stderr_line(capsys)
     assert code == 2, line
     where = f"rockhead: error: survey.toml, line {line_no}, field 'processing.cell_size_m'"
-    assert line.startswith(f"{where}: a 0.001 m cell")
-    assert "give a larger cell size" in line
+    # refused by the survey's checks before any work: below a tenth of the station spacing
+    assert line.startswith(f"{where}: cell_size_m = 0.001 m is below a tenth of the station spacing")
+    assert "give at least" in line
     assert not out.exists() or not any(out.iterdir())  # nothing written
 
 

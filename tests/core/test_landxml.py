@@ -90,3 +90,43 @@ def test_file_structure(tmp_path):
 def test_issue_date_follows_source_date_epoch(monkeypatch):
     monkeypatch.setenv("SOURCE_DATE_EPOCH", "1764633600")  # 2025-12-02T00:00:00Z
     assert issue_date().isoformat() == "2025-12-02"
+
+
+def test_points_and_faces_written_as_elementtree_writes_them(tmp_path, rng):
+    """The points and faces are spliced in as text (a large map has a million of them): the bytes
+    must be those of the same document built element by element with xml.etree (the reference)."""
+    from rockhead.core.formats.landxml import LANDXML_NAMESPACE
+
+    z = 100.0 + rng.normal(0.0, 2.0, (7, 9))
+    z[2, 3] = np.nan  # a hole: fewer faces around it
+    tin = grid_tin(np.arange(9) * 5.0 + 500000.0, 5500000.0 - np.arange(7) * 5.0, z)
+    crs = parse_crs("EPSG:32633")
+    path = write_landxml_surface(tmp_path / "s.xml", tin, crs, surface_name="reflector")
+    got = path.read_bytes()
+
+    root = ET.fromstring(got)
+    ns = "{" + LANDXML_NAMESPACE + "}"
+    pnts = root.find(f".//{ns}Pnts")
+    faces = root.find(f".//{ns}Faces")
+    # rebuild the two lists element by element, as before, and serialise the whole document again
+    for el in (pnts, faces):
+        el.text = None
+        for child in list(el):
+            el.remove(child)
+    for i, (x, y, zz) in enumerate(np.asarray(tin.points), start=1):
+        ET.SubElement(pnts, ns + "P", {"id": str(i)}).text = f"{y:.3f} {x:.3f} {zz:.3f}"
+    for a, b, c in np.asarray(tin.faces) + 1:
+        ET.SubElement(faces, ns + "F").text = f"{a} {b} {c}"
+    ET.register_namespace("", LANDXML_NAMESPACE)
+    for el in root.iter():  # drop the indentation read back, then indent as the writer does
+        el.tail = None
+        if len(el):
+            el.text = None
+    tree = ET.ElementTree(root)
+    ET.indent(tree, space=" ")
+    import io
+
+    buf = io.BytesIO()
+    tree.write(buf, encoding="utf-8", xml_declaration=True)
+    assert got == buf.getvalue()
+    assert len(tin.points) == 62 and len(pnts) == 62  # 63 cells less the hole
