@@ -116,9 +116,9 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
         warnings.simplefilter("always")
         try:
             if args.command == "check":
-                from .survey.config import load_survey
+                from .survey.config import check_for_run, load_survey
 
-                survey = load_survey(args.survey, confine_inputs=args.inputs_in_survey_folder)
+                survey = check_for_run(load_survey(args.survey, confine_inputs=args.inputs_in_survey_folder))
                 n_bh = 0 if survey.boreholes is None else len(survey.boreholes)
                 print(
                     f"{printable(survey.name)}: {len(survey.stations)} stations, {len(survey.picks)} picks, "

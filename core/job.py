@@ -15,7 +15,7 @@ from .products import outputs
 from .products.handoff import HANDOFF_NAMES
 from .progress import NullProgress, SubProgress
 from .results import RunResult
-from .survey.config import load_survey
+from .survey.config import check_for_run, load_survey
 from .workflow import compute
 
 OUTPUT_NAMES = (
@@ -112,7 +112,7 @@ def run(
         Refuse input files outside the survey's folder (see :func:`~.survey.config.load_survey`).
     """
     progress = progress or NullProgress()
-    survey = load_survey(survey_path, confine_inputs=confine_inputs)
+    survey = check_for_run(load_survey(survey_path, confine_inputs=confine_inputs))
     engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
     with open_output_folder(survey, out_dir) as folder:
         result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))

@@ -57,7 +57,7 @@ def section_file_stem(name: str) -> str:
 
 #: Most section sheets drawn along seismic lines (a sheet takes about a second); a survey of more lines
 #: gets sheets of an evenly spread subset and the CSV of every section. Alignments always get theirs.
-MAX_LINE_SECTION_SHEETS = 40
+MAX_LINE_SECTION_SHEETS = 20
 
 
 def drawn_sections(sections) -> list:
@@ -81,7 +81,7 @@ def drawn_sections(sections) -> list:
     >>> secs = [S(title=f"line {i}") for i in range(100)] + [S(title="alignment axis")]
     >>> flags = drawn_sections(secs)
     >>> sum(flags), flags[0], flags[1], flags[-1]
-    (41, True, False, True)
+    (21, True, False, True)
     """
     is_line = [not str(getattr(s, "title", "")).startswith("alignment ") for s in sections]
     n_lines = sum(is_line)

@@ -59,7 +59,7 @@ try:  # Python 3.11+
 except ModuleNotFoundError:  # pragma: no cover - Python 3.9/3.10
     import tomli as tomllib  # type: ignore[no-redef]
 
-__all__ = ["check_layers", "load_survey", "read_settings", "toml_keys"]
+__all__ = ["check_for_run", "check_layers", "load_survey", "read_settings", "toml_keys"]
 
 _SURVEY_KEYS = ("name", "crs", "work_crs")
 _SURVEY_KEYS = ("name", "crs", "work_crs")
@@ -520,10 +520,10 @@ def _file_value(toml: _Toml, key: str, value: Any, required: bool, confine_to: O
 def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) -> Survey:
     """Read survey.toml and every file it names into a :class:`core.model.Survey`.
 
-    After the readers, :func:`.checks.check_survey` checks the files and
-    settings together, so that a survey this accepts is one a run can map
-    (what a run would refuse for input reasons is refused here, with the file,
-    line and field).
+    Each file is checked line by line; :func:`check_for_run` then checks the
+    files and settings together for a whole run (``rockhead check`` and
+    ``rockhead run`` call both). ``[processing] reflector`` is spelled as the
+    picks spell it when it differs only in case.
 
     Parameters
     ----------
@@ -643,8 +643,45 @@ def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) ->
         handoff=handoff,
         edits=edits,
     )
-    if "dem" in paths:  # the run's ground model, read here so that a file GDAL cannot read is refused now
+    asked = settings.reflector
+    if asked is not None:  # the picks' spelling of a label given in another case
+        match = sorted({lab for lab in picks.reflector.astype(str) if lab.casefold() == str(asked).casefold()})
+        if match and match[0] != asked:
+            loaded = dataclasses.replace(loaded, settings=dataclasses.replace(settings, reflector=match[0]))
+    return loaded
+
+
+def check_for_run(survey: Survey) -> Survey:
+    """Check a loaded survey's files and settings together, as a whole run needs them.
+
+    What a run would refuse for input reasons is refused here, before any
+    work, with the file, line and field (:func:`.checks.check_survey`); the
+    DEM is read as the run reads it. ``rockhead check`` and ``rockhead run``
+    call this after :func:`load_survey`; a single step (fitting the gathers of
+    a two-gather test line) need not.
+
+    Parameters
+    ----------
+    survey : Survey
+        As :func:`load_survey` returns it.
+
+    Returns
+    -------
+    Survey
+        ``survey``, with ``[processing] reflector`` spelled as in picks.csv.
+
+    Raises
+    ------
+    SurveyConfigError, InputFileError
+        As :func:`.checks.check_survey` says; an unreadable DEM.
+    """
+    try:
+        text = survey.path.read_bytes().decode("utf-8-sig")
+    except (OSError, UnicodeDecodeError):
+        text = ""
+    toml = _Toml(survey.path, text)
+    if "dem" in survey.files:  # the run's ground model: a file GDAL cannot read is refused now
         from .ground import GroundModel
 
-        GroundModel.from_raster(paths["dem"], crs_work)
-    return check_survey(loaded, toml.error)
+        GroundModel.from_raster(survey.files["dem"], survey.crs)
+    return check_survey(survey, toml.error)

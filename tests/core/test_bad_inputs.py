@@ -2,7 +2,8 @@
 
 * ``good_*``: the survey loads, with no RockheadWarning.
 * ``warn_*``: the survey loads and a RockheadWarning matches expected.txt.
-* every other folder: load_survey raises a RockheadError whose message is
+* every other folder: reading and checking the survey (what ``rockhead check``
+  does: load_survey, then check_for_run) raises a RockheadError whose message is
   one line, matches the regular expression in expected.txt (anchored at the
   start, so it pins file, line and field) and, for file errors, names the
   file's basename, the line and the field it carries.
@@ -20,8 +21,15 @@ from pathlib import Path
 
 import pytest
 from rockhead.core.errors import InputFileError, RockheadError, RockheadWarning
-from rockhead.core.survey.config import load_survey
+from rockhead.core.survey.config import check_for_run
+from rockhead.core.survey.config import load_survey as _load
 from rockhead.core.survey.model import Survey
+
+
+def load_survey(path):
+    """What ``rockhead check`` does: read the files, then check them together for a run."""
+    return check_for_run(_load(path))
+
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 CASES = sorted(p.name for p in CORPUS.iterdir() if (p / "survey.toml").is_file())

@@ -15,9 +15,16 @@ import numpy as np
 import pytest
 from rockhead.core.errors import InputFileError, RockheadWarning, SurveyConfigError
 from rockhead.core.survey.checks import grid_buffer_m, station_spacing_m
-from rockhead.core.survey.config import load_survey
+from rockhead.core.survey.config import check_for_run
+from rockhead.core.survey.config import load_survey as _load
 from rockhead.core.survey.csvfile import excerpt
 from rockhead.core.workflow import grid_spec
+
+
+def load_survey(path, **kwargs):
+    """What ``rockhead check`` does: read the files, then check them together for a run."""
+    return check_for_run(_load(path, **kwargs))
+
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 

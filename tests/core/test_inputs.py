@@ -134,10 +134,29 @@ def test_read_picks_units_defaults(tmp_path):
 
 def test_read_picks_optional_columns(tmp_path):
     text = "LINE, Shot ,receiver,time_ms,sigma_ms,reflector\n"
-    text += "L1,1,2,30,0.4,top\nL1,1,2,50,,base\nL1,2,1,30,1.5,\n"
+    text += "L1,1,2,30,0.4,top\nL1,1,2,50,,base\nL1,2,1,30,1.5,top\n"
     p = readers.read_picks(write(tmp_path / "p.csv", text), default_sigma_ms=0.5)
     np.testing.assert_allclose(p.sigma_s, [0.0004, 0.0005, 0.0015])  # empty cell -> default
-    assert list(p.reflector) == ["top", "base", "1"]  # empty reflector -> "1"
+    assert list(p.reflector) == ["top", "base", "top"]
+
+
+def test_reflector_column_empty_everywhere_is_one_reflector(tmp_path):
+    text = "line,shot,receiver,time_ms,reflector\nL1,1,2,30,\nL1,2,1,31,\n"
+    assert list(readers.read_picks(write(tmp_path / "p.csv", text)).reflector) == ["1", "1"]
+
+
+def test_empty_reflector_cell_among_labels_is_refused(tmp_path):
+    # it would silently become a reflector of its own ("1") beside "top"
+    text = "line,shot,receiver,time_ms,reflector\nL1,1,2,30,top\nL1,2,1,31,\n"
+    with pytest.raises(InputFileError, match=r"line 3, field 'reflector': empty reflector label while other picks"):
+        readers.read_picks(write(tmp_path / "p.csv", text))
+
+
+def test_reflector_labels_differing_in_case_are_one(tmp_path):
+    text = "line,shot,receiver,time_ms,reflector\nL1,1,2,30,Rock\nL1,2,1,31,rock\nL1,1,3,32,rock\n"
+    with pytest.warns(RockheadWarning, match=r"differ only in case: taken as one reflector 'rock'"):
+        p = readers.read_picks(write(tmp_path / "p.csv", text))
+    assert list(p.reflector) == ["rock", "rock", "rock"]
 
 
 def test_picks_checked_against_stations_only_when_given(tmp_path):
