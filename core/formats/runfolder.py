@@ -50,6 +50,7 @@ import secrets
 import shutil
 import socket
 import sys
+import time
 from pathlib import Path
 from typing import Dict, Iterable, List, Mapping, Optional, Tuple, Union
 
@@ -225,9 +226,15 @@ class _Lock:
             existed = os.fstat(fd).st_size > 0
             if not self._try_os_lock(fd):
                 os.close(fd)
+                owner = self.owner()
+                for _ in range(20):  # its holder writes its PID just after taking the lock
+                    if owner != "unknown PID":
+                        break
+                    time.sleep(0.05)
+                    owner = self.owner()
                 raise OutputError(
                     f"output folder '{_display(self.folder)}' is being written by another Rockhead run "
-                    f"({self.owner()}); wait for it to finish or choose another output folder "
+                    f"({owner}); wait for it to finish or choose another output folder "
                     f"(lock file '{self.path.name}' beside it)"
                 )
             try:

@@ -423,7 +423,7 @@ def _pick_edits(rep, survey, fit):
 #: figure and table of gather fits, and this many gather QC figures are embedded (the others are linked
 #: to their files in qc/; every fit is in csv/shots.csv and the GeoPackage).
 REPORT_MAX_LINES = 30
-REPORT_MAX_QC_FIGURES = 40
+REPORT_MAX_QC_FIGURES = 60
 
 
 def _report_lines(r, names_sorted):
