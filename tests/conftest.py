@@ -20,9 +20,16 @@ PACKAGE = "rockhead"
 
 
 def _ensure_package():
+    """Import ``rockhead`` from this checkout through a folder holding a link named ``rockhead``.
+
+    An editable install maps the package onto the checkout itself, whose folder may have any name;
+    child processes of another Python (the other stack) need a folder whose entry ``rockhead`` is
+    this checkout, so the tests always import through one.
+    """
     try:
         mod = importlib.import_module(PACKAGE)
-        if Path(mod.__file__).resolve().parent == REPO:
+        here = Path(mod.__path__[0])
+        if here.name == PACKAGE and here.resolve() == REPO:
             return
         for name in [m for m in sys.modules if m == PACKAGE or m.startswith(PACKAGE + ".")]:
             del sys.modules[name]
@@ -31,7 +38,9 @@ def _ensure_package():
     link_dir = Path(tempfile.mkdtemp(prefix="rockhead-pkg-"))
     os.symlink(REPO, link_dir / PACKAGE)
     sys.path.insert(0, str(link_dir))
-    importlib.import_module(PACKAGE)
+    importlib.invalidate_caches()
+    mod = importlib.import_module(PACKAGE)
+    assert Path(mod.__path__[0]).name == PACKAGE, mod.__path__
 
 
 _ensure_package()
