@@ -14,7 +14,7 @@ pytest.importorskip("qgis.core", reason="needs QGIS's Python bindings")
 
 from qgis.core import QgsProcessingException, QgsProcessingFeedback
 from rockhead.core.errors import RockheadError
-from rockhead.core.survey.config import load_survey
+from rockhead.core.survey.config import check_for_run, load_survey
 
 CORPUS = Path(__file__).resolve().parents[1] / "bad_inputs"
 BAD = sorted(
@@ -23,8 +23,9 @@ BAD = sorted(
 
 
 def _core_message(case):
+    """The message of the core's own reading and survey-wide checks (as `rockhead check` does)."""
     with pytest.raises(RockheadError) as info:
-        load_survey(CORPUS / case / "survey.toml")
+        check_for_run(load_survey(CORPUS / case / "survey.toml"))
     return str(info.value)
 
 
