@@ -54,8 +54,8 @@ def _parser() -> argparse.ArgumentParser:
         "--gather-figures",
         choices=["auto", "all", "flagged", "none"],
         default=None,
-        help="QC figure of each gather in qc/: all, only flagged gathers, none, or auto (all up to "
-        "200 gathers, else the flagged ones); default the survey's [processing] gather_figures",
+        help="QC figure of each gather in qc/ (besides the figure of each line): all, only flagged gathers, "
+        "none, or auto (the flagged ones); default the survey's [processing] gather_figures",
     )
     run.add_argument("--progress", action="store_true", help="print progress on stderr")
     run.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")

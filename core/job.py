@@ -31,7 +31,6 @@ OUTPUT_NAMES = (
 )
 
 __all__ = [
-    "AUTO_FIGURES_MAX_GATHERS",
     "OUTPUT_NAMES",
     "figures_for",
     "open_output_folder",
@@ -52,12 +51,13 @@ def with_design(result: RunResult, progress=None) -> RunResult:
     return result
 
 
-def write_outputs(result: RunResult, out_dir, progress=None, gather_figures: str = "all") -> List[Path]:
+def write_outputs(result: RunResult, out_dir, progress=None, gather_figures: str = "flagged") -> List[Path]:
     """Write every output of ``result`` into ``out_dir`` (a folder path or an open RunFolder), as one set.
 
     With ``[design] elevation_m`` and no design answers in ``result`` yet,
-    they are computed first (:func:`with_design`). ``gather_figures`` chooses
-    the gathers with a QC figure: ``all``, ``flagged`` or ``none``.
+    they are computed first (:func:`with_design`). Every line has its QC
+    figure; ``gather_figures`` chooses the gathers with one of their own:
+    ``all``, ``flagged`` (status not ok) or ``none``.
     """
     progress = progress or NullProgress()
     return outputs.write_all(with_design(result, progress), out_dir, progress, gather_figures)
@@ -122,18 +122,15 @@ def run(
     return replace(result, outputs=tuple(written))
 
 
-#: With ``gather_figures = "auto"``, every gather has its QC figure up to this many gathers; beyond, only flagged ones.
-AUTO_FIGURES_MAX_GATHERS = 200
-
-
 def figures_for(result: RunResult, asked: Optional[str] = None) -> str:
-    """The gathers that get a QC figure: ``asked``, else the survey's setting; ``auto`` resolved.
+    """The gathers that get a QC figure of their own: ``asked``, else the survey's setting; ``auto`` resolved.
 
-    ``auto`` is ``all`` for up to :data:`AUTO_FIGURES_MAX_GATHERS` gathers and
-    ``flagged`` beyond (a figure per gather of a large survey is thousands of
-    files nobody opens; the flagged ones are those a reviewer asks for).
+    ``auto`` is ``flagged``: every pick of every gather, rejected ones marked,
+    is in its line's QC figure, so a figure of its own is drawn where a fit
+    was flagged (the gathers a reviewer asks about); ``all`` draws every
+    gather's.
     """
     which = asked or getattr(result.survey.settings, "gather_figures", "auto")
     if which == "auto":
-        return "all" if len(result.fit.fits) <= AUTO_FIGURES_MAX_GATHERS else "flagged"
+        return "flagged"
     return str(which)

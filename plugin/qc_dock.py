@@ -3,7 +3,8 @@
 The panel shows, for the chosen shot gather, the picks against the fitted
 curve in the t^2-x^2 plane (a horizontal reflector plots as a straight line of
 slope 1/V^2 and intercept t0^2, Green 1938), in the t-x plane and as
-residuals (the core's own QC figure, ``core.report.qc_svg``), the fitted
+residuals (the core's own QC figure, ``core.report.qc_figures.GatherFigure``,
+drawn on matplotlib's Qt canvas), the fitted
 parameters with their standard errors, and every pick in a table.
 
 Editing. Clearing a pick's box excludes it, ticking it restores it, typing a
@@ -33,8 +34,7 @@ import weakref
 
 import numpy as np
 from qgis.core import QgsApplication, QgsProject, QgsTask, QgsVectorLayer
-from qgis.PyQt.QtCore import QCoreApplication, QRectF, QSize, Qt, QTimer
-from qgis.PyQt.QtGui import QPainter
+from qgis.PyQt.QtCore import QCoreApplication, QSize, Qt, QTimer
 from qgis.PyQt.QtWidgets import (
     QAbstractItemView,
     QComboBox,
@@ -203,41 +203,22 @@ class GatherQc:
             "reason": (str(f.reason[g]), None),
         }
 
-    def figure_svg(self, g: int, size=None, with_parameters: bool = False) -> bytes:
-        """The gather's QC figure as the report draws it, laid out for a panel of ``size`` (px)."""
-        from ..core.report.qc_svg import gather_svg
+    def draw_figure(self, g: int, figure) -> None:
+        """Show gather ``g`` on ``figure`` (a :class:`~..core.report.qc_figures.GatherFigure`), as the report draws it.
 
+        The picks are shown as they stand now: edits made since the fit show
+        at their new times and states.
+        """
         rows = self.pick_rows(g)
         st = self.pick_state(rows)
-        p = self.parameters(g)
         line, shot = self.labels()[g]
-        title = f"line {line}, shot {shot}: {p['status'][0]}"
-
-        def pm(key, fmt):
-            v, se = p[key]
-            return "–" if v != v else fmt.format(v) + ("" if se is None or se != se else " ± " + fmt.format(se))
-
-        params = (
-            f"V  = {pm('velocity_m_s', '{:.0f}')} m/s\nh  = {pm('normal_distance_m', '{:.2f}')} m\n"
-            f"t0 = {pm('t0_ms', '{:.2f}')} ms\ntraveltime dip = {pm('traveltime_dip_deg', '{:.1f}')}°\n"
-            f"rms {pm('rms_residual_ms', '{:.2f}')} ms; used {p['picks_used'][0]}, rejected "
-            f"{p['picks_rejected'][0]}, excluded {p['picks_excluded'][0]}"
-        )
-        model = self.model_times_s(rows)
-        # picks as they stand now (edits made since the fit show at their new times and states)
-        w, h = size or (520, 560)
-        layout = "grid" if h < 1.4 * w else "column"
-        return gather_svg(
+        figure.draw(
             self.offsets_m(rows),
             st["time_ms"] / 1e3,
-            model,
+            self.model_times_s(rows),
             st["rejected"] & ~st["excluded"],
             st["excluded"],
-            title,
-            params if with_parameters else "",
-            ident=f"q{g}",
-            layout=layout,
-            size=(w, h),
+            f"line {line}, shot {shot}: {self.parameters(g)['status'][0]}",
         )
 
 
@@ -296,48 +277,19 @@ class _EditCommand(QUndoCommand):
 
 
 # --------------------------------------------------------------------------------------------- plots
-class _SvgView(QWidget):
-    """Draws an SVG document made for the widget's size (redrawn when the widget is resized)."""
+def _plot_canvas(parent):
+    """matplotlib's Qt canvas holding the core's gather figure (t-x on top, t^2-x^2 and residuals below)."""
+    from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
+    from matplotlib.figure import Figure
 
-    def __init__(self, parent=None):
-        super().__init__(parent)
-        from qgis.PyQt.QtSvg import QSvgRenderer
+    from ..core.report.qc_figures import GatherFigure
 
-        self.renderer = QSvgRenderer(self)
-        self.source = None  # (width, height) -> SVG bytes
-        self.setSizePolicy(QSizePolicy.Expanding, QSizePolicy.Expanding)
-        self.setMinimumSize(QSize(300, 300))
-
-    def set_source(self, source) -> None:
-        """Draw ``source(width, height)``, now and after every resize."""
-        self.source = source
-        self._render()
-
-    def _render(self) -> None:
-        from qgis.PyQt.QtCore import QByteArray
-
-        if self.source is None:
-            return
-        self.renderer.load(QByteArray(self.source(max(self.width(), 300), max(self.height(), 300))))
-        self.update()
-
-    def resizeEvent(self, event):
-        super().resizeEvent(event)
-        self._render()
-
-    def sizeHint(self):
-        return QSize(520, 560)
-
-    def paintEvent(self, _event):
-        if not self.renderer.isValid():
-            return
-        painter = QPainter(self)
-        painter.setRenderHint(QPainter.Antialiasing)
-        size = self.renderer.defaultSize()
-        scale = min(self.width() / max(size.width(), 1), self.height() / max(size.height(), 1))
-        w, h = size.width() * scale, size.height() * scale
-        self.renderer.render(painter, QRectF((self.width() - w) / 2, 0, w, h))
-        painter.end()
+    figure = Figure(figsize=(5.2, 5.6), dpi=100, layout="constrained")
+    canvas = FigureCanvasQTAgg(figure)
+    canvas.setParent(parent)
+    canvas.setSizePolicy(QSizePolicy.Expanding, QSizePolicy.Expanding)
+    canvas.setMinimumSize(QSize(300, 300))
+    return canvas, GatherFigure(figure=figure, layout="grid")
 
 
 # --------------------------------------------------------------------------------------------- dock
@@ -387,7 +339,7 @@ class QcDock(QDockWidget):
         lay.addWidget(self.status_label)
 
         splitter = QSplitter(Qt.Vertical, body)
-        self.plot = _SvgView(splitter)
+        self.plot, self.gather_figure = _plot_canvas(splitter)
         splitter.addWidget(self.plot)
         lower = QWidget(splitter)
         lower_lay = QVBoxLayout(lower)
@@ -661,8 +613,8 @@ class QcDock(QDockWidget):
                 self.table.setItem(r, c, item)
         self.table.resizeColumnsToContents()
         self._filling = False
-        g = self.current
-        self.plot.set_source(lambda w, h, qc=qc, g=g: qc.figure_svg(g, (w, h)))
+        qc.draw_figure(self.current, self.gather_figure)
+        self.plot.draw_idle()  # drawn once, when Qt next paints (rapid changes of gather coalesce)
         self.params_label.setText(self._parameters_html(qc.parameters(self.current)))
 
     @staticmethod

@@ -158,41 +158,59 @@ def result_rasters(result: RunResult) -> dict:
 GATHER_FIGURES = ("all", "flagged", "none")
 
 
-def figure_gathers(result: RunResult, which: str = "all") -> np.ndarray:
-    """Indices of the gathers that get a QC figure: ``all``, ``flagged`` (not ok, or with rejected picks), ``none``."""
+def figure_gathers(result: RunResult, which: str = "flagged") -> np.ndarray:
+    """Indices of the gathers that get a QC figure of their own: ``all``, ``flagged`` (status not ok), ``none``.
+
+    Every pick of every gather, rejected ones marked, is in its line's QC
+    figure (:func:`line_qc_figures`); a gather of its own is drawn where its
+    fit was flagged, or for every gather on request.
+    """
     f = result.fit.fits
     if which == "none":
         return np.zeros(0, dtype=int)
     if which == "flagged":
-        return np.flatnonzero((f.status != "ok") | (np.asarray(f.picks_rejected) > 0))
+        return np.flatnonzero(f.status != "ok")
     if which != "all":
         raise ValueError(f"gather_figures must be one of {', '.join(GATHER_FIGURES)}, not {which!r}")
     return np.arange(len(f))
 
 
-def gather_qc_figures(result: RunResult, which: str = "all"):
-    """Yield (gather index, file name, SVG bytes) of the QC figure of the gathers chosen by ``which``.
-
-    File names are portable and unique even case-insensitively
-    (:func:`~..text.file_stem`); labels in titles are shown printable.
-    """
-    from ..report.qc_svg import gather_svg
-
+def _pick_geometry(result: RunResult):
+    """Per pick of the gather set: signed offset along the line (m) and the fitted time (s); picks by gather."""
     g, f = result.fit.gathers, result.fit.fits
     d = g.receiver_xyz - g.source_xyz
     x_along = np.einsum("ij,ij->i", d[:, :2], g.line_unit[g.gather])
     model = g.time_s - f.residual_s
     order = np.argsort(g.gather, kind="stable")
     bounds = np.searchsorted(g.gather[order], np.arange(g.n_gathers + 1))
+    return x_along, model, order, bounds
+
+
+def gather_qc_figures(result: RunResult, which: str = "flagged"):
+    """Yield (gather index, file name, PNG bytes) of the QC figure of the gathers chosen by ``which``.
+
+    One matplotlib figure is built and redrawn for each gather
+    (:class:`~..report.qc_figures.GatherFigure`). File names are portable and
+    unique even case-insensitively (:func:`~..text.file_stem`); labels in
+    titles are shown printable.
+    """
+    chosen = figure_gathers(result, which)
+    if not len(chosen):
+        return
+    from ..report.qc_figures import GatherFigure
+
+    g, f = result.fit.gathers, result.fit.fits
+    x_along, model, order, bounds = _pick_geometry(result)
+    figure = GatherFigure()
     used: set = set()  # file names so far, case-folded: "A B"/"A_B" and "A"/"a" get their own files
-    for k in figure_gathers(result, which):
+    for k in chosen:
         sel = order[bounds[k] : bounds[k + 1]]
         title = (
             f"line {printable(g.line[k], 40)}, shot {printable(g.shot[k], 40)}, "
             f"reflector {printable(g.reflector[k], 40)}: {f.status[k]}"
         )
         if f.status[k] != "ok":
-            title += f" ({f.reason[k]})"
+            title += f" ({printable(f.reason[k], 80)})"
         params = (
             f"V  = {f.velocity_m_s[k]:7.0f} ± {f.se_velocity_m_s[k]:.0f} m/s\n"
             f"h  = {f.normal_distance_m[k]:7.2f} ± {f.se_normal_distance_m[k]:.2f} m\n"
@@ -200,21 +218,71 @@ def gather_qc_figures(result: RunResult, which: str = "all"):
             f"traveltime dip = {f.traveltime_dip_deg[k]:.1f} ± {f.se_traveltime_dip_deg[k]:.1f}°\n"
             f"rms {f.rms_residual_s[k] * 1e3:.2f} ms; used {f.picks_used[k]}, rejected {f.picks_rejected[k]}"
         )
-        svg = gather_svg(
-            x_along[sel], g.time_s[sel], model[sel], f.rejected[sel], f.excluded[sel], title, params, ident=f"g{k}"
+        png = figure.draw(
+            x_along[sel], g.time_s[sel], model[sel], f.rejected[sel], f.excluded[sel], title, params
+        ).png()
+        yield k, file_stem("gather", g.line[k], g.shot[k], g.reflector[k], used=used) + ".png", png
+
+
+def line_qc_figures(result: RunResult, lines=None):
+    """Yield (line, file name, PNG bytes) of the QC figure of every gather of each line (all lines by default).
+
+    Each figure shows every pick of the line's gathers (of every reflector)
+    with the gathers' fitted curves, and the residual of each pick by shot
+    (:class:`~..report.qc_figures.LineFigure`, one figure redrawn per line).
+    """
+    from ..report.qc_figures import LineFigure
+
+    g, f = result.fit.gathers, result.fit.fits
+    x_along, model, order, bounds = _pick_geometry(result)
+    line_of_gather = np.asarray(g.line).astype(str)
+    figure = None
+    used: set = set()
+    for line in sorted(result.fit.frames) if lines is None else lines:
+        gathers = np.flatnonzero(line_of_gather == str(line))
+        if not len(gathers):
+            continue
+        frame = result.fit.frames[line]
+        first = order[np.minimum(bounds[gathers], len(order) - 1)]  # a pick of each gather: its shot's position
+        shot_xy = g.source_xyz[first, :2]
+        position, _ = frame.locate(shot_xy[:, 0], shot_xy[:, 1])
+        local = np.full(g.n_gathers, -1)
+        local[gathers] = np.arange(len(gathers))
+        sel = np.flatnonzero(local[g.gather] >= 0)
+        reflectors = sorted({str(r) for r in np.asarray(g.reflector)[gathers]})
+        labels = [printable(s, 12) for s in np.asarray(g.shot)[gathers]]
+        if len(reflectors) > 1:  # a row per gather: tell a shot's reflectors apart
+            labels = [f"{s} {printable(r, 8)}" for s, r in zip(labels, np.asarray(g.reflector)[gathers])]
+        n_flagged = int(np.sum(f.status[gathers] != "ok"))
+        title = (
+            f"line {printable(line, 40)}: {len(gathers)} gathers ({n_flagged} flagged), "
+            f"{int(np.sum(f.picks_rejected[gathers]))} picks rejected, {int(np.sum(f.picks_excluded[gathers]))} excluded"
         )
-        yield k, file_stem("gather", g.line[k], g.shot[k], g.reflector[k], used=used) + ".svg", svg
+        figure = figure or LineFigure()
+        png = figure.draw(
+            x_along[sel],
+            g.time_s[sel],
+            model[sel],
+            f.rejected[sel],
+            f.excluded[sel],
+            local[g.gather[sel]],
+            np.asarray(position, float),
+            labels,
+            title,
+        ).png()
+        yield line, file_stem("line", line, used=used) + ".png", png
 
 
-def write_all(result: RunResult, out_dir, progress, gather_figures: str = "all") -> list:
+def write_all(result: RunResult, out_dir, progress, gather_figures: str = "flagged") -> list:
     """Write every output into ``out_dir`` as one set; returns the files written.
 
     ``out_dir`` is a folder path or an open :class:`~.runfolder.RunFolder`
     (the command line opens it before computing, to hold its lock through the
     run). A system error while writing (disk full, permissions, a vanished
     folder) becomes :class:`~.errors.OutputError`; the staged files are
-    removed and the previous outputs stay as they were. ``gather_figures``
-    chooses the gathers whose QC figure is drawn (:func:`figure_gathers`).
+    removed and the previous outputs stay as they were. Every line gets its
+    QC figure (:func:`line_qc_figures`); ``gather_figures`` chooses the
+    gathers that get one of their own (:func:`figure_gathers`).
     """
     if isinstance(out_dir, RunFolder):
         return _guarded(_write_all, result, out_dir, progress, gather_figures)
@@ -335,14 +403,20 @@ def _write_all(result, folder: RunFolder, progress, gather_figures) -> list:
     _stage_map(folder, result, layers, progress)
     write_handoff(folder, folder.requested, result, progress, sections)
     progress.set_progress(25)
+    line_figures = {}
+    for line, name, png in line_qc_figures(result):
+        folder.path(f"qc/{name}").write_bytes(png)
+        line_figures[line] = (name, png)
+        check_cancel(progress)
+    progress.set_progress(35)
     qc_figures = {}
     n_figures = max(len(figure_gathers(result, gather_figures)), 1)
-    for i, (k, name, svg) in enumerate(gather_qc_figures(result, gather_figures)):
-        folder.path(f"qc/{name}").write_bytes(svg)
-        qc_figures[k] = (name, svg)
+    for i, (k, name, png) in enumerate(gather_qc_figures(result, gather_figures)):
+        folder.path(f"qc/{name}").write_bytes(png)
+        qc_figures[k] = (name, png)
         check_cancel(progress)
-        progress.set_progress(25 + 50 * (i + 1) / n_figures)
-    html = build_report(result, layers, qc_figures, sections)
+        progress.set_progress(35 + 40 * (i + 1) / n_figures)
+    html = build_report(result, layers, qc_figures, sections, line_figures)
     folder.path("report.html").write_text(html, encoding="utf-8")
     check_cancel(progress)
     written = folder.commit()

@@ -14,7 +14,7 @@ import numpy as np
 from .. import __version__
 from ..results import RunResult
 from ..text import printable
-from . import figures, qc_svg
+from . import figures
 from .handoff_content import handoff_section
 from .html import Report
 from .overburden_content import overburden_section
@@ -26,8 +26,13 @@ def _rms(values):
     return float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
 
 
-def build_report(result: RunResult, layers, qc_figures, sections=None) -> str:
-    """Render the report; ``qc_figures`` maps gather index -> (file name, SVG or PNG bytes)."""
+def build_report(result: RunResult, layers, qc_figures, sections=None, line_figures=None) -> str:
+    """Render the report.
+
+    ``qc_figures`` maps gather index -> (file name, PNG bytes) of the gathers
+    with a QC figure of their own, ``line_figures`` line -> (file name, PNG
+    bytes) of each line's QC figure (drawn here for the lines shown when None).
+    """
     survey, fit = result.survey, result.fit
     rep = Report(f"Reflector map — {survey.name}")
     rep.caution()
@@ -40,7 +45,7 @@ def build_report(result: RunResult, layers, qc_figures, sections=None) -> str:
     _misties(rep, result)
     _flagged(rep, fit)
     _pick_edits(rep, survey, fit)
-    _lines(rep, result, layers, qc_figures)
+    _lines(rep, result, layers, qc_figures, line_figures)
     handoff_section(rep, result, sections)
     _method(rep)
     rep.caution()
@@ -215,14 +220,14 @@ def _surface(rep, r):
             )
         ev = diag.experimental_variogram
         if ev is not None:
-            svg = qc_svg.variogram_svg(
+            png = figures.variogram_figure(
                 ev.lag_m,
                 ev.semivariance,
                 ev.n_pairs,
                 vm,
                 title="semivariogram of reflector elevations (after the trend)",
             )
-            rep.figure(svg, "variogram")
+            rep.figure(png, "variogram")
     elif diag.smoothing is not None:
         rep.paragraph(f"Smoothing thin-plate spline, smoothing {diag.smoothing:.3g}; no standard deviation.")
     cv = diag.cross_validation
@@ -241,7 +246,7 @@ def _surface(rep, r):
             ]
         )
         rep.figure(
-            qc_svg.scatter_svg(
+            figures.scatter_figure(
                 cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)", "datum (m)", "cross-validation"
             ),
             "cross-validation scatter",
@@ -437,7 +442,7 @@ def _report_lines(r, names_sorted):
     return [ln for ln in names_sorted if ln in set(chosen)]
 
 
-def _lines(rep, r, layers, qc_figures):
+def _lines(rep, r, layers, qc_figures, line_figures=None):
     fit = r.fit
     f, g = fit.fits, fit.gathers
     shots = layers["shots"]
@@ -464,17 +469,32 @@ def _lines(rep, r, layers, qc_figures):
             "and gather fits; every line's fits are in csv/shots.csv and the GeoPackage, its section sheet among "
             "the section files."
         )
+    rep.paragraph(
+        "Each line's QC figure shows every pick of its gathers against offset with each gather's fitted curve "
+        "(time down), and the residual of each pick (picked minus fitted time) on its shot's row: a poorly "
+        "fitted gather shows as a row, a bad receiver as a column. Picks rejected by the fit as mispicks are "
+        "marked ×, picks excluded by a pick edit ○."
+    )
     if len(qc_figures) < len(f):
         rep.paragraph(
-            f"QC figures of {len(qc_figures)} of the {len(f)} gathers (gather_figures; the flagged ones when the "
-            f"survey is large) are in qc/; at most {REPORT_MAX_QC_FIGURES} are shown here, the others linked."
+            f"{len(qc_figures)} of the {len(f)} gathers have a QC figure of their own in qc/ (t²–x², t–x with the "
+            "fit, residuals; gather_figures: by default the flagged gathers, all on request); at most "
+            f"{REPORT_MAX_QC_FIGURES} are shown here, the others linked."
         )
+    if line_figures is None:
+        from ..products.outputs import line_qc_figures
+
+        line_figures = {line: (name, png) for line, name, png in line_qc_figures(r, shown)}
     embedded = 0
     lines_of = np.asarray(g.line)
+    section = figures.SectionFigure()
     for line in shown:
         frame = fit.frames[line]
         rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
-        rep.figure(_section_svg(r, line), f"section of line {line}")
+        rep.figure(_section_png(section, r, line), f"section of line {line}")
+        if line in line_figures:
+            name, image = line_figures[line]
+            rep.figure(image, f"QC of the gathers of line {line} (qc/{name})")
         sel = np.flatnonzero(lines_of == line)
         rep.table(
             {n: [shots.fields[n][i] for i in sel] for n in names},
@@ -495,7 +515,7 @@ def _lines(rep, r, layers, qc_figures):
                     rep.link(f"qc/{name}", f"QC figure, shot {g.shot[i]}: {f.status[i]} (qc/{name})")
 
 
-def _section_svg(r, line):
+def _section_png(figure, r, line):
     from ..grid import bilinear as _bilinear
 
     frame = r.fit.frames[line]
@@ -506,14 +526,13 @@ def _section_svg(r, line):
     s = r.surface
     z = _bilinear(r.spec, np.where(s.mask, np.nan, s.z), frame.x_m, frame.y_m)
     sd = _bilinear(r.spec, np.where(s.mask, np.nan, s.std), frame.x_m, frame.y_m)
-    return qc_svg.section_svg(
+    return figure.draw(
         frame.chainage_m,
         frame.z_m,
         (ch, pts.elevation_m[sel], pts.sigma_m[sel], ok),
         surface=(frame.chainage_m, z, sd),
         title=f"line {printable(line, 40)}: ground, reflector points, mapped surface (±2σ)",
-        ident=f"s{''.join(c if c.isalnum() else '_' for c in str(line))}",
-    )
+    ).png()
 
 
 def _method(rep):

@@ -1,10 +1,12 @@
-"""Quality-control and map figures (matplotlib, imported lazily, Agg backend).
+"""The report's figures (matplotlib, imported lazily, Agg canvas, no pyplot).
 
 Every function returns PNG bytes, so the caller decides where they go (an
-image embedded in ``report.html``, a page of a sheet); the per-gather QC
-figures are SVG drawn by :mod:`.qc_svg` without matplotlib. matplotlib is
-optional for the core: without it :class:`~.errors.MissingDependencyError`
-names it.
+image embedded in ``report.html``, a page of a sheet): the site map, a raster,
+a line's section, the variogram and the cross-validation scatter; the QC
+figures of the gather fits are in :mod:`.qc_figures`. Figures are
+:class:`matplotlib.figure.Figure` objects with their own canvas, never
+pyplot's global state. matplotlib is optional for the core: without it
+:class:`~.errors.MissingDependencyError` names it.
 """
 
 from __future__ import annotations
@@ -25,7 +27,7 @@ FIT = colours.FIT_CURVE
 LINE_COLOURS = list(colours.LINE_COLOURS)
 MEASURED_DIP = colours.MEASURED_DIP  # strike-and-dip symbols measured at line crossings
 SURFACE_DIP = colours.SURFACE_DIP  # and read off the mapped surface
-#: matplotlib names of the shared ramps (registered by :func:`_plt`)
+#: matplotlib names of the shared ramps (registered by :func:`register_colour_maps`)
 DEPTH_CMAP = "rockhead_depth"  # depth to the reflector (the report's map and the map sheet)
 SIGMA_CMAP = "rockhead_sigma"  # its standard deviation
 PROBABILITY_CMAP = "rockhead_probability"  # probability of rock above a design level
@@ -39,16 +41,14 @@ _RAMPS = {
 }
 
 
-def _plt():
+def _figure(width_in: float, height_in: float, dpi: float):
+    """A new figure with an Agg canvas, the shared colour maps registered."""
     try:
-        import matplotlib
-
-        matplotlib.use("Agg", force=False)
-        import matplotlib.pyplot as plt
+        from .qc_figures import new_figure
     except ImportError as exc:  # pragma: no cover - depends on the machine
         raise MissingDependencyError("matplotlib", "QC figures and the report") from exc
     register_colour_maps()
-    return plt
+    return new_figure(width_in, height_in, dpi)
 
 
 def register_colour_maps() -> None:
@@ -108,7 +108,6 @@ def _png(fig) -> bytes:
     plain_text(fig)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=fig.dpi, metadata={"Software": None})
-    _plt().close(fig)
     return buf.getvalue()
 
 
@@ -133,8 +132,8 @@ def map_figure(
     of geologic maps (FGDC-STD-013-2006): a long bar along strike, a short
     tick from its middle toward the dip direction, the dip value beside it.
     """
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=(8.0, 7.0), dpi=dpi)
+    fig = _figure(8.0, 7.0, dpi)
+    ax = fig.add_subplot()
     gx, gy = np.asarray(grid_x_m), np.asarray(grid_y_m)
     dx = gx[1] - gx[0] if len(gx) > 1 else 1.0
     dy = abs(gy[1] - gy[0]) if len(gy) > 1 else 1.0
@@ -200,8 +199,8 @@ def strike_dip_symbol(ax, x, y, strike_deg, dip_deg, size, colour, fontsize=7):
 
 def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_CMAP, symmetric=True, dpi=90) -> bytes:
     """A single grid as an image (e.g. the difference between two surfaces)."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=(6.0, 5.0), dpi=dpi)
+    fig = _figure(6.0, 5.0, dpi)
+    ax = fig.add_subplot()
     gx, gy = np.asarray(grid_x_m), np.asarray(grid_y_m)
     v = np.asarray(values, float)
     if gy[0] < gy[-1]:
@@ -222,4 +221,192 @@ def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_C
     ax.set_title(title, fontsize=9)
     plain_text(fig)  # before the layout measures the texts
     fig.tight_layout()
+    return _png(fig)
+
+
+def _small_axes(ax, xlabel: str, ylabel: str) -> None:
+    ax.set_xlabel(xlabel, fontsize=8)
+    ax.set_ylabel(ylabel, fontsize=8)
+    ax.tick_params(labelsize=7, length=3)
+    ax.grid(True, color="#e4e4e4", lw=0.6)
+    ax.set_axisbelow(True)
+    ax.ticklabel_format(useOffset=False, style="plain")
+
+
+class SectionFigure:
+    """A line's section, built once and redrawn per line with :meth:`draw`.
+
+    The ground, the reflector points with ±2σ bars (flagged gathers as ×) and
+    the mapped surface with its ±2σ band, against distance along the line.
+
+    Parameters
+    ----------
+    dpi : float
+        Dots per inch (1000 x 330 px at 100).
+
+    Attributes
+    ----------
+    figure : matplotlib.figure.Figure
+    ax : matplotlib.axes.Axes
+    """
+
+    def __init__(self, dpi: float = 100.0):
+        fig = _figure(10.0, 3.3, dpi)
+        self.figure = fig
+        self.ax = ax = fig.add_axes((0.07, 0.16, 0.9, 0.64))
+        _small_axes(ax, "distance along line (m)", "elevation (m)")
+        self.band = None
+        self.surface = ax.plot([], [], color=FIT, lw=1.6, label="mapped surface")[0]
+        self.ground = ax.plot([], [], color=colours.GROUND, lw=1.6, label="ground")[0]
+        self.points = ax.errorbar(
+            [0.0], [0.0], yerr=[0.0], fmt="o", color=USED, ms=3.5, elinewidth=1.0, label="reflector points (±2σ)"
+        )
+        self.flagged = ax.plot([], [], "x", color=REJECTED, ms=5, mew=1.4, label="flagged gathers")[0]
+        self.title = fig.text(0.01, 0.96, "", fontsize=11, fontweight="bold", va="top")
+
+    def draw(self, distance_m, ground_m, points, surface=None, title: str = "") -> "SectionFigure":
+        """Show one line.
+
+        Parameters
+        ----------
+        distance_m, ground_m : (m,) array_like
+            Chainage along the line (m) and the ground elevation there (m).
+        points : tuple
+            (distance_m, elevation_m, sigma_m, ok) of the reflector points (m; ``ok`` bool).
+        surface : tuple, optional
+            (distance_m, elevation_m, sigma_m) of the mapped surface along the line (m).
+        title : str
+            Heading.
+
+        Returns
+        -------
+        SectionFigure
+            ``self``.
+        """
+        from .qc_figures import data_range
+
+        ax = self.ax
+        d, z, s, ok = (np.asarray(v) for v in points)
+        d, z, s, ok = d.astype(float), z.astype(float), s.astype(float), ok.astype(bool)
+        dist, ground = np.asarray(distance_m, float), np.asarray(ground_m, float)
+        values = [ground, z + 2 * s, z - 2 * s]
+        if self.band is not None:
+            self.band.remove()
+            self.band = None
+        handles = [self.ground, self.points]
+        if surface is not None:
+            sd, sz, ss = (np.asarray(v, float) for v in surface)
+            values += [sz + 2 * ss, sz - 2 * ss]
+            good = np.isfinite(sz) & np.isfinite(ss)
+            self.band = ax.fill_between(
+                sd, sz - 2 * ss, sz + 2 * ss, where=good, color=FIT, alpha=0.2, lw=0, label="±2σ of the surface"
+            )
+            self.surface.set_data(sd, sz)
+            handles += [self.surface, self.band]
+        else:
+            self.surface.set_data([], [])
+        self.ground.set_data(dist, ground)
+        _set_errorbar(self.points, d[ok], z[ok], 2 * s[ok])
+        self.flagged.set_data(d[~ok], z[~ok])
+        if np.any(~ok):
+            handles.append(self.flagged)
+        ax.set_xlim(*data_range(np.r_[dist, d]))
+        ax.set_ylim(*data_range(np.concatenate(values)))
+        legend = ax.legend(
+            handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=len(handles), fontsize=8, frameon=False
+        )
+        for t in legend.get_texts():
+            t.set_parse_math(False)
+        self.title.set_text(title)
+        self.title.set_parse_math(False)
+        return self
+
+    def png(self) -> bytes:
+        """The figure as PNG bytes."""
+        from .qc_figures import png_bytes
+
+        return png_bytes(self.figure)
+
+
+def _set_errorbar(container, x, y, half) -> None:
+    """Move an errorbar container's markers and vertical bars to (x, y ± half)."""
+    line, _caps, (bars,) = container.lines[0], container.lines[1], container.lines[2]
+    line.set_data(x, y)
+    bars.set_segments([((a, b - c), (a, b + c)) for a, b, c in zip(x, y, half)])
+
+
+def variogram_figure(lag_m, semivariance, n_pairs, model=None, title: str = "", dpi: float = 100.0) -> bytes:
+    """Experimental semivariogram (points sized by their pair count) and the fitted model, as PNG.
+
+    Parameters
+    ----------
+    lag_m, semivariance, n_pairs : (k,) array_like
+        Lag (m), semivariance (m²) and number of pairs of each lag class.
+    model : callable, optional
+        The fitted model, ``model(h)`` in m² at lag ``h`` (m), with a ``model`` name attribute.
+    title : str
+        Heading.
+    dpi : float
+        Dots per inch (520 x 360 px at 100).
+
+    Returns
+    -------
+    bytes
+        PNG.
+    """
+    lag = np.asarray(lag_m, float)
+    gam = np.asarray(semivariance, float)
+    n = np.asarray(n_pairs, float)
+    ok = np.isfinite(gam) & np.isfinite(lag) & (n > 0)
+    h = np.linspace(0.0, (lag[ok].max() if ok.any() else 1.0) * 1.05, 120)
+    curve = np.asarray(model(h), float) if model is not None else np.full(len(h), np.nan)
+    top = np.nanmax(np.r_[gam[ok], curve, 0.0]) if ok.any() or np.isfinite(curve).any() else 1.0
+    fig = _figure(5.2, 3.6, dpi)
+    ax = fig.add_axes((0.14, 0.14, 0.82, 0.66))
+    _small_axes(ax, "lag (m)", "semivariance (m²)")
+    size = (2.0 + 5.0 * np.sqrt(n[ok] / max(n[ok].max(), 1.0))) ** 2 if ok.any() else 4.0
+    ax.scatter(lag[ok], gam[ok], s=size, color=USED, label="experimental (size: pairs)", zorder=3)
+    if model is not None:
+        ax.plot(h, curve, color=FIT, lw=1.8, label=f"{getattr(model, 'model', '')} model".strip())
+    ax.set_xlim(0.0, float(h[-1]) or 1.0)
+    ax.set_ylim(0.0, 1.08 * top or 1.0)
+    ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=2, fontsize=8, frameon=False)
+    fig.text(0.01, 0.97, title, fontsize=10, fontweight="bold", va="top")
+    return _png(fig)
+
+
+def scatter_figure(x, y, xlabel: str, ylabel: str, title: str = "", one_to_one: bool = True, dpi=100.0) -> bytes:
+    """A scatter plot with the 1:1 line (e.g. cross-validation: datum against its estimate from the others), as PNG.
+
+    Parameters
+    ----------
+    x, y : (n,) array_like
+        The values (same unit on both axes when ``one_to_one``).
+    xlabel, ylabel, title : str
+        Axis labels with units, and the heading.
+    one_to_one : bool
+        Draw the line y = x over the common range.
+    dpi : float
+        Dots per inch (440 x 420 px at 100).
+
+    Returns
+    -------
+    bytes
+        PNG.
+    """
+    from .qc_figures import data_range
+
+    x, y = np.asarray(x, float), np.asarray(y, float)
+    both = np.r_[x, y]
+    fig = _figure(4.4, 4.2, dpi)
+    ax = fig.add_axes((0.17, 0.13, 0.78, 0.76))
+    _small_axes(ax, xlabel, ylabel)
+    xlim = data_range(both if one_to_one else x)
+    ylim = data_range(both if one_to_one else y)
+    if one_to_one and np.isfinite(both).any():
+        ax.plot(xlim, xlim, color="#888888", lw=1.0)
+    ax.plot(x, y, "o", color=USED, ms=3.5)
+    ax.set_xlim(*xlim)
+    ax.set_ylim(*ylim)
+    fig.text(0.01, 0.97, title, fontsize=10, fontweight="bold", va="top")
     return _png(fig)

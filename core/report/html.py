@@ -113,7 +113,7 @@ class Report:
         self._parts.append(img)
 
     def link(self, href: str, text: str) -> None:
-        """A link to a file beside the report (a relative path such as ``qc/gather_A_1.svg``)."""
+        """A link to a file beside the report (a relative path such as ``qc/gather_A_1.png``)."""
         self._parts.append(f'<p class="small"><a href="{html.escape(href, quote=True)}">{html.escape(text)}</a></p>')
 
     def render(self) -> str:
