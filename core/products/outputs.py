@@ -254,9 +254,10 @@ def line_qc_figures(result: RunResult, lines=None):
         if len(reflectors) > 1:  # a row per gather: tell a shot's reflectors apart
             labels = [f"{s} {printable(r, 8)}" for s, r in zip(labels, np.asarray(g.reflector)[gathers])]
         n_flagged = int(np.sum(f.status[gathers] != "ok"))
+        n_rejected, n_excluded = int(np.sum(f.picks_rejected[gathers])), int(np.sum(f.picks_excluded[gathers]))
         title = (
             f"line {printable(line, 40)}: {len(gathers)} gathers ({n_flagged} flagged), "
-            f"{int(np.sum(f.picks_rejected[gathers]))} picks rejected, {int(np.sum(f.picks_excluded[gathers]))} excluded"
+            f"{n_rejected} picks rejected, {n_excluded} excluded"
         )
         figure = figure or LineFigure()
         png = figure.draw(

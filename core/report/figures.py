@@ -264,7 +264,7 @@ class SectionFigure:
         self.flagged = ax.plot([], [], "x", color=REJECTED, ms=5, mew=1.4, label="flagged gathers")[0]
         self.title = fig.text(0.01, 0.96, "", fontsize=11, fontweight="bold", va="top")
 
-    def draw(self, distance_m, ground_m, points, surface=None, title: str = "") -> "SectionFigure":
+    def draw(self, distance_m, ground_m, points, surface=None, title: str = "") -> SectionFigure:
         """Show one line.
 
         Parameters

@@ -267,11 +267,4 @@ def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
             )
             figures.plain_text(fig)  # labels are data, never mathtext
             pdf.savefig(fig)
-            _close(fig)
     return buf.getvalue()
-
-
-def _close(fig):
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)

@@ -76,7 +76,7 @@ def new_figure(width_in: float, height_in: float, dpi: float, layout: Optional[s
         from matplotlib.figure import Figure
     except ImportError as exc:  # pragma: no cover - depends on the machine
         raise MissingDependencyError("matplotlib", "QC figures and the report") from exc
-    fig = Figure(figsize=(width_in, height_in), dpi=dpi, layout=layout)
+    fig = Figure(figsize=(width_in, height_in), dpi=dpi, layout=layout)  # type: ignore[arg-type]
     FigureCanvasAgg(fig)
     return fig
 
@@ -235,7 +235,7 @@ class GatherFigure:
         excluded,
         title: str,
         params_text: str = "",
-    ) -> "GatherFigure":
+    ) -> GatherFigure:
         """Show one gather: set every artist's data and the axes' limits (drawn when saved or shown).
 
         Parameters
@@ -301,7 +301,9 @@ class GatherFigure:
         ax_res.set_xlim(*data_range(x))
         ax_res.set_ylim(-lim, lim)
         ax_res.set_title(
-            "residuals" + (" (rejected may lie off scale)" if self.layout == "row" else ""), fontsize=_FONT + 1, loc="left"
+            "residuals" + (" (rejected may lie off scale)" if self.layout == "row" else ""),
+            fontsize=_FONT + 1,
+            loc="left",
         )
 
         self.title.set_text(title)
@@ -402,7 +404,7 @@ class LineFigure:
         shot_labels: Sequence[str],
         title: str,
         residual_limit_ms: Optional[float] = None,
-    ) -> "LineFigure":
+    ) -> LineFigure:
         """Show one line: every pick of its gathers, their fitted curves and residuals.
 
         Parameters

@@ -55,18 +55,16 @@ class SheetInfo:
     extra: tuple = field(default_factory=tuple)  # (label, value) pairs
 
 
-def _plt():
+def _figure(width_in: float, height_in: float):
+    """A new figure with an Agg canvas (no pyplot), the shared colour maps registered."""
     try:
-        import matplotlib
-
-        matplotlib.use("Agg", force=False)
-        import matplotlib.pyplot as plt
+        from .qc_figures import new_figure
     except ImportError as exc:  # pragma: no cover - depends on the machine
         raise MissingDependencyError("matplotlib", "the map sheet and sections") from exc
     from .figures import register_colour_maps
 
     register_colour_maps()
-    return plt
+    return new_figure(width_in, height_in, 100)
 
 
 def nice_scale(denominator: float) -> int:
@@ -88,9 +86,8 @@ def nice_scale(denominator: float) -> int:
 
 def new_sheet(size_mm=A3_LANDSCAPE_MM):
     """A blank sheet with a thin border 8 mm inside the paper edge."""
-    plt = _plt()
     w, h = size_mm
-    fig = plt.figure(figsize=(w / MM_PER_INCH, h / MM_PER_INCH), dpi=100)
+    fig = _figure(w / MM_PER_INCH, h / MM_PER_INCH)
     frame = mm_axes(fig, (8, 8, w - 16, h - 16), size_mm)
     frame.set_xticks([])
     frame.set_yticks([])
@@ -170,7 +167,6 @@ def draw_cautions(ax, extra=(), width_chars=None) -> None:
 
 def save_figure(fig, fmt: str = "pdf") -> bytes:
     """The sheet as PDF or SVG bytes, without a creation date (reproducible)."""
-    plt = _plt()
     import matplotlib
 
     buf = io.BytesIO()
@@ -179,5 +175,4 @@ def save_figure(fig, fmt: str = "pdf") -> bytes:
     figures.plain_text(fig)  # labels are data, never mathtext
     with matplotlib.rc_context({"svg.hashsalt": "rockhead", "svg.fonttype": "none", "pdf.fonttype": 3}):
         fig.savefig(buf, format=fmt, metadata=meta)
-    plt.close(fig)
     return buf.getvalue()

@@ -205,7 +205,9 @@ class Settings:
     neighbours: int = 32  # kriging neighbourhood size
     contour_interval_m: Optional[float] = None  # None: a round value from the range
     index_contour_every: int = 5
-    gather_figures: str = "auto"  # QC figure per gather (besides each line's): "all", "flagged", "none"; "auto": flagged
+    gather_figures: str = (
+        "auto"  # QC figure per gather (besides each line's): "all", "flagged", "none"; "auto": flagged
+    )
     borehole_sigma_m: float = 0.1  # depth error of a borehole when boreholes.csv has none
     calibrate_velocity: bool = False  # scale velocities to fit the boreholes
     ground_buffer_m: Optional[float] = None  # depth given this far beyond the stations; None: half the depth

@@ -31,8 +31,8 @@ from rockhead.core.survey.config import load_survey
 from rockhead.core.workflow import compute
 from small_survey import write_small_survey
 
-# QC figures only of flagged gathers (one mispick makes one): a figure is a file like any
-# other, and a dozen forked runs stay at seconds
+# QC figures of the lines (two) and of flagged gathers only (none: a mispick is rejected, the fit stays ok):
+# a figure is a file like any other, and a dozen forked runs stay at seconds
 FIGURES = "flagged"
 pytestmark = [pytest.mark.skipif(not hasattr(os, "fork"), reason="kill -9 tests need fork (POSIX)"), pytest.mark.slow]
 
@@ -45,7 +45,7 @@ def tree(folder: Path) -> dict:
     }
 
 
-def assert_readable(folder: Path, figures: int = 1) -> None:
+def assert_readable(folder: Path, figures: int = 2) -> None:
     """Every file matches the manifest's SHA-256, nothing else is there, the GeoPackage is sound."""
     manifest = json.loads((folder / runfolder.MANIFEST).read_text())
     listed = {f["path"]: f["sha256"] for f in manifest["files"]}
@@ -55,7 +55,7 @@ def assert_readable(folder: Path, figures: int = 1) -> None:
     with sqlite3.connect(f"file:{folder / 'survey.gpkg'}?mode=ro", uri=True) as db:
         assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"  # SQLite's own check
         assert db.execute("SELECT count(*) FROM shots").fetchone()[0] == 12
-    assert len(list((folder / "qc").glob("*.svg"))) == figures
+    assert len(list((folder / "qc").glob("*.png"))) == figures
 
 
 @pytest.fixture(scope="module")
@@ -216,7 +216,7 @@ def test_two_runs_into_one_folder_never_mix(runs, tmp_path):
         if code == 2:  # the loser says who holds the folder, on one line
             assert "being written by another Rockhead run (PID" in stderr, stderr
     # one run's manifest, every file matching it: nothing of the other run mixed in
-    assert_readable(out, figures=12)
+    assert_readable(out, figures=2)
     with sqlite3.connect(f"file:{out / 'survey.gpkg'}?mode=ro", uri=True) as db:
         survey = db.execute("SELECT value FROM run_info WHERE key = 'survey'").fetchone()[0]
     winners = [name for name, (code, _) in res.items() if code == 0]

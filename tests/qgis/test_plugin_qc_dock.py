@@ -79,7 +79,10 @@ def test_panel_opens_in_a_task_states_the_caution_and_shows_every_pick(iface, si
     assert dock.combo.count() == dock.qc.gathers.n_gathers == 56
     g = dock.current
     assert dock.table.rowCount() == int((dock.qc.gathers.gather == g).sum()) > 40  # every pick of the gather
-    assert dock.plot.renderer.isValid()  # the QC figure (SVG) is drawn
+    # the QC figure (matplotlib, on its Qt canvas) shows the gather's picks: each in one class
+    fig = dock.gather_figure
+    shown = sum(fig.panel_data("tx", k)[0].size for k in ("used", "rejected", "excluded"))
+    assert shown == dock.table.rowCount() and fig.figure.canvas is dock.plot
     assert "V</b> =" in dock.params_label.text() and "±" in dock.params_label.text()
     dock.close_panel()
     dock.deleteLater()
