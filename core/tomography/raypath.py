@@ -59,7 +59,7 @@ import numpy as np
 from ..errors import InversionError
 from ..grid import GridSpec
 from .nodes import check_node_grid, interface_values, within_nodes
-from .velocity import LayerVelocity, leg_time, leg_times, leg_turns
+from .velocity import LayerVelocity, leg_time, leg_times, leg_times_on_surfaces, leg_turns
 
 __all__ = ["LayeredModel", "LayeredPaths", "path_layout", "trace_reflections"]
 
@@ -302,24 +302,23 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
         Sa, Ra, Xa = S[active], R[active], X[active]
         P, (_, zx, zy, zxx, zxy, zyy) = _points(model, Xa, iface, 2)
         A, B, th, c = _legs(model, Sa, Ra, P, layer)
-        o = leg_times(A, B, th, c)
-        gP = o["gB"][:, :-1] + o["gA"][:, 1:]  # (na, m, 3)
-        HPP = o["HBB"][:, :-1] + o["HAA"][:, 1:]  # (na, m, 3, 3)
-        HPQ = o["HAB"][:, 1:-1]  # (na, m - 1, 3, 3): point p with p + 1
         na = len(active)
-        J = np.zeros((na, m, 3, 2))
-        J[..., 0, 0] = 1.0
-        J[..., 1, 1] = 1.0
-        J[..., 2, 0] = zx
-        J[..., 2, 1] = zy
-        g2 = np.einsum("npij,npi->npj", J, gP)
+        # the chain rule through P = (x, y, z(x, y)): with the slope s = (z_x, z_y),
+        # d/dX = d/dP_xy + s d/dP_z (the products J^T g and J^T H J of J = [[1, 0], [0, 1], s])
+        slope = np.stack([zx, zy], axis=-1)  # (na, m, 2)
+        fixed = np.zeros((na, 1, 2))  # the source and the receiver do not move
+        o = leg_times_on_surfaces(
+            A, B, th, c, np.concatenate([fixed, slope], axis=1), np.concatenate([slope, fixed], axis=1)
+        )
+        gP = o["gB"][:, :-1] + o["gA"][:, 1:]  # (na, m, 3)
+        g2 = gP[..., :2] + gP[..., 2:3] * slope
         curv = np.stack([np.stack([zxx, zxy], -1), np.stack([zxy, zyy], -1)], -2)
-        Hd = np.einsum("npia,npij,npjb->npab", J, HPP, J) + gP[..., 2, None, None] * curv
+        Hd = o["HBB"][:, :-1] + o["HAA"][:, 1:] + gP[..., 2, None, None] * curv  # (na, m, 2, 2)
         H = np.zeros((na, 2 * m, 2 * m))
         for p in range(m):
             H[:, 2 * p : 2 * p + 2, 2 * p : 2 * p + 2] = Hd[:, p]
         if m > 1:
-            Ho = np.einsum("npia,npij,npjb->npab", J[:, :-1], HPQ, J[:, 1:])
+            Ho = o["HAB"][:, 1:-1]  # (na, m - 1, 2, 2): point p with p + 1
             for p in range(m - 1):
                 H[:, 2 * p : 2 * p + 2, 2 * p + 2 : 2 * p + 4] = Ho[:, p]
                 H[:, 2 * p + 2 : 2 * p + 4, 2 * p : 2 * p + 2] = np.swapaxes(Ho[:, p], -1, -2)

@@ -306,6 +306,93 @@ def leg_times(A, B, theta, centre, hessian: bool = True):
     return out
 
 
+def _outer(a, b):
+    return a[..., :, None] * b[..., None, :]
+
+
+def leg_times_on_surfaces(A, B, theta, centre, slope_a, slope_b) -> dict:
+    """Leg time, gradients and the Hessian with respect to the ends' horizontal positions on their surfaces.
+
+    Each end moves on a surface, :math:`A = (x, y, z(x, y))`, whose slope at
+    the end is :math:`\mathbf s = (z_x, z_y)`: with :math:`J = [[1, 0], [0, 1],
+    \mathbf s]` the (x, y) Hessian blocks are :math:`J_A^T H_{AA} J_A`,
+    :math:`J_B^T H_{BB} J_B` and :math:`J_A^T H_{AB} J_B` of the 3-D Hessians of
+    :func:`leg_times` (the surfaces' curvature term, :math:`\partial t/\partial z`
+    times the curvature, is the caller's). They are formed from the projected
+    vectors :math:`J^T (B - A)` and :math:`J^T \mathbf g` directly (2 x 2
+    blocks, never the 3 x 3 ones): the same numbers to rounding, at about a
+    third of the work.
+
+    Parameters
+    ----------
+    A, B, theta, centre : as :func:`leg_times`.
+    slope_a, slope_b : array (..., 2)
+        Surface slopes (m/m) at A and at B (zero for an end that does not move).
+
+    Returns
+    -------
+    dict
+        ``t``, ``gA``, ``gB``, ``va``, ``vb`` as :func:`leg_times`, and
+        ``HAA``, ``HBB``, ``HAB`` (..., 2, 2) (s/m^2).
+    """
+    A = np.asarray(A, float)
+    B = np.asarray(B, float)
+    theta = np.asarray(theta, float)
+    c = np.asarray(centre, float)
+    g = theta[..., 1:]
+    d = B - A
+    s = np.sum(d * d, axis=-1)
+    va = _velocity(theta, c, A)
+    vb = _velocity(theta, c, B)
+    g2 = np.sum(g * g, axis=-1)
+    ab = va * vb
+    q = s / ab
+    f, f1, f2 = _arc_factor(0.5 * g2 * q)
+    rq = np.sqrt(q)
+    t = rq * f
+    h1 = f / (2 * rq) + rq * f1 * g2 / 2
+    q_s = 1.0 / ab
+    q_a = -q / va
+    q_b = -q / vb
+    F_s = h1 * q_s
+    F_a = h1 * q_a
+    F_b = h1 * q_b
+    gA = (-2.0 * F_s)[..., None] * d + F_a[..., None] * g
+    gB = (2.0 * F_s)[..., None] * d + F_b[..., None] * g
+    h2 = f1 * g2 / (2 * rq) - f / (4 * q * rq) + rq * f2 * g2 * g2 / 4
+    F_ss = h2 * q_s * q_s
+    sa = np.asarray(slope_a, float)
+    sb = np.asarray(slope_b, float)
+    dA = d[..., :2] + d[..., 2:3] * sa  # J_A^T (B - A)
+    dB = d[..., :2] + d[..., 2:3] * sb
+
+    def k(a):
+        return a[..., None, None]
+
+    eye = np.eye(2)
+    two_fs = k(2 * F_s)
+    four_fss = k(4 * F_ss)
+    HAA = two_fs * (eye + _outer(sa, sa)) + four_fss * _outer(dA, dA)
+    HBB = two_fs * (eye + _outer(sb, sb)) + four_fss * _outer(dB, dB)
+    HAB = -two_fs * (eye + _outer(sa, sb)) - four_fss * _outer(dA, dB)
+    if np.any(g != 0.0):  # the gradient's terms (none in a constant layer)
+        q_sa = -q_s / va
+        q_sb = -q_s / vb
+        F_sa = h2 * q_s * q_a + h1 * q_sa
+        F_sb = h2 * q_s * q_b + h1 * q_sb
+        F_aa = h2 * q_a * q_a + h1 * (2 * q / va**2)
+        F_ab = h2 * q_a * q_b + h1 * (q / ab)
+        F_bb = h2 * q_b * q_b + h1 * (2 * q / vb**2)
+        GA = g[..., :2] + g[..., 2:3] * sa  # J_A^T g
+        GB = g[..., :2] + g[..., 2:3] * sb
+        dAGA = _outer(dA, GA)
+        dBGB = _outer(dB, GB)
+        HAA += k(-2 * F_sa) * (dAGA + np.swapaxes(dAGA, -1, -2)) + k(F_aa) * _outer(GA, GA)
+        HBB += k(2 * F_sb) * (dBGB + np.swapaxes(dBGB, -1, -2)) + k(F_bb) * _outer(GB, GB)
+        HAB += k(-2 * F_sb) * _outer(dA, GB) + k(2 * F_sa) * _outer(GA, dB) + k(F_ab) * _outer(GA, GB)
+    return {"t": t, "gA": gA, "gB": gB, "va": va, "vb": vb, "HAA": HAA, "HBB": HBB, "HAB": HAB}
+
+
 def straight_leg_time(A, B, theta, centre):
     """Time (s) along the straight chord A-B in the linear field: :math:`L \\ln(v_B/v_A)/(v_B - v_A)`.
 
