@@ -62,50 +62,59 @@ def within_nodes(spec: GridSpec, x_m, y_m) -> np.ndarray:
     )
 
 
-def _cr_basis(t):
-    """Catmull-Rom weights of the 4 nodes (i-1, i, i+1, i+2) and their first and second t-derivatives."""
-    t2 = t * t
-    t3 = t2 * t
-    w = np.stack(
-        [(-t + 2 * t2 - t3) / 2, (2 - 5 * t2 + 3 * t3) / 2, (t + 4 * t2 - 3 * t3) / 2, (-t2 + t3) / 2], axis=-1
-    )
-    dw = np.stack(
-        [(-1 + 4 * t - 3 * t2) / 2, (-10 * t + 9 * t2) / 2, (1 + 8 * t - 9 * t2) / 2, (-2 * t + 3 * t2) / 2], axis=-1
-    )
-    d2w = np.stack([(4 - 6 * t) / 2, (-10 + 18 * t) / 2, (8 - 18 * t) / 2, (-2 + 6 * t) / 2], axis=-1)
-    return w, dw, d2w
+# Catmull-Rom weights of the nodes (i-1, i, i+1, i+2) as polynomials in t: w = [1, t, t^2, t^3] @ _CR
+_CR = 0.5 * np.array([[0.0, 2.0, 0.0, 0.0], [-1.0, 0.0, 1.0, 0.0], [2.0, -5.0, 4.0, -1.0], [-1.0, 3.0, -3.0, 1.0]])
+_CR_D1 = _CR[1:] * np.array([1.0, 2.0, 3.0])[:, None]  # d/dt: [1, t, t^2] @ _CR_D1
+_CR_D2 = _CR[2:] * np.array([2.0, 6.0])[:, None]  # d2/dt2: [1, t] @ _CR_D2
 
 
-def _axis(u, n, scale):
-    """Node indices (m, 4) and weights (value, first, second derivative) along one axis.
+def _cr_basis(t, order: int = 2):
+    """Catmull-Rom weights (m, 4) of the 4 nodes (i-1, i, i+1, i+2) and their t-derivatives up to ``order``."""
+    powers = np.stack([np.ones_like(t), t, t * t, t * t * t], axis=-1)
+    out = [powers @ _CR]
+    if order >= 1:
+        out.append(powers[:, :3] @ _CR_D1)
+    if order >= 2:
+        out.append(powers[:, :2] @ _CR_D2)
+    return out
+
+
+def _axis(u, n, scale, order: int = 2):
+    """Node indices (m, 4) and weights (value and derivatives up to ``order``) along one axis.
 
     ``u`` is the fractional node coordinate, ``scale`` = d(u)/d(coordinate) (1/m,
     signed), ghost nodes folded into the edge nodes.
     """
     i = np.clip(np.floor(u).astype(np.int64), 0, n - 2)
     t = u - i
-    w, dw, d2w = _cr_basis(t)
-    lo = i == 0  # ghost z_-1 = 2 z_0 - z_1
-    hi = i == n - 2  # ghost z_n = 2 z_{n-1} - z_{n-2}
+    basis = _cr_basis(t, order)
+    lo = np.flatnonzero(i == 0)  # ghost z_-1 = 2 z_0 - z_1
+    hi = np.flatnonzero(i == n - 2)  # ghost z_n = 2 z_{n-1} - z_{n-2}
     out = []
-    for arr in (w, dw * scale, d2w * scale**2):
-        g = arr[lo, 0].copy()
-        arr[lo, 1] += 2 * g
-        arr[lo, 2] -= g
-        arr[lo, 0] = 0.0
-        g = arr[hi, 3].copy()
-        arr[hi, 2] += 2 * g
-        arr[hi, 1] -= g
-        arr[hi, 3] = 0.0
+    for p, arr in enumerate(basis):
+        if p:
+            arr *= scale**p
+        if lo.size:
+            g = arr[lo, 0]
+            arr[lo, 1] += 2 * g
+            arr[lo, 2] -= g
+            arr[lo, 0] = 0.0
+        if hi.size:
+            g = arr[hi, 3]
+            arr[hi, 2] += 2 * g
+            arr[hi, 1] -= g
+            arr[hi, 3] = 0.0
         out.append(arr)
-    idx = np.clip(i[:, None] + np.arange(-1, 3)[None, :], 0, n - 1)
+    idx = i[:, None] + np.arange(-1, 3)[None, :]
+    idx[lo, 0] = 0
+    idx[hi, 3] = n - 1
     return idx, out
 
 
-def _axes(spec, x, y):
+def _axes(spec, x, y, order: int = 2):
     h = spec.cell_size_m
-    ic, wc = _axis((x - spec.x0) / h, spec.nx, 1.0 / h)
-    ir, wr = _axis((spec.y0 - y) / h, spec.ny, -1.0 / h)  # rows run south: d(row)/dy = -1/h
+    ic, wc = _axis((x - spec.x0) / h, spec.nx, 1.0 / h, order)
+    ir, wr = _axis((spec.y0 - y) / h, spec.ny, -1.0 / h, order)  # rows run south: d(row)/dy = -1/h
     return ic, wc, ir, wr
 
 
@@ -131,7 +140,7 @@ def node_weights(spec: GridSpec, x_m, y_m, derivatives: int = 0):
     """
     x = np.atleast_1d(np.asarray(x_m, float)).ravel()
     y = np.atleast_1d(np.asarray(y_m, float)).ravel()
-    ic, wc, ir, wr = _axes(spec, x, y)
+    ic, wc, ir, wr = _axes(spec, x, y, min(derivatives, 1))
     node = (ir[:, :, None] * spec.nx + ic[:, None, :]).reshape(len(x), 16)
 
     def outer(a, b):
@@ -184,21 +193,21 @@ def interface_values(z_nodes, spec: GridSpec, x_m, y_m, derivatives: int = 0, su
         raise InversionError("a stack of surfaces needs the surface index of every point")
     x, y = np.broadcast_arrays(np.asarray(x_m, float), np.asarray(y_m, float))
     shape = x.shape
-    ic, wc, ir, wr = _axes(spec, x.ravel(), y.ravel())
-    if z.ndim == 2:
-        patch = z[ir[:, :, None], ic[:, None, :]]  # (m, 4, 4): [point, row, col]
-    else:
+    ic, wc, ir, wr = _axes(spec, x.ravel(), y.ravel(), derivatives)
+    # the 4 x 4 node patch of every point, gathered by flat index: (m, 4 rows, 4 cols)
+    base = ir * spec.nx
+    if z.ndim == 3:
         k = np.broadcast_to(np.asarray(surface, np.int64), shape).ravel()
-        patch = z[k[:, None, None], ir[:, :, None], ic[:, None, :]]
-
-    if derivatives == 0:
-        return np.einsum("mi,mij,mj->m", wr[0], patch, wc[0]).reshape(shape)
-    # contract the columns with the value, slope and curvature weights at once, then the rows
-    cols = np.matmul(patch, np.stack(wc[: derivatives + 1], axis=-1))  # (m, 4 rows, 1 + derivatives)
+        base += (k * (spec.nx * spec.ny))[:, None]
+    patch = np.take(z.ravel(), base[:, :, None] + ic[:, None, :])
+    # contract the columns with the value, slope and curvature weights, then the rows
+    cols = [np.einsum("mrc,mc->mr", patch, w) for w in wc]
 
     def row(a, j):
-        return np.einsum("mi,mi->m", a, cols[:, :, j]).reshape(shape)
+        return np.einsum("mr,mr->m", a, cols[j]).reshape(shape)
 
+    if derivatives == 0:
+        return row(wr[0], 0)
     out = [row(wr[0], 0), row(wr[0], 1), row(wr[1], 0)]
     if derivatives >= 2:
         out += [row(wr[0], 2), row(wr[1], 1), row(wr[2], 0)]

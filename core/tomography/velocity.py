@@ -306,20 +306,16 @@ def leg_times(A, B, theta, centre, hessian: bool = True):
     return out
 
 
-def _outer(a, b):
-    return a[..., :, None] * b[..., None, :]
-
-
 def leg_times_on_surfaces(A, B, theta, centre, slope_a, slope_b) -> dict:
     """Leg time, gradients and the Hessian with respect to the ends' horizontal positions on their surfaces.
 
     Each end moves on a surface, :math:`A = (x, y, z(x, y))`, whose slope at
-    the end is :math:`\mathbf s = (z_x, z_y)`: with :math:`J = [[1, 0], [0, 1],
-    \mathbf s]` the (x, y) Hessian blocks are :math:`J_A^T H_{AA} J_A`,
+    the end is :math:`\\mathbf s = (z_x, z_y)`: with :math:`J = [[1, 0], [0, 1],
+    \\mathbf s]` the (x, y) Hessian blocks are :math:`J_A^T H_{AA} J_A`,
     :math:`J_B^T H_{BB} J_B` and :math:`J_A^T H_{AB} J_B` of the 3-D Hessians of
-    :func:`leg_times` (the surfaces' curvature term, :math:`\partial t/\partial z`
+    :func:`leg_times` (the surfaces' curvature term, :math:`\\partial t/\\partial z`
     times the curvature, is the caller's). They are formed from the projected
-    vectors :math:`J^T (B - A)` and :math:`J^T \mathbf g` directly (2 x 2
+    vectors :math:`J^T (B - A)` and :math:`J^T \\mathbf g` directly (2 x 2
     blocks, never the 3 x 3 ones): the same numbers to rounding, at about a
     third of the work.
 
@@ -363,33 +359,50 @@ def leg_times_on_surfaces(A, B, theta, centre, slope_a, slope_b) -> dict:
     F_ss = h2 * q_s * q_s
     sa = np.asarray(slope_a, float)
     sb = np.asarray(slope_b, float)
-    dA = d[..., :2] + d[..., 2:3] * sa  # J_A^T (B - A)
-    dB = d[..., :2] + d[..., 2:3] * sb
-
-    def k(a):
-        return a[..., None, None]
-
-    eye = np.eye(2)
-    two_fs = k(2 * F_s)
-    four_fss = k(4 * F_ss)
-    HAA = two_fs * (eye + _outer(sa, sa)) + four_fss * _outer(dA, dA)
-    HBB = two_fs * (eye + _outer(sb, sb)) + four_fss * _outer(dB, dB)
-    HAB = -two_fs * (eye + _outer(sa, sb)) - four_fss * _outer(dA, dB)
+    # component by component (the 2 x 2 blocks of many legs as separate arrays: far less memory
+    # traffic than broadcasting outer products): J^T J, J^T (B - A) and J^T g at each end
+    ax, ay, bx, by = sa[..., 0], sa[..., 1], sb[..., 0], sb[..., 1]
+    dz = d[..., 2]
+    dax, day = d[..., 0] + dz * ax, d[..., 1] + dz * ay
+    dbx, dby = d[..., 0] + dz * bx, d[..., 1] + dz * by
+    c1 = 2 * F_s
+    c2 = 4 * F_ss
+    aa = [c1 * (1 + ax * ax) + c2 * dax * dax, c1 * (ax * ay) + c2 * dax * day, c1 * (1 + ay * ay) + c2 * day * day]
+    bb = [c1 * (1 + bx * bx) + c2 * dbx * dbx, c1 * (bx * by) + c2 * dbx * dby, c1 * (1 + by * by) + c2 * dby * dby]
+    ab = [
+        -(c1 * (1 + ax * bx) + c2 * dax * dbx),
+        -(c1 * (ax * by) + c2 * dax * dby),
+        -(c1 * (ay * bx) + c2 * day * dbx),
+        -(c1 * (1 + ay * by) + c2 * day * dby),
+    ]
     if np.any(g != 0.0):  # the gradient's terms (none in a constant layer)
         q_sa = -q_s / va
         q_sb = -q_s / vb
         F_sa = h2 * q_s * q_a + h1 * q_sa
         F_sb = h2 * q_s * q_b + h1 * q_sb
         F_aa = h2 * q_a * q_a + h1 * (2 * q / va**2)
-        F_ab = h2 * q_a * q_b + h1 * (q / ab)
+        F_ab = h2 * q_a * q_b + h1 * (q / (va * vb))
         F_bb = h2 * q_b * q_b + h1 * (2 * q / vb**2)
-        GA = g[..., :2] + g[..., 2:3] * sa  # J_A^T g
-        GB = g[..., :2] + g[..., 2:3] * sb
-        dAGA = _outer(dA, GA)
-        dBGB = _outer(dB, GB)
-        HAA += k(-2 * F_sa) * (dAGA + np.swapaxes(dAGA, -1, -2)) + k(F_aa) * _outer(GA, GA)
-        HBB += k(2 * F_sb) * (dBGB + np.swapaxes(dBGB, -1, -2)) + k(F_bb) * _outer(GB, GB)
-        HAB += k(-2 * F_sb) * _outer(dA, GB) + k(2 * F_sa) * _outer(GA, dB) + k(F_ab) * _outer(GA, GB)
+        gz = g[..., 2]
+        gax, gay = g[..., 0] + gz * ax, g[..., 1] + gz * ay
+        gbx, gby = g[..., 0] + gz * bx, g[..., 1] + gz * by
+        e, f = -2 * F_sa, F_aa
+        aa[0] = aa[0] + 2 * e * dax * gax + f * gax * gax
+        aa[1] = aa[1] + e * (dax * gay + gax * day) + f * gax * gay
+        aa[2] = aa[2] + 2 * e * day * gay + f * gay * gay
+        e, f = 2 * F_sb, F_bb
+        bb[0] = bb[0] + 2 * e * dbx * gbx + f * gbx * gbx
+        bb[1] = bb[1] + e * (dbx * gby + gbx * dby) + f * gbx * gby
+        bb[2] = bb[2] + 2 * e * dby * gby + f * gby * gby
+        u, v, w = -2 * F_sb, 2 * F_sa, F_ab
+        for n, (pa, ga, pb, gb) in enumerate(
+            [(dax, gax, dbx, gbx), (dax, gax, dby, gby), (day, gay, dbx, gbx), (day, gay, dby, gby)]
+        ):
+            ab[n] = ab[n] + u * pa * gb + v * ga * pb + w * ga * gb
+    shape = (*t.shape, 2, 2)
+    HAA = np.stack([aa[0], aa[1], aa[1], aa[2]], axis=-1).reshape(shape)
+    HBB = np.stack([bb[0], bb[1], bb[1], bb[2]], axis=-1).reshape(shape)
+    HAB = np.stack(ab, axis=-1).reshape(shape)
     return {"t": t, "gA": gA, "gB": gB, "va": va, "vb": vb, "HAA": HAA, "HBB": HBB, "HAB": HAB}
 
 
@@ -453,13 +466,25 @@ def leg_turns(A, B, theta, centre, samples: int = 9, tolerance_m: float = 1e-3):
     ang_a = np.arctan2(wA, 0.0 - rc)
     ang_b = np.arctan2(wB, rB - rc)
     radius = np.hypot(rc, wA)
-    frac = np.linspace(0.0, 1.0, samples + 2)[1:-1]
-    ang = ang_a[:, None] + (ang_b - ang_a)[:, None] * frac[None, :]
-    r = rc[:, None] + radius[:, None] * np.cos(ang)
-    w = radius[:, None] * np.sin(ang)
-    z = A[curved, 2][:, None] + r * e1[:, 2][:, None] + (w - wA[:, None]) * e2[:, 2][:, None]
-    lo = np.minimum(A[curved, 2], B[curved, 2])[:, None] - tolerance_m
-    hi = np.maximum(A[curved, 2], B[curved, 2])[:, None] + tolerance_m
-    bad = np.any((z < lo) | (z > hi), axis=1) & ok
+    # z along the arc is a sinusoid of the angle, dz/dang = radius (e2_z cos - e1_z sin); both ends
+    # above the centre (wA, wB > 0) make the arc shorter than half a turn, so where dz/dang has one
+    # strict sign at both ends z is monotonic between them and the arc cannot leave their range:
+    # only the other arcs are sampled
+    e1z, e2z = e1[:, 2], e2[:, 2]
+    slope_a = e2z * np.cos(ang_a) - e1z * np.sin(ang_a)
+    slope_b = e2z * np.cos(ang_b) - e1z * np.sin(ang_b)
+    sample = ok & ~((slope_a * slope_b > 0) & (wA > 0) & (wB > 0))
+    bad = np.zeros(ok.size, bool)
+    j = np.flatnonzero(sample)
+    if j.size:
+        frac = np.linspace(0.0, 1.0, samples + 2)[1:-1]
+        ang = ang_a[j, None] + (ang_b - ang_a)[j, None] * frac[None, :]
+        r = rc[j, None] + radius[j, None] * np.cos(ang)
+        w = radius[j, None] * np.sin(ang)
+        Az, Bz = A[curved, 2][j], B[curved, 2][j]
+        z = Az[:, None] + r * e1z[j, None] + (w - wA[j, None]) * e2z[j, None]
+        lo = np.minimum(Az, Bz)[:, None] - tolerance_m
+        hi = np.maximum(Az, Bz)[:, None] + tolerance_m
+        bad[j] = np.any((z < lo) | (z > hi), axis=1)
     turns[curved] = bad
     return turns

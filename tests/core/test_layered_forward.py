@@ -140,6 +140,74 @@ def test_leg_derivatives_match_finite_differences():
         assert np.allclose(fd, o["dtheta"][:, j], rtol=1e-6, atol=1e-14)
 
 
+@pytest.mark.parametrize("gradient", [(0.9, -0.5, -22.0), (0.0, 0.0, 0.0)], ids=["full field", "constant"])
+def test_leg_hessian_on_surfaces_matches_second_differences(gradient):
+    # the ends move on planes z = z0 + s . (x, y): second central differences of leg_time itself
+    # along those planes (independent of either Hessian formula) against leg_times_on_surfaces
+    rng = np.random.default_rng(9)
+    n = 6
+    A0 = np.column_stack([rng.uniform(-20, 20, n), rng.uniform(-20, 20, n), rng.uniform(98, 101, n)])
+    B0 = np.column_stack([rng.uniform(-20, 20, n), rng.uniform(-20, 20, n), rng.uniform(90, 95, n)])
+    sa = rng.uniform(-0.3, 0.3, (n, 2))
+    sb = rng.uniform(-0.3, 0.3, (n, 2))
+    th = np.array([620.0, *gradient])
+    c = np.array([0.0, 0.0, 97.0])
+    o = velocity.leg_times_on_surfaces(A0, B0, th, c, sa, sb)
+    full = velocity.leg_times(A0, B0, th, c, hessian=False)
+    assert np.allclose(o["t"], full["t"], rtol=1e-14) and np.allclose(o["gA"], full["gA"], rtol=1e-14)
+
+    def t_of(ua, ub):  # ua, ub: (n, 2) horizontal moves of the ends along their planes
+        A = A0 + np.column_stack([ua, np.sum(sa * ua, axis=1)])
+        B = B0 + np.column_stack([ub, np.sum(sb * ub, axis=1)])
+        return velocity.leg_time(A, B, th, c)
+
+    # central second differences, step 1 mm: truncation ~h^2 t'''' ~ 1e-12 s/m^2 and round-off
+    # ~1e-18 s / 1e-6 m^2 ~ 1e-12 s/m^2, against entries ~1e-5 s/m^2
+    h = 1e-3
+    e = np.eye(2)
+    z = np.zeros(2)
+    moves = {"HAA": lambda i, j: (e[i], z, e[j], z), "HBB": lambda i, j: (z, e[i], z, e[j])}
+    moves["HAB"] = lambda i, j: (e[i], z, z, e[j])
+    for key, move in moves.items():
+        for i in range(2):
+            for j in range(2):
+                ia, ib, ja, jb = (h * np.broadcast_to(w, (n, 2)) for w in move(i, j))
+                fd = (
+                    t_of(ia + ja, ib + jb) - t_of(ia - ja, ib - jb) - t_of(ja - ia, jb - ib) + t_of(-ia - ja, -ib - jb)
+                ) / (4 * h * h)
+                assert np.allclose(fd, o[key][:, i, j], rtol=1e-5, atol=1e-9), (key, i, j)
+
+
+@pytest.mark.parametrize("gz", [-22.0, 15.0], ids=["velocity rising with depth", "falling with depth"])
+def test_leg_turns_matches_the_circle_of_a_vertical_gradient(gz):
+    # in v = v0 + gz (z - cz) rays are circles centred on the level where v = 0 [Slotnick 1959]:
+    # with the ends at heights hA, hB from that level and X apart horizontally, the centre lies
+    # xc = (X^2 + hB^2 - hA^2) / (2 X) from A; the arc turns inside the layer (has its lowest or
+    # highest point between the ends) exactly when 0 < xc < X
+    rng = np.random.default_rng(12)
+    n = 400
+    A = np.column_stack([np.zeros(n), np.zeros(n), np.full(n, 100.0)])
+    az = rng.uniform(0.0, 2 * np.pi, n)
+    X = rng.uniform(1.0, 80.0, n)
+    B = np.column_stack([X * np.cos(az), X * np.sin(az), 100.0 - rng.uniform(0.5, 12.0, n)])
+    th = np.array([600.0, 0.0, 0.0, gz])
+    c = np.array([0.0, 0.0, 97.0])
+    zc = c[2] - th[0] / gz  # v = 0 here
+    hA, hB = np.abs(zc - A[:, 2]), np.abs(zc - B[:, 2])
+    xc = (X**2 + hB**2 - hA**2) / (2 * X)
+    radius = np.hypot(xc, hA)
+    # how far the extreme point passes the nearer end (m); the test samples the arc at 9 points,
+    # so it is asked only about extremes that are clear of the ends (the middle 70 % of the leg,
+    # more than 2 cm beyond the nearer end) and about arcs clearly monotonic
+    low, high = np.minimum(A[:, 2], B[:, 2]), np.maximum(A[:, 2], B[:, 2])
+    excess = np.where(gz < 0, low - (zc - radius), (zc + radius) - high)
+    clear_turn = (xc > 0.15 * X) & (xc < 0.85 * X) & (excess > 0.02)
+    clear_no = (xc < -0.5) | (xc > X + 0.5)
+    assert clear_turn.sum() > 20 and clear_no.sum() > 20  # both kinds are exercised
+    turns = velocity.leg_turns(A, B, th, c)
+    assert np.all(turns[clear_turn]) and not np.any(turns[clear_no])
+
+
 # --------------------------------------------------------------------------- paths: analytic cases
 
 
