@@ -89,6 +89,12 @@ class MaternPrior:
         How the values were found (the fit, or why a fallback was used).
     nu : int
         Smoothness, 1 or 2.
+    ratio : float
+        Geometric anisotropy: the range along the major axis over the range
+        across it (>= 1; 1 is isotropic). ``range_m`` is their geometric mean,
+        so the major range is ``range_m * sqrt(ratio)``.
+    azimuth_deg : float
+        Azimuth of the major axis (degrees clockwise from grid north, [0, 180)).
     """
 
     sigma_m: float
@@ -96,10 +102,35 @@ class MaternPrior:
     nugget_m2: float = 0.0
     source: str = ""
     nu: int = 1
+    ratio: float = 1.0
+    azimuth_deg: float = 0.0
 
     def __post_init__(self):
         if self.nu not in (1, 2):
             raise ValueError(f"Matern smoothness nu = {self.nu!r} is not supported; use 1 or 2")
+        if not self.ratio >= 1.0:
+            raise ValueError(f"Matern anisotropy ratio = {self.ratio!r} must be at least 1 (major over minor range)")
+
+    @property
+    def isotropic(self) -> bool:
+        """True when the correlation is the same in every direction."""
+        return self.ratio == 1.0
+
+    def tensor(self) -> np.ndarray:
+        """Anisotropy tensor H (2 x 2, east and north) of :math:`\\nabla \\cdot H \\nabla` (determinant 1).
+
+        The field is isotropic in coordinates stretched by ``1/sqrt(ratio)``
+        along the major axis and by ``sqrt(ratio)`` across it, so
+        :math:`H = r\\,a a^T + r^{-1} b b^T` with the unit vectors a (major axis)
+        and b (across it) [Lindgren, Rue & Lindstrom 2011, s. 3.4].
+
+        >>> MaternPrior(1.0, 10.0, ratio=4.0, azimuth_deg=90.0).tensor().round(6).tolist()
+        [[4.0, 0.0], [0.0, 0.25]]
+        """
+        t = math.radians(self.azimuth_deg)
+        a = np.array([math.sin(t), math.cos(t)])
+        b = np.array([a[1], -a[0]])
+        return self.ratio * np.outer(a, a) + np.outer(b, b) / self.ratio
 
     @property
     def kappa_per_m(self) -> float:
@@ -169,30 +200,137 @@ def lattice_variance(kappa_per_m: float, spacing_m: float, alpha: int = 2) -> fl
     return h ** (2 * alpha - 2) * total / math.gamma(alpha)
 
 
-def _laplacian(spec: GridSpec):
-    """-h^2 Delta_h: the five-point graph Laplacian of the node grid (zero-flux edges), dimensionless."""
+def _differences(spec: GridSpec):
+    """Differences of the node grid, dimensionless (times h): ``(Dx, Dy, Cx, Cy)``.
+
+    ``Dx`` and ``Dy`` are the forward differences between neighbouring nodes
+    east and north (one row per pair); ``Cx`` and ``Cy`` the node-centred
+    differences, each node's mean of its (one or two) neighbouring forward
+    differences, so that :math:`\\|C u\\| \\le \\|D u\\|`. ``Dx^T Dx + Dy^T Dy`` is the
+    five-point Laplacian :math:`-h^2\\Delta_h` with zero-flux edges.
+    """
     ny, nx = spec.shape
     idx = np.arange(nx * ny).reshape(ny, nx)
-    rows = np.concatenate([idx[:, :-1].ravel(), idx[:-1, :].ravel()])
-    cols = np.concatenate([idx[:, 1:].ravel(), idx[1:, :].ravel()])
-    adj = sp.coo_matrix((np.ones(rows.size), (rows, cols)), shape=(nx * ny, nx * ny))
-    adj = (adj + adj.T).tocsr()
-    deg = np.asarray(adj.sum(axis=1)).ravel()
-    return (sp.diags(deg) - adj).tocsr()
+
+    def forward(a, b):  # rows: node b minus node a
+        m = a.size
+        r = np.repeat(np.arange(m), 2)
+        c = np.column_stack([b.ravel(), a.ravel()]).ravel()
+        v = np.tile([1.0, -1.0], m)
+        return sp.csr_matrix((v, (r, c)), shape=(m, nx * ny))
+
+    Dx = forward(idx[:, :-1], idx[:, 1:])  # east minus west
+    Dy = forward(idx[1:, :], idx[:-1, :])  # north minus south (row 0 is north)
+
+    def centred(pairs_shape, axis):
+        # node (r, c) takes half of each forward difference it is an end of, along ``axis``
+        p = np.arange(int(np.prod(pairs_shape))).reshape(pairs_shape)
+        rows, cols = [], []
+        if axis == 1:
+            rows += [idx[:, :-1].ravel(), idx[:, 1:].ravel()]
+        else:  # pairs (r + 1, r) along the rows, r + 1 south of r
+            rows += [idx[1:, :].ravel(), idx[:-1, :].ravel()]
+        cols += [p.ravel(), p.ravel()]
+        r = np.concatenate(rows)
+        c = np.concatenate(cols)
+        return sp.csr_matrix((np.full(r.size, 0.5), (r, c)), shape=(nx * ny, p.size))
+
+    Cx = (centred((ny, nx - 1), 1) @ Dx).tocsr()
+    Cy = (centred((ny - 1, nx), 0) @ Dy).tocsr()
+    return Dx, Dy, Cx, Cy
+
+
+def _laplacian(spec: GridSpec, tensor=None):
+    """:math:`-h^2 \\nabla\\cdot H \\nabla` on the node grid (zero-flux edges), dimensionless.
+
+    Without ``tensor`` (H = I) the five-point graph Laplacian. With an
+    anisotropy tensor H (2 x 2, east and north, positive definite)
+    :math:`H_{xx} D_x^T D_x + H_{yy} D_y^T D_y + H_{xy} (C_x^T C_y + C_y^T C_x)`, positive
+    semidefinite because :math:`|2 H_{xy} (C_x u)^T C_y u| \\le 2 |H_{xy}| \\|D_x u\\| \\|D_y u\\|
+    \\le H_{xx} \\|D_x u\\|^2 + H_{yy} \\|D_y u\\|^2`; in the interior its symbol is
+    :math:`4 H_{xx} \\sin^2(\\omega_1/2) + 4 H_{yy} \\sin^2(\\omega_2/2) + 2 H_{xy} \\sin\\omega_1 \\sin\\omega_2`.
+    """
+    ny, nx = spec.shape
+    if tensor is None:
+        idx = np.arange(nx * ny).reshape(ny, nx)
+        rows = np.concatenate([idx[:, :-1].ravel(), idx[:-1, :].ravel()])
+        cols = np.concatenate([idx[:, 1:].ravel(), idx[1:, :].ravel()])
+        adj = sp.coo_matrix((np.ones(rows.size), (rows, cols)), shape=(nx * ny, nx * ny))
+        adj = (adj + adj.T).tocsr()
+        deg = np.asarray(adj.sum(axis=1)).ravel()
+        return (sp.diags(deg) - adj).tocsr()
+    H = np.asarray(tensor, float)
+    Dx, Dy, Cx, Cy = _differences(spec)
+    G = H[0, 0] * (Dx.T @ Dx) + H[1, 1] * (Dy.T @ Dy) + H[0, 1] * (Cx.T @ Cy + Cy.T @ Cx)
+    return G.tocsr()
+
+
+def _panel_rule(width: float, points: int = 12):
+    """Gauss-Legendre nodes and weights on [-pi, pi], panels graded geometrically towards 0 from ``width``."""
+    edges = [0.0]
+    e = min(max(width, 1e-6), math.pi) / 2
+    while e < math.pi:
+        edges.append(e)
+        e *= 3.0
+    edges.append(math.pi)
+    x, w = np.polynomial.legendre.leggauss(points)
+    nodes, weights = [], []
+    for a, b in zip(edges[:-1], edges[1:]):
+        nodes.append(0.5 * (b - a) * x + 0.5 * (a + b))
+        weights.append(0.5 * (b - a) * w)
+    n, wt = np.concatenate(nodes), np.concatenate(weights)
+    return np.r_[-n[::-1], n], np.r_[wt[::-1], wt]
+
+
+def anisotropic_lattice_variance(kappa_per_m: float, spacing_m: float, tensor, alpha: int = 2) -> float:
+    """Marginal variance of :math:`Q = h^2 (\\kappa^2 - \\nabla\\cdot H \\nabla)^\\alpha_h` (tau = 1), infinite lattice.
+
+    The spectral integral of :func:`lattice_variance` with the symbol of the
+    anisotropic operator (:func:`_laplacian`), which does not separate; it is
+    evaluated by a tensor product of Gauss-Legendre panels graded towards the
+    peak at zero wavenumber (its width is :math:`\\kappa h` along the minor
+    axis of H). For H = I it equals :func:`lattice_variance`:
+
+    >>> a = anisotropic_lattice_variance(0.05, 2.0, np.eye(2), 3)
+    >>> b = lattice_variance(0.05, 2.0, 3)
+    >>> bool(abs(a / b - 1) < 1e-6)
+    True
+    """
+    h = float(spacing_m)
+    H = np.asarray(tensor, float)
+    e = (float(kappa_per_m) * h) ** 2
+    top = float(np.max(np.linalg.eigvalsh(H)))
+    w1, c1 = _panel_rule(float(kappa_per_m) * h / math.sqrt(top))
+    s1 = np.sin(w1 / 2) ** 2
+    sn = np.sin(w1)
+    lam = (
+        4.0 * H[0, 0] * s1[:, None]
+        + 4.0 * H[1, 1] * s1[None, :]
+        + 2.0 * H[0, 1] * sn[:, None] * sn[None, :]
+    )
+    total = float(c1 @ (e + lam) ** (-float(alpha)) @ c1)
+    return h ** (2 * alpha - 2) * total / (2 * math.pi) ** 2
 
 
 def matern_precision(spec: GridSpec, prior: MaternPrior):
     """Sparse precision matrix Q of the prior on the node grid (node order ``row * nx + col``), in 1/m^2.
 
-    :math:`Q = \\tau^2 h^2 (\\kappa^2 I - \\Delta_h)^{\\nu + 1}` (see the module notes), scaled so
-    that an interior node of an unbounded grid has variance ``prior.sigma_m ** 2``.
+    :math:`Q = \\tau^2 h^2 (\\kappa^2 I - \\nabla\\cdot H\\nabla_h)^{\\nu + 1}` (see the module notes; H = I
+    when isotropic), scaled so that an interior node of an unbounded grid has variance
+    ``prior.sigma_m ** 2``.
     """
     h = spec.cell_size_m
     kappa = prior.kappa_per_m
     alpha = prior.nu + 1
-    G = _laplacian(spec) / h**2  # -Delta_h (1/m^2)
+    if prior.isotropic:
+        G = _laplacian(spec) / h**2  # -Delta_h (1/m^2)
+        var = lattice_variance(kappa, h, alpha)
+    else:
+        H = prior.tensor()
+        G = _laplacian(spec, H) / h**2
+        var = anisotropic_lattice_variance(kappa, h, H, alpha)
     K = (kappa**2 * sp.identity(G.shape[0]) + G).tocsr()
-    tau2 = lattice_variance(kappa, h, alpha) / prior.sigma_m**2
+    tau2 = var / prior.sigma_m**2
     Q = K
     for _ in range(alpha - 1):
         Q = Q @ K
