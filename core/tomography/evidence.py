@@ -44,25 +44,36 @@ import scipy.sparse.linalg as spla
 from scipy.optimize import minimize
 
 from ..errors import InversionError
-from .prior import MaternPrior, matern_precision
+from ..progress import check_cancel
+from .prior import MaternPrior, anisotropic_lattice_variance, lattice_laplacian, lattice_variance, matern_precision
 from .system import borehole_matrix, jacobian, parameters, prior_mean, small_prior_precision
 
 __all__ = ["log_det_matern", "tune_priors"]
 
 
 def log_det_matern(spec, prior: MaternPrior) -> float:
-    """Log-determinant of :func:`~.prior.matern_precision` on ``spec`` (exact, from the Laplacian's eigenvalues)."""
-    from .prior import lattice_variance
+    """Log-determinant of :func:`~.prior.matern_precision` on ``spec``.
 
+    Isotropic: exact from the eigenvalues of the zero-flux five-point
+    Laplacian. Anisotropic: :math:`Q = \\tau^2 h^2 K^\\alpha`, so
+    :math:`\\log\\det Q = n \\log(\\tau^2 h^2) + \\alpha \\log\\det K`, the latter from a
+    sparse LU factor of K (symmetric positive definite: the diagonal of U).
+    """
     h = spec.cell_size_m
     ny, nx = spec.shape
-    lx = 2.0 - 2.0 * np.cos(np.pi * np.arange(nx) / nx)
-    ly = 2.0 - 2.0 * np.cos(np.pi * np.arange(ny) / ny)
-    lam = (lx[None, :] + ly[:, None]) / h**2
     kappa = prior.kappa_per_m
     alpha = prior.nu + 1
-    tau2 = lattice_variance(kappa, h, alpha) / prior.sigma_m**2
-    return float(nx * ny * math.log(tau2 * h * h) + alpha * np.sum(np.log(kappa**2 + lam)))
+    if prior.isotropic:
+        lx = 2.0 - 2.0 * np.cos(np.pi * np.arange(nx) / nx)
+        ly = 2.0 - 2.0 * np.cos(np.pi * np.arange(ny) / ny)
+        lam = (lx[None, :] + ly[:, None]) / h**2
+        tau2 = lattice_variance(kappa, h, alpha) / prior.sigma_m**2
+        return float(nx * ny * math.log(tau2 * h * h) + alpha * np.sum(np.log(kappa**2 + lam)))
+    H = prior.tensor()
+    tau2 = anisotropic_lattice_variance(kappa, h, H, alpha) / prior.sigma_m**2
+    K = (kappa**2 * sp.identity(nx * ny) + lattice_laplacian(spec, H) / h**2).tocsc()
+    lu = spla.splu(K, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+    return float(nx * ny * math.log(tau2 * h * h) + alpha * np.sum(np.log(np.abs(lu.U.diagonal()))))
 
 
 class _Linearised:
@@ -86,11 +97,21 @@ class _Linearised:
         else:
             self.BtB = None
         self.layout = layout
+        self._prior_cache: dict = {}
+
+    def _prior(self, prior):
+        """Precision and its log-determinant of one interface's prior (kept for the priors held fixed)."""
+        got = self._prior_cache.get(prior)
+        if got is None:
+            got = (matern_precision(self.layout.spec, prior), log_det_matern(self.layout.spec, prior))
+            if len(self._prior_cache) > 16:
+                self._prior_cache.clear()
+            self._prior_cache[prior] = got
+        return got
 
     def log_evidence(self, priors) -> float:
-        lay = self.layout
-        Qs = [matern_precision(lay.spec, p) for p in priors]
-        P = sp.block_diag([*Qs, self.P0], format="csr")
+        parts = [self._prior(p) for p in priors]
+        P = sp.block_diag([q for q, _ in parts] + [self.P0], format="csr")
         A = (self.JtJ + P).tocsc()
         Pdm = P @ self.dm
         g = self.Jtr - Pdm
@@ -108,12 +129,41 @@ class _Linearised:
             return -np.inf
         logdet_a = float(np.sum(np.log(d)))
         quad = float(g @ lu.solve(g))
-        logdet_q = sum(log_det_matern(lay.spec, p) for p in priors)
+        logdet_q = sum(ld for _, ld in parts)
         return -0.5 * (phi0 - quad) + 0.5 * logdet_q - 0.5 * logdet_a
 
 
-def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, progress=None):
-    """Most probable sill, range and smoothness of each interface's prior (see the module notes).
+MAX_RATIO = 8.0  # strongest anisotropy tried (major over minor range)
+STRONG = 3.0  # log evidence (2 ln B > 6: strong evidence, Kass & Raftery 1995) two more hyperparameters need
+
+
+def _prior_of(x, base: MaternPrior, nu: int, lo, hi, min_minor_m: float) -> MaternPrior:
+    """The prior at search coordinates ``x = (ln sigma, ln range, p, q)``.
+
+    The anisotropy is the vector :math:`(p, q) = \\ln(\\text{ratio}) (\\cos 2\\phi, \\sin 2\\phi)`
+    (phi the azimuth of the major axis): smooth through the isotropic prior
+    (0, 0) and free of the azimuth's period.
+    """
+    ls, lr = np.clip(x[:2], lo, hi)
+    lq = float(np.hypot(x[2], x[3]))
+    # the minor range is kept at two node spacings or more (the lattice resolves no less)
+    lq = min(lq, math.log(MAX_RATIO), max(0.0, 2.0 * (lr - math.log(min_minor_m))))
+    ratio = math.exp(lq)
+    az = (math.degrees(0.5 * math.atan2(x[3], x[2])) % 180.0) if lq > 1e-9 else 0.0
+    return MaternPrior(float(np.exp(ls)), float(np.exp(lr)), base.nugget_m2, "", nu, ratio, az)
+
+
+def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, progress=None, max_evaluations=30):
+    """Most probable sill, range, anisotropy and smoothness of each interface's prior (see the module notes).
+
+    For each interface in turn (the others held at their current priors) the
+    log evidence is maximised by Nelder-Mead in stages: (1) an isotropic
+    prior, over (ln sigma, ln range); (2) an anisotropic one, over (ln sigma,
+    ln range, anisotropy vector), started from the best of four directions
+    with a ratio of 3, kept only when it raises the log evidence by more than
+    :data:`STRONG` (two more hyperparameters need strong evidence); (3) the
+    other smoothness, searched further when it is more probable there.
+    ``max_evaluations`` bounds each Nelder-Mead search.
 
     Returns ``(priors, log_evidence_before, log_evidence_after)``; each new
     prior's ``source`` says what was done.
@@ -129,41 +179,71 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
         raise InversionError("the evidence of the start priors is not finite; the linearised problem is singular")
     best_total = before
     for k in range(layout.n_interfaces):
-        best = (best_total, current[k])
-        for nu in (1, 2):
+        check_cancel(progress)
+        cur = current[k]
 
-            def neg(x, k=k, nu=nu):
-                x = np.clip(x, lo, hi)
-                trial = list(current)
-                trial[k] = MaternPrior(float(np.exp(x[0])), float(np.exp(x[1])), current[k].nugget_m2, "", nu)
-                v = lin.log_evidence(trial)
-                return -v if np.isfinite(v) else 1e300
+        def value(x, nu, k=k, cur=cur):
+            trial = list(current)
+            trial[k] = _prior_of(x, cur, nu, lo, hi, 2.0 * h)
+            v = lin.log_evidence(trial)
+            return v if np.isfinite(v) else -1e300
 
-            x0 = np.clip(np.log([current[k].sigma_m, current[k].range_m]), lo, hi)
+        def search(x_start, nu, evaluations, free=4):
+            tail = np.asarray(x_start[free:], float)
+
+            def neg(z, tail=tail):
+                return -value(np.r_[z, tail], nu)
+
+            z0 = np.asarray(x_start[:free], float)
             res = minimize(
                 neg,
-                x0,
+                z0,
                 method="Nelder-Mead",
                 options={
-                    "xatol": 0.02,
-                    "fatol": 0.05,
-                    "maxfev": 80,
-                    "initial_simplex": x0 + np.array([[0.0, 0.0], [0.7, 0.0], [0.0, 0.7]]),
+                    "xatol": 0.05,
+                    "fatol": 0.1,
+                    "maxfev": int(evaluations),
+                    "initial_simplex": z0 + np.vstack([np.zeros(free), 0.6 * np.eye(free)]),
                 },
             )
-            val = -float(res.fun)
-            if val > best[0]:
-                x = np.clip(res.x, lo, hi)
-                best = (val, MaternPrior(float(np.exp(x[0])), float(np.exp(x[1])), current[k].nugget_m2, "", nu))
-        if best[1] is not current[k]:
-            p = best[1]
+            return -float(res.fun), np.r_[res.x, x_start[free:]]
+
+        nu = cur.nu
+        x0 = np.r_[np.clip(np.log([cur.sigma_m, cur.range_m]), lo, hi), 0.0, 0.0]
+        # (1) isotropic
+        val, x = search(x0, nu, max_evaluations, free=2)
+        # (2) anisotropic, on strong evidence only
+        step = math.log(3.0)
+        starts = [
+            x + np.r_[0.0, 0.0, step * math.cos(ang), step * math.sin(ang)] for ang in np.radians([0, 90, 180, 270])
+        ]
+        vals = [value(s, nu) for s in starts]
+        if max(vals) > val:
+            aval, ax = search(starts[int(np.argmax(vals))], nu, max_evaluations)
+            if aval > val + STRONG:
+                val, x = aval, ax
+        # (3) the other smoothness
+        other = 3 - nu
+        oval = value(x, other)
+        if oval > val:
+            free = 4 if np.hypot(x[2], x[3]) > 0 else 2
+            oval, ox = search(x, other, max_evaluations, free=free)
+            if oval > val:
+                val, x, nu = oval, ox, other
+        if val > best_total:
+            p = _prior_of(x, cur, nu, lo, hi, 2.0 * h)
+            shape = (
+                f"ratio {p.ratio:.2f} with the major axis at {p.azimuth_deg:.0f} deg"
+                if not p.isotropic
+                else "isotropic"
+            )
             current[k] = replace(
                 p,
                 source=f"most probable given the picks (type-II maximum likelihood, log evidence "
-                f"{best[0] - best_total:+.1f} over the previous prior): Matern nu = {p.nu}, sigma {p.sigma_m:.3g} m, "
-                f"range {p.range_m:.1f} m; started from {priors[k].source}",
+                f"{val - best_total:+.1f} over the previous prior): Matern nu = {p.nu}, sigma {p.sigma_m:.3g} m, "
+                f"range {p.range_m:.1f} m, {shape}; started from {priors[k].source}",
             )
-            best_total = best[0]
+            best_total = val
         if progress is not None:
             progress.info(f"prior of interface {k + 1}: {current[k].source.split(';')[0]}")
     return current, before, best_total

@@ -420,6 +420,13 @@ def _condition_on_points(node_spec, Q, x, y, resid, var):
     return spla.spsolve(A, H.T @ (W @ resid))
 
 
+def _reduced_chi2(data, state) -> float:
+    """Weighted misfit per used pick at ``state`` with the stated pick errors (as :func:`~.system.posterior`)."""
+    r = state.residual_s
+    m = np.isfinite(r) & (state.weight > 0)
+    return float(np.sum(state.weight[m] * (r[m] / data.sigma_s[m]) ** 2)) / max(int(m.sum()), 1)
+
+
 def _vertical_time(theta, centre, x, y, z_top, z_bot):
     """One-way vertical time (s) through a linear field from z_top down to z_bot: int dz / v."""
     v_top = theta[0] + theta[1] * (x - centre[0]) + theta[2] * (y - centre[1]) + theta[3] * (z_top - centre[2])
@@ -663,13 +670,6 @@ def _estimate(
     # continuation: constant layers first (interfaces settle), then the gradients from zero
     state, h = gauss_newton(layout, data, state, label="joint estimate (constant layer velocities)", **kw_rough)
     hist_all.append(h)
-    if cfg.prior == "evidence" and cfg.priors is None:
-        # prior hyperparameters most probable given the picks, then refit
-        check_cancel(progress)
-        priors, _, _ = tune_priors(layout, data, state, priors, extent_m=extent, progress=progress)
-        data = replace(data, Q=tuple(matern_precision(node_spec, p) for p in priors))
-        state, h = gauss_newton(layout, data, state, label="joint estimate (tuned priors)", **kw_rough)
-        hist_all.append(h)
     stage = fixed or ("full",) * K
     if stage != ("constant",) * K:
         layout = layout_for(stage)
@@ -707,11 +707,25 @@ def _estimate(
         hist_all.append(h)
     # honest pick errors: inflate by sqrt(reduced chi-square) when above 1, and refit
     check_cancel(progress)
-    post = posterior(layout, data, state)
-    chi2 = post.chi2_reduced
+    tune = cfg.prior == "evidence" and cfg.priors is None
+    if tune:
+        chi2 = _reduced_chi2(data, state)
+    else:
+        post = posterior(layout, data, state)
+        chi2 = post.chi2_reduced
     scale = 1.0
     if chi2 > 1.0:
         scale = math.sqrt(chi2)
+    if tune:
+        # the priors' hyperparameters most probable given the picks, at the fit of the chosen velocity
+        # model with the pick errors as inflated (type-II maximum likelihood, :mod:`.evidence`), then refit
+        priors, _, _ = tune_priors(layout, data, state, priors, sigma_scale=scale, extent_m=extent, progress=progress)
+        data = replace(data, Q=tuple(matern_precision(node_spec, p) for p in priors))
+        label = "joint estimate (most probable priors" + (f", pick errors x {scale:.2f})" if scale > 1.0 else ")")
+        state, h = gauss_newton(layout, data, state, sigma_scale=scale, label=label, **kw)
+        hist_all.append(h)
+        post = posterior(layout, data, state, sigma_scale=scale)
+    elif chi2 > 1.0:
         state, h = gauss_newton(
             layout, data, state, sigma_scale=scale, label=f"joint estimate (pick errors x {scale:.2f})", **kw
         )

@@ -50,6 +50,7 @@ References
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -64,7 +65,9 @@ from ..surface.variogram import experimental_variogram
 
 __all__ = [
     "MaternPrior",
+    "anisotropic_lattice_variance",
     "fit_matern",
+    "lattice_laplacian",
     "lattice_variance",
     "matern_correlation",
     "matern_precision",
@@ -240,7 +243,7 @@ def _differences(spec: GridSpec):
     return Dx, Dy, Cx, Cy
 
 
-def _laplacian(spec: GridSpec, tensor=None):
+def lattice_laplacian(spec: GridSpec, tensor=None):
     """:math:`-h^2 \\nabla\\cdot H \\nabla` on the node grid (zero-flux edges), dimensionless.
 
     Without ``tensor`` (H = I) the five-point graph Laplacian. With an
@@ -260,9 +263,15 @@ def _laplacian(spec: GridSpec, tensor=None):
         deg = np.asarray(adj.sum(axis=1)).ravel()
         return (sp.diags(deg) - adj).tocsr()
     H = np.asarray(tensor, float)
+    Lxx, Lyy, Lxy = _laplacian_parts(spec)
+    return (H[0, 0] * Lxx + H[1, 1] * Lyy + H[0, 1] * Lxy).tocsr()
+
+
+@functools.lru_cache(maxsize=8)
+def _laplacian_parts(spec: GridSpec):
+    """``(Dx^T Dx, Dy^T Dy, Cx^T Cy + Cy^T Cx)`` of :func:`_differences` (kept: the prior search reuses them)."""
     Dx, Dy, Cx, Cy = _differences(spec)
-    G = H[0, 0] * (Dx.T @ Dx) + H[1, 1] * (Dy.T @ Dy) + H[0, 1] * (Cx.T @ Cy + Cy.T @ Cx)
-    return G.tocsr()
+    return (Dx.T @ Dx).tocsr(), (Dy.T @ Dy).tocsr(), (Cx.T @ Cy + Cy.T @ Cx).tocsr()
 
 
 def _panel_rule(width: float, points: int = 12):
@@ -286,7 +295,7 @@ def anisotropic_lattice_variance(kappa_per_m: float, spacing_m: float, tensor, a
     """Marginal variance of :math:`Q = h^2 (\\kappa^2 - \\nabla\\cdot H \\nabla)^\\alpha_h` (tau = 1), infinite lattice.
 
     The spectral integral of :func:`lattice_variance` with the symbol of the
-    anisotropic operator (:func:`_laplacian`), which does not separate; it is
+    anisotropic operator (:func:`lattice_laplacian`), which does not separate; it is
     evaluated by a tensor product of Gauss-Legendre panels graded towards the
     peak at zero wavenumber (its width is :math:`\\kappa h` along the minor
     axis of H). For H = I it equals :func:`lattice_variance`:
@@ -303,11 +312,7 @@ def anisotropic_lattice_variance(kappa_per_m: float, spacing_m: float, tensor, a
     w1, c1 = _panel_rule(float(kappa_per_m) * h / math.sqrt(top))
     s1 = np.sin(w1 / 2) ** 2
     sn = np.sin(w1)
-    lam = (
-        4.0 * H[0, 0] * s1[:, None]
-        + 4.0 * H[1, 1] * s1[None, :]
-        + 2.0 * H[0, 1] * sn[:, None] * sn[None, :]
-    )
+    lam = 4.0 * H[0, 0] * s1[:, None] + 4.0 * H[1, 1] * s1[None, :] + 2.0 * H[0, 1] * sn[:, None] * sn[None, :]
     total = float(c1 @ (e + lam) ** (-float(alpha)) @ c1)
     return h ** (2 * alpha - 2) * total / (2 * math.pi) ** 2
 
@@ -323,11 +328,11 @@ def matern_precision(spec: GridSpec, prior: MaternPrior):
     kappa = prior.kappa_per_m
     alpha = prior.nu + 1
     if prior.isotropic:
-        G = _laplacian(spec) / h**2  # -Delta_h (1/m^2)
+        G = lattice_laplacian(spec) / h**2  # -Delta_h (1/m^2)
         var = lattice_variance(kappa, h, alpha)
     else:
         H = prior.tensor()
-        G = _laplacian(spec, H) / h**2
+        G = lattice_laplacian(spec, H) / h**2
         var = anisotropic_lattice_variance(kappa, h, H, alpha)
     K = (kappa**2 * sp.identity(G.shape[0]) + G).tocsr()
     tau2 = var / prior.sigma_m**2
