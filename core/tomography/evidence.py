@@ -200,8 +200,8 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
                 z0,
                 method="Nelder-Mead",
                 options={
-                    "xatol": 0.05,
-                    "fatol": 0.1,
+                    "xatol": 0.1,
+                    "fatol": 0.2,
                     "maxfev": int(evaluations),
                     "initial_simplex": z0 + np.vstack([np.zeros(free), 0.6 * np.eye(free)]),
                 },

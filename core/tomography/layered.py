@@ -129,7 +129,7 @@ class LayeredSettings:
     max_iterations: int = 12
     tolerance_m: float = 0.02
     band_flops: float = 4e9
-    prior: str = "variogram"
+    prior: str = "evidence"
     priors: tuple | None = None
 
     @classmethod
