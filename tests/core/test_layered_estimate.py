@@ -228,7 +228,12 @@ def test_boreholes_pull_the_surface_within_their_error(dipping_plane):
     # the map honours the borehole within a few of its sigmas (the data pull a little the other way)
     assert after == pytest.approx(plane(bx, by) + 0.6, abs=0.15)
     assert abs(before - plane(bx, by)) < 0.3
-    assert res.sigma_unmasked_m[0, row, col] < 0.5 * res0.sigma_unmasked_m[0, row, col]
+    # a Gaussian update leaves less uncertainty than the borehole alone (0.05 m) and than the picks alone
+    # (Tarantola 2005, s. 3.2: posterior precision = prior precision + data precision). The priors are
+    # tuned to the data of each run (the borehole's misfit to the plane loosens its own), so the bound is
+    # on the borehole's sigma, not a fraction of the first run's
+    sigma_at = res.sigma_unmasked_m[0, row, col]
+    assert sigma_at < 0.05 and sigma_at < res0.sigma_unmasked_m[0, row, col], sigma_at
 
 
 @pytest.mark.slow  # slow tier: whole joint estimates
