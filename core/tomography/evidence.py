@@ -21,9 +21,11 @@ approximation [MacKay 1992; Rasmussen & Williams 2006, s. 5.4]
 (boreholes enter A, g and :math:`\\Phi_0` like picks). :math:`\\log\\det A` comes
 from a sparse LU factor; :math:`\\log\\det Q` of a lattice Matern prior is exact
 from the eigenvalues of the zero-flux five-point Laplacian,
-:math:`\\lambda_{ij} = (4 - 2\\cos(\\pi i/n_x) - 2\\cos(\\pi j/n_y))/h^2`. For each
-interface in turn the sill and range are varied (Nelder-Mead in their
-logarithms) for smoothness nu = 1 and 2, and the most probable are kept.
+:math:`\\lambda_{ij} = (4 - 2\\cos(\\pi i/n_x) - 2\\cos(\\pi j/n_y))/h^2` (isotropic), or from a
+sparse LU factor of :math:`\\kappa^2 - \\nabla\\cdot H\\nabla_h` (anisotropic). For each interface in
+turn (:func:`tune_priors`) the sill and range of an isotropic prior are varied (Nelder-Mead in
+their logarithms), then an anisotropic one (two more hyperparameters, kept only on strong
+evidence [Kass & Raftery 1995]), then the other smoothness; the most probable are kept.
 
 References
 ----------
@@ -31,6 +33,8 @@ References
     Computation 4(3), 415-447.
 [Rasmussen & Williams 2006] Rasmussen, C. E. & Williams, C. K. I. (2006).
     Gaussian Processes for Machine Learning. MIT Press, s. 5.4.
+[Kass & Raftery 1995] Kass, R. E. & Raftery, A. E. (1995). Bayes factors.
+    Journal of the American Statistical Association 90(430), 773-795.
 """
 
 from __future__ import annotations

@@ -6,8 +6,8 @@
 2. starts each interface from the gather-fit points converted with Dix
    interval velocities and each layer from its median Dix interval velocity
    (:mod:`.start`);
-3. gives each interface a Matern (nu = 1) GMRF prior about a plane trend, its
-   sill and range fitted to the variogram of those points (:mod:`.prior`);
+3. gives each interface a Matern GMRF prior about a plane trend, its sill and
+   range fitted to the variogram of those points (:mod:`.prior`) to start;
 4. estimates everything at once by robust Gauss-Newton (:mod:`.system`), with
    exact reflection paths through the layers (:mod:`.raypath`);
 5. chooses each layer's velocity model (:data:`~.velocity.COMPLEXITIES`) by
@@ -22,9 +22,11 @@
    can mimic one in another, and noise alone then favours one of them by a
    few units of BIC.) The chosen model is then refitted;
 6. inflates the pick errors by the square root of the reduced chi-square when
-   it exceeds 1, refits, and takes the posterior (Laplace approximation) at
-   the optimum: the map is the posterior mean at every output cell, sigma its
-   standard deviation including the trend and velocity uncertainty;
+   it exceeds 1, chooses each interface's prior hyperparameters (sill, range,
+   anisotropy, smoothness) by type-II maximum likelihood (:mod:`.evidence`),
+   refits, and takes the posterior (Laplace approximation) at the optimum:
+   the map is the posterior mean at every output cell, sigma its standard
+   deviation including the trend and velocity uncertainty;
 7. maps the cells whose sigma does not exceed a limit (by default the largest
    sigma inside the lines' subsurface coverage, the convex hull of the
    source-receiver midpoints), and always the cells inside that hull.
@@ -114,9 +116,10 @@ class LayeredSettings:
     band_flops : float
         Budget of the exact covariance computation (floating-point operations).
     prior : str
-        "variogram": each interface's prior from the variogram of its gather-fit
-        points (:func:`~.prior.fit_matern`); "evidence": then tuned to the
-        picks by type-II maximum likelihood (:func:`~.evidence.tune_priors`).
+        "evidence" (default): each interface's prior starts from the variogram
+        of its gather-fit points (:func:`~.prior.fit_matern`) and is then
+        tuned to the picks by type-II maximum likelihood
+        (:func:`~.evidence.tune_priors`); "variogram": the variogram's, as it is.
     priors : tuple of MaternPrior or None
         Given priors, one per interface (then ``prior`` is not used).
     """

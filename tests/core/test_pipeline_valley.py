@@ -105,6 +105,11 @@ def test_auto_chooses_the_joint_estimate_over_the_valley(valley_run):
     assert res.layers[0].velocity.v0_m_s == pytest.approx(V_TRUE, rel=0.005)
     # one constant layer made the data: the information criterion keeps it constant
     assert res.layers[0].complexity == "constant"
+    # the prior most probable given the picks is elongated along the valley's axis (north; the
+    # truth's geometry): at least twice as long along it, its major axis within 15 degrees of north
+    p = res.priors[0]
+    assert p.ratio >= 2.0, p
+    assert min(p.azimuth_deg, 180.0 - p.azimuth_deg) <= 15.0, p
 
 
 def test_joint_estimate_maps_the_valley_with_honest_sigma(valley_run):
@@ -118,14 +123,16 @@ def test_joint_estimate_maps_the_valley_with_honest_sigma(valley_run):
         f"kriged gather fits {krms:.2f} m rms"
     )
     # the gather fits over the axis are 15-18 m too deep (focusing); the joint estimate is not.
-    # Issue target: <= 0.5 m rms over the mapped cells. Sigma must not be over-confident: at
-    # least 90 % of the cells within 2 sigma (a Gaussian error is 95 % of the time; the margin
-    # allows for the cells' correlation). The issue's upper bound of 98 % is NOT met: the
-    # isotropic prior fitted to the points' variogram does not know that the valley runs
-    # straight between the lines, so sigma there is wider than the realised error
-    # (measured when written: 0.48 m rms, 100 % within 2 sigma; 0.45-0.52 m as the iterations
-    # were tuned, so the 0.5 m target is met with little margin).
-    assert rms <= 0.5, rms
+    # Issue target: <= 0.5 m rms over the mapped cells. The interface's prior is the most probable
+    # given the picks (type-II maximum likelihood, Rasmussen & Williams 2006, ch. 5), anisotropy
+    # included: the picks along the axis tell that the valley runs straight between the lines.
+    # Measured when written: 0.07 m rms (0.52 m with the isotropic prior fitted to the variogram);
+    # 0.3 m keeps a margin under the issue's 0.5 m for the noise of other seeds.
+    # Sigma must not be over-confident: at least 90 % of the cells within 2 sigma (a Gaussian error
+    # is 95 % of the time; the margin allows for the cells' correlation). The issue's upper bound of
+    # 98 % is NOT met: 100 % of the cells are within 2 sigma (standardised rms error 0.8: the sigma
+    # is near honest on average, but no error reaches 2 sigma on this smooth truth).
+    assert rms <= 0.3, rms
     assert cover >= 0.90, cover
     assert rms < 0.5 * krms
     # the mapped cells cover at least the lines' convex hull (issue requirement)
