@@ -711,11 +711,7 @@ def _estimate(
     # honest pick errors: inflate by sqrt(reduced chi-square) when above 1, and refit
     check_cancel(progress)
     tune = cfg.prior == "evidence" and cfg.priors is None
-    if tune:
-        chi2 = _reduced_chi2(data, state)
-    else:
-        post = posterior(layout, data, state)
-        chi2 = post.chi2_reduced
+    chi2 = _reduced_chi2(data, state)
     scale = 1.0
     if chi2 > 1.0:
         scale = math.sqrt(chi2)
@@ -727,13 +723,13 @@ def _estimate(
         label = "joint estimate (most probable priors" + (f", pick errors x {scale:.2f})" if scale > 1.0 else ")")
         state, h = gauss_newton(layout, data, state, sigma_scale=scale, label=label, **kw)
         hist_all.append(h)
-        post = posterior(layout, data, state, sigma_scale=scale)
     elif chi2 > 1.0:
         state, h = gauss_newton(
             layout, data, state, sigma_scale=scale, label=f"joint estimate (pick errors x {scale:.2f})", **kw
         )
         hist_all.append(h)
-        post = posterior(layout, data, state, sigma_scale=scale)
+    # the posterior (its banded factor and selected inverse) once, at the final state
+    post = posterior(layout, data, state, sigma_scale=scale)
     check_cancel(progress)
     progress.info("joint estimate: posterior standard deviations")
 

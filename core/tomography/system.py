@@ -82,9 +82,11 @@ __all__ = [
     "borehole_matrix",
     "gauss_newton",
     "jacobian",
+    "normal_matrix",
     "parameters",
     "posterior",
     "prior_mean",
+    "reduced_chi2",
     "small_prior_precision",
     "trend_basis",
 ]
@@ -279,6 +281,22 @@ def jacobian(layout, data, state, sigma_scale=1.0):
     return J, use, sw
 
 
+def normal_matrix(J, n_nodes: int):
+    """:math:`J^T J` (CSR) with the few dense trend and velocity columns (those from ``n_nodes`` on) apart.
+
+    Every pick's row has up to 48 node weights and a dozen trend and velocity
+    derivatives; a sparse product would pair each of those columns with every
+    other one of every row. The node block is a sparse product, the node-small
+    block a sparse-dense product and the small block a dense one: the same
+    matrix to rounding, in about 70 % of the time at 100,000 picks.
+    """
+    J = sp.csr_matrix(J)
+    Jn = J[:, :n_nodes]
+    Js = J[:, n_nodes:].toarray()
+    ns = sp.csr_matrix(Jn.T @ Js)
+    return sp.bmat([[Jn.T @ Jn, ns], [ns.T, sp.csr_matrix(Js.T @ Js)]], format="csr")
+
+
 def small_prior_precision(layout, data):
     """Diagonal prior precision of the trends and the free velocity parameters."""
     K = layout.n_interfaces
@@ -381,7 +399,7 @@ def gauss_newton(
         check_cancel(progress)
         J, use, sw = jacobian(layout, data, state, sigma_scale)
         m_cur = parameters(layout, state)
-        A = (J.T @ J + P).tocsr()
+        A = (normal_matrix(J, layout.n_nodes) + P).tocsr()
         rhs = J.T @ (state.residual_s[use] * sw) - P @ (m_cur - mean0)
         if B is not None:
             A = A + BtB
@@ -527,7 +545,7 @@ def posterior(layout, data, state, sigma_scale=1.0, cell_sigma=True) -> Posterio
     P = _prior_blocks(layout, data)
     B = borehole_matrix(layout, data)
     J, _, _ = jacobian(layout, data, state, sigma_scale)
-    A = (J.T @ J + P).tocsr()
+    A = (normal_matrix(J, layout.n_nodes) + P).tocsr()
     if B is not None:
         A = A + (B.T @ sp.diags(1.0 / data.bh_sigma_m**2) @ B).tocsr()
     n = layout.n_nodes
@@ -544,7 +562,13 @@ def posterior(layout, data, state, sigma_scale=1.0, cell_sigma=True) -> Posterio
         U = _factorize(Auu).solve(Aus)
     S = Ass - Aus.T @ U
     S_inv = np.linalg.inv(0.5 * (S + S.T))
+    chi2, n_used = reduced_chi2(data, state, sigma_scale)
+    return Posterior(layout, fac, U, S_inv, chi2, n_used)
+
+
+def reduced_chi2(data, state, sigma_scale=1.0) -> tuple:
+    """(weighted sum of squared normalised residuals / picks used, picks used) of the picks with weight."""
     r = state.residual_s
     m = np.isfinite(r) & (state.weight > 0)
     chi2 = float(np.sum(state.weight[m] * (r[m] / (data.sigma_s[m] * sigma_scale)) ** 2)) / max(int(m.sum()), 1)
-    return Posterior(layout, fac, U, S_inv, chi2, int(m.sum()))
+    return chi2, int(m.sum())
