@@ -37,6 +37,7 @@ __all__ = [
     "section_file_stem",
     "section_file_stems",
     "section_files",
+    "sheet_jobs",
     "write_handoff",
 ]
 
@@ -296,16 +297,46 @@ def section_files(result, section, fmt="pdf", info=None, plan=None):
     return section_sheet(section, info, plan=plan, fmt=fmt), section.table()
 
 
-def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
-    """Stage every hand-off file of ``result`` in ``outputs`` (an :class:`~..formats.atomic.OutputSet`)."""
+def sheet_jobs(outputs, out_dir, result, sections=None) -> list:
+    """Plan the printed sheets of ``result`` in ``outputs``: [(path, function making its bytes)].
+
+    The A3 map sheet and the drawn section sheets (:func:`drawn_sections`);
+    the caller draws them, in this process or in a child
+    (:class:`~.background.BackgroundFiles`). Nothing is drawn here.
+    """
+    from functools import partial
+
+    if result.surface is None:
+        return []
+    info = sheet_info(result)
+    pages, overlays = map_content(result)
+    jobs = [(outputs.stage(out_dir / MAP_SHEET_NAME), partial(map_sheet, result.spec, pages, overlays, info))]
+    sections = sections if sections is not None else sections_step(result)
+    plan = _plan(overlays)
+    fmt = result.survey.handoff.section_format
+    for sec, stem, drawn in zip(sections, section_file_stems(sections), drawn_sections(sections)):
+        if drawn:
+            jobs.append(
+                (outputs.stage(out_dir / f"{stem}.{fmt}"), partial(section_sheet, sec, info, plan=plan, fmt=fmt))
+            )
+    return jobs
+
+
+def write_handoff(outputs, out_dir, result, progress, sections=None, sheets: bool = True) -> None:
+    """Stage every hand-off file of ``result`` in ``outputs`` (an :class:`~..formats.atomic.OutputSet`).
+
+    With ``sheets`` false the printed sheets are left to the caller (:func:`sheet_jobs`).
+    """
     if result.surface is None:
         return
     spec, crs = result.spec, result.survey.crs
     h = result.survey.handoff
     info = sheet_info(result)
-    pages, overlays = map_content(result)
-    outputs.stage(out_dir / MAP_SHEET_NAME).write_bytes(map_sheet(spec, pages, overlays, info))
-    check_cancel(progress)
+    sections = sections if sections is not None else sections_step(result)
+    if sheets:
+        for path, make in sheet_jobs(outputs, out_dir, result, sections):
+            path.write_bytes(make())
+            check_cancel(progress)
     s = result.surface
     sd = np.where(s.mask, np.nan, s.std)
     spread = (
@@ -340,13 +371,6 @@ def write_handoff(outputs, out_dir, result, progress, sections=None) -> None:
             software=prov.software,
             description="probability (0 to 1) that the reflector lies above the design level",
         )
-    sections = sections if sections is not None else sections_step(result)
-    plan = _plan(overlays)
-    for sec, stem, drawn in zip(sections, section_file_stems(sections), drawn_sections(sections)):
+    for sec, stem in zip(sections, section_file_stems(sections)):
         check_cancel(progress)
-        if drawn:
-            sheet, table = section_files(result, sec, h.section_format, info, plan)
-            outputs.stage(out_dir / f"{stem}.{h.section_format}").write_bytes(sheet)
-        else:
-            table = sec.table()
-        write_csv(outputs.stage(out_dir / f"{stem}.csv"), table)
+        write_csv(outputs.stage(out_dir / f"{stem}.csv"), sec.table())

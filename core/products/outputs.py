@@ -24,7 +24,7 @@ from ..text import file_stem, printable
 from ..workflow import surface_data
 from . import layers as lay
 from .geopackage import layers_3d, qgis_layer_metadata
-from .handoff import PROBABILITY_NAME, handoff_layers, handoff_run_info, write_handoff
+from .handoff import PROBABILITY_NAME, handoff_layers, handoff_run_info, sheet_jobs, write_handoff
 from .overburden import overburden_layers, overburden_rasters
 from .provenance import elevation_crs, provenance
 from .styles import layer_styles, raster_styles, styles_table
@@ -395,31 +395,48 @@ def write_map(result, out_dir, progress) -> list:
     return written
 
 
+def _import_matplotlib() -> None:
+    import importlib
+
+    try:
+        importlib.import_module("matplotlib.backends.backend_agg")
+    except ImportError:  # said where a figure is drawn (MissingDependencyError)
+        pass
+
+
 def _write_all(result, folder: RunFolder, progress, gather_figures) -> list:
     from ..handoff.steps import sections_step
     from ..report.content import build_report
+    from .background import BackgroundFiles, fork_is_safe
 
     sections = sections_step(result)
     layers = result_layers(result, sections)
-    _stage_map(folder, result, layers, progress)
-    write_handoff(folder, folder.requested, result, progress, sections)
-    progress.set_progress(25)
-    line_figures = {}
-    for line, name, png in line_qc_figures(result):
-        folder.path(f"qc/{name}").write_bytes(png)
-        line_figures[line] = (name, png)
+    sheets = sheet_jobs(folder, folder.requested, result, sections)
+    parallel = fork_is_safe()
+    if parallel:  # matplotlib imported once, for both processes
+        _import_matplotlib()
+    # the printed sheets are drawn in a child process, where there is a core for it, while this one writes the rest
+    with BackgroundFiles(sheets, parallel=parallel):
+        _stage_map(folder, result, layers, progress)
+        write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
+        progress.set_progress(25)
+        line_figures = {}
+        for line, name, png in line_qc_figures(result):
+            folder.path(f"qc/{name}").write_bytes(png)
+            line_figures[line] = (name, png)
+            check_cancel(progress)
+        progress.set_progress(35)
+        qc_figures = {}
+        n_figures = max(len(figure_gathers(result, gather_figures)), 1)
+        for i, (k, name, png) in enumerate(gather_qc_figures(result, gather_figures)):
+            folder.path(f"qc/{name}").write_bytes(png)
+            qc_figures[k] = (name, png)
+            check_cancel(progress)
+            progress.set_progress(35 + 40 * (i + 1) / n_figures)
+        html = build_report(result, layers, qc_figures, sections, line_figures)
+        folder.path("report.html").write_text(html, encoding="utf-8")
         check_cancel(progress)
-    progress.set_progress(35)
-    qc_figures = {}
-    n_figures = max(len(figure_gathers(result, gather_figures)), 1)
-    for i, (k, name, png) in enumerate(gather_qc_figures(result, gather_figures)):
-        folder.path(f"qc/{name}").write_bytes(png)
-        qc_figures[k] = (name, png)
-        check_cancel(progress)
-        progress.set_progress(35 + 40 * (i + 1) / n_figures)
-    html = build_report(result, layers, qc_figures, sections, line_figures)
-    folder.path("report.html").write_text(html, encoding="utf-8")
-    check_cancel(progress)
+    progress.set_progress(90)
     written = folder.commit()
     progress.set_progress(100)
     return written
