@@ -52,7 +52,7 @@ from .results import (
     VelocityModelTable,
 )
 from .surface.base import SurfaceGrid
-from .surface.trend import grid_with_trend, predict_with_trend
+from .surface.trend import grid_with_trend, model_with_trend, predict_with_trend
 from .survey.model import Boreholes
 from .tomography.layered import BoreholeTies
 
@@ -239,6 +239,16 @@ def _grid(x, y, z, s, spec, settings, corridor):
         return grid_with_trend(x, y, z, s, spec, settings, "kriging", corridor=corridor)
     except InversionError:
         return None, None
+
+
+def _model(x, y, z, s, settings, corridor):
+    """The trend and variogram of :func:`_grid`'s surface, without the grid; None with fewer than 3 data."""
+    if len(x) < 3:
+        return None
+    try:
+        return model_with_trend(x, y, z, s, settings, corridor)
+    except InversionError:
+        return None
 
 
 def _at(x, y, z, s, diag, settings, bx, by):
@@ -542,10 +552,10 @@ def _borehole_depths(survey, fit, dix, ground, order, mapped, spec, corridor, jo
             rms_z, rms_s = seismic_check.seismic_elevation_m, seismic_check.seismic_sigma_m
         else:
             x, y, z, s = _usable_points(fit, label)
-            _, diag = _grid(x, y, z, s, spec, st, corridor)
+            diag = _model(x, y, z, s, st, corridor)  # estimates at the boreholes only: no grid
             rms_z, rms_s = _at(x, y, z, s, diag, st, bx, by)
         x, y, z, s = _dix_points(fit, dix, ground, order, k)
-        _, diag = _grid(x, y, z, s, spec, st, corridor)
+        diag = _model(x, y, z, s, st, corridor)
         dix_z, dix_s = _at(x, y, z, s, diag, st, bx, by)
         if label in joint_at:
             joint_z = bilinear(spec, joint_at[label][0], bx, by)

@@ -45,6 +45,18 @@ def fork_is_safe() -> bool:
     return cores >= 2
 
 
+def _die_with(parent: int) -> None:
+    """Have the kernel kill this child when its parent dies (Linux), so it never writes for a killed run."""
+    try:
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL))  # 1 = PR_SET_PDEATHSIG
+    except (OSError, AttributeError):  # pragma: no cover - not Linux: the parent is checked before each write
+        pass
+    if os.getppid() != parent:  # the parent died before the request
+        os._exit(1)
+
+
 class BackgroundFiles:
     """Write files, each the bytes a function returns, in a forked child (or here, see the module's notes).
 
@@ -77,14 +89,20 @@ class BackgroundFiles:
         read_fd, write_fd = os.pipe()
         sys.stdout.flush()
         sys.stderr.flush()
+        parent = os.getpid()
         pid = os.fork()
         if pid == 0:  # the child: draw, write, leave without running any of the parent's clean-up
             code = 1
             try:
                 os.close(read_fd)
+                _die_with(parent)
                 for path, make in self.jobs:
-                    Path(path).write_bytes(make())
-                code = 0
+                    data = make()
+                    if os.getppid() != parent:  # the run was killed: its staging folder is not ours to write
+                        break
+                    Path(path).write_bytes(data)
+                else:
+                    code = 0
             except BaseException as exc:  # reported to the parent, which draws again and raises itself
                 try:
                     os.write(write_fd, f"{type(exc).__name__}: {exc}".encode("utf-8", "replace")[:2000])

@@ -114,6 +114,52 @@ def default_max_distance(x: ArrayLike, y: ArrayLike, variogram: VariogramModel |
     return float(d)
 
 
+def _checked(x, y, z, sigma):
+    """Checked data and measurement-error variances (m²) from standard errors (m)."""
+    if sigma is not None:
+        sig = np.asarray(sigma, dtype=float)
+        if np.any(sig < 0):
+            raise SurfaceError(
+                f"sigma must be >= 0 (m), got {float(sig[sig < 0].ravel()[0])!r}; give the standard error of "
+                "each elevation, 0 for an exact one"
+            )
+        e = np.square(sig)
+    else:
+        e = None
+    return check_points(x, y, z, e)
+
+
+def kriging_model(
+    x: ArrayLike,
+    y: ArrayLike,
+    z: ArrayLike,
+    sigma: ArrayLike | None = None,
+    neighbours: Optional[int] = 32,
+    variogram_model: str = "auto",
+) -> OrdinaryKriging:
+    """The fitted kriging model :func:`interpolate_surface` grids with (same checks, same variogram choice).
+
+    Parameters
+    ----------
+    x, y, z : array_like (n,)
+        Easting, northing (m) and value (m).
+    sigma : array_like (n,) or float, optional
+        Standard error of each value (m), >= 0.
+    neighbours : int or None
+        Local neighbourhood size (None = global).
+    variogram_model : str
+        "auto" or a model name (:func:`~.kriging.choose_variogram`).
+
+    Returns
+    -------
+    OrdinaryKriging
+        Fitted (``variogram_`` is the chosen model).
+    """
+    xa, ya, za, ev = _checked(x, y, z, sigma)
+    variogram, _ = choose_variogram(xa, ya, za, ev, variogram_model, neighbours=neighbours)
+    return OrdinaryKriging(variogram, neighbours=neighbours).fit(xa, ya, za, ev)
+
+
 def interpolate_surface(
     x: ArrayLike,
     y: ArrayLike,
@@ -182,17 +228,7 @@ def interpolate_surface(
         The user cancelled.
     """
     sink: Progress = progress or NullProgress()
-    if sigma is not None:
-        sig = np.asarray(sigma, dtype=float)
-        if np.any(sig < 0):
-            raise SurfaceError(
-                f"sigma must be >= 0 (m), got {float(sig[sig < 0].ravel()[0])!r}; give the standard error of "
-                "each elevation, 0 for an exact one"
-            )
-        e = np.square(sig)
-    else:
-        e = None
-    xa, ya, za, ev = check_points(x, y, z, e)
+    xa, ya, za, ev = _checked(x, y, z, sigma)
     if spec is None:
         spec = GridSpec.from_data(xa, ya)
     diag: dict[str, Any] = {

@@ -11,11 +11,11 @@ from numpy.typing import ArrayLike
 from ..grid import GridSpec
 from ..progress import Progress
 from .base import SurfaceGrid
-from .gridding import interpolate_surface
+from .gridding import interpolate_surface, kriging_model
 from .kriging import OrdinaryKriging
 from .spline import ThinPlateSpline
 
-__all__ = ["NoTrend", "PlaneTrend", "fit_trend", "grid_with_trend", "predict_with_trend"]
+__all__ = ["NoTrend", "PlaneTrend", "fit_trend", "grid_with_trend", "model_with_trend", "predict_with_trend"]
 
 
 @dataclass(frozen=True)
@@ -205,6 +205,39 @@ def grid_with_trend(
         idx = np.asarray(cv.index)
         diag["cross_validation"] = replace(cv, estimate=cv.estimate + trend(x[idx], y[idx]))
     return SurfaceGrid(spec, z_grid, surf.std, surf.mask, surf.method, surf.n_data), diag
+
+
+def model_with_trend(
+    x: np.ndarray, y: np.ndarray, z: np.ndarray, s: np.ndarray, settings: Any, corridor: Any = None
+) -> dict[str, Any]:
+    """The trend and kriging variogram :func:`grid_with_trend` would use, without gridding anything.
+
+    For estimates at a few points (:func:`predict_with_trend`): the same plane
+    and the same variogram choice (``settings.variogram_model``, leave-one-out
+    log score with ``"auto"``) as the grid, none of its cells or cross-validation.
+
+    Parameters
+    ----------
+    x, y, z, s : ndarray (n,)
+        Easting, northing, elevation and its standard error (m).
+    settings : Settings
+        Uses ``trend``, ``neighbours`` and ``variogram_model``.
+    corridor : LineCorridor, optional
+        The data are one line's: the trend slopes only along it.
+
+    Returns
+    -------
+    dict
+        ``trend`` and ``variogram``.
+
+    Raises
+    ------
+    SurfaceError, InversionError
+        As :func:`~.gridding.interpolate_surface` with the same data.
+    """
+    trend = fit_trend(settings, x, y, z, s, None if corridor is None else corridor.unit)
+    kriging = kriging_model(x, y, z - trend(x, y), s, settings.neighbours, settings.variogram_model)
+    return {"trend": trend, "variogram": kriging.variogram_}
 
 
 def predict_with_trend(

@@ -60,3 +60,29 @@ def test_an_error_in_the_parent_stops_the_child(tmp_path):
 def test_no_child_when_asked_not_to(monkeypatch):
     monkeypatch.setenv("ROCKHEAD_NO_FORK", "1")
     assert not fork_is_safe()
+
+
+@needs_fork
+@pytest.mark.skipif(not os.path.exists("/proc/self"), reason="the parent-death signal is Linux's")
+def test_the_child_of_a_killed_run_writes_nothing(tmp_path):
+    """A run killed with SIGKILL leaves no child writing into its staging folder (which the next run removes)."""
+    import signal
+    import time
+
+    target = tmp_path / "late.bin"
+
+    def slow():
+        time.sleep(1.0)
+        return b"late"
+
+    run = os.fork()
+    if run == 0:  # the run: starts its child, then is killed
+        try:
+            BackgroundFiles([(target, slow)], parallel=True)
+            os.kill(os.getpid(), signal.SIGKILL)
+        finally:
+            os._exit(3)
+    _, status = os.waitpid(run, 0)
+    assert os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL
+    time.sleep(2.0)  # longer than the child would take
+    assert not target.exists()
