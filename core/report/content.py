@@ -31,7 +31,7 @@ def build_report(result: RunResult, layers, qc_figures, sections=None, line_figu
 
     ``qc_figures`` maps gather index -> (file name, PNG bytes) of the gathers
     with a QC figure of their own, ``line_figures`` line -> (file name, PNG
-    bytes) of each line's QC figure (drawn here for the lines shown when None).
+    bytes) of each line's QC figure (none when None).
     """
     survey, fit = result.survey, result.fit
     rep = Report(f"Reflector map — {survey.name}")
@@ -481,10 +481,7 @@ def _lines(rep, r, layers, qc_figures, line_figures=None):
             "fit, residuals; gather_figures: by default the flagged gathers, all on request); at most "
             f"{REPORT_MAX_QC_FIGURES} are shown here, the others linked."
         )
-    if line_figures is None:
-        from ..products.outputs import line_qc_figures
-
-        line_figures = {line: (name, png) for line, name, png in line_qc_figures(r, shown)}
+    line_figures = line_figures or {}
     embedded = 0
     lines_of = np.asarray(g.line)
     section = figures.SectionFigure()
