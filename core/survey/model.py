@@ -199,6 +199,7 @@ class Settings:
     cell_size_m: Optional[float] = None  # None: chosen from the data spacing
     max_grid_cells: int = 25_000_000  # largest output grid; beyond it a run refuses (or, cell chosen, coarsens)
     max_distance_m: Optional[float] = None  # None: from the data spacing; farther = nodata
+    max_sigma_m: Optional[float] = None  # joint estimate: map beyond the lines' hull where sigma <= this (m)
     surface_method: str = "auto"  # "auto", "kriging", "spline", "tomography"
     variogram_model: str = "auto"  # "auto" (best cross-validation score), "spherical", "exponential", "gaussian"
     trend: str = "linear"  # "linear": krige the residuals from a fitted plane (regional dip); "none"

@@ -381,6 +381,12 @@ def processing_negative_cell_size(s):
 
 
 @case
+def processing_max_sigma_negative(s):
+    set_toml(s, "processing", "max_sigma_m", "-0.5")
+    return r"^survey\.toml, line 12, field 'processing\.max_sigma_m': value -0\.5 must be > 0"
+
+
+@case
 def processing_bad_choice(s):
     set_toml(s, "processing", "gather", '"shots"')
     return r"^survey\.toml, line 12, field 'processing\.gather': value 'shots' is not one of .*did you mean 'shot'\?"

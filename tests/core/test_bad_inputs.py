@@ -263,6 +263,19 @@ def test_cli_check_accepts_good_cases(case, capsys):
     assert "24 stations" in captured.out
 
 
+PROCESSING_CASES = [c for c in BAD if c.startswith("processing_")]
+
+
+@pytest.mark.parametrize("case", PROCESSING_CASES, ids=PROCESSING_CASES)
+def test_cli_check_refuses_bad_processing_settings(case, capsys):
+    """`rockhead check` refuses a bad [processing] key as a run would: exit 2, the file, line and key named."""
+    main = _cli_main()
+    code = main(["check", str(CORPUS / case / "survey.toml")])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    _assert_one_error_line(err, _expected(case))
+
+
 # one case per file and kind of fault: the process-level contract (exit status, no traceback)
 SUBPROCESS_CASES = [
     "toml_syntax_error",

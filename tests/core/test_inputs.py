@@ -280,6 +280,8 @@ def test_settings_from_toml(tmp_path):
         ("work_crs", '"EPSG:32633"', r"'work_crs' belongs in \[survey\]"),
         ("cell_size", "2.0", r"did you mean 'cell_size_m'\?"),
         ("contour_interval_m", "[1, 2]", r"is list; expected a number"),
+        ("max_sigma_m", "0.0", r"must be > 0"),
+        ("max_sigma_m", '"2 m"', r"is text; expected a number \(leave the key out for the automatic choice\)"),
     ],
     ids=[
         "int_float",
@@ -294,6 +296,8 @@ def test_settings_from_toml(tmp_path):
         "work_crs_misplaced",
         "typo_key",
         "list",
+        "max_sigma_zero",
+        "max_sigma_text",
     ],
 )
 def test_settings_errors(tmp_path, key, value, match):

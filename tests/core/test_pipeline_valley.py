@@ -62,7 +62,8 @@ def valley_lines():
 
 
 @pytest.fixture(scope="module")
-def valley_run(tmp_path_factory):
+def valley_inputs(tmp_path_factory):
+    """The valley's survey folder (stations, picks, survey.toml)."""
     rng = np.random.default_rng(7)
     folder = tmp_path_factory.mktemp("valley")
     model = LayeredModel(TRUTH_GRID, true_nodes()[None], [[V_TRUE, 0.0, 0.0, 0.0]], [[0.0, 0.0, 80.0]])
@@ -85,7 +86,12 @@ def valley_run(tmp_path_factory):
     (folder / "survey.toml").write_text(
         '[survey]\nname = "valley"\ncrs = "EPSG:32633"\n[files]\nstations = "stations.csv"\npicks = "picks.csv"\n'
     )
-    return compute(load_survey(folder / "survey.toml"))
+    return folder
+
+
+@pytest.fixture(scope="module")
+def valley_run(valley_inputs):
+    return compute(load_survey(valley_inputs / "survey.toml"))
 
 
 def _errors(surface):
@@ -140,3 +146,30 @@ def test_joint_estimate_maps_the_valley_with_honest_sigma(valley_run):
     inside = (np.abs(X - E0) <= 100) & (np.abs(Y - N0) <= 100)
     hull = inside & (np.abs(X - E0) <= 45 + 0 * X) & (Y - N0 >= -25) & (Y - N0 <= 30)  # the lines' crossings box
     assert not np.any(r.surface.mask[hull])
+
+
+def test_max_sigma_setting_masks_cells_beyond_the_lines(valley_run, valley_inputs):
+    """``[processing] max_sigma_m``: beyond the lines' subsurface coverage a cell is mapped where its
+    posterior sigma is at most the setting; inside it every cell is (the issue: masking by sigma, not by
+    a fixed distance, and never shrinking the map below the lines' hull)."""
+    default = valley_run.tomography.inversion
+    # half the default limit (the largest sigma inside the lines' subsurface hull), rounded to a centimetre
+    limit = round(0.5 * float(default.max_sigma_m[0]), 2)
+    toml = valley_inputs / "survey_max_sigma.toml"
+    text = (valley_inputs / "survey.toml").read_text()
+    toml.write_text(text + f"[processing]\nmax_sigma_m = {limit}\n")
+    survey = load_survey(toml)
+    assert survey.settings.max_sigma_m == limit
+    r = compute(survey)
+    res = r.tomography.inversion
+    assert res.max_sigma_m[0] == limit
+    sigma, mask = res.sigma_unmasked_m[0], res.mask[0]
+    # the same estimate: only the mask differs (the setting is applied after the fit)
+    assert np.allclose(sigma, default.sigma_unmasked_m[0], rtol=1e-9, atol=1e-9)
+    assert np.all(~mask[sigma <= limit])  # every cell within the limit is mapped
+    assert mask.any() and np.all(sigma[mask] > limit)  # and a cell is left out only where sigma exceeds it
+    assert np.sum(~mask) < np.sum(~default.mask[0])  # a tighter limit than the default maps fewer cells
+    # ... but never fewer than the lines' crossings box, as with the default (the issue's hull rule)
+    X, Y = r.spec.coords()
+    box = (np.abs(X - E0) <= 45) & (Y - N0 >= -25) & (Y - N0 <= 30)
+    assert not np.any(r.surface.mask[box])
