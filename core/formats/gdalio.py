@@ -490,9 +490,21 @@ def write_layers(
     adapter = _adapter(engine_name, f"writing '{path.name}'")
     dmd = {str(k): str(v) for k, v in (dataset_metadata or {}).items()}
     lmd = {k: {str(a): str(b) for a, b in v.items()} for k, v in (layer_metadata or {}).items()}
-    with adapter.config({"OGR_CURRENT_DATE": gdal_timestamp(timestamp)}), _atomic_files(path) as tmp:
+    # SQLite would flush the file to disk at every layer's transaction; it is flushed once, when complete
+    options = {"OGR_CURRENT_DATE": gdal_timestamp(timestamp), "OGR_SQLITE_SYNCHRONOUS": "OFF"}
+    with adapter.config(options), _atomic_files(path) as tmp:
         adapter.write_layers(tmp, prepared, wkt, dmd, lmd, {"VERSION": GPKG_VERSION}, _layer_options)
+        _flush_to_disk(tmp)
     return path
+
+
+def _flush_to_disk(path: Path) -> None:
+    """Flush a finished file to disk before it is renamed into place (the rename never exposes a partial file)."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
 
 
 def _layer_options(lname, layer) -> dict:
