@@ -399,7 +399,8 @@ def _import_matplotlib() -> None:
     import importlib
 
     try:
-        importlib.import_module("matplotlib.backends.backend_agg")
+        for name in ("matplotlib.figure", "matplotlib.backends.backend_agg"):
+            importlib.import_module(name)
     except ImportError:  # said where a figure is drawn (MissingDependencyError)
         pass
 

@@ -355,7 +355,7 @@ def combine_lines(
         ``min_angle_deg`` outside (0, 90] or ``radius_m`` not a distance.
     """
     from scipy.spatial import cKDTree
-    from scipy.stats import chi2 as chi2_dist
+    from scipy.special import gammaincinv
 
     g = gathers.n_gathers
     if not 0.0 < min_angle_deg <= 90.0:
@@ -477,7 +477,10 @@ def combine_lines(
         factor = chi2 / dof if dof > 0 else np.nan
         # inflate only when the cluster's scatter is significantly larger than its stated
         # errors (chi2 above its 95 % quantile: the reflector is not planar across it)
-        inflate = dof > 0 and chi2 > chi2_dist.ppf(0.95, dof)
+        # the 95 % point of the chi-square distribution with dof degrees of freedom, 2 P^-1(dof/2, 0.95)
+        # with P the regularised lower incomplete gamma function (as scipy.stats.chi2.ppf computes it,
+        # without importing scipy.stats: 0.4 s)
+        inflate = dof > 0 and chi2 > 2.0 * gammaincinv(dof / 2.0, 0.95)
         cov = (factor if inflate else 1.0) * np.linalg.inv(nmat)
         out["variance_factor"][k] = factor
         out["normal_h"][k] = nh
