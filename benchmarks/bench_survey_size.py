@@ -7,8 +7,9 @@ homogeneous overburden (1800 m/s), times from the exact image-source model
 2 m apart, a shot every 4 m, 48 receivers split about each shot. The survey is
 written as CSV files and run by the command line in a child process, limited
 to ``--memory-gib`` of address space (``ulimit -v``, the memory bound of the
-brief) and ``--timeout-s`` of wall time; its peak resident memory comes from
-``getrusage(RUSAGE_CHILDREN)``.
+brief) and ``--timeout-s`` of wall time; its processor time and peak resident
+memory are that child's own (``os.wait4``), its wall time is printed beside
+the machine's load average (other jobs share the cores).
 
 Usage::
 
@@ -108,6 +109,11 @@ def write_survey(folder: Path, n_picks: int, seed: int = 1) -> tuple[Path, int]:
 
 
 def run_one(toml: Path, out: Path, memory_gib: float, timeout_s: float) -> dict:
+    """Run ``rockhead run`` in a child process; its own wall time, processor time and peak memory.
+
+    The child's resource usage comes from ``os.wait4`` (that child alone,
+    not every child so far); the load average is read before and after.
+    """
     env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
     link = Path(tempfile.mkdtemp(prefix="rh-size-"))
     os.symlink(ROOT, link / "rockhead")
@@ -117,31 +123,47 @@ def run_one(toml: Path, out: Path, memory_gib: float, timeout_s: float) -> dict:
     def limit_memory():
         resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
 
+    load0 = load_average()
     t0 = time.perf_counter()
-    try:
-        proc = subprocess.run(
+    with tempfile.TemporaryFile() as err_file:
+        proc = subprocess.Popen(
             [sys.executable, "-m", "rockhead.core.cli", "run", str(toml), "--out", str(out)],
-            capture_output=True,
-            text=True,
+            stdout=subprocess.DEVNULL,
+            stderr=err_file,
             env=env,
-            timeout=timeout_s,
             preexec_fn=limit_memory,
         )
-        code, err = proc.returncode, proc.stderr
-    except subprocess.TimeoutExpired as exc:
-        code, err = "timeout", (exc.stderr or b"").decode(errors="replace") if isinstance(exc.stderr, bytes) else ""
-    wall = time.perf_counter() - t0
-    rss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 2**20  # KiB -> GiB
+        code: object = None
+        usage = None
+        while code is None:
+            pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
+            if pid:
+                code = os.waitstatus_to_exitcode(status)
+                break
+            if time.perf_counter() - t0 > timeout_s:
+                proc.kill()
+                _, _, usage = os.wait4(proc.pid, 0)
+                code = "timeout"
+                break
+            time.sleep(0.2)
+        proc.returncode = -1  # reaped above: keep Popen from waiting again
+        wall = time.perf_counter() - t0
+        err_file.seek(0)
+        err = err_file.read().decode("utf-8", errors="replace")
     report = out / "report.html"
     files = sum(1 for p in out.rglob("*") if p.is_file()) if out.is_dir() else 0
     last = [ln for ln in err.splitlines() if ln.strip()][-1:] if err else []
     return {
         "code": code,
         "wall_s": wall,
-        "rss_gib": rss,
+        "cpu_s": (usage.ru_utime + usage.ru_stime) if usage is not None else float("nan"),
+        "rss_gib": (usage.ru_maxrss / 2**20) if usage is not None else float("nan"),  # KiB -> GiB
         "files": files,
         "report_mib": report.stat().st_size / 2**20 if report.is_file() else float("nan"),
+        "out_mib": sum(p.stat().st_size for p in out.rglob("*") if p.is_file()) / 2**20 if out.is_dir() else 0.0,
         "last": last[0] if last else "",
+        "load": f"{load0} / {load_average()}",
+        "stderr": err,
     }
 
 
@@ -162,10 +184,12 @@ def main() -> None:
         r = run_one(toml, base / f"out_{n}", args.memory_gib, args.timeout_s)
         rows.append((written, gen, r))
         print(
-            f"{written:>9} picks: exit {r['code']}, {r['wall_s']:.0f} s, peak {r['rss_gib']:.2f} GiB, "
-            f"{r['files']} files, report {r['report_mib']:.2f} MiB; {r['last'][:160]}",
+            f"{written:>9} picks: exit {r['code']}, wall {r['wall_s']:.0f} s, CPU {r['cpu_s']:.0f} s, peak "
+            f"{r['rss_gib']:.2f} GiB, {r['files']} files ({r['out_mib']:.0f} MiB), report {r['report_mib']:.2f} MiB, "
+            f"load {r['load']}; {r['last'][:160]}",
             flush=True,
         )
+        (base / f"stderr_{n}.txt").write_text(r["stderr"], encoding="utf-8")
     if args.no_append:
         return
     stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
@@ -175,14 +199,15 @@ def main() -> None:
         f"(other jobs share the machine). `rockhead run` in a child process limited to {args.memory_gib:g} GiB of "
         f"address space and {args.timeout_s:g} s; parallel 400 m lines 20 m apart and one crossing line in eight, a "
         "shot every 4 m into 48 receivers, plane reflector 20-30 m deep.\n",
-        "| picks | exit | wall time (s) | peak RSS (GiB) | files | report.html (MiB) | last message |",
-        "|---:|---|---:|---:|---:|---:|---|",
+        "| picks | exit | wall time (s) | CPU time (s) | load average (start / end) | peak RSS (GiB) | files | "
+        "outputs (MiB) | report.html (MiB) | last message |",
+        "|---:|---|---:|---:|---|---:|---:|---:|---:|---|",
     ]
     for written, _gen, r in rows:
         msg = r["last"].replace("|", "/")[:140]
         lines.append(
-            f"| {written:,} | {r['code']} | {r['wall_s']:.0f} | {r['rss_gib']:.2f} | {r['files']} | "
-            f"{r['report_mib']:.2f} | {msg} |"
+            f"| {written:,} | {r['code']} | {r['wall_s']:.0f} | {r['cpu_s']:.0f} | {r['load']} | {r['rss_gib']:.2f} | "
+            f"{r['files']} | {r['out_mib']:.0f} | {r['report_mib']:.2f} | {msg} |"
         )
     with open(HERE / "RESULTS.md", "a", encoding="utf-8") as fh:
         fh.write("\n".join(lines) + "\n")
