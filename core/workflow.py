@@ -180,7 +180,12 @@ def single_line_corridor(fit: FitStep, settings):
     pts = fit.points
     ok = (pts.status == "ok") & pts.finite & (np.asarray(pts.reflector).astype(str) == str(settings.reflector))
     return line_corridor(
-        pts.x_m[ok], pts.y_m[ok], settings.line_corridor_m, pts.depth_m[ok], settings.line_cross_dip_deg
+        pts.x_m[ok],
+        pts.y_m[ok],
+        settings.line_corridor_m,
+        pts.depth_m[ok],
+        settings.line_cross_dip_deg,
+        line=np.asarray(pts.line)[ok],
     )
 
 

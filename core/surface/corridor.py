@@ -80,13 +80,17 @@ def line_corridor(
     width_m: Optional[float],
     depth_m: Optional[ArrayLike] = None,
     cross_dip_deg: float = 10.0,
+    line: Optional[ArrayLike] = None,
 ) -> Optional[LineCorridor]:
     """The corridor of the points when they lie along one straight line, else None.
 
     The points are one straight line when their largest distance from their
     principal axis is at most :data:`STRAIGHTNESS` times their extent along
     it (two lines, a crossing, an L-shaped line or parallel lines further
-    apart than that carry cross-line information).
+    apart than that carry cross-line information). Points of two or more
+    lines (``line`` labels) count as one line only if the corridor holds
+    them all: parallel lines of a long, narrow survey are far less than 10 %
+    of its length apart, yet each lies well outside the others' corridor.
 
     Parameters
     ----------
@@ -100,6 +104,8 @@ def line_corridor(
         Reflector depth below ground at the points (m), for the default width.
     cross_dip_deg : float
         Cross-line dip assumed possible (degrees), see :class:`LineCorridor`.
+    line : array_like (n,), optional
+        Line label of each point.
 
     Returns
     -------
@@ -116,6 +122,14 @@ def line_corridor(
     >>> [round(float(v), 3) + 0.0 for v in c.unit], c.width_m
     ([1.0, 0.0], 8.0)
     >>> line_corridor([0.0, 10.0, 0.0], [0.0, 0.0, 10.0], 8.0) is None
+    True
+
+    Two parallel lines 1 km long and 60 m apart: within 10 % of the length of
+    each other, but each 30 m from the axis, outside an 8 m corridor:
+
+    >>> x = np.r_[np.arange(0.0, 1001.0, 10.0), np.arange(0.0, 1001.0, 10.0)]
+    >>> y = np.r_[np.zeros(101), np.full(101, 60.0)]
+    >>> line_corridor(x, y, 8.0, line=["A"] * 101 + ["B"] * 101) is None
     True
     """
     xy = np.column_stack([np.asarray(x_m, float), np.asarray(y_m, float)])
@@ -140,4 +154,7 @@ def line_corridor(
                 "set [processing] line_corridor_m"
             )
         width_m = float(np.median(d))
+    if line is not None and len(np.unique(np.asarray(line).astype(str))) > 1:
+        if float(np.max(np.abs(across))) > 0.5 * float(width_m):
+            return None
     return LineCorridor(xy, unit + 0.0, float(width_m), float(cross_dip_deg))

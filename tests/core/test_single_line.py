@@ -79,3 +79,21 @@ def test_crossing_lines_are_not_a_corridor(tmp_path):
     r = compute(load_survey(write_site(tmp_path, site)), method="kriging")
     assert r.corridor is None
     assert not any("cross-line dip is unknown" in n for n in r.notes)
+
+
+def test_parallel_lines_of_a_long_narrow_survey_are_not_a_corridor(tmp_path):
+    # three parallel north-south lines 320 m long, 12 m apart over a reflector 20 m deep: the spread
+    # across them (12 m either side of the middle one) is within 10 % of their length, yet each
+    # outer line lies outside a corridor of half the depth about the axis; the lines carry the
+    # cross-line dip and must be mapped as a surface
+    lines = [(f"L{i}", (12.0 * (i - 1), 0.0), 0.0, 161) for i in range(3)]
+    site = PlaneSite(depth_m=20.0, lines=lines)
+    r = compute(load_survey(write_site(tmp_path, site)), method="kriging")
+    assert r.corridor is None
+    assert not any("cross-line dip is unknown" in n for n in r.notes)
+    # the same points under one line label stay the corridor of a single line (as before)
+    from rockhead.core.surface.corridor import line_corridor
+
+    pts = r.fit.points
+    ok = np.isfinite(pts.x_m) & np.isfinite(pts.y_m)
+    assert line_corridor(pts.x_m[ok], pts.y_m[ok], None, pts.depth_m[ok]) is not None
