@@ -429,6 +429,10 @@ def _pick_edits(rep, survey, fit):
 #: to their files in qc/; every fit is in csv/shots.csv and the GeoPackage).
 REPORT_MAX_LINES = 30
 REPORT_MAX_QC_FIGURES = 60
+#: ... and the figures of the lines embedded in it stay within this many bytes (PNG; about 4 MB once
+#: encoded in the page): the figures beyond are linked to their files in qc/ (a line's section figure,
+#: which has no file of its own, is then left to its section sheet).
+REPORT_MAX_LINE_FIGURE_BYTES = 3 * 2**20
 
 
 def _report_lines(r, names_sorted):
@@ -483,15 +487,35 @@ def _lines(rep, r, layers, qc_figures, line_figures=None):
         )
     line_figures = line_figures or {}
     embedded = 0
+    budget = [REPORT_MAX_LINE_FIGURE_BYTES]  # bytes of line figures still to embed
+    noted = []
+
+    def fits(image):
+        if len(image) <= budget[0]:
+            budget[0] -= len(image)
+            return True
+        if not noted:
+            rep.paragraph(
+                f"The line figures of this report are limited to {REPORT_MAX_LINE_FIGURE_BYTES / 2**20:.0f} MB; "
+                "from here on they are linked to their files in qc/ (sections: the section sheets)."
+            )
+            noted.append(True)
+        return False
+
     lines_of = np.asarray(g.line)
     section = figures.SectionFigure()
     for line in shown:
         frame = fit.frames[line]
         rep.heading(f"Line {line} (azimuth {frame.azimuth_deg:.0f}°, {frame.length_m:.0f} m)", level=3)
-        rep.figure(_section_png(section, r, line), f"section of line {line}")
+        png = _section_png(section, r, line) if budget[0] > 0 else b""
+        if png and fits(png):
+            rep.figure(png, f"section of line {line}")
         if line in line_figures:
             name, image = line_figures[line]
-            rep.figure(image, f"QC of the gathers of line {line} (qc/{name})")
+            if fits(image):
+                rep.figure(image, f"QC of the gathers of line {line} (qc/{name})")
+            else:
+                rep.link(f"qc/{name}", f"QC of the gathers of line {line} (qc/{name})")
         sel = np.flatnonzero(lines_of == line)
         rep.table(
             {n: [shots.fields[n][i] for i in sel] for n in names},
@@ -501,7 +525,7 @@ def _lines(rep, r, layers, qc_figures, line_figures=None):
         for i in sel:
             if i in qc_figures:
                 name, image = qc_figures[i]
-                if embedded < REPORT_MAX_QC_FIGURES:
+                if embedded < REPORT_MAX_QC_FIGURES and fits(image):
                     rep.figure(
                         image,
                         f"QC of line {line} shot {g.shot[i]}",

@@ -80,3 +80,28 @@ def test_joint_inversion_size_limits(picks, nx, ny, fine):
     assert (reason is None) == fine
     if not fine:
         assert "stated limit" in reason
+
+
+def test_report_line_figures_stay_within_their_byte_limit(tmp_path, monkeypatch):
+    # two crossing lines, each with a line QC figure of 1 MB: with a limit of 1.5 MB the first line's
+    # figures are embedded, the second line's QC figure is linked to its file instead
+    from plane_site import PlaneSite, write_site
+    from rockhead.core.products.outputs import result_layers
+    from rockhead.core.survey.config import load_survey
+    from rockhead.core.workflow import compute
+
+    site = PlaneSite(lines=[("A", (0.0, 0.0), 0.0, 49), ("B", (0.0, 0.0), 90.0, 49)])
+    r = compute(load_survey(write_site(tmp_path, site)), method="kriging")
+    big = b"\x89PNG\r\n\x1a\n" + bytes(2**20)
+    line_figures = {line: (f"line_{line}.png", big) for line in ("A", "B")}
+    monkeypatch.setattr(content, "REPORT_MAX_LINE_FIGURE_BYTES", int(1.5 * 2**20))
+    text = content.build_report(r, result_layers(r), {}, line_figures=line_figures)
+    assert text.count('alt="QC of the gathers of line A') == 1
+    assert 'alt="QC of the gathers of line B' not in text
+    assert 'href="qc/line_B.png"' in text
+    # base64 makes 4 bytes of 3: the page holds one 1 MB figure, not two
+    assert len(text) < 1.34 * 1.5 * 2**20 + 2**20
+    # without the limit both are embedded (as the sample's report always is: 0.9 MB of figures)
+    monkeypatch.setattr(content, "REPORT_MAX_LINE_FIGURE_BYTES", 4 * 2**20)
+    text = content.build_report(r, result_layers(r), {}, line_figures=line_figures)
+    assert text.count('alt="QC of the gathers of line ') == 2
