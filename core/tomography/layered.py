@@ -58,6 +58,7 @@ from ..errors import InversionError
 from ..grid import GridSpec
 from ..progress import NullProgress, check_cancel
 from ..surface.threads import SingleThreadedBlas
+from .averaging import model_choice_variance
 from .evidence import tune_priors
 from .nodes import interface_values, node_weights
 from .prior import fit_matern, matern_precision, robust_plane_fit
@@ -278,6 +279,8 @@ class LayeredEstimate:
     average_velocity_m_s : (K, ny, nx) vertical-average velocity from the ground
         to each interface (NaN without a ground model or where masked)
     iterations, converged, misfit_history : Gauss-Newton diagnostics (all stages)
+    model_sigma_m : (K, ny, nx) the velocity-model choice's share of sigma (m; included in ``sigma_m``;
+        None when the model was given, not chosen)
     chi2_reduced : weighted misfit per used pick at the optimum (with the original sigmas)
     sigma_scale : factor applied to the pick sigmas (>= 1)
     notes : tuple of str
@@ -315,6 +318,7 @@ class LayeredEstimate:
     sigma_scale: float
     notes: tuple = ()
     method: str = METHOD_NAME
+    model_sigma_m: np.ndarray | None = None
 
     status_text = STATUS_TEXT
 
@@ -738,6 +742,14 @@ def _estimate(
     z_nodes = node_elevations(layout, state.u, state.beta)
     elev = np.stack([interface_values(z_nodes[k], node_spec, cx, cy) for k in range(K)])
     sig_cells = np.stack([post.elevation_sigma(k, cx, cy).reshape(spec.shape) for k in range(K)])
+    # the velocity-model choice's share: the spread of the probable other models (BIC weights, .averaging)
+    model_var = np.zeros_like(sig_cells)
+    models: list = []
+    if choice is not None:
+        gn = {k: v for k, v in kw.items() if k != "progress"}
+        model_var, models = model_choice_variance(layout_for, data, state, choice, cx, cy, scale, progress, **gn)
+        model_var = model_var.reshape(sig_cells.shape)
+        sig_cells = np.sqrt(sig_cells**2 + model_var)
     mid = 0.5 * (S[pick, :2] + R[pick, :2])
     hull = _hull_cells(spec, mid[state.paths.valid])
     limits = np.empty(K)
@@ -801,6 +813,10 @@ def _estimate(
         notes.append(f"{n_nm} picks could not be modelled ({why}); they are flagged, not used")
     if scale > 1.0:
         notes.append(f"pick errors multiplied by {scale:.2f} (reduced chi-square {chi2:.2f} with the stated errors)")
+    if len(models) > 1:
+        share = ", ".join(f"{'/'.join(c)} {w:.2f}" for c, w in models)
+        most = ", ".join(f"{names[k]} up to {np.sqrt(np.max(model_var[k])):.2f} m" for k in range(K))
+        notes.append(f"sigma includes the velocity-model choice (BIC weights {share}): {most}")
     converged = hist_all[-1].converged  # the stages before only start the next one
     misfit = np.concatenate([np.asarray(h.misfit_history) for h in hist_all])
     progress.set_progress(100.0)
@@ -835,6 +851,7 @@ def _estimate(
         chi2_reduced=float(chi2),
         sigma_scale=float(scale),
         notes=tuple(notes),
+        model_sigma_m=np.sqrt(model_var) if choice is not None else None,
     )
 
 

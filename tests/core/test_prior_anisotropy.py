@@ -116,3 +116,15 @@ def test_the_evidence_is_the_exact_marginal_likelihood_of_linear_data():
 
     # the evidence leaves out the data's own normalising constant -n/2 ln(2 pi) (the same for every prior)
     assert Lin().log_evidence([pr]) - 15 * math.log(2 * math.pi) == pytest.approx(want, rel=1e-9)
+
+
+def test_bic_weights_are_the_softmax_of_minus_half_bic():
+    """Posterior model probabilities from BIC (Kass & Raftery 1995): exp(-BIC/2), normalised; scipy's softmax."""
+    from rockhead.core.tomography.averaging import bic_weights
+    from scipy.special import softmax
+
+    bic = np.array([61.4, 65.3, 71.2, 76.1, 1200.0])
+    assert bic_weights(bic) == pytest.approx(softmax(-0.5 * bic), rel=1e-12, abs=1e-300)
+    # a BIC lower by 6 ("strong" evidence) is 20 times more probable
+    w = bic_weights([0.0, 6.0])
+    assert w[0] / w[1] == pytest.approx(math.exp(3.0))
