@@ -746,7 +746,7 @@ def _estimate(
     model_var = np.zeros_like(sig_cells)
     models: list = []
     if choice is not None:
-        gn = {k: v for k, v in kw.items() if k != "progress"}
+        gn = {k: v for k, v in kw_rough.items() if k != "progress"}  # a spread needs no exact optimum
         model_var, models = model_choice_variance(layout_for, data, state, choice, cx, cy, scale, progress, **gn)
         model_var = model_var.reshape(sig_cells.shape)
         sig_cells = np.sqrt(sig_cells**2 + model_var)
