@@ -267,6 +267,8 @@ def _surface(rep, r):
             "uncertainty of the velocities (velocity and depth trade off: 1 % of velocity is about 1 % of depth)."
         )
         rep.items([(f"layer {j + 1}", text) for j, text in enumerate(res.layer_text())])
+        # each interface's prior: how its sill, range, anisotropy and smoothness were chosen
+        rep.items([(f"prior of {name}", str(p.source)) for name, p in zip(res.names, res.priors)])
         if res.choice is not None:
             rep.paragraph(
                 "Velocity model of each layer chosen by the Bayesian information criterion: "
@@ -488,7 +490,7 @@ def _lines(rep, r, layers, qc_figures, line_figures=None):
     line_figures = line_figures or {}
     embedded = 0
     budget = [REPORT_MAX_LINE_FIGURE_BYTES]  # bytes of line figures still to embed
-    noted = []
+    noted: list = []
 
     def fits(image):
         if len(image) <= budget[0]:
