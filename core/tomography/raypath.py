@@ -337,7 +337,12 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             )[:, None, :]
         else:
             step = np.empty((na, 2 * m))
-            pd, _ = _batched_cholesky(H - 1e-3 * floor[:, None, None] * np.eye(2 * m))
+            shifted = H - 1e-3 * floor[:, None, None] * np.eye(2 * m)
+            try:  # usually every path is near its minimum: one LAPACK call decides for all
+                np.linalg.cholesky(shifted)
+                pd = np.ones(na, bool)
+            except np.linalg.LinAlgError:
+                pd, _ = _batched_cholesky(shifted)
             if pd.any():  # positive definite: the Newton step itself (quadratic convergence)
                 step[pd] = -np.linalg.solve(H[pd], gflat[pd][..., None])[..., 0]
             if (~pd).any():  # the others (far from a minimum): lift their spectrum to the floor
