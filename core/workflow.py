@@ -65,15 +65,20 @@ SURFACE_METHODS = ("auto", "kriging", "spline", "tomography")
 __all__ = ["SURFACE_METHODS", "compute", "fit_step"]
 
 
-def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=None) -> FitStep:
+def fit_step(survey, progress=None, exclude=None, cross_component=None, ground=None, previous=None) -> FitStep:
     """Fit every gather of the survey and place its reflector points in 3D.
 
     Picks excluded by the survey's pick edits are left out (and reported as
-    excluded), besides those of ``exclude`` (per gather-set pick).
+    excluded), besides those of ``exclude`` (per gather-set pick). A refit of
+    the same survey (``previous``, a :class:`FitStep` of it) reuses its line
+    frames and gathers, which depend on the survey alone.
     """
     progress = progress or NullProgress()
-    frames = line_frames(survey.stations, path=survey.files.get("stations"))
-    gathers = build_gathers(survey, frames=frames)
+    if previous is not None:
+        frames, gathers = previous.frames, previous.gathers
+    else:
+        frames = line_frames(survey.stations, path=survey.files.get("stations"))
+        gathers = build_gathers(survey, frames=frames)
     check_cancel(progress)
     edited = survey.excluded_picks[gathers.pick_index]
     if np.any(edited):
@@ -219,7 +224,7 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
         q = surface_cross_components(work, surf.z, fit.gathers, fit.points.x_m, fit.points.y_m)
         mapped = np.asarray(fit.gathers.reflector).astype(str) == str(survey.settings.reflector)
         q = np.where(np.isfinite(q) & mapped, q, 0.0)
-        fit = fit_step(survey, cross_component=q, ground=ground, exclude=fit.fits.excluded)
+        fit = fit_step(survey, cross_component=q, ground=ground, exclude=fit.fits.excluded, previous=fit)
         new, diag = interpolate_step(
             fit.points, work, survey.settings, method, progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it)
         )
