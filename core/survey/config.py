@@ -78,6 +78,7 @@ _MINIMUM = {
     "neighbours": 3,
     "index_contour_every": 1,
     "max_grid_cells": 1000,
+    "max_picks": 1,
     "default_sigma_ms": MIN_SIGMA_MS,
     "borehole_sigma_m": MIN_SIGMA_M,
 }
@@ -517,6 +518,35 @@ def _file_value(toml: _Toml, key: str, value: Any, required: bool, confine_to: O
     return resolved
 
 
+#: Peak memory of a whole run per million picks (GiB), measured by benchmarks/bench_survey_size.py.
+PICK_MEMORY_GIB_PER_MILLION = 2.0
+
+
+def count_data_rows(path: Union[str, Path], limit: int) -> int:
+    """Data rows of a CSV file (header, blank and '#' comment lines not counted), read in 1 MiB blocks.
+
+    Counting stops being exact above ``limit``: the lines are counted first
+    (a cheap upper bound) and only a file over the limit is counted row by
+    row, so that comments cannot push it over. No row is parsed.
+    """
+    lines = 0
+    last = b"\n"
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            lines += block.count(b"\n")
+            last = block[-1:]
+    lines += last != b"\n"  # a last line without its newline
+    if lines - 1 <= limit:
+        return max(lines - 1, 0)
+    rows = -1  # the header
+    with open(path, "rb") as fh:
+        for line in fh:
+            text = line.strip()
+            if text and not text.startswith(b"#"):
+                rows += 1
+    return max(rows, 0)
+
+
 def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) -> Survey:
     """Read survey.toml and every file it names into a :class:`core.model.Survey`.
 
@@ -604,6 +634,15 @@ def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) ->
     except GeoreferenceError as exc:
         raise toml.error("survey", "crs", f"{exc}") from exc
     stations = rows.stations(*to_working_crs(rows.table, rows.x, rows.y, crs_in, crs_work))
+    n_rows = count_data_rows(paths["picks"], settings.max_picks)
+    if n_rows > settings.max_picks:
+        raise toml.error(
+            "processing",
+            "max_picks",
+            f"{paths['picks'].name} has {n_rows:,} picks, more than max_picks = {settings.max_picks:,} (a run needs "
+            f"about {PICK_MEMORY_GIB_PER_MILLION * n_rows / 1e6:.0f} GiB of memory at that size); split the survey, "
+            "or raise [processing] max_picks on a machine with the memory",
+        )
     picks = read_picks(paths["picks"], settings.default_sigma_ms, stations)
     check_layers(settings, picks, toml.path, toml.text)
     if "pick_edits" not in paths and (toml.path.parent / EDITS_FILE_NAME).is_file():

@@ -997,6 +997,17 @@ def processing_grid_too_many_cells(s):
     )
 
 
+@case
+def processing_too_many_picks(s):
+    # refused before a pick is parsed: the rows are counted, not read
+    set_toml(s, "processing", "max_picks", "50")
+    return (
+        r"^survey\.toml, line 12, field 'processing\.max_picks': picks\.csv has [\d,]+ picks, more than "
+        r"max_picks = 50 \(a run needs about \d+ GiB of memory at that size\); split the survey, or raise "
+        r"\[processing\] max_picks"
+    )
+
+
 # ----------------------------------------------------------------- hand-off settings ([design], [sections])
 
 AXIS_CSV = "x,y\n499970.000,5499990.000\n500030.000,5500010.000\n"

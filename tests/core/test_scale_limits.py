@@ -105,3 +105,12 @@ def test_report_line_figures_stay_within_their_byte_limit(tmp_path, monkeypatch)
     monkeypatch.setattr(content, "REPORT_MAX_LINE_FIGURE_BYTES", 4 * 2**20)
     text = content.build_report(r, result_layers(r), {}, line_figures=line_figures)
     assert text.count('alt="QC of the gathers of line ') == 2
+
+
+def test_pick_rows_are_counted_without_parsing(tmp_path):
+    from rockhead.core.survey.config import count_data_rows
+
+    p = tmp_path / "picks.csv"
+    p.write_bytes(b"line,shot,receiver,time_ms\n# a comment\nA,1,2,10\n\nA,1,3,11\nA,1,4,12")  # no last newline
+    assert count_data_rows(p, limit=10) == 5  # under the limit: 6 lines less the header (an upper bound)
+    assert count_data_rows(p, limit=2) == 3  # over it: counted row by row, comments and blank lines left out
