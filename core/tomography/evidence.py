@@ -157,14 +157,15 @@ def _prior_of(x, base: MaternPrior, nu: int, lo, hi, min_minor_m: float) -> Mate
     return MaternPrior(float(np.exp(ls)), float(np.exp(lr)), base.nugget_m2, "", nu, ratio, az)
 
 
-def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, progress=None, max_evaluations=30):
+def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, progress=None, max_evaluations=20):
     """Most probable sill, range, anisotropy and smoothness of each interface's prior (see the module notes).
 
     For each interface in turn (the others held at their current priors) the
     log evidence is maximised by Nelder-Mead in stages: (1) an isotropic
     prior, over (ln sigma, ln range); (2) an anisotropic one, over (ln sigma,
-    ln range, anisotropy vector), started from the best of four directions
-    with a ratio of 3, kept only when it raises the log evidence by more than
+    ln range, anisotropy vector), started from the best of eight probes (the
+    correlation stretched 3 or 8 times along one of four directions, the
+    range across it kept), kept only when it raises the log evidence by more than
     :data:`STRONG` (two more hyperparameters need strong evidence); (3) the
     other smoothness, searched further when it is more probable there.
     ``max_evaluations`` bounds each Nelder-Mead search.
@@ -224,10 +225,12 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
         x0 = np.r_[np.clip(np.log([cur.sigma_m, cur.range_m]), lo_k, hi), 0.0, 0.0]
         # (1) isotropic
         val, x = search(x0, nu, max_evaluations, free=2)
-        # (2) anisotropic, on strong evidence only
-        step = math.log(3.0)
+        # (2) anisotropic, on strong evidence only: probes that stretch the correlation along one of four
+        # directions by 3 and by 8, the range across it kept, then a search from the most probable
         starts = [
-            x + np.r_[0.0, 0.0, step * math.cos(ang), step * math.sin(ang)] for ang in np.radians([0, 90, 180, 270])
+            x + np.r_[0.0, 0.5 * step, step * math.cos(ang), step * math.sin(ang)]
+            for step in (math.log(3.0), math.log(MAX_RATIO))
+            for ang in np.radians([0, 90, 180, 270])
         ]
         vals = [value(s, nu) for s in starts]
         if max(vals) > val:
