@@ -219,10 +219,10 @@ class GatherFigure:
                 handlelength=1.6,
                 columnspacing=1.2,
             )
-        else:  # the key inside t-x, below the apex of the time-down curve, where there are no picks
+        else:  # the key inside t-x, where it hides the fewest picks (one figure, redrawn on demand)
             self.title = ax_tx.set_title("", fontsize=_FONT + 1, fontweight="bold", loc="left")
             self.params = fig.text(0.0, 0.0, "", visible=False)
-            self.key = ax_tx.legend(handles, labels, loc="lower center", ncol=2, fontsize=_FONT - 1, framealpha=0.85)
+            self.key = ax_tx.legend(handles, labels, loc="best", ncol=2, fontsize=_FONT - 1, framealpha=0.85)
         for t in (self.title, self.params, *self.key.get_texts()):
             t.set_parse_math(False)
 
