@@ -409,6 +409,17 @@ class RunFolder:
         """'PID n' of the killed run whose stale lock this run took over ('' when none)."""
         return self._lock.previous_owner if self._lock is not None else ""
 
+    def lock_descriptors(self) -> List[int]:
+        """The open file descriptors of the folder's lock (none when not open).
+
+        A process forked while the folder is open inherits them, and with them
+        the operating-system lock: such a child must close them, so that the
+        lock dies with the run that took it (a killed run's child would
+        otherwise hold the folder for a moment longer).
+        """
+        fd = self._lock._fd if self._lock is not None else None
+        return [] if fd is None else [fd]
+
     # -- checks ------------------------------------------------------------
 
     def _inputs_within(self, *outputs: Path) -> List[Tuple[str, Path]]:

@@ -66,6 +66,9 @@ class BackgroundFiles:
         Where to write, and the function that makes the bytes.
     parallel : bool, optional
         Use a child process; default :func:`fork_is_safe`.
+    close_in_child : sequence of int
+        File descriptors the child closes first (an inherited lock must die
+        with the process that took it).
 
     Examples
     --------
@@ -77,8 +80,9 @@ class BackgroundFiles:
     b'drawn'
     """
 
-    def __init__(self, jobs: Sequence[Job], parallel: Optional[bool] = None):
+    def __init__(self, jobs: Sequence[Job], parallel: Optional[bool] = None, close_in_child: Sequence[int] = ()):
         self.jobs: List[Job] = list(jobs)
+        self.close_in_child = tuple(close_in_child)
         self.pid: Optional[int] = None
         self.in_child = False
         self._read_fd: Optional[int] = None
@@ -95,6 +99,8 @@ class BackgroundFiles:
             code = 1
             try:
                 os.close(read_fd)
+                for fd in self.close_in_child:
+                    os.close(fd)
                 _die_with(parent)
                 for path, make in self.jobs:
                     data = make()

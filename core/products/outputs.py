@@ -417,7 +417,7 @@ def _write_all(result, folder: RunFolder, progress, gather_figures) -> list:
     if parallel:  # matplotlib imported once, for both processes
         _import_matplotlib()
     # the printed sheets are drawn in a child process, where there is a core for it, while this one writes the rest
-    with BackgroundFiles(sheets, parallel=parallel):
+    with BackgroundFiles(sheets, parallel=parallel, close_in_child=folder.lock_descriptors()):
         _stage_map(folder, result, layers, progress)
         write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
         progress.set_progress(25)

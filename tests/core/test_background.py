@@ -86,3 +86,27 @@ def test_the_child_of_a_killed_run_writes_nothing(tmp_path):
     assert os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL
     time.sleep(2.0)  # longer than the child would take
     assert not target.exists()
+
+
+@needs_fork
+def test_the_child_lets_go_of_the_run_folders_lock(tmp_path):
+    """The folder's lock (flock) is shared with a forked child: the child closes it, so it dies with the run."""
+    from rockhead.core.formats.runfolder import RunFolder
+
+    with RunFolder(tmp_path / "out", {}) as folder:
+        (fd,) = folder.lock_descriptors()
+
+        def lock_in_child():
+            try:
+                os.fstat(fd)
+            except OSError:
+                return b"closed"
+            return b"open"
+
+        target = folder.path("state.txt")
+        with BackgroundFiles([(target, lock_in_child)], parallel=True, close_in_child=folder.lock_descriptors()):
+            pass
+        assert target.read_bytes() == b"closed"
+        os.fstat(fd)  # still open here: the run keeps its lock
+        folder.commit()
+    assert folder.lock_descriptors() == []

@@ -124,6 +124,9 @@ def _in_child(action) -> int:
         try:
             action()
         except BaseException:  # reported through the exit code only
+            import traceback
+
+            traceback.print_exc()
             code = 3
         finally:
             os._exit(code)

@@ -113,16 +113,16 @@ def test_html_escapes_labels():
 @pytest.mark.slow
 def test_whole_run_with_hostile_labels(tmp_path, capsys):
     """Mathtext line labels, names equal once sanitised or case-folded, a 300-character label,
-    a survey name with a terminal escape and a newline: the run succeeds, one figure per gather."""
+    a survey name with a terminal escape and a newline: the run succeeds, one figure per line and per gather."""
     lines = (r"$\foo{$", "A B", "A_B", "a_b", "L" * 300)
     toml = write_small_survey(tmp_path / "in", name="Site\\u001b[31m red\\nsecond", lines=lines, shots=(4, 20, 36))
-    code = cli.main(["run", str(toml), "--out", str(tmp_path / "out")])
+    code = cli.main(["run", str(toml), "--out", str(tmp_path / "out"), "--gather-figures", "all"])
     out = capsys.readouterr()
     assert code == 0, out.err
     assert "\x1b" not in out.out + out.err
     assert out.out.splitlines()[0].startswith("Site\\x1b[31m red\\nsecond: 15 gathers fitted")
     pngs = sorted(p.name for p in (tmp_path / "out" / "qc").iterdir())
-    assert len(pngs) == 15 and len({p.casefold() for p in pngs}) == 15
+    assert len(pngs) == 15 + 5 and len({p.casefold() for p in pngs}) == 15 + 5  # 15 gathers, 5 lines
     assert all(len(p.encode()) < 200 for p in pngs)
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
     assert r"$\foo{$" in html  # the label is shown as written
@@ -131,7 +131,7 @@ def test_whole_run_with_hostile_labels(tmp_path, capsys):
 @pytest.mark.slow
 def test_write_outputs_refuses_nothing_for_case_only_differences(tmp_path):
     toml = write_small_survey(tmp_path / "in", lines=("A", "a", "B"), shots=(4, 12, 20, 28, 36))
-    result = job.run(toml, tmp_path / "out")
+    result = job.run(toml, tmp_path / "out", gather_figures="all")
     names = [p.name for p in (tmp_path / "out" / "qc").iterdir()]
-    assert len(names) == 15 and len({n.casefold() for n in names}) == 15
+    assert len(names) == 15 + 3 and len({n.casefold() for n in names}) == 15 + 3  # 15 gathers, 3 lines
     assert len(result.outputs) > 15
