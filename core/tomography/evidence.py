@@ -163,9 +163,9 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
     For each interface in turn (the others held at their current priors) the
     log evidence is maximised by Nelder-Mead in stages: (1) an isotropic
     prior, over (ln sigma, ln range); (2) an anisotropic one, over (ln sigma,
-    ln range, anisotropy vector), started from the best of eight probes (the
-    correlation stretched 3 or 8 times along one of four directions, the
-    range across it kept), kept only when it raises the log evidence by more than
+    ln range, anisotropy vector), started from the best of four probes (the
+    correlation stretched 3 times along one of four directions, the range
+    across it kept), kept only when it raises the log evidence by more than
     :data:`STRONG` (two more hyperparameters need strong evidence); (3) the
     other smoothness, searched further when it is more probable there.
     ``max_evaluations`` bounds each Nelder-Mead search.
@@ -205,16 +205,16 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
                 return -value(np.r_[z, tail], nu)
 
             z0 = np.asarray(x_start[:free], float)
-            # stop on the values alone (xatol never binds): log-evidence differences below 0.3 are not
-            # worth a mention [Kass & Raftery 1995], and along the ridge where sill and range trade
-            # off the map hardly changes
+            # stop on the values alone (xatol never binds): log-evidence differences below 1 are "not
+            # worth more than a bare mention" [Kass & Raftery 1995], and along the ridge where sill and
+            # range trade off the map hardly changes
             res = minimize(
                 neg,
                 z0,
                 method="Nelder-Mead",
                 options={
                     "xatol": 1.0,
-                    "fatol": 0.3,
+                    "fatol": 1.0,
                     "maxfev": int(evaluations),
                     "initial_simplex": z0 + np.vstack([np.zeros(free), 0.6 * np.eye(free)]),
                 },
@@ -225,11 +225,11 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
         x0 = np.r_[np.clip(np.log([cur.sigma_m, cur.range_m]), lo_k, hi), 0.0, 0.0]
         # (1) isotropic
         val, x = search(x0, nu, max_evaluations, free=2)
-        # (2) anisotropic, on strong evidence only: probes that stretch the correlation along one of four
-        # directions by 3 and by 8, the range across it kept, then a search from the most probable
+        # (2) anisotropic, on strong evidence only: probes that stretch the correlation 3 times along one of
+        # four directions, the range across it kept, then a search from the most probable
         starts = [
             x + np.r_[0.0, 0.5 * step, step * math.cos(ang), step * math.sin(ang)]
-            for step in (math.log(3.0), math.log(MAX_RATIO))
+            for step in (math.log(3.0),)
             for ang in np.radians([0, 90, 180, 270])
         ]
         vals = [value(s, nu) for s in starts]
