@@ -227,9 +227,9 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
         val, x = search(x0, nu, max_evaluations, free=2)
         # (2) anisotropic, on strong evidence only: probes that stretch the correlation 3 times along one of
         # four directions, the range across it kept, then a search from the most probable
+        step = math.log(3.0)
         starts = [
             x + np.r_[0.0, 0.5 * step, step * math.cos(ang), step * math.sin(ang)]
-            for step in (math.log(3.0),)
             for ang in np.radians([0, 90, 180, 270])
         ]
         vals = [value(s, nu) for s in starts]
