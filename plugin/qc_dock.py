@@ -339,8 +339,15 @@ class QcDock(QDockWidget):
         lay.addWidget(self.status_label)
 
         splitter = QSplitter(Qt.Vertical, body)
-        self.plot, self.gather_figure = _plot_canvas(splitter)
-        splitter.addWidget(self.plot)
+        # the plot's canvas (matplotlib and its Qt backend, a third of a second to import) is made when the
+        # first gather is shown, so that the panel opens at once
+        self.plot_box = QWidget(splitter)
+        QVBoxLayout(self.plot_box).setContentsMargins(0, 0, 0, 0)
+        self.plot_box.setSizePolicy(QSizePolicy.Expanding, QSizePolicy.Expanding)
+        self.plot_box.setMinimumSize(QSize(300, 300))
+        self.plot = None  # FigureCanvasQTAgg
+        self.gather_figure = None  # core.report.qc_figures.GatherFigure on it
+        splitter.addWidget(self.plot_box)
         lower = QWidget(splitter)
         lower_lay = QVBoxLayout(lower)
         lower_lay.setContentsMargins(0, 0, 0, 0)
@@ -613,6 +620,9 @@ class QcDock(QDockWidget):
                 self.table.setItem(r, c, item)
         self.table.resizeColumnsToContents()
         self._filling = False
+        if self.plot is None:
+            self.plot, self.gather_figure = _plot_canvas(self.plot_box)
+            self.plot_box.layout().addWidget(self.plot)
         qc.draw_figure(self.current, self.gather_figure)
         self.plot.draw_idle()  # drawn once, when Qt next paints (rapid changes of gather coalesce)
         self.params_label.setText(self._parameters_html(qc.parameters(self.current)))
