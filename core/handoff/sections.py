@@ -184,9 +184,21 @@ def _project(vx, vy, half_width, label, x, y, top, elev, sigma) -> Projected:
     x = np.asarray(x, float)
     if not len(x):
         return Projected.empty()
-    ch, off, dist = locate_on_polyline(vx, vy, x, np.asarray(y, float))
-    sel = np.flatnonzero(dist <= half_width)
-    sel = sel[np.argsort(ch[sel], kind="stable")]
+    y = np.asarray(y, float)
+    # only points within the corridor of the alignment's bounding box can lie within it of the alignment:
+    # the others are never measured (a section of one line in a survey of many)
+    vxa, vya = np.asarray(vx, float), np.asarray(vy, float)
+    near = np.flatnonzero(
+        (x >= vxa.min() - half_width)
+        & (x <= vxa.max() + half_width)
+        & (y >= vya.min() - half_width)
+        & (y <= vya.max() + half_width)
+    )
+    ch, off, dist = locate_on_polyline(vx, vy, x[near], y[near])
+    inside = np.flatnonzero(dist <= half_width)
+    order = inside[np.argsort(ch[inside], kind="stable")]
+    sel = near[order]
+    ch, off = ch[order], off[order]
 
     def pick(a):
         return np.asarray(a)[sel]
@@ -195,8 +207,8 @@ def _project(vx, vy, half_width, label, x, y, top, elev, sigma) -> Projected:
         pick(np.asarray(label).astype(str).astype(object)),
         pick(x),
         pick(y),
-        ch[sel],
-        off[sel],
+        ch,
+        off,
         pick(top).astype(float),
         pick(elev).astype(float),
         pick(sigma).astype(float),

@@ -101,11 +101,19 @@ def _point_z(name: str, layer: Layer, result):
 
 
 def _points_3d(layer: Layer, z) -> Layer:
+    import shapely
     from shapely.geometry import Point
 
-    geoms = [
-        None if g is None or g.is_empty else Point(g.x, g.y, float(zz)) for g, zz in zip(layer.geometries or (), z)
-    ]
+    geoms = list(layer.geometries or ())
+    if hasattr(shapely, "points") and geoms:  # shapely >= 2: vectorised (a million points in a second)
+        arr = np.empty(len(geoms), dtype=object)
+        arr[:] = geoms
+        null = shapely.is_missing(arr) | shapely.is_empty(arr)
+        xyz = np.column_stack([shapely.get_x(arr), shapely.get_y(arr), np.asarray(z, float)[: len(geoms)]])
+        out = np.full(len(geoms), None, dtype=object)
+        out[~null] = shapely.points(xyz[~null])
+        return Layer(out.tolist(), layer.fields, layer.geometry_type, layer.description)
+    geoms = [None if g is None or g.is_empty else Point(g.x, g.y, float(zz)) for g, zz in zip(geoms, z)]
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 

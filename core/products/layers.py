@@ -35,6 +35,16 @@ __all__ = [
 
 
 def _points(x, y):
+    """2D points (None where a coordinate is not finite); one vectorised call with shapely >= 2."""
+    import shapely
+
+    x = np.asarray(x, float)
+    y = np.asarray(y, float)
+    if hasattr(shapely, "points") and x.size:
+        ok = np.isfinite(x) & np.isfinite(y)
+        out = np.full(x.size, None, dtype=object)
+        out[ok] = shapely.points(np.column_stack([x[ok], y[ok]]))
+        return out.tolist()
     return [Point(float(a), float(b)) if np.isfinite(a) and np.isfinite(b) else None for a, b in zip(x, y)]
 
 
