@@ -759,8 +759,13 @@ def dix_table(fit) -> DixTable:
     )
     cols: Dict[str, list] = {k: [] for k in columns}
     keys = np.array([f"{a}\x1f{b}" for a, b in zip(g.line, g.shot)], dtype=object)
-    for key in sorted(set(keys[ok].tolist())):
-        idx = np.flatnonzero((keys == key) & ok)
+    # the ok gathers grouped by key (sorted keys, gathers in their order): one sort, not a pass per key
+    ok_idx = np.flatnonzero(ok)
+    uniq, inverse = np.unique(keys[ok_idx].astype(str), return_inverse=True)
+    order = np.argsort(inverse, kind="stable")
+    bounds = np.searchsorted(inverse[order], np.arange(len(uniq) + 1))
+    for u in range(len(uniq)):
+        idx = ok_idx[order[bounds[u] : bounds[u + 1]]]
         if len(idx) < 2:
             continue
         d = dix_intervals(f.t0_s[idx], f.velocity_m_s[idx], f.se_t0_s[idx], f.se_velocity_m_s[idx])

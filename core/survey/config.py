@@ -518,8 +518,9 @@ def _file_value(toml: _Toml, key: str, value: Any, required: bool, confine_to: O
     return resolved
 
 
-#: Peak memory of a whole run per million picks (GiB), measured by benchmarks/bench_survey_size.py.
-PICK_MEMORY_GIB_PER_MILLION = 2.0
+#: Processor time of a whole run per million picks (s), measured by benchmarks/bench_survey_size.py
+#: (about 500,000 picks on 120 lines in about 200 s: the time grows about in proportion).
+RUN_SECONDS_PER_MILLION_PICKS = 400.0
 
 
 def count_data_rows(path: Union[str, Path], limit: int) -> int:
@@ -639,9 +640,9 @@ def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) ->
         raise toml.error(
             "processing",
             "max_picks",
-            f"{paths['picks'].name} has {n_rows:,} picks, more than max_picks = {settings.max_picks:,} (a run needs "
-            f"about {PICK_MEMORY_GIB_PER_MILLION * n_rows / 1e6:.0f} GiB of memory at that size); split the survey, "
-            "or raise [processing] max_picks on a machine with the memory",
+            f"{paths['picks'].name} has {n_rows:,} picks, more than max_picks = {settings.max_picks:,} (a run takes "
+            f"about {RUN_SECONDS_PER_MILLION_PICKS * n_rows / 1e6 / 60:.0f} min of processor time at that size); split "
+            "the survey, or raise [processing] max_picks",
         )
     picks = read_picks(paths["picks"], settings.default_sigma_ms, stations)
     check_layers(settings, picks, toml.path, toml.text)
