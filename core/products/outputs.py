@@ -251,8 +251,13 @@ def line_qc_figures(result: RunResult, lines=None):
         sel = np.flatnonzero(local[g.gather] >= 0)
         reflectors = sorted({str(r) for r in np.asarray(g.reflector)[gathers]})
         labels = [printable(s, 12) for s in np.asarray(g.shot)[gathers]]
-        if len(reflectors) > 1:  # a row per gather: tell a shot's reflectors apart
-            labels = [f"{s} {printable(r, 8)}" for s, r in zip(labels, np.asarray(g.reflector)[gathers])]
+        if len(reflectors) > 1:  # a row per gather: a shot's reflectors on rows a little apart, told apart
+            refl = np.asarray(g.reflector)[gathers].astype(str)
+            labels = [f"{s} {printable(r, 8)}" for s, r in zip(labels, refl)]
+            steps = np.diff(np.unique(np.round(np.asarray(position, float), 3)))
+            spacing = float(np.median(steps)) if len(steps) else 1.0
+            rank = np.array([reflectors.index(r) for r in refl], float)
+            position = np.asarray(position, float) + (rank - (len(reflectors) - 1) / 2) * spacing / len(reflectors)
         n_flagged = int(np.sum(f.status[gathers] != "ok"))
         n_rejected, n_excluded = int(np.sum(f.picks_rejected[gathers])), int(np.sum(f.picks_excluded[gathers]))
         title = (

@@ -180,3 +180,30 @@ def test_data_range_pads_and_survives_empty_input():
     assert data_range([5.0, 5.0], pad=0.5) == (2.5, 7.5)  # one value: a span of its magnitude
     assert data_range([np.nan, np.inf]) == (0.0, 1.0)
     assert _png_size(png_bytes(new_figure(2.0, 1.0, 50))) == (100, 50)
+
+
+@pytest.mark.slow
+def test_line_figures_of_a_survey_with_two_reflectors(tmp_path, monkeypatch):
+    """Every line of a run gets its figure; a shot's two reflectors are two rows, a little apart, each labelled."""
+    from rockhead.core.products import outputs
+    from rockhead.core.report import qc_figures
+    from rockhead.core.survey.config import load_survey
+    from rockhead.core.workflow import compute
+    from test_pipeline_layers import _write_survey
+
+    tmp_path.mkdir(exist_ok=True)
+    result = compute(load_survey(_write_survey(tmp_path)))
+    drawn = {}
+
+    class Recording(qc_figures.LineFigure):
+        def draw(self, *args, **kwargs):
+            drawn[args[-1]] = (np.asarray(args[6], float), list(args[7]))
+            return super().draw(*args, **kwargs)
+
+    monkeypatch.setattr(qc_figures, "LineFigure", Recording)
+    figures_made = list(outputs.line_qc_figures(result))
+    assert [name for _, name, _ in figures_made] == [f"line_{line}.png" for line in sorted(result.fit.frames)]
+    assert all(_png_size(png) == (1000, 400) for _, _, png in figures_made)
+    for rows, labels in drawn.values():
+        assert len(set(np.round(rows, 6))) == len(rows)  # every gather on its own row
+        assert {label.split()[-1] for label in labels} == {"top", "rock"}
