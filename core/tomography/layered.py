@@ -26,7 +26,8 @@
    anisotropy, smoothness) by type-II maximum likelihood (:mod:`.evidence`),
    refits, and takes the posterior (Laplace approximation) at the optimum:
    the map is the posterior mean at every output cell, sigma its standard
-   deviation including the trend and velocity uncertainty;
+   deviation including the trend and velocity uncertainty and the velocity
+   model's choice (the spread of the probable other models, :mod:`.averaging`);
 7. maps the cells whose sigma does not exceed a limit (by default the largest
    sigma inside the lines' subsurface coverage, the convex hull of the
    source-receiver midpoints), and always the cells inside that hull.
