@@ -74,6 +74,7 @@ from .system import (
     gauss_newton,
     node_elevations,
     posterior,
+    reduced_chi2,
     trend_basis,
 )
 from .velocity import COMPLEXITIES, LayerVelocity, free_parameters
@@ -428,13 +429,6 @@ def _condition_on_points(node_spec, Q, x, y, resid, var):
     return spla.spsolve(A, H.T @ (W @ resid))
 
 
-def _reduced_chi2(data, state) -> float:
-    """Weighted misfit per used pick at ``state`` with the stated pick errors (as :func:`~.system.posterior`)."""
-    r = state.residual_s
-    m = np.isfinite(r) & (state.weight > 0)
-    return float(np.sum(state.weight[m] * (r[m] / data.sigma_s[m]) ** 2)) / max(int(m.sum()), 1)
-
-
 def _vertical_time(theta, centre, x, y, z_top, z_bot):
     """One-way vertical time (s) through a linear field from z_top down to z_bot: int dz / v."""
     v_top = theta[0] + theta[1] * (x - centre[0]) + theta[2] * (y - centre[1]) + theta[3] * (z_top - centre[2])
@@ -716,7 +710,7 @@ def _estimate(
     # honest pick errors: inflate by sqrt(reduced chi-square) when above 1, and refit
     check_cancel(progress)
     tune = cfg.prior == "evidence" and cfg.priors is None
-    chi2 = _reduced_chi2(data, state)
+    chi2, _ = reduced_chi2(data, state)
     scale = 1.0
     if chi2 > 1.0:
         scale = math.sqrt(chi2)
