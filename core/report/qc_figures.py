@@ -469,6 +469,8 @@ class LineFigure:
         labels = list(shot_labels)
         if 0 < len(labels) <= 30:
             ax_res.set_yticks(np.asarray(shot_position_m, float), labels)
+            for text in ax_res.get_yticklabels():
+                text.set_parse_math(False)  # shot labels are data: never mathtext
             ax_res.set_ylabel("shot", fontsize=_FONT)
         else:
             from matplotlib.ticker import AutoLocator, ScalarFormatter

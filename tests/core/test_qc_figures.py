@@ -142,6 +142,11 @@ def test_line_figure_puts_each_pick_on_its_shot_row():
     assert len(fig.curves.get_segments()) == k  # one fitted curve per gather
     assert [t.get_text() for t in fig.axes[1].get_yticklabels()] == ["1001", "1009", "1017"]
     assert _png_size(fig.png()) == (1000, 400)
+    # shot labels are data: one that would be broken mathtext is drawn as written
+    hostile = [r"$\foo{$", "x^$2$", "1017"]
+    fig.draw(xs, ts, model, rejected, excluded, gather, rows_m, hostile, "line A")
+    assert _png_size(fig.png()) == (1000, 400)
+    assert [t.get_text() for t in fig.axes[1].get_yticklabels()] == hostile
 
 
 def test_section_bars_are_four_sigma_long():
