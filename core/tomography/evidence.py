@@ -47,7 +47,6 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.optimize import minimize
 
-from ..errors import InversionError
 from ..progress import check_cancel
 from .prior import MaternPrior, anisotropic_lattice_variance, lattice_laplacian, lattice_variance, matern_precision
 from .system import borehole_matrix, jacobian, parameters, prior_mean, small_prior_precision
@@ -171,7 +170,9 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
     ``max_evaluations`` bounds each Nelder-Mead search.
 
     Returns ``(priors, log_evidence_before, log_evidence_after)``; each new
-    prior's ``source`` says what was done.
+    prior's ``source`` says what was done. Where the evidence of the start
+    priors cannot be evaluated (a singular linearised problem) they are
+    returned unchanged and both values are not finite.
     """
     lin = _Linearised(layout, data, state, sigma_scale)
     current = list(priors)
@@ -180,8 +181,10 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
     lo = np.log([1e-3, 2.0 * h])
     hi = np.log([50.0, extent])  # relief longer than the site is the trend's
     before = lin.log_evidence(current)
-    if not np.isfinite(before):
-        raise InversionError("the evidence of the start priors is not finite; the linearised problem is singular")
+    if not np.isfinite(before):  # a singular linearised problem: the start priors are kept, not a failed run
+        if progress is not None:
+            progress.info("priors kept from the variogram: the evidence of the picks could not be evaluated")
+        return current, before, before
     best_total = before
     for k in range(layout.n_interfaces):
         check_cancel(progress)

@@ -717,7 +717,8 @@ def _estimate(
     if tune:
         # the priors' hyperparameters most probable given the picks, at the fit of the chosen velocity
         # model with the pick errors as inflated (type-II maximum likelihood, :mod:`.evidence`), then refit
-        priors, _, _ = tune_priors(layout, data, state, priors, sigma_scale=scale, extent_m=extent, progress=progress)
+        priors, ev0, _ = tune_priors(layout, data, state, priors, sigma_scale=scale, extent_m=extent, progress=progress)
+        tune = bool(np.isfinite(ev0))  # False: the variogram's priors kept (noted below)
         data = replace(data, Q=tuple(matern_precision(node_spec, p) for p in priors))
         label = "joint estimate (most probable priors" + (f", pick errors x {scale:.2f})" if scale > 1.0 else ")")
         state, h = gauss_newton(layout, data, state, sigma_scale=scale, label=label, **kw)
@@ -800,6 +801,8 @@ def _estimate(
     refl_xyz = np.full((n, 3), np.nan)
     refl_xyz[pick] = p.reflection_xyz
     notes = []
+    if cfg.prior == "evidence" and cfg.priors is None and not tune:
+        notes.append("priors from the variogram: the evidence of the picks could not be evaluated (singular)")
     if np.any(iface < 0):
         notes.append(f"{int(np.sum(iface < 0))} picks of reflectors outside the layer order were not used")
     n_nm = int(np.sum(p.status != 0))

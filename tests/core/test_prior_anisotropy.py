@@ -128,3 +128,20 @@ def test_bic_weights_are_the_softmax_of_minus_half_bic():
     # a BIC lower by 6 ("strong" evidence) is 20 times more probable
     w = bic_weights([0.0, 6.0])
     assert w[0] / w[1] == pytest.approx(math.exp(3.0))
+
+
+def test_tuning_keeps_the_start_priors_when_the_evidence_cannot_be_evaluated(monkeypatch):
+    """A singular linearised problem leaves the variogram's priors in place: a note, not a failed run."""
+
+    class Singular:
+        def __init__(self, *args, **kwargs):
+            pass
+
+        def log_evidence(self, priors):
+            return -np.inf
+
+    monkeypatch.setattr(evidence, "_Linearised", Singular)
+    layout = type("Layout", (), {"spec": GridSpec(0.0, 0.0, 5.0, 8, 7), "n_interfaces": 1})()
+    start = [prior.MaternPrior(1.0, 30.0, 0.0, "variogram", 2)]
+    out, before, after = evidence.tune_priors(layout, None, None, start)
+    assert out == start and not np.isfinite(before) and not np.isfinite(after)
