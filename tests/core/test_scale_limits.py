@@ -114,3 +114,20 @@ def test_pick_rows_are_counted_without_parsing(tmp_path):
     p.write_bytes(b"line,shot,receiver,time_ms\n# a comment\nA,1,2,10\n\nA,1,3,11\nA,1,4,12")  # no last newline
     assert count_data_rows(p, limit=10) == 5  # under the limit: 6 lines less the header (an upper bound)
     assert count_data_rows(p, limit=2) == 3  # over it: counted row by row, comments and blank lines left out
+
+
+def test_skipped_joint_inversion_is_stated_in_summary_and_report(tmp_path, monkeypatch):
+    # beyond its stated pick limit the joint inversion is skipped: the command line's summary and
+    # the report both say so and why (here with the limit lowered to the size of a small survey)
+    from plane_site import PlaneSite, write_site
+    from rockhead.core import workflow
+    from rockhead.core.products.outputs import result_layers
+    from rockhead.core.survey.config import load_survey
+
+    monkeypatch.setattr(workflow, "TOMOGRAPHY_MAX_PICKS", 100)
+    site = PlaneSite(lines=[("A", (0.0, 0.0), 0.0, 49), ("B", (0.0, 0.0), 90.0, 49)])
+    r = workflow.compute(load_survey(write_site(tmp_path, site)), method="auto")
+    assert r.tomography.skipped_reason and "more than its stated limit of 100" in r.tomography.skipped_reason
+    assert "joint inversion skipped" in r.summary() and "stated limit of 100" in r.summary()
+    text = content.build_report(r, result_layers(r), {})
+    assert "Joint inversion not run" in text and "stated limit of 100" in text
