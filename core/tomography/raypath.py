@@ -322,7 +322,8 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             for p in range(m - 1):
                 H[:, 2 * p : 2 * p + 2, 2 * p + 2 : 2 * p + 4] = Ho[:, p]
                 H[:, 2 * p + 2 : 2 * p + 4, 2 * p : 2 * p + 2] = np.swapaxes(Ho[:, p], -1, -2)
-        L = np.linalg.norm(B - A, axis=-1)
+        D = B - A
+        L = np.sqrt(D[..., 0] * D[..., 0] + D[..., 1] * D[..., 1] + D[..., 2] * D[..., 2])
         floor = 0.02 * np.mean(1.0 / (np.maximum(L, 1e-6) * np.sqrt(np.abs(o["va"] * o["vb"]))), axis=1)
         gflat = g2.reshape(na, 2 * m)
         if m == 1:  # 2 x 2: eigenvalues in closed form, shift the spectrum above the floor
@@ -330,6 +331,7 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             half = 0.5 * (hxx + hyy)
             lam_min = half - np.sqrt(np.maximum(0.25 * (hxx - hyy) ** 2 + hxy * hxy, 0.0))
             shift = np.where(lam_min < 1e-3 * floor, floor - lam_min, 0.0)
+            newton = shift == 0.0
             hxx, hyy = hxx + shift, hyy + shift
             det = hxx * hyy - hxy * hxy
             step = -np.stack(
@@ -343,6 +345,7 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
                 pd = np.ones(na, bool)
             except np.linalg.LinAlgError:
                 pd, _ = _batched_cholesky(shifted)
+            newton = pd
             if pd.any():  # positive definite: the Newton step itself (quadratic convergence)
                 step[pd] = -np.linalg.solve(H[pd], gflat[pd][..., None])[..., 0]
             if (~pd).any():  # the others (far from a minimum): lift their spectrum to the floor
@@ -350,7 +353,7 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
                 lam = np.maximum(lam, floor[~pd, None])
                 step[~pd] = -np.einsum("nij,nj->ni", V, np.einsum("nji,nj->ni", V, gflat[~pd]) / lam)
             step = step.reshape(na, m, 2)
-        move = np.max(np.linalg.norm(step, axis=-1), axis=1)
+        move = np.max(np.hypot(step[..., 0], step[..., 1]), axis=1)
         scale = np.minimum(1.0, max_step / np.maximum(move, 1e-300))
         step *= scale[:, None, None]
         slope = np.sum(gflat * step.reshape(na, 2 * m), axis=1)
@@ -369,7 +372,13 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             todo = todo[bad]
             alpha[todo] *= 0.5
         X[active] = Xa + alpha[:, None, None] * step
-        done = alpha * move * scale < tolerance_m
+        # converged: a step below the tolerance, or a full Newton step (positive-definite Hessian, not
+        # scaled, not backtracked) below ten times it: Newton converges quadratically, so the step it
+        # would take next is of the order of the square of this one over the length of the path's
+        # legs (well below 1e-5 m), and the time, stationary there, is exact to rounding; this saves
+        # the iteration that would only confirm it
+        full = newton & (alpha == 1.0) & (scale == 1.0)
+        done = (alpha * move * scale < tolerance_m) | (full & (move < 10.0 * tolerance_m))
         converged[active[done]] = True
         active = active[~done]
         if it >= 4 and it % 2 == 0 and active.size:
@@ -403,9 +412,10 @@ def trace_reflections(
         ``paths.point_xyz[..., :2]`` of a previous model, to follow the same
         branch); default: flat-layer Snell paths. NaN rows fall back to that.
     tolerance_m : float
-        Newton steps below this (m) end a path's iterations (Newton converges
-        quadratically: the path is then within ~1e-8 m of stationary, and the
-        time, stationary itself, within round-off).
+        A step below this (m), or a full Newton step below ten times this, ends
+        a path's iterations (Newton converges quadratically: the path is then
+        within ~1e-6 m of stationary, and the time, stationary itself, within
+        round-off).
     max_iterations : int
         Newton iterations at most.
 

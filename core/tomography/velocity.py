@@ -187,7 +187,19 @@ def _arc_factor(eps):
 
 
 def _velocity(theta, centre, P):
-    return theta[..., 0] + np.sum(theta[..., 1:] * (P - centre), axis=-1)
+    # component by component: a sum over a last axis of 3 is slow in numpy, and theta and centre are
+    # usually one row per layer broadcast over many legs
+    return (
+        theta[..., 0]
+        + theta[..., 1] * (P[..., 0] - centre[..., 0])
+        + theta[..., 2] * (P[..., 1] - centre[..., 1])
+        + theta[..., 3] * (P[..., 2] - centre[..., 2])
+    )
+
+
+def _sq3(a):
+    """Squared length over the last axis of 3 (component by component)."""
+    return a[..., 0] * a[..., 0] + a[..., 1] * a[..., 1] + a[..., 2] * a[..., 2]
 
 
 def leg_time(A, B, theta, centre):
@@ -218,10 +230,10 @@ def leg_time(A, B, theta, centre):
     theta = np.asarray(theta, float)
     c = np.asarray(centre, float)
     d = B - A
-    s = np.sum(d * d, axis=-1)
+    s = _sq3(d)
     va = _velocity(theta, c, A)
     vb = _velocity(theta, c, B)
-    g2 = np.sum(theta[..., 1:] ** 2, axis=-1)
+    g2 = _sq3(theta[..., 1:])
     q = s / (va * vb)
     f, _, _ = _arc_factor(0.5 * g2 * q)
     return np.sqrt(q) * f
@@ -249,10 +261,10 @@ def leg_times(A, B, theta, centre, hessian: bool = True):
     c = np.asarray(centre, float)
     g = theta[..., 1:]
     d = B - A
-    s = np.sum(d * d, axis=-1)
+    s = _sq3(d)
     va = _velocity(theta, c, A)
     vb = _velocity(theta, c, B)
-    g2 = np.sum(g * g, axis=-1)
+    g2 = _sq3(g)
     ab = va * vb
     q = s / ab
     f, f1, f2 = _arc_factor(0.5 * g2 * q)
@@ -337,10 +349,10 @@ def leg_times_on_surfaces(A, B, theta, centre, slope_a, slope_b) -> dict:
     c = np.asarray(centre, float)
     g = theta[..., 1:]
     d = B - A
-    s = np.sum(d * d, axis=-1)
+    s = _sq3(d)
     va = _velocity(theta, c, A)
     vb = _velocity(theta, c, B)
-    g2 = np.sum(g * g, axis=-1)
+    g2 = _sq3(g)
     ab = va * vb
     q = s / ab
     f, f1, f2 = _arc_factor(0.5 * g2 * q)
