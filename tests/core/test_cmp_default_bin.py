@@ -14,7 +14,8 @@ import pytest
 from plane_site import PlaneSite, write_site
 from rockhead.core.seismic.cmp import cmp_bins, midpoint_spacing
 from rockhead.core.survey.config import load_survey
-from rockhead.core.workflow import cmp_step, fit_step
+from rockhead.core.velocity_checks import cmp_step
+from rockhead.core.workflow import fit_step
 
 DIP_DEG, DIP_DIR_DEG, V_M_S = 10.0, 120.0, 1800.0
 
