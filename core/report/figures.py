@@ -41,6 +41,19 @@ _RAMPS = {
 }
 
 
+def label_halo():
+    """A thin white outline for map labels, so a label stays readable on any colour of the map beneath it.
+
+    Returns
+    -------
+    list
+        matplotlib path effects, for a text's ``path_effects``.
+    """
+    from matplotlib import patheffects
+
+    return [patheffects.withStroke(linewidth=2.5, foreground="white")]
+
+
 def _figure(width_in: float, height_in: float, dpi: float):
     """A new figure with an Agg canvas, the shared colour maps registered."""
     try:
@@ -148,7 +161,15 @@ def map_figure(
         ax.plot(xy[:, 0], xy[:, 1], color=colours.CONTOUR_DEPTH, lw=1.0 if is_index else 0.4)
     for line, xy in sorted(station_lines.items()):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0)
-        ax.annotate(f"line {printable(line, 40)}", xy[0], fontsize=8, color=colours.LINE, ha="right", va="bottom")
+        ax.annotate(
+            f"line {printable(line, 40)}",
+            xy[0],
+            fontsize=8,
+            color=colours.LINE,
+            ha="right",
+            va="bottom",
+            path_effects=label_halo(),
+        )
     if points_xy is not None and len(points_xy):
         ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color=colours.REFLECTOR_POINT, ms=3, mec="white", mew=0.3)
     span = max(extent[1] - extent[0], extent[3] - extent[2])
@@ -163,7 +184,14 @@ def map_figure(
         bx, by, names = boreholes
         ax.plot(bx, by, "o", color="k", mfc=colours.BOREHOLE, ms=6)
         for x, y, n in zip(bx, by, names):
-            ax.annotate(printable(n, 40), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=8)
+            ax.annotate(
+                printable(n, 40),
+                (x, y),
+                xytext=(4, 4),
+                textcoords="offset points",
+                fontsize=8,
+                path_effects=label_halo(),
+            )
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     ax.set_aspect("equal")
@@ -218,6 +246,8 @@ def raster_figure(grid_x_m, grid_y_m, values, label, title="", cmap=DIFFERENCE_C
     ax.set_aspect("equal")
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
+    ax.set_xlabel("easting (m)", fontsize=8)
+    ax.set_ylabel("northing (m)", fontsize=8)
     ax.set_title(title, fontsize=9)
     plain_text(fig)  # before the layout measures the texts
     fig.tight_layout()

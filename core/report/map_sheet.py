@@ -136,7 +136,14 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
     for name, xy in sorted(ov.lines.items()):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0, zorder=4)
         ax.annotate(
-            f"line {printable(name, 40)}", xy[0], fontsize=7, color=colours.LINE, ha="right", va="bottom", zorder=4
+            f"line {printable(name, 40)}",
+            xy[0],
+            fontsize=7,
+            color=colours.LINE,
+            ha="right",
+            va="bottom",
+            zorder=4,
+            path_effects=figures.label_halo(),
         )
     if ov.points_xy is not None and len(ov.points_xy):
         ax.plot(
@@ -160,7 +167,15 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         bx, by, names = ov.boreholes
         ax.plot(bx, by, "o", color="k", mfc=colours.BOREHOLE, ms=5, zorder=6)
         for x, y, nm in zip(bx, by, names):
-            ax.annotate(printable(nm, 40), (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7, zorder=6)
+            ax.annotate(
+                printable(nm, 40),
+                (x, y),
+                xytext=(4, 4),
+                textcoords="offset points",
+                fontsize=7,
+                zorder=6,
+                path_effects=figures.label_halo(),
+            )
     return im
 
 
