@@ -63,19 +63,24 @@ def handoff_section(rep, result, sections=None) -> None:
     rep.heading("Hand-off files")
     items = [
         (
-            "map_sheet.pdf",
+            ["map_sheet.pdf"],
             "A3 map sheet at a stated scale: depth, standard deviation"
             + (", probability above the design level" if d is not None else ""),
         ),
-        ("reflector_surface.xml", "LandXML 1.2 surface (TIN of the mapped cells) for civil design software"),
+        (["reflector_surface.xml"], "LandXML 1.2 surface (TIN of the mapped cells) for civil design software"),
     ]
-    for s in sections or ():
-        fmt = result.survey.handoff.section_format
-        stem = "section_" + "".join(c if c.isalnum() or c in "-_" else "_" for c in s.name)
-        items.append(
-            (
-                f"{stem}.{fmt}, {stem}.csv",
-                f"section {s.title}: {s.length_m:.0f} m, {len(s.boreholes)} boreholes within {s.corridor_m / 2:g} m",
-            )
-        )
-    rep.items(items)
+    # the file names the run writes: the same stems, and the sheets drawn (at most 20 lines get one)
+    from ..products.handoff import MAX_LINE_SECTION_SHEETS, drawn_sections, section_file_stems
+
+    sections = list(sections or ())
+    fmt = result.survey.handoff.section_format
+    for s, stem, drawn in zip(sections, section_file_stems(sections), drawn_sections(sections)):
+        n = len(s.boreholes)
+        holes = "1 borehole" if n == 1 else f"{n} boreholes"
+        what = f"section {s.title}: {s.length_m:.0f} m, {holes} within {s.corridor_m / 2:g} m"
+        if drawn:
+            items.append(([f"{stem}.{fmt}", f"{stem}.csv"], what))
+        else:
+            note = f" (table only: sheets are drawn for at most {MAX_LINE_SECTION_SHEETS} lines, evenly spread)"
+            items.append(([f"{stem}.csv"], what + note))
+    rep.files(items)

@@ -34,6 +34,7 @@ tr.flag td{background:#fdecea}
 img{max-width:100%;border:1px solid #ddd;margin:.3em 0}
 .small{font-size:.85em;color:#444}
 details{margin:.4em 0}
+.wide{overflow-x:auto;max-width:100%}
 """
 
 
@@ -100,7 +101,21 @@ class Report:
             body.append(f"<tr{cls}>{''.join(cells)}</tr>")
         cap = f"<caption>{html.escape(caption)}</caption>" if caption else ""
         more = f'<p class="small">{n - shown} more rows in the CSV files.</p>' if shown < n else ""
-        self._parts.append(f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>{more}")
+        table = f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+        # a table wider than the page scrolls on its own instead of widening the whole page
+        self._parts.append(f'<div class="wide">{table}</div>{more}')
+
+    def files(self, rows) -> None:
+        """A two-column table of files beside the report, each name a relative link, and what they hold.
+
+        ``rows``: pairs (file names, description); the names are relative paths
+        such as ``map_sheet.pdf`` or ``qc/line_A.png``.
+        """
+        out = []
+        for names, text in rows:
+            links = ", ".join(f'<a href="{html.escape(n, quote=True)}">{html.escape(n)}</a>' for n in names)
+            out.append(f'<tr><td class="t">{links}</td><td class="t">{html.escape(str(text))}</td></tr>')
+        self._parts.append(f'<table class="kv">{"".join(out)}</table>')
 
     def figure(self, image: bytes, alt: str, collapsed_summary: str | None = None) -> None:
         """An image: PNG bytes, or an SVG document (bytes starting with ``<svg`` or ``<?xml``)."""

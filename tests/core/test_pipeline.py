@@ -245,6 +245,17 @@ def test_report_is_self_contained_with_cautions(sample_run):
     assert "data:image/svg+xml" not in html
 
 
+def test_report_links_open_files_of_the_run(sample_run):
+    """Every link of the report is a file of the same results folder (no dead link, nothing remote)."""
+    import re
+
+    html = (sample_run.out / "report.html").read_text(encoding="utf-8")
+    hrefs = re.findall(r'href="([^"]+)"', html)
+    assert {"map_sheet.pdf", "reflector_surface.xml", "section_line_A.pdf", "section_line_A.csv"} <= set(hrefs)
+    for href in hrefs:
+        assert (sample_run.out / href).is_file(), href
+
+
 def test_cli_bad_input_exits_2_with_one_line(tmp_path, run_cli):
     bad = tmp_path / "survey.toml"
     bad.write_text('[survey]\nname = "x"\ncrs = "EPSG:32633"\n[files]\nstations = "nope.csv"\npicks = "p.csv"\n')

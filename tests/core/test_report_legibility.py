@@ -76,3 +76,50 @@ def test_grid_figure_axes_name_their_units(captured):
     ax = fig.axes[0]
     assert ax.get_xlabel() == "easting (m)"
     assert ax.get_ylabel() == "northing (m)"
+
+
+def _report_html(sections, fmt="pdf"):
+    from types import SimpleNamespace as S
+
+    from rockhead.core.report.handoff_content import handoff_section
+    from rockhead.core.report.html import Report
+
+    result = S(surface=object(), design=None, survey=S(handoff=S(section_format=fmt)))
+    rep = Report("t")
+    handoff_section(rep, result, sections)
+    return rep.render()
+
+
+def _section(name, n_boreholes=0):
+    from types import SimpleNamespace as S
+
+    return S(
+        name=name, title=name.replace("_", " ", 1), boreholes=[None] * n_boreholes, length_m=220.0, corridor_m=25.0
+    )
+
+
+def test_handoff_files_are_links_to_the_files_the_run_writes():
+    import re
+
+    from rockhead.core.products.handoff import drawn_sections, section_file_stems
+
+    # 40 lines: every second one gets a sheet (20); "line_A B" makes a stem with a hash suffix
+    sections = [_section(f"line_{k}") for k in range(39)] + [_section("line_A B", 1)]
+    page = _report_html(sections)
+    hrefs = re.findall(r'<a href="([^"]+)">', page)
+    expected = {"map_sheet.pdf", "reflector_surface.xml"}
+    for stem, drawn in zip(section_file_stems(sections), drawn_sections(sections)):
+        expected |= {f"{stem}.csv"} | ({f"{stem}.pdf"} if drawn else set())
+    assert set(hrefs) == expected
+    assert sum(h.endswith(".pdf") for h in hrefs) == 1 + 20  # the map sheet and 20 section sheets
+    assert "1 borehole within" in page and "0 boreholes within" in page
+
+
+def test_wide_table_scrolls_on_its_own():
+    from rockhead.core.report.html import Report
+
+    rep = Report("t")
+    rep.table({f"column_{k}": [1.0] for k in range(30)})
+    page = rep.render()
+    assert '<div class="wide"><table>' in page
+    assert ".wide{overflow-x:auto" in page
