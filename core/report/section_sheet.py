@@ -23,7 +23,7 @@ GROUND = colours.GROUND  # as the report's line sections
 OVERBURDEN = "#f3e9d2"
 ROCK = "#d9d9d9"
 WATER = "#2b7bba"
-_SECTION_BOX_MM = (20.0, 112.0, 380.0, 165.0)  # left, bottom, width, height of the section panel
+_SECTION_BOX_MM = (26.0, 112.0, 374.0, 165.0)  # left, bottom, width, height; 18 mm for the elevation labels
 _VE_STEPS = (1.0, 2.0, 2.5, 5.0, 10.0, 20.0, 25.0, 50.0, 100.0)
 
 
@@ -143,7 +143,7 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
         )
     ax.set_xlabel("chainage along the alignment (m)")
     datum = info.vertical_datum or "vertical datum not stated"
-    ax.set_ylabel(f"elevation (m, {datum})")
+    ax.set_ylabel(f"elevation (m, {datum})", fontsize=8)
     ax.grid(True, color="0.85", lw=0.5)
     ax.tick_params(labelsize=7, right=True, labelright=True)
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(0.0, -0.09), ncol=4, frameon=False)

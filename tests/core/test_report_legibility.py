@@ -123,3 +123,32 @@ def test_wide_table_scrolls_on_its_own():
     page = rep.render()
     assert '<div class="wide"><table>' in page
     assert ".wide{overflow-x:auto" in page
+
+
+def test_section_elevation_label_clears_the_sheet_border(monkeypatch):
+    """The section's elevation label lay across the sheet's border line: it must sit inside the frame."""
+    from rockhead.core.grid import GridSpec
+    from rockhead.core.handoff.sections import Interface, build_section
+    from rockhead.core.report import section_sheet as sheet_module
+    from rockhead.core.report.sheet import SheetInfo
+
+    kept = []
+    monkeypatch.setattr(sheet_module, "save_figure", lambda fig, fmt="pdf": kept.append(fig) or b"")
+    spec = GridSpec(x0=2.5, y0=97.5, cell_size_m=5.0, nx=20, ny=20)
+    gx, gy = spec.coords()
+    z = 1250.0 + 0.1 * gx - 0.05 * gy  # four-digit elevations: the widest tick labels of a site
+    v = np.array([[spec.x_centres[0], gy[7, 0]], [spec.x_centres[-1], gy[7, 0]]])
+    sec = build_section(
+        "row", v, spec, [Interface("rock", z, 0.2 + 0 * z)], ground=lambda x, y: np.full(np.shape(x), 1270.0)
+    )
+    info = SheetInfo("synthetic", None, "Rockhead test", "EPSG:32633", None, None, "kriging", 5.0)
+    sheet_module.section_sheet(sec, info)
+    (fig,) = kept
+    fig.canvas.draw()  # the axis label is placed at draw time, beside the tick labels
+    renderer = fig.canvas.get_renderer()
+    frame, section_ax = fig.axes[0], fig.axes[1]
+    border_x = frame.get_window_extent(renderer).x0
+    label = section_ax.yaxis.label
+    assert "vertical datum not stated" in label.get_text()
+    # at least 1 mm of paper between the border line and the label (1 mm at the figure's dpi)
+    assert label.get_window_extent(renderer).x0 - border_x > fig.dpi / 25.4
