@@ -257,8 +257,13 @@ def _surface(rep, r):
         rep.heading("Joint estimate from all picks and comparison with the gather-fit surface", level=3)
         f = r.fit.fits
         used = f.weight > 0
+        which = (
+            f"reflector '{res.names[0]}'"
+            if len(res.names) == 1
+            else f"the reflectors {', '.join(res.names)} (top down)"
+        )
         rep.paragraph(
-            f"Every pick of the reflectors {', '.join(res.names)} (top down) is modelled at once through a "
+            f"Every pick of {which} is modelled at once through a "
             "layered overburden: each interface a smooth surface through grid nodes with a geostatistical prior "
             "about a plane, each layer a velocity that may change laterally and with depth; the ray of each pick "
             "refracts at the interfaces above its reflector and reflects at it (Fermat's principle). Robust "

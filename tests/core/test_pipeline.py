@@ -245,6 +245,13 @@ def test_report_is_self_contained_with_cautions(sample_run):
     assert "data:image/svg+xml" not in html
 
 
+def test_report_names_one_reflector_in_the_singular(sample_run):
+    """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
+    html = (sample_run.out / "report.html").read_text(encoding="utf-8")
+    assert "Every pick of reflector &#x27;1&#x27; is modelled at once" in html
+    assert "the reflectors 1 (top down)" not in html
+
+
 def test_report_links_open_files_of_the_run(sample_run):
     """Every link of the report is a file of the same results folder (no dead link, nothing remote)."""
     import re
