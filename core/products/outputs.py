@@ -342,12 +342,13 @@ def _stage_map(folder: RunFolder, result, layers, progress) -> None:
             timestamp=prov.timestamp,
             software=prov.software,
         )
-    for name, (grid, description, is_elevation) in overburden_rasters(result).items():
+    for name, (grid, description, is_elevation, unit) in overburden_rasters(result).items():
         write_raster(
             folder.path(name),
             grid,
             spec,
             z_crs if is_elevation else crs,
+            unit=unit,
             metadata=prov.items(),
             description=description,
             timestamp=prov.timestamp,

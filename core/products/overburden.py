@@ -47,7 +47,7 @@ def raster_file_label(order: tuple, mapped: str) -> dict:
 
 
 def overburden_rasters(result: RunResult) -> dict:
-    """File name -> (grid, band description, is an elevation) of the other interfaces and the layers."""
+    """File name -> (grid, band description, is an elevation, band unit) of the other interfaces and the layers."""
     ob = result.overburden
     if ob is None:
         return {}
@@ -58,19 +58,36 @@ def overburden_rasters(result: RunResult) -> dict:
         if m.reflector not in names:
             continue
         n, src = names[m.reflector], m.source
-        out[f"{n}_elevation.tif"] = (m.surface.z, f"elevation of interface {m.reflector} (m, up positive; {src})", True)
-        out[f"{n}_depth.tif"] = (m.depth_m, f"depth of interface {m.reflector} below ground (m, positive down)", False)
-        out[f"{n}_depth_sigma.tif"] = (m.depth_sigma_m, f"standard deviation of the depth of {m.reflector} (m)", False)
+        out[f"{n}_elevation.tif"] = (
+            m.surface.z,
+            f"elevation of interface {m.reflector} (m, up positive; {src})",
+            True,
+            "m",
+        )
+        out[f"{n}_depth.tif"] = (
+            m.depth_m,
+            f"depth of interface {m.reflector} below ground (m, positive down)",
+            False,
+            "m",
+        )
+        out[f"{n}_depth_sigma.tif"] = (
+            m.depth_sigma_m,
+            f"standard deviation of the depth of {m.reflector} (m)",
+            False,
+            "m",
+        )
         out[f"{n}_elevation_sigma.tif"] = (
             m.surface.std,
             f"standard deviation of the elevation of {m.reflector} (m)",
             False,
+            "m",
         )
     for v in ob.intervals:
         out[f"interval_velocity_{_safe(v.top)}_to_{_safe(v.base)}.tif"] = (
             v.velocity_m_s,
             f"vertical-average velocity of the layer from {v.top} to {v.base} (m/s; {v.source})",
             False,
+            "m/s",
         )
     return out
 

@@ -245,6 +245,17 @@ def test_report_is_self_contained_with_cautions(sample_run):
     assert "data:image/svg+xml" not in html
 
 
+def test_velocity_raster_band_unit_is_metres_per_second(sample_run):
+    """The layer's velocity raster states m/s as its band unit (it said m, as the depth rasters do)."""
+    from rockhead.core.formats.gdalio import read_raster
+
+    velocity = read_raster(sample_run.out / "interval_velocity_ground_to_1.tif")
+    assert velocity.unit == "m/s"
+    assert "(m/s" in velocity.description
+    assert 1000.0 < float(np.nanmedian(velocity.values)) < 3000.0  # an overburden velocity, in m/s
+    assert read_raster(sample_run.out / "reflector_depth.tif").unit == "m"
+
+
 def test_report_names_one_reflector_in_the_singular(sample_run):
     """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")
