@@ -175,7 +175,7 @@ def sheet_info(result, timestamp=None) -> SheetInfo:
     extra = []
     conv = _grid_convergence_deg(result)
     if conv is not None:
-        extra.append(("grid convergence", f"{conv:+.3f}° at the site centre (PROJ meridian convergence)"))
+        extra.append(("grid convergence", f"{conv:+.3f}° at the site centre (meridian convergence)"))
     return SheetInfo(
         survey=printable(sv.name),
         issued=issue_date(timestamp).isoformat(),

@@ -18,6 +18,7 @@ from . import figures
 __all__ = [
     "A3_LANDSCAPE_MM",
     "CAUTION_LINES",
+    "TITLE_VALUE_CHARS",
     "SheetInfo",
     "draw_cautions",
     "draw_title_block",
@@ -111,6 +112,10 @@ def _box(ax):
     ax.set_yticks([])
 
 
+#: Characters of a title-block value that fit beside its key; a longer value is shortened with "...".
+TITLE_VALUE_CHARS = 52
+
+
 def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "", title_chars: int = 44) -> None:
     """Fill ``ax`` with the title block: title, survey, dates, software, CRS, datum, method, cell."""
     import textwrap
@@ -140,7 +145,9 @@ def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "", titl
     for i, (k, v) in enumerate(rows):
         y = top - (i + 0.5) * dy
         ax.text(0.03, y, k, fontsize=7, va="center", ha="left", color="0.3")
-        ax.text(0.34, y, textwrap.shorten(str(v), 52, placeholder="..."), fontsize=7, va="center", ha="left")
+        ax.text(
+            0.34, y, textwrap.shorten(str(v), TITLE_VALUE_CHARS, placeholder="..."), fontsize=7, va="center", ha="left"
+        )
 
 
 def draw_cautions(ax, extra=(), width_chars=None) -> None:

@@ -256,6 +256,18 @@ def test_velocity_raster_band_unit_is_metres_per_second(sample_run):
     assert read_raster(sample_run.out / "reflector_depth.tif").unit == "m"
 
 
+def test_sheet_title_block_values_are_not_cut(sample_run):
+    """Every value of the sample's title block fits its line (the grid convergence was cut to '...')."""
+    from rockhead.core.handoff.steps import sheet_info
+    from rockhead.core.report.sheet import TITLE_VALUE_CHARS
+
+    info = sheet_info(sample_run.result)
+    values = [info.survey, info.issued, info.software, info.crs, info.method, *(v for _, v in info.extra)]
+    assert any(k == "grid convergence" for k, _ in info.extra)
+    for v in values:
+        assert len(str(v)) <= TITLE_VALUE_CHARS, v
+
+
 def test_report_names_one_reflector_in_the_singular(sample_run):
     """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")
