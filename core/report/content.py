@@ -247,7 +247,11 @@ def _surface(rep, r):
         )
         rep.figure(
             figures.scatter_figure(
-                cv.estimate, cv.estimate + cv.residual, "estimate from the others (m)", "datum (m)", "cross-validation"
+                cv.estimate,
+                cv.estimate + cv.residual,
+                "elevation estimated without the point (m)",
+                "reflector point elevation (m)",  # not "datum": read as the vertical datum
+                "cross-validation",
             ),
             "cross-validation scatter",
         )

@@ -268,6 +268,21 @@ def test_sheet_title_block_values_are_not_cut(sample_run):
         assert len(str(v)) <= TITLE_VALUE_CHARS, v
 
 
+def test_cross_validation_figure_axes_say_what_they_plot(sample_run, monkeypatch):
+    """The scatter's axes are elevations of the reflector points ('datum (m)' read as the vertical datum)."""
+    from rockhead.core.report import content, figures
+    from rockhead.core.report.html import Report
+
+    calls = []
+    monkeypatch.setattr(figures, "scatter_figure", lambda *a, **k: calls.append(a) or b"")
+    content._surface(Report("t"), sample_run.result)
+    (args,) = calls
+    cv = sample_run.result.seismic_diagnostics.cross_validation
+    np.testing.assert_allclose(args[1] - args[0], cv.residual)  # y - x is the left-out point's residual
+    assert args[2] == "elevation estimated without the point (m)"
+    assert args[3] == "reflector point elevation (m)"
+
+
 def test_report_names_one_reflector_in_the_singular(sample_run):
     """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")
