@@ -177,7 +177,7 @@ class GatherFigure:
         self.axes = (ax_t2, ax_tx, ax_res)
         _style(ax_t2, "t²–x² (▲ forward, ▼ reverse)", "x² (m²)", "t² (ms²)")
         _style(ax_tx, "t–x", "offset along line x (m)", "two-way time t (ms)")
-        _style(ax_res, "residuals", "x (m)", "residual (ms)")
+        _style(ax_res, "residuals", "offset along line x (m)", "residual (ms)")
         ax_t2.ticklabel_format(style="sci", scilimits=(-3, 4), useMathText=False)
         fit = dict(color=colours.FIT_CURVE, lw=1.6)
         self._art = {

@@ -212,3 +212,11 @@ def test_line_figures_of_a_survey_with_two_reflectors(tmp_path, monkeypatch):
     for rows, labels in drawn.values():
         assert len(set(np.round(rows, 6))) == len(rows)  # every gather on its own row
         assert {label.split()[-1] for label in labels} == {"top", "rock"}
+
+
+def test_gather_panels_name_the_offset_alike():
+    """The t–x and residual panels share one abscissa, the offset along the line, and say so in metres."""
+    x, t = _flat_gather()
+    fig = GatherFigure().draw(x, t, t, np.zeros(len(x), bool), np.zeros(len(x), bool), "flat", "")
+    _, ax_tx, ax_res = fig.axes
+    assert ax_tx.get_xlabel() == ax_res.get_xlabel() == "offset along line x (m)"
