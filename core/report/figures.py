@@ -137,7 +137,7 @@ def map_figure(
     title="",
     dpi=110,
 ) -> bytes:
-    """Site map: depth raster, contours, lines, points, strike-and-dip symbols.
+    """Site map: depth raster, contours (index ones labelled, m), lines, points, strike-and-dip symbols.
 
     ``contour_lines`` is a list of (level, (n,2) xy array, is_index);
     ``station_lines`` a dict line -> (n,2) xy; ``dips`` and ``surface_dips``
@@ -157,8 +157,19 @@ def map_figure(
     im = ax.imshow(z, extent=extent, cmap=DEPTH_CMAP, interpolation="nearest")
     cb = fig.colorbar(im, ax=ax, shrink=0.75)
     cb.set_label("depth to reflector (m)")
-    for _level, xy, is_index in contour_lines:
+    for level, xy, is_index in contour_lines:
         ax.plot(xy[:, 0], xy[:, 1], color=colours.CONTOUR_DEPTH, lw=1.0 if is_index else 0.4)
+        if is_index and len(xy) > 1:  # index contours carry their depth, as on the map sheet
+            k = len(xy) // 2
+            ax.text(
+                xy[k, 0],
+                xy[k, 1],
+                f"{level:g}",
+                fontsize=7,
+                ha="center",
+                va="center",
+                bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8},
+            )
     for line, xy in sorted(station_lines.items()):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0)
         ax.annotate(

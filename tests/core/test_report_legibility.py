@@ -54,6 +54,17 @@ def test_report_map_labels_have_a_halo(captured):
         assert _has_halo(labels[name]), name
 
 
+def test_report_map_index_contours_carry_their_depth(captured):
+    gx, gy, depth, lines, _ = _site()
+    index = np.array([[50.0, 0.0], [50.0, 145.0]])
+    minor = np.array([[75.0, 0.0], [75.0, 145.0]])
+    figures.map_figure(gx, gy, depth, [(20.0, index, True), (25.0, minor, False)], lines, title="depth")
+    (fig,) = captured
+    texts = [t.get_text() for t in fig.axes[0].texts]
+    assert texts.count("20") == 1  # the index contour, labelled once
+    assert "25" not in texts  # intermediate contours stay unlabelled
+
+
 def test_map_sheet_labels_have_a_halo():
     from matplotlib.figure import Figure
 
