@@ -69,6 +69,14 @@ def test_every_algorithm_has_help_with_the_caution(provider):
         assert alg.id().startswith("rockhead:")
 
 
+def test_run_survey_help_names_the_files_a_run_writes(provider):
+    """The whole-survey help names the outputs a user looks for (the QC figures, DXF and CSV were missing)."""
+    help_text = provider.algorithm("runsurvey").shortHelpString()
+    names = ("survey.gpkg", "elevation_sigma.tif", "contours_depth.dxf", "csv/", "qc/", "report.html", "map_sheet.pdf")
+    for name in names:
+        assert name in help_text, name
+
+
 @pytest.mark.parametrize(
     ("missing", "pip", "debian"),
     [
