@@ -523,6 +523,16 @@ def _file_value(toml: _Toml, key: str, value: Any, required: bool, confine_to: O
 RUN_SECONDS_PER_MILLION_PICKS = 400.0
 
 
+def _processor_time(n_picks: int) -> str:
+    """The processor time of a run of ``n_picks`` picks, in words ("about 7 min", "less than a minute").
+
+    >>> _processor_time(1_000_000), _processor_time(3_000)
+    ('about 7 min', 'less than a minute')
+    """
+    minutes = RUN_SECONDS_PER_MILLION_PICKS * n_picks / 1e6 / 60
+    return "less than a minute" if minutes < 0.5 else f"about {minutes:.0f} min"
+
+
 def count_data_rows(path: Union[str, Path], limit: int) -> int:
     """Data rows of a CSV file (header, blank and '#' comment lines not counted), read in 1 MiB blocks.
 
@@ -641,8 +651,8 @@ def load_survey(toml_path: Union[str, Path], *, confine_inputs: bool = False) ->
             "processing",
             "max_picks",
             f"{paths['picks'].name} has {n_rows:,} picks, more than max_picks = {settings.max_picks:,} (a run takes "
-            f"about {RUN_SECONDS_PER_MILLION_PICKS * n_rows / 1e6 / 60:.0f} min of processor time at that size); split "
-            "the survey, or raise [processing] max_picks",
+            f"{_processor_time(n_rows)} of processor time at that size); split the survey, or raise [processing] "
+            "max_picks",
         )
     picks = read_picks(paths["picks"], settings.default_sigma_ms, stations)
     check_layers(settings, picks, toml.path, toml.text)

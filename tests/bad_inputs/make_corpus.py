@@ -1003,7 +1003,7 @@ def processing_too_many_picks(s):
     set_toml(s, "processing", "max_picks", "50")
     return (
         r"^survey\.toml, line 12, field 'processing\.max_picks': picks\.csv has [\d,]+ picks, more than "
-        r"max_picks = 50 \(a run takes about \d+ min of processor time at that size\); split the survey, or "
+        r"max_picks = 50 \(a run takes less than a minute of processor time at that size\); split the survey, or "
         r"raise \[processing\] max_picks"
     )
 

@@ -131,3 +131,13 @@ def test_skipped_joint_inversion_is_stated_in_summary_and_report(tmp_path, monke
     assert "joint inversion skipped" in r.summary() and "stated limit of 100" in r.summary()
     text = content.build_report(r, result_layers(r), {})
     assert "Joint inversion not run" in text and "stated limit of 100" in text
+
+
+def test_refused_pick_count_states_the_run_time_in_words():
+    """The max_picks refusal gave 'about 0 min' for a small file; small counts now read 'less than a minute'."""
+    from rockhead.core.survey.config import RUN_SECONDS_PER_MILLION_PICKS, _processor_time
+
+    million = RUN_SECONDS_PER_MILLION_PICKS / 60  # minutes per million picks (the benchmark's rate)
+    assert _processor_time(1_000_000) == f"about {million:.0f} min"
+    assert _processor_time(2_688) == "less than a minute"
+    assert _processor_time(0) == "less than a minute"
