@@ -100,7 +100,7 @@ def run_info(result: RunResult) -> list:
     vm = result.seismic_diagnostics.variogram
     if vm is not None:
         items.append(
-            ("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m2, sill {vm.sill:.4g} m2, range {vm.range_m:.1f} m")
+            ("variogram", f"{vm.model}, nugget {vm.nugget:.4g} m², sill {vm.sill:.4g} m², range {vm.range_m:.1f} m")
         )
     tomo = result.tomography
     if tomo is not None and tomo.inversion is not None:
@@ -110,7 +110,7 @@ def run_info(result: RunResult) -> list:
         items.append(("joint_inversion", f"not run: {tomo.skipped_reason}"))
     if result.depth_ratio is not None:
         d = result.depth_ratio
-        items.append(("borehole_depth_ratio", f"{d.factor:.4f} +- {d.sigma_factor:.4f}"))
+        items.append(("borehole_depth_ratio", f"{d.factor:.4f} ± {d.sigma_factor:.4f}"))
     ob = result.overburden
     if ob is not None:
         items.append(

@@ -283,6 +283,17 @@ def test_cross_validation_figure_axes_say_what_they_plot(sample_run, monkeypatch
     assert args[3] == "reflector point elevation (m)"
 
 
+def test_run_info_writes_units_as_the_report_does(sample_run):
+    """run_info's variogram sill is in m² and the borehole ratio carries ± (they read 'm2' and '+-')."""
+    import csv
+
+    with open(sample_run.out / "csv" / "run_info.csv", encoding="utf-8", newline="") as f:
+        info = dict(csv.reader(f))
+    assert " m², sill " in info["variogram"] and info["variogram"].endswith(" m")
+    ratio, sigma = (float(v) for v in info["borehole_depth_ratio"].split(" ± "))
+    assert abs(ratio - 1.0) < 0.05 and 0 < sigma < 0.05  # the sample's velocity is the boreholes' (report: 0.999)
+
+
 def test_report_names_one_reflector_in_the_singular(sample_run):
     """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")
