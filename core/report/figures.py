@@ -54,6 +54,19 @@ def label_halo():
     return [patheffects.withStroke(linewidth=2.5, foreground="white")]
 
 
+def label_every_contour(contour_lines) -> bool:
+    """Whether every contour is labelled, not only the index ones: fewer than three index levels.
+
+    The rule of the QGIS contour style (common practice: a reader must find a
+    labelled contour near any point of the map).
+
+    Parameters
+    ----------
+    contour_lines : sequence of (level, xy, is_index)
+    """
+    return len({float(level) for level, _xy, is_index in contour_lines if is_index}) < 3
+
+
 def _figure(width_in: float, height_in: float, dpi: float):
     """A new figure with an Agg canvas, the shared colour maps registered."""
     try:
@@ -137,7 +150,7 @@ def map_figure(
     title="",
     dpi=110,
 ) -> bytes:
-    """Site map: depth raster, contours (index ones labelled, m), lines, points, strike-and-dip symbols.
+    """Site map: depth raster, contours (labelled in m), lines, points, strike-and-dip symbols.
 
     ``contour_lines`` is a list of (level, (n,2) xy array, is_index);
     ``station_lines`` a dict line -> (n,2) xy; ``dips`` and ``surface_dips``
@@ -157,9 +170,10 @@ def map_figure(
     im = ax.imshow(z, extent=extent, cmap=DEPTH_CMAP, interpolation="nearest")
     cb = fig.colorbar(im, ax=ax, shrink=0.75)
     cb.set_label("depth to reflector (m)")
+    label_all = label_every_contour(contour_lines)
     for level, xy, is_index in contour_lines:
         ax.plot(xy[:, 0], xy[:, 1], color=colours.CONTOUR_DEPTH, lw=1.0 if is_index else 0.4)
-        if is_index and len(xy) > 1:  # index contours carry their depth, as on the map sheet
+        if (is_index or label_all) and len(xy) > 1:  # contours carry their depth, as on the map sheet
             k = len(xy) // 2
             ax.text(
                 xy[k, 0],

@@ -111,9 +111,10 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         interpolation="nearest",
         zorder=1,
     )
+    label_all = figures.label_every_contour(page.contours)
     for level, xy, is_index in page.contours:
         ax.plot(xy[:, 0], xy[:, 1], color="0.15", lw=0.9 if is_index else 0.35, zorder=2)
-        if is_index and len(xy) > 1:
+        if (is_index or label_all) and len(xy) > 1:
             k = len(xy) // 2
             ax.text(
                 xy[k, 0],
@@ -194,7 +195,13 @@ def _legend(fig, im, page: MapPage, ov: MapOverlays):
     if page.contours:
         handles += [
             Line2D([], [], color="0.15", lw=0.9, label="index contour (labelled, m)"),
-            Line2D([], [], color="0.15", lw=0.35, label="intermediate contour"),
+            Line2D(
+                [],
+                [],
+                color="0.15",
+                lw=0.35,
+                label="intermediate contour" + (" (labelled, m)" if figures.label_every_contour(page.contours) else ""),
+            ),
         ]
     if page.contour_levels:
         handles.append(Line2D([], [], color="0.1", lw=0.8, label="probability contours"))

@@ -54,15 +54,21 @@ def test_report_map_labels_have_a_halo(captured):
         assert _has_halo(labels[name]), name
 
 
-def test_report_map_index_contours_carry_their_depth(captured):
+def test_report_map_contours_carry_their_depth(captured):
+    """Index contours are labelled; with fewer than three index levels every contour is (as the QGIS style)."""
     gx, gy, depth, lines, _ = _site()
-    index = np.array([[50.0, 0.0], [50.0, 145.0]])
-    minor = np.array([[75.0, 0.0], [75.0, 145.0]])
-    figures.map_figure(gx, gy, depth, [(20.0, index, True), (25.0, minor, False)], lines, title="depth")
-    (fig,) = captured
-    texts = [t.get_text() for t in fig.axes[0].texts]
-    assert texts.count("20") == 1  # the index contour, labelled once
-    assert "25" not in texts  # intermediate contours stay unlabelled
+
+    def vertical(x):
+        return np.array([[x, 0.0], [x, 145.0]])
+
+    few = [(20.0, vertical(50.0), True), (25.0, vertical(75.0), False)]
+    many = [(10.0 * k, vertical(20.0 * k), k % 2 == 0) for k in range(1, 9)]  # index levels 20, 40, 60, 80
+    for contours, labelled in ((few, {"20", "25"}), (many, {"20", "40", "60", "80"})):
+        captured.clear()
+        figures.map_figure(gx, gy, depth, contours, lines, title="depth")
+        (fig,) = captured
+        texts = {t.get_text() for t in fig.axes[0].texts if not t.get_text().startswith(("line", "BH"))}
+        assert texts == labelled
 
 
 def test_map_sheet_labels_have_a_halo():
@@ -70,13 +76,18 @@ def test_map_sheet_labels_have_a_halo():
 
     gx, gy, depth, lines, boreholes = _site()
     spec = GridSpec(x0=0.0, y0=0.0, cell_size_m=5.0, nx=len(gx), ny=len(gy))
-    page = map_sheet.MapPage(title="depth", values=depth[::-1], label="depth (m)", cmap="viridis")
+    contours = (
+        (20.0, np.array([[50.0, 0.0], [50.0, 145.0]]), True),
+        (25.0, np.array([[75.0, 0.0], [75.0, 145.0]]), False),
+    )
+    page = map_sheet.MapPage(title="depth", values=depth[::-1], label="depth (m)", cmap="viridis", contours=contours)
     ov = map_sheet.MapOverlays(lines=lines, boreholes=boreholes)
     ax = Figure().add_subplot()
     map_sheet._draw_map(ax, spec, page, ov, symbol_m=3.0)
     labels = {t.get_text(): t for t in ax.texts}
     for name in ("line A", "line D", "BH-1"):
         assert _has_halo(labels[name]), name
+    assert {"20", "25"} <= set(labels)  # one index level only: every contour labelled
 
 
 def test_grid_figure_axes_name_their_units(captured):
