@@ -1003,8 +1003,8 @@ def processing_too_many_picks(s):
     set_toml(s, "processing", "max_picks", "50")
     return (
         r"^survey\.toml, line 12, field 'processing\.max_picks': picks\.csv has [\d,]+ picks, more than "
-        r"max_picks = 50 \(a run takes less than a minute of processor time at that size\); split the survey, or "
-        r"raise \[processing\] max_picks"
+        r"max_picks = 50 \(a run takes less than a minute of processor time at that size; a million picks took "
+        r"6\.5 GiB of memory\); split the survey, or raise \[processing\] max_picks"
     )
 
 
