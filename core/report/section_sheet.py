@@ -175,8 +175,19 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
 
 def _key_plan(ax, s, plan):
     v = s.vertices_xy
-    for i, (_name, xy) in enumerate(sorted((plan.get("lines") or {}).items())):
-        ax.plot(xy[:, 0], xy[:, 1], "-", color=figures.LINE_COLOURS[i % len(figures.LINE_COLOURS)], lw=1.0)
+    for i, (name, xy) in enumerate(sorted((plan.get("lines") or {}).items())):
+        colour = figures.LINE_COLOURS[i % len(figures.LINE_COLOURS)]
+        ax.plot(xy[:, 0], xy[:, 1], "-", color=colour, lw=1.0)
+        # each line named at its first station, so the section can be placed among the others
+        ax.annotate(
+            printable(name, 40),
+            xy[0],
+            fontsize=6,
+            color=colour,
+            ha="right",
+            va="bottom",
+            path_effects=figures.label_halo(),
+        )
     bh = plan.get("boreholes")
     if bh is not None and len(bh):
         ax.plot(bh[:, 0], bh[:, 1], "s", color="k", mfc="yellow", ms=3)

@@ -174,3 +174,20 @@ def test_section_elevation_label_clears_the_sheet_border(monkeypatch):
     assert "vertical datum not stated" in label.get_text()
     # at least 1 mm of paper between the border line and the label (1 mm at the figure's dpi)
     assert label.get_window_extent(renderer).x0 - border_x > fig.dpi / 25.4
+
+
+def test_section_key_plan_names_every_line():
+    """The key plan showed the lines unnamed: each now carries its name, readable over the others."""
+    from types import SimpleNamespace
+
+    from matplotlib.figure import Figure
+    from rockhead.core.report.section_sheet import _key_plan
+
+    section = SimpleNamespace(vertices_xy=np.array([[0.0, 50.0], [200.0, 50.0]]), corridor_m=25.0, length_m=200.0)
+    plan = {"lines": {"A": np.array([[0.0, 50.0], [200.0, 50.0]]), "B": np.array([[100.0, 0.0], [100.0, 100.0]])}}
+    ax = Figure().add_subplot()
+    _key_plan(ax, section, plan)
+    labels = {t.get_text(): t for t in ax.texts}
+    for name in ("A", "B"):
+        assert _has_halo(labels[name]), name
+    assert {"0", "200 m"} <= set(labels)  # the chainage ends, as before
