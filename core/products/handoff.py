@@ -228,7 +228,10 @@ def _contours(result, kind):
 def map_content(result):
     """The pages and overlays of the map sheet of a run."""
     s = result.surface
-    sd = np.where(s.mask, np.nan, s.std)
+    # the depth's sigma beside the depth map: the grid of depth_sigma.tif (the surface's, and the ground's
+    # beyond the stations), as the QGIS print layout shows it
+    sigma = result.depth_sigma_m if result.depth_sigma_m is not None else s.std
+    sd = np.where(s.mask, np.nan, sigma)
     pages = [
         MapPage(
             "Depth to the reflector below ground",
@@ -241,9 +244,9 @@ def map_content(result):
     if np.any(np.isfinite(sd)):
         pages.append(
             MapPage(
-                "Standard deviation of the mapped surface",
+                "Standard deviation of the depth",
                 sd,
-                "standard deviation, 1σ (m)",
+                "depth standard deviation, 1σ (m)",
                 figures.SIGMA_CMAP,
                 vmin=0.0,
                 show_dips=False,

@@ -127,7 +127,7 @@ def build_layout(project, out_dir, layers_by_name, crs, info, title=None):
     keep = []  # legend layer trees must outlive the export
     pages = [
         (tr("Depth to the reflector below ground"), DEPTH_PAGE),
-        (tr("Standard deviation of the mapped surface"), SIGMA_PAGE),
+        (tr("Standard deviation of the depth"), SIGMA_PAGE),
     ]
     if "probability_above_design.tif" in layers_by_name:  # a run with a [design] level
         level = info.get("design_elevation_m", "")

@@ -294,6 +294,22 @@ def test_run_info_writes_units_as_the_report_does(sample_run):
     assert abs(ratio - 1.0) < 0.05 and 0 < sigma < 0.05  # the sample's velocity is the boreholes' (report: 0.999)
 
 
+def test_map_sheet_sigma_page_is_the_depth_sigma_raster(sample_run):
+    """The sheet's second map is the grid of depth_sigma.tif (it showed the elevation sigma, titled ambiguously)."""
+    from rockhead.core.formats.gdalio import read_raster
+    from rockhead.core.products.handoff import map_content
+
+    pages, _ = map_content(sample_run.result)
+    page = pages[1]
+    assert page.title == "Standard deviation of the depth" and "depth" in page.label
+    raster = read_raster(sample_run.out / "depth_sigma.tif")
+    values = raster.values if raster.y_centres[0] > raster.y_centres[-1] else raster.values[::-1]
+    shown = np.isfinite(page.values)
+    assert shown.any()
+    # float32 in the file: agree to its precision (7 significant digits of sigmas below 10 m)
+    np.testing.assert_allclose(page.values[shown], values[shown], rtol=1e-6)
+
+
 def test_report_names_one_reflector_in_the_singular(sample_run):
     """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")

@@ -55,7 +55,7 @@ def test_map_sheet_print_layout(provider, core_results, tmp_path):
         "grid north",
         "interpretation with stated uncertainty",
         "licensed professionals",
-        "Standard deviation of the mapped surface",
+        "Standard deviation of the depth",
     ):
         assert part in flat, part
     subprocess.run(["pdftoppm", "-r", "25", "-f", "1", "-l", "1", "-png", str(pdf), str(tmp_path / "p")], check=True)
