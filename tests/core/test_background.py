@@ -64,6 +64,7 @@ def test_no_child_when_asked_not_to(monkeypatch):
 
 @needs_fork
 @pytest.mark.skipif(not os.path.exists("/proc/self"), reason="the parent-death signal is Linux's")
+@pytest.mark.slow  # a child process killed and waited for
 def test_the_child_of_a_killed_run_writes_nothing(tmp_path):
     """A run killed with SIGKILL leaves no child writing into its staging folder (which the next run removes)."""
     import signal

@@ -379,6 +379,7 @@ def test_station_ground_model():
     assert float(g1(x[-1] + 5.0, y[-1] + 20.0)) == pytest.approx(zl[-1], abs=1e-9)
 
 
+@pytest.mark.slow  # about 10 s: many random station sets against scipy
 def test_ground_interpolant_matches_scipy_on_line_shaped_station_sets():
     # reference library: scipy's LinearNDInterpolator on the same Delaunay triangulation
     # (grid-like station sets have cocircular points, so the triangulation must be shared);

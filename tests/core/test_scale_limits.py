@@ -82,6 +82,7 @@ def test_joint_inversion_size_limits(picks, nx, ny, fine):
         assert "stated limit" in reason
 
 
+@pytest.mark.slow  # a whole run
 def test_report_line_figures_stay_within_their_byte_limit(tmp_path, monkeypatch):
     # two crossing lines, each with a line QC figure of 1 MB: with a limit of 1.5 MB the first line's
     # figures are embedded, the second line's QC figure is linked to its file instead
@@ -116,6 +117,7 @@ def test_pick_rows_are_counted_without_parsing(tmp_path):
     assert count_data_rows(p, limit=2) == 3  # over it: counted row by row, comments and blank lines left out
 
 
+@pytest.mark.slow  # a whole run
 def test_skipped_joint_inversion_is_stated_in_summary_and_report(tmp_path, monkeypatch):
     # beyond its stated pick limit the joint inversion is skipped: the command line's summary and
     # the report both say so and why (here with the limit lowered to the size of a small survey)
