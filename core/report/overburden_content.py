@@ -52,7 +52,7 @@ def overburden_section(rep: Report, r: RunResult) -> None:
         rep.table(
             {
                 "layer": [f"{v.top} to {v.base}" for v in ob.intervals],
-                "median interval velocity_m_s": [_median(v.velocity_m_s) for v in ob.intervals],
+                "median_velocity_m_s": [_median(v.velocity_m_s) for v in ob.intervals],
                 "range_m_s": [
                     f"{np.nanmin(v.velocity_m_s):.0f} to {np.nanmax(v.velocity_m_s):.0f}"
                     if np.any(np.isfinite(v.velocity_m_s))
@@ -72,10 +72,10 @@ def overburden_section(rep: Report, r: RunResult) -> None:
                 "model": [str(m) for m in vm.model],
                 "v0_m_s": list(vm.v0_m_s),
                 "se_v0_m_s": list(vm.se_v0_m_s),
-                "east_(m/s)/m": list(vm.gradient_east_m_s_per_m),
-                "north_(m/s)/m": list(vm.gradient_north_m_s_per_m),
-                "with depth_(m/s)/m": list(vm.gradient_depth_m_s_per_m),
-                "Dix_m_s": list(vm.dix_velocity_m_s),
+                "gradient_east_m_s_per_m": list(vm.gradient_east_m_s_per_m),
+                "gradient_north_m_s_per_m": list(vm.gradient_north_m_s_per_m),
+                "gradient_depth_m_s_per_m": list(vm.gradient_depth_m_s_per_m),
+                "dix_velocity_m_s": list(vm.dix_velocity_m_s),
             }
         )
         for layer, why in zip(vm.layer, vm.reason):

@@ -310,6 +310,18 @@ def test_map_sheet_sigma_page_is_the_depth_sigma_raster(sample_run):
     np.testing.assert_allclose(page.values[shown], values[shown], rtol=1e-6)
 
 
+def test_report_velocity_tables_name_columns_as_the_csv(sample_run):
+    """The velocity model's report columns are the CSV's names with their units (they read 'east_(m/s)/m')."""
+    import csv
+
+    html = (sample_run.out / "report.html").read_text(encoding="utf-8")
+    with open(sample_run.out / "csv" / "velocity_model.csv", encoding="utf-8", newline="") as f:
+        header = next(csv.reader(f))
+    for name in ("gradient_east_m_s_per_m", "gradient_north_m_s_per_m", "gradient_depth_m_s_per_m", "dix_velocity_m_s"):
+        assert name in header and f"<th>{name}</th>" in html, name
+    assert "(m/s)/m</th>" not in html
+
+
 def test_report_names_one_reflector_in_the_singular(sample_run):
     """The sample picks one reflector (unlabelled: '1'): the joint estimate's text names it as one."""
     html = (sample_run.out / "report.html").read_text(encoding="utf-8")
