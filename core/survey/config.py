@@ -524,7 +524,7 @@ RUN_SECONDS_PER_MILLION_PICKS = 600.0
 
 
 def _processor_time(n_picks: int) -> str:
-    """The processor time of a run of ``n_picks`` picks, in words ("about 7 min", "less than a minute").
+    """The processor time of a run of ``n_picks`` picks, in words ("about 10 min", "less than a minute").
 
     >>> _processor_time(1_000_000), _processor_time(3_000)
     ('about 10 min', 'less than a minute')
