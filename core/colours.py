@@ -37,6 +37,7 @@ __all__ = [
     "STATUS_FLAGGED",
     "STATUS_OK",
     "SURFACE_DIP",
+    "VELOCITY_RAMP",
     "ramp_colour",
 ]
 
@@ -68,6 +69,13 @@ PROBABILITY_RAMP = (
     (0.00, "#f7f7f2"),
     (0.50, "#8cc3b8"),
     (1.00, "#0e4d4f"),
+)
+#: Interval velocity of a layer (m/s): pale straw (slow) to deep green (fast).
+VELOCITY_RAMP = (
+    (0.00, "#fbf6e3"),
+    (0.35, "#c9d98f"),
+    (0.70, "#5a9c6e"),
+    (1.00, "#1f4a36"),
 )
 #: A signed difference (m): blue (negative), white (zero), brown (positive).
 DIFFERENCE_RAMP = (

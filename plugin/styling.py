@@ -295,8 +295,9 @@ def load_results(out_dir: str, project: QgsProject = None, group_name: str = GRO
 def _other_interface_rasters(out_dir: str) -> list:
     """(layer, subgroup, visible) of every other interface's rasters and every interval velocity, hidden.
 
-    Their styles are the .qml files beside them (written by the core); the
-    interval velocities have none and show in QGIS's default grey ramp.
+    Their styles are the .qml files beside them (written by the core), which
+    QGIS reads as each raster's default style: the interfaces in the colours of
+    the mapped one, the interval velocities in m/s.
     """
     fixed = {filename for filename, *_ in RASTER_LAYERS}
     out = []

@@ -45,6 +45,7 @@ __all__ = [
     "layer_qml",
     "layer_styles",
     "raster_qml",
+    "raster_style",
     "raster_styles",
     "strike_dip_angle_expression",
     "styles_table",
@@ -706,8 +707,37 @@ RASTER_SUFFIX_STYLES = (
 )
 
 
-def _style_by_suffix(name: str):
-    """The style of an interface raster by its name's ending, or None."""
+#: The style of every layer's interval-velocity raster (``interval_velocity_<top>_to_<base>.tif``).
+VELOCITY_STYLE = (colours.VELOCITY_RAMP, " m/s", "", 0, None)
+
+
+def raster_style(name: str):
+    """The style of a raster written by a run, by its file name, or None.
+
+    Parameters
+    ----------
+    name : str
+        File name, e.g. ``reflector_depth.tif``, ``wt_depth_sigma.tif``,
+        ``interval_velocity_ground_to_wt.tif``.
+
+    Returns
+    -------
+    tuple or None
+        (ramp, unit suffix, prefix, decimals, fixed range or None): the
+        fixed names of :data:`RASTER_STYLES`, the other interfaces' by their
+        name's ending, the interval velocities by their prefix.
+
+    Examples
+    --------
+    >>> raster_style("interval_velocity_ground_to_rock.tif")[1]
+    ' m/s'
+    >>> raster_style("wt_depth.tif") == RASTER_STYLES["reflector_depth.tif"]
+    True
+    """
+    if name in RASTER_STYLES:
+        return RASTER_STYLES[name]
+    if name.startswith("interval_velocity_") and name.endswith(".tif"):
+        return VELOCITY_STYLE
     for ending, style in RASTER_SUFFIX_STYLES:
         if name.endswith(ending):
             return style
@@ -725,12 +755,11 @@ def raster_styles(rasters: dict) -> dict:
     Returns
     -------
     dict
-        File name -> QML (only the rasters :data:`RASTER_STYLES` knows, and the
-        other interfaces' by their name's ending).
+        File name -> QML (the rasters :func:`raster_style` knows).
     """
     out = {}
     for name, grid in rasters.items():
-        style = RASTER_STYLES.get(name) or _style_by_suffix(name)
+        style = raster_style(name)
         if style is None:
             continue
         ramp, suffix, prefix, decimals, fixed = style

@@ -73,28 +73,35 @@ def test_every_field_has_an_alias_and_reals_their_decimals(run_dir):
 
 
 @pytest.mark.parametrize(
-    "name, prefix",
-    [("reflector_depth", ""), ("reflector_elevation", ""), ("depth_sigma", "±")],
-    ids=["depth", "elevation", "sigma"],
+    "name, prefix, unit",
+    [
+        ("reflector_depth", "", " m"),
+        ("reflector_elevation", "", " m"),
+        ("depth_sigma", "±", " m"),
+        ("interval_velocity_ground_to_1", "", " m/s"),  # the sample's one layer (reflector label "1")
+    ],
+    ids=["depth", "elevation", "sigma", "interval-velocity"],
 )
-def test_raster_legend_is_the_data_range_in_units(run_dir, name, prefix):
+def test_raster_legend_is_the_data_range_in_units(run_dir, name, prefix, unit):
     raster = read_raster(run_dir / f"{name}.tif")
     v = np.asarray(raster.values, float)
     v = v[np.isfinite(v)]
     root = _qml((run_dir / f"{name}.qml").read_text())
     r = root.find(".//rasterrenderer")
     assert r.get("type") == "singlebandpseudocolor"
-    # the classification range is the data range exactly (float32 values read back from the file)
-    assert float(r.get("classificationMin")) == float(v.min())
-    assert float(r.get("classificationMax")) == float(v.max())
+    ramp, _suffix, _prefix, decimals, _fixed = styles.raster_style(f"{name}.tif")
+    # the classification range is the data range exactly (float32 values read back from the file);
+    # a constant field (the sample's one constant-velocity layer) spans one step of the legend
+    lo, hi = float(v.min()), float(v.max())
+    hi = hi if hi > lo else lo + 10.0**-decimals
+    assert float(r.get("classificationMin")) == lo
+    assert float(r.get("classificationMax")) == hi
     items = root.findall(".//colorrampshader/item")
-    ramp = styles.RASTER_STYLES[f"{name}.tif"][0]
     assert [i.get("color") for i in items] == [c for _, c in ramp]  # the shared colour code
-    decimals = styles.RASTER_STYLES[f"{name}.tif"][3]
-    assert items[0].get("label") == f"{prefix}{v.min():.{decimals}f} m"
-    assert items[-1].get("label") == f"{prefix}{v.max():.{decimals}f} m"
+    assert items[0].get("label") == f"{prefix}{lo:.{decimals}f}{unit}"
+    assert items[-1].get("label") == f"{prefix}{hi:.{decimals}f}{unit}"
     legend = root.find(".//rampLegendSettings")
-    assert legend.get("suffix") == " m" and legend.get("prefix") == prefix
+    assert legend.get("suffix") == unit and legend.get("prefix") == prefix
     assert [o.get("value") for o in legend.iter("Option") if o.get("name") == "decimals"] == [str(decimals)]
 
 
