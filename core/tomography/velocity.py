@@ -60,6 +60,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from math import factorial
+from typing import NamedTuple
 
 import numpy as np
 
@@ -239,21 +240,40 @@ def leg_time(A, B, theta, centre):
     return np.sqrt(q) * f
 
 
-def leg_times(A, B, theta, centre, hessian: bool = True):
-    """Leg time and its derivatives with respect to the ends and the field parameters.
+class _Leg(NamedTuple):
+    """The terms of legs' times and first derivatives shared by :func:`leg_times` and :func:`leg_times_on_surfaces`."""
 
-    Writing the time as :math:`t = h(q)`, :math:`h(q) = \\sqrt q\\, f(G^2 q/2)`,
-    :math:`q = s/(v_A v_B)`, :math:`s = |B - A|^2`, the derivatives follow by
-    the chain rule through (s, v_A, v_B) (:math:`\\nabla_A s = -2(B - A)`,
-    :math:`\\nabla_A v_A = \\mathbf g`, and so on).
+    A: np.ndarray
+    B: np.ndarray
+    c: np.ndarray
+    g: np.ndarray
+    d: np.ndarray
+    va: np.ndarray
+    vb: np.ndarray
+    g2: np.ndarray
+    q: np.ndarray
+    f: np.ndarray
+    f1: np.ndarray
+    f2: np.ndarray
+    rq: np.ndarray
+    t: np.ndarray
+    h1: np.ndarray
+    q_s: np.ndarray
+    q_a: np.ndarray
+    q_b: np.ndarray
+    F_s: np.ndarray
+    F_a: np.ndarray
+    F_b: np.ndarray
+    grad_a: np.ndarray
+    grad_b: np.ndarray
+    ab: np.ndarray
 
-    Returns
-    -------
-    dict
-        ``t`` (...), ``gA``, ``gB`` (..., 3) gradients (s/m), ``dtheta`` (..., 4)
-        derivatives with respect to (v0, gx, gy, gz), and with ``hessian``
-        ``HAA``, ``HAB``, ``HBB`` (..., 3, 3) (``HAB[i, j]`` =
-        d2t / dA_i dB_j), ``va``, ``vb`` the end velocities.
+
+def _leg(A, B, theta, centre) -> _Leg:
+    """Time t = sqrt(q) f(g^2 q / 2) of legs A -> B, q = |B - A|^2 / (v_A v_B), and its gradients.
+
+    F_s, F_a, F_b are dt/ds, dt/dv_A, dt/dv_B (s = |B - A|^2); grad_a, grad_b
+    the gradients with respect to the ends.
     """
     A = np.asarray(A, float)
     B = np.asarray(B, float)
@@ -279,6 +299,27 @@ def leg_times(A, B, theta, centre, hessian: bool = True):
     F_b = h1 * q_b
     gA = (-2.0 * F_s)[..., None] * d + F_a[..., None] * g
     gB = (2.0 * F_s)[..., None] * d + F_b[..., None] * g
+    return _Leg(A, B, c, g, d, va, vb, g2, q, f, f1, f2, rq, t, h1, q_s, q_a, q_b, F_s, F_a, F_b, gA, gB, ab)
+
+
+def leg_times(A, B, theta, centre, hessian: bool = True):
+    """Leg time and its derivatives with respect to the ends and the field parameters.
+
+    Writing the time as :math:`t = h(q)`, :math:`h(q) = \\sqrt q\\, f(G^2 q/2)`,
+    :math:`q = s/(v_A v_B)`, :math:`s = |B - A|^2`, the derivatives follow by
+    the chain rule through (s, v_A, v_B) (:math:`\\nabla_A s = -2(B - A)`,
+    :math:`\\nabla_A v_A = \\mathbf g`, and so on).
+
+    Returns
+    -------
+    dict
+        ``t`` (...), ``gA``, ``gB`` (..., 3) gradients (s/m), ``dtheta`` (..., 4)
+        derivatives with respect to (v0, gx, gy, gz), and with ``hessian``
+        ``HAA``, ``HAB``, ``HBB`` (..., 3, 3) (``HAB[i, j]`` =
+        d2t / dA_i dB_j), ``va``, ``vb`` the end velocities.
+    """
+    leg = _leg(A, B, theta, centre)
+    A, B, c, g, d, va, vb, g2, q, f, f1, f2, rq, t, h1, q_s, q_a, q_b, F_s, F_a, F_b, gA, gB, ab = leg
     F_g2 = rq * f1 * q / 2
     dtheta = np.concatenate(
         [
@@ -343,30 +384,9 @@ def leg_times_on_surfaces(A, B, theta, centre, slope_a, slope_b) -> dict:
         ``t``, ``gA``, ``gB``, ``va``, ``vb`` as :func:`leg_times`, and
         ``HAA``, ``HBB``, ``HAB`` (..., 2, 2) (s/m^2).
     """
-    A = np.asarray(A, float)
-    B = np.asarray(B, float)
-    theta = np.asarray(theta, float)
-    c = np.asarray(centre, float)
-    g = theta[..., 1:]
-    d = B - A
-    s = _sq3(d)
-    va = _velocity(theta, c, A)
-    vb = _velocity(theta, c, B)
-    g2 = _sq3(g)
-    ab = va * vb
-    q = s / ab
-    f, f1, f2 = _arc_factor(0.5 * g2 * q)
-    rq = np.sqrt(q)
-    t = rq * f
-    h1 = f / (2 * rq) + rq * f1 * g2 / 2
-    q_s = 1.0 / ab
-    q_a = -q / va
-    q_b = -q / vb
-    F_s = h1 * q_s
-    F_a = h1 * q_a
-    F_b = h1 * q_b
-    gA = (-2.0 * F_s)[..., None] * d + F_a[..., None] * g
-    gB = (2.0 * F_s)[..., None] * d + F_b[..., None] * g
+    leg = _leg(A, B, theta, centre)
+    d, g, g2, q, f, f1, f2, rq, t, h1 = leg.d, leg.g, leg.g2, leg.q, leg.f, leg.f1, leg.f2, leg.rq, leg.t, leg.h1
+    va, vb, q_s, q_a, q_b, F_s, gA, gB = leg.va, leg.vb, leg.q_s, leg.q_a, leg.q_b, leg.F_s, leg.grad_a, leg.grad_b
     h2 = f1 * g2 / (2 * rq) - f / (4 * q * rq) + rq * f2 * g2 * g2 / 4
     F_ss = h2 * q_s * q_s
     sa = np.asarray(slope_a, float)
