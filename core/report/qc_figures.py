@@ -129,6 +129,23 @@ def _xy(x, y, keep=None):
     return x[ok], y[ok]
 
 
+def _picks(offset_m, time_s, model_time_s, rejected, excluded) -> tuple:
+    """(offset m, time ms, fitted time ms, excluded, rejected, used) of picks, as drawn.
+
+    An excluded pick is drawn as excluded even when the fit also rejected it.
+    """
+    exc = np.asarray(excluded, bool)
+    rej = np.asarray(rejected, bool) & ~exc
+    return (
+        np.asarray(offset_m, float),
+        np.asarray(time_s, float) * 1e3,
+        np.asarray(model_time_s, float) * 1e3,
+        exc,
+        rej,
+        ~(rej | exc),
+    )
+
+
 class GatherFigure:
     """The QC figure of one gather, built once and redrawn for each gather with :meth:`draw`.
 
@@ -260,12 +277,7 @@ class GatherFigure:
         GatherFigure
             ``self``.
         """
-        x = np.asarray(offset_m, float)
-        t = np.asarray(time_s, float) * 1e3
-        tm = np.asarray(model_time_s, float) * 1e3
-        exc = np.asarray(excluded, bool)
-        rej = np.asarray(rejected, bool) & ~exc
-        used = ~(rej | exc)
+        x, t, tm, exc, rej, used = _picks(offset_m, time_s, model_time_s, rejected, excluded)
         order = np.argsort(x, kind="stable")
         a = self._art
         ax_t2, ax_tx, ax_res = self.axes
@@ -428,12 +440,7 @@ class LineFigure:
         LineFigure
             ``self``.
         """
-        x = np.asarray(offset_m, float)
-        t = np.asarray(time_s, float) * 1e3
-        tm = np.asarray(model_time_s, float) * 1e3
-        exc = np.asarray(excluded, bool)
-        rej = np.asarray(rejected, bool) & ~exc
-        used = ~(rej | exc)
+        x, t, tm, exc, rej, used = _picks(offset_m, time_s, model_time_s, rejected, excluded)
         g = np.asarray(gather, int)
         row = np.asarray(shot_position_m, float)[g] if len(g) else np.zeros(0)
         ax_tx, ax_res = self.axes
