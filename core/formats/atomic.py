@@ -22,7 +22,7 @@ from typing import Iterable, Iterator, List, Tuple, Union
 
 from ..errors import OutputError
 
-__all__ = ["OutputSet", "atomic_path", "check_not_input", "check_output_dir"]
+__all__ = ["OutputSet", "atomic_path", "check_not_input", "check_output_dir", "fsync_path"]
 
 PathLike = Union[str, "os.PathLike[str]"]
 
@@ -71,17 +71,26 @@ def _fsync_file(path: Path) -> None:
         os.fsync(fh.fileno())
 
 
-def _fsync_dir(folder: Path) -> None:
-    """Flush a directory entry (the rename) to disk where the platform allows it."""
-    if os.name != "posix":  # Windows cannot open a directory; its rename is durable enough
+def fsync_path(path: Path, directory: bool = False) -> None:
+    """Flush a file, or a folder's entries (a rename into it), to disk where the platform allows it.
+
+    Parameters
+    ----------
+    path : Path
+        The file or folder.
+    directory : bool
+        ``path`` is a folder: nothing is done on Windows, which cannot open one
+        (its renames are durable enough).
+    """
+    if directory and os.name != "posix":
         return
     try:
-        fd = os.open(folder, os.O_RDONLY)
+        fd = os.open(path, os.O_RDONLY)
     except OSError:  # pragma: no cover
         return
     try:
         os.fsync(fd)
-    except OSError:  # pragma: no cover - some file systems refuse fsync on a directory
+    except OSError:  # pragma: no cover - some file systems refuse fsync on a folder
         pass
     finally:
         os.close(fd)
@@ -148,7 +157,7 @@ def atomic_path(target: PathLike) -> Iterator[Path]:
     except BaseException:
         _remove_quietly(tmp)
         raise
-    _fsync_dir(target.parent)
+    fsync_path(target.parent, directory=True)
 
 
 class OutputSet:
@@ -220,7 +229,7 @@ class OutputSet:
             raise
         self._closed = True
         for folder in sorted({t.parent for _, t in self._staged}):
-            _fsync_dir(folder)
+            fsync_path(folder, directory=True)
         return self.targets
 
     def discard(self) -> None:

@@ -55,6 +55,7 @@ from pathlib import Path
 from typing import Dict, Iterable, List, Mapping, Optional, Tuple, Union
 
 from ..errors import OutputError
+from .atomic import fsync_path
 
 __all__ = ["MANIFEST", "RunFolder", "read_manifest"]
 
@@ -140,21 +141,6 @@ def _exchange_function():
 
 
 _EXCHANGE = _exchange_function()
-
-
-def _fsync_path(path: Path, directory: bool = False) -> None:
-    if directory and os.name != "posix":  # pragma: no cover - Windows cannot open a folder
-        return
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:  # pragma: no cover
-        return
-    try:
-        os.fsync(fd)
-    except OSError:  # pragma: no cover - some file systems refuse fsync on a folder
-        pass
-    finally:
-        os.close(fd)
 
 
 def _rmtree(path: Path) -> None:
@@ -556,7 +542,7 @@ class RunFolder:
             chosen = complete[-1] if complete else (old[-1] if old else None)
             if chosen is not None:
                 os.rename(chosen, self.target)
-                _fsync_path(self.parent, directory=True)
+                fsync_path(self.parent, directory=True)
                 self.recovered.append(f"restored '{self.requested}' from a run killed while swapping")
                 leftovers = [p for p in leftovers if p != chosen]
         for p in leftovers:
@@ -706,7 +692,7 @@ class RunFolder:
             os.fsync(fh.fileno())
         os.replace(tmp, self.staging / MANIFEST)
         for folder in sorted({(self.staging / r).parent for r in rels} | {self.staging}, reverse=True):
-            _fsync_path(folder, directory=True)
+            fsync_path(folder, directory=True)
         self._swap()
         self._committed = True
         return [self.requested / r for r in rels]
@@ -734,7 +720,7 @@ class RunFolder:
                 "in it open in another program? Earlier outputs there are unchanged"
             ) from exc
         self.staging = None
-        _fsync_path(self.parent, directory=True)
+        fsync_path(self.parent, directory=True)
         if old is not None:
             _rmtree(old)
 

@@ -67,6 +67,42 @@ def label_every_contour(contour_lines) -> bool:
     return len({float(level) for level, _xy, is_index in contour_lines if is_index}) < 3
 
 
+def draw_contours(ax, contour_lines, colour, widths=(1.0, 0.4), fontsize: float = 7, zorder=None) -> None:
+    """Draw contours on a map, each index contour (every contour, :func:`label_every_contour`) labelled.
+
+    Parameters
+    ----------
+    ax : matplotlib Axes
+    contour_lines : sequence of (level, xy, is_index)
+        Levels (m) and (n, 2) vertices.
+    colour : str
+        Line colour.
+    widths : (float, float)
+        Line widths (points) of index and intermediate contours.
+    fontsize : float
+        Label size (points).
+    zorder : float or None
+        Drawing order of the lines; their labels one above (None: matplotlib's).
+    """
+    label_all = label_every_contour(contour_lines)
+    label_z = {} if zorder is None else {"zorder": zorder + 1}
+    line_z = {} if zorder is None else {"zorder": zorder}
+    for level, xy, is_index in contour_lines:
+        ax.plot(xy[:, 0], xy[:, 1], color=colour, lw=widths[0] if is_index else widths[1], **line_z)
+        if (is_index or label_all) and len(xy) > 1:  # contours carry their value (m) on the map
+            k = len(xy) // 2
+            ax.text(
+                xy[k, 0],
+                xy[k, 1],
+                f"{level:g}",
+                fontsize=fontsize,
+                ha="center",
+                va="center",
+                bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8},
+                **label_z,
+            )
+
+
 def _figure(width_in: float, height_in: float, dpi: float):
     """A new figure with an Agg canvas, the shared colour maps registered."""
     try:
@@ -170,20 +206,7 @@ def map_figure(
     im = ax.imshow(z, extent=extent, cmap=DEPTH_CMAP, interpolation="nearest")
     cb = fig.colorbar(im, ax=ax, shrink=0.75)
     cb.set_label("depth to reflector (m)")
-    label_all = label_every_contour(contour_lines)
-    for level, xy, is_index in contour_lines:
-        ax.plot(xy[:, 0], xy[:, 1], color=colours.CONTOUR_DEPTH, lw=1.0 if is_index else 0.4)
-        if (is_index or label_all) and len(xy) > 1:  # contours carry their depth, as on the map sheet
-            k = len(xy) // 2
-            ax.text(
-                xy[k, 0],
-                xy[k, 1],
-                f"{level:g}",
-                fontsize=7,
-                ha="center",
-                va="center",
-                bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8},
-            )
+    draw_contours(ax, contour_lines, colours.CONTOUR_DEPTH)  # labelled as on the map sheet
     for line, xy in sorted(station_lines.items()):
         ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0)
         ax.annotate(

@@ -111,21 +111,7 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         interpolation="nearest",
         zorder=1,
     )
-    label_all = figures.label_every_contour(page.contours)
-    for level, xy, is_index in page.contours:
-        ax.plot(xy[:, 0], xy[:, 1], color="0.15", lw=0.9 if is_index else 0.35, zorder=2)
-        if (is_index or label_all) and len(xy) > 1:
-            k = len(xy) // 2
-            ax.text(
-                xy[k, 0],
-                xy[k, 1],
-                f"{level:g}",
-                fontsize=6,
-                ha="center",
-                va="center",
-                zorder=3,
-                bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8},
-            )
+    figures.draw_contours(ax, page.contours, "0.15", widths=(0.9, 0.35), fontsize=6, zorder=2)
     levels = [lv for lv in page.contour_levels if np.any(v < lv) and np.any(v > lv)] if np.any(np.isfinite(v)) else []
     if levels:
         cs = ax.contour(spec.x_centres, spec.y_centres, v, levels=levels, colors="0.1", linewidths=0.8, zorder=2)
