@@ -197,8 +197,9 @@ class TomographyOutcome:
         Why each gather was flagged ("" where not flagged).
     difference_m : ndarray (ny, nx) or None
         Inverted surface minus the kriged gather-fit surface (m).
-    diagnostics : SurfaceDiagnostics or None
-        A kriging of ``kriged_data`` (its variogram, for conditional simulations).
+    variogram : VariogramModel or None
+        The kriging variogram of ``kriged_data`` after their trend (for
+        conditional simulations of the surface).
     kriged_data : tuple of 4 ndarray or None
         ``(x_m, y_m, elevation_m, sigma_m)``: the joint estimate read at the
         gathers' reflector points, and the boreholes (for a conditional
@@ -213,7 +214,7 @@ class TomographyOutcome:
     curvature_flag: Optional[np.ndarray] = None
     curvature_reason: Optional[np.ndarray] = None
     difference_m: Optional[np.ndarray] = None
-    diagnostics: Optional[SurfaceDiagnostics] = None
+    variogram: Optional[VariogramModel] = None
     kriged_data: Optional[Tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = None
     used: Optional[np.ndarray] = None
 
@@ -224,7 +225,7 @@ class TomographyOutcome:
             self.curvature_flag,
             self.curvature_reason,
             self.difference_m,
-            self.diagnostics,
+            self.variogram,
             self.kriged_data,
             self.used,
         )

@@ -41,7 +41,7 @@ from .seismic.structure import resolve_cross_dips, surface_dips
 from .surface.base import SurfaceGrid
 from .surface.contours import contours_layer
 from .surface.corridor import line_corridor
-from .surface.trend import grid_with_trend, predict_with_trend
+from .surface.trend import grid_with_trend, model_with_trend, predict_with_trend
 from .survey.checks import grid_buffer_m
 from .survey.ground import GroundModel
 from .text import printable
@@ -440,7 +440,7 @@ def tomography_step(
     if bh is not None and len(bh):
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
-    _, diag = grid_with_trend(x, y, zz, ss, spec, st, corridor=corridor)
+    model = model_with_trend(x, y, zz, ss, st, corridor=corridor)  # the variogram alone: no grid is made
     flag, reason = curvature_flags(f.velocity_m_s, f.se_velocity_m_s, v_site, v_spread)
     return TomographyOutcome(
         surface=surface,
@@ -448,7 +448,7 @@ def tomography_step(
         curvature_flag=flag & (f.status == "ok") & mapped,
         curvature_reason=reason,
         difference_m=surface.z - start.z,
-        diagnostics=SurfaceDiagnostics.from_surface(diag),
+        variogram=model["variogram"],
         kriged_data=(x, y, zz, ss),  # the joint estimate at the points (for conditional simulation)
         used=use,
     )

@@ -51,16 +51,14 @@ def surface_conditioning(result):
     st = result.survey.settings
     tomo = result.tomography
     if result.method_used == "tomography" and tomo is not None:
-        diag = tomo.diagnostics
-        data = tomo.kriged_data
-        if diag is None or data is None:
+        vario, data = tomo.variogram, tomo.kriged_data
+        if data is None:
             return None, "the joint inversion's kriged data are not available"
         x, y, _, s = data
     else:
-        diag = result.kriged_diagnostics
+        vario = result.kriged_diagnostics.variogram
         bh = result.survey.boreholes
         x, y, _, s = surface_data(result.fit.points, st.reflector, bh if bh is not None and len(bh) else None)
-    vario = diag.variogram
     if vario is None:
         return None, f'the {result.method_used} surface has no variogram (choose surface_method = "kriging")'
     return (np.asarray(x, float), np.asarray(y, float), np.asarray(s, float) ** 2, vario, st.neighbours), ""
