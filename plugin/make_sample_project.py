@@ -8,13 +8,23 @@ Usage (with QGIS's Python)::
 
 The results folder is what ``rockhead run survey.toml --out results`` writes.
 The project stores paths relative to itself, so the sample folder can be moved.
+An existing project is replaced only when its content changes: QGIS stamps
+every save with the time and draws new layer ids, and a rebuild from the same
+results must not show the shipped file as modified.
 """
 
 from __future__ import annotations
 
 import argparse
+import io
 import os
+import re
 import sys
+import xml.etree.ElementTree as ET
+import zipfile
+from pathlib import Path
+
+os.environ.setdefault("QT_HASH_SEED", "0")  # before Qt starts: attribute order in the XML the same on every build
 
 from qgis.core import (
     QgsApplication,
@@ -31,6 +41,14 @@ from .qc_dock import PROJECT_KEY_RESULTS, PROJECT_KEY_SURVEY, PROJECT_SCOPE
 from .styling import group_layers, load_results
 
 TITLE = "Tarnwick Creek bridge (demo): bedrock reflector"
+AUTHOR = "Rockhead sample project builder"
+SAVE_STAMPS = ("saveDateTime", "saveUser", "saveUserFull")
+# parts QGIS writes in the order of its layers' random ids or addresses: (parent, how to key a child)
+UNORDERED = (
+    ("projectlayers", lambda child: child.findtext("id", "")),
+    ("individual-layer-settings", lambda child: child.get("id", "")),
+)
+_UUID = re.compile(r"[0-9a-f]{8}([-_])[0-9a-f]{4}\1[0-9a-f]{4}\1[0-9a-f]{4}\1[0-9a-f]{12}")
 
 
 def build_project(results_dir, project_path, survey_path=None, title=TITLE, project=None):
@@ -46,6 +64,9 @@ def build_project(results_dir, project_path, survey_path=None, title=TITLE, proj
     crs = layers[0].crs()
     project.setCrs(crs)
     project.setTitle(title)
+    metadata = project.metadata()
+    metadata.setAuthor(AUTHOR)  # not the login of whoever rebuilt it
+    project.setMetadata(metadata)
     extent = full_extent(layers)
     project.viewSettings().setDefaultViewExtent(QgsReferencedRectangle(extent, crs))
     if survey_path:
@@ -54,6 +75,54 @@ def build_project(results_dir, project_path, survey_path=None, title=TITLE, proj
     if not project.write():
         raise RuntimeError(f"could not write {project_path}: {project.error()}")
     return project, group
+
+
+def project_content(qgz):
+    """The project XML of a .qgz (path or file object) without what changes on every save, or None when unreadable.
+
+    Left out: the save stamps (time, user, the metadata's creation time); the random ids QGIS gives layers and
+    rules (numbered in order of appearance instead); the order of attributes
+    (canonical XML, W3C C14N 2.0); the order of the layers and of their
+    snapping settings. Other hash-ordered parts (attributes of the XML that style
+    options hold as text) are fixed by ``QT_HASH_SEED=0``, set before Qt starts.
+    """
+    try:
+        with zipfile.ZipFile(qgz) as zf:
+            name = next(n for n in zf.namelist() if n.endswith(".qgs"))
+            root = ET.fromstring(zf.read(name))
+    except (OSError, zipfile.BadZipFile, StopIteration, ET.ParseError):
+        return None
+    for key in SAVE_STAMPS:
+        root.attrib.pop(key, None)
+    for metadata in root.iter("projectMetadata"):
+        for stamp in metadata.findall("creation"):
+            metadata.remove(stamp)
+    ids: dict = {}
+    root = ET.fromstring(_UUID.sub(lambda m: f"id{ids.setdefault(m.group(0), len(ids))}", ET.tostring(root, "unicode")))
+    for tag, key in UNORDERED:
+        for parent in root.iter(tag):
+            parent[:] = sorted(parent, key=key)
+    return ET.canonicalize(ET.tostring(root, encoding="unicode"), strip_text=True)
+
+
+def write_if_changed(results_dir, project_path, survey_path=None, title=TITLE):
+    """Build the project at ``project_path``; keep the old file's bytes when its content is the same.
+
+    Returns True when the content changed. QGIS names the project inside a
+    .qgz after the file and stores paths relative to it, so the project is
+    written in place; an unchanged one gets its earlier bytes back, moved in
+    over it in one step.
+    """
+    final = Path(project_path)
+    before = final.read_bytes() if final.is_file() else None
+    project, _ = build_project(results_dir, final, survey_path, title)
+    project.clear()
+    if before is None or project_content(final) != project_content(io.BytesIO(before)):
+        return True
+    staged = final.with_name(f".{final.name}.keep")
+    staged.write_bytes(before)
+    os.replace(staged, final)
+    return False
 
 
 def full_extent(layers) -> QgsRectangle:
@@ -101,11 +170,15 @@ def main(argv=None) -> int:
     app = QgsApplication([], False)
     app.initQgis()
     try:
-        project, group = build_project(args.results, args.project, args.survey)
         if args.png:
+            project, group = build_project(args.results, args.project, args.survey)
             render_png(group_layers(group), args.png, project.crs())
-        print(args.project)
-        project.clear()
+            project.clear()
+            print(args.project)
+        elif write_if_changed(args.results, args.project, args.survey):
+            print(f"{args.project}: rebuilt from {args.results}")
+        else:
+            print(f"{args.project}: unchanged (same layers, styles and legends as {args.results})")
     finally:
         app.exitQgis()
     return 0

@@ -7,6 +7,7 @@ right-hand rule, FGDC-STD-013-2006 symbol); the label's pixels appear beside
 the symbol on the dip side.
 """
 
+import io
 import math
 import os
 import shutil
@@ -316,6 +317,25 @@ def test_sample_project_builder(qgis_app, core_results, tmp_path):
     sym = dips.renderer().rootRule().children()[0].symbol()
     assert "strike_deg" in sym.dataDefinedAngle().expressionString()
     project.clear()
+
+
+def test_sample_project_rebuild_keeps_an_unchanged_file(qgis_app, core_results, tmp_path):
+    """A rebuild from the same results leaves the .qgz's bytes alone (QGIS stamps each save with the time
+    and new random layer ids: the demo must not show the shipped project as modified); a real change is written."""
+    from qgis.core import QgsProject
+    from rockhead.plugin.make_sample_project import project_content, write_if_changed
+
+    out_dir, _ = core_results
+    shutil.copytree(out_dir, tmp_path / "results")
+    qgz = tmp_path / "demo.qgz"
+    assert write_if_changed(tmp_path / "results", qgz)  # new
+    first = qgz.read_bytes()
+    assert not write_if_changed(tmp_path / "results", qgz)
+    assert qgz.read_bytes() == first
+    assert not (set(p.name for p in tmp_path.iterdir()) - {"results", "demo.qgz"})  # nothing left beside it
+    assert write_if_changed(tmp_path / "results", qgz, title="another title")
+    assert qgz.read_bytes() != first and project_content(qgz) != project_content(io.BytesIO(first))
+    QgsProject.instance().clear()
 
 
 # --------------------------------------------------------------------------------- the shipped project
