@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from contextlib import nullcontext
 from dataclasses import replace
 from pathlib import Path
 from typing import List, Optional
@@ -51,16 +52,20 @@ def with_design(result: RunResult, progress=None) -> RunResult:
     return result
 
 
-def write_outputs(result: RunResult, out_dir, progress=None, gather_figures: str = "flagged") -> List[Path]:
+def write_outputs(
+    result: RunResult, out_dir, progress=None, gather_figures: str = "flagged", workers=None
+) -> List[Path]:
     """Write every output of ``result`` into ``out_dir`` (a folder path or an open RunFolder), as one set.
 
     With ``[design] elevation_m`` and no design answers in ``result`` yet,
     they are computed first (:func:`with_design`). Every line has its QC
     figure; ``gather_figures`` chooses the gathers with one of their own:
-    ``all``, ``flagged`` (status not ok) or ``none``.
+    ``all``, ``flagged`` (status not ok) or ``none``. ``workers``: the
+    drawing processes forked for ``out_dir`` (an open RunFolder) before the
+    computation (:func:`~.products.outputs.drawing_workers`), if any.
     """
     progress = progress or NullProgress()
-    return outputs.write_all(with_design(result, progress), out_dir, progress, gather_figures)
+    return outputs.write_all(with_design(result, progress), out_dir, progress, gather_figures, workers)
 
 
 def open_output_folder(survey, out_dir) -> RunFolder:
@@ -93,7 +98,10 @@ def run(
 
     The output folder is checked and locked before the computation starts (a
     second run into it at the same time refuses at once) and replaced as a
-    whole at the end (:class:`~.formats.runfolder.RunFolder`). Returns the
+    whole at the end (:class:`~.formats.runfolder.RunFolder`). Where a child
+    process can be forked, the processes that draw the QC figures, the report
+    and the printed sheets are started then and import what they need while
+    the computation runs (:func:`~.products.outputs.drawing_workers`). Returns the
     :class:`~.results.RunResult` with its design answers and ``outputs``,
     the files written.
 
@@ -114,12 +122,19 @@ def run(
     progress = progress or NullProgress()
     survey = check_for_run(load_survey(survey_path, confine_inputs=confine_inputs))
     engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
-    with open_output_folder(survey, out_dir) as folder:
+    with open_output_folder(survey, out_dir) as folder, _optional(outputs.drawing_workers(folder)) as workers:
         result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
         stage = SubProgress(progress, 85, 100)
         result = with_design(result, stage)
-        written = write_outputs(result, folder, stage, gather_figures=figures_for(result, gather_figures))
+        written = write_outputs(
+            result, folder, stage, gather_figures=figures_for(result, gather_figures), workers=workers
+        )
     return replace(result, outputs=tuple(written))
+
+
+def _optional(context):
+    """``context``, or a context manager giving None for None."""
+    return context if context is not None else nullcontext()
 
 
 def figures_for(result: RunResult, asked: Optional[str] = None) -> str:

@@ -24,7 +24,7 @@ import sys
 from pathlib import Path
 from typing import Callable, List, Optional, Sequence, Tuple
 
-__all__ = ["BackgroundFiles", "fork_is_safe"]
+__all__ = ["BackgroundFiles", "EarlyWorkers", "fork_is_safe"]
 
 Job = Tuple[Path, Callable[[], bytes]]
 
@@ -162,3 +162,218 @@ class BackgroundFiles:
             self.finish()
         else:
             self.cancel()
+
+
+#: A worker: (warm, work). ``warm()`` runs while the parent computes (imports, nothing the result
+#: decides); ``work(payload)`` gets what the parent hands over and returns the relative paths of the
+#: files it wrote, in order.
+Worker = Tuple[Callable[[], None], Callable[[object], List[str]]]
+
+
+class EarlyWorkers:
+    """Child processes forked before the computation, warmed up while it runs, handed its result after.
+
+    A run's drawings (QC figures, the report, the printed sheets) need
+    matplotlib and its PDF backend, a second or two of imports; forked before
+    the computation, the children import them on the second core while the
+    parent computes, then draw in parallel with the parent's own writing. The
+    parent hands the result over pickled (through an unlinked temporary file,
+    so that a child still warming up never blocks it); each child writes its
+    files into the staging folder and sends back their relative paths (and
+    the warnings it met) through a pipe.
+
+    Anything unusual leaves the work to the parent, with the files and errors
+    of a run without children: no child where :func:`fork_is_safe` says no, a
+    payload that cannot be pickled (:meth:`hand_over` returns False), or a
+    child that fails (:meth:`collect` returns None). Children die with the
+    parent (Linux) and are killed on :meth:`cancel` or an exception in the
+    ``with`` block.
+
+    Parameters
+    ----------
+    workers : sequence of (warm, work)
+        One child each.
+    parallel : bool, optional
+        Fork the children; default :func:`fork_is_safe`.
+    close_in_child : sequence of int
+        File descriptors every child closes first (an inherited lock).
+    """
+
+    def __init__(self, workers: Sequence[Worker], parallel: Optional[bool] = None, close_in_child: Sequence[int] = ()):
+        self.workers = list(workers)
+        self.pids: List[Optional[int]] = []
+        self._go: List[Optional[int]] = []  # parent's write ends: "the payload is there, n bytes"
+        self._back: List[Optional[int]] = []  # parent's read ends: the child's answer
+        self._payload = None
+        self.handed = False
+        if self.workers and (fork_is_safe() if parallel is None else parallel):
+            self._start(tuple(close_in_child))
+
+    @property
+    def running(self) -> bool:
+        """True while there are children waiting for, or working on, a payload."""
+        return any(pid is not None for pid in self.pids)
+
+    def _start(self, close_in_child: Tuple[int, ...]) -> None:
+        import tempfile
+
+        self._payload = tempfile.TemporaryFile()
+        pipes = [(os.pipe(), os.pipe()) for _ in self.workers]
+        sys.stdout.flush()
+        sys.stderr.flush()
+        parent = os.getpid()
+        for i, (warm, work) in enumerate(self.workers):
+            (go_r, go_w), (back_r, back_w) = pipes[i]
+            pid = os.fork()
+            if pid == 0:  # the child: never returns
+                mine = {go_r, back_w}
+                for fd in [fd for pair in pipes for p in pair for fd in p if fd not in mine] + list(close_in_child):
+                    try:
+                        os.close(fd)
+                    except OSError:
+                        pass
+                _child(parent, warm, work, self._payload.fileno(), go_r, back_w)
+            self.pids.append(pid)
+        for (go_r, go_w), (back_r, back_w) in pipes:
+            os.close(go_r)
+            os.close(back_w)
+            self._go.append(go_w)
+            self._back.append(back_r)
+
+    def hand_over(self, payload) -> bool:
+        """Give ``payload`` to every child; False (children sent away) without children or a picklable payload."""
+        if not self.running or self._payload is None:
+            return False
+        import pickle
+
+        try:
+            data = pickle.dumps(payload, protocol=pickle.HIGHEST_PROTOCOL)
+        except Exception:  # an unpicklable part: the parent does the work itself
+            self.cancel()
+            return False
+        self._payload.write(data)
+        self._payload.flush()
+        size = len(data).to_bytes(8, "little")
+        for i, fd in enumerate(self._go):
+            if fd is not None:
+                try:
+                    os.write(fd, size)
+                except OSError:  # the child is gone: collect() says so
+                    pass
+                os.close(fd)
+                self._go[i] = None
+        self.handed = True
+        return True
+
+    def collect(self, index: int) -> Optional[List[str]]:
+        """Wait for child ``index``; the relative paths it wrote, or None when it did not finish its work.
+
+        The warnings the child met are issued again here.
+        """
+        pid = self.pids[index] if index < len(self.pids) else None
+        if pid is None or not self.handed:
+            return None
+        answer = _read_all(self._back[index])
+        self._back[index] = None
+        _, status = os.waitpid(pid, 0)
+        self.pids[index] = None
+        if status != 0 or not answer:
+            return None
+        import pickle
+
+        try:
+            rels, caught = pickle.loads(answer)
+        except Exception:
+            return None
+        import warnings
+
+        for category, message in caught:
+            warnings.warn(message, category, stacklevel=2)
+        return list(rels)
+
+    def cancel(self) -> None:
+        """Stop every child still running and wait for it."""
+        for i, pid in enumerate(self.pids):
+            if pid is None:
+                continue
+            try:
+                os.kill(pid, signal.SIGKILL)
+            except ProcessLookupError:  # pragma: no cover - already gone
+                pass
+            os.waitpid(pid, 0)
+            self.pids[i] = None
+        for fds in (self._go, self._back):
+            for i, fd in enumerate(fds):
+                if fd is not None:
+                    os.close(fd)
+                    fds[i] = None
+        self.close()
+
+    def close(self) -> None:
+        """Release the payload file (the children, if any, are the caller's to collect or cancel)."""
+        if self._payload is not None:
+            self._payload.close()
+            self._payload = None
+
+    def __enter__(self) -> EarlyWorkers:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        self.cancel()
+
+
+def _read_all(fd: int) -> bytes:
+    chunks = []
+    while True:
+        data = os.read(fd, 1 << 16)
+        if not data:
+            break
+        chunks.append(data)
+    os.close(fd)
+    return b"".join(chunks)
+
+
+def _child(parent: int, warm, work, payload_fd: int, go_fd: int, back_fd: int) -> None:
+    """A worker's life: warm up, wait for the payload, work, answer and leave by ``os._exit``."""
+    code = 1
+    try:
+        _die_with(parent)
+        try:
+            warm()
+        except Exception:  # the work meets the same problem and reports it
+            pass
+        size_bytes = b""
+        while len(size_bytes) < 8:
+            data = os.read(go_fd, 8 - len(size_bytes))
+            if not data:  # no payload: the parent does the work itself, or the run ended
+                os._exit(0)
+            size_bytes += data
+        size = int.from_bytes(size_bytes, "little")
+        chunks, offset = [], 0
+        while offset < size:
+            data = os.pread(payload_fd, size - offset, offset)
+            if not data:
+                raise EOFError("the payload is shorter than announced")
+            chunks.append(data)
+            offset += len(data)
+        import pickle
+        import warnings
+
+        payload = pickle.loads(b"".join(chunks))
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            rels = work(payload)
+        if os.getppid() == parent:
+            met = [(w.category, str(w.message)) for w in caught]
+            try:
+                answer = pickle.dumps(([str(r) for r in rels], met))
+            except Exception:  # a warning class that does not pickle: said as a UserWarning
+                answer = pickle.dumps(([str(r) for r in rels], [(UserWarning, m) for _, m in met]))
+            view = memoryview(answer)
+            while view:
+                view = view[os.write(back_fd, view) :]
+            code = 0
+    except BaseException:  # the parent sees no answer and does the work itself, meeting the error there
+        code = 1
+    finally:
+        os._exit(code)

@@ -279,7 +279,7 @@ def line_qc_figures(result: RunResult, lines=None):
         yield line, file_stem("line", line, used=used) + ".png", png
 
 
-def write_all(result: RunResult, out_dir, progress, gather_figures: str = "flagged") -> list:
+def write_all(result: RunResult, out_dir, progress, gather_figures: str = "flagged", workers=None) -> list:
     """Write every output into ``out_dir`` as one set; returns the files written.
 
     ``out_dir`` is a folder path or an open :class:`~.runfolder.RunFolder`
@@ -288,10 +288,12 @@ def write_all(result: RunResult, out_dir, progress, gather_figures: str = "flagg
     folder) becomes :class:`~.errors.OutputError`; the staged files are
     removed and the previous outputs stay as they were. Every line gets its
     QC figure (:func:`line_qc_figures`); ``gather_figures`` chooses the
-    gathers that get one of their own (:func:`figure_gathers`).
+    gathers that get one of their own (:func:`figure_gathers`). ``workers``
+    are the :func:`drawing_workers` forked for ``out_dir`` (an open RunFolder)
+    before the computation, if any.
     """
     if isinstance(out_dir, RunFolder):
-        return _guarded(_write_all, result, out_dir, progress, gather_figures)
+        return _guarded(_write_all, result, out_dir, progress, gather_figures, workers)
     with RunFolder(out_dir, result.survey.input_files()) as folder:
         return _guarded(_write_all, result, folder, progress, gather_figures)
 
@@ -401,48 +403,133 @@ def write_map(result, out_dir, progress) -> list:
     return written
 
 
-def _import_matplotlib() -> None:
+def _import_matplotlib(pdf: bool = False) -> None:
     import importlib
 
+    names = ["matplotlib.figure", "matplotlib.backends.backend_agg"]
+    if pdf:
+        names.append("matplotlib.backends.backend_pdf")
     try:
-        for name in ("matplotlib.figure", "matplotlib.backends.backend_agg"):
+        for name in names:
             importlib.import_module(name)
     except ImportError:  # said where a figure is drawn (MissingDependencyError)
         pass
 
 
-def _write_all(result, folder: RunFolder, progress, gather_figures) -> list:
-    from ..handoff.steps import sections_step
+def _draw_documents(result, folder: RunFolder, progress, gather_figures, layers, sections) -> None:
+    """Draw every line's QC figure, the chosen gathers' and the report, into ``folder``."""
     from ..report.content import build_report
+
+    line_figures = {}
+    for line, name, png in line_qc_figures(result):
+        folder.path(f"qc/{name}").write_bytes(png)
+        line_figures[line] = (name, png)
+        check_cancel(progress)
+    progress.set_progress(35)
+    qc_figures = {}
+    n_figures = max(len(figure_gathers(result, gather_figures)), 1)
+    for i, (k, name, png) in enumerate(gather_qc_figures(result, gather_figures)):
+        folder.path(f"qc/{name}").write_bytes(png)
+        qc_figures[k] = (name, png)
+        check_cancel(progress)
+        progress.set_progress(35 + 40 * (i + 1) / n_figures)
+    html = build_report(result, layers, qc_figures, sections, line_figures)
+    folder.path("report.html").write_text(html, encoding="utf-8")
+    check_cancel(progress)
+
+
+#: The drawing workers of :func:`drawing_workers`, by index
+DOCUMENTS, SHEETS = 0, 1
+
+
+def drawing_workers(folder: RunFolder, parallel=None):
+    """Two child processes that draw a run's documents, forked now (before the computation) and warmed up meanwhile.
+
+    One draws the QC figures and the report, the other the printed sheets
+    (:class:`~.background.EarlyWorkers`); :func:`write_all` hands them the
+    result and writes the map products meanwhile. None where there is no
+    child to be had (:func:`~.background.fork_is_safe`); either way the files
+    are those of a run in one process.
+
+    Parameters
+    ----------
+    folder : RunFolder
+        The open output folder; the children write into its staging folder.
+    parallel : bool, optional
+        Fork; default :func:`~.background.fork_is_safe`.
+
+    Returns
+    -------
+    EarlyWorkers or None
+        To be used as a context manager around the computation and :func:`write_all`.
+    """
+    from ..progress import NullProgress
+    from .background import EarlyWorkers, fork_is_safe
+
+    if not (fork_is_safe() if parallel is None else parallel):
+        return None
+
+    def warm_documents() -> None:
+        _import_matplotlib()
+        from ..report import content, qc_figures  # noqa: F401 - imported ahead, while the parent computes
+
+    def documents(payload) -> list:
+        result, sections, gather_figures = payload
+        before = len(folder.planned)
+        _draw_documents(result, folder, NullProgress(), gather_figures, result_layers(result, sections), sections)
+        return folder.planned[before:]
+
+    def warm_sheets() -> None:
+        _import_matplotlib(pdf=True)
+        from ..report import map_sheet, section_sheet  # noqa: F401 - imported ahead, while the parent computes
+
+    def sheets(payload) -> list:
+        result, sections, _ = payload
+        jobs = sheet_jobs(folder, folder.requested, result, sections)
+        for path, make in jobs:
+            path.write_bytes(make())
+        return [str(path.relative_to(folder.staging)) for path, _ in jobs]
+
+    return EarlyWorkers(
+        [(warm_documents, documents), (warm_sheets, sheets)],
+        parallel=True,
+        close_in_child=folder.lock_descriptors(),
+    )
+
+
+def _write_all(result, folder: RunFolder, progress, gather_figures, workers=None) -> list:
+    from ..handoff.steps import sections_step
     from .background import BackgroundFiles, fork_is_safe
 
     sections = sections_step(result)
     layers = result_layers(result, sections)
     sheets = sheet_jobs(folder, folder.requested, result, sections)
-    parallel = fork_is_safe()
-    if parallel:  # matplotlib imported once, for both processes
-        _import_matplotlib()
-    # the printed sheets are drawn in a child process, where there is a core for it, while this one writes the rest
-    with BackgroundFiles(sheets, parallel=parallel, close_in_child=folder.lock_descriptors()):
+    if workers is not None and workers.hand_over((result, sections, gather_figures)):
+        # the documents and the sheets are drawn by the workers meanwhile; what one did not finish is drawn here
         _stage_map(folder, result, layers, progress)
         write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
         progress.set_progress(25)
-        line_figures = {}
-        for line, name, png in line_qc_figures(result):
-            folder.path(f"qc/{name}").write_bytes(png)
-            line_figures[line] = (name, png)
-            check_cancel(progress)
-        progress.set_progress(35)
-        qc_figures = {}
-        n_figures = max(len(figure_gathers(result, gather_figures)), 1)
-        for i, (k, name, png) in enumerate(gather_qc_figures(result, gather_figures)):
-            folder.path(f"qc/{name}").write_bytes(png)
-            qc_figures[k] = (name, png)
-            check_cancel(progress)
-            progress.set_progress(35 + 40 * (i + 1) / n_figures)
-        html = build_report(result, layers, qc_figures, sections, line_figures)
-        folder.path("report.html").write_text(html, encoding="utf-8")
-        check_cancel(progress)
+        drawn = workers.collect(DOCUMENTS)
+        if drawn is None:
+            _draw_documents(result, folder, progress, gather_figures, layers, sections)
+        else:
+            for rel in drawn:
+                folder.path(rel)
+        progress.set_progress(75)
+        if workers.collect(SHEETS) is None:
+            for path, make in sheets:
+                path.write_bytes(make())
+                check_cancel(progress)
+    else:
+        parallel = fork_is_safe()
+        if parallel:  # matplotlib imported once, for both processes
+            _import_matplotlib()
+        # the printed sheets are drawn in a child process, where there is a core for it, while this one writes the rest
+        with BackgroundFiles(sheets, parallel=parallel, close_in_child=folder.lock_descriptors()):
+            _stage_map(folder, result, layers, progress)
+            write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
+            progress.set_progress(25)
+            _draw_documents(result, folder, progress, gather_figures, layers, sections)
     progress.set_progress(90)
     written = folder.commit()
     progress.set_progress(100)

@@ -137,6 +137,19 @@ class GroundModel:
         self._to_dem: Optional[pyproj.Transformer] = None
         self._outside: Optional[Callable[[np.ndarray, np.ndarray], np.ndarray]] = None  # stations only
         self.slope_bound_ = 0.0
+        self._recipe: Optional[tuple] = None  # (builder, arguments) that make this model again (pickling)
+
+    def __reduce__(self):
+        """Pickle as the recipe that built the model (its samplers are closures); the model is built again.
+
+        Raises
+        ------
+        TypeError
+            A model made from a sampler directly, not by one of the ``from_*`` builders.
+        """
+        if self._recipe is None:
+            raise TypeError("a GroundModel made from a sampler directly cannot be pickled")
+        return (_rebuild, self._recipe)
 
     # ---------------------------------------------------------------- DEM
     @classmethod
@@ -211,6 +224,7 @@ class GroundModel:
             raise InputFileError(name, None, None, f"DEM has {ny} x {nx} cells; at least 2 x 2 are needed")
         if not np.any(np.isfinite(values)):
             raise InputFileError(name, None, None, "DEM has no valid cell (all nodata)")
+        recipe = ("dem", (raster, working_crs, name))
         x = raster.x_centres
         y = raster.y_centres
         if x[1] < x[0]:
@@ -248,6 +262,7 @@ class GroundModel:
             crs_note += f", sampled through a transformation from '{work.name}'"
         cells = f"{nx} x {ny} cells of {abs(raster.dx):g} x {abs(raster.dy):g}"
         model.description_ = f"{name} ({cells}, {crs_note})"
+        model._recipe = recipe
         return model
 
     # ----------------------------------------------------------- stations
@@ -272,11 +287,17 @@ class GroundModel:
         GeoreferenceError
             Arrays of different lengths, or no station with finite x, y and z.
         """
-        from scipy.spatial import QhullError, cKDTree
-
         x = np.asarray(x_m, dtype=float).ravel()
         y = np.asarray(y_m, dtype=float).ravel()
         z = np.asarray(z_m, dtype=float).ravel()
+        model = cls._stations_model(x, y, z)
+        model._recipe = ("stations", (x, y, z))
+        return model
+
+    @classmethod
+    def _stations_model(cls, x: np.ndarray, y: np.ndarray, z: np.ndarray) -> GroundModel:
+        from scipy.spatial import QhullError, cKDTree
+
         if not (len(x) == len(y) == len(z)):
             raise GeoreferenceError(f"station arrays differ in length: x {len(x)}, y {len(y)}, z {len(z)}")
         ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(z)
@@ -442,6 +463,16 @@ class GroundModel:
     def __repr__(self) -> str:
         """Return the source and description."""
         return f"GroundModel({self.source_}: {self.description_})"
+
+
+def _rebuild(kind: str, args: tuple) -> GroundModel:
+    """The ground model a recipe of :meth:`GroundModel.__reduce__` describes, built again (warnings said once)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if kind == "dem":
+            raster, working_crs, name = args
+            return GroundModel.from_dem(raster, working_crs, name=name)
+        return GroundModel.from_stations(*args)
 
 
 def _segment_distance(px: np.ndarray, py: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
