@@ -22,7 +22,7 @@ import os
 import signal
 import sys
 from pathlib import Path
-from typing import Callable, List, Optional, Sequence, Tuple
+from typing import IO, Callable, List, Optional, Sequence, Tuple
 
 __all__ = ["BackgroundFiles", "EarlyWorkers", "fork_is_safe"]
 
@@ -204,7 +204,7 @@ class EarlyWorkers:
         self.pids: List[Optional[int]] = []
         self._go: List[Optional[int]] = []  # parent's write ends: "the payload is there, n bytes"
         self._back: List[Optional[int]] = []  # parent's read ends: the child's answer
-        self._payload = None
+        self._payload: Optional[IO[bytes]] = None
         self.handed = False
         if self.workers and (fork_is_safe() if parallel is None else parallel):
             self._start(tuple(close_in_child))
@@ -217,7 +217,7 @@ class EarlyWorkers:
     def _start(self, close_in_child: Tuple[int, ...]) -> None:
         import tempfile
 
-        self._payload = tempfile.TemporaryFile()
+        payload = self._payload = tempfile.TemporaryFile()
         pipes = [(os.pipe(), os.pipe()) for _ in self.workers]
         sys.stdout.flush()
         sys.stderr.flush()
@@ -232,7 +232,7 @@ class EarlyWorkers:
                         os.close(fd)
                     except OSError:
                         pass
-                _child(parent, warm, work, self._payload.fileno(), go_r, back_w)
+                _child(parent, warm, work, payload.fileno(), go_r, back_w)
             self.pids.append(pid)
         for (go_r, go_w), (back_r, back_w) in pipes:
             os.close(go_r)
@@ -271,9 +271,10 @@ class EarlyWorkers:
         The warnings the child met are issued again here.
         """
         pid = self.pids[index] if index < len(self.pids) else None
-        if pid is None or not self.handed:
+        back = self._back[index] if index < len(self._back) else None
+        if pid is None or back is None or not self.handed:
             return None
-        answer = _read_all(self._back[index])
+        answer = _read_all(back)
         self._back[index] = None
         _, status = os.waitpid(pid, 0)
         self.pids[index] = None

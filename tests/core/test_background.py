@@ -111,3 +111,153 @@ def test_the_child_lets_go_of_the_run_folders_lock(tmp_path):
         os.fstat(fd)  # still open here: the run keeps its lock
         folder.commit()
     assert folder.lock_descriptors() == []
+
+
+# ------------------------------------------------------------------ workers forked before the computation
+
+
+def _write_pid(folder):
+    def work(payload):
+        (folder / payload).write_text(str(os.getpid()))
+        return [payload]
+
+    return work
+
+
+@needs_fork
+def test_early_workers_warm_up_then_get_the_payload(tmp_path):
+    """Each child warms up on its own (its state never reaches the parent), then works on the handed-over payload."""
+    from rockhead.core.products.background import EarlyWorkers
+
+    warmed = []
+
+    def warm():
+        warmed.append(os.getpid())
+        (tmp_path / f"warm_{os.getpid()}").touch()
+
+    def work(payload):
+        name, data = payload
+        (tmp_path / name).write_bytes(data + str(len(warmed)).encode())  # warmed once, in this process
+        return [name]
+
+    with EarlyWorkers([(warm, work)], parallel=True) as workers:
+        assert workers.running
+        assert workers.hand_over(("a.bin", bytes(range(10))))
+        assert workers.collect(0) == ["a.bin"]
+    assert (tmp_path / "a.bin").read_bytes() == bytes(range(10)) + b"1"
+    assert warmed == []  # the warm-up ran in the child's memory only
+    assert len(list(tmp_path.glob("warm_*"))) == 1
+
+
+@needs_fork
+def test_early_workers_each_do_their_own_work(tmp_path):
+    from rockhead.core.products.background import EarlyWorkers
+
+    def work_as(name):
+        def work(payload):
+            (tmp_path / name).write_text(f"{payload} {os.getpid()}")
+            return [name]
+
+        return work
+
+    with EarlyWorkers([(lambda: None, work_as("one")), (lambda: None, work_as("two"))], parallel=True) as workers:
+        assert workers.hand_over("payload")
+        assert workers.collect(1) == ["two"]
+        assert workers.collect(0) == ["one"]
+    pids = {(tmp_path / n).read_text().split()[1] for n in ("one", "two")}
+    assert len(pids) == 2 and str(os.getpid()) not in pids  # two children, neither the parent
+    assert all((tmp_path / n).read_text().startswith("payload ") for n in ("one", "two"))
+
+
+@needs_fork
+def test_a_payload_that_does_not_pickle_leaves_the_work_here(tmp_path):
+    from rockhead.core.products.background import EarlyWorkers
+
+    with EarlyWorkers([(lambda: None, _write_pid(tmp_path))], parallel=True) as workers:
+        assert not workers.hand_over(lambda: "a closure does not pickle")
+        assert not workers.running  # sent away
+        assert workers.collect(0) is None  # the caller does the work itself
+    assert list(tmp_path.iterdir()) == []
+
+
+@needs_fork
+def test_a_failing_worker_answers_none(tmp_path):
+    """The caller then does the work itself and meets the error where it can be handled."""
+    from rockhead.core.products.background import EarlyWorkers
+
+    def work(payload):
+        raise ValueError("no such page")
+
+    with EarlyWorkers([(lambda: None, work)], parallel=True) as workers:
+        assert workers.hand_over("x")
+        assert workers.collect(0) is None
+
+
+@needs_fork
+def test_a_worker_s_warnings_are_issued_in_the_parent():
+    import warnings
+
+    from rockhead.core.products.background import EarlyWorkers
+
+    def work(payload):
+        warnings.warn(f"glyph missing in {payload}", UserWarning, stacklevel=1)
+        return []
+
+    with EarlyWorkers([(lambda: None, work)], parallel=True) as workers:
+        assert workers.hand_over("the title")
+        with pytest.warns(UserWarning, match="glyph missing in the title"):
+            assert workers.collect(0) == []
+
+
+@needs_fork
+def test_an_error_before_the_hand_over_stops_the_workers(tmp_path):
+    import time
+
+    def warm():
+        time.sleep(30)
+
+    start = time.perf_counter()
+    from rockhead.core.products.background import EarlyWorkers
+
+    with pytest.raises(RuntimeError, match="computation failed"):
+        with EarlyWorkers([(warm, _write_pid(tmp_path))], parallel=True) as workers:
+            raise RuntimeError("computation failed")
+    assert time.perf_counter() - start < 10  # killed, not waited for (the warm-up would take 30 s)
+    assert not workers.running
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_no_early_workers_without_fork(tmp_path):
+    from rockhead.core.products.background import EarlyWorkers
+
+    with EarlyWorkers([(lambda: None, _write_pid(tmp_path))], parallel=False) as workers:
+        assert not workers.running
+        assert not workers.hand_over("a.txt")
+    assert list(tmp_path.iterdir()) == []
+
+
+@needs_fork
+def test_early_workers_let_go_of_the_run_folders_lock(tmp_path):
+    from rockhead.core.formats.runfolder import RunFolder
+    from rockhead.core.products.background import EarlyWorkers
+
+    with RunFolder(tmp_path / "out", {}) as folder:
+        (fd,) = folder.lock_descriptors()
+
+        def work(payload):
+            try:
+                os.fstat(fd)
+                state = "open"
+            except OSError:
+                state = "closed"
+            folder.path("state.txt").write_text(state)
+            return ["state.txt"]
+
+        with EarlyWorkers([(lambda: None, work)], parallel=True, close_in_child=folder.lock_descriptors()) as w:
+            assert w.hand_over(None)
+            for rel in w.collect(0):
+                folder.path(rel)
+        assert (folder.staging / "state.txt").read_text() == "closed"
+        os.fstat(fd)  # still open here: the run keeps its lock
+        folder.commit()
+    assert (tmp_path / "out" / "state.txt").read_text() == "closed"

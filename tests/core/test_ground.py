@@ -178,3 +178,44 @@ def test_broadcast_shapes():
     z = model(gx, gy)
     assert z.shape == (2, 3)
     np.testing.assert_allclose(z, _plane(gx, gy), atol=1e-9)
+
+
+@pytest.mark.parametrize(
+    "make",
+    [
+        lambda rng: GroundModel.from_dem(_dem(_plane), "EPSG:32633"),
+        lambda rng: GroundModel.from_dem(_dem(_plane, "EPSG:32634"), "EPSG:32633"),  # through a transformation
+        lambda rng: GroundModel.from_stations(
+            rng.uniform(X0, X0 + 300, 40), rng.uniform(Y0 - 250, Y0, 40), rng.uniform(200, 230, 40)
+        ),
+        lambda rng: GroundModel.from_stations([X0, X0 + 100], [Y0, Y0 - 50], [210.0, 220.0]),  # one line
+        lambda rng: GroundModel.from_stations([X0], [Y0], [215.0]),  # one station: flat
+    ],
+    ids=["dem", "dem-other-crs", "stations", "stations-on-a-line", "one-station"],
+)
+def test_ground_model_pickles_as_its_recipe(make, rng):
+    """A pickled model (handed to the drawing processes of a run) answers exactly as the original."""
+    import pickle
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = make(rng)
+    again = pickle.loads(pickle.dumps(model))
+    x = rng.uniform(X0 - 50, X0 + 450, 300)  # inside and outside the DEM and the stations' outline
+    y = rng.uniform(Y0 - 350, Y0 + 50, 300)
+    np.testing.assert_array_equal(again.ground(x, y), model.ground(x, y))  # built again by the same code: bit for bit
+    if model.source_ == "stations":
+        np.testing.assert_array_equal(again.outside_distance_m(x, y), model.outside_distance_m(x, y))
+    assert (again.source_, again.description_, again.slope_bound_) == (
+        model.source_,
+        model.description_,
+        model.slope_bound_,
+    )
+
+
+def test_ground_model_from_a_sampler_does_not_pickle():
+    import pickle
+
+    with pytest.raises(TypeError, match="cannot be pickled"):
+        pickle.dumps(GroundModel(lambda px, py: px * 0.0, "stations", "test"))

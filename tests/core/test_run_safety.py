@@ -41,6 +41,20 @@ def test_two_runs_give_identical_files(survey_path, tmp_path):
     assert _digest(survey_path.parent) == before  # inputs untouched (hash checked)
 
 
+def test_drawing_processes_give_the_files_of_a_run_in_one_process(survey_path, tmp_path, monkeypatch):
+    """The QC figures, report and sheets drawn by forked workers are byte-identical to those drawn in the run."""
+    from rockhead.core.products.background import fork_is_safe
+
+    if not fork_is_safe():
+        pytest.skip("no child process here (no fork, one core or ROCKHEAD_NO_FORK): nothing to compare")
+    job.run(survey_path, tmp_path / "forked")
+    monkeypatch.setenv("ROCKHEAD_NO_FORK", "1")
+    job.run(survey_path, tmp_path / "alone")
+    a, b = _digest(tmp_path / "forked"), _digest(tmp_path / "alone")
+    assert a.keys() == b.keys()
+    assert [k for k in a if a[k] != b[k]] == []
+
+
 def test_disk_full_mid_run_keeps_earlier_outputs(survey_path, tmp_path, monkeypatch):
     out = tmp_path / "out"
     job.run(survey_path, out, method="kriging")
