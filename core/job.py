@@ -9,7 +9,7 @@ from pathlib import Path
 from typing import List, Optional
 
 from .errors import RockheadWarning
-from .formats.gdalio import engine
+from .formats.gdalio import check_engine
 from .formats.runfolder import RunFolder
 from .handoff.steps import design_step
 from .products import outputs
@@ -62,7 +62,7 @@ def write_outputs(
     figure; ``gather_figures`` chooses the gathers with one of their own:
     ``all``, ``flagged`` (status not ok) or ``none``. ``workers``: the
     drawing processes forked for ``out_dir`` (an open RunFolder) before the
-    computation (:func:`~.products.outputs.drawing_workers`), if any.
+    computation (:func:`~.products.outputs.output_workers`), if any.
     """
     progress = progress or NullProgress()
     return outputs.write_all(with_design(result, progress), out_dir, progress, gather_figures, workers)
@@ -99,9 +99,9 @@ def run(
     The output folder is checked and locked before the computation starts (a
     second run into it at the same time refuses at once) and replaced as a
     whole at the end (:class:`~.formats.runfolder.RunFolder`). Where a child
-    process can be forked, the processes that draw the QC figures, the report
-    and the printed sheets are started then and import what they need while
-    the computation runs (:func:`~.products.outputs.drawing_workers`). Returns the
+    process can be forked, the processes that write the map products, draw
+    the QC figures and the report, and the printed sheets are started then
+    and import what they need while the computation runs (:func:`~.products.outputs.output_workers`). Returns the
     :class:`~.results.RunResult` with its design answers and ``outputs``,
     the files written.
 
@@ -121,8 +121,8 @@ def run(
     """
     progress = progress or NullProgress()
     survey = check_for_run(load_survey(survey_path, confine_inputs=confine_inputs))
-    engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
-    with open_output_folder(survey, out_dir) as folder, _optional(outputs.drawing_workers(folder)) as workers:
+    check_engine(feature="writing the GeoPackage and the GeoTIFFs")  # a missing GDAL is said before the work
+    with open_output_folder(survey, out_dir) as folder, _optional(outputs.output_workers(folder)) as workers:
         result = compute(survey, method=method, progress=SubProgress(progress, 0, 85))
         stage = SubProgress(progress, 85, 100)
         result = with_design(result, stage)

@@ -64,6 +64,7 @@ __all__ = [
     "COG_OPTIONS",
     "GPKG_VERSION",
     "Raster",
+    "check_engine",
     "engine",
     "gdal_crs",
     "gdal_timestamp",
@@ -136,6 +137,32 @@ def engine(preferred: str | None = None, *, feature: str = "reading and writing 
             if preferred:
                 raise MissingDependencyError(missing[0], feature, _HINT)
     raise MissingDependencyError("GDAL (osgeo) or rasterio and pyogrio", feature, _HINT)
+
+
+def check_engine(feature: str = "reading and writing GIS files") -> None:
+    """Say now, cheaply, when no way to GDAL is installed: what :func:`engine` would raise, without importing.
+
+    The packages are looked up (``importlib.util.find_spec``), not imported:
+    rasterio and pyogrio take half a second or more to import (pyogrio brings
+    pandas and geopandas), which a run pays where it writes its files. A
+    package that is installed but fails to import is reported by
+    :func:`engine` there.
+
+    Raises
+    ------
+    MissingDependencyError
+        Neither GDAL's bindings nor rasterio and pyogrio are installed.
+    """
+    from importlib.util import find_spec
+
+    def found(name: str) -> bool:
+        try:
+            return find_spec(name) is not None
+        except (ImportError, ValueError):
+            return False
+
+    if not (found("osgeo") or (found("rasterio") and found("pyogrio"))):
+        engine(feature=feature)  # raises the message naming what is missing (or finds what find_spec did not)
 
 
 def _adapter(name: str | None, feature: str):

@@ -289,7 +289,7 @@ def write_all(result: RunResult, out_dir, progress, gather_figures: str = "flagg
     removed and the previous outputs stay as they were. Every line gets its
     QC figure (:func:`line_qc_figures`); ``gather_figures`` chooses the
     gathers that get one of their own (:func:`figure_gathers`). ``workers``
-    are the :func:`drawing_workers` forked for ``out_dir`` (an open RunFolder)
+    are the :func:`output_workers` forked for ``out_dir`` (an open RunFolder)
     before the computation, if any.
     """
     if isinstance(out_dir, RunFolder):
@@ -438,18 +438,25 @@ def _draw_documents(result, folder: RunFolder, progress, gather_figures, layers,
     check_cancel(progress)
 
 
-#: The drawing workers of :func:`drawing_workers`, by index
-DOCUMENTS, SHEETS = 0, 1
+#: The workers of :func:`output_workers`, by index
+MAPS, DOCUMENTS, SHEETS = 0, 1, 2
 
 
-def drawing_workers(folder: RunFolder, parallel=None):
-    """Two child processes that draw a run's documents, forked now (before the computation) and warmed up meanwhile.
+def _stage_map_and_handoff(result, folder: RunFolder, progress, layers, sections) -> None:
+    _stage_map(folder, result, layers, progress)
+    write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
 
-    One draws the QC figures and the report, the other the printed sheets
-    (:class:`~.background.EarlyWorkers`); :func:`write_all` hands them the
-    result and writes the map products meanwhile. None where there is no
-    child to be had (:func:`~.background.fork_is_safe`); either way the files
-    are those of a run in one process.
+
+def output_workers(folder: RunFolder, parallel=None):
+    """Three child processes that write a run's files, forked now (before the computation) and warmed up meanwhile.
+
+    One writes the map products and the hand-off files (GDAL through
+    rasterio and pyogrio), one draws the QC figures and the report, one the
+    printed sheets (:class:`~.background.EarlyWorkers`): each imports what
+    it needs while the computation runs, and :func:`write_all` hands them the
+    result. None where there is no child to be had
+    (:func:`~.background.fork_is_safe`); either way the files are those of a
+    run in one process.
 
     Parameters
     ----------
@@ -468,6 +475,17 @@ def drawing_workers(folder: RunFolder, parallel=None):
 
     if not (fork_is_safe() if parallel is None else parallel):
         return None
+
+    def warm_maps() -> None:
+        from ..formats.gdalio import engine
+
+        engine()  # imports rasterio and pyogrio (or GDAL's bindings)
+
+    def maps(payload) -> list:
+        result, sections, _ = payload
+        before = len(folder.planned)
+        _stage_map_and_handoff(result, folder, NullProgress(), result_layers(result, sections), sections)
+        return folder.planned[before:]
 
     def warm_documents() -> None:
         _import_matplotlib()
@@ -491,7 +509,7 @@ def drawing_workers(folder: RunFolder, parallel=None):
         return [str(path.relative_to(folder.staging)) for path, _ in jobs]
 
     return EarlyWorkers(
-        [(warm_documents, documents), (warm_sheets, sheets)],
+        [(warm_maps, maps), (warm_documents, documents), (warm_sheets, sheets)],
         parallel=True,
         close_in_child=folder.lock_descriptors(),
     )
@@ -505,9 +523,13 @@ def _write_all(result, folder: RunFolder, progress, gather_figures, workers=None
     layers = result_layers(result, sections)
     sheets = sheet_jobs(folder, folder.requested, result, sections)
     if workers is not None and workers.hand_over((result, sections, gather_figures)):
-        # the documents and the sheets are drawn by the workers meanwhile; what one did not finish is drawn here
-        _stage_map(folder, result, layers, progress)
-        write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
+        # the workers write every file; what one did not finish is written here, in the order of a run alone
+        staged = workers.collect(MAPS)
+        if staged is None:
+            _stage_map_and_handoff(result, folder, progress, layers, sections)
+        else:
+            for rel in staged:
+                folder.path(rel)
         progress.set_progress(25)
         drawn = workers.collect(DOCUMENTS)
         if drawn is None:
@@ -526,8 +548,7 @@ def _write_all(result, folder: RunFolder, progress, gather_figures, workers=None
             _import_matplotlib()
         # the printed sheets are drawn in a child process, where there is a core for it, while this one writes the rest
         with BackgroundFiles(sheets, parallel=parallel, close_in_child=folder.lock_descriptors()):
-            _stage_map(folder, result, layers, progress)
-            write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
+            _stage_map_and_handoff(result, folder, progress, layers, sections)
             progress.set_progress(25)
             _draw_documents(result, folder, progress, gather_figures, layers, sections)
     progress.set_progress(90)

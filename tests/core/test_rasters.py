@@ -346,3 +346,34 @@ def test_environment_is_not_left_changed(tmp_path):
     before = dict(os.environ)
     gdalio.write_raster(tmp_path / "e.tif", np.zeros(spec.shape), spec, "EPSG:32633")
     assert dict(os.environ) == before
+
+
+def test_check_engine_names_what_is_missing(monkeypatch):
+    """The run's early check looks the packages up (find_spec, not an import) and says what engine() would say."""
+    import importlib.util
+    import sys
+
+    from rockhead.core.errors import MissingDependencyError
+
+    gdalio.check_engine()  # this machine has one (the other tests write through it)
+    real_find_spec = importlib.util.find_spec
+    monkeypatch.setattr(
+        importlib.util,
+        "find_spec",
+        lambda name, *a: None if name.split(".")[0] in ("osgeo", "rasterio", "pyogrio") else real_find_spec(name, *a),
+    )
+    imported = []
+    real_import = importlib.import_module
+
+    def no_gdal(name, package=None):
+        imported.append(name)
+        if name.split(".")[0] in ("osgeo", "rasterio", "pyogrio") and name not in sys.modules:
+            raise ImportError(f"No module named '{name}'")
+        return real_import(name, package)
+
+    monkeypatch.setattr("importlib.import_module", no_gdal)
+    for name in [m for m in sys.modules if m.split(".")[0] in ("osgeo", "rasterio", "pyogrio")]:
+        monkeypatch.delitem(sys.modules, name)
+    wanted = r"needs the Python package 'GDAL \(osgeo\) or rasterio and pyogrio'"
+    with pytest.raises(MissingDependencyError, match=wanted):
+        gdalio.check_engine()
