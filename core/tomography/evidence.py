@@ -48,8 +48,9 @@ import scipy.sparse.linalg as spla
 from scipy.optimize import minimize
 
 from ..progress import check_cancel
+from .factor import BAND_FLOPS, NormalFactor, band_positions, node_band_order
 from .prior import MaternPrior, anisotropic_lattice_variance, lattice_laplacian, lattice_variance, matern_precision
-from .system import borehole_matrix, jacobian, parameters, prior_mean, small_prior_precision
+from .system import borehole_matrix, jacobian, normal_matrix, parameters, prior_mean, small_prior_precision
 
 __all__ = ["log_det_matern", "tune_priors"]
 
@@ -84,7 +85,7 @@ class _Linearised:
 
     def __init__(self, layout, data, state, sigma_scale):
         J, use, sw = jacobian(layout, data, state, sigma_scale)
-        self.JtJ = (J.T @ J).tocsr()
+        self.JtJ = normal_matrix(J, layout.n_nodes)
         r = state.residual_s[use] * sw
         self.Jtr = J.T @ r
         self.rr = float(r @ r)
@@ -112,28 +113,68 @@ class _Linearised:
             self._prior_cache[prior] = got
         return got
 
+    def _fixed(self):
+        """The parts of A = J^T J (+ B^T W B) + P(h) that the interfaces' priors leave alone, once.
+
+        The node block in band storage (:mod:`.factor`; None where the band
+        would be too wide: a sparse matrix then), the node-other block and the
+        other block with its own prior.
+        """
+        if getattr(self, "_fixed_parts", None) is None:
+            F = sp.csr_matrix(self.JtJ if self.BtB is None else self.JtJ + self.BtB)
+            F.sum_duplicates()
+            n_small = self.P0.shape[0]
+            n = F.shape[0] - n_small
+            ny, nx = self.layout.spec.shape
+            order = node_band_order(self.layout.spec, n // (nx * ny))
+            inverse = np.empty(n, np.int64)
+            inverse[order] = np.arange(n)
+            Fn = F[:n, :n].tocoo()
+            keep, d, c = band_positions(Fn.row, Fn.col, inverse)
+            b = int(d.max()) if d.size else 0
+            ab = None
+            if n * (b + 1) ** 2 <= BAND_FLOPS:
+                ab = np.zeros((b + 1, n))
+                ab[d, c] = Fn.data[keep]
+            A_us = F[:n, n:].toarray()
+            A_ss = F[n:, n:].toarray() + self.P0.toarray()
+            self._fixed_parts = (n, order, inverse, ab, F[:n, :n].tocsr(), A_us, A_ss)
+        return self._fixed_parts
+
+    def _factor(self, precisions, g) -> NormalFactor:
+        """Factor of A with the interfaces' prior precisions ``precisions`` (one sparse matrix each), and g^T A^-1 g."""
+        n, order, inverse, ab0, Fn, A_us, A_ss = self._fixed()
+        nn = n // max(len(precisions), 1)
+        if ab0 is None:
+            return NormalFactor(("sparse", Fn + sp.block_diag(precisions, format="csr")), A_us, A_ss, g)
+        rows, cols, vals = [], [], []
+        for k, Q in enumerate(precisions):
+            Qc = sp.coo_matrix(Q)
+            rows.append(Qc.row + k * nn)
+            cols.append(Qc.col + k * nn)
+            vals.append(Qc.data)
+        keep, d, c = band_positions(np.concatenate(rows), np.concatenate(cols), inverse)
+        b = max(ab0.shape[0] - 1, int(d.max()) if d.size else 0)
+        ab = np.zeros((b + 1, n))
+        ab[: ab0.shape[0]] = ab0
+        np.add.at(ab, (d, c), np.concatenate(vals)[keep])  # a prior's entries: few, and may repeat
+        return NormalFactor(("band", ab, order), A_us, A_ss, g)
+
     def log_evidence(self, priors) -> float:
         parts = [self._prior(p) for p in priors]
         P = sp.block_diag([q for q, _ in parts] + [self.P0], format="csr")
-        A = (self.JtJ + P).tocsc()
         Pdm = P @ self.dm
         g = self.Jtr - Pdm
         phi0 = self.rr + float(self.dm @ Pdm)
         if self.BtB is not None:
-            A = (A + self.BtB).tocsc()
             g = g + self.Bte
             phi0 += self.ee
         try:
-            lu = spla.splu(A, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
-        except RuntimeError:
+            fac = self._factor([q for q, _ in parts], g)
+        except np.linalg.LinAlgError:  # not positive definite
             return -np.inf
-        d = lu.U.diagonal()
-        if np.any(d <= 0):
-            return -np.inf
-        logdet_a = float(np.sum(np.log(d)))
-        quad = float(g @ lu.solve(g))
         logdet_q = sum(ld for _, ld in parts)
-        return -0.5 * (phi0 - quad) + 0.5 * logdet_q - 0.5 * logdet_a
+        return -0.5 * (phi0 - fac.quadratic_) + 0.5 * logdet_q - 0.5 * fac.log_det
 
 
 MAX_RATIO = 8.0  # strongest anisotropy tried (major over minor range)

@@ -23,8 +23,9 @@ Welsch 1977] (picks beyond ``reject_sigma`` robust standard deviations get
 weight 0 and are flagged), the Matern GMRF precision :math:`Q_s` of each
 interface (:mod:`.prior`), priors on the trends from a robust plane fit of
 the start points and weak ones on the velocities, and boreholes :math:`e_b` (elevations of an interface, with
-their errors) as data. Each step solves the sparse normal equations by LU
-(SuperLU, symmetric mode); the step is halved until :math:`\\Phi` falls and a
+their errors) as data. Each step solves the normal equations by a banded Cholesky
+factor of the node block and the Schur complement of the others
+(:mod:`.factor`); the step is halved until :math:`\\Phi` falls and a
 Levenberg-Marquardt damping of the step grows after a halving and shrinks
 after full steps [Marquardt 1963] (the gradient is undamped, so the solution
 is that of Gauss-Newton).
@@ -71,6 +72,7 @@ from ..errors import InversionError
 from ..grid import GridSpec
 from ..progress import check_cancel
 from .covariance import BandedCholesky
+from .factor import NormalFactor, node_band_order
 from .nodes import node_weights
 from .raypath import LayeredModel, LayeredPaths, trace_reflections
 
@@ -136,11 +138,7 @@ class Layout:
 
     def band_order(self) -> np.ndarray:
         """Node ordering that keeps the node block banded: interfaces interleaved, short side fastest."""
-        ny, nx = self.spec.shape
-        K = self.n_interfaces
-        node = np.arange(self.nn).reshape(ny, nx)
-        walk = node.T.ravel() if ny <= nx else node.ravel()  # rows fastest when the grid is wide
-        return (np.arange(K)[None, :] * self.nn + walk[:, None]).ravel()
+        return node_band_order(self.spec, self.n_interfaces)
 
 
 @dataclass(frozen=True)
@@ -406,7 +404,12 @@ def gauss_newton(
             rhs = rhs + B.T @ ((data.bh_elevation_m - B @ m_cur) / data.bh_sigma_m**2)
         diag = A.diagonal()
         Ad = A + sp.diags(mu * diag)
-        delta = _factorize(Ad).solve(rhs)
+        try:
+            delta = NormalFactor.of(Ad, layout).solve(rhs)
+        except np.linalg.LinAlgError as err:
+            raise InversionError(
+                f"the joint normal equations are singular ({err}); the picks and priors do not determine the model"
+            ) from err
         # keep each velocity step within a factor 1.5 (a guard against wild first steps)
         th_base = nn_all + 3 * K
         v0_now = m_cur[th_base + v0_cols]

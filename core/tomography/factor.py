@@ -1,0 +1,199 @@
+"""Cholesky factor of the joint normal matrix: a banded node block and a dense block of the few others.
+
+The normal matrix of the joint estimate (:mod:`.system`) is symmetric
+positive definite with the interface nodes first and the trend and velocity
+parameters (a dozen) last:
+
+.. math::
+
+    A = \\begin{bmatrix} A_{uu} & A_{us} \\\\ A_{su} & A_{ss} \\end{bmatrix},\\qquad
+    S = A_{ss} - A_{us}^T A_{uu}^{-1} A_{us}.
+
+:math:`A_{uu}` is sparse and, in the node ordering of
+:meth:`~.system.Layout.band_order` (interfaces interleaved, short side of the
+grid fastest), banded: a pick couples the nodes within its offset only. It is
+factored by LAPACK's banded Cholesky (``scipy.linalg.cholesky_banded``, in
+every SciPy release this project supports) and the Schur complement
+:math:`S` by a dense Cholesky; then [Golub & Van Loan 2013, s. 4.3, 3.2.11]
+
+.. math::
+
+    \\log\\det A = \\log\\det A_{uu} + \\log\\det S,
+
+and :math:`A x = b` is solved by block elimination. The trend and velocity
+columns couple every node; kept apart they do not widen the band, and a
+general sparse LU (SuperLU with a minimum-degree ordering) need not order
+around them. Where the band would be too wide (a fine node grid chosen by
+hand) the node block is factored by that sparse LU instead.
+
+References
+----------
+[Golub & Van Loan 2013] Golub, G. H. & Van Loan, C. F. (2013). Matrix
+    Computations, 4th ed. Johns Hopkins University Press.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+__all__ = ["BAND_FLOPS", "NormalFactor", "band_positions", "node_band_order"]
+
+# Largest banded Cholesky (n b^2 operations) taken before the sparse LU: the default covariance budget of the
+# joint estimate (LayeredSettings.band_flops), the size the node grid is chosen for
+BAND_FLOPS = 4e9
+
+
+def node_band_order(spec, n_interfaces: int) -> np.ndarray:
+    """Node ordering that keeps the node block banded: interfaces interleaved, short side of the grid fastest.
+
+    Node ``j`` of interface ``s`` is unknown ``s * nx * ny + j`` (:class:`~.system.Layout`).
+    """
+    ny, nx = spec.shape
+    node = np.arange(nx * ny).reshape(ny, nx)
+    walk = node.T.ravel() if ny <= nx else node.ravel()  # rows fastest when the grid is wide
+    return (np.arange(n_interfaces)[None, :] * nx * ny + walk[:, None]).ravel()
+
+
+def band_positions(row, col, inverse_order):
+    """Where the lower-triangle entries ``(row, col)`` of a symmetric matrix go in LAPACK lower band storage.
+
+    Parameters
+    ----------
+    row, col : int arrays
+        Entry indices in the original ordering.
+    inverse_order : int array
+        Position of each original index in the band ordering.
+
+    Returns
+    -------
+    keep : bool array
+        Entries on or below the diagonal in the band ordering (the others are their mirror images).
+    diagonal, column : int arrays
+        Band storage indices ``ab[diagonal, column]`` of the kept entries.
+    """
+    pr = inverse_order[row]
+    pc = inverse_order[col]
+    keep = pr >= pc
+    return keep, (pr - pc)[keep], pc[keep]
+
+
+class NormalFactor:
+    """Factor of a symmetric positive definite normal matrix split as in the module notes.
+
+    Parameters
+    ----------
+    nodes : tuple
+        ``("band", ab, order)``: the node block in lower band storage in the
+        ordering ``order`` (``ab[i - j, j] = A_uu[order[i], order[j]]``,
+        overwritten); or ``("sparse", A_uu)``: a sparse matrix.
+    A_us : array (n_nodes, n_small)
+    A_ss : array (n_small, n_small)
+    g : array (n_nodes + n_small,), optional
+        A vector whose :math:`g^T A^{-1} g` is wanted (``quadratic_``); its
+        node part is solved together with :math:`A_{us}`'s columns.
+
+    Attributes
+    ----------
+    log_det : float
+        :math:`\\log\\det A`.
+    quadratic_ : float
+        :math:`g^T A^{-1} g` (NaN without ``g``).
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        Where A is not positive definite.
+    """
+
+    def __init__(self, nodes, A_us, A_ss, g=None):
+        if nodes[0] == "band":
+            _, ab, order = nodes
+            self.order = np.asarray(order, np.int64)
+            self.cb = sla.cholesky_banded(ab, lower=True, overwrite_ab=True, check_finite=False)
+            self.lu = None
+            self.log_det_nodes = 2.0 * float(np.sum(np.log(self.cb[0])))
+        else:
+            self.cb = None
+            self.lu = spla.splu(
+                sp.csc_matrix(nodes[1]),
+                permc_spec="MMD_AT_PLUS_A",
+                diag_pivot_thresh=0.0,
+                options={"SymmetricMode": True},
+            )
+            d = self.lu.U.diagonal()
+            if np.any(~(d > 0)):
+                raise np.linalg.LinAlgError("the node block of the normal matrix is not positive definite")
+            self.log_det_nodes = float(np.sum(np.log(d)))
+        n, n_small = A_us.shape
+        self.n_nodes = n
+        self.A_us = A_us
+        # one banded solve for the other columns and g's node part (a solve's cost is in reading the factor)
+        cols = A_us if g is None else np.column_stack([A_us, np.asarray(g, float)[:n]])
+        X = self.solve_nodes(cols)
+        self.U = X[:, :n_small]
+        S = A_ss - A_us.T @ self.U
+        self.cs = sla.cho_factor(0.5 * (S + S.T), lower=True, check_finite=False) if S.size else None
+        self.log_det = self.log_det_nodes + (2.0 * float(np.sum(np.log(np.diag(self.cs[0])))) if S.size else 0.0)
+        self.quadratic_ = float("nan")
+        if g is not None:
+            g = np.asarray(g, float)
+            xu = X[:, n_small]
+            q = float(g[:n] @ xu)
+            if self.cs is not None:
+                r = g[n:] - A_us.T @ xu
+                q += float(r @ sla.cho_solve(self.cs, r, check_finite=False))
+            self.quadratic_ = q
+
+    @classmethod
+    def of(cls, A, layout) -> NormalFactor:
+        """Factor the sparse normal matrix ``A`` (nodes first, as in :class:`~.system.Layout`).
+
+        Raises
+        ------
+        numpy.linalg.LinAlgError
+            Where A is not positive definite.
+        """
+        n = layout.n_nodes
+        A = sp.csr_matrix(A)
+        A.sum_duplicates()  # one entry per position: the band is filled by assignment
+        C = A.tocoo()
+        node = (C.row < n) & (C.col < n)
+        A_us = np.zeros((n, A.shape[1] - n))
+        mix = (C.row < n) & (C.col >= n)
+        A_us[C.row[mix], C.col[mix] - n] = C.data[mix]
+        A_ss = np.zeros((A.shape[0] - n, A.shape[1] - n))
+        small = (C.row >= n) & (C.col >= n)
+        A_ss[C.row[small] - n, C.col[small] - n] = C.data[small]
+        order = layout.band_order()
+        inverse = np.empty(n, np.int64)
+        inverse[order] = np.arange(n)
+        keep, d, c = band_positions(C.row[node], C.col[node], inverse)
+        b = int(d.max()) if d.size else 0
+        if n * (b + 1) ** 2 > BAND_FLOPS:
+            Auu = sp.csr_matrix((C.data[node], (C.row[node], C.col[node])), shape=(n, n))
+            return cls(("sparse", Auu), A_us, A_ss)
+        ab = np.zeros((b + 1, n))
+        ab[d, c] = C.data[node][keep]
+        return cls(("band", ab, order), A_us, A_ss)
+
+    def solve_nodes(self, rhs):
+        """:math:`A_{uu}^{-1}` rhs (rhs of shape (n_nodes,) or (n_nodes, k))."""
+        rhs = np.asarray(rhs, float)
+        if self.lu is not None:
+            return self.lu.solve(rhs)
+        out = np.empty_like(rhs)
+        out[self.order] = sla.cho_solve_banded((self.cb, True), rhs[self.order], check_finite=False)
+        return out
+
+    def solve(self, rhs):
+        """:math:`A^{-1}` rhs by block elimination (rhs of shape (n,) or (n, k))."""
+        rhs = np.asarray(rhs, float)
+        n = self.n_nodes
+        xu = self.solve_nodes(rhs[:n])
+        if self.cs is None:
+            return xu
+        xs = sla.cho_solve(self.cs, rhs[n:] - self.A_us.T @ xu, check_finite=False)
+        return np.concatenate([xu - self.U @ xs, xs])
