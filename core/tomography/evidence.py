@@ -50,7 +50,7 @@ from scipy.optimize import minimize
 from ..progress import check_cancel
 from .factor import BAND_FLOPS, NormalFactor, band_positions, node_band_order
 from .prior import MaternPrior, anisotropic_lattice_variance, lattice_laplacian, lattice_variance, matern_precision
-from .system import borehole_matrix, jacobian, normal_matrix, parameters, prior_mean, small_prior_precision
+from .system import borehole_matrix, jacobian_blocks, normal_blocks, parameters, prior_mean, small_prior_precision
 
 __all__ = ["log_det_matern", "tune_priors"]
 
@@ -84,10 +84,10 @@ class _Linearised:
     """The problem linearised at a state, for repeated evidence evaluations."""
 
     def __init__(self, layout, data, state, sigma_scale):
-        J, use, sw = jacobian(layout, data, state, sigma_scale)
-        self.JtJ = normal_matrix(J, layout.n_nodes)
+        Jn, Js, use, sw = jacobian_blocks(layout, data, state, sigma_scale)
+        self.JtJ = normal_blocks(Jn, Js)
         r = state.residual_s[use] * sw
-        self.Jtr = J.T @ r
+        self.Jtr = np.concatenate([Jn.T @ r, Js.T @ r])
         self.rr = float(r @ r)
         self.dm = parameters(layout, state) - prior_mean(layout, data)
         self.P0 = small_prior_precision(layout, data)
@@ -155,7 +155,7 @@ class _Linearised:
             vals.append(Qc.data)
         keep, d, c = band_positions(np.concatenate(rows), np.concatenate(cols), inverse)
         b = max(ab0.shape[0] - 1, int(d.max()) if d.size else 0)
-        ab = np.zeros((b + 1, n))
+        ab = np.zeros((b + 1, n), order="F")  # LAPACK order: factored in place
         ab[: ab0.shape[0]] = ab0
         np.add.at(ab, (d, c), np.concatenate(vals)[keep])  # a prior's entries: few, and may repeat
         return NormalFactor(("band", ab, order), A_us, A_ss, g)

@@ -38,6 +38,7 @@ import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
+from scipy.linalg.lapack import dtbtrs
 
 __all__ = ["BAND_FLOPS", "NormalFactor", "band_positions", "node_band_order"]
 
@@ -109,12 +110,21 @@ class NormalFactor:
     """
 
     def __init__(self, nodes, A_us, A_ss, g=None):
+        n, n_small = A_us.shape
+        self.n_nodes = n
+        self.A_us = A_us
+        # the other columns and g's node part in one solve (its cost is in reading the factor)
+        cols = A_us if g is None else np.column_stack([A_us, np.asarray(g, float)[:n]])
         if nodes[0] == "band":
+            # A_uu = C C^T (C lower): W = C^-1 A_us, S = A_ss - W^T W; only forward sweeps are needed here
             _, ab, order = nodes
             self.order = np.asarray(order, np.int64)
             self.cb = sla.cholesky_banded(ab, lower=True, overwrite_ab=True, check_finite=False)
             self.lu = None
-            self.log_det_nodes = 2.0 * float(np.sum(np.log(self.cb[0])))
+            log_det_nodes = 2.0 * float(np.sum(np.log(self.cb[0])))
+            Y = self._sweep(cols[self.order], "N")
+            self.W = Y[:, :n_small]
+            S = A_ss - self.W.T @ self.W
         else:
             self.cb = None
             self.lu = spla.splu(
@@ -126,26 +136,36 @@ class NormalFactor:
             d = self.lu.U.diagonal()
             if np.any(~(d > 0)):
                 raise np.linalg.LinAlgError("the node block of the normal matrix is not positive definite")
-            self.log_det_nodes = float(np.sum(np.log(d)))
-        n, n_small = A_us.shape
-        self.n_nodes = n
-        self.A_us = A_us
-        # one banded solve for the other columns and g's node part (a solve's cost is in reading the factor)
-        cols = A_us if g is None else np.column_stack([A_us, np.asarray(g, float)[:n]])
-        X = self.solve_nodes(cols)
-        self.U = X[:, :n_small]
-        S = A_ss - A_us.T @ self.U
-        self.cs = sla.cho_factor(0.5 * (S + S.T), lower=True, check_finite=False) if S.size else None
-        self.log_det = self.log_det_nodes + (2.0 * float(np.sum(np.log(np.diag(self.cs[0])))) if S.size else 0.0)
+            log_det_nodes = float(np.sum(np.log(d)))
+            Y = self.lu.solve(cols)
+            self.U = Y[:, :n_small]  # A_uu^-1 A_us
+            S = A_ss - A_us.T @ self.U
+        self.cs = None
+        self.log_det = log_det_nodes
+        if S.size:
+            self.cs = sla.cho_factor(0.5 * (S + S.T), lower=True, check_finite=False)
+            self.log_det += 2.0 * float(np.sum(np.log(np.diag(self.cs[0]))))
         self.quadratic_ = float("nan")
         if g is not None:
             g = np.asarray(g, float)
-            xu = X[:, n_small]
-            q = float(g[:n] @ xu)
+            y = Y[:, n_small]
+            if self.lu is None:  # g_u^T A_uu^-1 g_u = |C^-1 g_u|^2, and A_us^T A_uu^-1 g_u = W^T C^-1 g_u
+                q, r = float(y @ y), g[n:] - self.W.T @ y
+            else:
+                q, r = float(g[:n] @ y), g[n:] - A_us.T @ y
             if self.cs is not None:
-                r = g[n:] - A_us.T @ xu
                 q += float(r @ sla.cho_solve(self.cs, r, check_finite=False))
             self.quadratic_ = q
+
+    def _sweep(self, rhs, trans):
+        """Banded triangular solve with C ("N") or C^T ("T"), in the band ordering (LAPACK tbtrs)."""
+        b = np.asarray(rhs, float)
+        if b.size == 0:  # no columns (LAPACK would stop the process on an empty right-hand side)
+            return b.copy()
+        x, info = dtbtrs(self.cb, b if b.ndim == 2 else b[:, None], uplo="L", trans=trans)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"banded triangular solve failed (LAPACK info {info})")
+        return x if b.ndim == 2 else x[:, 0]
 
     @classmethod
     def of(cls, A, layout) -> NormalFactor:
@@ -175,25 +195,26 @@ class NormalFactor:
         if n * (b + 1) ** 2 > BAND_FLOPS:
             Auu = sp.csr_matrix((C.data[node], (C.row[node], C.col[node])), shape=(n, n))
             return cls(("sparse", Auu), A_us, A_ss)
-        ab = np.zeros((b + 1, n))
+        ab = np.zeros((b + 1, n), order="F")  # LAPACK order: factored in place
         ab[d, c] = C.data[node][keep]
         return cls(("band", ab, order), A_us, A_ss)
-
-    def solve_nodes(self, rhs):
-        """:math:`A_{uu}^{-1}` rhs (rhs of shape (n_nodes,) or (n_nodes, k))."""
-        rhs = np.asarray(rhs, float)
-        if self.lu is not None:
-            return self.lu.solve(rhs)
-        out = np.empty_like(rhs)
-        out[self.order] = sla.cho_solve_banded((self.cb, True), rhs[self.order], check_finite=False)
-        return out
 
     def solve(self, rhs):
         """:math:`A^{-1}` rhs by block elimination (rhs of shape (n,) or (n, k))."""
         rhs = np.asarray(rhs, float)
         n = self.n_nodes
-        xu = self.solve_nodes(rhs[:n])
-        if self.cs is None:
-            return xu
-        xs = sla.cho_solve(self.cs, rhs[n:] - self.A_us.T @ xu, check_finite=False)
-        return np.concatenate([xu - self.U @ xs, xs])
+        if self.lu is not None:
+            xu = self.lu.solve(rhs[:n])
+            if self.cs is None:
+                return xu
+            xs = sla.cho_solve(self.cs, rhs[n:] - self.A_us.T @ xu, check_finite=False)
+            return np.concatenate([xu - self.U @ xs, xs])
+        # A = [[C, 0], [W^T, I]] diag(I, S) [[C^T, W], [0, I]]: forward, Schur, backward
+        z = self._sweep(rhs[:n][self.order], "N")
+        xs = np.zeros((0, *rhs.shape[1:]))
+        if self.cs is not None:
+            xs = sla.cho_solve(self.cs, rhs[n:] - self.W.T @ z, check_finite=False)
+            z = z - self.W @ xs
+        xu = np.empty_like(z)
+        xu[self.order] = self._sweep(z, "T")
+        return np.concatenate([xu, xs])
