@@ -413,6 +413,7 @@ def tomography_step(
         settings=LayeredSettings.from_settings(st),
         ground=ground,
         progress=progress,
+        line=np.asarray(g.line)[g.gather][use],
     )
     k = res.index(st.reflector)
     z, std, mask = res.elevation_m[k], res.sigma_m[k], res.mask[k]

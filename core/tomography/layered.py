@@ -24,7 +24,9 @@
 6. inflates the pick errors by the square root of the reduced chi-square when
    it exceeds 1, chooses each interface's prior hyperparameters (sill, range,
    anisotropy, smoothness) by type-II maximum likelihood (:mod:`.evidence`),
-   refits, and takes the posterior (Laplace approximation) at the optimum:
+   checks each sill by predicting every line from the others (given the
+   picks' lines, :mod:`.crossval`), refits, and takes the posterior (Laplace
+   approximation) at the optimum:
    the map is the posterior mean at every output cell, sigma its standard
    deviation including the trend and velocity uncertainty and the velocity
    model's choice (the spread of the probable other models, :mod:`.averaging`);
@@ -60,8 +62,9 @@ from ..grid import GridSpec
 from ..progress import NullProgress, check_cancel
 from ..surface.threads import SingleThreadedBlas
 from .averaging import model_choice_variance
+from .crossval import check_sills
 from .evidence import tune_priors
-from .nodes import interface_values, node_weights
+from .nodes import hull_cells, interface_values, node_weights
 from .prior import fit_matern, matern_precision, robust_plane_fit
 from .raypath import STATUS_TEXT
 from .start import StartModel
@@ -400,25 +403,6 @@ def _choose_node_cells(spec, K, reach_m, budget):
         cells += 1
 
 
-def _hull_cells(spec, xy):
-    """Output cells inside the convex hull of the points (midpoints), or within one cell of a point."""
-    from scipy.spatial import ConvexHull, QhullError, cKDTree
-
-    X, Y = spec.coords()
-    cells = np.column_stack([X.ravel(), Y.ravel()])
-    inside = np.zeros(cells.shape[0], bool)
-    pts = np.unique(np.round(xy, 3), axis=0)
-    if len(pts) >= 3:
-        try:
-            eq = ConvexHull(pts).equations  # outward normals and offsets: n . p + d <= 0 inside
-            inside = np.all(cells @ eq[:, :2].T + eq[:, 2] <= 1e-9 * spec.cell_size_m, axis=1)
-        except QhullError:  # collinear points: a single straight line
-            pass
-    d, _ = cKDTree(pts).query(cells, k=1)
-    inside |= d <= spec.cell_size_m
-    return inside.reshape(spec.shape)
-
-
 def _condition_on_points(node_spec, Q, x, y, resid, var):
     """GMRF conditional mean of the relief given point values (for the start): (Q + H^T W H)^-1 H^T W d."""
     idx, w = node_weights(node_spec, x, y)
@@ -456,6 +440,7 @@ def estimate_layered(
     settings: LayeredSettings | None = None,
     ground=None,
     progress=None,
+    line=None,
 ) -> LayeredEstimate:
     """Jointly estimate the interfaces and layer velocities from all picks (see the module notes).
 
@@ -481,6 +466,9 @@ def estimate_layered(
         ``ground(x_m, y_m)`` elevation, for the vertical-average velocities.
     progress : progress object, optional
         Messages and cancellation (checked between iterations).
+    line : array (n,), optional
+        Survey line of each pick: with three lines or more, the sill of each interface's prior is
+        checked by leaving out one line at a time (:mod:`.crossval`).
 
     Returns
     -------
@@ -507,11 +495,24 @@ def estimate_layered(
             settings,
             ground,
             progress,
+            line,
         )
 
 
 def _estimate(
-    source_xyz, receiver_xyz, time_s, sigma_s, reflector, start, spec, order, boreholes, settings, ground, progress
+    source_xyz,
+    receiver_xyz,
+    time_s,
+    sigma_s,
+    reflector,
+    start,
+    spec,
+    order,
+    boreholes,
+    settings,
+    ground,
+    progress,
+    line,
 ):
     progress = progress or NullProgress()
     cfg = settings or LayeredSettings()
@@ -521,10 +522,11 @@ def _estimate(
     n = t.size
     sig = np.broadcast_to(np.asarray(sigma_s, float), t.shape).copy()
     labels = np.asarray(reflector).astype(str)
-    if S.shape != (n, 3) or R.shape != (n, 3) or labels.shape != (n,):
+    lines = np.asarray(labels if line is None else line).astype(str)
+    if S.shape != (n, 3) or R.shape != (n, 3) or labels.shape != (n,) or lines.shape != (n,):
         raise InversionError(
-            f"source_xyz {S.shape}, receiver_xyz {R.shape} and reflector {labels.shape} must be (n, 3), (n, 3) "
-            f"and (n,) for the {n} picks"
+            f"source_xyz {S.shape}, receiver_xyz {R.shape}, reflector {labels.shape} and line {lines.shape} must "
+            f"be (n, 3), (n, 3), (n,) and (n,) for the {n} picks"
         )
     if n == 0:
         raise InversionError("no picks to invert; give at least a few gathers of reflection picks")
@@ -720,6 +722,8 @@ def _estimate(
         priors, ev0, _ = tune_priors(layout, data, state, priors, sigma_scale=scale, extent_m=extent, progress=progress)
         tune = bool(np.isfinite(ev0))  # False: the variogram's priors kept (noted below)
         data = replace(data, Q=tuple(matern_precision(node_spec, p) for p in priors))
+        if tune and line is not None:  # each sill checked by predicting every line from the others
+            priors, data, _ = check_sills(layout, data, state, priors, lines[pick], scale, progress=progress)
         label = "joint estimate (most probable priors" + (f", pick errors x {scale:.2f})" if scale > 1.0 else ")")
         state, h = gauss_newton(layout, data, state, sigma_scale=scale, label=label, **kw)
         hist_all.append(h)
@@ -747,7 +751,7 @@ def _estimate(
         model_var = model_var.reshape(sig_cells.shape)
         sig_cells = np.sqrt(sig_cells**2 + model_var)
     mid = 0.5 * (S[pick, :2] + R[pick, :2])
-    hull = _hull_cells(spec, mid[state.paths.valid])
+    hull = hull_cells(spec, mid[state.paths.valid])
     limits = np.empty(K)
     mask = np.empty((K, *spec.shape), bool)
     for k in range(K):

@@ -28,7 +28,7 @@ import numpy as np
 from ..errors import InversionError
 from ..grid import GridSpec
 
-__all__ = ["check_node_grid", "interface_values", "node_weights", "node_xy", "within_nodes"]
+__all__ = ["check_node_grid", "hull_cells", "interface_values", "node_weights", "node_xy", "within_nodes"]
 
 
 def check_node_grid(spec) -> GridSpec:
@@ -212,3 +212,22 @@ def interface_values(z_nodes, spec: GridSpec, x_m, y_m, derivatives: int = 0, su
     if derivatives >= 2:
         out += [row(wr[0], 2), row(wr[1], 1), row(wr[2], 0)]
     return tuple(out)
+
+
+def hull_cells(spec: GridSpec, xy) -> np.ndarray:
+    """Output cells inside the convex hull of the points (midpoints), or within one cell of a point."""
+    from scipy.spatial import ConvexHull, QhullError, cKDTree
+
+    X, Y = spec.coords()
+    cells = np.column_stack([X.ravel(), Y.ravel()])
+    inside = np.zeros(cells.shape[0], bool)
+    pts = np.unique(np.round(xy, 3), axis=0)
+    if len(pts) >= 3:
+        try:
+            eq = ConvexHull(pts).equations  # outward normals and offsets: n . p + d <= 0 inside
+            inside = np.all(cells @ eq[:, :2].T + eq[:, 2] <= 1e-9 * spec.cell_size_m, axis=1)
+        except QhullError:  # collinear points: a single straight line
+            pass
+    d, _ = cKDTree(pts).query(cells, k=1)
+    inside |= d <= spec.cell_size_m
+    return inside.reshape(spec.shape)

@@ -65,8 +65,13 @@ def test_bedrock_map_matches_the_eikonal_truth(runs, case):
     assert abs(mean) <= 0.2, (case, mean)
     # honest sigma: a Gaussian posterior puts 95 % of the errors within 2 sigma; fewer than 90 %
     # would be overconfident (the failure this issue was filed for). The issue's upper bound of 98 %
-    # is NOT met and not asserted: measured 99.8 % (seismic only) with the priors most probable given
-    # the picks (type-II maximum likelihood; 99.9 % with the variogram's), standardised rms error 0.74
+    # is NOT met and not asserted. Measured (seismic only): 99.8 % with the priors most probable given
+    # the picks (type-II maximum likelihood; 99.9 % with the variogram's), standardised rms error 0.74;
+    # 99.1 % and 0.84 since the sills are checked by leaving out each line in turn (the check finds the
+    # bedrock sill's square 0.58 of the evidence's, 19 degrees of freedom). What is left is between the
+    # lines: within 5 m of a reflection point the standardised rms error is 0.9-1.0, 20-40 m away 0.76
+    # (errors 0.27 m rms where sigma says 0.38 m): this knoll is smoother than a typical relief
+    # of the prior the picks along the lines support, and no error exceeds 2.2 sigma
     inside = float(np.mean(np.abs(err) <= 2 * sigma))
     assert inside >= 0.90, (case, inside)
 
@@ -129,7 +134,7 @@ def test_the_numbers_of_the_issue(runs):
     print(
         f"layered site, seismic only: rms {np.sqrt(np.mean(err**2)):.3f} m, mean {np.mean(err):+.3f} m, "
         f"{np.mean(np.abs(err) <= 2 * sigma):.3f} within 2 sigma over {err.size} cells (the issue's upper bound of "
-        f"0.98 is not met: sigma is conservative between the lines); kriged gather fits rms "
+        f"0.98 is not met: sigma is conservative between the lines, see above); kriged gather fits rms "
         f"{np.sqrt(np.mean(kerr**2)):.2f} m, mean {np.mean(kerr):+.2f} m"
     )
     assert np.mean(kerr) < -2.0

@@ -135,9 +135,15 @@ def test_joint_estimate_maps_the_valley_with_honest_sigma(valley_run):
     # Measured when written: 0.09 m rms (0.52 m with the isotropic prior fitted to the variogram);
     # 0.3 m keeps a margin under the issue's 0.5 m for the noise of other seeds.
     # Sigma must not be over-confident: at least 90 % of the cells within 2 sigma (a Gaussian error
-    # is 95 % of the time; the margin allows for the cells' correlation). The issue's upper bound of
-    # 98 % is NOT met: 100 % of the cells are within 2 sigma (standardised rms error 0.8: the sigma
-    # is near honest on average, but no error reaches 2 sigma on this smooth truth).
+    # is 95 % of the time; the margin allows for the cells' correlation). With the prior of type-II
+    # maximum likelihood alone 100 % were (standardised rms error 0.8: no error reached 2 sigma on
+    # this smooth truth). Its sill is now checked by predicting each line from the other three
+    # (cross-validation of a kriging model, Chiles & Delfiner 2012, s. 2.6.4; the variance factor's
+    # posterior mean, Gelman et al. 2013, s. 3.2): the check finds the sill's square about 0.4 of what
+    # the picks along the lines support (14 degrees of freedom). Measured when written: 97.4 % within
+    # 2 sigma, standardised rms 0.98, on numpy 2.4 / scipy 1.17; 100 % and 0.86 on numpy 1.24 /
+    # scipy 1.10, whose prior search ends at another sill and range (0.07 m rms there). The issue's
+    # upper bound of 98 % is therefore NOT asserted: it holds on one stack only.
     assert rms <= 0.3, rms
     assert cover >= 0.90, cover
     assert rms < 0.5 * krms
