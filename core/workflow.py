@@ -160,13 +160,19 @@ def surface_data(points, reflector, boreholes=None):
     return x, y, z, s
 
 
-def interpolate_step(points, spec, settings, method="kriging", boreholes=None, progress=None, corridor=None):
+def interpolate_step(
+    points, spec, settings, method="kriging", boreholes=None, progress=None, corridor=None, variogram_starts=None
+):
     """Grid the reflector points (and boreholes, as near-exact data); a single line's within its corridor.
 
+    ``variogram_starts`` (the ``variogram_fitted`` of an earlier surface of
+    nearly the same points) refits each candidate variogram from there.
     Returns ``(SurfaceGrid, SurfaceDiagnostics)``.
     """
     x, y, z, s = surface_data(points, settings.reflector, boreholes)
-    surface, diagnostics = grid_with_trend(x, y, z, s, spec, settings, method, progress, corridor=corridor)
+    surface, diagnostics = grid_with_trend(
+        x, y, z, s, spec, settings, method, progress, corridor=corridor, variogram_starts=variogram_starts
+    )
     return surface, SurfaceDiagnostics.from_surface(diagnostics)
 
 
@@ -200,6 +206,12 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
     line (``corridor`` given) has no cross-line dip to read: its points stay
     in the line's vertical plane and the surface is gridded once.
 
+    The points move by centimetres from one iteration to the next, so after
+    the first surface each candidate variogram model is refitted from its fit
+    of the iteration before (one start, not the cold starts of the first
+    surface; :func:`~.surface.variogram.fit_variogram`); the model is still
+    chosen by cross-validation each time.
+
     Returns ``(fit, surface, diagnostics, history)``; ``history`` is a tuple of
     the largest cell change of each iteration (m).
     """
@@ -221,7 +233,12 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
         q = np.where(np.isfinite(q) & mapped, q, 0.0)
         fit = fit_step(survey, cross_component=q, ground=ground, exclude=fit.fits.excluded, previous=fit)
         new, diag = interpolate_step(
-            fit.points, work, survey.settings, method, progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it)
+            fit.points,
+            work,
+            survey.settings,
+            method,
+            progress=SubProgress(progress, 30 + 10 * it, 40 + 10 * it),
+            variogram_starts=dict(diag.variogram_fitted) or None,
         )
         change = np.nanmax(np.abs(new.z - surf.z)) if np.any(np.isfinite(new.z - surf.z)) else 0.0
         history.append(float(change))
@@ -230,7 +247,12 @@ def relocate_step(survey, fit, ground, spec, method, progress=None, tolerance_m=
             break
     if work is not spec:
         surf, diag = interpolate_step(
-            fit.points, spec, survey.settings, method, progress=SubProgress(progress, 95, 100)
+            fit.points,
+            spec,
+            survey.settings,
+            method,
+            progress=SubProgress(progress, 95, 100),
+            variogram_starts=dict(diag.variogram_fitted) or None,
         )
     return fit, surf, diag, tuple(history)
 

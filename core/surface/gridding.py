@@ -12,7 +12,7 @@ make it.
 from __future__ import annotations
 
 import math
-from typing import Any, Optional, Union
+from typing import Any, Mapping, Optional, Union
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -173,6 +173,7 @@ def interpolate_surface(
     progress: Optional[Progress] = None,
     variogram: VariogramModel | None = None,
     cv_max_points: int = 20000,
+    variogram_starts: Optional[Mapping[str, VariogramModel]] = None,
 ) -> tuple[SurfaceGrid, dict[str, Any]]:
     """Reflector surface on a grid, with diagnostics (the pipeline's call).
 
@@ -204,6 +205,10 @@ def interpolate_surface(
     cv_max_points : int
         Leave-one-out cross-validation of at most this many data (random,
         seeded), each estimated from all others.
+    variogram_starts : mapping of str to VariogramModel, optional
+        Candidate models fitted to nearly the same data (``variogram_fitted``
+        of an earlier call), each refitted from there alone (``starts`` of
+        :func:`~.kriging.choose_variogram`).
 
     Returns
     -------
@@ -244,7 +249,9 @@ def interpolate_surface(
     if method == "kriging":
         check_cancel(sink)
         if variogram is None:
-            variogram, info = choose_variogram(xa, ya, za, ev, variogram_model, neighbours=neighbours)
+            variogram, info = choose_variogram(
+                xa, ya, za, ev, variogram_model, neighbours=neighbours, starts=variogram_starts
+            )
             diag["experimental_variogram"] = info["experimental_variogram"]
             diag["variogram_fitted"] = info["fitted"]
             diag["variogram_scores"] = info["scores"]

@@ -52,7 +52,7 @@ References
 from __future__ import annotations
 
 import math
-from typing import Any, Callable, Optional, Union
+from typing import Any, Callable, Mapping, Optional, Union
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -96,6 +96,7 @@ def choose_variogram(
     neighbours: Optional[int] = 32,
     max_points: int = 2000,
     experimental: ExperimentalVariogram | None = None,
+    starts: Optional[Mapping[str, VariogramModel]] = None,
 ) -> tuple[VariogramModel, dict[str, Any]]:
     r"""Fit a variogram to data, for kriging with measurement error.
 
@@ -131,6 +132,10 @@ def choose_variogram(
         Largest number of data cross-validated (random, seeded subset).
     experimental : ExperimentalVariogram, optional
         Use this experimental variogram instead of computing one.
+    starts : mapping of str to VariogramModel, optional
+        Model name -> the same model fitted to nearly the same data (``info["fitted"]``
+        of an earlier call), each fitted from there alone (``start`` of
+        :func:`~.variogram.fit_variogram`) instead of from the cold starts.
 
     Returns
     -------
@@ -157,7 +162,7 @@ def choose_variogram(
     fitted = {}
     used = {}
     for m in models:
-        v = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, m)
+        v = fit_variogram(ev.lag_m, ev.semivariance, ev.n_pairs, m, start=(starts or {}).get(m))
         fitted[m] = v
         used[m] = VariogramModel(m, max(v.nugget - mean_e, 0.0), v.sill, v.range_m)
     info: dict[str, Any] = {

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
-from typing import Any, Optional, Union
+from typing import Any, Mapping, Optional, Union
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -14,6 +14,7 @@ from .base import SurfaceGrid
 from .gridding import interpolate_surface, kriging_model
 from .kriging import OrdinaryKriging
 from .spline import ThinPlateSpline
+from .variogram import VariogramModel
 
 __all__ = ["NoTrend", "PlaneTrend", "fit_trend", "grid_with_trend", "model_with_trend", "predict_with_trend"]
 
@@ -141,6 +142,7 @@ def grid_with_trend(
     method: str = "kriging",
     progress: Optional[Progress] = None,
     corridor: Any = None,
+    variogram_starts: Optional[Mapping[str, VariogramModel]] = None,
 ) -> tuple[SurfaceGrid, dict[str, Any]]:
     """Interpolate (x, y, z) with sigma s onto ``spec``: trend removed, residuals gridded, trend added back.
 
@@ -169,6 +171,9 @@ def grid_with_trend(
         The data are one line's (:func:`~.corridor.line_corridor`): the trend
         slopes only along it, cells outside the corridor are masked and the
         std includes the unknown cross-line dip (distance x its assumed tangent).
+    variogram_starts : mapping of str to VariogramModel, optional
+        Candidates fitted to nearly the same data, refitted from there
+        (see :func:`~.gridding.interpolate_surface`).
 
     Returns
     -------
@@ -190,6 +195,7 @@ def grid_with_trend(
         variogram_model=settings.variogram_model,
         max_distance_m=settings.max_distance_m,
         progress=progress,
+        variogram_starts=variogram_starts,
     )
     if corridor is not None:
         mask = surf.mask | corridor.outside(spec)

@@ -227,6 +227,25 @@ def _unit_gaussian(r: np.ndarray) -> np.ndarray:
     return -np.expm1(-3.0 * r * r)
 
 
+def _slope_spherical(r: np.ndarray) -> np.ndarray:
+    return np.where(r < 1.0, 1.5 - 1.5 * r * r, 0.0)
+
+
+def _slope_exponential(r: np.ndarray) -> np.ndarray:
+    return 3.0 * np.exp(-3.0 * r)
+
+
+def _slope_gaussian(r: np.ndarray) -> np.ndarray:
+    return 6.0 * r * np.exp(-3.0 * r * r)
+
+
+#: Derivatives :math:`g'(r)` of the correlation structures (for the fit's analytic Jacobian).
+_UNIT_SLOPES: dict[str, Callable[[np.ndarray], np.ndarray]] = {
+    "spherical": _slope_spherical,
+    "exponential": _slope_exponential,
+    "gaussian": _slope_gaussian,
+}
+
 #: Correlation structures :math:`g(h/a)` of the models, with ``a`` the (practical) range.
 VARIOGRAM_MODELS: dict[str, Callable[[np.ndarray], np.ndarray]] = {
     "spherical": _unit_spherical,
@@ -404,7 +423,13 @@ class VariogramModel:
         return self.total_sill - self(h)
 
 
-def fit_variogram(lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: str = "spherical") -> VariogramModel:
+def fit_variogram(
+    lags: ArrayLike,
+    gamma: ArrayLike,
+    counts: ArrayLike,
+    model: str = "spherical",
+    start: VariogramModel | None = None,
+) -> VariogramModel:
     r"""Fit a variogram model by weighted least squares [Cressie 1985].
 
     Minimises Cressie's criterion
@@ -417,7 +442,8 @@ def fit_variogram(lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: s
     residuals, with :func:`scipy.optimize.least_squares` inside bounds
     :math:`0 \le c_0 \le \max\hat\gamma`, :math:`0 < c \le 2 \max\hat\gamma`,
     :math:`h_{max}/1000 \le a \le 3 h_{max}`, from several starting points
-    (the best is kept). Empty bins (``counts == 0``) are ignored.
+    (the best is kept), or from ``start`` alone. Empty bins (``counts == 0``)
+    are ignored. The Jacobian is analytic.
 
     Parameters
     ----------
@@ -430,6 +456,11 @@ def fit_variogram(lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: s
         Number of pairs in each bin.
     model : str
         "spherical", "exponential" or "gaussian" (see :class:`VariogramModel`).
+    start : VariogramModel, optional
+        The one starting point (clipped into the bounds): the same model fitted
+        to nearly the same data, such as the previous step of the 3D
+        relocation, whose points move by centimetres. Default: the cold starts
+        (three ranges, two nuggets).
 
     Returns
     -------
@@ -481,21 +512,37 @@ def fit_variogram(lags: ArrayLike, gamma: ArrayLike, counts: ArrayLike, model: s
         gm = c0 + c * unit(h / a)
         return sw * (g / np.maximum(gm, tiny) - 1.0)
 
+    slope = _UNIT_SLOPES[model]
+
+    def jac(p: np.ndarray) -> np.ndarray:
+        # d/dp of sw (g / gm - 1) = -sw g / gm^2 dgm/dp, with dgm/dc0 = 1, dgm/dc = unit(r),
+        # dgm/da = -c r unit'(r) / a (r = h / a); zero where gm is held at its floor
+        c0, c, a = p
+        r = h / a
+        gm = c0 + c * unit(r)
+        f = np.where(gm > tiny, -sw * g / np.maximum(gm, tiny) ** 2, 0.0)
+        return np.column_stack([f, f * unit(r), f * (-c * r * slope(r) / a)])
+
     lower = [0.0, 1e-9 * gmax, hmax / 1000.0]
     upper = [gmax, 2.0 * gmax, 3.0 * hmax]
     tail = float(np.mean(g[-max(1, len(g) // 4) :]))
+    starts = []
+    if start is not None:
+        starts.append(np.clip([start.nugget, start.sill, start.range_m], lower, upper))
+    else:
+        for a0 in (0.25 * hmax, 0.5 * hmax, 1.0 * hmax):
+            for c00 in (0.0, 0.5 * float(g[0])):
+                c0s = min(max(c00, 0.0), gmax)
+                cs = min(max(tail - c0s, 0.05 * gmax), 2.0 * gmax)
+                starts.append(np.clip([c0s, cs, a0], lower, upper))
     best = None
-    for a0 in (0.25 * hmax, 0.5 * hmax, 1.0 * hmax):
-        for c00 in (0.0, 0.5 * float(g[0])):
-            c0s = min(max(c00, 0.0), gmax)
-            cs = min(max(tail - c0s, 0.05 * gmax), 2.0 * gmax)
-            p0 = np.clip([c0s, cs, a0], lower, upper)
-            try:
-                r = least_squares(resid, p0, bounds=(lower, upper), x_scale="jac", method="trf")
-            except ValueError:  # pragma: no cover - p0 clipped inside the bounds
-                continue
-            if best is None or r.cost < best.cost:
-                best = r
+    for p0 in starts:
+        try:
+            r = least_squares(resid, p0, jac=jac, bounds=(lower, upper), x_scale="jac", method="trf")
+        except ValueError:  # pragma: no cover - p0 clipped inside the bounds
+            continue
+        if best is None or r.cost < best.cost:
+            best = r
     if best is None:  # pragma: no cover - every start lies inside the bounds
         raise InversionError(f"the {model} variogram fit could not start; give the variogram model explicitly")
     c0, c, a = best.x
