@@ -178,8 +178,9 @@ class SurfaceDiagnostics:
 class TomographyOutcome:
     """The joint inversion of all picks (reflection traveltime tomography), or why it was not run.
 
-    When ``skipped_reason`` is None every other field is set; when it holds
-    the reason (too few picks or gathers) every other field is None.
+    When ``skipped_reason`` is None every other field is set (``variogram``
+    only where the joint estimate makes the map); when it holds the reason
+    (too few picks or gathers) every other field is None.
 
     Attributes
     ----------
@@ -199,7 +200,8 @@ class TomographyOutcome:
         Inverted surface minus the kriged gather-fit surface (m).
     variogram : VariogramModel or None
         The kriging variogram of ``kriged_data`` after their trend (for
-        conditional simulations of the surface).
+        conditional simulations of the surface); None where the joint
+        estimate is only the cross-check of a kriged map (nothing simulates it).
     kriged_data : tuple of 4 ndarray or None
         ``(x_m, y_m, elevation_m, sigma_m)``: the joint estimate read at the
         gathers' reflector points, and the boreholes (for a conditional
@@ -225,13 +227,12 @@ class TomographyOutcome:
             self.curvature_flag,
             self.curvature_reason,
             self.difference_m,
-            self.variogram,
             self.kriged_data,
             self.used,
         )
         if self.skipped_reason is None and any(p is None for p in parts):
             raise ValueError("a joint inversion that ran must carry all its parts")
-        if self.skipped_reason is not None and any(p is not None for p in parts):
+        if self.skipped_reason is not None and any(p is not None for p in (*parts, self.variogram)):
             raise ValueError("a skipped joint inversion carries only its reason")
 
     @property

@@ -376,7 +376,17 @@ def ground_model(survey):
 
 
 def tomography_step(
-    survey, fit, start, spec, forced=False, progress=None, corridor=None, site=None, ground=None, boreholes_all=None
+    survey,
+    fit,
+    start,
+    spec,
+    forced=False,
+    progress=None,
+    corridor=None,
+    site=None,
+    ground=None,
+    boreholes_all=None,
+    conditioning=True,
 ) -> TomographyOutcome:
     """Joint estimate from every pick of every reflector: layered overburden, interfaces, velocities.
 
@@ -391,6 +401,9 @@ def tomography_step(
     ``site`` (:func:`site_velocity`) flags curved-reflector gathers. Returns an
     outcome with its ``skipped_reason`` (auto mode) when the picks do not
     support it; raises InversionError when the method was asked for explicitly.
+    With ``conditioning`` false the outcome's ``variogram`` (what a conditional
+    simulation of the joint estimate needs, :func:`tomography_conditioning`)
+    is left out: :func:`compute` adds it only where the joint estimate makes the map.
     """
     f, g = fit.fits, fit.gathers
     st = survey.settings
@@ -463,7 +476,6 @@ def tomography_step(
     if bh is not None and len(bh):
         x, y = np.concatenate([x, bh.x_m]), np.concatenate([y, bh.y_m])
         zz, ss = np.concatenate([zz, bh.elevation_m]), np.concatenate([ss, bh.sigma_m])
-    model = model_with_trend(x, y, zz, ss, st, corridor=corridor)  # the variogram alone: no grid is made
     flag, reason = curvature_flags(f.velocity_m_s, f.se_velocity_m_s, v_site, v_spread)
     return TomographyOutcome(
         surface=surface,
@@ -471,10 +483,23 @@ def tomography_step(
         curvature_flag=flag & (f.status == "ok") & mapped,
         curvature_reason=reason,
         difference_m=surface.z - start.z,
-        variogram=model["variogram"],
+        variogram=model_with_trend(x, y, zz, ss, st, corridor=corridor)["variogram"] if conditioning else None,
         kriged_data=(x, y, zz, ss),  # the joint estimate at the points (for conditional simulation)
         used=use,
     )
+
+
+def tomography_conditioning(outcome: TomographyOutcome, settings, corridor=None) -> TomographyOutcome:
+    """The outcome with the variogram of its ``kriged_data`` (after their trend), for conditional simulations.
+
+    The same model :func:`tomography_step` gives with ``conditioning`` (no grid
+    is made: :func:`~.surface.trend.model_with_trend`); an outcome that has one,
+    or was skipped, is returned as it is.
+    """
+    if outcome.kriged_data is None or outcome.variogram is not None:
+        return outcome
+    x, y, zz, ss = outcome.kriged_data
+    return replace(outcome, variogram=model_with_trend(x, y, zz, ss, settings, corridor=corridor)["variogram"])
 
 
 def tomography_size_reason(n_picks: int, nx: int, ny: int) -> Optional[str]:
@@ -642,11 +667,13 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
             site=site,
             ground=ground,
             boreholes_all=survey_all.boreholes,
+            conditioning=False,  # added below where the joint estimate makes the map
         )
         layers = tomography.inversion.names if tomography.inversion is not None else ()
         if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
             notes.append(f"joint inversion skipped: {tomography.skipped_reason}; surface by {interp}")
         elif method == "tomography" or np.any(tomography.curvature_flag) or len(layers) > 1:
+            tomography = tomography_conditioning(tomography, settings, corridor)
             surface, method_used = tomography.surface, "tomography"
             if method == "auto" and len(layers) > 1:
                 notes.append(

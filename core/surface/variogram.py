@@ -240,7 +240,7 @@ def _slope_gaussian(r: np.ndarray) -> np.ndarray:
 
 
 #: Derivatives :math:`g'(r)` of the correlation structures (for the fit's analytic Jacobian).
-_UNIT_SLOPES: dict[str, Callable[[np.ndarray], np.ndarray]] = {
+VARIOGRAM_SLOPES: dict[str, Callable[[np.ndarray], np.ndarray]] = {
     "spherical": _slope_spherical,
     "exponential": _slope_exponential,
     "gaussian": _slope_gaussian,
@@ -512,7 +512,7 @@ def fit_variogram(
         gm = c0 + c * unit(h / a)
         return sw * (g / np.maximum(gm, tiny) - 1.0)
 
-    slope = _UNIT_SLOPES[model]
+    slope = VARIOGRAM_SLOPES[model]
 
     def jac(p: np.ndarray) -> np.ndarray:
         # d/dp of sw (g / gm - 1) = -sw g / gm^2 dgm/dp, with dgm/dc0 = 1, dgm/dc = unit(r),
