@@ -73,7 +73,14 @@ from .variogram import (
     fit_variogram,
 )
 
-__all__ = ["CHUNK_BYTES", "GLOBAL_CHUNK_BYTES", "GLOBAL_MAX_DATA", "OrdinaryKriging", "choose_variogram"]
+__all__ = [
+    "CHUNK_BYTES",
+    "GLOBAL_CHUNK_BYTES",
+    "GLOBAL_MAX_DATA",
+    "SHARED_BLOCK_CHUNKS",
+    "OrdinaryKriging",
+    "choose_variogram",
+]
 
 #: Largest data count for a global (unique-neighbourhood) kriging system.
 GLOBAL_MAX_DATA = 6000
@@ -85,6 +92,10 @@ CHUNK_BYTES = 8 * 2**20
 
 #: Memory budget (bytes) of one chunk of right-hand sides (global kriging).
 GLOBAL_CHUNK_BYTES = 64 * 2**20
+
+#: Targets are taken this many chunks at a time when predicting, so that the neighbouring
+#: cells of a grid, which mostly have the same k nearest data, share one kriging matrix.
+SHARED_BLOCK_CHUNKS = 8
 
 
 def choose_variogram(
@@ -196,7 +207,11 @@ class OrdinaryKriging:
     chunk of targets builds a (chunk, k+1, k+1) stack of systems solved at once
     by :func:`numpy.linalg.solve`; the chunk size keeps each batch under
     about 8 MiB (cache-sized), so memory does not grow with the number of data or targets
-    (no N x M matrix). Chunks run on ``n_threads`` threads (NumPy releases the
+    (no N x M matrix). Neighbouring targets (the cells of a grid) mostly have
+    the same nearest data, and the kriging matrix depends on the data alone:
+    where at most half of a block's targets have neighbour sets of their own,
+    each distinct set's matrix is built and inverted once for all its targets
+    (on the sample grid, about 400 matrices for 4,356 cells). Chunks run on ``n_threads`` threads (NumPy releases the
     GIL in the batched solve) while BLAS is held to one thread (see
     :mod:`~.threads`); each thread's KD-tree query is single-threaded, so
     there is no nested thread pool. With ``neighbours=None`` (global, for at
@@ -429,7 +444,59 @@ class OrdinaryKriging:
         _, idx = self.tree_.query(np.column_stack([tx, ty]), k=self._k, workers=1)
         if self._k == 1:
             idx = idx[:, None]
-        return self._solve_local(tx, ty, idx)
+        sets, which = np.unique(np.sort(idx, axis=1), axis=0, return_inverse=True)
+        if 2 * len(sets) <= len(idx):
+            return self._solve_shared(tx, ty, sets, which.ravel())
+        est = np.empty(tx.size)
+        var = np.empty(tx.size)
+        step = self._chunk_size(self._k)  # few targets share their data: cache-sized batches of systems
+        for i in range(0, tx.size, step):
+            sl = slice(i, i + step)
+            est[sl], var[sl] = self._solve_local(tx[sl], ty[sl], idx[sl])
+        return est, var
+
+    def _solve_shared(
+        self, tx: np.ndarray, ty: np.ndarray, sets: np.ndarray, which: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Targets (centred) whose neighbours are the rows of ``sets`` (u, k), target i's row ``which[i]``.
+
+        The kriging matrix depends on the neighbours alone, not on the target:
+        each distinct set's is built and inverted once, and the weights of
+        every target with that set are its inverse times the target's
+        right-hand side (the matrix is symmetric). The same system as
+        :meth:`_solve_local`, equal to round-off.
+        """
+        u, k = sets.shape
+        xs = self._xc[sets]
+        ys = self._yc[sets]
+        a = np.empty((u, k + 1, k + 1))
+        a[:, :k, :k] = self.variogram_.normalised_inplace(
+            np.hypot(xs[:, :, None] - xs[:, None, :], ys[:, :, None] - ys[:, None, :])
+        )
+        r = np.arange(k)
+        a[:, r, r] = -self._e_unit[sets]
+        a[:, k, :k] = 1.0
+        a[:, :k, k] = 1.0
+        a[:, k, k] = 0.0
+        try:
+            ainv = np.linalg.inv(a)
+        except np.linalg.LinAlgError as exc:
+            raise InversionError(
+                f"a local kriging system is singular ({exc}); usual causes: data at the same place with "
+                f"no error variance, or a {self.variogram_.model} model without nugget on dense data. "
+                "Give the data an error variance or the model a small nugget"
+            ) from exc
+        idx = sets[which]
+        b = np.empty((tx.size, k + 1))
+        b[:, :k] = self.variogram_.normalised_inplace(
+            np.hypot(self._xc[idx] - tx[:, None], self._yc[idx] - ty[:, None])
+        )
+        b[:, k] = 1.0
+        sol = np.matmul(ainv[which], b[:, :, None])[:, :, 0]
+        lam = sol[:, :k]
+        est = np.einsum("ij,ij->i", lam, self.z_[idx])
+        var = (np.einsum("ij,ij->i", lam, b[:, :k]) + sol[:, k]) * self.variogram_.total_sill
+        return est, var
 
     def _run_chunks(
         self,
@@ -489,7 +556,7 @@ class OrdinaryKriging:
         if self._k is None:
             chunk = int(max(16, min(8192, GLOBAL_CHUNK_BYTES // (8 * 4 * (self.n_data_ + 1)))))
         else:
-            chunk = self._chunk_size(self._k)
+            chunk = self._chunk_size(self._k) * SHARED_BLOCK_CHUNKS
         est = np.empty(n)
         var = np.empty(n)
 

@@ -83,6 +83,27 @@ def test_matches_pykrige(rng, vario, neighbours, pykrige_ok):
     np.testing.assert_allclose(std**2, pv, rtol=1e-8, atol=1e-10 * vario.total_sill)
 
 
+def test_grid_cells_sharing_their_neighbours_match_pykrige(rng, pykrige_ok):
+    # A dense grid over few data: most cells have the same 16 nearest data, so the kriging
+    # matrix of each distinct neighbour set is inverted once for all its cells. Reference:
+    # PyKrige's moving-window 'loop' backend, one system per cell; the same float64
+    # systems, so 1e-8 relative as in test_matches_pykrige.
+    from scipy.spatial import cKDTree
+
+    x, y, z = _scattered(rng, 60)
+    spec = GridSpec(12.5, 987.5, 25.0, 40, 40)
+    gx, gy = spec.coords()
+    _, idx = cKDTree(np.column_stack([x, y])).query(np.column_stack([gx.ravel(), gy.ravel()]), k=16)
+    assert len(np.unique(np.sort(idx, axis=1), axis=0)) <= spec.size / 2  # the cells share their data (407 sets)
+    vario = VariogramModel("exponential", nugget=0.2, sill=8.0, range_m=600.0)
+    surf = OrdinaryKriging(vario, neighbours=16).fit(x, y, z).grid(spec)
+    model, params = _pykrige_params(vario)
+    pk = pykrige_ok.OrdinaryKriging(x, y, z, variogram_model=model, variogram_parameters=params)
+    pe, pv = pk.execute("points", gx.ravel(), gy.ravel(), backend="loop", n_closest_points=16)
+    np.testing.assert_allclose(surf.z.ravel(), np.asarray(pe), rtol=1e-8, atol=0)
+    np.testing.assert_allclose(surf.std.ravel() ** 2, np.asarray(pv), rtol=1e-8, atol=1e-10 * vario.total_sill)
+
+
 def test_measurement_error_matches_pykrige_filtered_nugget(rng, pykrige_ok):
     # Reference: PyKrige with exact_values=False treats the whole nugget c0 as measurement
     # error (it keeps gamma(0+) = c0 in the right-hand side at a datum). That equals our
@@ -343,9 +364,8 @@ def test_fit_agrees_with_a_finite_difference_fit_and_from_a_warm_start(model):
     # cold starts find. Tolerances: both solvers stop at a relative cost change of 1e-8
     # (SciPy's ftol), which leaves the parameters equal to about 1e-4 relative on
     # the flat valley of a range against a sill.
-    from scipy.optimize import least_squares
-
     from rockhead.core.surface.variogram import VARIOGRAM_MODELS
+    from scipy.optimize import least_squares
 
     truth = VariogramModel(model, nugget=0.05, sill=1.0, range_m=250.0)
     x, y, z, _, _ = _gaussian_field(5, n=300, vario=truth, error_var=0.0)
@@ -374,7 +394,9 @@ def test_fit_agrees_with_a_finite_difference_fit_and_from_a_warm_start(model):
     moved = (ev.lag_m, 1.02 * ev.semivariance, ev.n_pairs)
     cold = fit_variogram(*moved, model=model)
     warm = fit_variogram(*moved, model=model, start=fit)
-    np.testing.assert_allclose([warm.nugget + warm.sill, warm.range_m], [cold.nugget + cold.sill, cold.range_m], rtol=1e-4)
+    np.testing.assert_allclose(
+        [warm.nugget + warm.sill, warm.range_m], [cold.nugget + cold.sill, cold.range_m], rtol=1e-4
+    )
 
 
 def test_fit_needs_three_bins():
