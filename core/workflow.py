@@ -673,7 +673,6 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
         if tomography.surface is None or tomography.curvature_flag is None:  # skipped (see its reason)
             notes.append(f"joint inversion skipped: {tomography.skipped_reason}; surface by {interp}")
         elif method == "tomography" or np.any(tomography.curvature_flag) or len(layers) > 1:
-            tomography = tomography_conditioning(tomography, settings, corridor)
             surface, method_used = tomography.surface, "tomography"
             if method == "auto" and len(layers) > 1:
                 notes.append(
@@ -686,6 +685,7 @@ def compute(survey, method: Optional[str] = None, progress=None) -> RunResult:
                     f"{int(np.sum(tomography.curvature_flag))} gathers depart from the site velocity beyond their "
                     "error (reflector curvature): the surface comes from the joint inversion of all picks"
                 )
+            tomography = tomography_conditioning(tomography, settings, corridor)
         else:
             notes.append(
                 "no gather departs from the site velocity beyond its error (the reflector is planar at the "

@@ -118,6 +118,19 @@ def test_auto_chooses_the_joint_estimate_over_the_valley(valley_run):
     assert min(p.azimuth_deg, 180.0 - p.azimuth_deg) <= 15.0, p
 
 
+def test_the_joint_map_carries_the_variogram_its_simulations_need(valley_run):
+    # where the joint estimate makes the map, the hand-off's conditional simulations krige its
+    # values at the points with this model (the one the surface module fits to those points)
+    from rockhead.core.handoff.steps import surface_conditioning
+    from rockhead.core.surface.trend import model_with_trend
+
+    t = valley_run.tomography
+    conditioning, why = surface_conditioning(valley_run)
+    assert conditioning is not None, why
+    assert conditioning[3] is t.variogram
+    assert t.variogram == model_with_trend(*t.kriged_data, valley_run.survey.settings)["variogram"]
+
+
 def test_joint_estimate_maps_the_valley_with_honest_sigma(valley_run):
     r = valley_run
     err, std = _errors(r.surface)

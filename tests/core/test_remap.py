@@ -30,6 +30,21 @@ def test_pinned_choices_are_the_runs(site):
     assert p.variogram_model == first.seismic_diagnostics.variogram.model
 
 
+def test_the_joint_cross_check_fits_no_variogram_until_asked(site):
+    # the sample's map is the kriging: nothing simulates the joint estimate, so its points'
+    # variogram is not fitted; asked for, it is the one the surface module fits to them
+    from rockhead.core.surface.trend import model_with_trend
+    from rockhead.core.workflow import tomography_conditioning
+
+    _, first = site
+    t = first.tomography
+    assert first.method_used == "kriging" and t.ran and t.variogram is None
+    settings = first.survey.settings
+    added = tomography_conditioning(t, settings)
+    assert added.variogram == model_with_trend(*t.kriged_data, settings)["variogram"]
+    assert tomography_conditioning(added, settings) is added
+
+
 def test_remap_writes_the_map_the_whole_run_writes(site, tmp_path):
     d, first = site
     # an edit: exclude three picks of one gather, retime a fourth
