@@ -87,6 +87,9 @@ class RockheadPlugin:
         if self.provider is not None:
             QgsApplication.processingRegistry().removeProvider(self.provider)
             self.provider = None
+        from .last_run import forget_runs
+
+        forget_runs()  # the last run's result, kept for the QC panel
 
     # -- actions ------------------------------------------------------------------------------
     def _report_missing(self):

@@ -84,18 +84,23 @@ class GatherQc:
     survey_path : str
         The survey.toml (its pick edits file is read, as by every run).
     result : RunResult, optional
-        A computation of the survey; computed here (as the command line does) when omitted.
+        A computation of the survey; when omitted, that of the session's last whole run of it
+        (:mod:`.last_run`) while none of its inputs changed, else computed here (as the
+        command line does).
     """
 
     def __init__(self, survey_path, result=None):
         from ..core.survey.config import load_survey
         from ..core.survey.edits import EDITS_FILE_NAME, PickEdits
         from ..core.workflow import compute
+        from .last_run import kept_run
 
         self.survey_path = str(survey_path)
         survey = load_survey(self.survey_path)
         self.edits_path = survey.files.get("pick_edits") or (survey.path.parent / EDITS_FILE_NAME)
         self.edits = survey.edits.edits if survey.edits is not None else PickEdits((), self.edits_path)
+        if result is None:
+            result = kept_run(self.survey_path)  # the whole run that just ended, when its inputs are unchanged
         self.set_result(result if result is not None else compute(survey))
 
     def set_result(self, result) -> None:

@@ -83,6 +83,7 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
 
     def processAlgorithm(self, parameters, context, feedback):
         from ...core import job
+        from ..last_run import keep_run, run_started_ns
 
         survey_path = self.survey_path(parameters, context, feedback)
         out_dir = self.parameterAsFileOutput(parameters, self.OUTPUT, context)
@@ -92,6 +93,7 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
         index = self.parameterAsEnum(parameters, self.METHOD, context)
         method = None if index == 0 else METHODS[index]
         result = None
+        started_ns = run_started_ns()
         with CoreCall(feedback) as call:
             result = job.run(
                 survey_path,
@@ -102,6 +104,7 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
             )
         if call.cancelled or result is None:
             return {}
+        keep_run(result, started_ns)  # the QC panel opening after the run takes it (no second computation)
         feedback.pushInfo(result.summary())
         self._out_dir = out_dir
         self._survey_path = survey_path

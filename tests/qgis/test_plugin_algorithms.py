@@ -9,6 +9,7 @@ pass through QGIS as doubles: exact), and the GeoTIFFs to float32.
 import csv
 import math
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -394,6 +395,21 @@ def test_run_survey_equals_core(provider, sample_survey, core_results, tmp_path)
         # float32 grids of two runs: equal to float32 rounding of values of a few hundred metres
         np.testing.assert_allclose(da.ReadAsArray(), db.ReadAsArray(), rtol=0, atol=1e-4, equal_nan=True)
         da = db = None
+    # the QC panel opening after the run takes the run's computation instead of redoing it (4 s of the
+    # sample), while none of the survey's inputs has changed; a pick edit written beside the survey
+    # (what the command line would read) makes it compute the survey again, with the edit
+    from rockhead.plugin.last_run import kept_run
+    from rockhead.plugin.qc_dock import GatherQc
+
+    kept = kept_run(sample_survey)
+    assert kept is not None and Path(kept.survey.path).resolve() == Path(sample_survey).resolve()
+    assert GatherQc(sample_survey).result is kept
+    (sample_survey.parent / "pick_edits.csv").write_text(
+        "line,shot,receiver,reflector,action,new_time_ms,reason,time_stamp\nB,1105,1102,,exclude,,test,\n"
+    )
+    assert kept_run(sample_survey) is None
+    again = GatherQc(sample_survey).result
+    assert again is not kept and int(np.sum(again.fit.fits.picks_excluded)) == 1
 
 
 def test_run_survey_loads_styled_group(provider, sample_survey, core_results, tmp_path):
