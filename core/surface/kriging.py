@@ -211,9 +211,10 @@ class OrdinaryKriging:
     the same nearest data, and the kriging matrix depends on the data alone:
     where at most half of a block's targets have neighbour sets of their own,
     each distinct set's matrix is built and inverted once for all its targets
-    (on the sample grid, about 400 matrices for 4,356 cells). Chunks run on ``n_threads`` threads (NumPy releases the
-    GIL in the batched solve) while BLAS is held to one thread (see
-    :mod:`~.threads`); each thread's KD-tree query is single-threaded, so
+    (on the sample grid, about 400 matrices for 4,356 cells). Chunks run on
+    ``n_threads`` threads (NumPy releases the GIL in the batched solve) while
+    BLAS is held to one thread (see :mod:`~.threads`); each thread's KD-tree
+    query is single-threaded, so
     there is no nested thread pool. With ``neighbours=None`` (global, for at
     most ``GLOBAL_MAX_DATA`` data) the (N+1) system is inverted once.
 
