@@ -164,10 +164,12 @@ class BackgroundFiles:
             self.cancel()
 
 
-#: A worker: (warm, work). ``warm()`` runs while the parent computes (imports, nothing the result
-#: decides); ``work(payload)`` gets what the parent hands over and returns the relative paths of the
+#: A group of workers: (warm, works). ``warm()`` runs once while the parent computes (imports,
+#: nothing the result decides); then each ``work(payload)`` runs in a process of its own (forked
+#: from the warmed-up one), gets what the parent hands over and returns the relative paths of the
 #: files it wrote, in order.
-Worker = Tuple[Callable[[], None], Callable[[object], List[str]]]
+Work = Callable[[object], List[str]]
+Group = Tuple[Callable[[], None], Sequence[Work]]
 
 
 class EarlyWorkers:
@@ -175,38 +177,41 @@ class EarlyWorkers:
 
     A run's drawings (QC figures, the report, the printed sheets) need
     matplotlib and its PDF backend, a second or two of imports; forked before
-    the computation, the children import them on the second core while the
-    parent computes, then draw in parallel with the parent's own writing. The
-    parent hands the result over pickled (through an unlinked temporary file,
-    so that a child still warming up never blocks it); each child writes its
-    files into the staging folder and sends back their relative paths (and
-    the warnings it met) through a pipe.
+    the computation, a child imports them on the second core while the parent
+    computes, then forks one process per further work of its group (which
+    share the imports: no second import), and they draw in parallel with the
+    parent. The parent hands the result over pickled (through an unlinked
+    temporary file, so that a child still warming up never blocks it); each
+    work writes its files into the staging folder and sends back their
+    relative paths (and the warnings it met) through a pipe of its own.
 
     Anything unusual leaves the work to the parent, with the files and errors
     of a run without children: no child where :func:`fork_is_safe` says no, a
     payload that cannot be pickled (:meth:`hand_over` returns False), or a
-    child that fails (:meth:`collect` returns None). Children die with the
+    work that fails (:meth:`collect` returns None). Children die with the
     parent (Linux) and are killed on :meth:`cancel` or an exception in the
     ``with`` block.
 
     Parameters
     ----------
-    workers : sequence of (warm, work)
-        One child each.
+    groups : sequence of (warm, works)
+        One child per group, warmed up once; its works are numbered in order
+        over all groups (the index of :meth:`collect`).
     parallel : bool, optional
         Fork the children; default :func:`fork_is_safe`.
     close_in_child : sequence of int
         File descriptors every child closes first (an inherited lock).
     """
 
-    def __init__(self, workers: Sequence[Worker], parallel: Optional[bool] = None, close_in_child: Sequence[int] = ()):
-        self.workers = list(workers)
-        self.pids: List[Optional[int]] = []
-        self._go: List[Optional[int]] = []  # parent's write ends: "the payload is there, n bytes"
-        self._back: List[Optional[int]] = []  # parent's read ends: the child's answer
+    def __init__(self, groups: Sequence[Group], parallel: Optional[bool] = None, close_in_child: Sequence[int] = ()):
+        self.groups = [(warm, list(works)) for warm, works in groups]
+        self._group_of = [g for g, (_, works) in enumerate(self.groups) for _ in works]
+        self.pids: List[Optional[int]] = []  # one child per group (its other works are its own children)
+        self._go: List[Optional[int]] = []  # parent's write ends, per work: "the payload is there, n bytes"
+        self._back: List[Optional[int]] = []  # parent's read ends, per work: the answer
         self._payload: Optional[IO[bytes]] = None
         self.handed = False
-        if self.workers and (fork_is_safe() if parallel is None else parallel):
+        if self._group_of and (fork_is_safe() if parallel is None else parallel):
             self._start(tuple(close_in_child))
 
     @property
@@ -218,21 +223,18 @@ class EarlyWorkers:
         import tempfile
 
         payload = self._payload = tempfile.TemporaryFile()
-        pipes = [(os.pipe(), os.pipe()) for _ in self.workers]
+        pipes = [(os.pipe(), os.pipe()) for _ in self._group_of]  # per work: (go_r, go_w), (back_r, back_w)
+        ends = [(go_r, back_w) for (go_r, _), (_, back_w) in pipes]
         sys.stdout.flush()
         sys.stderr.flush()
         parent = os.getpid()
-        for i, (warm, work) in enumerate(self.workers):
-            (go_r, go_w), (back_r, back_w) = pipes[i]
+        for g, (warm, works) in enumerate(self.groups):
+            mine = [k for k, owner in enumerate(self._group_of) if owner == g]
             pid = os.fork()
-            if pid == 0:  # the child: never returns
-                mine = {go_r, back_w}
-                for fd in [fd for pair in pipes for p in pair for fd in p if fd not in mine] + list(close_in_child):
-                    try:
-                        os.close(fd)
-                    except OSError:
-                        pass
-                _child(parent, warm, work, payload.fileno(), go_r, back_w)
+            if pid == 0:  # the group's child: never returns
+                keep = {fd for k in mine for fd in ends[k]}
+                _close([fd for pair in pipes for p in pair for fd in p if fd not in keep] + list(close_in_child))
+                _group(parent, warm, [(works[i], ends[k]) for i, k in enumerate(mine)], payload.fileno())
             self.pids.append(pid)
         for (go_r, go_w), (back_r, back_w) in pipes:
             os.close(go_r)
@@ -241,7 +243,7 @@ class EarlyWorkers:
             self._back.append(back_r)
 
     def hand_over(self, payload) -> bool:
-        """Give ``payload`` to every child; False (children sent away) without children or a picklable payload."""
+        """Give ``payload`` to every work; False (children sent away) without children or a picklable payload."""
         if not self.running or self._payload is None:
             return False
         import pickle
@@ -266,25 +268,27 @@ class EarlyWorkers:
         return True
 
     def collect(self, index: int) -> Optional[List[str]]:
-        """Wait for child ``index``; the relative paths it wrote, or None when it did not finish its work.
+        """Wait for work ``index``; the relative paths it wrote, or None when it did not finish.
 
-        The warnings the child met are issued again here.
+        The warnings the work met are issued again here.
         """
-        pid = self.pids[index] if index < len(self.pids) else None
         back = self._back[index] if index < len(self._back) else None
-        if pid is None or back is None or not self.handed:
+        if back is None or not self.handed:
             return None
         answer = _read_all(back)
         self._back[index] = None
-        _, status = os.waitpid(pid, 0)
-        self.pids[index] = None
-        if status != 0 or not answer:
+        group = self._group_of[index]
+        pid = self.pids[group]
+        if pid is not None and all(self._back[k] is None for k, g in enumerate(self._group_of) if g == group):
+            os.waitpid(pid, 0)  # the group's child, once every work of it has answered (it waits for its own)
+            self.pids[group] = None
+        if not answer:
             return None
         import pickle
 
         try:
             rels, caught = pickle.loads(answer)
-        except Exception:
+        except Exception:  # cut short: the work did not finish
             return None
         import warnings
 
@@ -293,7 +297,7 @@ class EarlyWorkers:
         return list(rels)
 
     def cancel(self) -> None:
-        """Stop every child still running and wait for it."""
+        """Stop every child still running (its own children die with it) and wait for it."""
         for i, pid in enumerate(self.pids):
             if pid is None:
                 continue
@@ -308,10 +312,6 @@ class EarlyWorkers:
                 if fd is not None:
                     os.close(fd)
                     fds[i] = None
-        self.close()
-
-    def close(self) -> None:
-        """Release the payload file (the children, if any, are the caller's to collect or cancel)."""
         if self._payload is not None:
             self._payload.close()
             self._payload = None
@@ -321,6 +321,14 @@ class EarlyWorkers:
 
     def __exit__(self, exc_type, exc, tb) -> None:
         self.cancel()
+
+
+def _close(fds) -> None:
+    for fd in fds:
+        try:
+            os.close(fd)
+        except OSError:
+            pass
 
 
 def _read_all(fd: int) -> bytes:
@@ -334,8 +342,8 @@ def _read_all(fd: int) -> bytes:
     return b"".join(chunks)
 
 
-def _child(parent: int, warm, work, payload_fd: int, go_fd: int, back_fd: int) -> None:
-    """A worker's life: warm up, wait for the payload, work, answer and leave by ``os._exit``."""
+def _group(parent: int, warm, works, payload_fd: int) -> None:
+    """A group's child: warm up, fork a process for each further work, do the first, wait for the others, leave."""
     code = 1
     try:
         _die_with(parent)
@@ -343,11 +351,45 @@ def _child(parent: int, warm, work, payload_fd: int, go_fd: int, back_fd: int) -
             warm()
         except Exception:  # the work meets the same problem and reports it
             pass
+        me = os.getpid()
+        helpers = []
+        for k, (work, fds) in enumerate(works[1:], start=1):
+            pid = os.fork()
+            if pid == 0:  # a further work of the group, sharing the warmed-up imports
+                _close([fd for j, (_, other) in enumerate(works) if j != k for fd in other])
+                _serve(me, work, payload_fd, *fds)
+            helpers.append(pid)
+        _close([fd for _, other in works[1:] for fd in other])
+        work, (go_fd, back_fd) = works[0]
+        code = _answer(parent, work, payload_fd, go_fd, back_fd)
+        for pid in helpers:
+            os.waitpid(pid, 0)
+    except BaseException:
+        code = 1
+    finally:
+        os._exit(code)
+
+
+def _serve(parent: int, work, payload_fd: int, go_fd: int, back_fd: int) -> None:
+    """A further work's process: answer and leave by ``os._exit``."""
+    code = 1
+    try:
+        _die_with(parent)
+        code = _answer(parent, work, payload_fd, go_fd, back_fd)
+    except BaseException:
+        code = 1
+    finally:
+        os._exit(code)
+
+
+def _answer(parent: int, work, payload_fd: int, go_fd: int, back_fd: int) -> int:
+    """Wait for the payload, work on it, send the answer; 0 when answered, 1 when the work failed (no answer)."""
+    try:
         size_bytes = b""
         while len(size_bytes) < 8:
             data = os.read(go_fd, 8 - len(size_bytes))
             if not data:  # no payload: the parent does the work itself, or the run ended
-                os._exit(0)
+                return 0
             size_bytes += data
         size = int.from_bytes(size_bytes, "little")
         chunks, offset = [], 0
@@ -364,17 +406,18 @@ def _child(parent: int, warm, work, payload_fd: int, go_fd: int, back_fd: int) -
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             rels = work(payload)
-        if os.getppid() == parent:
-            met = [(w.category, str(w.message)) for w in caught]
-            try:
-                answer = pickle.dumps(([str(r) for r in rels], met))
-            except Exception:  # a warning class that does not pickle: said as a UserWarning
-                answer = pickle.dumps(([str(r) for r in rels], [(UserWarning, m) for _, m in met]))
-            view = memoryview(answer)
-            while view:
-                view = view[os.write(back_fd, view) :]
-            code = 0
-    except BaseException:  # the parent sees no answer and does the work itself, meeting the error there
-        code = 1
+        if os.getppid() != parent:  # the run was killed: nobody to answer
+            return 1
+        met = [(w.category, str(w.message)) for w in caught]
+        try:
+            answer = pickle.dumps(([str(r) for r in rels], met))
+        except Exception:  # a warning class that does not pickle: said as a UserWarning
+            answer = pickle.dumps(([str(r) for r in rels], [(UserWarning, m) for _, m in met]))
+        view = memoryview(answer)
+        while view:
+            view = view[os.write(back_fd, view) :]
+        return 0
+    except Exception:  # the parent sees no answer and does the work itself, meeting the error there
+        return 1
     finally:
-        os._exit(code)
+        _close([go_fd, back_fd])

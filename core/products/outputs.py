@@ -448,13 +448,14 @@ def _stage_map_and_handoff(result, folder: RunFolder, progress, layers, sections
 
 
 def output_workers(folder: RunFolder, parallel=None):
-    """Three child processes that write a run's files, forked now (before the computation) and warmed up meanwhile.
+    """Child processes that write a run's files, forked now (before the computation) and warmed up meanwhile.
 
     One writes the map products and the hand-off files (GDAL through
-    rasterio and pyogrio), one draws the QC figures and the report, one the
-    printed sheets (:class:`~.background.EarlyWorkers`): each imports what
-    it needs while the computation runs, and :func:`write_all` hands them the
-    result. None where there is no child to be had
+    rasterio and pyogrio); another imports matplotlib and its PDF backend,
+    then forks a third: one draws the QC figures and the report, the other
+    the printed sheets (:class:`~.background.EarlyWorkers`). They import what
+    they need while the computation runs, and :func:`write_all` hands them
+    the result. None where there is no child to be had
     (:func:`~.background.fork_is_safe`); either way the files are those of a
     run in one process.
 
@@ -487,19 +488,15 @@ def output_workers(folder: RunFolder, parallel=None):
         _stage_map_and_handoff(result, folder, NullProgress(), result_layers(result, sections), sections)
         return folder.planned[before:]
 
-    def warm_documents() -> None:
-        _import_matplotlib()
-        from ..report import content, qc_figures  # noqa: F401 - imported ahead, while the parent computes
+    def warm_drawing() -> None:
+        _import_matplotlib(pdf=True)
+        from ..report import content, map_sheet, qc_figures, section_sheet  # noqa: F401 - ahead, while the run computes
 
     def documents(payload) -> list:
         result, sections, gather_figures = payload
         before = len(folder.planned)
         _draw_documents(result, folder, NullProgress(), gather_figures, result_layers(result, sections), sections)
         return folder.planned[before:]
-
-    def warm_sheets() -> None:
-        _import_matplotlib(pdf=True)
-        from ..report import map_sheet, section_sheet  # noqa: F401 - imported ahead, while the parent computes
 
     def sheets(payload) -> list:
         result, sections, _ = payload
@@ -509,7 +506,7 @@ def output_workers(folder: RunFolder, parallel=None):
         return [str(path.relative_to(folder.staging)) for path, _ in jobs]
 
     return EarlyWorkers(
-        [(warm_maps, maps), (warm_documents, documents), (warm_sheets, sheets)],
+        [(warm_maps, [maps]), (warm_drawing, [documents, sheets])],  # the drawings share one import of matplotlib
         parallel=True,
         close_in_child=folder.lock_descriptors(),
     )

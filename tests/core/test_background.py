@@ -140,7 +140,7 @@ def test_early_workers_warm_up_then_get_the_payload(tmp_path):
         (tmp_path / name).write_bytes(data + str(len(warmed)).encode())  # warmed once, in this process
         return [name]
 
-    with EarlyWorkers([(warm, work)], parallel=True) as workers:
+    with EarlyWorkers([(warm, [work])], parallel=True) as workers:
         assert workers.running
         assert workers.hand_over(("a.bin", bytes(range(10))))
         assert workers.collect(0) == ["a.bin"]
@@ -160,7 +160,7 @@ def test_early_workers_each_do_their_own_work(tmp_path):
 
         return work
 
-    with EarlyWorkers([(lambda: None, work_as("one")), (lambda: None, work_as("two"))], parallel=True) as workers:
+    with EarlyWorkers([(lambda: None, [work_as("one")]), (lambda: None, [work_as("two")])], parallel=True) as workers:
         assert workers.hand_over("payload")
         assert workers.collect(1) == ["two"]
         assert workers.collect(0) == ["one"]
@@ -170,10 +170,46 @@ def test_early_workers_each_do_their_own_work(tmp_path):
 
 
 @needs_fork
+def test_the_works_of_a_group_share_one_warm_up_in_processes_of_their_own(tmp_path):
+    """A group warms up once (matplotlib imported once) and its works still run side by side."""
+    import resource
+
+    from rockhead.core.products.background import EarlyWorkers
+
+    def warm():
+        (tmp_path / f"warm_{os.getpid()}").touch()
+
+    def work_as(name):
+        def work(payload):
+            import time
+
+            (tmp_path / name).write_text(str(os.getpid()))
+            start = time.process_time()
+            while time.process_time() - start < 0.2:  # 0.2 s of processor time in each work's process
+                pass
+            return [name]
+
+        return work
+
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    with EarlyWorkers([(warm, [work_as("a"), work_as("b"), work_as("c")])], parallel=True) as workers:
+        assert workers.hand_over(None)
+        assert [workers.collect(k) for k in (2, 0, 1)] == [["c"], ["a"], ["b"]]
+        assert not workers.running
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    assert len(list(tmp_path.glob("warm_*"))) == 1  # one warm-up for the three works
+    pids = {(tmp_path / n).read_text() for n in "abc"}
+    assert len(pids) == 3 and str(os.getpid()) not in pids
+    # every work's processor time reaches this process (the group's child waits for its own children):
+    # 3 x 0.2 s burnt; without the second and third works counted it would be about 0.2 s
+    assert after.ru_utime + after.ru_stime - before.ru_utime - before.ru_stime >= 0.55
+
+
+@needs_fork
 def test_a_payload_that_does_not_pickle_leaves_the_work_here(tmp_path):
     from rockhead.core.products.background import EarlyWorkers
 
-    with EarlyWorkers([(lambda: None, _write_pid(tmp_path))], parallel=True) as workers:
+    with EarlyWorkers([(lambda: None, [_write_pid(tmp_path)])], parallel=True) as workers:
         assert not workers.hand_over(lambda: "a closure does not pickle")
         assert not workers.running  # sent away
         assert workers.collect(0) is None  # the caller does the work itself
@@ -188,7 +224,7 @@ def test_a_failing_worker_answers_none(tmp_path):
     def work(payload):
         raise ValueError("no such page")
 
-    with EarlyWorkers([(lambda: None, work)], parallel=True) as workers:
+    with EarlyWorkers([(lambda: None, [work])], parallel=True) as workers:
         assert workers.hand_over("x")
         assert workers.collect(0) is None
 
@@ -203,7 +239,7 @@ def test_a_worker_s_warnings_are_issued_in_the_parent():
         warnings.warn(f"glyph missing in {payload}", UserWarning, stacklevel=1)
         return []
 
-    with EarlyWorkers([(lambda: None, work)], parallel=True) as workers:
+    with EarlyWorkers([(lambda: None, [work])], parallel=True) as workers:
         assert workers.hand_over("the title")
         with pytest.warns(UserWarning, match="glyph missing in the title"):
             assert workers.collect(0) == []
@@ -220,7 +256,7 @@ def test_an_error_before_the_hand_over_stops_the_workers(tmp_path):
     from rockhead.core.products.background import EarlyWorkers
 
     with pytest.raises(RuntimeError, match="computation failed"):
-        with EarlyWorkers([(warm, _write_pid(tmp_path))], parallel=True) as workers:
+        with EarlyWorkers([(warm, [_write_pid(tmp_path)])], parallel=True) as workers:
             raise RuntimeError("computation failed")
     assert time.perf_counter() - start < 10  # killed, not waited for (the warm-up would take 30 s)
     assert not workers.running
@@ -230,7 +266,7 @@ def test_an_error_before_the_hand_over_stops_the_workers(tmp_path):
 def test_no_early_workers_without_fork(tmp_path):
     from rockhead.core.products.background import EarlyWorkers
 
-    with EarlyWorkers([(lambda: None, _write_pid(tmp_path))], parallel=False) as workers:
+    with EarlyWorkers([(lambda: None, [_write_pid(tmp_path)])], parallel=False) as workers:
         assert not workers.running
         assert not workers.hand_over("a.txt")
     assert list(tmp_path.iterdir()) == []
@@ -253,7 +289,7 @@ def test_early_workers_let_go_of_the_run_folders_lock(tmp_path):
             folder.path("state.txt").write_text(state)
             return ["state.txt"]
 
-        with EarlyWorkers([(lambda: None, work)], parallel=True, close_in_child=folder.lock_descriptors()) as w:
+        with EarlyWorkers([(lambda: None, [work])], parallel=True, close_in_child=folder.lock_descriptors()) as w:
             assert w.hand_over(None)
             for rel in w.collect(0):
                 folder.path(rel)

@@ -43,11 +43,20 @@ def test_two_runs_give_identical_files(survey_path, tmp_path):
 
 def test_drawing_processes_give_the_files_of_a_run_in_one_process(survey_path, tmp_path, monkeypatch):
     """The QC figures, report and sheets drawn by forked workers are byte-identical to those drawn in the run."""
-    from rockhead.core.products.background import fork_is_safe
+    from rockhead.core.products.background import EarlyWorkers, fork_is_safe
 
     if not fork_is_safe():
         pytest.skip("no child process here (no fork, one core or ROCKHEAD_NO_FORK): nothing to compare")
+    answers = []
+    collect = EarlyWorkers.collect
+
+    def recorded(self, index):
+        answers.append(collect(self, index))
+        return answers[-1]
+
+    monkeypatch.setattr(EarlyWorkers, "collect", recorded)
     job.run(survey_path, tmp_path / "forked")
+    assert len(answers) == 3 and all(answers), answers  # the workers wrote the files, not the run's fallback
     monkeypatch.setenv("ROCKHEAD_NO_FORK", "1")
     job.run(survey_path, tmp_path / "alone")
     a, b = _digest(tmp_path / "forked"), _digest(tmp_path / "alone")
