@@ -168,8 +168,21 @@ class NormalFactor:
         return x if b.ndim == 2 else x[:, 0]
 
     @classmethod
-    def of(cls, A, layout) -> NormalFactor:
+    def of(cls, A, layout, damping: float = 0.0) -> NormalFactor:
         """Factor the sparse normal matrix ``A`` (nodes first, as in :class:`~.system.Layout`).
+
+        See :meth:`of_blocks`.
+        """
+        n = layout.n_nodes
+        A = sp.csr_matrix(A)
+        return cls.of_blocks(A[:n, :n], A[:n, n:].toarray(), A[n:, n:].toarray(), layout, damping)
+
+    @classmethod
+    def of_blocks(cls, A_uu, A_us, A_ss, layout, damping: float = 0.0) -> NormalFactor:
+        """Factor the normal matrix given by its blocks: sparse ``A_uu``, dense ``A_us`` and ``A_ss``.
+
+        ``damping`` mu factors :math:`A + \\mu\\,\\mathrm{diag}(A)` instead (Levenberg-Marquardt).
+        The arrays given are not changed.
 
         Raises
         ------
@@ -177,26 +190,26 @@ class NormalFactor:
             Where A is not positive definite.
         """
         n = layout.n_nodes
-        A = sp.csr_matrix(A)
-        A.sum_duplicates()  # one entry per position: the band is filled by assignment
-        C = A.tocoo()
-        node = (C.row < n) & (C.col < n)
-        A_us = np.zeros((n, A.shape[1] - n))
-        mix = (C.row < n) & (C.col >= n)
-        A_us[C.row[mix], C.col[mix] - n] = C.data[mix]
-        A_ss = np.zeros((A.shape[0] - n, A.shape[1] - n))
-        small = (C.row >= n) & (C.col >= n)
-        A_ss[C.row[small] - n, C.col[small] - n] = C.data[small]
+        A_ss = np.array(A_ss, float)
+        if damping:
+            A_ss[np.diag_indices_from(A_ss)] += damping * np.diag(A_ss)
+        C = sp.csr_matrix(A_uu)
+        C.sum_duplicates()  # one entry per position: the band is filled by assignment
+        C = C.tocoo()
         order = layout.band_order()
         inverse = np.empty(n, np.int64)
         inverse[order] = np.arange(n)
-        keep, d, c = band_positions(C.row[node], C.col[node], inverse)
+        keep, d, c = band_positions(C.row, C.col, inverse)
         b = int(d.max()) if d.size else 0
         if n * (b + 1) ** 2 > BAND_FLOPS:
-            Auu = sp.csr_matrix((C.data[node], (C.row[node], C.col[node])), shape=(n, n))
+            Auu = C.tocsr()
+            if damping:
+                Auu = Auu + sp.diags(damping * Auu.diagonal())
             return cls(("sparse", Auu), A_us, A_ss)
         ab = np.zeros((b + 1, n), order="F")  # LAPACK order: factored in place
-        ab[d, c] = C.data[node][keep]
+        ab[d, c] = C.data[keep]
+        if damping:
+            ab[0] += damping * ab[0]  # the diagonal
         return cls(("band", ab, order), A_us, A_ss)
 
     def solve(self, rhs):

@@ -48,6 +48,8 @@ References
     varying media. Geophysics 50(6), 903-923.
 [Sheriff & Geldart 1995] Sheriff, R. E. & Geldart, L. P. (1995). Exploration
     Seismology, 2nd ed., Cambridge University Press, ch. 4.
+[Golub & Van Loan 2013] Golub, G. H. & Van Loan, C. F. (2013). Matrix
+    Computations, 4th ed. Johns Hopkins University Press.
 """
 
 from __future__ import annotations
@@ -273,18 +275,80 @@ def _flat_start(model, S, R, k):
     return S[:, None, :2] + dist[..., None] * u[:, None, :]
 
 
-def _batched_cholesky(H):
-    """Which of the matrices (n, d, d) are positive definite (d small), by a vectorised Cholesky."""
-    n, d, _ = H.shape
-    L = np.zeros_like(H)
-    ok = np.ones(n, bool)
-    for j in range(d):
-        v = H[:, j, j] - np.sum(L[:, j, :j] ** 2, axis=1)
-        ok &= v > 0
-        L[:, j, j] = np.sqrt(np.where(v > 0, v, 1.0))
-        for i in range(j + 1, d):
-            L[:, i, j] = (H[:, i, j] - np.sum(L[:, i, :j] * L[:, j, :j], axis=1)) / L[:, j, j]
-    return ok, L
+def _inverse_2x2(a, b, d):
+    """Inverse (a', b', d') of symmetric 2 x 2 matrices [[a, b], [b, d]] (entries as arrays), and the determinants."""
+    det = a * d - b * b
+    return d / det, -b / det, a / det, det
+
+
+def _block_tridiagonal(Hd, Ho, g, shift):
+    """Solve H x = g (H symmetric block-tridiagonal, 2 x 2 blocks); say where H - shift I is positive definite.
+
+    A path's (x, y) Hessian couples each point with its neighbours only. By
+    block elimination [Golub & Van Loan 2013, s. 4.5.1] the pivot blocks are
+    :math:`D_0 = H_{00}`, :math:`D_p = H_{pp} - H_{p-1,p}^T D_{p-1}^{-1} H_{p-1,p}`, and
+    a symmetric matrix is positive definite exactly when every pivot block is
+    (Schur complements). Vectorised over the paths, 2 x 2 inverses in closed form.
+
+    Parameters
+    ----------
+    Hd : array (n, m, 2, 2)
+        Diagonal blocks.
+    Ho : array (n, m - 1, 2, 2)
+        Blocks (p, p + 1) above the diagonal.
+    g : array (n, m, 2)
+    shift : array (n,)
+
+    Returns
+    -------
+    pd : bool array (n,)
+        H - shift I is positive definite.
+    x : array (n, m, 2)
+        The solution (meaningful where H is positive definite).
+    """
+    n, m = Hd.shape[:2]
+
+    def pivots(eps):
+        pd = np.ones(n, bool)
+        inv = []
+        for p in range(m):
+            a, b, d = Hd[:, p, 0, 0] - eps, Hd[:, p, 0, 1], Hd[:, p, 1, 1] - eps
+            if p:
+                ia, ib, id_ = inv[-1]
+                O = Ho[:, p - 1]
+                x00, x01 = ia * O[:, 0, 0] + ib * O[:, 1, 0], ia * O[:, 0, 1] + ib * O[:, 1, 1]
+                x10, x11 = ib * O[:, 0, 0] + id_ * O[:, 1, 0], ib * O[:, 0, 1] + id_ * O[:, 1, 1]
+                a = a - (O[:, 0, 0] * x00 + O[:, 1, 0] * x10)
+                b = b - (O[:, 0, 0] * x01 + O[:, 1, 0] * x11)
+                d = d - (O[:, 0, 1] * x01 + O[:, 1, 1] * x11)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ia, ib, id_, det = _inverse_2x2(a, b, d)
+            pd &= (a > 0) & (det > 0)
+            inv.append((ia, ib, id_))
+        return pd, inv
+
+    pd, _ = pivots(shift)
+    _, inv = pivots(0.0)
+    with np.errstate(invalid="ignore", over="ignore"):
+        y = [(g[:, 0, 0], g[:, 0, 1])]
+        for p in range(1, m):
+            ia, ib, id_ = inv[p - 1]
+            u0, u1 = ia * y[-1][0] + ib * y[-1][1], ib * y[-1][0] + id_ * y[-1][1]
+            O = Ho[:, p - 1]
+            y.append(
+                (g[:, p, 0] - (O[:, 0, 0] * u0 + O[:, 1, 0] * u1), g[:, p, 1] - (O[:, 0, 1] * u0 + O[:, 1, 1] * u1))
+            )
+        x = np.empty((n, m, 2))
+        for p in range(m - 1, -1, -1):
+            r0, r1 = y[p]
+            if p < m - 1:
+                O = Ho[:, p]
+                r0 = r0 - (O[:, 0, 0] * x[:, p + 1, 0] + O[:, 0, 1] * x[:, p + 1, 1])
+                r1 = r1 - (O[:, 1, 0] * x[:, p + 1, 0] + O[:, 1, 1] * x[:, p + 1, 1])
+            ia, ib, id_ = inv[p]
+            x[:, p, 0] = ia * r0 + ib * r1
+            x[:, p, 1] = ib * r0 + id_ * r1
+    return pd, x
 
 
 def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
@@ -314,20 +378,12 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
         g2 = gP[..., :2] + gP[..., 2:3] * slope
         curv = np.stack([np.stack([zxx, zxy], -1), np.stack([zxy, zyy], -1)], -2)
         Hd = o["HBB"][:, :-1] + o["HAA"][:, 1:] + gP[..., 2, None, None] * curv  # (na, m, 2, 2)
-        H = np.zeros((na, 2 * m, 2 * m))
-        for p in range(m):
-            H[:, 2 * p : 2 * p + 2, 2 * p : 2 * p + 2] = Hd[:, p]
-        if m > 1:
-            Ho = o["HAB"][:, 1:-1]  # (na, m - 1, 2, 2): point p with p + 1
-            for p in range(m - 1):
-                H[:, 2 * p : 2 * p + 2, 2 * p + 2 : 2 * p + 4] = Ho[:, p]
-                H[:, 2 * p + 2 : 2 * p + 4, 2 * p : 2 * p + 2] = np.swapaxes(Ho[:, p], -1, -2)
         D = B - A
         L = np.sqrt(D[..., 0] * D[..., 0] + D[..., 1] * D[..., 1] + D[..., 2] * D[..., 2])
         floor = 0.02 * np.mean(1.0 / (np.maximum(L, 1e-6) * np.sqrt(np.abs(o["va"] * o["vb"]))), axis=1)
         gflat = g2.reshape(na, 2 * m)
         if m == 1:  # 2 x 2: eigenvalues in closed form, shift the spectrum above the floor
-            hxx, hxy, hyy = H[:, 0, 0], H[:, 0, 1], H[:, 1, 1]
+            hxx, hxy, hyy = Hd[:, 0, 0, 0], Hd[:, 0, 0, 1], Hd[:, 0, 1, 1]
             half = 0.5 * (hxx + hyy)
             lam_min = half - np.sqrt(np.maximum(0.25 * (hxx - hyy) ** 2 + hxy * hxy, 0.0))
             shift = np.where(lam_min < 1e-3 * floor, floor - lam_min, 0.0)
@@ -338,18 +394,19 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
                 [(hyy * gflat[:, 0] - hxy * gflat[:, 1]) / det, (-hxy * gflat[:, 0] + hxx * gflat[:, 1]) / det], axis=-1
             )[:, None, :]
         else:
-            step = np.empty((na, 2 * m))
-            shifted = H - 1e-3 * floor[:, None, None] * np.eye(2 * m)
-            try:  # usually every path is near its minimum: one LAPACK call decides for all
-                np.linalg.cholesky(shifted)
-                pd = np.ones(na, bool)
-            except np.linalg.LinAlgError:
-                pd, _ = _batched_cholesky(shifted)
+            Ho = o["HAB"][:, 1:-1]  # (na, m - 1, 2, 2): point p with p + 1
+            # positive definite beyond the floor: the Newton step itself (quadratic convergence)
+            pd, x = _block_tridiagonal(Hd, Ho, g2, 1e-3 * floor)
+            step = -x.reshape(na, 2 * m)
             newton = pd
-            if pd.any():  # positive definite: the Newton step itself (quadratic convergence)
-                step[pd] = -np.linalg.solve(H[pd], gflat[pd][..., None])[..., 0]
             if (~pd).any():  # the others (far from a minimum): lift their spectrum to the floor
-                lam, V = np.linalg.eigh(H[~pd])
+                H = np.zeros((int(np.sum(~pd)), 2 * m, 2 * m))
+                for p in range(m):
+                    H[:, 2 * p : 2 * p + 2, 2 * p : 2 * p + 2] = Hd[~pd, p]
+                for p in range(m - 1):
+                    H[:, 2 * p : 2 * p + 2, 2 * p + 2 : 2 * p + 4] = Ho[~pd, p]
+                    H[:, 2 * p + 2 : 2 * p + 4, 2 * p : 2 * p + 2] = np.swapaxes(Ho[~pd, p], -1, -2)
+                lam, V = np.linalg.eigh(H)
                 lam = np.maximum(lam, floor[~pd, None])
                 step[~pd] = -np.einsum("nij,nj->ni", V, np.einsum("nji,nj->ni", V, gflat[~pd]) / lam)
             step = step.reshape(na, m, 2)

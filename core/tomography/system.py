@@ -407,6 +407,13 @@ def gauss_newton(
     B = borehole_matrix(layout, data)
     BtB = None if B is None else (B.T @ sp.diags(1.0 / data.bh_sigma_m**2) @ B).tocsr()
     mean0 = prior_mean(layout, data)
+    # the normal matrix by blocks (nodes, node-other, other), its constant parts split once
+    n_nodes = layout.n_nodes
+    Cuu, Cus, Css = P[:n_nodes, :n_nodes], np.zeros((n_nodes, layout.n_small)), P[n_nodes:, n_nodes:].toarray()
+    if BtB is not None:
+        Cuu = Cuu + BtB[:n_nodes, :n_nodes]
+        Cus = Cus + BtB[:n_nodes, n_nodes:].toarray()
+        Css = Css + BtB[n_nodes:, n_nodes:].toarray()
     reweight(data, state, robust_scale, reject_sigma, sigma_scale)
     hist = Iterations()
     hist.misfit_history.append(rms_misfit(data, state, sigma_scale))
@@ -420,16 +427,13 @@ def gauss_newton(
         check_cancel(progress)
         Jn, Js, use, sw = jacobian_blocks(layout, data, state, sigma_scale)
         m_cur = parameters(layout, state)
-        A = (normal_blocks(Jn, Js) + P).tocsr()
         r = state.residual_s[use] * sw
         rhs = np.concatenate([Jn.T @ r, Js.T @ r]) - P @ (m_cur - mean0)
         if B is not None:
-            A = A + BtB
             rhs = rhs + B.T @ ((data.bh_elevation_m - B @ m_cur) / data.bh_sigma_m**2)
-        diag = A.diagonal()
-        Ad = A + sp.diags(mu * diag)
         try:
-            delta = NormalFactor.of(Ad, layout).solve(rhs)
+            fac = NormalFactor.of_blocks(Jn.T @ Jn + Cuu, Jn.T @ Js + Cus, Js.T @ Js + Css, layout, damping=mu)
+            delta = fac.solve(rhs)
         except np.linalg.LinAlgError as err:
             raise InversionError(
                 f"the joint normal equations are singular ({err}); the picks and priors do not determine the model"

@@ -81,6 +81,22 @@ def test_log_determinant_and_solve_match_numpy(K, n_small):
     assert h.log_det == pytest.approx(g.log_det, rel=1e-13)
 
 
+@pytest.mark.parametrize("band", [True, False], ids=["banded", "sparse LU"])
+def test_damping_adds_a_multiple_of_the_diagonal(monkeypatch, band):
+    """Levenberg-Marquardt (Marquardt 1963): the factor of A + mu diag(A), the same as numpy's of that matrix."""
+    spec = GridSpec(0.0, 0.0, 5.0, 7, 5)
+    A = _normal_matrix(spec, 2, 6, seed=11)
+    mu = 0.37
+    dense = A.toarray() + mu * np.diag(A.diagonal())
+    if not band:
+        monkeypatch.setattr(factor, "BAND_FLOPS", 0.0)
+    b = np.random.default_rng(2).normal(size=A.shape[0])
+    f = NormalFactor.of(A, _Layout(spec, 2), damping=mu)
+    assert (f.cb is not None) == band
+    assert f.log_det == pytest.approx(np.linalg.slogdet(dense)[1], rel=1e-12)
+    assert np.allclose(f.solve(b), np.linalg.solve(dense, b), rtol=1e-10, atol=1e-12)
+
+
 def test_wide_band_falls_back_to_the_sparse_lu(monkeypatch):
     """Beyond the band budget the node block goes to SuperLU: the same numbers."""
     spec = GridSpec(0.0, 0.0, 5.0, 8, 7)
