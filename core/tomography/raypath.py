@@ -310,7 +310,7 @@ def _block_tridiagonal(Hd, Ho, g, shift):
 
     def pivots(eps):
         pd = np.ones(n, bool)
-        inv = []
+        inv: list = []
         for p in range(m):
             a, b, d = Hd[:, p, 0, 0] - eps, Hd[:, p, 0, 1], Hd[:, p, 1, 1] - eps
             if p:
