@@ -478,9 +478,15 @@ def output_workers(folder: RunFolder, parallel=None):
         return None
 
     def warm_maps() -> None:
+        from importlib.util import find_spec
+
         from ..formats.gdalio import engine
 
-        engine()  # imports rasterio and pyogrio (or GDAL's bindings)
+        if find_spec("osgeo") is None:  # rasterio and pyogrio it is
+            from ..formats.gdal_pypi import import_for_writing
+
+            import_for_writing()  # a process that only writes: no pandas and geopandas behind pyogrio
+        engine()
 
     def maps(payload) -> list:
         result, sections, _ = payload

@@ -373,3 +373,32 @@ def test_written_here_read_on_the_other_stack(gpkg, run_on_other_stack):
     assert shots["fields"]["line"] == ["L1", "Ligne ÉÈ", "線2"] and shots["fields"]["velocity_m_s"][1] is None
     assert same_crs(shots["crs"], "EPSG:32633")
     assert seen["line_misties"]["wkt"] is None and seen["line_misties"]["fields"]["mistie_ms"] == [1.25]
+
+
+def test_a_writing_process_imports_pyogrio_without_dataframes(tmp_path):
+    """The command line's writing worker hides pandas and geopandas from pyogrio: the same GeoPackage, byte for byte."""
+    import os
+    import sys
+    from pathlib import Path
+
+    import rockhead
+
+    if gdalio.engine() != "pypi":
+        pytest.skip("GDAL's own bindings here: pyogrio is not what writes")
+    script = (
+        "import sys\n"
+        "sys.path.insert(0, sys.argv[2])\n"
+        "from rockhead.core.formats import gdal_pypi\n"
+        "gdal_pypi.import_for_writing()\n"
+        "hidden = [m for m in ('pandas', 'geopandas') if m in sys.modules]\n"
+        "assert 'pyogrio' in sys.modules and 'rasterio' in sys.modules and not hidden, hidden\n"
+        "from test_geopackage import _write\n"
+        "_write(sys.argv[1])\n"
+        "import pandas\n"  # importable again once pyogrio is in
+    )
+    env = dict(os.environ, PYTHONPATH=str(Path(rockhead.__path__[0]).parent))
+    here = Path(__file__).resolve().parent
+    lean = tmp_path / "lean.gpkg"
+    proc = subprocess.run([sys.executable, "-c", script, str(lean), str(here)], capture_output=True, text=True, env=env)
+    assert proc.returncode == 0, proc.stderr
+    assert lean.read_bytes() == _write(tmp_path / "full.gpkg").read_bytes()
