@@ -212,7 +212,10 @@ class EarlyWorkers:
         self._payload: Optional[IO[bytes]] = None
         self.handed = False
         if self._group_of and (fork_is_safe() if parallel is None else parallel):
-            self._start(tuple(close_in_child))
+            try:
+                self._start(tuple(close_in_child))
+            except OSError:  # no temporary file, pipe or process to be had: the run does the work itself
+                self.cancel()
 
     @property
     def running(self) -> bool:
@@ -228,19 +231,19 @@ class EarlyWorkers:
         sys.stdout.flush()
         sys.stderr.flush()
         parent = os.getpid()
-        for g, (warm, works) in enumerate(self.groups):
-            mine = [k for k, owner in enumerate(self._group_of) if owner == g]
-            pid = os.fork()
-            if pid == 0:  # the group's child: never returns
-                keep = {fd for k in mine for fd in ends[k]}
-                _close([fd for pair in pipes for p in pair for fd in p if fd not in keep] + list(close_in_child))
-                _group(parent, warm, [(works[i], ends[k]) for i, k in enumerate(mine)], payload.fileno())
-            self.pids.append(pid)
-        for (go_r, go_w), (back_r, back_w) in pipes:
-            os.close(go_r)
-            os.close(back_w)
-            self._go.append(go_w)
-            self._back.append(back_r)
+        self._go = [go_w for (_, go_w), _ in pipes]
+        self._back = [back_r for _, (back_r, _) in pipes]
+        try:
+            for g, (warm, works) in enumerate(self.groups):
+                mine = [k for k, owner in enumerate(self._group_of) if owner == g]
+                pid = os.fork()
+                if pid == 0:  # the group's child: never returns
+                    keep = {fd for k in mine for fd in ends[k]}
+                    _close([fd for pair in pipes for p in pair for fd in p if fd not in keep] + list(close_in_child))
+                    _group(parent, warm, [(works[i], ends[k]) for i, k in enumerate(mine)], payload.fileno())
+                self.pids.append(pid)
+        finally:
+            _close([fd for end in ends for fd in end])  # the children's ends
 
     def hand_over(self, payload) -> bool:
         """Give ``payload`` to every work; False (children sent away) without children or a picklable payload."""
@@ -253,8 +256,12 @@ class EarlyWorkers:
         except Exception:  # an unpicklable part: the parent does the work itself
             self.cancel()
             return False
-        self._payload.write(data)
-        self._payload.flush()
+        try:
+            self._payload.write(data)
+            self._payload.flush()
+        except OSError:  # no room for it in the temporary folder: the parent does the work itself
+            self.cancel()
+            return False
         size = len(data).to_bytes(8, "little")
         for i, fd in enumerate(self._go):
             if fd is not None:

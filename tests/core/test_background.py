@@ -297,3 +297,28 @@ def test_early_workers_let_go_of_the_run_folders_lock(tmp_path):
         os.fstat(fd)  # still open here: the run keeps its lock
         folder.commit()
     assert (tmp_path / "out" / "state.txt").read_text() == "closed"
+
+
+@needs_fork
+def test_no_process_to_be_had_leaves_the_work_here(tmp_path, monkeypatch):
+    """A fork that fails (no memory, a process limit) is no error: the run does the work itself."""
+    import errno
+
+    from rockhead.core.products.background import EarlyWorkers
+
+    forks = []
+    real_fork = os.fork
+
+    def second_fork_fails():
+        forks.append(1)
+        if len(forks) == 2:
+            raise OSError(errno.EAGAIN, "Resource temporarily unavailable")
+        return real_fork()
+
+    monkeypatch.setattr(os, "fork", second_fork_fails)
+    groups = [(lambda: None, [_write_pid(tmp_path)]), (lambda: None, [_write_pid(tmp_path)])]
+    with EarlyWorkers(groups, parallel=True) as workers:
+        assert not workers.running  # the first child was stopped again
+        assert not workers.hand_over("a.txt")
+        assert workers.collect(0) is None and workers.collect(1) is None
+    assert list(tmp_path.iterdir()) == []
