@@ -212,6 +212,14 @@ class NormalFactor:
             ab[0] += damping * ab[0]  # the diagonal
         return cls(("band", ab, order), A_us, A_ss)
 
+    def others_solved(self):
+        """:math:`A_{uu}^{-1} A_{us}` (n_nodes, n_small)."""
+        if self.lu is not None:
+            return self.U
+        out = np.empty_like(self.W)
+        out[self.order] = self._sweep(self.W, "T")
+        return out
+
     def solve(self, rhs):
         """:math:`A^{-1}` rhs by block elimination (rhs of shape (n,) or (n, k))."""
         rhs = np.asarray(rhs, float)

@@ -66,7 +66,6 @@ from typing import Optional
 
 import numpy as np
 import scipy.sparse as sp
-import scipy.sparse.linalg as spla
 
 from ..errors import InversionError
 from ..grid import GridSpec
@@ -362,17 +361,6 @@ def objective(layout, data, state, P, B, sigma_scale=1.0, residual=None):
     return out
 
 
-def _factorize(A):
-    try:
-        return spla.splu(
-            sp.csc_matrix(A), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True}
-        )
-    except RuntimeError as err:
-        raise InversionError(
-            f"the joint normal equations are singular ({err}); the picks and priors do not determine the model"
-        ) from err
-
-
 @dataclass
 class Iterations:
     """What the Gauss-Newton iterations did."""
@@ -570,7 +558,7 @@ def posterior(layout, data, state, sigma_scale=1.0, cell_sigma=True) -> Posterio
     """Posterior covariance pieces at ``state`` (weights as they are).
 
     With ``cell_sigma`` False only the trend and velocity covariance is
-    computed (a sparse LU instead of the banded factor): enough for tests on
+    computed (the factor of :mod:`.factor`, without the selected inverse): enough for tests on
     the velocity parameters, not for the map's standard deviations.
     """
     P = _prior_blocks(layout, data)
@@ -590,7 +578,12 @@ def posterior(layout, data, state, sigma_scale=1.0, cell_sigma=True) -> Posterio
         U = fac.solve(Aus)
     else:
         fac = None
-        U = _factorize(Auu).solve(Aus)
+        try:
+            U = NormalFactor.of_blocks(Auu, Aus, Ass, layout).others_solved()
+        except np.linalg.LinAlgError as err:
+            raise InversionError(
+                f"the joint normal equations are singular ({err}); the picks and priors do not determine the model"
+            ) from err
     S = Ass - Aus.T @ U
     S_inv = np.linalg.inv(0.5 * (S + S.T))
     chi2, n_used = reduced_chi2(data, state, sigma_scale)

@@ -64,6 +64,9 @@ def test_log_determinant_and_solve_match_numpy(K, n_small):
     assert f.log_det == pytest.approx(want, rel=1e-12)
     assert np.allclose(f.solve(b), np.linalg.solve(dense, b), rtol=1e-10, atol=1e-12)
     assert np.allclose(f.solve(B), np.linalg.solve(dense, B), rtol=1e-10, atol=1e-12)
+    m = K * spec.nx * spec.ny
+    want_U = np.linalg.solve(dense[:m, :m], dense[:m, m:])
+    assert np.allclose(f.others_solved(), want_U, rtol=1e-10, atol=1e-12)
     g = NormalFactor.of(A, _Layout(spec, K))
     # g^T A^-1 g with g solved together with the other columns
     n = K * spec.nx * spec.ny
@@ -108,6 +111,8 @@ def test_wide_band_falls_back_to_the_sparse_lu(monkeypatch):
     assert f.cb is None and f.lu is not None
     assert f.log_det == pytest.approx(np.linalg.slogdet(dense)[1], rel=1e-12)
     assert np.allclose(f.solve(b), np.linalg.solve(dense, b), rtol=1e-10, atol=1e-12)
+    n = 2 * spec.nx * spec.ny
+    assert np.allclose(f.others_solved(), np.linalg.solve(dense[:n, :n], dense[:n, n:]), rtol=1e-10, atol=1e-12)
 
 
 def test_not_positive_definite_is_reported():
