@@ -75,9 +75,22 @@ from .nodes import node_weights
 from .prior import matern_precision
 from .system import borehole_matrix, jacobian, normal_matrix, parameters, prior_mean, small_prior_precision, trend_basis
 
-__all__ = ["MIN_DOF", "MIN_LINES", "LineCheck", "check_sills", "held_out", "leave_line_out", "pool", "usable"]
+__all__ = [
+    "MAX_GROUPS",
+    "MIN_DOF",
+    "MIN_LINES",
+    "POINT_CELLS",
+    "LineCheck",
+    "check_sills",
+    "held_out",
+    "leave_line_out",
+    "pool",
+    "usable",
+]
 
 MIN_DOF = 4.0  # fewer equivalent degrees of freedom: the ratio is too uncertain to rescale a sill (see check_sills)
+POINT_CELLS = 2  # one compared point per square of 2 x 2 node cells (closer points add little: they correlate)
+MAX_GROUPS = 8  # more lines are dealt into this many groups, each left out in turn (k-fold by lines)
 MIN_LINES = 3  # lines with picks of an interface needed: with two, one left out leaves a single line's relief
 
 
@@ -113,10 +126,11 @@ def _rows(layout, k, x, y):
     return sp.csr_matrix((np.concatenate([w.ravel(), T.ravel()]), (rows, cols)), shape=(m, layout.n_params))
 
 
-def _cell_means(spec, x, y):
-    """One point per node cell the points fall in: the mean of the points in it."""
-    col = np.floor((x - spec.x0) / spec.cell_size_m).astype(np.int64)
-    row = np.floor((spec.y0 - y) / spec.cell_size_m).astype(np.int64)
+def _cell_means(spec, x, y, cells=POINT_CELLS):
+    """One point per square of ``cells`` node cells the points fall in: the mean of the points in it."""
+    size = cells * spec.cell_size_m
+    col = np.floor((x - spec.x0) / size).astype(np.int64)
+    row = np.floor((spec.y0 - y) / size).astype(np.int64)
     _, inv = np.unique(row * (spec.nx + 2) + col, return_inverse=True)
     inv = inv.ravel()
     n = np.bincount(inv)
@@ -125,6 +139,62 @@ def _cell_means(spec, x, y):
 
 def _factor(A):
     return spla.splu(A.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+
+
+class _Lines:
+    """The linearised problem's parts that do not depend on the interfaces' priors, for repeated checks."""
+
+    def __init__(self, layout, data, state, line, sigma_scale):
+        K = layout.n_interfaces
+        J, use, sw = jacobian(layout, data, state, sigma_scale)
+        J = sp.csr_matrix(J)
+        r = state.residual_s[use] * sw
+        self.layout = layout
+        self.JtJ = normal_matrix(J, layout.n_nodes)
+        self.Jtr = J.T @ r
+        self.P0 = small_prior_precision(layout, data)
+        self.dm = parameters(layout, state) - prior_mean(layout, data)
+        B = borehole_matrix(layout, data)
+        self.BtB, self.Bte = None, None
+        if B is not None:
+            wb = 1.0 / data.bh_sigma_m**2
+            self.BtB = (B.T @ sp.diags(wb) @ B).tocsr()
+            self.Bte = B.T @ (wb * (data.bh_elevation_m - B @ parameters(layout, state)))
+        line_of = np.asarray(line)[use]
+        iface = data.interface[use]
+        refl = state.paths.reflection_xyz[use]
+        self.counts = [len(np.unique(line_of[iface == k])) for k in range(K)]
+        _, group = np.unique(line_of, return_inverse=True)
+        labels = group.ravel() % MAX_GROUPS  # the lines themselves when there are at most MAX_GROUPS
+        self.readers: dict = {}
+        self.parts: dict = {}
+        for name in np.unique(labels):
+            for k in range(K):
+                here = (labels == name) & (iface == k) & np.all(np.isfinite(refl[:, :2]), axis=1)
+                if self.counts[k] >= MIN_LINES and here.any():
+                    xy = _cell_means(layout.spec, refl[here, 0], refl[here, 1])
+                    self.readers[name, k] = _rows(layout, k, *xy)
+            if any(key[0] == name for key in self.readers):
+                rows = np.flatnonzero(labels == name)
+                self.parts[name] = (normal_matrix(J[rows], layout.n_nodes), J[rows].T @ r[rows])
+
+    def checks(self, Q) -> tuple:
+        """The check of every interface with the relief priors' precisions ``Q``."""
+        P = sp.block_diag([*Q, self.P0], format="csr")
+        A = (self.JtJ + P).tocsr()
+        g = self.Jtr - P @ self.dm
+        if self.BtB is not None:
+            A = (A + self.BtB).tocsr()
+            g = g + self.Bte
+        try:
+            held = held_out(A, g, self.parts, self.readers) if self.readers else {}
+        except (RuntimeError, np.linalg.LinAlgError):  # a singular system
+            held = {}
+        out = []
+        for k, count in enumerate(self.counts):
+            ratio, n_points, dof = pool([v for (_, kk), v in held.items() if kk == k])
+            out.append(LineCheck(ratio, n_points, count, dof))
+        return tuple(out)
 
 
 def leave_line_out(layout, data, state, line, sigma_scale=1.0) -> tuple:
@@ -147,38 +217,7 @@ def leave_line_out(layout, data, state, line, sigma_scale=1.0) -> tuple:
         One per interface; ``ratio`` is NaN for an interface picked on fewer
         than :data:`MIN_LINES` lines, or when a system is singular.
     """
-    K = layout.n_interfaces
-    J, use, sw = jacobian(layout, data, state, sigma_scale)
-    J = sp.csr_matrix(J)
-    r = state.residual_s[use] * sw
-    P = sp.block_diag([*data.Q, small_prior_precision(layout, data)], format="csr")
-    dm = parameters(layout, state) - prior_mean(layout, data)
-    A = (normal_matrix(J, layout.n_nodes) + P).tocsr()
-    g = J.T @ r - P @ dm
-    B = borehole_matrix(layout, data)
-    if B is not None:
-        wb = 1.0 / data.bh_sigma_m**2
-        A = (A + B.T @ sp.diags(wb) @ B).tocsr()
-        g = g + B.T @ (wb * (data.bh_elevation_m - B @ parameters(layout, state)))
-    labels = np.asarray(line)[use]
-    iface = data.interface[use]
-    refl = state.paths.reflection_xyz[use]
-    counts = [len(np.unique(labels[iface == k])) for k in range(K)]
-    readers = {}
-    for name in np.unique(labels):
-        for k in range(K):
-            here = (labels == name) & (iface == k) & np.all(np.isfinite(refl[:, :2]), axis=1)
-            if counts[k] >= MIN_LINES and here.any():
-                readers[name, k] = _rows(layout, k, *_cell_means(layout.spec, refl[here, 0], refl[here, 1]))
-    try:
-        held = held_out(A, g, J, r, labels, readers, layout.n_nodes) if readers else {}
-    except RuntimeError:  # a singular system
-        held = {}
-    checks = []
-    for k in range(K):
-        ratio, n_points, dof = pool([v for (_, kk), v in held.items() if kk == k])
-        checks.append(LineCheck(ratio, n_points, counts[k], dof))
-    return tuple(checks)
+    return _Lines(layout, data, state, line, sigma_scale).checks(data.Q)
 
 
 def pool(pairs) -> tuple:
@@ -208,14 +247,13 @@ def pool(pairs) -> tuple:
     return float(np.mean(z)), int(z.size), float(z.size**2 / trr)
 
 
-def held_out(A, g, J, r, group, readers, n_nodes=None) -> dict:
-    """Posterior mean differences and their covariance when each group of rows is left out.
+def held_out(A, g, parts, readers, factor=None) -> dict:
+    """Posterior mean differences and their covariance when each group of data is left out.
 
     For the linear Gaussian problem with normal matrix ``A`` (:math:`J^T J` plus the
-    prior precision), gradient ``g`` (:math:`J^T r` minus the prior's pull) and
-    weighted rows ``J`` with residuals ``r``, leaving out the rows of group L gives
-    :math:`A_{-L} = A - J_L^T J_L`, :math:`g_{-L} = g - J_L^T r_L`, and at the points
-    read by ``W = readers[L, k]``
+    prior precision) and gradient ``g`` (:math:`J^T r` minus the prior's pull), leaving
+    out the rows of group L gives :math:`A_{-L} = A - J_L^T J_L`,
+    :math:`g_{-L} = g - J_L^T r_L`, and at the points read by ``W = readers[L, k]``
 
     .. math::
 
@@ -225,15 +263,13 @@ def held_out(A, g, J, r, group, readers, n_nodes=None) -> dict:
     ----------
     A : sparse (p, p)
     g : (p,) or (p, s) array
-    J : sparse (n, p)
-    r : (n,) or (n, s) array
         One column per data set (the same rows, other values), or one vector.
-    group : (n,) array
-        Group label of each row.
+    parts : dict
+        ``{label: (J_L^T J_L, J_L^T r_L)}``, sparse (p, p) and like ``g``.
     readers : dict
         ``{(label, key): W}``, W sparse (m, p).
-    n_nodes : int, optional
-        Columns of ``J`` before its few dense ones (:func:`~.system.normal_matrix`); default all sparse.
+    factor : callable, optional
+        ``factor(M)``: an object whose ``solve(b)`` is :math:`M^{-1} b`; default a sparse LU.
 
     Returns
     -------
@@ -242,25 +278,31 @@ def held_out(A, g, J, r, group, readers, n_nodes=None) -> dict:
 
     Raises
     ------
-    RuntimeError
-        When a system is singular.
+    RuntimeError or numpy.linalg.LinAlgError
+        When a system is singular (not positive definite).
     """
-    J = sp.csr_matrix(J)
-    group = np.asarray(group)
-    full = _factor(A)
+    factor = factor or _factor
+    keys = list(readers)
+    W_all = sp.vstack([readers[key] for key in keys]).tocsr()
+    full = factor(A)
     step = full.solve(g)
+    base = full.solve(W_all.T.toarray())  # A^-1 W^T of every group's points at once
+    start = np.cumsum([0] + [readers[key].shape[0] for key in keys])
     out = {}
-    for name in dict.fromkeys(label for label, _ in readers):
-        rows = np.flatnonzero(group == name)
-        Jl = J[rows]
-        JtJ = normal_matrix(Jl, n_nodes) if n_nodes is not None else (Jl.T @ Jl)
-        part = _factor(A - JtJ)
-        step_l = part.solve(g - Jl.T @ r[rows])
-        for (label, key), W in readers.items():
-            if label != name:
-                continue
-            Wt = W.T.toarray()
-            out[label, key] = (W @ (step_l - step), W.toarray() @ (part.solve(Wt) - full.solve(Wt)))
+    for name in dict.fromkeys(label for label, _ in keys):
+        JtJ, Jtr = parts[name]
+        part = factor((A - JtJ).tocsr())
+        mine = [i for i, key in enumerate(keys) if key[0] == name]
+        Wt = sp.vstack([readers[keys[i]] for i in mine]).T.toarray()
+        cols = np.concatenate([np.arange(start[i], start[i + 1]) for i in mine])
+        diff = part.solve(Wt) - base[:, cols]
+        shift = part.solve(g - Jtr) - step
+        at = 0
+        for i in mine:
+            W = readers[keys[i]]
+            m = W.shape[0]
+            out[keys[i]] = (W @ shift, W @ diff[:, at : at + m])
+            at += m
     return out
 
 
@@ -295,7 +337,8 @@ def check_sills(
     """
     K = layout.n_interfaces
     floor = np.log([max(float(np.sqrt(max(p.nugget_m2, 0.0))), 1e-6) / p.sigma_m for p in priors])
-    first = leave_line_out(layout, data, state, line, sigma_scale)
+    lines = _Lines(layout, data, state, line, sigma_scale)
+    first = lines.checks(data.Q)
     use = np.array([usable(c) for c in first])
     if not use.any():
         return list(priors), data, first
@@ -320,17 +363,17 @@ def check_sills(
         t = np.where(done, t, np.maximum(t + step, floor))
         current = [replace(p, sigma_m=p.sigma_m * float(np.exp(t[k]))) for k, p in enumerate(priors)]
         data = replace(data, Q=tuple(matern_precision(layout.spec, p) for p in current))
-        checks = leave_line_out(layout, data, state, line, sigma_scale)
+        checks = lines.checks(data.Q)
     out = []
     for k, p in enumerate(priors):
         c0 = first[k]
         if not use[k]:
             out.append(p)
             continue
+        left = f"each of its {c0.n_lines} lines" if c0.n_lines <= MAX_GROUPS else f"{MAX_GROUPS} groups of its lines"
         note = (
-            f"; sill x {np.exp(t[k]):.2f} to {current[k].sigma_m:.3g} m by leaving out each of its {c0.n_lines} "
-            f"lines in turn (mean squared standardised error {c0.ratio:.2f} at {c0.n_points} points, "
-            f"{c0.dof:.0f} degrees of freedom)"
+            f"; sill x {np.exp(t[k]):.2f} to {current[k].sigma_m:.3g} m by leaving out {left} in turn (mean squared "
+            f"standardised error {c0.ratio:.2f} at {c0.n_points} points, {c0.dof:.0f} degrees of freedom)"
         )
         out.append(replace(current[k], source=p.source + note))
         if progress is not None:
