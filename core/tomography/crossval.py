@@ -43,10 +43,11 @@ hardly move (a kriging predictor does not depend on the sill when the data
 are precise); near the lines the picks keep the variance.
 
 Measured on the issue's test sites (smooth truths: a knoll on a dipping
-plane, a buried valley) the check finds the sill too large: ratios 0.58 and
-0.61 for the bedrock and the water table of the eikonal layered site, 0.42 for
-the buried valley, each with 11-20 degrees of freedom; for relief drawn from
-the prior class itself, 0.64, 0.69 and 1.20 (three draws).
+plane, a buried valley) the check finds the sill too large: ratios 0.59 and
+0.68 for the bedrock and the water table of the eikonal layered site, 0.42 for
+the buried valley, each with 13-19 degrees of freedom; for relief drawn from
+the prior class itself, 0.79, 0.58 and 1.30 (three draws, 21-26 degrees of
+freedom).
 
 References
 ----------
