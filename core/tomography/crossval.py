@@ -313,7 +313,7 @@ def usable(check: LineCheck) -> bool:
 
 
 def check_sills(
-    layout, data, state, priors, line, sigma_scale=1.0, tolerance=0.05, evaluations=6, progress=None
+    layout, data, state, priors, line, sigma_scale=1.0, tolerance=0.1, evaluations=6, progress=None
 ) -> tuple:
     r"""Each interface's sill rescaled by the leave-one-line-out check (see the module notes).
 
