@@ -104,7 +104,8 @@ class RunSurveyAlgorithm(ReflectorAlgorithm):
             )
         if call.cancelled or result is None:
             return {}
-        keep_run(result, started_ns)  # the QC panel opening after the run takes it (no second computation)
+        if method is None:  # the survey's own method, the panel's: it takes this result (no second computation)
+            keep_run(result, started_ns)
         feedback.pushInfo(result.summary())
         self._out_dir = out_dir
         self._survey_path = survey_path
