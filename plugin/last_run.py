@@ -2,9 +2,10 @@
 
 The whole-survey algorithm computes the survey (seconds); the QC panel that
 opens or reloads after it needs that same computation. The algorithm run
-with the survey's own surface method (the panel's) keeps its result here with a stamp of its inputs (path, modification time and
-size of survey.toml, of every file it names and of its pick edits file,
-present or not); the panel takes the result while the stamp is unchanged,
+with the survey's own surface method (the panel's) keeps its result here
+with a stamp of its inputs (path, modification time and size of
+survey.toml, of every file it names and of its pick edits file, present or
+not); the panel takes the result while the stamp is unchanged,
 and computes the survey itself otherwise. A file modified after the run
 started is never trusted: the result is not kept at all.
 
