@@ -13,6 +13,7 @@ from typing import List, Tuple
 import numpy as np
 
 from ..errors import OutputError
+from ..formats.atomic import fsync_path
 from ..formats.dxf import write_contours_dxf
 from ..formats.gdalio import gdal_timestamp, write_layers, write_raster
 from ..formats.qgis_gpkg import add_layer_metadata
@@ -447,6 +448,16 @@ def _stage_map_and_handoff(result, folder: RunFolder, progress, layers, sections
     write_handoff(folder, folder.requested, result, progress, sections, sheets=False)
 
 
+def _flushed(folder: RunFolder, rels: list) -> list:
+    """``rels`` after flushing their files to disk: a worker's disk writes overlap the others' drawing.
+
+    The folder's commit flushes every file again, then with nothing left to write.
+    """
+    for rel in rels:
+        fsync_path(folder.staging / rel)
+    return rels
+
+
 def output_workers(folder: RunFolder, parallel=None):
     """Child processes that write a run's files, forked now (before the computation) and warmed up meanwhile.
 
@@ -502,14 +513,14 @@ def output_workers(folder: RunFolder, parallel=None):
         result, sections, gather_figures = payload
         before = len(folder.planned)
         _draw_documents(result, folder, NullProgress(), gather_figures, result_layers(result, sections), sections)
-        return folder.planned[before:]
+        return _flushed(folder, folder.planned[before:])
 
     def sheets(payload) -> list:
         result, sections, _ = payload
         jobs = sheet_jobs(folder, folder.requested, result, sections)
         for path, make in jobs:
             path.write_bytes(make())
-        return [str(path.relative_to(folder.staging)) for path, _ in jobs]
+        return _flushed(folder, [str(path.relative_to(folder.staging)) for path, _ in jobs])
 
     return EarlyWorkers(
         [(warm_maps, [maps]), (warm_drawing, [documents, sheets])],  # the drawings share one import of matplotlib
