@@ -322,3 +322,37 @@ def test_no_process_to_be_had_leaves_the_work_here(tmp_path, monkeypatch):
         assert not workers.hand_over("a.txt")
         assert workers.collect(0) is None and workers.collect(1) is None
     assert list(tmp_path.iterdir()) == []
+
+
+@needs_fork
+@pytest.mark.skipif(not os.path.exists("/proc/self"), reason="the parent-death signal is Linux's")
+@pytest.mark.slow  # a run killed and its workers waited out
+def test_the_workers_of_a_killed_run_write_nothing(tmp_path):
+    """A run killed with SIGKILL after the hand-over: its workers (and a group's further work) die with it."""
+    import signal
+    import time
+
+    from rockhead.core.products.background import EarlyWorkers
+
+    def slow_warm():
+        time.sleep(1.0)
+
+    def write_as(name):
+        def work(payload):
+            (tmp_path / name).write_text("late")
+            return [name]
+
+        return work
+
+    run = os.fork()
+    if run == 0:  # the run: starts its workers, hands over, then is killed
+        try:
+            workers = EarlyWorkers([(slow_warm, [write_as("a"), write_as("b")])], parallel=True)
+            workers.hand_over("payload")
+            os.kill(os.getpid(), signal.SIGKILL)
+        finally:
+            os._exit(3)
+    _, status = os.waitpid(run, 0)
+    assert os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL
+    time.sleep(2.5)  # longer than the warm-up and the work would take
+    assert list(tmp_path.iterdir()) == []
