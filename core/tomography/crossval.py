@@ -84,7 +84,6 @@ __all__ = [
     "LineCheck",
     "check_sills",
     "held_out",
-    "leave_line_out",
     "pool",
     "usable",
 ]
@@ -143,7 +142,14 @@ def _factor(A):
 
 
 class _Lines:
-    """The linearised problem's parts that do not depend on the interfaces' priors, for repeated checks."""
+    """The linearised problem's parts that do not depend on the interfaces' priors, for repeated checks.
+
+    ``state`` is a fitted state (paths, residuals and robust weights set), ``line`` the
+    survey line of each pick (any labels), ``sigma_scale`` the factor of the pick errors
+    (as in the fit). :meth:`checks` gives one :class:`LineCheck` per interface; its
+    ``ratio`` is NaN for an interface picked on fewer than :data:`MIN_LINES` lines, or
+    when a system is singular.
+    """
 
     def __init__(self, layout, data, state, line, sigma_scale):
         K = layout.n_interfaces
@@ -196,29 +202,6 @@ class _Lines:
             ratio, n_points, dof = pool([v for (_, kk), v in held.items() if kk == k])
             out.append(LineCheck(ratio, n_points, count, dof))
         return tuple(out)
-
-
-def leave_line_out(layout, data, state, line, sigma_scale=1.0) -> tuple:
-    """Leave-one-line-out check of every interface's prior at ``state`` (see the module notes).
-
-    Parameters
-    ----------
-    layout : Layout
-    data : JointData
-    state : JointState
-        A fitted state (paths, residuals and robust weights set).
-    line : (n,) array
-        Survey line of each pick (any labels).
-    sigma_scale : float
-        Factor of the pick errors (as in the fit).
-
-    Returns
-    -------
-    tuple of LineCheck
-        One per interface; ``ratio`` is NaN for an interface picked on fewer
-        than :data:`MIN_LINES` lines, or when a system is singular.
-    """
-    return _Lines(layout, data, state, line, sigma_scale).checks(data.Q)
 
 
 def pool(pairs) -> tuple:
