@@ -392,8 +392,8 @@ class OrdinaryKriging:
         per = 8.0 * 8 * (k + 1) ** 2  # ~8 arrays of (k+1)^2 doubles per target
         return int(max(16, min(8192, CHUNK_BYTES // per)))
 
-    def _solve_local(self, tx: np.ndarray, ty: np.ndarray, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Batched solve for targets (tx, ty) (centred) with neighbour index (c, k)."""
+    def _systems(self, idx: np.ndarray) -> np.ndarray:
+        """The ordinary kriging matrices (c, k + 1, k + 1) of neighbour sets ``idx`` (c, k), unit sill."""
         c, k = idx.shape
         xs = self._xc[idx]
         ys = self._yc[idx]
@@ -412,21 +412,42 @@ class OrdinaryKriging:
         a[:, k, :k] = 1.0
         a[:, :k, k] = 1.0
         a[:, k, k] = 0.0
-        b = np.empty((c, k + 1))
-        b[:, :k] = self.variogram_.normalised_inplace(np.hypot(xs - tx[:, None], ys - ty[:, None]))
-        b[:, k] = 1.0
-        try:
-            sol = np.linalg.solve(a, b[:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError as exc:
-            raise InversionError(
-                f"a local kriging system is singular ({exc}); usual causes: data at the same place with "
-                f"no error variance, or a {self.variogram_.model} model without nugget on dense data. "
-                "Give the data an error variance or the model a small nugget"
-            ) from exc
+        return a
+
+    def _singular(self, exc: Exception) -> InversionError:
+        return InversionError(
+            f"a local kriging system is singular ({exc}); usual causes: data at the same place with "
+            f"no error variance, or a {self.variogram_.model} model without nugget on dense data. "
+            "Give the data an error variance or the model a small nugget"
+        )
+
+    def _weights_applied(self, sol: np.ndarray, b: np.ndarray, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Estimate and kriging variance from solutions ``sol`` (c, k + 1) for right-hand sides ``b``."""
+        k = idx.shape[1]
         lam = sol[:, :k]
         est = np.einsum("ij,ij->i", lam, self.z_[idx])
         var = (np.einsum("ij,ij->i", lam, b[:, :k]) + sol[:, k]) * self.variogram_.total_sill
         return est, var
+
+    def _rhs(self, tx: np.ndarray, ty: np.ndarray, idx: np.ndarray) -> np.ndarray:
+        """Right-hand sides (c, k + 1) of targets (tx, ty) (centred) with neighbour index (c, k)."""
+        c, k = idx.shape
+        b = np.empty((c, k + 1))
+        b[:, :k] = self.variogram_.normalised_inplace(
+            np.hypot(self._xc[idx] - tx[:, None], self._yc[idx] - ty[:, None])
+        )
+        b[:, k] = 1.0
+        return b
+
+    def _solve_local(self, tx: np.ndarray, ty: np.ndarray, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Batched solve for targets (tx, ty) (centred) with neighbour index (c, k)."""
+        a = self._systems(idx)
+        b = self._rhs(tx, ty, idx)
+        try:
+            sol = np.linalg.solve(a, b[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError as exc:
+            raise self._singular(exc) from exc
+        return self._weights_applied(sol, b, idx)
 
     def _predict_chunk(self, tx: np.ndarray, ty: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Estimate and kriging variance for centred targets (one chunk)."""
@@ -467,37 +488,14 @@ class OrdinaryKriging:
         right-hand side (the matrix is symmetric). The same system as
         :meth:`_solve_local`, equal to round-off.
         """
-        u, k = sets.shape
-        xs = self._xc[sets]
-        ys = self._yc[sets]
-        a = np.empty((u, k + 1, k + 1))
-        a[:, :k, :k] = self.variogram_.normalised_inplace(
-            np.hypot(xs[:, :, None] - xs[:, None, :], ys[:, :, None] - ys[:, None, :])
-        )
-        r = np.arange(k)
-        a[:, r, r] = -self._e_unit[sets]
-        a[:, k, :k] = 1.0
-        a[:, :k, k] = 1.0
-        a[:, k, k] = 0.0
         try:
-            ainv = np.linalg.inv(a)
+            ainv = np.linalg.inv(self._systems(sets))
         except np.linalg.LinAlgError as exc:
-            raise InversionError(
-                f"a local kriging system is singular ({exc}); usual causes: data at the same place with "
-                f"no error variance, or a {self.variogram_.model} model without nugget on dense data. "
-                "Give the data an error variance or the model a small nugget"
-            ) from exc
+            raise self._singular(exc) from exc
         idx = sets[which]
-        b = np.empty((tx.size, k + 1))
-        b[:, :k] = self.variogram_.normalised_inplace(
-            np.hypot(self._xc[idx] - tx[:, None], self._yc[idx] - ty[:, None])
-        )
-        b[:, k] = 1.0
+        b = self._rhs(tx, ty, idx)
         sol = np.matmul(ainv[which], b[:, :, None])[:, :, 0]
-        lam = sol[:, :k]
-        est = np.einsum("ij,ij->i", lam, self.z_[idx])
-        var = (np.einsum("ij,ij->i", lam, b[:, :k]) + sol[:, k]) * self.variogram_.total_sill
-        return est, var
+        return self._weights_applied(sol, b, idx)
 
     def _run_chunks(
         self,

@@ -15,6 +15,7 @@ with ``ctypes``; elsewhere through ``threadpoolctl`` when it is installed.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import threading
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -101,8 +102,8 @@ def blas_thread_controls() -> list[BlasControl]:
     return controls
 
 
-class SingleThreadedBlas:
-    """Context manager: BLAS/LAPACK on one thread while our own threads run.
+class SingleThreadedBlas(contextlib.ContextDecorator):
+    """Context manager (or decorator): BLAS/LAPACK on one thread while our own threads run.
 
     The previous thread counts are restored on exit; nesting and concurrent
     use are counted under a lock, so the counts are saved by the first entry

@@ -427,6 +427,7 @@ def _vertical_time(theta, centre, x, y, z_top, z_bot):
 # --------------------------------------------------------------------------- the estimate
 
 
+@SingleThreadedBlas()
 def estimate_layered(
     source_xyz,
     receiver_xyz,
@@ -476,44 +477,11 @@ def estimate_layered(
 
     Notes
     -----
-    BLAS runs on one thread throughout: the banded factorisations and small
+    BLAS runs on one thread throughout (:class:`SingleThreadedBlas`): the banded factorisations and small
     dense products here gain nothing from threads and lose much when other
     jobs share the cores (a banded Cholesky of 700 nodes took 0.95 s with
     threads against 0.015 s without, at a load of 8 on 2 cores).
     """
-    with SingleThreadedBlas():
-        return _estimate(
-            source_xyz,
-            receiver_xyz,
-            time_s,
-            sigma_s,
-            reflector,
-            start,
-            spec,
-            order,
-            boreholes,
-            settings,
-            ground,
-            progress,
-            line,
-        )
-
-
-def _estimate(
-    source_xyz,
-    receiver_xyz,
-    time_s,
-    sigma_s,
-    reflector,
-    start,
-    spec,
-    order,
-    boreholes,
-    settings,
-    ground,
-    progress,
-    line,
-):
     progress = progress or NullProgress()
     cfg = settings or LayeredSettings()
     S = np.asarray(source_xyz, float)
