@@ -193,6 +193,11 @@ def _map(rep, r):
 
 def _surface(rep, r):
     rep.heading("Surface")
+    if r.method_used == "tomography":
+        rep.paragraph(
+            "The map above is the joint estimate from all picks (described below, after the kriging). The "
+            "kriging of the gather-fit points described first is kept for comparison only; it is not the map."
+        )
     diag = r.seismic_diagnostics
     vm = diag.variogram
     if vm is not None:

@@ -120,10 +120,17 @@ def test_mapped_cells_cover_the_lines(runs):
 
 
 def test_the_map_comes_from_the_joint_estimate_of_both_layers(runs):
+    from rockhead.core.products.outputs import result_layers
+    from rockhead.core.report.content import build_report
+
     for result in runs.values():
         assert result.method_used == "tomography"
         assert result.tomography.inversion.names == ("wt", "rock")
         assert any("2 reflectors picked" in note for note in result.notes)
+    # the report's surface section says which surface is the map and which one the comparison
+    text = build_report(runs["seismic only"], result_layers(runs["seismic only"]), {})
+    surface = text[text.index("<h2>Surface</h2>") :]
+    assert surface.index("it is not the map") < surface.index("Ordinary kriging")
 
 
 def test_the_numbers_of_the_issue(runs):

@@ -122,6 +122,8 @@ def test_site_velocity_is_the_mapped_reflectors_in_the_report(two_layer_result):
     label = html.escape("overburden velocity, gather fits of reflector 'rock' (median ± 1.4826 MAD)")
     value = f"{site.velocity_m_s:.0f} ± {site.spread_m_s:.0f} m/s from 14 gathers"
     assert label in text and value in text
+    # mapped by kriging here: the report does not call the kriging a comparison surface
+    assert r.method_used == "kriging" and "it is not the map" not in text
 
 
 def test_named_reflector_is_mapped(tmp_path):
