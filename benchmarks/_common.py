@@ -31,6 +31,20 @@ def import_package() -> None:
         del sys.modules[name]
 
 
+def package_env() -> dict:
+    """The environment of a child Python that imports this checkout as ``rockhead``.
+
+    A temporary folder with a link named after the package goes first on its
+    ``PYTHONPATH`` (an editable install maps the package onto a checkout whose
+    folder may have another name, which a child such as QGIS's Python would
+    not find).
+    """
+    link_dir = Path(tempfile.mkdtemp(prefix="rm-bench-"))
+    os.symlink(ROOT, link_dir / "rockhead")
+    path = [str(link_dir)] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p]
+    return dict(os.environ, PYTHONPATH=os.pathsep.join(path))
+
+
 def load_average() -> str:
     """The 1, 5 and 15 minute load averages ("n/a" where the system has none)."""
     try:

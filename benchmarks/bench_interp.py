@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import json
-import os
 import resource
 import shutil
 import subprocess
@@ -33,7 +32,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from _common import ROOT, import_package, load_average, machine
+from _common import ROOT, import_package, load_average, machine, package_env
 
 HERE = Path(__file__).resolve().parent
 SAMPLE = ROOT / "sample_project"
@@ -52,17 +51,10 @@ def _site(folder: Path) -> Path:
     return folder / "survey.toml"
 
 
-def _package_env() -> dict:
-    import_package()
-    import rockhead
-
-    return dict(os.environ, PYTHONPATH=str(Path(rockhead.__path__[0]).parent))
-
-
 def cli_run(tmp: Path, repeat: int) -> list:
     """(wall s, child processor s) of each command-line run."""
     survey = _site(tmp / "cli")
-    env = _package_env()
+    env = package_env()
     out = []
     for k in range(repeat):
         before = resource.getrusage(resource.RUSAGE_CHILDREN)
@@ -155,7 +147,7 @@ def qgis_runs(tmp: Path, repeat: int):
     probe = subprocess.run([str(python), "-c", "import qgis.core"], capture_output=True)
     if probe.returncode != 0:
         return None
-    env = _package_env()
+    env = package_env()
     env.update(QT_QPA_PLATFORM="offscreen", PROJ_DATA="/usr/share/proj")
     env.pop("DISPLAY", None)
     script = tmp / "qgis_bench.py"

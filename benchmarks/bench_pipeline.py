@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
-import os
 import resource
 import subprocess
 import sys
@@ -20,7 +19,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from _common import import_package, load_average, machine
+from _common import import_package, load_average, machine, package_env
 
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
@@ -32,10 +31,7 @@ def machine_line() -> str:
 
 
 def cli_run(out: Path):
-    import_package()
-    import rockhead
-
-    env = dict(os.environ, PYTHONPATH=str(Path(rockhead.__path__[0]).parent))
+    env = package_env()
     t = time.perf_counter()
     proc = subprocess.run(
         [sys.executable, "-m", "rockhead.core.cli", "run", str(SURVEY), "--out", str(out)],
