@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import io
+import math
 import os
 import re
 import sys
@@ -48,6 +49,7 @@ UNORDERED = (
     ("projectlayers", lambda child: child.findtext("id", "")),
     ("individual-layer-settings", lambda child: child.get("id", "")),
 )
+_NUMBER = re.compile(r"-?\d+\.\d+(?:e[-+]?\d+)?")
 _UUID = re.compile(r"[0-9a-f]{8}([-_])[0-9a-f]{4}\1[0-9a-f]{4}\1[0-9a-f]{4}\1[0-9a-f]{12}")
 
 
@@ -105,10 +107,27 @@ def project_content(qgz):
     return ET.canonicalize(ET.tostring(root, encoding="unicode"), strip_text=True)
 
 
+def same_content(a, b, rel_tol: float = 1e-6) -> bool:
+    """True when two :func:`project_content` texts are equal, decimals to ``rel_tol``.
+
+    The legend limits are the data's extremes: another BLAS or CPU changes them
+    in the last digits, which is no change of the project.
+    """
+    if a is None or b is None:
+        return False
+    sa, sb = _NUMBER.split(a), _NUMBER.split(b)
+    na, nb = _NUMBER.findall(a), _NUMBER.findall(b)
+    return (
+        sa == sb
+        and len(na) == len(nb)
+        and all(x == y or math.isclose(float(x), float(y), rel_tol=rel_tol) for x, y in zip(na, nb))
+    )
+
+
 def write_if_changed(results_dir, project_path, survey_path=None, title=TITLE):
     """Build the project at ``project_path``; keep the old file's bytes when its content is the same.
 
-    Returns True when the content changed. QGIS names the project inside a
+    Returns True when the content changed (:func:`same_content`). QGIS names the project inside a
     .qgz after the file and stores paths relative to it, so the project is
     written in place; an unchanged one gets its earlier bytes back, moved in
     over it in one step.
@@ -117,7 +136,7 @@ def write_if_changed(results_dir, project_path, survey_path=None, title=TITLE):
     before = final.read_bytes() if final.is_file() else None
     project, _ = build_project(results_dir, final, survey_path, title)
     project.clear()
-    if before is None or project_content(final) != project_content(io.BytesIO(before)):
+    if before is None or not same_content(project_content(final), project_content(io.BytesIO(before))):
         return True
     staged = final.with_name(f".{final.name}.keep")
     staged.write_bytes(before)

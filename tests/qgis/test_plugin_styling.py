@@ -323,7 +323,7 @@ def test_sample_project_rebuild_keeps_an_unchanged_file(qgis_app, core_results, 
     """A rebuild from the same results leaves the .qgz's bytes alone (QGIS stamps each save with the time
     and new random layer ids: the demo must not show the shipped project as modified); a real change is written."""
     from qgis.core import QgsProject
-    from rockhead.plugin.make_sample_project import project_content, write_if_changed
+    from rockhead.plugin.make_sample_project import project_content, same_content, write_if_changed
 
     out_dir, _ = core_results
     shutil.copytree(out_dir, tmp_path / "results")
@@ -335,6 +335,10 @@ def test_sample_project_rebuild_keeps_an_unchanged_file(qgis_app, core_results, 
     assert not (set(p.name for p in tmp_path.iterdir()) - {"results", "demo.qgz"})  # nothing left beside it
     assert write_if_changed(tmp_path / "results", qgz, title="another title")
     assert qgz.read_bytes() != first and project_content(qgz) != project_content(io.BytesIO(first))
+    # decimals compared to 1e-6 (legend limits in their last digits), everything else exactly
+    assert same_content('<a v="0.0862692520022392"/>', '<a v="0.0862692445516586"/>')
+    assert not same_content('<a v="0.0862692520022392"/>', '<a v="0.0863"/>')
+    assert not same_content('<a v="0.5" w="x"/>', '<a v="0.5" w="y"/>')
     QgsProject.instance().clear()
 
 
