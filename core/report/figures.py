@@ -67,6 +67,26 @@ def label_every_contour(contour_lines) -> bool:
     return len({float(level) for level, _xy, is_index in contour_lines if is_index}) < 3
 
 
+def draw_lines(ax, lines, fontsize: float, zorder=None) -> None:
+    """Draw the seismic lines ``{name: (n, 2) xy}`` on a map, each labelled at its first station.
+
+    ``zorder``: drawing order of lines and labels (None: matplotlib's).
+    """
+    z = {} if zorder is None else {"zorder": zorder}
+    for name, xy in sorted(lines.items()):
+        ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0, **z)
+        ax.annotate(
+            f"line {printable(name, 40)}",
+            xy[0],
+            fontsize=fontsize,
+            color=colours.LINE,
+            ha="right",
+            va="bottom",
+            path_effects=label_halo(),
+            **z,
+        )
+
+
 def draw_contours(ax, contour_lines, colour, widths=(1.0, 0.4), fontsize: float = 7, zorder=None) -> None:
     """Draw contours on a map, each index contour (every contour, :func:`label_every_contour`) labelled.
 
@@ -207,17 +227,7 @@ def map_figure(
     cb = fig.colorbar(im, ax=ax, shrink=0.75)
     cb.set_label("depth to reflector (m)")
     draw_contours(ax, contour_lines, colours.CONTOUR_DEPTH)  # labelled as on the map sheet
-    for line, xy in sorted(station_lines.items()):
-        ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0)
-        ax.annotate(
-            f"line {printable(line, 40)}",
-            xy[0],
-            fontsize=8,
-            color=colours.LINE,
-            ha="right",
-            va="bottom",
-            path_effects=label_halo(),
-        )
+    draw_lines(ax, station_lines, fontsize=8)
     if points_xy is not None and len(points_xy):
         ax.plot(points_xy[:, 0], points_xy[:, 1], ".", color=colours.REFLECTOR_POINT, ms=3, mec="white", mew=0.3)
     span = max(extent[1] - extent[0], extent[3] - extent[2])

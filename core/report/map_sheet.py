@@ -120,18 +120,7 @@ def _draw_map(ax, spec, page: MapPage, ov: MapOverlays, symbol_m: float):
         for poly in getattr(ov.area, "geoms", [ov.area]):
             xs, ys = poly.exterior.xy
             ax.plot(xs, ys, "-", color="k", lw=1.4, ls="--", zorder=3)
-    for name, xy in sorted(ov.lines.items()):
-        ax.plot(xy[:, 0], xy[:, 1], "-", color=colours.LINE, lw=2.0, zorder=4)
-        ax.annotate(
-            f"line {printable(name, 40)}",
-            xy[0],
-            fontsize=7,
-            color=colours.LINE,
-            ha="right",
-            va="bottom",
-            zorder=4,
-            path_effects=figures.label_halo(),
-        )
+    figures.draw_lines(ax, ov.lines, fontsize=7, zorder=4)
     if ov.points_xy is not None and len(ov.points_xy):
         ax.plot(
             ov.points_xy[:, 0],
