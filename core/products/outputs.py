@@ -419,6 +419,13 @@ def _import_matplotlib(pdf: bool = False) -> None:
 
 def _draw_documents(result, folder: RunFolder, progress, gather_figures, layers, sections) -> None:
     """Draw every line's QC figure, the chosen gathers' and the report, into ``folder``."""
+    from ..report.drawing import frozen_heap
+
+    with frozen_heap():
+        _draw_figures_and_report(result, folder, progress, gather_figures, layers, sections)
+
+
+def _draw_figures_and_report(result, folder: RunFolder, progress, gather_figures, layers, sections) -> None:
     from ..report.content import build_report
 
     line_figures = {}
@@ -508,6 +515,9 @@ def output_workers(folder: RunFolder, parallel=None):
     def warm_drawing() -> None:
         _import_matplotlib(pdf=True)
         from ..report import content, map_sheet, qc_figures, section_sheet  # noqa: F401 - ahead, while the run computes
+        from ..report.figures import warm_up
+
+        warm_up()  # fonts and colour maps loaded once, for both drawing processes
 
     def documents(payload) -> list:
         result, sections, gather_figures = payload

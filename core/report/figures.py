@@ -11,8 +11,6 @@ pyplot's global state. matplotlib is optional for the core: without it
 
 from __future__ import annotations
 
-import io
-
 import numpy as np
 
 from .. import colours
@@ -133,6 +131,24 @@ def _figure(width_in: float, height_in: float, dpi: float):
     return new_figure(width_in, height_in, dpi)
 
 
+def warm_up() -> None:
+    """Do once, ahead of the drawings, what the first figure of a process would: fonts, colour maps, backends.
+
+    A process that forks the drawing processes calls this first, so that each
+    of them starts with the fonts loaded (regular, bold and monospace, as the
+    figures and sheets use them) and the shared colour maps registered,
+    instead of loading them again.
+    """
+    import io
+
+    fig = _figure(1.0, 1.0, 20.0)  # the colour maps registered
+    fig.text(0.1, 0.1, "0.5 m ±σ", fontsize=7)
+    fig.text(0.1, 0.5, "Legend", fontsize=10, fontweight="bold")
+    fig.text(0.1, 0.8, "V = 1800 m/s", fontsize=7.5, family="monospace")
+    for fmt in ("png", "pdf"):
+        fig.savefig(io.BytesIO(), format=fmt)
+
+
 def register_colour_maps() -> None:
     """Register the shared ramps of :mod:`core.colours` as matplotlib colour maps (once).
 
@@ -187,10 +203,10 @@ def plain_text(fig) -> None:
 
 
 def _png(fig) -> bytes:
+    from .qc_figures import png_bytes
+
     plain_text(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=fig.dpi, metadata={"Software": None})
-    return buf.getvalue()
+    return png_bytes(fig)
 
 
 def map_figure(

@@ -24,6 +24,7 @@ from .. import colours
 from ..grid import nice_step
 from ..text import printable
 from . import figures
+from .drawing import drawn_with_frozen_heap
 from .sheet import (
     A3_LANDSCAPE_MM,
     CAUTION_LINES,
@@ -228,6 +229,7 @@ def _rect(x, y, w, h, colour):
     return Rectangle((x, y), w, h, facecolor=colour, edgecolor="k", lw=0.6)
 
 
+@drawn_with_frozen_heap
 def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
     """Draw the map sheet; returns the PDF bytes (one page per :class:`MapPage`).
 

@@ -31,7 +31,6 @@ Geophysics 3, 295-305.
 
 from __future__ import annotations
 
-import io
 from typing import Optional, Sequence, Tuple
 
 import numpy as np
@@ -82,10 +81,10 @@ def new_figure(width_in: float, height_in: float, dpi: float, layout: Optional[s
 
 
 def png_bytes(fig) -> bytes:
-    """The figure as PNG bytes at its own size and dpi (no time stamp or software tag: reproducible)."""
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=fig.dpi, metadata={"Software": None})
-    return buf.getvalue()
+    """The figure as PNG bytes at its own size and dpi, reproducible (:func:`~.drawing.figure_png`)."""
+    from .drawing import figure_png
+
+    return figure_png(fig)
 
 
 def data_range(values, pad: float = 0.06) -> Tuple[float, float]:

@@ -15,6 +15,7 @@ import numpy as np
 from .. import colours
 from ..text import printable
 from . import figures
+from .drawing import drawn_with_frozen_heap
 from .sheet import SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale, save_figure
 
 __all__ = ["GROUND", "OVERBURDEN", "ROCK", "WATER", "section_sheet", "vertical_exaggeration"]
@@ -51,6 +52,7 @@ def _finite(*arrays):
     return vals[np.isfinite(vals)]
 
 
+@drawn_with_frozen_heap
 def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> bytes:
     """Draw one section sheet; returns PDF or SVG bytes.
 
