@@ -17,17 +17,59 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
+import threading
 from pathlib import Path
 from typing import Iterable, Iterator, List, Tuple, Union
 
 from ..errors import OutputError
 
-__all__ = ["OutputSet", "atomic_path", "check_not_input", "check_output_dir", "fsync_path"]
+__all__ = [
+    "OutputSet",
+    "atomic_path",
+    "check_not_input",
+    "check_output_dir",
+    "flushed_later",
+    "fsync_path",
+    "register_staging",
+    "unregister_staging",
+]
 
 PathLike = Union[str, "os.PathLike[str]"]
 
 # sqlite (GeoPackage) may leave these beside a database file that failed mid-write.
 _SIDECARS = ("-journal", "-wal", "-shm")
+
+
+# Folders whose every file is flushed to disk by their owner before they become visible (the staging
+# folders of open run folders, :class:`~.runfolder.RunFolder`): a writer inside one leaves the flush to it
+_staging_roots: set = set()
+_staging_lock = threading.Lock()
+
+
+def register_staging(folder: Path) -> None:
+    """Say that every file written inside ``folder`` is flushed by its owner before the folder is used.
+
+    The atomic writers of this module then skip their own flush (``fsync``)
+    for files inside it: the owner (:meth:`~.runfolder.RunFolder.commit`)
+    flushes each file once, all together, before the folder is swapped in.
+    """
+    with _staging_lock:
+        _staging_roots.add(os.path.abspath(os.fspath(folder)))
+
+
+def unregister_staging(folder: Path) -> None:
+    """Undo :func:`register_staging` (files inside ``folder`` are flushed by their writers again)."""
+    with _staging_lock:
+        _staging_roots.discard(os.path.abspath(os.fspath(folder)))
+
+
+def flushed_later(path: PathLike) -> bool:
+    """True when ``path`` lies inside a folder given to :func:`register_staging` (its owner flushes it)."""
+    if not _staging_roots:
+        return False
+    text = os.path.abspath(os.fspath(path))
+    with _staging_lock:
+        return any(text.startswith(root + os.sep) for root in _staging_roots)
 
 
 def _default_mode() -> int:
@@ -116,7 +158,9 @@ def atomic_path(target: PathLike) -> Iterator[Path]:
     file is flushed to disk (``fsync``) and renamed onto ``target`` with
     :func:`os.replace`; when the block raises (including ``KeyboardInterrupt``
     and :class:`~.errors.CancelledError`) the temporary file is removed and an
-    earlier ``target`` is left byte-identical.
+    earlier ``target`` is left byte-identical. Inside a run's staging folder
+    (:func:`register_staging`) the flush is left to the run folder's commit,
+    which flushes every file of the run before any of them becomes visible.
 
     Parameters
     ----------
@@ -152,12 +196,15 @@ def atomic_path(target: PathLike) -> Iterator[Path]:
         yield tmp
         if not tmp.exists():
             raise OutputError(f"the writer of '{target}' removed its temporary file '{tmp.name}'")
-        _fsync_file(tmp)
+        later = flushed_later(tmp)  # inside a run's staging folder: its commit flushes every file at once
+        if not later:
+            _fsync_file(tmp)
         _replace(tmp, target)
     except BaseException:
         _remove_quietly(tmp)
         raise
-    fsync_path(target.parent, directory=True)
+    if not later:
+        fsync_path(target.parent, directory=True)
 
 
 class OutputSet:

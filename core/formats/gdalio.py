@@ -58,6 +58,7 @@ from typing import Dict, Mapping, Tuple
 import numpy as np
 
 from ..errors import GeoreferenceError, InputFileError, MissingDependencyError, OutputError
+from .atomic import flushed_later
 from .layer import Layer, check_layer, encode_geometries
 
 __all__ = [
@@ -526,7 +527,12 @@ def write_layers(
 
 
 def _flush_to_disk(path: Path) -> None:
-    """Flush a finished file to disk before it is renamed into place (the rename never exposes a partial file)."""
+    """Flush a finished file to disk before it is renamed into place (the rename never exposes a partial file).
+
+    Inside a run's staging folder the run folder's commit flushes it (:func:`~.atomic.flushed_later`).
+    """
+    if flushed_later(path):
+        return
     fd = os.open(path, os.O_RDONLY)
     try:
         os.fsync(fd)

@@ -51,11 +51,12 @@ import shutil
 import socket
 import sys
 import time
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Dict, Iterable, List, Mapping, Optional, Tuple, Union
 
 from ..errors import OutputError
-from .atomic import fsync_path
+from .atomic import fsync_path, register_staging, unregister_staging
 
 __all__ = ["MANIFEST", "RunFolder", "read_manifest"]
 
@@ -381,6 +382,8 @@ class RunFolder:
             raise OutputError(f"the output folder {str(text)!r} holds control characters; give a plain folder name")
         self.requested = _abs(text)
         self.inputs: Dict[str, Path] = {k: _abs(v) for k, v in inputs.items() if v is not None}
+        # each input as spelled and resolved (links followed), resolved once: every output is checked against them
+        self._input_spellings: Dict[str, Tuple[Path, ...]] = {k: (p, _real(p)) for k, p in self.inputs.items()}
         self.target = _real(self.requested)
         self.parent = self.target.parent
         self.staging: Optional[Path] = None
@@ -389,6 +392,7 @@ class RunFolder:
         self._lock: Optional[_Lock] = None
         self._committed = False
         self._planned: Dict[str, str] = {}  # case-folded relative path -> relative path
+        self._linked: set = set()  # files carried over as hard links to the last run's (already on disk)
 
     @property
     def previous_owner(self) -> str:
@@ -417,7 +421,7 @@ class RunFolder:
         return [
             (role, path)
             for role, path in self.inputs.items()
-            if any(_within(c, out) for c in (path, _real(path)) for out in outs)
+            if any(_within(c, out) for c in self._input_spellings[role] for out in outs)
         ]
 
     def _input_within(self, *outputs: Path) -> Optional[Tuple[str, Path]]:
@@ -573,6 +577,7 @@ class RunFolder:
             mode = (self.target.stat().st_mode & 0o7777) if self.target.is_dir() else (0o777 & ~_umask())
             with contextlib.suppress(OSError):
                 os.chmod(path, mode)
+            register_staging(path)  # its files are flushed once, all together, by commit
             return path
         raise OutputError("could not create a staging folder; try again")  # pragma: no cover
 
@@ -645,6 +650,7 @@ class RunFolder:
             dst.parent.mkdir(exist_ok=True)
             try:
                 os.link(src, dst)
+                self._linked.add(rel)
             except OSError:
                 shutil.copy2(src, dst)
             self._planned[rel.casefold()] = rel
@@ -671,18 +677,15 @@ class RunFolder:
         for rel in rels:
             if not (self.staging / rel).is_file():
                 raise OutputError(f"the output '{rel}' was never written")
-        records = []
-        for rel in rels:
-            path = self.staging / rel
-            digest = hashlib.sha256()
-            with open(path, "rb") as fh:
-                while True:
-                    block = fh.read(1 << 20)
-                    if not block:
-                        break
-                    digest.update(block)
-                os.fsync(fh.fileno())
-            records.append({"path": rel, "bytes": path.stat().st_size, "sha256": digest.hexdigest()})
+        # every written file flushed to disk, on a few threads so that the file system can group the flushes
+        # (a file carried over as a hard link is the last run's, flushed by its commit); hashed meanwhile
+        staging = self.staging
+        jobs = [(staging / rel, rel, rel not in self._linked) for rel in rels]
+        if len(jobs) > 1:
+            with ThreadPoolExecutor(max_workers=min(8, len(jobs))) as pool:
+                records = list(pool.map(lambda job: _flushed_record(*job), jobs))
+        else:
+            records = [_flushed_record(*job) for job in jobs]
         manifest = {"format": _MANIFEST_FORMAT, "files": records}
         tmp = self.staging / (MANIFEST + ".part")
         with open(tmp, "w", encoding="utf-8") as fh:
@@ -719,6 +722,7 @@ class RunFolder:
                 f"cannot put the new outputs in place of '{self.requested}': {exc.strerror or exc}; is a file "
                 "in it open in another program? Earlier outputs there are unchanged"
             ) from exc
+        unregister_staging(staged)
         self.staging = None
         fsync_path(self.parent, directory=True)
         if old is not None:
@@ -727,6 +731,7 @@ class RunFolder:
     def close(self) -> None:
         """Remove the staging folder (if not swapped in) and release the lock."""
         if self.staging is not None:
+            unregister_staging(self.staging)
             _rmtree(self.staging)
             self.staging = None
         if self._lock is not None:
@@ -738,6 +743,21 @@ class RunFolder:
 
     def __exit__(self, exc_type, exc, tb) -> None:
         self.close()
+
+
+def _flushed_record(path: Path, rel: str, flush: bool) -> dict:
+    """The manifest record of one staged file (size, SHA-256), after flushing it to disk when ``flush``."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(1 << 20)
+            if not block:
+                break
+            digest.update(block)
+        if flush:
+            os.fsync(fh.fileno())
+        size = os.fstat(fh.fileno()).st_size
+    return {"path": rel, "bytes": size, "sha256": digest.hexdigest()}
 
 
 def _umask() -> int:
