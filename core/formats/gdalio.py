@@ -518,8 +518,14 @@ def write_layers(
     adapter = _adapter(engine_name, f"writing '{path.name}'")
     dmd = {str(k): str(v) for k, v in (dataset_metadata or {}).items()}
     lmd = {k: {str(a): str(b) for a, b in v.items()} for k, v in (layer_metadata or {}).items()}
-    # SQLite would flush the file to disk at every layer's transaction; it is flushed once, when complete
-    options = {"OGR_CURRENT_DATE": gdal_timestamp(timestamp), "OGR_SQLITE_SYNCHRONOUS": "OFF"}
+    # SQLite would flush the file to disk at every layer's transaction; it is flushed once, when complete.
+    # Its rollback journal is kept in memory, not in a file created and removed at every transaction: the
+    # file is a temporary one until complete (a failed write removes it), so the journal only serves rollbacks
+    options = {
+        "OGR_CURRENT_DATE": gdal_timestamp(timestamp),
+        "OGR_SQLITE_SYNCHRONOUS": "OFF",
+        "OGR_SQLITE_JOURNAL": "MEMORY",
+    }
     with adapter.config(options), _atomic_files(path) as tmp:
         adapter.write_layers(tmp, prepared, wkt, dmd, lmd, {"VERSION": GPKG_VERSION}, _layer_options)
         _flush_to_disk(tmp)
