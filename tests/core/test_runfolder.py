@@ -288,3 +288,41 @@ def test_carry_over_keeps_the_last_runs_other_files(tmp_path):
     assert (out / "survey.gpkg").read_text() == "map 2"
     assert (out / "report.html").read_text() == "report 1"
     assert [f["path"] for f in read_manifest(out)["files"]] == ["survey.gpkg", "report.html", "qc/gather_A_1_1.svg"]
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="names an open file through /proc (Linux)")
+def test_each_written_file_is_flushed_once_by_the_commit(tmp_path, monkeypatch):
+    """Writers inside the staging folder leave the flush to the commit, which flushes each new file once.
+
+    A file carried over is a hard link to the last run's (flushed by that run's commit) and is not
+    flushed again; a file outside any staging folder is flushed by its writer, as before.
+    """
+    from rockhead.core.formats.atomic import atomic_path, flushed_later
+
+    out = tmp_path / "out"
+    _write_run(out, {"report.html": "report 1", "survey.gpkg": "map 1"})
+    flushed = []
+    real_fsync = os.fsync
+
+    def recording_fsync(fd):
+        flushed.append(os.path.basename(os.readlink(f"/proc/self/fd/{fd}")))
+        return real_fsync(fd)
+
+    monkeypatch.setattr(os, "fsync", recording_fsync)
+    with RunFolder(out, {}) as run:
+        staged = run.path("survey.gpkg")
+        assert flushed_later(staged) and not flushed_later(tmp_path / "elsewhere.csv")
+        with atomic_path(staged) as tmp:  # an atomic writer inside the staging folder
+            tmp.write_text("map 2")
+        run.path("csv/points.csv").write_text("x,y\r\n")
+        assert run.carry_over() == ["report.html"]
+        assert flushed == []  # nothing flushed before the commit
+        run.commit()
+    files = [n for n in flushed if n in ("points.csv", "survey.gpkg", "report.html")]
+    assert sorted(files) == ["points.csv", "survey.gpkg"]  # once each; report.html is the last run's
+    assert not flushed_later(staged)  # the staging folder is forgotten once swapped in
+    flushed.clear()
+    with atomic_path(tmp_path / "elsewhere.csv") as tmp:
+        tmp.write_text("1")
+    assert flushed[0].startswith(".elsewhere.")  # outside a run folder its writer flushes it
+    assert (out / "survey.gpkg").read_text() == "map 2" and (out / "report.html").read_text() == "report 1"
