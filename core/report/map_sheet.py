@@ -28,6 +28,7 @@ from .drawing import drawn_with_frozen_heap
 from .sheet import (
     A3_LANDSCAPE_MM,
     CAUTION_LINES,
+    SheetBox,
     SheetInfo,
     draw_cautions,
     draw_title_block,
@@ -160,9 +161,9 @@ def _legend(fig, im, page: MapPage, ov: MapOverlays):
     from matplotlib.lines import Line2D
 
     top = 282.0
-    head = mm_axes(fig, (_PANEL_X_MM, top - 8, _PANEL_W_MM, 8))
-    head.axis("off")
-    head.text(0, 0.5, "Legend", fontsize=10, fontweight="bold", va="center")
+    SheetBox(fig, (_PANEL_X_MM, top - 8, _PANEL_W_MM, 8)).text(
+        0, 0.5, "Legend", fontsize=10, fontweight="bold", va="center"
+    )
     cax = mm_axes(fig, (_PANEL_X_MM + 4, top - 22, _PANEL_W_MM - 8, 5))
     cb = fig.colorbar(im, cax=cax, orientation="horizontal")
     cb.set_label(page.label, fontsize=7)
@@ -196,37 +197,28 @@ def _legend(fig, im, page: MapPage, ov: MapOverlays):
         ]
     if ov.area is not None:
         handles.append(Line2D([], [], color="k", ls="--", lw=1.4, label="design area"))
-    lax = mm_axes(fig, (_PANEL_X_MM, 150.0, _PANEL_W_MM, top - 36 - 150.0))
-    lax.axis("off")
-    lax.legend(handles=handles, loc="upper left", fontsize=7, frameon=False, handlelength=2.5)
+    box = SheetBox(fig, (_PANEL_X_MM, 150.0, _PANEL_W_MM, top - 36 - 150.0))
+    box.legend(handles, loc="upper left", fontsize=7, frameon=False, handlelength=2.5)
 
 
 def _scale_and_north(fig, scale: int):
-    ax = mm_axes(fig, (_PANEL_X_MM, 124.0, _PANEL_W_MM, 24.0))
-    ax.set_xlim(0, _PANEL_W_MM)
-    ax.set_ylim(0, 24)
-    ax.axis("off")
+    ax = SheetBox(fig, (_PANEL_X_MM, 124.0, _PANEL_W_MM, 24.0), limits=(_PANEL_W_MM, 24.0))  # laid out in mm
     # scale bar: a round length of about half the panel
     length_m = nice_step(0.55 * _PANEL_W_MM * scale / 1000.0)
     bar_mm = length_m * 1000.0 / scale
     x0, y0, h = 4.0, 6.0, 2.0
     for k in range(4):
-        ax.add_patch(_rect(x0 + k * bar_mm / 4, y0, bar_mm / 4, h, "k" if k % 2 == 0 else "white"))
+        colour = "k" if k % 2 == 0 else "white"
+        ax.rectangle(x0 + k * bar_mm / 4, y0, bar_mm / 4, h, facecolor=colour, edgecolor="k", lw=0.6)
     for frac in (0.0, 0.5, 1.0):
         ax.text(x0 + frac * bar_mm, y0 + h + 1.2, f"{frac * length_m:g}", fontsize=6, ha="center", va="bottom")
     ax.text(x0 + bar_mm + 2, y0 + h / 2, "m", fontsize=7, va="center")
     ax.text(x0, 1.0, f"scale 1:{scale:,} on A3 (420 × 297 mm)", fontsize=7, va="bottom")
     # north arrow (grid north)
     nx = _PANEL_W_MM - 12
-    ax.annotate("", xy=(nx, 21), xytext=(nx, 7), arrowprops={"arrowstyle": "-|>", "lw": 1.6, "color": "k"})
+    ax.arrow((nx, 21), (nx, 7), arrowstyle="-|>", lw=1.6, color="k")
     ax.text(nx, 22.5, "N", fontsize=10, fontweight="bold", ha="center", va="bottom")
     ax.text(nx, 5.5, "grid north", fontsize=6, ha="center", va="top")
-
-
-def _rect(x, y, w, h, colour):
-    from matplotlib.patches import Rectangle
-
-    return Rectangle((x, y), w, h, facecolor=colour, edgecolor="k", lw=0.6)
 
 
 @drawn_with_frozen_heap
@@ -257,9 +249,9 @@ def map_sheet(spec, pages, overlays: MapOverlays, info: SheetInfo) -> bytes:
             ax.set_title(page.title, fontsize=11, loc="left", pad=14)
             _legend(fig, im, page, overlays)
             _scale_and_north(fig, scale)
-            draw_cautions(mm_axes(fig, (_PANEL_X_MM, 92.0, _PANEL_W_MM, 30.0)), width_chars=62)
+            draw_cautions(SheetBox(fig, (_PANEL_X_MM, 92.0, _PANEL_W_MM, 30.0)), width_chars=62)
             draw_title_block(
-                mm_axes(fig, (_PANEL_X_MM, 14.0, _PANEL_W_MM, 76.0)),
+                SheetBox(fig, (_PANEL_X_MM, 14.0, _PANEL_W_MM, 76.0)),
                 info,
                 f"{page.title} (sheet {k} of {len(pages)})",
                 f"1:{scale:,} (A3)",

@@ -16,7 +16,7 @@ from .. import colours
 from ..text import printable
 from . import figures
 from .drawing import drawn_with_frozen_heap
-from .sheet import SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale, save_figure
+from .sheet import SheetBox, SheetInfo, draw_cautions, draw_title_block, mm_axes, new_sheet, nice_scale, save_figure
 
 __all__ = ["GROUND", "OVERBURDEN", "ROCK", "WATER", "section_sheet", "vertical_exaggeration"]
 
@@ -160,14 +160,14 @@ def section_sheet(section, info: SheetInfo, plan=None, fmt: str = "pdf") -> byte
         )
     _key_plan(mm_axes(fig, (20.0, 14.0, 95.0, 64.0)), s, plan or {})
     draw_cautions(
-        mm_axes(fig, (125.0, 54.0, 148.0, 30.0)),
+        SheetBox(fig, (125.0, 54.0, 148.0, 30.0)),
         extra=(
             f"Boreholes, shots and reflector points within {s.corridor_m / 2:g} m of the alignment",
             "are projected onto it; offsets right (R) or left (L) looking up-chainage.",
         ),
     )
     draw_title_block(
-        mm_axes(fig, (280.0, 14.0, 120.0, 72.0)),
+        SheetBox(fig, (280.0, 14.0, 120.0, 72.0)),
         info,
         f"Section {s.title}",
         f"H 1:{h_scale:,}, V 1:{round(h_scale / ve):,} (A3)",

@@ -19,6 +19,7 @@ __all__ = [
     "A3_LANDSCAPE_MM",
     "CAUTION_LINES",
     "TITLE_VALUE_CHARS",
+    "SheetBox",
     "SheetInfo",
     "draw_cautions",
     "draw_title_block",
@@ -105,22 +106,97 @@ def mm_axes(fig, box_mm, size_mm=A3_LANDSCAPE_MM, **kwargs):
     return fig.add_axes((left / w, bottom / h, width / w, height / h), **kwargs)
 
 
-def _box(ax):
-    ax.set_xlim(0, 1)
-    ax.set_ylim(0, 1)
-    ax.set_xticks([])
-    ax.set_yticks([])
+class SheetBox:
+    """A box of the sheet at (left, bottom, width, height) mm, drawn into by figure-level artists.
+
+    The legend, scale, cautions and title block are boxes of text and
+    simple shapes; axes of their own would cost their construction (ticks,
+    spines, clip paths) for nothing. Coordinates inside the box run from 0 to
+    ``limits`` (1 x 1 by default: the axes fraction; the scale bar's box is
+    laid out in millimetres), exactly as an axes with those limits maps them.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    box_mm : (float, float, float, float)
+        Left, bottom, width, height (mm from the sheet's lower-left corner).
+    size_mm : (float, float)
+        The sheet's width and height (mm).
+    limits : (float, float)
+        The box's coordinate span along x and y.
+    """
+
+    def __init__(self, fig, box_mm, size_mm=A3_LANDSCAPE_MM, limits=(1.0, 1.0)):
+        from matplotlib.transforms import Affine2D, Bbox, BboxTransformTo, TransformedBbox
+
+        w, h = size_mm
+        left, bottom, width, height = box_mm
+        self.figure = fig
+        self.bbox = Bbox.from_bounds(left / w, bottom / h, width / w, height / h)  # figure fraction
+        to_figure = BboxTransformTo(TransformedBbox(self.bbox, fig.transFigure))
+        self.transform = (
+            to_figure if tuple(limits) == (1.0, 1.0) else Affine2D().scale(1.0 / limits[0], 1.0 / limits[1]) + to_figure
+        )
+
+    def text(self, x, y, s, **kwargs):
+        """A text at (x, y) of the box (a figure text: :func:`~.figures.plain_text` finds it)."""
+        return self.figure.text(x, y, s, transform=self.transform, **kwargs)
+
+    def line(self, xs, ys, **kwargs):
+        """A line through the points (xs, ys) of the box."""
+        from matplotlib.lines import Line2D
+
+        return self.figure.add_artist(Line2D(xs, ys, transform=self.transform, **kwargs))
+
+    def rectangle(self, x, y, width, height, **kwargs):
+        """A rectangle with its lower-left corner at (x, y) of the box."""
+        from matplotlib.patches import Rectangle
+
+        return self.figure.add_artist(Rectangle((x, y), width, height, transform=self.transform, **kwargs))
+
+    def framed(self, facecolor="none") -> SheetBox:
+        """Draw the box's outline (as an axes' spines: 0.8 pt, black) over a fill of ``facecolor``."""
+        import matplotlib
+
+        self.rectangle(0.0, 0.0, 1.0, 1.0, facecolor=facecolor, edgecolor="none", zorder=0.5)
+        self.rectangle(
+            0.0,
+            0.0,
+            1.0,
+            1.0,
+            facecolor="none",
+            edgecolor=matplotlib.rcParams["axes.edgecolor"],
+            lw=matplotlib.rcParams["axes.linewidth"],
+            zorder=2.5,
+        )
+        return self
+
+    def arrow(self, tip, tail, **arrowprops):
+        """An arrow from ``tail`` to ``tip`` (points of the box), drawn as matplotlib annotates one."""
+        from matplotlib.text import Annotation
+
+        return self.figure.add_artist(
+            Annotation(
+                "", xy=tip, xytext=tail, xycoords=self.transform, textcoords=self.transform, arrowprops=arrowprops
+            )
+        )
+
+    def legend(self, handles, **kwargs):
+        """A legend placed in the box as an axes there would place it (``loc`` relative to the box)."""
+        return self.figure.legend(
+            handles=handles, bbox_to_anchor=self.bbox, bbox_transform=self.figure.transFigure, **kwargs
+        )
 
 
 #: Characters of a title-block value that fit beside its key; a longer value is shortened with "...".
 TITLE_VALUE_CHARS = 52
 
 
-def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "", title_chars: int = 44) -> None:
-    """Fill ``ax`` with the title block: title, survey, dates, software, CRS, datum, method, cell."""
+def draw_title_block(box: SheetBox, info: SheetInfo, title: str, scale_text: str = "", title_chars: int = 44) -> None:
+    """Fill the framed ``box`` with the title block: title, survey, dates, software, CRS, datum, method, cell."""
     import textwrap
 
-    _box(ax)
+    box.framed()
     title = "\n".join(textwrap.wrap(title, title_chars)[:2])
     rows = [
         ("survey", info.survey),
@@ -137,31 +213,30 @@ def draw_title_block(ax, info: SheetInfo, title: str, scale_text: str = "", titl
         rows.append(("scale", scale_text))
     rows += list(info.extra)
     rows.append(("software", info.software))
-    ax.text(0.03, 0.95, title, fontsize=10, fontweight="bold", va="top", ha="left")
-    ax.axhline(0.84, color="k", lw=0.6)
+    box.text(0.03, 0.95, title, fontsize=10, fontweight="bold", va="top", ha="left")
+    box.line([0.0, 1.0], [0.84, 0.84], color="k", lw=0.6)
     n = len(rows)
     top, bottom = 0.80, 0.03
     dy = (top - bottom) / max(n, 1)
     for i, (k, v) in enumerate(rows):
         y = top - (i + 0.5) * dy
-        ax.text(0.03, y, k, fontsize=7, va="center", ha="left", color="0.3")
-        ax.text(
+        box.text(0.03, y, k, fontsize=7, va="center", ha="left", color="0.3")
+        box.text(
             0.34, y, textwrap.shorten(str(v), TITLE_VALUE_CHARS, placeholder="..."), fontsize=7, va="center", ha="left"
         )
 
 
-def draw_cautions(ax, extra=(), width_chars=None) -> None:
-    """The cautions every sheet carries, in a framed box (lines wrapped at ``width_chars``)."""
+def draw_cautions(box: SheetBox, extra=(), width_chars=None) -> None:
+    """The cautions every sheet carries, in the framed ``box`` (lines wrapped at ``width_chars``)."""
     import textwrap
 
-    _box(ax)
-    ax.set_facecolor("#fff4d6")
+    box.framed("#fff4d6")
     lines = list(CAUTION_LINES) + list(extra)
     if width_chars:
         lines = [part for line in lines for part in textwrap.wrap(line, width_chars)]
     dy = 0.9 / max(len(lines), 1)
     for i, text in enumerate(lines):
-        ax.text(
+        box.text(
             0.02,
             0.95 - (i + 0.5) * dy,
             text,
