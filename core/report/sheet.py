@@ -89,13 +89,14 @@ def nice_scale(denominator: float) -> int:
 def new_sheet(size_mm=A3_LANDSCAPE_MM):
     """A blank sheet with a thin border 8 mm inside the paper edge."""
     w, h = size_mm
+    import matplotlib
+
     fig = _figure(w / MM_PER_INCH, h / MM_PER_INCH)
-    frame = mm_axes(fig, (8, 8, w - 16, h - 16), size_mm)
-    frame.set_xticks([])
-    frame.set_yticks([])
-    for s in frame.spines.values():
-        s.set_linewidth(0.8)
-    frame.patch.set_alpha(0)
+    edge = matplotlib.rcParams["axes.edgecolor"]
+    # the sheet's first artist (fig.artists[0]), drawn under every axes
+    SheetBox(fig, (8, 8, w - 16, h - 16), size_mm).rectangle(
+        0, 0, 1, 1, facecolor="none", edgecolor=edge, lw=0.8, zorder=-1
+    )
     return fig
 
 

@@ -168,7 +168,7 @@ def test_section_elevation_label_clears_the_sheet_border(monkeypatch):
     (fig,) = kept
     fig.canvas.draw()  # the axis label is placed at draw time, beside the tick labels
     renderer = fig.canvas.get_renderer()
-    frame, section_ax = fig.axes[0], fig.axes[1]
+    frame, section_ax = fig.artists[0], fig.axes[0]  # the border line, and the section's axes
     border_x = frame.get_window_extent(renderer).x0
     label = section_ax.yaxis.label
     assert "vertical datum not stated" in label.get_text()
