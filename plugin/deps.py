@@ -26,6 +26,7 @@ REQUIRED = (
     ("shapely", "shapely", "python3-shapely"),
     ("contourpy", "contourpy", "python3-contourpy"),
     ("matplotlib", "matplotlib", "python3-matplotlib"),
+    ("PIL", "pillow", "python3-pil"),  # PNG files of the figures (comes with matplotlib)
     ("osgeo.gdal", "GDAL", "python3-gdal"),
 )
 

@@ -26,7 +26,7 @@ except ImportError:  # Python < 3.11
 REPO = Path(__file__).resolve().parents[2]
 SAMPLE = REPO / "sample_project"
 # import name -> distribution name where they differ
-DISTRIBUTIONS = {"osgeo": "GDAL"}
+DISTRIBUTIONS = {"osgeo": "GDAL", "PIL": "pillow"}
 # the command line reaches GDAL through these two; QGIS through GDAL's own bindings
 GDAL_ON_PYPI = {"rasterio", "pyogrio"}
 
