@@ -30,7 +30,7 @@ import numpy as np
 
 from ..errors import OutputError
 
-__all__ = ["GEOMETRY_TYPES", "Layer", "check_layer", "encode_geometries"]
+__all__ = ["GEOMETRY_TYPES", "Layer", "check_layer", "encode_geometries", "geometry_type_names", "point_xy"]
 
 GEOMETRY_TYPES = ("POINT", "LINESTRING", "POLYGON", "MULTIPOINT", "MULTILINESTRING", "MULTIPOLYGON", "GEOMETRY")
 _NAME_RE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
@@ -136,11 +136,55 @@ def check_layer(name: str, layer: Layer) -> dict:
     return out
 
 
-def _type_names(geometries) -> list:
-    out = []
-    for g in geometries:
-        out.append(None if g is None or g.is_empty else g.geom_type)
-    return out
+def _object_array(geometries) -> np.ndarray:
+    arr = np.empty(len(geometries), dtype=object)
+    arr[:] = list(geometries)
+    return arr
+
+
+def geometry_type_names(geometries) -> list:
+    """Each geometry's type name ("Point", "LineString", ...), None for a null or empty one.
+
+    Parameters
+    ----------
+    geometries : sequence of shapely geometries or None
+
+    Returns
+    -------
+    list of str or None
+    """
+    import shapely
+
+    if hasattr(shapely, "get_type_id"):  # shapely >= 2: one vectorised call per property
+        arr = _object_array(geometries)
+        ids, empty = shapely.get_type_id(arr).tolist(), shapely.is_empty(arr).tolist()
+        return [None if i < 0 or e else _TYPE_NAMES[i] for i, e in zip(ids, empty)]
+    return [None if g is None or g.is_empty else g.geom_type for g in geometries]  # shapely 1.8
+
+
+def point_xy(geometries) -> np.ndarray:
+    """The (x, y) of each point, as an (n, 2) float array; NaN for a null or empty point.
+
+    Parameters
+    ----------
+    geometries : sequence of shapely points or None
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape (n, 2), map units.
+    """
+    import shapely
+
+    if hasattr(shapely, "get_x"):  # shapely >= 2
+        arr = _object_array(geometries)
+        xy = np.full((len(arr), 2), np.nan)
+        ok = ~(shapely.is_missing(arr) | shapely.is_empty(arr))
+        xy[ok, 0], xy[ok, 1] = shapely.get_x(arr[ok]), shapely.get_y(arr[ok])
+        return xy
+    return np.array(
+        [(g.x, g.y) if g is not None and not g.is_empty else (np.nan, np.nan) for g in geometries], dtype=float
+    ).reshape(-1, 2)
 
 
 def _infer_type(kinds) -> str:
@@ -179,6 +223,16 @@ def _wkb(geometries, dims: int) -> list:
     return [None if g is None or g.is_empty else wkb.dumps(g, output_dimension=dims) for g in geometries]
 
 
+def _has_z(geoms, types) -> list:
+    """``has_z`` of each non-null, non-empty geometry (``types`` from :func:`geometry_type_names`)."""
+    import shapely
+
+    if hasattr(shapely, "get_type_id"):  # shapely >= 2
+        flags = shapely.has_z(_object_array(geoms)).tolist()
+        return [f for f, t in zip(flags, types) if t is not None]
+    return [g.has_z for g, t in zip(geoms, types) if t is not None]
+
+
 def encode_geometries(name: str, layer: Layer):
     """Geometry type name (with ``" Z"`` for a 3D layer) and the WKB of every row.
 
@@ -190,18 +244,18 @@ def encode_geometries(name: str, layer: Layer):
     if layer.geometries is None:
         return None, None
     geoms = list(layer.geometries)
-    types = _type_names(geoms)
+    types = geometry_type_names(geoms)
     gtype = (layer.geometry_type or _infer_type(set(types))).upper()
     if gtype not in GEOMETRY_TYPES:
         raise OutputError(f"geometry type {layer.geometry_type!r} of layer '{name}' is not one of {GEOMETRY_TYPES}")
     if gtype.startswith("MULTI") and gtype[5:] in {t.upper() for t in types if t}:
         geoms = [_promote(g, gtype) for g in geoms]
-        types = _type_names(geoms)
+        types = geometry_type_names(geoms)
     if gtype != "GEOMETRY":
         wrong = sorted({t for t in types if t is not None and t.upper() != gtype})
         if wrong:
             raise OutputError(f"layer '{name}' is declared {gtype} but holds a {wrong[0]}")
-    has_z = [g.has_z for g, t in zip(geoms, types) if t is not None]
+    has_z = _has_z(geoms, types)
     z = any(has_z)
     if z and not all(has_z):
         raise OutputError(f"layer '{name}' mixes 2D and 3D geometries; give every geometry a z or none")

@@ -31,6 +31,7 @@ import numpy as np
 
 from ..errors import OutputError
 from .atomic import atomic_path
+from .layer import geometry_type_names, point_xy
 
 __all__ = ["FORMULA_PREFIXES", "guard_text", "layer_to_csv", "write_csv", "write_layer_csv"]
 
@@ -151,12 +152,9 @@ def write_layer_csv(path, layer, *, geometry: str | None = "xy", digits: int | N
     if geoms is not None and geometry is not None:
         if geometry not in ("xy", "wkt"):
             raise OutputError(f"geometry={geometry!r}; expected 'xy', 'wkt' or None")
-        kinds = {g.geom_type for g in geoms if g is not None and not g.is_empty}
+        kinds = set(geometry_type_names(geoms)) - {None}
         if geometry == "xy" and kinds <= {"Point"}:
-            xy = np.array(
-                [(g.x, g.y) if g is not None and not g.is_empty else (np.nan, np.nan) for g in geoms],
-                dtype=float,
-            ).reshape(-1, 2)
+            xy = point_xy(geoms)
             columns["x"] = xy[:, 0]
             columns["y"] = xy[:, 1]
         else:

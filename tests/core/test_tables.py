@@ -146,3 +146,26 @@ def test_random_text_round_trips_through_guard(tmp_path, rng):
         else:
             assert cell == original
         assert not cell.startswith(("=", "+", "-", "@", "\t", "\r"))
+
+
+def test_geometry_helpers_match_each_geometrys_own_properties():
+    """The vectorised type names and point coordinates equal shapely's per-geometry attributes."""
+    from rockhead.core.formats.layer import geometry_type_names, point_xy
+    from shapely.geometry import LineString, MultiPoint, Point, Polygon
+
+    geoms = [
+        Point(1.25, -2.5),
+        None,
+        Point(),
+        LineString([(0, 0), (1, 1)]),
+        MultiPoint([(0, 0), (2, 1)]),
+        Polygon([(0, 0), (1, 0), (1, 1)]),
+        Point(3.0, 4.0, 5.0),
+    ]
+    expected = [None if g is None or g.is_empty else g.geom_type for g in geoms]
+    assert geometry_type_names(geoms) == expected
+    points = [g for g in geoms if g is None or g.geom_type == "Point"]
+    xy = point_xy(points)
+    reference = [(g.x, g.y) if g is not None and not g.is_empty else (np.nan, np.nan) for g in points]
+    np.testing.assert_array_equal(xy, np.array(reference))  # exact: the same doubles, NaN where no point
+    assert point_xy([]).shape == (0, 2)
