@@ -417,12 +417,30 @@ class RunFolder:
 
         Inputs and outputs are compared both as spelled and resolved (links followed).
         """
-        outs = {o for out in outputs for o in (out, _real(out))}
+        return self._inputs_within_paths({o for out in outputs for o in (out, _real(out))})
+
+    def _inputs_within_paths(self, outs) -> List[Tuple[str, Path]]:
+        """:meth:`_inputs_within` for outputs given with their resolved spellings already."""
         return [
             (role, path)
             for role, path in self.inputs.items()
             if any(_within(c, out) for c in self._input_spellings[role] for out in outs)
         ]
+
+    def _resolved(self, relpath: str) -> Path:
+        """``relpath`` in the output folder with every link resolved (as :func:`os.path.realpath`).
+
+        The folder itself was resolved when this run folder was made; only the
+        (at most two) parts of ``relpath`` are looked at, and a link among them,
+        or an unusual part, is resolved in full.
+        """
+        parts = str(relpath).replace(os.sep, "/").split("/")
+        path = self.target
+        for part in parts:
+            path = path / part
+            if part in ("", ".", "..") or os.path.islink(path):
+                return _real(self.target / relpath)
+        return path
 
     def _input_within(self, *outputs: Path) -> Optional[Tuple[str, Path]]:
         hits = self._inputs_within(*outputs)
@@ -443,7 +461,8 @@ class RunFolder:
         subfolder of an earlier run is seen.
         """
         spelled = self.requested / relpath
-        hit = self._input_within(spelled, self.target / relpath)
+        hits = self._inputs_within_paths({spelled, self.target / relpath, self._resolved(relpath)})
+        hit = hits[0] if hits else None
         if hit is not None:
             same = any(_real(hit[1]) == _real(o) for o in (spelled, self.target / relpath))
             raise self._refuse_input(spelled, hit, "would replace" if same else "would replace a folder holding")

@@ -117,14 +117,16 @@ def _points_3d(layer: Layer, z) -> Layer:
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 
-def _line_3d(geom, z_of_xy):
+def _parts_xy(geom) -> list:
+    """The (n, 2) vertex coordinates of each part of a line or multi-line."""
+    parts = list(geom.geoms) if hasattr(geom, "geoms") else [geom]
+    return [np.asarray(part.coords, float)[:, :2] for part in parts]
+
+
+def _line_3d(geom, parts_xyz):
     from shapely.geometry import LineString, MultiLineString
 
-    parts = list(geom.geoms) if hasattr(geom, "geoms") else [geom]
-    out = []
-    for part in parts:
-        xy = np.asarray(part.coords, float)[:, :2]
-        out.append(LineString(np.column_stack([xy, z_of_xy(xy)])))
+    out = [LineString(xyz) for xyz in parts_xyz]
     return out[0] if len(out) == 1 and not hasattr(geom, "geoms") else MultiLineString(out)
 
 
@@ -132,14 +134,25 @@ def _contours_3d(layer: Layer, result) -> Layer:
     kinds = np.asarray(layer.fields["kind"]).astype(str)
     elev = _float(layer.fields["elevation_m"])
     depth = _float(layer.fields["depth_m"])
+    # each line's parts' vertices (None for a null line)
+    rows = [None if g is None or g.is_empty else _parts_xy(g) for g in (layer.geometries or ())]
+    # the ground under every vertex of the depth contours, in one evaluation (it is pointwise)
+    depth_xy = [xy for parts, kind in zip(rows, kinds) if parts is not None and kind != "elevation" for xy in parts]
+    stacked = np.concatenate(depth_xy) if depth_xy else np.zeros((0, 2))
+    ground = np.asarray(result.ground(stacked[:, 0], stacked[:, 1]), float) if len(stacked) else np.zeros(0)
     geoms: list = []
-    for g, kind, e, d in zip(layer.geometries or (), kinds, elev, depth):
-        if g is None or g.is_empty:
+    start = 0
+    for g, parts, kind, e, d in zip(layer.geometries or (), rows, kinds, elev, depth):
+        if parts is None:
             geoms.append(None)
         elif kind == "elevation":
-            geoms.append(_line_3d(g, lambda xy, e=e: np.full(len(xy), e)))
+            geoms.append(_line_3d(g, [np.column_stack([xy, np.full(len(xy), e)]) for xy in parts]))
         else:  # depth = ground - reflector, so the reflector lies at ground - depth along the line
-            geoms.append(_line_3d(g, lambda xy, d=d: result.ground(xy[:, 0], xy[:, 1]) - d))
+            xyz = []
+            for xy in parts:
+                xyz.append(np.column_stack([xy, ground[start : start + len(xy)] - d]))
+                start += len(xy)
+            geoms.append(_line_3d(g, xyz))
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 

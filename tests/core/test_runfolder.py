@@ -10,6 +10,7 @@ import os
 import subprocess
 import sys
 import textwrap
+from pathlib import Path
 
 import pytest
 from rockhead.core.errors import OutputError
@@ -326,3 +327,16 @@ def test_each_written_file_is_flushed_once_by_the_commit(tmp_path, monkeypatch):
         tmp.write_text("1")
     assert flushed[0].startswith(".elsewhere.")  # outside a run folder its writer flushes it
     assert (out / "survey.gpkg").read_text() == "map 2" and (out / "report.html").read_text() == "report 1"
+
+
+def test_outputs_resolve_as_realpath_does(tmp_path):
+    """The path check resolves an output's parts as os.path.realpath does (links, '..'), more cheaply."""
+    out = tmp_path / "out"
+    _write_run(out, {"csv/a.csv": "1", "b.csv": "2"})
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    os.symlink(elsewhere, out / "linked")
+    os.symlink(tmp_path / "target.csv", out / "link.csv")
+    run = RunFolder(tmp_path / "out", {})
+    for rel in ("b.csv", "csv/a.csv", "csv/new.csv", "linked", "linked/x.csv", "link.csv", "../out/b.csv", "new.csv"):
+        assert run._resolved(rel) == Path(os.path.realpath(out / rel)), rel
