@@ -462,3 +462,18 @@ def test_retime_made_in_memory_without_a_time_is_a_project_error(tmp_path):
         edits.apply_pick_edits(picks, bad)
     good = edits.PickEdits((edits.PickEdit("L1", "1", "2", "1", "retime", new_time_ms=30.0),))
     assert edits.apply_pick_edits(picks, good).picks.time_s[0] == pytest.approx(0.030)  # ms to s
+
+
+@pytest.mark.parametrize(
+    "text",
+    ["a,b,c", " a , b ,c ", "a,,c,", "\ufeffline,shot", "1.5,-2,3e4", "a;b;c", "a\tb", ",,,", 'a,"b, c",d', '"x""y",z'],
+)
+def test_rows_split_as_the_csv_module_splits_them(text):
+    """Rows without quotes take a shortcut; every row gives the fields Python's csv module gives."""
+    import csv
+    from pathlib import Path
+
+    from rockhead.core.survey.csvfile import _split_row
+
+    reference = next(csv.reader([text], strict=True, skipinitialspace=True))
+    assert _split_row(Path("picks.csv"), 1, text) == [f.strip().strip("\ufeff").strip() for f in reference]
