@@ -43,9 +43,10 @@ hardly move (a kriging predictor does not depend on the sill when the data
 are precise); near the lines the picks keep the variance.
 
 Measured on the issue's test sites (smooth truths: a knoll on a dipping
-plane, a buried valley) the check finds the sill too large: ratios 0.59 and
-0.68 for the bedrock and the water table of the eikonal layered site, 0.42 for
-the buried valley, each with 13-19 degrees of freedom; for relief drawn from
+plane, a buried valley) the check finds the sill too large: ratios 0.64 and
+0.62 for the bedrock and the water table of the eikonal layered site, 0.42 for
+the buried valley, each with 14-18 degrees of freedom (0.59, 0.68 and 0.38-0.44
+before the prior search ended with its polish, :func:`~.evidence.polish`); for relief drawn from
 the prior class itself, 0.79, 0.58 and 1.30 (three draws, 21-26 degrees of
 freedom).
 

@@ -68,10 +68,18 @@ def test_bedrock_map_matches_the_eikonal_truth(runs, case):
     # is NOT met and not asserted. Measured (seismic only): 99.8 % with the priors most probable given
     # the picks (type-II maximum likelihood; 99.9 % with the variogram's), standardised rms error 0.74;
     # 99.3 % and 0.83 since the sills are checked by leaving out each line in turn (the check finds the
-    # bedrock sill's square 0.59 of the evidence's, 19 degrees of freedom). What is left is between the
-    # lines: within 5 m of a reflection point the standardised rms error is 0.9-1.0, 20-40 m away 0.75
-    # (errors 0.27 m rms where sigma says 0.38 m): this knoll is smoother than a typical relief
-    # of the prior the picks along the lines support, and no error exceeds 2.2 sigma
+    # bedrock sill's square 0.59 of the evidence's, 19 degrees of freedom); 99.5 % and 0.80 since the prior
+    # search ends with a deterministic polish (the same priors on both stacks). What is left is between the
+    # lines: within 5 m of a reflection point the standardised rms error is 0.94, 20-40 m away 0.71
+    # (errors 0.27 m rms where sigma says 0.40 m). No defect was found: sigma matches the dense
+    # posterior covariance to 1e-11 (velocity uncertainty counted once, in it), and the line check at
+    # its own held-out points 20-40 m from the other lines is calibrated (mean squared standardised
+    # error 1.04 after the rescaling, 0.73 at 40-80 m; the map's cells there 0.50 and 0.28). Under the
+    # map's own posterior (dense covariance, 10,000 draws)
+    # the bedrock's 2,061 cells make about 23 independent errors and coverage is 95.4 +- 3.4 %, above
+    # 98 % in 24 % of draws and at 99.5 % or more in 4 %: this smooth knoll is at the edge of that
+    # spread (conservative for it, as for a truth smoother than the prior class; with truths drawn from
+    # that class, test_prior_calibration, the cells are not over-covered), and no sigma is tuned to it
     inside = float(np.mean(np.abs(err) <= 2 * sigma))
     assert inside >= 0.90, (case, inside)
 
