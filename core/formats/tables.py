@@ -51,15 +51,10 @@ def guard_text(text: str) -> str:
 def _format_column(name: str, values: np.ndarray, digits: int | None) -> list:
     kind = values.dtype.kind
     if kind == "f":
-        out = []
-        for v in values.astype(float).tolist():
-            if math.isnan(v):
-                out.append("")
-            elif digits is None:
-                out.append(repr(v))
-            else:
-                out.append(f"{v:.{digits}g}")
-        return out
+        floats = values.astype(float).tolist()
+        if digits is None:
+            return ["" if math.isnan(v) else repr(v) for v in floats]
+        return ["" if math.isnan(v) else f"{v:.{digits}g}" for v in floats]
     if kind in "iu":
         return [str(int(v)) for v in values.tolist()]
     if kind == "b":
