@@ -69,15 +69,18 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 import numpy as np
+import scipy.linalg as sla
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..progress import check_cancel
+from .factor import NormalFactor
 from .nodes import node_weights
 from .prior import matern_precision
 from .system import borehole_matrix, jacobian, normal_matrix, parameters, prior_mean, small_prior_precision, trend_basis
 
 __all__ = [
+    "DENSE_MAX",
     "MAX_GROUPS",
     "MIN_DOF",
     "MIN_LINES",
@@ -93,6 +96,7 @@ MIN_DOF = 4.0  # fewer equivalent degrees of freedom: the ratio is too uncertain
 POINT_CELLS = 2  # one compared point per square of 2 x 2 node cells (closer points add little: they correlate)
 MAX_GROUPS = 8  # more lines are dealt into this many groups, each left out in turn (k-fold by lines)
 MIN_LINES = 3  # lines with picks of an interface needed: with two, one left out leaves a single line's relief
+DENSE_MAX = 6000  # unknowns up to which the check inverts A densely (p^2 numbers: 290 MB at most)
 
 
 @dataclass(frozen=True)
@@ -195,7 +199,12 @@ class _Lines:
             A = (A + self.BtB).tocsr()
             g = g + self.Bte
         try:
-            held = held_out(A, g, self.parts, self.readers) if self.readers else {}
+            held = {}
+            fac = NormalFactor.of(A, self.layout) if self.readers and A.shape[0] <= DENSE_MAX else None
+            if fac is not None and fac.banded:  # one dense inverse, every group by Woodbury
+                held = held_out(A, g, self.parts, self.readers, inverse=fac.dense_inverse())
+            elif self.readers:  # too many unknowns for a dense inverse: a sparse factor of every A_-L
+                held = held_out(A, g, self.parts, self.readers, factor=_factor)
         except (RuntimeError, np.linalg.LinAlgError):  # a singular system
             held = {}
         out = []
@@ -232,7 +241,7 @@ def pool(pairs) -> tuple:
     return float(np.mean(z)), int(z.size), float(z.size**2 / trr)
 
 
-def held_out(A, g, parts, readers, factor=None) -> dict:
+def held_out(A, g, parts, readers, factor=None, inverse=None) -> dict:
     """Posterior mean differences and their covariance when each group of data is left out.
 
     For the linear Gaussian problem with normal matrix ``A`` (:math:`J^T J` plus the
@@ -244,6 +253,15 @@ def held_out(A, g, parts, readers, factor=None) -> dict:
 
         e = W (A_{-L}^{-1} g_{-L} - A^{-1} g),\\qquad V = W (A_{-L}^{-1} - A^{-1}) W^T .
 
+    By default both come from :math:`\\Sigma = A^{-1}` alone (:func:`_downdated`):
+    :math:`J_L^T J_L` touches only the unknowns of the group's nodes and the few
+    shared ones (E, with :math:`M = E^T J_L^T J_L E`), so by the Woodbury identity
+    [Golub & Van Loan 2013, s. 2.1.4]
+    :math:`A_{-L}^{-1} = \\Sigma + \\Sigma E K E^T \\Sigma`,
+    :math:`K = (I - M C)^{-1} M`, :math:`C = E^T \\Sigma E`: one dense inverse for
+    every group, then systems of the group's size. With ``factor`` every
+    :math:`A_{-L}` is factored and solved instead.
+
     Parameters
     ----------
     A : sparse (p, p)
@@ -254,7 +272,11 @@ def held_out(A, g, parts, readers, factor=None) -> dict:
     readers : dict
         ``{(label, key): W}``, W sparse (m, p).
     factor : callable, optional
-        ``factor(M)``: an object whose ``solve(b)`` is :math:`M^{-1} b`; default a sparse LU.
+        ``factor(M)``: an object whose ``solve(b)`` is :math:`M^{-1} b`.
+    inverse : tuple, optional
+        ``(Sigma, position)``: :math:`A^{-1}` dense with unknown ``i`` at row and
+        column ``position[i]`` (:meth:`~.factor.NormalFactor.dense_inverse`);
+        default from a dense Cholesky factor of ``A``. Not used with ``factor``.
 
     Returns
     -------
@@ -266,7 +288,11 @@ def held_out(A, g, parts, readers, factor=None) -> dict:
     RuntimeError or numpy.linalg.LinAlgError
         When a system is singular (not positive definite).
     """
-    factor = factor or _factor
+    if factor is None:
+        if inverse is None:
+            dense = np.asarray(sp.csr_matrix(A).toarray(), float)
+            inverse = (sla.cho_solve(sla.cho_factor(dense, lower=True), np.eye(dense.shape[0])), None)
+        return _downdated(inverse, g, parts, readers)
     keys = list(readers)
     W_all = sp.vstack([readers[key] for key in keys]).tocsr()
     full = factor(A)
@@ -288,6 +314,50 @@ def held_out(A, g, parts, readers, factor=None) -> dict:
             m = W.shape[0]
             out[keys[i]] = (W @ shift, W @ diff[:, at : at + m])
             at += m
+    return out
+
+
+def _downdated(inverse, g, parts, readers) -> dict:
+    r""":func:`held_out` from :math:`\Sigma = A^{-1}` by the Woodbury identity (see there).
+
+    With E the unknowns group L touches, :math:`M = E^T J_L^T J_L E`,
+    :math:`b = E^T J_L^T r_L`, :math:`C = E^T \Sigma E`, :math:`x = \Sigma g` and
+    :math:`K = (I - M C)^{-1} M`:
+
+    .. math::
+
+        A_{-L}^{-1} - \Sigma = \Sigma E K E^T \Sigma,\qquad
+        A_{-L}^{-1} g_{-L} - \Sigma g = \Sigma E \left(K (E^T x - C b) - b\right),
+
+    so with :math:`G = W \Sigma E`: :math:`V = G K G^T` and
+    :math:`e = G (K (E^T x - C b) - b)`. The differences come out directly, not
+    as the difference of two solves.
+    """
+    Sigma, position = inverse
+    p = Sigma.shape[0]
+    pos = np.arange(p) if position is None else np.asarray(position)
+    g = np.asarray(g, float)
+    x = np.empty_like(g)
+    x[np.argsort(pos)] = Sigma @ g[np.argsort(pos)]  # A^-1 g in the original ordering
+    out = {}
+    for name in dict.fromkeys(label for label, _ in readers):
+        JtJ, Jtr = parts[name]
+        JtJ = sp.csr_matrix(JtJ)
+        Jtr = np.asarray(Jtr.toarray() if sp.issparse(Jtr) else Jtr, float)
+        touched = np.flatnonzero(np.diff(JtJ.indptr) > 0)
+        M = JtJ[touched][:, touched].toarray()
+        b = Jtr[touched]
+        ps = pos[touched]
+        C = Sigma[np.ix_(ps, ps)]
+        K = np.linalg.solve(np.eye(touched.size) - M @ C, M)
+        core = K @ (x[touched] - C @ b) - b
+        for (label, key), W in readers.items():
+            if label != name:
+                continue
+            W = sp.csr_matrix(W)
+            cols = np.unique(W.indices)
+            G = W[:, cols] @ Sigma[np.ix_(pos[cols], ps)]
+            out[label, key] = (G @ core, G @ K @ G.T)
     return out
 
 

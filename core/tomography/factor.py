@@ -38,7 +38,7 @@ import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
-from scipy.linalg.lapack import dtbtrs
+from scipy.linalg.lapack import dpotri, dtbtrs
 
 __all__ = ["BAND_FLOPS", "NormalFactor", "band_positions", "node_band_order"]
 
@@ -211,6 +211,59 @@ class NormalFactor:
         if damping:
             ab[0] += damping * ab[0]  # the diagonal
         return cls(("band", ab, order), A_us, A_ss)
+
+    @property
+    def banded(self) -> bool:
+        """True when the node block has the banded factor (not the sparse LU)."""
+        return self.cb is not None
+
+    def dense_inverse(self):
+        """:math:`A^{-1}` as a dense array in the factor's ordering, and where each unknown went.
+
+        The whole lower Cholesky factor of the permuted matrix is
+        :math:`L = [[C, 0], [W^T, L_S]]` (C the banded factor of the node block,
+        :math:`L_S` that of the Schur complement); LAPACK's ``potri`` turns it
+        into the inverse [Golub & Van Loan 2013, s. 4.2]. For the many entries
+        of :math:`A^{-1}` a leave-one-out check reads at once; p^2 numbers for
+        p unknowns (the caller keeps p small).
+
+        Returns
+        -------
+        inverse : array (p, p)
+            :math:`A^{-1}` with the nodes in the band ordering, then the other unknowns.
+        position : int array (p,)
+            Row of ``inverse`` of each unknown of the original ordering.
+
+        Raises
+        ------
+        numpy.linalg.LinAlgError
+            For a factor of the sparse LU kind (no band), or when LAPACK fails.
+        """
+        if self.cb is None:
+            raise np.linalg.LinAlgError("a dense inverse needs the banded factor")
+        n = self.n_nodes
+        n_small = self.W.shape[1]
+        p = n + n_small
+        L = np.zeros((p, p), order="F")
+        b = self.cb.shape[0] - 1
+        for d in range(b + 1):  # band storage: cb[d, j] = C[j + d, j]
+            j = np.arange(n - d)
+            L[j + d, j] = self.cb[d, : n - d]
+        if n_small:
+            L[n:, :n] = self.W.T
+            L[n:, n:] = np.tril(self.cs[0])
+        inv, info = dpotri(L, lower=1, overwrite_c=1)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"inverse from the Cholesky factor failed (LAPACK info {info})")
+        for i0 in range(0, p, 512):  # the upper triangle from the lower one, a block of rows at a time
+            i1 = min(i0 + 512, p)
+            block = inv[i0:i1, i0:i1]
+            block[...] = np.tril(block) + np.tril(block, -1).T
+            inv[i0:i1, i1:] = inv[i1:, i0:i1].T
+        position = np.empty(p, np.int64)
+        position[self.order] = np.arange(n)
+        position[n:] = np.arange(n, p)
+        return inv, position
 
     def others_solved(self):
         """:math:`A_{uu}^{-1} A_{us}` (n_nodes, n_small)."""

@@ -122,3 +122,32 @@ def test_not_positive_definite_is_reported():
     A[3, 3] = -50.0
     with pytest.raises(np.linalg.LinAlgError):
         NormalFactor.of(A.tocsr(), _Layout(spec, 1))
+
+
+@pytest.mark.parametrize(
+    ("K", "n_small", "shape"),
+    [(1, 0, (9, 6)), (2, 7, (9, 6)), (1, 5, (31, 20))],
+    ids=["nodes only", "two interfaces with trends and velocities", "more unknowns than a block of rows"],
+)
+def test_dense_inverse_matches_numpy(K, n_small, shape):
+    """A^-1 from the whole Cholesky factor by LAPACK potri (Golub & Van Loan 2013, s. 4.2): numpy's dense inverse."""
+    spec = GridSpec(0.0, 0.0, 5.0, shape[1], shape[0])
+    A = _normal_matrix(spec, K, n_small, seed=4)
+    f = NormalFactor.of(A, _Layout(spec, K))
+    assert f.banded
+    inverse, position = f.dense_inverse()
+    want = np.linalg.inv(A.toarray())
+    got = inverse[np.ix_(position, position)]
+    # up to 625 unknowns, condition number ~1e4: two factorisations agree to ~1e-12 of the largest entry
+    assert np.allclose(got, want, rtol=0.0, atol=1e-10 * np.abs(want).max())
+    assert np.array_equal(got, got.T)  # symmetric exactly: the upper triangle is copied from the lower
+
+
+def test_dense_inverse_needs_the_band(monkeypatch):
+    """The sparse LU kind has no whole triangular factor to invert: numpy's LinAlgError, for the caller to choose."""
+    spec = GridSpec(0.0, 0.0, 5.0, 5, 4)
+    monkeypatch.setattr(factor, "BAND_FLOPS", 0.0)
+    f = NormalFactor.of(_normal_matrix(spec, 1, 2, seed=6), _Layout(spec, 1))
+    assert not f.banded
+    with pytest.raises(np.linalg.LinAlgError):
+        f.dense_inverse()
