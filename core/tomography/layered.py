@@ -658,7 +658,8 @@ def estimate_layered(
                 break  # the first start already ended with every free gradient rising with depth
             trial = state.copy()
             trial.theta[:, 3] = np.where(layout.free[:, 3], g_start, 0.0)
-            trial = forward(layout, data, trial, start=state.paths.point_xyz[..., :2])
+            if not np.array_equal(trial.theta, state.theta):  # the same model keeps its traced paths
+                trial = forward(layout, data, trial, start=state.paths.point_xyz[..., :2])
             trial, h = gauss_newton(
                 layout, data, trial, label=f"joint estimate ({', '.join(stage)})", **(kw_rough if fixed is None else kw)
             )
@@ -673,8 +674,10 @@ def estimate_layered(
         stage = choice.candidates[choice.chosen]
         if stage != ("full",) * K:
             layout = layout_for(stage)
-            state.theta = np.where(layout.free, state.theta, 0.0)
-            state = forward(layout, data, state, start=state.paths.point_xyz[..., :2])
+            theta = np.where(layout.free, state.theta, 0.0)
+            if not np.array_equal(theta, state.theta):  # the same model keeps its traced paths
+                state.theta = theta
+                state = forward(layout, data, state, start=state.paths.point_xyz[..., :2])
         state, h = gauss_newton(layout, data, state, label="joint estimate (chosen velocity model)", **kw)
         hist_all.append(h)
     # honest pick errors: inflate by sqrt(reduced chi-square) when above 1, and refit

@@ -483,6 +483,15 @@ def leg_turns(A, B, theta, centre, samples: int = 9, tolerance_m: float = 1e-3):
     curved = G > 1e-9
     if not np.any(curved):
         return turns
+    # a quick sufficient test first: the arc's centre lies on the plane v = 0, so its radius is at least
+    # v / G at either end, and the tangent turns from the chord by at most phi, sin(phi) = L / (2 radius)
+    # <= L G / (2 max(vA, vB)); a chord steeper than phi (sin(beta) = |dz| / L) leaves every tangent
+    # going the chord's way in z, and z is monotonic: L^2 G < 2 max(vA, vB) |dz| (no turn; the rest below)
+    d = B - A
+    vmax = np.maximum(_velocity(theta, c, A), _velocity(theta, c, B))
+    curved &= ~((vmax > 0) & (_sq3(d) * G < 2.0 * vmax * np.abs(d[..., 2])))
+    if not np.any(curved):
+        return turns
     e2 = g[curved] / G[curved, None]  # along the gradient
     d = (B - A)[curved]
     e1 = d - np.sum(d * e2, axis=-1, keepdims=True) * e2

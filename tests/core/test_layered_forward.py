@@ -208,6 +208,50 @@ def test_leg_turns_matches_the_circle_of_a_vertical_gradient(gz):
     assert np.all(turns[clear_turn]) and not np.any(turns[clear_no])
 
 
+def test_leg_turns_matches_a_densely_sampled_arc_in_any_linear_field():
+    # in v = v0 + g.(x - c) the ray is a circle in the plane of B - A and g, centred where v = 0
+    # [Slotnick 1959; Cerveny 2001, s. 3.8]; sampled here at 1001 points: a turn is z beyond the ends'
+    # range by more than 2 cm in the middle 70 % of the arc (clear of the function's 1 mm tolerance and
+    # of its 9 samples' spacing, as in the test above), no turn z within it. Legs of many slopes, so that the quick test of steep chords (L^2 G <
+    # 2 max(vA, vB) |dz|, monotonic z) answers part of them and the sampled arcs the rest.
+    rng = np.random.default_rng(21)
+    n = 2000
+    A = np.column_stack([np.zeros(n), np.zeros(n), np.full(n, 100.0)])
+    az = rng.uniform(0.0, 2 * np.pi, n)
+    X = rng.uniform(1.0, 60.0, n)
+    B = np.column_stack([X * np.cos(az), X * np.sin(az), 100.0 - rng.uniform(0.2, 30.0, n)])
+    th = np.column_stack([rng.uniform(400.0, 1800.0, n), rng.normal(0.0, 3.0, (n, 2)), rng.uniform(-30.0, 15.0, n)])
+    c = np.array([0.0, 0.0, 90.0])
+    g = th[:, 1:]
+    G = np.linalg.norm(g, axis=1)
+    v = lambda P: th[:, 0] + np.sum(g * (P - c), axis=1)  # noqa: E731
+    e2 = g / G[:, None]
+    d = B - A
+    e1 = d - np.sum(d * e2, axis=1)[:, None] * e2
+    e1 /= np.linalg.norm(e1, axis=1)[:, None]
+    wA, wB, rB = v(A) / G, v(B) / G, np.sum(d * e1, axis=1)
+    xc = (rB**2 + wB**2 - wA**2) / (2 * rB)
+    radius = np.hypot(xc, wA)
+    ang = np.linspace(0.0, 1.0, 1001)[None, :]
+    a0, a1 = np.arctan2(wA, -xc)[:, None], np.arctan2(wB, rB - xc)[:, None]
+    t = a0 + (a1 - a0) * ang
+    z = A[:, 2:3] + (xc[:, None] + radius[:, None] * np.cos(t)) * e1[:, 2:3] + (
+        radius[:, None] * np.sin(t) - wA[:, None]
+    ) * e2[:, 2:3]
+    lo, hi = np.minimum(A[:, 2], B[:, 2]), np.maximum(A[:, 2], B[:, 2])
+    excess = np.maximum(lo - z.min(axis=1), z.max(axis=1) - hi)
+    # where along the arc the extreme lies: 9 samples see it clearly only away from the ends
+    at = np.where(lo - z.min(axis=1) > z.max(axis=1) - hi, z.argmin(axis=1), z.argmax(axis=1)) / 1000.0
+    physical = (v(A) > 0) & (v(B) > 0)
+    clear_turn = physical & (excess > 0.02) & (at > 0.15) & (at < 0.85)
+    clear_no = physical & (excess <= 0.0)
+    steep = physical & (np.sum(d * d, axis=1) * G < 2 * np.maximum(v(A), v(B)) * np.abs(d[:, 2]))
+    assert clear_turn.sum() > 100 and (clear_no & ~steep).sum() > 20 and steep.sum() > 100  # all kinds exercised
+    assert not np.any(steep & clear_turn)  # the quick test's premise: a steep chord's arc never turns
+    turns = velocity.leg_turns(A, B, th, c)
+    assert np.all(turns[clear_turn]) and not np.any(turns[clear_no])
+
+
 # --------------------------------------------------------------------------- paths: analytic cases
 
 
