@@ -212,8 +212,9 @@ def test_leg_turns_matches_a_densely_sampled_arc_in_any_linear_field():
     # in v = v0 + g.(x - c) the ray is a circle in the plane of B - A and g, centred where v = 0
     # [Slotnick 1959; Cerveny 2001, s. 3.8]; sampled here at 1001 points: a turn is z beyond the ends'
     # range by more than 2 cm in the middle 70 % of the arc (clear of the function's 1 mm tolerance and
-    # of its 9 samples' spacing, as in the test above), no turn z within it. Legs of many slopes, so that the quick test of steep chords (L^2 G <
-    # 2 max(vA, vB) |dz|, monotonic z) answers part of them and the sampled arcs the rest.
+    # of its 9 samples' spacing, as in the test above), no turn z within it. Legs of many slopes, so
+    # that the quick test of steep chords (L^2 G < 2 max(vA, vB) |dz|, monotonic z) answers part of
+    # them and the sampled arcs the rest.
     rng = np.random.default_rng(21)
     n = 2000
     A = np.column_stack([np.zeros(n), np.zeros(n), np.full(n, 100.0)])
