@@ -236,9 +236,11 @@ def test_leg_turns_matches_a_densely_sampled_arc_in_any_linear_field():
     ang = np.linspace(0.0, 1.0, 1001)[None, :]
     a0, a1 = np.arctan2(wA, -xc)[:, None], np.arctan2(wB, rB - xc)[:, None]
     t = a0 + (a1 - a0) * ang
-    z = A[:, 2:3] + (xc[:, None] + radius[:, None] * np.cos(t)) * e1[:, 2:3] + (
-        radius[:, None] * np.sin(t) - wA[:, None]
-    ) * e2[:, 2:3]
+    z = (
+        A[:, 2:3]
+        + (xc[:, None] + radius[:, None] * np.cos(t)) * e1[:, 2:3]
+        + (radius[:, None] * np.sin(t) - wA[:, None]) * e2[:, 2:3]
+    )
     lo, hi = np.minimum(A[:, 2], B[:, 2]), np.maximum(A[:, 2], B[:, 2])
     excess = np.maximum(lo - z.min(axis=1), z.max(axis=1) - hi)
     # where along the arc the extreme lies: 9 samples see it clearly only away from the ends
