@@ -50,6 +50,8 @@ References
     Seismology, 2nd ed., Cambridge University Press, ch. 4.
 [Golub & Van Loan 2013] Golub, G. H. & Van Loan, C. F. (2013). Matrix
     Computations, 4th ed. Johns Hopkins University Press.
+[Kelley 1995] Kelley, C. T. (1995). Iterative Methods for Linear and Nonlinear
+    Equations. SIAM, Philadelphia (the chord method).
 """
 
 from __future__ import annotations
@@ -327,8 +329,9 @@ def _block_tridiagonal(Hd, Ho, g, shift):
             inv.append((ia, ib, id_))
         return pd, inv
 
-    pd, _ = pivots(shift)
-    _, inv = pivots(0.0)
+    pd, inv = pivots(shift)
+    if np.any(np.asarray(shift) != 0.0):
+        _, inv = pivots(0.0)
     with np.errstate(invalid="ignore", over="ignore"):
         y = [(g[:, 0, 0], g[:, 0, 1])]
         for p in range(1, m):
@@ -351,70 +354,144 @@ def _block_tridiagonal(Hd, Ho, g, shift):
     return pd, x
 
 
+def _full_step(model, S, R, X, iface, layer):
+    """Newton step of paths from their exact Hessian (spectrum lifted to a floor where needed).
+
+    Returns ``(step (n, m, 2), newton (n,), g (n, 2m), t (n,), Hd, Ho)``: ``newton`` is True
+    where the Hessian was positive definite (the step is Newton's own); ``g`` the
+    gradient, ``t`` the path times, ``Hd`` and ``Ho`` the Hessian's blocks.
+    """
+    na, m, _ = X.shape
+    P, (_, zx, zy, zxx, zxy, zyy) = _points(model, X, iface, 2)
+    A, B, th, c = _legs(model, S, R, P, layer)
+    # the chain rule through P = (x, y, z(x, y)): with the slope s = (z_x, z_y),
+    # d/dX = d/dP_xy + s d/dP_z (the products J^T g and J^T H J of J = [[1, 0], [0, 1], s])
+    slope = np.stack([zx, zy], axis=-1)  # (na, m, 2)
+    fixed = np.zeros((na, 1, 2))  # the source and the receiver do not move
+    o = leg_times_on_surfaces(
+        A, B, th, c, np.concatenate([fixed, slope], axis=1), np.concatenate([slope, fixed], axis=1)
+    )
+    gP = o["gB"][:, :-1] + o["gA"][:, 1:]  # (na, m, 3)
+    g2 = gP[..., :2] + gP[..., 2:3] * slope
+    curv = np.stack([np.stack([zxx, zxy], -1), np.stack([zxy, zyy], -1)], -2)
+    Hd = o["HBB"][:, :-1] + o["HAA"][:, 1:] + gP[..., 2, None, None] * curv  # (na, m, 2, 2)
+    Ho = o["HAB"][:, 1:-1]  # (na, m - 1, 2, 2): point p with p + 1
+    D = B - A
+    L = np.sqrt(D[..., 0] * D[..., 0] + D[..., 1] * D[..., 1] + D[..., 2] * D[..., 2])
+    floor = 0.02 * np.mean(1.0 / (np.maximum(L, 1e-6) * np.sqrt(np.abs(o["va"] * o["vb"]))), axis=1)
+    gflat = g2.reshape(na, 2 * m)
+    if m == 1:  # 2 x 2: eigenvalues in closed form, shift the spectrum above the floor
+        hxx, hxy, hyy = Hd[:, 0, 0, 0], Hd[:, 0, 0, 1], Hd[:, 0, 1, 1]
+        half = 0.5 * (hxx + hyy)
+        lam_min = half - np.sqrt(np.maximum(0.25 * (hxx - hyy) ** 2 + hxy * hxy, 0.0))
+        shift = np.where(lam_min < 1e-3 * floor, floor - lam_min, 0.0)
+        newton = shift == 0.0
+        step = _step_2x2(hxx + shift, hxy, hyy + shift, gflat)
+    else:
+        # positive definite beyond the floor: the Newton step itself (quadratic convergence)
+        pd, x = _block_tridiagonal(Hd, Ho, g2, 1e-3 * floor)
+        step = -x
+        newton = pd
+        if (~pd).any():  # the others (far from a minimum): lift their spectrum to the floor
+            H = np.zeros((int(np.sum(~pd)), 2 * m, 2 * m))
+            for p in range(m):
+                H[:, 2 * p : 2 * p + 2, 2 * p : 2 * p + 2] = Hd[~pd, p]
+            for p in range(m - 1):
+                H[:, 2 * p : 2 * p + 2, 2 * p + 2 : 2 * p + 4] = Ho[~pd, p]
+                H[:, 2 * p + 2 : 2 * p + 4, 2 * p : 2 * p + 2] = np.swapaxes(Ho[~pd, p], -1, -2)
+            lam, V = np.linalg.eigh(H)
+            lam = np.maximum(lam, floor[~pd, None])
+            step[~pd] = -np.einsum("nij,nj->ni", V, np.einsum("nji,nj->ni", V, gflat[~pd]) / lam).reshape(-1, m, 2)
+    return step, newton, gflat, np.sum(o["t"], axis=1), Hd, Ho
+
+
+def _step_2x2(hxx, hxy, hyy, g):
+    """-H^-1 g of 2 x 2 Hessians [[hxx, hxy], [hxy, hyy]] (entries as arrays), as (n, 1, 2)."""
+    det = hxx * hyy - hxy * hxy
+    return -np.stack([(hyy * g[:, 0] - hxy * g[:, 1]) / det, (-hxy * g[:, 0] + hxx * g[:, 1]) / det], axis=-1)[
+        :, None, :
+    ]
+
+
+def _kept_step(model, S, R, X, iface, layer, Hd, Ho):
+    """Newton step of paths from a new gradient and the Hessian of an earlier point (positive definite).
+
+    Near the solution the Hessian changes little from one iteration to the next:
+    the step with the kept one is Newton's to first order in the distance moved
+    since (a chord method, converging linearly at a rate of about that distance
+    over the legs' length, 1e-3 to 1e-2 here, [Kelley 1995, ch. 5]),
+    at half the work: slopes without curvatures, leg gradients without
+    Hessians. Returns ``(step, g, t)`` as :func:`_full_step`, and the points and
+    :func:`~.velocity.leg_times` of the legs (all a path's results where it stops here).
+    """
+    na, m, _ = X.shape
+    P, (_, zx, zy) = _points(model, X, iface, 1)
+    A, B, th, c = _legs(model, S, R, P, layer)
+    o = leg_times(A, B, th, c, hessian=False)
+    slope = np.stack([zx, zy], axis=-1)
+    gP = o["gB"][:, :-1] + o["gA"][:, 1:]
+    g2 = gP[..., :2] + gP[..., 2:3] * slope
+    gflat = g2.reshape(na, 2 * m)
+    if m == 1:
+        step = _step_2x2(Hd[:, 0, 0, 0], Hd[:, 0, 0, 1], Hd[:, 0, 1, 1], gflat)
+    else:
+        _, x = _block_tridiagonal(Hd, Ho, g2, 0.0)
+        step = -x
+    return step, gflat, np.sum(o["t"], axis=1), (P, o)
+
+
 def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
-    """Damped Newton iterations on the path points' (x, y); returns (X, converged, iterations)."""
+    """Damped Newton iterations on the path points' (x, y); returns (X, converged, iterations, results).
+
+    A path whose last step was a full Newton step shorter than a tenth of the node
+    spacing takes its next step with the Hessian kept from its last evaluation
+    (:func:`_kept_step`); the others evaluate theirs (:func:`_full_step`). A kept
+    Hessian's step below ``tolerance_m`` is not taken: the path stops where it was
+    just evaluated (the time, stationary, changes by half the step's square times the
+    Hessian over such a step: 1e-11 s at most), and ``results`` = ``(here, P, legs)`` keeps that evaluation: ``here`` (n,)
+    marks those paths, P (n, m, 3) their points and ``legs`` the arrays of
+    :func:`~.velocity.leg_times` (valid where ``here``).
+    """
     n, m, _ = X.shape
     spec = model.spec
     max_step = spec.cell_size_m
     converged = np.zeros(n, bool)
     active = np.arange(n)
+    Hd_kept = np.zeros((n, m, 2, 2))
+    Ho_kept = np.zeros((n, max(m - 1, 0), 2, 2))
+    reuse = np.zeros(n, bool)
+    here = np.zeros(n, bool)
+    P_here = np.full((n, m, 3), np.nan)
+    legs_here: dict = {}
     it = 0
     for it in range(1, max_iterations + 1):
         if active.size == 0:
             it -= 1
             break
         Sa, Ra, Xa = S[active], R[active], X[active]
-        P, (_, zx, zy, zxx, zxy, zyy) = _points(model, Xa, iface, 2)
-        A, B, th, c = _legs(model, Sa, Ra, P, layer)
         na = len(active)
-        # the chain rule through P = (x, y, z(x, y)): with the slope s = (z_x, z_y),
-        # d/dX = d/dP_xy + s d/dP_z (the products J^T g and J^T H J of J = [[1, 0], [0, 1], s])
-        slope = np.stack([zx, zy], axis=-1)  # (na, m, 2)
-        fixed = np.zeros((na, 1, 2))  # the source and the receiver do not move
-        o = leg_times_on_surfaces(
-            A, B, th, c, np.concatenate([fixed, slope], axis=1), np.concatenate([slope, fixed], axis=1)
-        )
-        gP = o["gB"][:, :-1] + o["gA"][:, 1:]  # (na, m, 3)
-        g2 = gP[..., :2] + gP[..., 2:3] * slope
-        curv = np.stack([np.stack([zxx, zxy], -1), np.stack([zxy, zyy], -1)], -2)
-        Hd = o["HBB"][:, :-1] + o["HAA"][:, 1:] + gP[..., 2, None, None] * curv  # (na, m, 2, 2)
-        D = B - A
-        L = np.sqrt(D[..., 0] * D[..., 0] + D[..., 1] * D[..., 1] + D[..., 2] * D[..., 2])
-        floor = 0.02 * np.mean(1.0 / (np.maximum(L, 1e-6) * np.sqrt(np.abs(o["va"] * o["vb"]))), axis=1)
-        gflat = g2.reshape(na, 2 * m)
-        if m == 1:  # 2 x 2: eigenvalues in closed form, shift the spectrum above the floor
-            hxx, hxy, hyy = Hd[:, 0, 0, 0], Hd[:, 0, 0, 1], Hd[:, 0, 1, 1]
-            half = 0.5 * (hxx + hyy)
-            lam_min = half - np.sqrt(np.maximum(0.25 * (hxx - hyy) ** 2 + hxy * hxy, 0.0))
-            shift = np.where(lam_min < 1e-3 * floor, floor - lam_min, 0.0)
-            newton = shift == 0.0
-            hxx, hyy = hxx + shift, hyy + shift
-            det = hxx * hyy - hxy * hxy
-            step = -np.stack(
-                [(hyy * gflat[:, 0] - hxy * gflat[:, 1]) / det, (-hxy * gflat[:, 0] + hxx * gflat[:, 1]) / det], axis=-1
-            )[:, None, :]
-        else:
-            Ho = o["HAB"][:, 1:-1]  # (na, m - 1, 2, 2): point p with p + 1
-            # positive definite beyond the floor: the Newton step itself (quadratic convergence)
-            pd, x = _block_tridiagonal(Hd, Ho, g2, 1e-3 * floor)
-            step = -x.reshape(na, 2 * m)
-            newton = pd
-            if (~pd).any():  # the others (far from a minimum): lift their spectrum to the floor
-                H = np.zeros((int(np.sum(~pd)), 2 * m, 2 * m))
-                for p in range(m):
-                    H[:, 2 * p : 2 * p + 2, 2 * p : 2 * p + 2] = Hd[~pd, p]
-                for p in range(m - 1):
-                    H[:, 2 * p : 2 * p + 2, 2 * p + 2 : 2 * p + 4] = Ho[~pd, p]
-                    H[:, 2 * p + 2 : 2 * p + 4, 2 * p : 2 * p + 2] = np.swapaxes(Ho[~pd, p], -1, -2)
-                lam, V = np.linalg.eigh(H)
-                lam = np.maximum(lam, floor[~pd, None])
-                step[~pd] = -np.einsum("nij,nj->ni", V, np.einsum("nji,nj->ni", V, gflat[~pd]) / lam)
-            step = step.reshape(na, m, 2)
+        step = np.empty((na, m, 2))
+        newton = np.ones(na, bool)
+        gflat = np.empty((na, 2 * m))
+        t0 = np.empty(na)
+        again = reuse[active]
+        fresh = np.flatnonzero(~again)
+        if fresh.size:
+            step[fresh], newton[fresh], gflat[fresh], t0[fresh], Hd, Ho = _full_step(
+                model, Sa[fresh], Ra[fresh], Xa[fresh], iface, layer
+            )
+            Hd_kept[active[fresh]] = Hd
+            Ho_kept[active[fresh]] = Ho
+        kept = np.flatnonzero(again)
+        if kept.size:
+            ids = active[kept]
+            step[kept], gflat[kept], t0[kept], (P_kept, o_kept) = _kept_step(
+                model, Sa[kept], Ra[kept], Xa[kept], iface, layer, Hd_kept[ids], Ho_kept[ids]
+            )
         move = np.max(np.hypot(step[..., 0], step[..., 1]), axis=1)
         scale = np.minimum(1.0, max_step / np.maximum(move, 1e-300))
         step *= scale[:, None, None]
         slope = np.sum(gflat * step.reshape(na, 2 * m), axis=1)
-        t0 = np.sum(o["t"], axis=1)
         alpha = np.ones(na)
         # a step below a tenth of the node spacing from a positive-definite Hessian is a plain
         # Newton step near the solution: taken as it is (no line search needed)
@@ -433,9 +510,21 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
         # scaled, not backtracked) below ten times it: Newton converges quadratically, so the step it
         # would take next is of the order of the square of this one over the length of the path's
         # legs (well below 1e-5 m), and the time, stationary there, is exact to rounding; this saves
-        # the iteration that would only confirm it
+        # the iteration that would only confirm it (with a kept Hessian the next step is this one
+        # times the chord method's rate, below 1e-5 m too)
         full = newton & (alpha == 1.0) & (scale == 1.0)
         done = (alpha * move * scale < tolerance_m) | (full & (move < 10.0 * tolerance_m))
+        reuse[active] = full & (move < 0.1 * max_step)
+        if kept.size:  # a kept Hessian's step below the tolerance: stop where the path was evaluated
+            stay = move[kept] < tolerance_m
+            ids = active[kept[stay]]
+            X[ids] = Xa[kept[stay]]
+            here[ids] = True
+            P_here[ids] = P_kept[stay]
+            for key in ("t", "gA", "gB", "dtheta", "va", "vb"):
+                if key not in legs_here:
+                    legs_here[key] = np.zeros((n, *o_kept[key].shape[1:]))
+                legs_here[key][ids] = o_kept[key][stay]
         converged[active[done]] = True
         active = active[~done]
         if it >= 4 and it % 2 == 0 and active.size:
@@ -443,7 +532,7 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
             P, _ = _points(model, X[active], iface, 0)
             A, B, th, c = _legs(model, S[active], R[active], P, layer)
             active = active[~_turning(A, B, th, c)]
-    return X, converged, it
+    return X, converged, it, (here, P_here, legs_here)
 
 
 def trace_reflections(
@@ -515,11 +604,18 @@ def trace_reflections(
             X[ok] = st[ok]
         if not ok.all():
             X[~ok] = _flat_start(model, Sg[~ok], Rg[~ok], k)
-        X, conv, it = _newton(model, Sg, Rg, X, iface, layer, tolerance_m, max_iterations)
+        X, conv, it, (here, P, o) = _newton(model, Sg, Rg, X, iface, layer, tolerance_m, max_iterations)
         iters = max(iters, it)
-        P, _ = _points(model, X, iface, 0)
+        rest = np.flatnonzero(~here)  # the paths not evaluated where they stopped
+        if rest.size:
+            P[rest], _ = _points(model, X[rest], iface, 0)
+            A, B, th, c = _legs(model, Sg[rest], Rg[rest], P[rest], layer)
+            o_rest = leg_times(A, B, th, c, hessian=False)
+            for key, arr in o_rest.items():
+                if key not in o:
+                    o[key] = np.zeros((len(X), *arr.shape[1:]))
+                o[key][rest] = arr
         A, B, th, c = _legs(model, Sg, Rg, P, layer)
-        o = leg_times(A, B, th, c, hessian=False)
         time[sel] = np.sum(o["t"], axis=1)
         pts[sel, :m] = P
         surf[sel, :m] = iface
