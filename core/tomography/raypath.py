@@ -448,9 +448,9 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
     (:func:`_kept_step`); the others evaluate theirs (:func:`_full_step`). A kept
     Hessian's step below ``tolerance_m`` is not taken: the path stops where it was
     just evaluated (the time, stationary, changes by half the step's square times the
-    Hessian over such a step: 1e-11 s at most), and ``results`` = ``(here, P, legs)`` keeps that evaluation: ``here`` (n,)
-    marks those paths, P (n, m, 3) their points and ``legs`` the arrays of
-    :func:`~.velocity.leg_times` (valid where ``here``).
+    Hessian over such a step: 1e-11 s at most), and ``results`` = ``(here, P, legs)``
+    keeps that evaluation: ``here`` (n,) marks those paths, P (n, m, 3) their points
+    and ``legs`` the arrays of :func:`~.velocity.leg_times` (valid where ``here``).
     """
     n, m, _ = X.shape
     spec = model.spec

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 from rockhead.core.errors import InversionError
 from rockhead.core.grid import GridSpec
-from rockhead.core.tomography import nodes, velocity
+from rockhead.core.tomography import nodes, raypath, velocity
 from rockhead.core.tomography.raypath import LayeredModel, path_layout, trace_reflections
 from scipy.integrate import quad
 from scipy.optimize import brentq, minimize
@@ -444,6 +444,54 @@ def test_sensitivities_match_finite_differences():
             dn = trace_reflections(LayeredModel(SPEC, model.elevation_m, th - d, centre), S, R, k)
             fd = (up.time_s - dn.time_s) / (2 * steps[j])
             assert np.allclose(fd, p.dt_dtheta[:, layer, j], rtol=1e-5, atol=1e-12), (layer, j)
+
+
+def test_kept_hessian_steps_give_the_paths_of_full_newton_steps(monkeypatch):
+    """The chord steps with a kept Hessian, and stopping where a path was evaluated (Kelley 1995, ch. 5),
+    against the straightforward iteration: the exact Hessian at every step and a final evaluation, from
+    the same warm starts (a previous model's paths, as the joint estimate traces them)."""
+    X, Y = SPEC.coords()
+    rng = np.random.default_rng(4)
+    wt = 95.0 - 0.4 * np.sin(X / 25.0) * np.cos(Y / 30.0) + 0.01 * X
+    rock = 70.0 - 0.1 * X + 3.0 * np.exp(-((X - 10) ** 2 + (Y + 5) ** 2) / (2 * 20.0**2))
+    th = np.array([[620.0, 0.5, 0.9, -22.0], [1600.0, 0.3, -0.2, 0.0]])
+    centre = np.array([[0, 0, 97.5], [0, 0, 82.5]])
+    n = 400
+    mid = rng.uniform(-50.0, 50.0, (n, 2))
+    off = rng.uniform(3.0, 60.0, n)
+    az = rng.uniform(0.0, np.pi, n)
+    d = 0.5 * off[:, None] * np.column_stack([np.cos(az), np.sin(az)])
+    S = np.column_stack([mid - d, np.full(n, 100.0)])
+    R = np.column_stack([mid + d, np.full(n, 100.0)])
+    k = (rng.uniform(size=n) < 0.6).astype(int)
+    before = trace_reflections(LayeredModel(SPEC, np.stack([wt, rock]), th, centre), S, R, k)
+    # a Gauss-Newton step's change: smooth relief of ~0.3 m and velocities 0.5 % off
+    bump = 0.3 * np.cos(X / 40.0) * np.sin(Y / 35.0)
+    after = LayeredModel(SPEC, np.stack([wt + bump, rock - bump]), th * [[1.005], [0.995]], centre)
+    start = before.point_xyz[..., :2]
+    fast = trace_reflections(after, S, R, k, start_xy=start)
+
+    def full_only(model, S_, R_, X_, iface, layer, Hd, Ho):  # every step from the exact Hessian
+        step, _, g, t, _, _ = raypath._full_step(model, S_, R_, X_, iface, layer)
+        P, _ = raypath._points(model, X_, iface, 0)
+        A, B, th_, c = raypath._legs(model, S_, R_, P, layer)
+        return step, g, t, (P, velocity.leg_times(A, B, th_, c, hessian=False))
+
+    monkeypatch.setattr(raypath, "_kept_step", full_only)
+    slow = trace_reflections(after, S, R, k, start_xy=start, tolerance_m=1e-7)  # stops within 1e-7 m
+    # the same paths modelled (the others: diving water-table rays at long offsets, flagged by both)
+    assert np.array_equal(fast.status, slow.status) and fast.valid.mean() > 0.75
+    ok = fast.valid
+    # paths stop within the tolerance (1e-4 m) of stationary: the time, stationary there, within
+    # ~H dx^2 / 2 ~ 1e-12 s; the sensitivities move by dx over the legs' length (~1e-5 relative)
+    assert np.allclose(fast.time_s[ok], slow.time_s[ok], rtol=0.0, atol=1e-11)
+    assert np.allclose(fast.point_xyz[ok], slow.point_xyz[ok], rtol=0.0, atol=5e-4, equal_nan=True)
+    scale = np.nanmax(np.abs(slow.dt_dz_s_m[ok]))
+    assert np.allclose(fast.dt_dz_s_m[ok], slow.dt_dz_s_m[ok], rtol=0.0, atol=1e-4 * scale, equal_nan=True)
+    # each velocity parameter's sensitivities to 1e-5 of its largest (measured 6e-7; the small ones of the
+    # gradients change sign along a path, so their relative differences say nothing)
+    col = np.abs(slow.dt_dtheta[ok]).max(axis=0)
+    assert np.all(np.abs(fast.dt_dtheta[ok] - slow.dt_dtheta[ok]) <= 1e-5 * col + 1e-15)
 
 
 def test_diving_rays_and_points_off_the_grid_are_flagged():
