@@ -460,6 +460,7 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
     Hd_kept = np.zeros((n, m, 2, 2))
     Ho_kept = np.zeros((n, max(m - 1, 0), 2, 2))
     reuse = np.zeros(n, bool)
+    last_move = np.full(n, np.inf)
     here = np.zeros(n, bool)
     P_here = np.full((n, m, 3), np.nan)
     legs_here: dict = {}
@@ -489,6 +490,11 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
                 model, Sa[kept], Ra[kept], Xa[kept], iface, layer, Hd_kept[ids], Ho_kept[ids]
             )
         move = np.max(np.hypot(step[..., 0], step[..., 1]), axis=1)
+        # a kept Hessian's step that does not halve the last one is not taken: the path evaluates its
+        # own Hessian where it is, next (the chord method contracts only while the Hessian changes little)
+        slow = np.zeros(na, bool)
+        slow[kept] = (move[kept] >= tolerance_m) & (move[kept] > 0.5 * last_move[active[kept]])
+        step[slow] = 0.0
         scale = np.minimum(1.0, max_step / np.maximum(move, 1e-300))
         step *= scale[:, None, None]
         slope = np.sum(gflat * step.reshape(na, 2 * m), axis=1)
@@ -514,7 +520,9 @@ def _newton(model, S, R, X, iface, layer, tolerance_m, max_iterations):
         # times the chord method's rate, below 1e-5 m too)
         full = newton & (alpha == 1.0) & (scale == 1.0)
         done = (alpha * move * scale < tolerance_m) | (full & (move < 10.0 * tolerance_m))
-        reuse[active] = full & (move < 0.1 * max_step)
+        reuse[active] = full & (move < 0.1 * max_step) & ~slow
+        last_move[active] = move
+        done &= ~slow
         if kept.size:  # a kept Hessian's step below the tolerance: stop where the path was evaluated
             stay = move[kept] < tolerance_m
             ids = active[kept[stay]]
