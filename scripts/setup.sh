@@ -66,7 +66,7 @@ PY
 # (python3-gdal, also GDAL's validators used by the tests); ezdxf and pandas are test references.
 QGIS_DEBS=(qgis python3-qgis qgis-providers gdal-bin python3-gdal python3-venv python3-pip python3-numpy
            python3-scipy python3-pyproj python3-shapely python3-contourpy python3-matplotlib python3-geopandas
-           python3-ezdxf)
+           python3-ezdxf python3-pil)
 
 qgis_env() {  # environment for headless QGIS (shared QGIS_TESTING.md)
     export QT_QPA_PLATFORM=offscreen PROJ_DATA=/usr/share/proj
