@@ -249,7 +249,7 @@ class NormalFactor:
         for d in range(b + 1):  # band storage: cb[d, j] = C[j + d, j]
             j = np.arange(n - d)
             L[j + d, j] = self.cb[d, : n - d]
-        if n_small:
+        if n_small and self.cs is not None:  # the Schur complement has a factor whenever there are others
             L[n:, :n] = self.W.T
             L[n:, n:] = np.tril(self.cs[0])
         inv, info = dpotri(L, lower=1, overwrite_c=1)
