@@ -80,6 +80,7 @@ from .prior import matern_precision
 from .system import borehole_matrix, jacobian, normal_matrix, parameters, prior_mean, small_prior_precision, trend_basis
 
 __all__ = [
+    "DENSE_GROUPS",
     "DENSE_MAX",
     "MAX_GROUPS",
     "MIN_DOF",
@@ -97,6 +98,10 @@ POINT_CELLS = 2  # one compared point per square of 2 x 2 node cells (closer poi
 MAX_GROUPS = 8  # more lines are dealt into this many groups, each left out in turn (k-fold by lines)
 MIN_LINES = 3  # lines with picks of an interface needed: with two, one left out leaves a single line's relief
 DENSE_MAX = 6000  # unknowns up to which the check inverts A densely (p^2 numbers: 290 MB at most)
+# groups of lines from which one dense inverse pays: the sparse LUs cost one per group and the full A,
+# the dense inverse a fixed p^3 (measured on 2 cores at load 2-5: 8 groups of 16 lines, 3,710 unknowns,
+# 15 s of sparse LUs against 8 s; 4 lines, 2,749 unknowns, 1.0 s against 1.8 s); between the two
+DENSE_GROUPS = 6
 
 
 @dataclass(frozen=True)
@@ -190,6 +195,10 @@ class _Lines:
                 rows = np.flatnonzero(labels == name)
                 self.parts[name] = (normal_matrix(J[rows], layout.n_nodes), J[rows].T @ r[rows])
 
+    def _dense_pays(self, A) -> bool:
+        """True when one dense inverse is cheaper than a sparse LU of A and of every A_-L (see DENSE_GROUPS)."""
+        return A.shape[0] <= DENSE_MAX and len(self.parts) >= DENSE_GROUPS
+
     def checks(self, Q) -> tuple:
         """The check of every interface with the relief priors' precisions ``Q``."""
         P = sp.block_diag([*Q, self.P0], format="csr")
@@ -200,7 +209,7 @@ class _Lines:
             g = g + self.Bte
         try:
             held = {}
-            fac = NormalFactor.of(A, self.layout) if self.readers and A.shape[0] <= DENSE_MAX else None
+            fac = NormalFactor.of(A, self.layout) if self.readers and self._dense_pays(A) else None
             if fac is not None and fac.banded:  # one dense inverse, every group by Woodbury
                 held = held_out(A, g, self.parts, self.readers, inverse=fac.dense_inverse())
             elif self.readers:  # too many unknowns for a dense inverse: a sparse factor of every A_-L
