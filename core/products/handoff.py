@@ -304,8 +304,8 @@ def sheet_jobs(outputs, out_dir, result, sections=None) -> list:
     """Plan the printed sheets of ``result`` in ``outputs``: [(path, function making its bytes)].
 
     The A3 map sheet and the drawn section sheets (:func:`drawn_sections`);
-    the caller draws them, in this process or in a child
-    (:class:`~.background.BackgroundFiles`). Nothing is drawn here.
+    the caller draws them, in this process or in a worker
+    (:func:`~.outputs.output_workers`). Nothing is drawn here.
     """
     from functools import partial
 

@@ -404,14 +404,11 @@ def write_map(result, out_dir, progress) -> list:
     return written
 
 
-def _import_matplotlib(pdf: bool = False) -> None:
+def _import_matplotlib() -> None:
     import importlib
 
-    names = ["matplotlib.figure", "matplotlib.backends.backend_agg"]
-    if pdf:
-        names.append("matplotlib.backends.backend_pdf")
     try:
-        for name in names:
+        for name in ("matplotlib.figure", "matplotlib.backends.backend_agg", "matplotlib.backends.backend_pdf"):
             importlib.import_module(name)
     except ImportError:  # said where a figure is drawn (MissingDependencyError)
         pass
@@ -513,7 +510,7 @@ def output_workers(folder: RunFolder, parallel=None):
         return folder.planned[before:]
 
     def warm_drawing() -> None:
-        _import_matplotlib(pdf=True)
+        _import_matplotlib()
         from ..report import content, map_sheet, qc_figures, section_sheet  # noqa: F401 - ahead, while the run computes
         from ..report.figures import warm_up
 
@@ -541,40 +538,29 @@ def output_workers(folder: RunFolder, parallel=None):
 
 def _write_all(result, folder: RunFolder, progress, gather_figures, workers=None) -> list:
     from ..handoff.steps import sections_step
-    from .background import BackgroundFiles, fork_is_safe
 
     sections = sections_step(result)
     layers = result_layers(result, sections)
-    sheets = sheet_jobs(folder, folder.requested, result, sections)
-    if workers is not None and workers.hand_over((result, sections, gather_figures)):
-        # the workers write every file; what one did not finish is written here, in the order of a run alone
-        staged = workers.collect(MAPS)
-        if staged is None:
-            _stage_map_and_handoff(result, folder, progress, layers, sections)
-        else:
-            for rel in staged:
-                folder.path(rel)
-        progress.set_progress(25)
-        drawn = workers.collect(DOCUMENTS)
-        if drawn is None:
-            _draw_documents(result, folder, progress, gather_figures, layers, sections)
-        else:
-            for rel in drawn:
-                folder.path(rel)
-        progress.set_progress(75)
-        if workers.collect(SHEETS) is None:
-            for path, make in sheets:
-                path.write_bytes(make())
-                check_cancel(progress)
-    else:
-        parallel = fork_is_safe()
-        if parallel:  # matplotlib imported once, for both processes
-            _import_matplotlib()
-        # the printed sheets are drawn in a child process, where there is a core for it, while this one writes the rest
-        with BackgroundFiles(sheets, parallel=parallel, close_in_child=folder.lock_descriptors()):
-            _stage_map_and_handoff(result, folder, progress, layers, sections)
-            progress.set_progress(25)
-            _draw_documents(result, folder, progress, gather_figures, layers, sections)
+    handed = workers is not None and workers.hand_over((result, sections, gather_figures))
+
+    def done_by_worker(index: int) -> bool:
+        """True when worker ``index`` wrote its files (now planned here); else this process writes them."""
+        rels = workers.collect(index) if handed else None
+        for rel in rels or ():
+            folder.path(rel)
+        return rels is not None
+
+    # what no worker wrote is written here, in the order of a run alone
+    if not done_by_worker(MAPS):
+        _stage_map_and_handoff(result, folder, progress, layers, sections)
+    progress.set_progress(25)
+    if not done_by_worker(DOCUMENTS):
+        _draw_documents(result, folder, progress, gather_figures, layers, sections)
+    progress.set_progress(75)
+    if not done_by_worker(SHEETS):
+        for path, make in sheet_jobs(folder, folder.requested, result, sections):
+            path.write_bytes(make())
+            check_cancel(progress)
     progress.set_progress(90)
     written = folder.commit()
     progress.set_progress(100)

@@ -1,116 +1,18 @@
-"""Files drawn in a forked child process: the same bytes as drawn here, and any failure is the parent's own."""
+"""Workers forked before the computation: they write what the run would, and any failure leaves the work to the run."""
 
 from __future__ import annotations
 
 import os
 
 import pytest
-from rockhead.core.products.background import BackgroundFiles, fork_is_safe
+from rockhead.core.products.background import fork_is_safe
 
 needs_fork = pytest.mark.skipif(not hasattr(os, "fork"), reason="a child process needs fork (POSIX)")
-
-
-@needs_fork
-def test_child_writes_the_files_while_the_parent_works(tmp_path):
-    jobs = [(tmp_path / "pid.txt", lambda: str(os.getpid()).encode()), (tmp_path / "b.bin", lambda: bytes(range(256)))]
-    with BackgroundFiles(jobs, parallel=True) as files:
-        assert files.in_child  # forked, not drawn here
-        (tmp_path / "parent.txt").write_text("meanwhile")
-    assert int((tmp_path / "pid.txt").read_text()) != os.getpid()  # written by another process
-    assert (tmp_path / "b.bin").read_bytes() == bytes(range(256))
-
-
-def test_without_a_child_the_files_are_drawn_here(tmp_path):
-    with BackgroundFiles([(tmp_path / "pid.txt", lambda: str(os.getpid()).encode())], parallel=False) as files:
-        assert not files.in_child
-    assert int((tmp_path / "pid.txt").read_text()) == os.getpid()
-
-
-@needs_fork
-def test_a_failing_child_is_drawn_again_here_and_its_error_raised(tmp_path):
-    """The parent redraws what the child could not write, so the error is raised where it can be handled."""
-    calls = []
-
-    def make():
-        calls.append(os.getpid())
-        raise ValueError("no such page")
-
-    with pytest.raises(ValueError, match="no such page"):
-        with BackgroundFiles([(tmp_path / "a.pdf", make)], parallel=True):
-            pass
-    assert calls == [os.getpid()]  # the child's call was in its own memory: here only the parent's retry
-
-
-@needs_fork
-def test_an_error_in_the_parent_stops_the_child(tmp_path):
-    import time
-
-    def slow():
-        time.sleep(30)
-        return b"late"
-
-    start = time.perf_counter()
-    with pytest.raises(RuntimeError, match="parent failed"):
-        with BackgroundFiles([(tmp_path / "late.bin", slow)], parallel=True):
-            raise RuntimeError("parent failed")
-    assert time.perf_counter() - start < 10  # killed, not waited for (the child would take 30 s)
-    assert not (tmp_path / "late.bin").exists()
 
 
 def test_no_child_when_asked_not_to(monkeypatch):
     monkeypatch.setenv("ROCKHEAD_NO_FORK", "1")
     assert not fork_is_safe()
-
-
-@needs_fork
-@pytest.mark.skipif(not os.path.exists("/proc/self"), reason="the parent-death signal is Linux's")
-@pytest.mark.slow  # a child process killed and waited for
-def test_the_child_of_a_killed_run_writes_nothing(tmp_path):
-    """A run killed with SIGKILL leaves no child writing into its staging folder (which the next run removes)."""
-    import signal
-    import time
-
-    target = tmp_path / "late.bin"
-
-    def slow():
-        time.sleep(1.0)
-        return b"late"
-
-    run = os.fork()
-    if run == 0:  # the run: starts its child, then is killed
-        try:
-            BackgroundFiles([(target, slow)], parallel=True)
-            os.kill(os.getpid(), signal.SIGKILL)
-        finally:
-            os._exit(3)
-    _, status = os.waitpid(run, 0)
-    assert os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL
-    time.sleep(2.0)  # longer than the child would take
-    assert not target.exists()
-
-
-@needs_fork
-def test_the_child_lets_go_of_the_run_folders_lock(tmp_path):
-    """The folder's lock (flock) is shared with a forked child: the child closes it, so it dies with the run."""
-    from rockhead.core.formats.runfolder import RunFolder
-
-    with RunFolder(tmp_path / "out", {}) as folder:
-        (fd,) = folder.lock_descriptors()
-
-        def lock_in_child():
-            try:
-                os.fstat(fd)
-            except OSError:
-                return b"closed"
-            return b"open"
-
-        target = folder.path("state.txt")
-        with BackgroundFiles([(target, lock_in_child)], parallel=True, close_in_child=folder.lock_descriptors()):
-            pass
-        assert target.read_bytes() == b"closed"
-        os.fstat(fd)  # still open here: the run keeps its lock
-        folder.commit()
-    assert folder.lock_descriptors() == []
 
 
 # ------------------------------------------------------------------ workers forked before the computation
