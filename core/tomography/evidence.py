@@ -60,7 +60,7 @@ from dataclasses import replace
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
-from scipy.optimize import minimize, minimize_scalar
+from scipy.optimize import minimize
 
 from ..progress import check_cancel
 from .factor import BAND_FLOPS, NormalFactor, band_positions, node_band_order
@@ -202,21 +202,23 @@ STRONG = 3.0  # log evidence (2 ln B > 6: strong evidence, Kass & Raftery 1995) 
 # the windows the Brent searches start in, the same order
 POLISH_TOLERANCE = (0.03, 0.05, 0.05, math.radians(0.1))
 POLISH_WINDOW = (0.3, 0.3, 0.3, math.radians(5.0))
-POLISH_SWEEPS = 3  # coordinate sweeps at most
-POLISH_GAIN = 0.05  # a sweep raising the log evidence less than this ends the polish
+POLISH_STEPS = 8  # Newton steps at most
 
 
-def polish(f, y, bounds, tolerance=POLISH_TOLERANCE, window=POLISH_WINDOW, sweeps=POLISH_SWEEPS, min_gain=POLISH_GAIN):
-    """Maximise ``f`` one coordinate at a time from ``y`` by bounded Brent searches (see the module notes).
+def polish(f, y, bounds, tolerance=POLISH_TOLERANCE, window=POLISH_WINDOW, steps=POLISH_STEPS):
+    """Maximise ``f`` from ``y`` by Newton steps on a quadratic fitted about the point (see the module notes).
 
-    Each free coordinate i (``bounds[i]`` a pair; None: held) is searched in
-    ``[y_i - window_i, y_i + window_i]`` within its bounds to ``tolerance[i]``
-    [Brent 1973, ch. 5]; a result within two tolerances of a bound is tried on the bound (a
-    Brent search never evaluates its ends), and a coordinate on a bound is searched only when a
-    probe three tolerances inside it is more probable. A change is kept only when it raises ``f``. After
-    each sweep a Brent search along the sweep's whole move follows a ridge (Powell's new direction
-    [Powell 1964]). Sweeps repeat until one moves no coordinate by more than its tolerance or raises
-    ``f`` by less than ``min_gain``, at most ``sweeps`` times.
+    Each step fits a quadratic to ``f`` at ``y``, two tolerances either side of it
+    along every free coordinate and at one point of each pair's diagonal (central
+    differences: gradient and Hessian [Nocedal & Wright 2006, s. 8.1]; one-sided on a
+    bound), and moves to its vertex, the step shortened to ``window`` in every coordinate
+    and kept within the bounds; where the fit is not concave, to the most probable point
+    probed. A free coordinate (``bounds[i]`` a pair; None: held) within a tolerance of a
+    bound is put on it when no less probable and held there when the probe inside it is no
+    more probable. A change is kept only when it raises ``f``. Steps repeat until the vertex
+    is less than a tolerance from the point in every coordinate (that vertex is then tried),
+    at most ``steps`` times. A ridge along which ``f`` hardly changes is followed across the
+    coordinates in one step, not crawled one coordinate at a time.
     ``bounds`` may be a callable ``bounds(y)`` (bounds that depend on the other coordinates).
 
     Returns ``(f_best, y_best)``.
@@ -226,67 +228,91 @@ def polish(f, y, bounds, tolerance=POLISH_TOLERANCE, window=POLISH_WINDOW, sweep
     """
     y = np.array(y, float)
     best = float(f(y))
-    for _ in range(sweeps):
-        moved = False
-        start, before = y.copy(), best
-        for i in range(y.size):
-            b = bounds(y)[i] if callable(bounds) else bounds[i]
-            if b is None:
+    tol = np.asarray(tolerance, float)[: y.size]
+    win = np.asarray(window, float)[: y.size]
+    for _ in range(steps):
+        b = bounds(y) if callable(bounds) else bounds
+        side = np.ones(y.size)  # the direction of each coordinate's second probe (inward on a bound)
+        active = []
+        for i, bi in enumerate(b):
+            if bi is None or bi[1] - bi[0] <= 4.0 * tol[i]:
                 continue
-            lo_i, hi_i = max(b[0], y[i] - window[i]), min(b[1], y[i] + window[i])
-            if hi_i - lo_i <= 2.0 * tolerance[i]:
-                continue
-
-            def g(v, i=i, y=y):
-                z = y.copy()
-                z[i] = v
-                return -float(f(z))
-
-            # on a bound (within a tolerance): onto it when no less probable, then one probe inside it,
-            # and the search only when that is more probable
-            at = [edge for edge in (b[0], b[1]) if abs(y[i] - edge) <= tolerance[i]]
-            if at:
-                if y[i] != at[0]:
-                    on = -g(at[0])
+            edge = [e for e in bi if abs(y[i] - e) <= tol[i]]
+            if edge:  # on a bound: onto it when no less probable, then one probe inside it
+                if y[i] != edge[0]:
+                    z = y.copy()
+                    z[i] = edge[0]
+                    on = float(f(z))
                     if on >= best:
-                        y[i], best = at[0], on
-                if -g(at[0] + 3.0 * tolerance[i] * (1.0 if at[0] == b[0] else -1.0)) <= best:
+                        y, best = z, on
+                side[i] = 1.0 if edge[0] == bi[0] else -1.0
+                z = y.copy()
+                z[i] += 2.0 * side[i] * tol[i]
+                if float(f(z)) <= best:
                     continue
-            res = minimize_scalar(g, bounds=(lo_i, hi_i), method="bounded", options={"xatol": tolerance[i]})
-            v, val = float(res.x), -float(res.fun)
-            for edge in (b[0], b[1]):
-                if abs(v - edge) <= 2.0 * tolerance[i] and edge != v:
-                    e_val = -g(edge)
-                    if e_val >= val:
-                        v, val = float(edge), e_val
-            if val > best:
-                moved |= abs(v - y[i]) > tolerance[i]
-                y[i], best = v, val
-        if not moved or best - before < min_gain:
+            active.append(i)
+        if not active:
             break
-        # along a ridge one coordinate at a time crawls: a line search along the sweep's whole move
-        # (the new direction of Powell's method [Powell 1964]) follows it, up to three times as far
-        best, y = _line_search(f, y, y - start, bounds, tolerance, best)
-    return best, y
+        h = 2.0 * tol
+        probes = {}
 
+        def probe(d, y=y, probes=probes):
+            key = tuple(np.round(d, 6))
+            if key not in probes:
+                probes[key] = (float(f(y + d * h)), y + d * h)
+            return probes[key][0]
 
-def _line_search(f, y, step, bounds, tolerance, best):
-    """Brent search of ``f`` along ``y + t step``, t in (0, 3] within the bounds; the point when nothing is better."""
-    b = bounds(y) if callable(bounds) else bounds
-    t_max = 3.0
-    for i, bi in enumerate(b):
-        if bi is None or step[i] == 0.0:
-            continue
-        edge = bi[1] if step[i] > 0 else bi[0]
-        t_max = min(t_max, (edge - y[i]) / step[i])
-    size = float(np.max(np.abs(step) / np.asarray(tolerance)[: step.size]))  # the move in tolerances
-    if t_max * size <= 2.0:
-        return best, y
-    res = minimize_scalar(
-        lambda t: -float(f(y + t * step)), bounds=(0.0, t_max), method="bounded", options={"xatol": 1.0 / size}
-    )
-    if -float(res.fun) > best:
-        return -float(res.fun), y + float(res.x) * step
+        n = len(active)
+        grad, hess = np.zeros(n), np.zeros((n, n))
+        for a, i in enumerate(active):
+            e = np.zeros(y.size)
+            e[i] = 1.0
+            if side[i] > 0 and y[i] - h[i] >= b[i][0]:  # central differences
+                fp, fm = probe(e), probe(-e)
+                grad[a], hess[a, a] = (fp - fm) / (2.0 * h[i]), (fp - 2.0 * best + fm) / h[i] ** 2
+            else:  # one-sided (on or near a bound): y, y + s h, y + 2 s h
+                s = side[i] if side[i] < 0 or y[i] + 2.0 * h[i] <= b[i][1] else -1.0
+                f1, f2 = probe(s * e), probe(2.0 * s * e)
+                grad[a] = s * (-3.0 * best + 4.0 * f1 - f2) / (2.0 * h[i])
+                hess[a, a] = (best - 2.0 * f1 + f2) / h[i] ** 2
+        for a, i in enumerate(active):
+            for c in range(a):
+                j = active[c]
+                e = np.zeros(y.size)
+                e[i], e[j] = side[i], side[j]
+                fi, fj = probe(e * (np.arange(y.size) == i)), probe(e * (np.arange(y.size) == j))
+                hess[a, c] = hess[c, a] = side[i] * side[j] * (probe(e) - fi - fj + best) / (h[i] * h[j])
+        step = np.zeros(y.size)
+        try:
+            concave = bool(np.all(np.linalg.eigvalsh(hess) < 0.0))
+        except np.linalg.LinAlgError:
+            concave = False
+        if concave:
+            step[active] = -np.linalg.solve(hess, grad)
+        else:  # one coordinate at a time: to its own vertex, or as far as the window lets uphill
+            d = np.diag(hess)
+            step[active] = np.where(d < 0.0, -grad / np.where(d < 0.0, d, -1.0), np.sign(grad) * win[active])
+        small = concave and bool(np.all(np.abs(step) <= tol))
+        step *= min(1.0, float(np.min(win / np.maximum(np.abs(step), 1e-300))))
+        for scale in (1.0, 0.5):  # the step, then half of it when the step is less probable than the point
+            z = y + scale * step
+            for i in active:  # within the bounds; near one, on it
+                z[i] = min(max(z[i], b[i][0]), b[i][1])
+                for e in b[i]:
+                    if abs(z[i] - e) <= tol[i]:
+                        z[i] = e
+            if not np.any(np.abs(z - y) > 0.25 * tol):
+                break
+            probes[scale] = (float(f(z)), z)
+            if probes[scale][0] > best or small:
+                break
+        val, z = max(probes.values(), key=lambda p: p[0])
+        if val <= best:
+            break
+        moved = bool(np.any(np.abs(z - y) > tol))
+        y, best = z, val
+        if small or not moved:
+            break
     return best, y
 
 
@@ -304,6 +330,16 @@ def _prior_of(x, base: MaternPrior, nu: int, lo, hi, min_minor_m: float) -> Mate
     ratio = math.exp(lq)
     az = (math.degrees(0.5 * math.atan2(x[3], x[2])) % 180.0) if lq > 1e-9 else 0.0
     return MaternPrior(float(np.exp(ls)), float(np.exp(lr)), base.nugget_m2, "", nu, ratio, az)
+
+
+def _key(p: MaternPrior):
+    """A prior's hyperparameters rounded far below any tolerance of the search (1e-9 in their logarithms, 1e-7 deg).
+
+    Points of the searches that map onto the same prior (clipped to a bound, or the same point
+    reached again by another search) are evaluated once.
+    """
+    az = round(p.azimuth_deg, 7) if not p.isotropic else 0.0
+    return (p.nu, round(math.log(p.sigma_m), 9), round(math.log(p.range_m), 9), round(math.log(p.ratio), 9), az)
 
 
 def _polished(value, x, nu, lo, hi, min_minor_m, val):
@@ -378,11 +414,18 @@ def tune_priors(layout, data, state, priors, sigma_scale=1.0, extent_m=None, pro
         # a 360 m square, none of them over it, was 3 m off where sigma said 0.02 m)
         lo_k = np.array([max(lo[0], 0.5 * math.log(max(cur.nugget_m2, 1e-6))), lo[1]])
 
-        def value(x, nu, k=k, cur=cur, lo_k=lo_k):
-            trial = list(current)
-            trial[k] = _prior_of(x, cur, nu, lo_k, hi, 2.0 * h)
-            v = lin.log_evidence(trial)
-            return v if np.isfinite(v) else -1e300
+        seen: dict = {}
+
+        def value(x, nu, k=k, cur=cur, lo_k=lo_k, seen=seen):
+            p = _prior_of(x, cur, nu, lo_k, hi, 2.0 * h)
+            key = _key(p)
+            v = seen.get(key)
+            if v is None:
+                trial = list(current)
+                trial[k] = p
+                v = lin.log_evidence(trial)
+                v = seen[key] = v if np.isfinite(v) else -1e300
+            return v
 
         def search(x_start, nu, evaluations, free=4):
             tail = np.asarray(x_start[free:], float)
