@@ -258,7 +258,7 @@ def polish(f, y, bounds, tolerance=POLISH_TOLERANCE, window=POLISH_WINDOW, steps
         if not active:
             break
         h = 2.0 * tol
-        probes = {}
+        probes: dict = {}
 
         def probe(d, y=y, h=h, probes=probes):
             key = tuple(np.round(d, 6))
