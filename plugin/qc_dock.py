@@ -506,6 +506,8 @@ class QcDock(QDockWidget):
 
     def _error(self, message: str) -> None:
         self.last_error = message
+        if self.plot is not None:  # an edit's figure waits for its remap: shown as it stands
+            self.plot.draw_idle()
         self.status_label.setText(tr("Error: {message}").format(message=message))
         if self.iface is not None:
             from qgis.core import Qgis
@@ -582,8 +584,8 @@ class QcDock(QDockWidget):
             self.show_gather(index)
 
     # -- display ------------------------------------------------------------------------------
-    def show_gather(self, g) -> None:
-        """Fill the table, the figure and the parameters for gather ``g``."""
+    def show_gather(self, g, repaint: bool = True) -> None:
+        """Fill the table, the figure and the parameters for gather ``g`` (``repaint=False``: the canvas not yet)."""
         qc = self.qc
         self.current = int(g)
         if self.combo.currentIndex() != self.current:
@@ -629,7 +631,8 @@ class QcDock(QDockWidget):
             self.plot, self.gather_figure = _plot_canvas(self.plot_box)
             self.plot_box.layout().addWidget(self.plot)
         qc.draw_figure(self.current, self.gather_figure)
-        self.plot.draw_idle()  # drawn once, when Qt next paints (rapid changes of gather coalesce)
+        if repaint:
+            self.plot.draw_idle()  # drawn once, when Qt next paints (rapid changes of gather coalesce)
         self.params_label.setText(self._parameters_html(qc.parameters(self.current)))
 
     @staticmethod
@@ -724,7 +727,9 @@ class QcDock(QDockWidget):
         self.qc.set_edits(edits)
         self._edit_time = time.perf_counter()
         if self.current is not None:
-            self.show_gather(self.current)
+            # the table at once; the figure is painted when the remap is done, with the refit (painting it
+            # now, about 0.6 s on the main thread, would slow the remap's thread by as much)
+            self.show_gather(self.current, repaint=False)
         self.status_label.setText(tr("{n} pick edits; updating the map…").format(n=len(edits)))
         self.schedule_remap()
 

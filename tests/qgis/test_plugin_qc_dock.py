@@ -145,8 +145,9 @@ def test_edit_undo_redo_refit_and_remap(iface, site):
     assert feat["picks_excluded"] == 3 and feat["velocity_m_s"] == pytest.approx(after["velocity_m_s"], rel=1e-12)
     assert not layer.isEditable() and not layer.isModified()
     assert dock.last_remap_seconds is not None
-    # the panel shows the new state
+    # the panel shows the new state, in the table and in the figure
     assert dock.table.item(n - 1, 0).checkState() == 0 and "excluded" in dock.table.item(n - 1, 5).text()
+    assert dock.gather_figure.panel_data("tx", "excluded")[0].size == 3
 
     # undo one: two edits left in the file, two picks excluded in the products
     dock.undo_stack.undo()
