@@ -182,8 +182,9 @@ def point_xy(geometries) -> np.ndarray:
         ok = ~(shapely.is_missing(arr) | shapely.is_empty(arr))
         xy[ok, 0], xy[ok, 1] = shapely.get_x(arr[ok]), shapely.get_y(arr[ok])
         return xy
+    # shapely 1.8: one coordinate lookup per point (``g.x`` and ``g.y`` would make two)
     return np.array(
-        [(g.x, g.y) if g is not None and not g.is_empty else (np.nan, np.nan) for g in geometries], dtype=float
+        [g.coords[0][:2] if g is not None and not g.is_empty else (np.nan, np.nan) for g in geometries], dtype=float
     ).reshape(-1, 2)
 
 

@@ -35,7 +35,7 @@ from typing import Dict, Tuple
 
 import numpy as np
 
-from ..formats.layer import Layer
+from ..formats.layer import Layer, point_xy
 from ..formats.qgis_gpkg import layer_metadata_xml
 from ..grid import bilinear
 from .provenance import CAUTION, VERTICAL_NOT_STATED, Provenance
@@ -95,7 +95,7 @@ def _point_z(name: str, layer: Layer, result):
     if name == "cross_validation":
         return _float(f["estimate_m"]) + _float(f["residual_m"])
     if name in ("dip_measurements", "surface_dips"):
-        xy = np.array([(g.x, g.y) if g is not None else (np.nan, np.nan) for g in layer.geometries or ()], dtype=float)
+        xy = point_xy(layer.geometries or ())
         return _surface_at(result, xy[:, 0], xy[:, 1]).ravel() if len(xy) else np.zeros(0)
     return None
 
@@ -113,7 +113,7 @@ def _points_3d(layer: Layer, z) -> Layer:
         out = np.full(len(geoms), None, dtype=object)
         out[~null] = shapely.points(xyz[~null])
         return Layer(out.tolist(), layer.fields, layer.geometry_type, layer.description)
-    geoms = [None if g is None or g.is_empty else Point(g.x, g.y, float(zz)) for g, zz in zip(geoms, z)]
+    geoms = [None if g is None or g.is_empty else Point(*g.coords[0][:2], float(zz)) for g, zz in zip(geoms, z)]
     return Layer(geoms, layer.fields, layer.geometry_type, layer.description)
 
 
