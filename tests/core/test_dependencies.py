@@ -66,6 +66,7 @@ def _requirement_name(spec: str) -> str:
     return spec.strip().lower()
 
 
+@pytest.mark.slow  # 1-2 s: in the full tier, not the quick one
 def test_pyproject_requires_every_package_the_core_imports():
     declared = {
         _requirement_name(d) for d in tomllib.loads((REPO / "pyproject.toml").read_text())["project"]["dependencies"]
@@ -75,6 +76,7 @@ def test_pyproject_requires_every_package_the_core_imports():
     assert GDAL_ON_PYPI <= declared
 
 
+@pytest.mark.slow  # 1-2 s: in the full tier, not the quick one
 def test_plugin_checks_every_package_the_core_imports():
     from rockhead.plugin import deps
 

@@ -375,6 +375,7 @@ def test_written_here_read_on_the_other_stack(gpkg, run_on_other_stack):
     assert seen["line_misties"]["wkt"] is None and seen["line_misties"]["fields"]["mistie_ms"] == [1.25]
 
 
+@pytest.mark.slow  # 1-2 s: in the full tier, not the quick one
 def test_a_writing_process_imports_pyogrio_without_dataframes(tmp_path):
     """The command line's writing worker hides pandas and geopandas from pyogrio: the same GeoPackage, byte for byte."""
     import os

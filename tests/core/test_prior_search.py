@@ -52,6 +52,7 @@ def _exact(J, d, pr):
     return stats.multivariate_normal(np.zeros(N_DATA), cov).logpdf(d) + 0.5 * N_DATA * math.log(2 * math.pi)
 
 
+@pytest.mark.slow  # 1-2 s: in the full tier, not the quick one
 def test_the_search_reaches_the_maximum_of_a_brute_force_grid(monkeypatch):
     J, d = _case()
     monkeypatch.setattr(evidence, "_Linearised", _linearised(J, d))
@@ -112,6 +113,7 @@ def test_the_polish_ends_at_the_same_optimum_from_different_starts():
             assert f(z) <= v + 1e-9, (i, s)
 
 
+@pytest.mark.slow  # 1-2 s: in the full tier, not the quick one
 def test_the_search_counts_its_evidence_evaluations(monkeypatch):
     """The number of evidence evaluations, each a factorisation of the normal matrix (a count, not a time)."""
     J, d = _case()

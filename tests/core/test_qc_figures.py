@@ -84,6 +84,7 @@ def test_time_axis_points_down_in_t_x():
     assert lo <= t.min() * 1e3 and hi >= t.max() * 1e3  # every pick inside the panel
 
 
+@pytest.mark.slow  # 1-2 s: in the full tier, not the quick one
 def test_a_reused_figure_draws_what_a_new_one_draws():
     """One figure is redrawn for every gather: nothing of the gather before may remain."""
     x, t, picked, rejected, excluded = _classes()
