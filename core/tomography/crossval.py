@@ -346,8 +346,7 @@ def _downdated(inverse, g, parts, readers) -> dict:
     p = Sigma.shape[0]
     pos = np.arange(p) if position is None else np.asarray(position)
     g = np.asarray(g, float)
-    x = np.empty_like(g)
-    x[np.argsort(pos)] = Sigma @ g[np.argsort(pos)]  # A^-1 g in the original ordering
+    x = (Sigma @ g[np.argsort(pos)])[pos]  # A^-1 g in the original ordering
     out = {}
     for name in dict.fromkeys(label for label, _ in readers):
         JtJ, Jtr = parts[name]

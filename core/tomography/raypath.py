@@ -354,6 +354,16 @@ def _block_tridiagonal(Hd, Ho, g, shift):
     return pd, x
 
 
+def _path_gradient(o, slope):
+    """Gradient of a path's time at its points: in 3D (n, m, 3), and in their (x, y) on the surfaces (n, m, 2).
+
+    The chain rule through P = (x, y, z(x, y)): with the slope s = (z_x, z_y),
+    d/dX = d/dP_xy + s d/dP_z (the products J^T g and J^T H J of J = [[1, 0], [0, 1], s]).
+    """
+    gP = o["gB"][:, :-1] + o["gA"][:, 1:]
+    return gP, gP[..., :2] + gP[..., 2:3] * slope
+
+
 def _full_step(model, S, R, X, iface, layer):
     """Newton step of paths from their exact Hessian (spectrum lifted to a floor where needed).
 
@@ -364,15 +374,12 @@ def _full_step(model, S, R, X, iface, layer):
     na, m, _ = X.shape
     P, (_, zx, zy, zxx, zxy, zyy) = _points(model, X, iface, 2)
     A, B, th, c = _legs(model, S, R, P, layer)
-    # the chain rule through P = (x, y, z(x, y)): with the slope s = (z_x, z_y),
-    # d/dX = d/dP_xy + s d/dP_z (the products J^T g and J^T H J of J = [[1, 0], [0, 1], s])
     slope = np.stack([zx, zy], axis=-1)  # (na, m, 2)
     fixed = np.zeros((na, 1, 2))  # the source and the receiver do not move
     o = leg_times_on_surfaces(
         A, B, th, c, np.concatenate([fixed, slope], axis=1), np.concatenate([slope, fixed], axis=1)
     )
-    gP = o["gB"][:, :-1] + o["gA"][:, 1:]  # (na, m, 3)
-    g2 = gP[..., :2] + gP[..., 2:3] * slope
+    gP, g2 = _path_gradient(o, slope)
     curv = np.stack([np.stack([zxx, zxy], -1), np.stack([zxy, zyy], -1)], -2)
     Hd = o["HBB"][:, :-1] + o["HAA"][:, 1:] + gP[..., 2, None, None] * curv  # (na, m, 2, 2)
     Ho = o["HAB"][:, 1:-1]  # (na, m - 1, 2, 2): point p with p + 1
@@ -428,9 +435,7 @@ def _kept_step(model, S, R, X, iface, layer, Hd, Ho):
     P, (_, zx, zy) = _points(model, X, iface, 1)
     A, B, th, c = _legs(model, S, R, P, layer)
     o = leg_times(A, B, th, c, hessian=False)
-    slope = np.stack([zx, zy], axis=-1)
-    gP = o["gB"][:, :-1] + o["gA"][:, 1:]
-    g2 = gP[..., :2] + gP[..., 2:3] * slope
+    _, g2 = _path_gradient(o, np.stack([zx, zy], axis=-1))
     gflat = g2.reshape(na, 2 * m)
     if m == 1:
         step = _step_2x2(Hd[:, 0, 0, 0], Hd[:, 0, 0, 1], Hd[:, 0, 1, 1], gflat)

@@ -178,18 +178,22 @@ def test_leg_hessian_on_surfaces_matches_second_differences(gradient):
                 assert np.allclose(fd, o[key][:, i, j], rtol=1e-5, atol=1e-9), (key, i, j)
 
 
+def _downgoing_legs(rng, n, max_x_m, drop_m):
+    """``n`` legs from (0, 0, 100) to random azimuths, 1 to ``max_x_m`` away and ``drop_m`` (low, high) lower."""
+    A = np.column_stack([np.zeros(n), np.zeros(n), np.full(n, 100.0)])
+    az = rng.uniform(0.0, 2 * np.pi, n)
+    X = rng.uniform(1.0, max_x_m, n)
+    B = np.column_stack([X * np.cos(az), X * np.sin(az), 100.0 - rng.uniform(*drop_m, n)])
+    return A, B, X
+
+
 @pytest.mark.parametrize("gz", [-22.0, 15.0], ids=["velocity rising with depth", "falling with depth"])
 def test_leg_turns_matches_the_circle_of_a_vertical_gradient(gz):
     # in v = v0 + gz (z - cz) rays are circles centred on the level where v = 0 [Slotnick 1959]:
     # with the ends at heights hA, hB from that level and X apart horizontally, the centre lies
     # xc = (X^2 + hB^2 - hA^2) / (2 X) from A; the arc turns inside the layer (has its lowest or
     # highest point between the ends) exactly when 0 < xc < X
-    rng = np.random.default_rng(12)
-    n = 400
-    A = np.column_stack([np.zeros(n), np.zeros(n), np.full(n, 100.0)])
-    az = rng.uniform(0.0, 2 * np.pi, n)
-    X = rng.uniform(1.0, 80.0, n)
-    B = np.column_stack([X * np.cos(az), X * np.sin(az), 100.0 - rng.uniform(0.5, 12.0, n)])
+    A, B, X = _downgoing_legs(np.random.default_rng(12), 400, 80.0, (0.5, 12.0))
     th = np.array([600.0, 0.0, 0.0, gz])
     c = np.array([0.0, 0.0, 97.0])
     zc = c[2] - th[0] / gz  # v = 0 here
@@ -217,10 +221,7 @@ def test_leg_turns_matches_a_densely_sampled_arc_in_any_linear_field():
     # them and the sampled arcs the rest.
     rng = np.random.default_rng(21)
     n = 2000
-    A = np.column_stack([np.zeros(n), np.zeros(n), np.full(n, 100.0)])
-    az = rng.uniform(0.0, 2 * np.pi, n)
-    X = rng.uniform(1.0, 60.0, n)
-    B = np.column_stack([X * np.cos(az), X * np.sin(az), 100.0 - rng.uniform(0.2, 30.0, n)])
+    A, B, _ = _downgoing_legs(rng, n, 60.0, (0.2, 30.0))
     th = np.column_stack([rng.uniform(400.0, 1800.0, n), rng.normal(0.0, 3.0, (n, 2)), rng.uniform(-30.0, 15.0, n)])
     c = np.array([0.0, 0.0, 90.0])
     g = th[:, 1:]
